@@ -1,0 +1,255 @@
+"""The general SVM dual problem that every kktrace solver works on.
+
+    minimise    ½ αᵀQα + pᵀα
+    subject to  yᵀα = Δ,   lᵢ ≤ αᵢ ≤ uᵢ,      with  Q_ij = y_i y_j K(x_i, x_j),  y_i ∈ {−1, +1}.
+
+Binary soft-margin classification is p = −1, Δ = 0, l = 0, uᵢ = C·(class weight)·(sample weight).
+ε-regression and one-class problems fit the same form with other p, y, bounds and Δ,
+so solvers never special-case the problem kind.  Q is never materialised here: the
+problem exposes kernel blocks, Q blocks and diagonals.
+
+Optimality (Keerthi et al. 2001; Fan, Chen & Lin 2005, eq. 5): with gradient G = Qα + p,
+a feasible α is optimal iff there is a scalar b (the bias of f(x) = Σ αⱼyⱼK(xⱼ, x) + b) with
+
+    Gᵢ + b yᵢ ≥ 0 where αᵢ = lᵢ,    = 0 where lᵢ < αᵢ < uᵢ,    ≤ 0 where αᵢ = uᵢ.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Hashable, Mapping, Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from .errors import InvalidInputError
+from .kernels import Kernel, PrecomputedKernel
+
+__all__ = ["DualProblem", "binary_classification", "index_features"]
+
+
+def _vec(a: Any, n: int, name: str) -> np.ndarray:
+    v = np.ascontiguousarray(a, dtype=np.float64).reshape(-1)
+    if v.shape != (n,):
+        raise InvalidInputError(f"{name} must have {n} entries, got {v.size}")
+    if not np.all(np.isfinite(v)):
+        raise InvalidInputError(f"{name} has a non-finite entry at row {int(np.flatnonzero(~np.isfinite(v))[0])}")
+    v.setflags(write=False)
+    return v
+
+
+@dataclass(frozen=True, eq=False)
+class DualProblem:
+    """One instance of the general dual.  Arrays are read-only float64 of shape ``(n,)``.
+
+    Attributes
+    ----------
+    X : (n, d) rows the kernel is evaluated on (already standardised if the caller chose so).
+    y : (n,) signs ±1 in the equality constraint and in Q.
+    p : (n,) linear term.
+    lower, upper : (n,) box bounds, lower ≤ upper.
+    delta : right-hand side Δ of yᵀα = Δ.
+    kernel : the kernel, with every default parameter already resolved.
+    kind : problem type, e.g. ``"binary_classification"``.
+    info : plain-data description of how the problem was built (C, weights, label mapping).
+    """
+
+    X: np.ndarray
+    y: np.ndarray
+    p: np.ndarray
+    lower: np.ndarray
+    upper: np.ndarray
+    delta: float
+    kernel: Kernel
+    kind: str
+    info: Mapping[str, Any]
+
+    def __post_init__(self) -> None:
+        X = np.ascontiguousarray(self.X, dtype=np.float64)
+        if X.ndim != 2 or X.shape[0] < 1:
+            raise InvalidInputError(f"X must be a non-empty 2-D array, got shape {X.shape}")
+        X.setflags(write=False)
+        object.__setattr__(self, "X", X)
+        n = X.shape[0]
+        for name in ("y", "p", "lower", "upper"):
+            object.__setattr__(self, name, _vec(getattr(self, name), n, name))
+        if not np.all(np.abs(self.y) == 1.0):
+            raise InvalidInputError("y must hold only -1 and +1")
+        bad = np.flatnonzero(self.lower > self.upper)
+        if bad.size:
+            raise InvalidInputError(f"lower bound exceeds upper bound at row {int(bad[0])}")
+        if not math.isfinite(float(self.delta)):
+            raise InvalidInputError("delta must be finite")
+        object.__setattr__(self, "delta", float(self.delta))
+
+    @property
+    def n(self) -> int:
+        """Number of training points (dual variables)."""
+        return int(self.X.shape[0])
+
+    def kernel_block(self, rows: np.ndarray | slice, cols: np.ndarray | slice) -> np.ndarray:
+        """K(X[rows], X[cols]), shape ``(len(rows), len(cols))``."""
+        return self.kernel.block(self.X[rows], self.X[cols])
+
+    def q_block(self, rows: np.ndarray | slice, cols: np.ndarray | slice) -> np.ndarray:
+        """Q[rows, cols] = y_r y_c K(x_r, x_c)."""
+        K = self.kernel_block(rows, cols)
+        K *= self.y[rows][:, None]
+        K *= self.y[cols][None, :]
+        return K
+
+    def kernel_diag(self) -> np.ndarray:
+        """K(x_i, x_i) for every training point, shape ``(n,)`` (equals diag Q)."""
+        return self.kernel.diag(self.X)
+
+    def q_times(self, v: np.ndarray, *, block_rows: int = 2048) -> np.ndarray:
+        """Q v computed in row blocks of ``block_rows`` (memory O(block_rows · n))."""
+        v = np.asarray(v, dtype=np.float64)
+        out = np.empty(self.n)
+        yv = self.y * v
+        for s in range(0, self.n, block_rows):
+            e = min(self.n, s + block_rows)
+            out[s:e] = self.y[s:e] * (self.kernel_block(slice(s, e), slice(None)) @ yv)
+        return out
+
+    def gradient(self, alpha: np.ndarray) -> np.ndarray:
+        """G = Qα + p, shape ``(n,)``."""
+        return self.q_times(alpha) + self.p
+
+    def objective(self, alpha: np.ndarray) -> float:
+        """Dual objective ½ αᵀQα + pᵀα (the quantity solvers minimise)."""
+        alpha = np.asarray(alpha, dtype=np.float64)
+        return float(0.5 * alpha @ self.q_times(alpha) + self.p @ alpha)
+
+    def feasibility(self, alpha: np.ndarray) -> tuple[float, float]:
+        """(largest bound violation, |yᵀα − Δ|) for ``alpha``; both 0 for a feasible point."""
+        alpha = np.asarray(alpha, dtype=np.float64)
+        bound = float(max(0.0, np.max(self.lower - alpha), np.max(alpha - self.upper)))
+        return bound, abs(float(self.y @ alpha) - self.delta)
+
+    def feasible_start(self) -> np.ndarray:
+        """A feasible α: the lower bounds, then mass moved toward the upper bounds until yᵀα = Δ.
+
+        For classification (l = 0, Δ = 0) this is α = 0.
+        """
+        alpha = self.lower.copy()
+        need = self.delta - float(self.y @ alpha)
+        if need != 0.0:
+            sign = 1.0 if need > 0 else -1.0
+            for i in np.flatnonzero(self.y == sign):
+                room = self.upper[i] - alpha[i]
+                step = min(room, abs(need))
+                alpha[i] += step
+                need -= sign * step
+                if abs(need) <= 1e-15 * max(1.0, abs(self.delta)):
+                    break
+            if abs(need) > 1e-12 * max(1.0, abs(self.delta)):
+                raise InvalidInputError("the problem is infeasible: bounds cannot satisfy yᵀα = Δ")
+        return alpha
+
+    def describe(self) -> dict[str, Any]:
+        """Plain-data description for manifests (no arrays)."""
+        return {
+            "kind": self.kind,
+            "n": self.n,
+            "n_features": int(self.X.shape[1]),
+            "delta": self.delta,
+            "kernel": self.kernel.describe(),
+            **{k: v for k, v in self.info.items()},
+        }
+
+    @property
+    def labels(self) -> tuple[Hashable, Hashable] | None:
+        """(label mapped to −1, label mapped to +1) for classification, else None."""
+        lab = self.info.get("labels")
+        return (lab["negative"], lab["positive"]) if lab else None
+
+
+def index_features(n: int) -> np.ndarray:
+    """Row-index column (n, 1) used as ``X`` with a :class:`PrecomputedKernel`."""
+    return np.arange(n, dtype=np.float64)[:, None]
+
+
+def _plain(v: Hashable) -> Any:
+    """Label as JSON-friendly plain data (numpy scalars → Python scalars)."""
+    return v.item() if isinstance(v, np.generic) else v
+
+
+def binary_classification(
+    X: np.ndarray,
+    labels: Sequence[Hashable] | np.ndarray,
+    *,
+    kernel: Kernel,
+    C: float = 1.0,
+    class_weight: Mapping[Hashable, float] | None = None,
+    sample_weight: np.ndarray | None = None,
+    positive_label: Hashable | None = None,
+) -> DualProblem:
+    """Soft-margin binary classification dual: p = −1, Δ = 0, 0 ≤ αᵢ ≤ C·wᵢ.
+
+    Parameters
+    ----------
+    X : (n, d) feature rows (for a precomputed kernel, :func:`index_features`).
+    labels : (n,) two distinct label values (numbers or strings).
+    kernel : kernel; unset parameters (e.g. gamma) are resolved from ``X`` and recorded.
+    C : penalty, > 0.
+    class_weight : optional factor per label value scaling C for that class.
+    sample_weight : optional (n,) positive factors scaling C per point.
+    positive_label : label mapped to +1; default the larger of the two sorted labels.
+    """
+    X = np.ascontiguousarray(X, dtype=np.float64)
+    labels = np.asarray(labels)
+    if X.ndim != 2:
+        raise InvalidInputError(f"X must be 2-D (rows, features), got shape {X.shape}")
+    n = X.shape[0]
+    if labels.shape != (n,):
+        raise InvalidInputError(f"labels must have {n} entries (one per row of X), got shape {labels.shape}")
+    if isinstance(C, bool) or not isinstance(C, (int, float, np.floating, np.integer)) or not (
+        math.isfinite(float(C)) and float(C) > 0
+    ):
+        raise InvalidInputError(f"C must be a finite number > 0, got {C!r}")
+    classes = sorted(set(labels.tolist()), key=lambda v: (str(type(v)), v))
+    if len(classes) != 2:
+        raise InvalidInputError(
+            f"binary classification needs exactly two label values, found {len(classes)}: "
+            f"{', '.join(map(repr, classes[:5]))}"
+        )
+    if positive_label is None:
+        neg, pos = classes
+    elif positive_label in classes:
+        pos = positive_label
+        neg = classes[0] if classes[1] == pos else classes[1]
+    else:
+        raise InvalidInputError(f"positive label {positive_label!r} is not one of {classes!r}")
+    y = np.where(labels == pos, 1.0, -1.0)
+    upper = np.full(n, float(C))
+    if class_weight:
+        unknown = [k for k in class_weight if k not in classes]
+        if unknown:
+            raise InvalidInputError(f"class weight given for unknown label(s) {unknown!r}")
+        for lab, w in class_weight.items():
+            if not (math.isfinite(float(w)) and float(w) > 0):
+                raise InvalidInputError(f"class weight for {lab!r} must be finite and > 0, got {w!r}")
+            upper[labels == lab] *= float(w)
+    if sample_weight is not None:
+        sw = np.asarray(sample_weight, dtype=np.float64).reshape(-1)
+        if sw.shape != (n,):
+            raise InvalidInputError(f"sample weights must have {n} entries, got {sw.size}")
+        bad = np.flatnonzero(~(np.isfinite(sw) & (sw > 0)))
+        if bad.size:
+            raise InvalidInputError(f"sample weight at row {int(bad[0])} must be finite and > 0, got {sw[bad[0]]!r}")
+        upper *= sw
+    if not isinstance(kernel, PrecomputedKernel):
+        kernel = kernel.with_defaults(X)
+    info = {
+        "C": float(C),
+        "labels": {"negative": _plain(neg), "positive": _plain(pos)},
+        "class_weight": {str(k): float(v) for k, v in class_weight.items()} if class_weight else None,
+        "sample_weight": sample_weight is not None,
+        "class_counts": {"negative": int(np.sum(y < 0)), "positive": int(np.sum(y > 0))},
+    }
+    return DualProblem(
+        X=X, y=y, p=-np.ones(n), lower=np.zeros(n), upper=upper, delta=0.0,
+        kernel=kernel, kind="binary_classification", info=info,
+    )

@@ -1,0 +1,98 @@
+"""Immutable records every solver returns: :class:`SolveResult` and its :class:`Trace`."""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from .certificate import Certificate
+from .status import Status
+
+__all__ = ["Trace", "SolveResult", "TRACE_LEVELS"]
+
+TRACE_LEVELS = ("full", "sampled", "off")
+
+
+@dataclass(frozen=True, eq=False)
+class Trace:
+    """Per-iteration record of one solve.
+
+    Attributes
+    ----------
+    solver : name of the solver that wrote it (columns differ per solver).
+    level : ``"full"`` (every iteration), ``"sampled"`` (every ``sample_every``-th plus
+        every iteration with an event) or ``"off"`` (no rows; snapshots still kept).
+    columns : equal-length 1-D arrays, one row per recorded iteration; always has
+        ``"iteration"`` (int64, 1-based: row k describes the state after iteration k).
+        SMO columns: ``i``, ``j`` (int32 working set), ``alpha_i``, ``alpha_j`` (new
+        multipliers), ``step`` (change of αᵢ), ``objective`` (dual objective after the
+        step), ``violation`` (maximal violation before the step), ``active`` (int32
+        active-set size).  QP columns: ``primal_objective``, ``dual_objective``, ``gap``,
+        ``relative_gap``, ``primal_residual``, ``dual_residual``, ``step``.
+    events : equal-length arrays ``iteration`` (int64), ``kind`` (int8), ``value`` (float64).
+    event_kinds : code → name for ``events["kind"]``.
+    snapshot_iterations : (k,) int64 iterations at which full α was stored (0 = start).
+    snapshots : (k, n) float64 α after each snapshot iteration.
+    sample_every, snapshot_every : recording periods (iterations).
+    """
+
+    solver: str
+    level: str
+    columns: Mapping[str, np.ndarray]
+    events: Mapping[str, np.ndarray]
+    event_kinds: Mapping[int, str]
+    snapshot_iterations: np.ndarray
+    snapshots: np.ndarray
+    sample_every: int = 1
+    snapshot_every: int = 0
+
+    @property
+    def n_rows(self) -> int:
+        """Number of recorded iterations."""
+        col = self.columns.get("iteration")
+        return 0 if col is None else int(col.shape[0])
+
+
+@dataclass(frozen=True, eq=False)
+class SolveResult:
+    """What a solver returns, whatever the backend.
+
+    ``alpha`` (n,) and ``bias`` define f(x) = Σ αᵢyᵢK(xᵢ, x) + b.  ``status`` says why
+    the solver stopped; only :attr:`success` (status CONVERGED) means the optimality
+    test was met.  ``certificate`` is computed by :func:`solver.certificate.certify`.
+    ``options`` holds every option with defaults resolved; ``extra`` holds
+    backend-specific figures (e.g. raw backend status, compile time, curvature fixes).
+    """
+
+    solver: str
+    status: Status
+    message: str
+    alpha: np.ndarray
+    bias: float
+    iterations: int
+    certificate: Certificate
+    seconds: float
+    options: Mapping[str, Any]
+    trace: Trace | None = None
+    extra: Mapping[str, Any] = field(default_factory=dict)
+
+    @property
+    def success(self) -> bool:
+        """True only when the solver's optimality test was met."""
+        return self.status == Status.CONVERGED
+
+    def summary(self) -> dict[str, Any]:
+        """Key figures as plain data."""
+        c = self.certificate
+        return {
+            "solver": self.solver,
+            "status": self.status.label,
+            "message": self.message,
+            "iterations": int(self.iterations),
+            "seconds": float(self.seconds),
+            "bias": float(self.bias),
+            **c.to_dict(),
+        }
