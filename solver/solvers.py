@@ -1,0 +1,33 @@
+"""Registry of solvers: name → solve function with the common contract (see DEVELOPERS.md)."""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from importlib import import_module
+from typing import Any
+
+from .errors import InvalidInputError
+from .problem import DualProblem
+from .result import SolveResult
+
+__all__ = ["SOLVERS", "get_solver", "solve"]
+
+#: name → "module:function"; imported on first use so that numba / cvxopt load only when needed.
+SOLVERS: dict[str, str] = {
+    "smo": "solver.smo:solve_smo",
+    "qp": "solver.qp:solve_qp",
+}
+
+
+def get_solver(name: str) -> Callable[..., SolveResult]:
+    """The solve function registered under ``name``."""
+    target = SOLVERS.get(name)
+    if target is None:
+        raise InvalidInputError(f"unknown solver {name!r}; choose one of {', '.join(SOLVERS)}")
+    module, func = target.split(":")
+    return getattr(import_module(module), func)
+
+
+def solve(problem: DualProblem, *, method: str = "smo", **options: Any) -> SolveResult:
+    """Solve ``problem`` with the registered solver ``method``; options are that solver's keywords."""
+    return get_solver(method)(problem, **options)
