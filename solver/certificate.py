@@ -19,6 +19,7 @@ from typing import Any
 
 import numpy as np
 
+from .errors import InvalidInputError
 from .problem import DualProblem
 
 __all__ = ["Certificate", "certify", "DEFAULT_BOUND_TOL"]
@@ -58,7 +59,11 @@ class Certificate:
 
     @property
     def meets_tol(self) -> bool:
-        """True when the maximal violation is within ``tol`` and α is feasible."""
+        """True when the maximal violation is within ``tol``.
+
+        Feasibility is not part of this test; read :attr:`bound_violation` and
+        :attr:`equality_residual` for it.
+        """
         return bool(self.max_violation <= self.tol)
 
     def to_dict(self) -> dict[str, Any]:
@@ -100,7 +105,11 @@ def certify(
     recomputed from kernel blocks (O(n²d) work, O(n·2048) memory).
     """
     alpha = np.asarray(alpha, dtype=np.float64)
+    if alpha.shape != (problem.n,):
+        raise InvalidInputError(f"alpha must have shape ({problem.n},), got {alpha.shape}")
     G = problem.gradient(alpha) if gradient is None else np.asarray(gradient, dtype=np.float64)
+    if G.shape != (problem.n,):
+        raise InvalidInputError(f"gradient must have shape ({problem.n},), got {G.shape}")
     y, lo, up = problem.y, problem.lower, problem.upper
     width = np.maximum(up - lo, 0.0)
     at_lower = alpha <= lo + bound_tol * width
@@ -122,7 +131,9 @@ def certify(
         ends = [v for v in (m_up, M_low) if np.isfinite(v)]
         bias, bias_from = (float(np.mean(ends)) if ends else 0.0), "interval_midpoint"
     s = G + bias * y
-    resid = np.where(at_lower, np.maximum(0.0, -s), np.where(at_upper, np.maximum(0.0, s), np.abs(s)))
+    resid = np.where(
+        at_lower, np.maximum(0.0, -s), np.where(at_upper, np.maximum(0.0, s), np.abs(s))
+    )
     quad = float(alpha @ (G - problem.p))  # αᵀQα
     dual = 0.5 * quad + float(problem.p @ alpha)
     if np.all(lo == 0.0):

@@ -23,7 +23,7 @@ from __future__ import annotations
 import hashlib
 import math
 from collections.abc import Callable, Mapping
-from dataclasses import dataclass, field, replace
+from dataclasses import dataclass, field, fields, replace
 from typing import Any, ClassVar
 
 import numpy as np
@@ -54,7 +54,9 @@ def _as_block(a: np.ndarray, name: str) -> np.ndarray:
     if a.ndim == 1:
         a = a[None, :]
     if a.ndim != 2:
-        raise InvalidInputError(f"kernel input {name} must be 2-D (rows, features), got shape {a.shape}")
+        raise InvalidInputError(
+            f"kernel input {name} must be 2-D (rows, features), got shape {a.shape}"
+        )
     return a
 
 
@@ -86,7 +88,9 @@ def squared_distances(A: np.ndarray, B: np.ndarray) -> np.ndarray:
     return d2
 
 
-def median_heuristic_gamma(X: np.ndarray, *, sample: int = MEDIAN_SAMPLE, seed: int = MEDIAN_SEED) -> float:
+def median_heuristic_gamma(
+    X: np.ndarray, *, sample: int = MEDIAN_SAMPLE, seed: int = MEDIAN_SEED
+) -> float:
     """Default gamma: 1 / median squared pairwise distance between distinct rows of ``X``.
 
     Above ``sample`` rows a sample drawn with ``numpy.random.default_rng(seed)`` is used,
@@ -136,7 +140,7 @@ class Kernel:
         return {}
 
     def describe(self) -> dict[str, Any]:
-        """``{"name": ..., "params": {...}}``: enough to rebuild the kernel with :func:`kernel_from_description`."""
+        """``{"name": ..., "params": {...}}``; rebuild with :func:`kernel_from_description`."""
         return {"name": self.name, "params": self.params()}
 
     def with_defaults(self, X: np.ndarray) -> Kernel:
@@ -174,6 +178,8 @@ class _GammaKernel(Kernel):
 
     def __post_init__(self) -> None:
         _check_gamma(self.gamma, self.name)
+        if self.gamma is not None:  # plain float so describe() is JSON-ready
+            object.__setattr__(self, "gamma", float(self.gamma))
 
     def _g(self) -> float:
         if self.gamma is None:
@@ -201,7 +207,8 @@ class PolynomialKernel(_GammaKernel):
         d = self.degree
         if isinstance(d, bool) or not isinstance(d, (int, np.integer, float, np.floating)):
             raise InvalidInputError(f"poly kernel: degree must be an integer, got {d!r}")
-        if float(d) != math.floor(float(d)) or not math.isfinite(float(d)):
+        # isfinite first: math.floor raises on inf / nan
+        if not math.isfinite(float(d)) or float(d) != math.floor(float(d)):
             raise InvalidInputError(f"poly kernel: degree must be an integer, got {d!r}")
         if int(d) < 1:
             raise InvalidInputError(f"poly kernel: degree must be >= 1, got {d!r}")
@@ -297,7 +304,8 @@ class CallableKernel(Kernel):
 
     def block(self, A: np.ndarray, B: np.ndarray) -> np.ndarray:
         A, B = _as_block(A, "A"), _as_block(B, "B")
-        K = np.asarray(self.func(A, B), dtype=np.float64)
+        # a copy: callers (e.g. DualProblem.q_block) scale the block in place
+        K = np.array(self.func(A, B), dtype=np.float64)
         if K.shape != (A.shape[0], B.shape[0]):
             raise InvalidInputError(
                 f"callable kernel returned shape {K.shape}, expected {(A.shape[0], B.shape[0])}"
@@ -312,7 +320,8 @@ class CallableKernel(Kernel):
 
     def params(self) -> dict[str, Any]:
         f = self.func
-        return {"function": f"{getattr(f, '__module__', '?')}.{getattr(f, '__qualname__', repr(f))}"}
+        qualname = getattr(f, "__qualname__", repr(f))
+        return {"function": f"{getattr(f, '__module__', '?')}.{qualname}"}
 
 
 @dataclass(frozen=True, eq=False)
@@ -344,7 +353,8 @@ class PrecomputedKernel(Kernel):
         idx = A[:, 0].astype(np.int64)
         if np.any(idx != A[:, 0]) or np.any(idx < 0) or np.any(idx >= self.gram_matrix.shape[0]):
             raise InvalidInputError(
-                f"precomputed kernel: {name} must hold row indices in [0, {self.gram_matrix.shape[0]})"
+                f"precomputed kernel: {name} must hold row indices in "
+                f"[0, {self.gram_matrix.shape[0]})"
             )
         return idx
 
@@ -366,7 +376,7 @@ KERNELS: dict[str, type[Kernel]] = {
 }
 
 
-def make_kernel(name: str, **params: Any) -> Kernel:
+def make_kernel(name: str, /, **params: Any) -> Kernel:
     """Build a registered kernel by name (``linear``, ``poly``, ``rbf``, ``sigmoid``).
 
     Unknown names or parameters raise :class:`InvalidInputError` naming the problem.
@@ -376,7 +386,7 @@ def make_kernel(name: str, **params: Any) -> Kernel:
         raise InvalidInputError(
             f"unknown kernel {name!r}; choose one of {', '.join(sorted(KERNELS))}"
         )
-    allowed = {f for f in cls.__dataclass_fields__}
+    allowed = {f.name for f in fields(cls)}  # excludes the ClassVars name / psd
     unknown = sorted(set(params) - allowed)
     if unknown:
         raise InvalidInputError(

@@ -30,11 +30,16 @@ __all__ = ["DualProblem", "binary_classification", "index_features"]
 
 
 def _vec(a: Any, n: int, name: str) -> np.ndarray:
-    v = np.ascontiguousarray(a, dtype=np.float64).reshape(-1)
+    try:
+        # a private copy: freezing it must not make the caller's array read-only
+        v = np.array(a, dtype=np.float64, order="C").reshape(-1)
+    except (TypeError, ValueError):
+        raise InvalidInputError(f"{name} must be numeric") from None
     if v.shape != (n,):
         raise InvalidInputError(f"{name} must have {n} entries, got {v.size}")
     if not np.all(np.isfinite(v)):
-        raise InvalidInputError(f"{name} has a non-finite entry at row {int(np.flatnonzero(~np.isfinite(v))[0])}")
+        bad = int(np.flatnonzero(~np.isfinite(v))[0])
+        raise InvalidInputError(f"{name} has a non-finite entry at row index {bad} (0-based)")
     v.setflags(write=False)
     return v
 
@@ -66,7 +71,7 @@ class DualProblem:
     info: Mapping[str, Any]
 
     def __post_init__(self) -> None:
-        X = np.ascontiguousarray(self.X, dtype=np.float64)
+        X = np.array(self.X, dtype=np.float64, order="C")  # private copy, frozen below
         if X.ndim != 2 or X.shape[0] < 1:
             raise InvalidInputError(f"X must be a non-empty 2-D array, got shape {X.shape}")
         X.setflags(write=False)
@@ -78,7 +83,9 @@ class DualProblem:
             raise InvalidInputError("y must hold only -1 and +1")
         bad = np.flatnonzero(self.lower > self.upper)
         if bad.size:
-            raise InvalidInputError(f"lower bound exceeds upper bound at row {int(bad[0])}")
+            raise InvalidInputError(
+                f"lower bound exceeds upper bound at row index {int(bad[0])} (0-based)"
+            )
         if not math.isfinite(float(self.delta)):
             raise InvalidInputError("delta must be finite")
         object.__setattr__(self, "delta", float(self.delta))
@@ -171,6 +178,10 @@ def index_features(n: int) -> np.ndarray:
     return np.arange(n, dtype=np.float64)[:, None]
 
 
+def _is_number(v: Any) -> bool:
+    return not isinstance(v, bool) and isinstance(v, (int, float, np.floating, np.integer))
+
+
 def _plain(v: Hashable) -> Any:
     """Label as JSON-friendly plain data (numpy scalars → Python scalars)."""
     return v.item() if isinstance(v, np.generic) else v
@@ -204,10 +215,10 @@ def binary_classification(
         raise InvalidInputError(f"X must be 2-D (rows, features), got shape {X.shape}")
     n = X.shape[0]
     if labels.shape != (n,):
-        raise InvalidInputError(f"labels must have {n} entries (one per row of X), got shape {labels.shape}")
-    if isinstance(C, bool) or not isinstance(C, (int, float, np.floating, np.integer)) or not (
-        math.isfinite(float(C)) and float(C) > 0
-    ):
+        raise InvalidInputError(
+            f"labels must have {n} entries (one per row of X), got shape {labels.shape}"
+        )
+    if not (_is_number(C) and math.isfinite(float(C)) and float(C) > 0):
         raise InvalidInputError(f"C must be a finite number > 0, got {C!r}")
     classes = sorted(set(labels.tolist()), key=lambda v: (str(type(v)), v))
     if len(classes) != 2:
@@ -229,23 +240,33 @@ def binary_classification(
         if unknown:
             raise InvalidInputError(f"class weight given for unknown label(s) {unknown!r}")
         for lab, w in class_weight.items():
-            if not (math.isfinite(float(w)) and float(w) > 0):
-                raise InvalidInputError(f"class weight for {lab!r} must be finite and > 0, got {w!r}")
+            if not (_is_number(w) and math.isfinite(float(w)) and float(w) > 0):
+                raise InvalidInputError(
+                    f"class weight for {lab!r} must be finite and > 0, got {w!r}"
+                )
             upper[labels == lab] *= float(w)
     if sample_weight is not None:
-        sw = np.asarray(sample_weight, dtype=np.float64).reshape(-1)
+        try:
+            sw = np.asarray(sample_weight, dtype=np.float64).reshape(-1)
+        except (TypeError, ValueError):
+            raise InvalidInputError("sample weights must be numbers") from None
         if sw.shape != (n,):
             raise InvalidInputError(f"sample weights must have {n} entries, got {sw.size}")
         bad = np.flatnonzero(~(np.isfinite(sw) & (sw > 0)))
         if bad.size:
-            raise InvalidInputError(f"sample weight at row {int(bad[0])} must be finite and > 0, got {sw[bad[0]]!r}")
+            raise InvalidInputError(
+                f"sample weight at row index {int(bad[0])} (0-based) must be finite and > 0, "
+                f"got {float(sw[bad[0]])!r}"
+            )
         upper *= sw
     if not isinstance(kernel, PrecomputedKernel):
         kernel = kernel.with_defaults(X)
     info = {
         "C": float(C),
         "labels": {"negative": _plain(neg), "positive": _plain(pos)},
-        "class_weight": {str(k): float(v) for k, v in class_weight.items()} if class_weight else None,
+        "class_weight": (
+            {str(k): float(v) for k, v in class_weight.items()} if class_weight else None
+        ),
         "sample_weight": sample_weight is not None,
         "class_counts": {"negative": int(np.sum(y < 0)), "positive": int(np.sum(y > 0))},
     }
