@@ -1,5 +1,108 @@
-"""kktrace: SVM dual solvers with auditable optimisation traces (import package ``solver``)."""
+"""kktrace: SVM dual solvers with auditable optimisation traces (import package ``solver``).
+
+The public workflow, with the same names as the ``kktrace`` command:
+
+>>> import solver
+>>> out = solver.train("batches.csv", label="lab_decision", solver="both")  # doctest: +SKIP
+>>> solver.report(out.run_ids)                                             # doctest: +SKIP
+
+``train`` solves with SMO (and the QP challenger), ``load_run`` / ``runs`` read the store,
+``compare`` gives the solver-agreement verdict, ``explain`` / ``leave_one_out`` say why
+points became support vectors, ``replay`` rebuilds a recorded iteration, ``verify``
+checks integrity and reproduction, ``score`` applies a stored model, ``report`` writes
+HTML / PDF / JSON.  Names are loaded on first use, so ``import solver`` stays light.
+"""
 
 from __future__ import annotations
 
+import sys
+import types
+from importlib import import_module
+from typing import Any
+
 __version__ = "0.1.0"
+
+#: public name → module that defines it
+_EXPORTS: dict[str, str] = {
+    # workflow (solver.api)
+    "train": "api",
+    "TrainOutcome": "api",
+    "load_run": "api",
+    "runs": "api",
+    "compare": "api",
+    "explain": "api",
+    "leave_one_out": "api",
+    "replay": "api",
+    "verify": "api",
+    "VerifyOutcome": "api",
+    "score": "api",
+    "Scores": "api",
+    "report": "api",
+    "export_explanation": "api",
+    "open_store": "api",
+    # demo
+    "run_demo": "demo",
+    "DemoOutcome": "demo",
+    "tablet_coating_tables": "demo",
+    # data
+    "Dataset": "data",
+    "load_table": "data",
+    "from_arrays": "data",
+    "fingerprint": "data",
+    # building blocks
+    "make_kernel": "kernels",
+    "binary_classification": "problem",
+    "DualProblem": "problem",
+    "solve": "solvers",
+    "SolveResult": "result",
+    "Certificate": "certificate",
+    "certify": "certificate",
+    "Standardiser": "model",
+    "Model": "model",
+    "model_from_solution": "model",
+    "RunRecord": "run",
+    "RunStore": "store",
+    "Status": "status",
+    # errors and warnings
+    "KktraceError": "errors",
+    "InvalidInputError": "errors",
+    "IntegrityError": "errors",
+    "ProblemMismatchError": "errors",
+    "ConvergenceWarning": "errors",
+    "DataWarning": "errors",
+}
+
+__all__ = ["__version__", *_EXPORTS]
+
+
+#: Public functions whose names are also submodule names (``solver/compare.py``,
+#: ``solver/explain.py``, ``solver/report/``).  ``solver.compare`` etc. are always the
+#: workflow functions; the submodules stay importable by their dotted names
+#: (``from solver.compare import compare_runs``, ``import solver.report``) and live in
+#: ``sys.modules``, but the import system is not allowed to rebind the package attribute.
+_SHADOWED = frozenset({"compare", "explain", "report"})
+
+
+class _Package(types.ModuleType):
+    """The ``solver`` package module: keeps the workflow functions in :data:`_SHADOWED`."""
+
+    def __setattr__(self, name: str, value: Any) -> None:
+        if name in _SHADOWED and isinstance(value, types.ModuleType):
+            return
+        super().__setattr__(name, value)
+
+
+def __getattr__(name: str) -> Any:
+    module = _EXPORTS.get(name)
+    if module is None:
+        raise AttributeError(f"module 'solver' has no attribute {name!r}")
+    value = getattr(import_module(f".{module}", __name__), name)
+    globals()[name] = value  # cache: later look-ups skip this function
+    return value
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(_EXPORTS))
+
+
+sys.modules[__name__].__class__ = _Package
