@@ -173,7 +173,8 @@ class _Recorder:
             if answer is True:
                 raise _Stop(Status.STOPPED_BY_CALLBACK, f"callback asked to stop at iteration {it}")
         if self.time_limit is not None and time.perf_counter() - self.started > self.time_limit:
-            raise _Stop(Status.TIME_LIMIT, f"time limit {self.time_limit:g} s reached at iteration {it}")
+            raise _Stop(Status.TIME_LIMIT,
+                        f"time limit {self.time_limit:g} s reached at iteration {it}")
 
     def append(self, it: int, row: Mapping[str, float], s: np.ndarray, z: np.ndarray) -> None:
         n = self.n
@@ -244,7 +245,7 @@ def _structured_factory(Q: np.ndarray, a: np.ndarray, rec: _Recorder) -> Callabl
 
 
 def _generic_factory(G: Any, A: Any, P: Any, rec: _Recorder) -> Callable:
-    """cvxopt's own dense reduction ('chol2', the default for these problems), wrapped for the trace."""
+    """cvxopt's own dense reduction ('chol2', its default here), wrapped for the trace."""
     from cvxopt import misc
 
     base = misc.kkt_chol2(G, {"l": G.size[0], "q": [], "s": []}, A)
@@ -326,9 +327,11 @@ def _check_options(problem: DualProblem, tol: float, max_iter: int, size_limit: 
     if time_limit is not None:
         positive("time_limit", time_limit)
     if trace not in TRACE_LEVELS:
-        raise InvalidInputError(f"qp solver: trace must be one of {', '.join(TRACE_LEVELS)}, got {trace!r}")
+        raise InvalidInputError(
+            f"qp solver: trace must be one of {', '.join(TRACE_LEVELS)}, got {trace!r}")
     if kkt not in KKT_METHODS:
-        raise InvalidInputError(f"qp solver: kkt must be one of {', '.join(KKT_METHODS)}, got {kkt!r}")
+        raise InvalidInputError(
+            f"qp solver: kkt must be one of {', '.join(KKT_METHODS)}, got {kkt!r}")
     if callback is not None and not callable(callback):
         raise InvalidInputError("qp solver: callback must be callable or None")
     if problem.n > size_limit and not force:
@@ -548,7 +551,8 @@ def solve_qp(
                "force": bool(force), "trace": trace, "kkt": kkt, "kkt_tol": float(kkt_tol),
                "sample_every": int(sample_every), "snapshot_every": int(snapshot_every),
                "time_limit": time_limit, "alpha0": a0 is not None,
-               "callback": None if callback is None else getattr(callback, "__qualname__", "callback"),
+               "callback": None if callback is None
+               else getattr(callback, "__qualname__", "callback"),
                "cvxopt_options": dict(cvx_options)}
     import cvxopt
 
