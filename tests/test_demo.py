@@ -1,0 +1,93 @@
+"""The invented tablet-coating demo data: reproducible from its seed and shipped as CSV.
+
+The demo data are invented and used only for the demo; these tests check that the
+generator is deterministic, that the shipped files are exactly its output, and that the
+demo writes what it promises.  They are not checks of kktrace's numerical correctness.
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+
+import numpy as np
+import pytest
+
+from solver import demo
+
+
+def test_shipped_csvs_are_the_generator_output(tmp_path):
+    train_csv, holdout_csv = demo.write_demo_data(tmp_path)
+    shipped_train, shipped_holdout = demo.shipped_data()
+    assert train_csv.read_bytes() == shipped_train.read_bytes()
+    assert holdout_csv.read_bytes() == shipped_holdout.read_bytes()
+
+
+def test_same_seed_same_tables_other_seed_other_tables():
+    a_train, a_hold = demo.tablet_coating_tables()
+    b_train, b_hold = demo.tablet_coating_tables()
+    c_train, _ = demo.tablet_coating_tables(seed=demo.DEMO_SEED + 1)
+    for k in a_train:
+        np.testing.assert_array_equal(a_train[k], b_train[k])
+        np.testing.assert_array_equal(a_hold[k], b_hold[k])
+    assert not np.array_equal(a_train["coating_thickness_um"], c_train["coating_thickness_um"])
+
+
+def test_tables_have_the_documented_shape_and_units():
+    train, hold = demo.tablet_coating_tables()
+    assert list(train) == [*demo.DEMO_COLUMNS, demo.DEMO_LABEL]
+    assert len(train[demo.DEMO_LABEL]) == demo.N_TRAIN
+    assert len(hold[demo.DEMO_LABEL]) == demo.N_HOLDOUT
+    for table in (train, hold):
+        labels = set(table[demo.DEMO_LABEL].tolist())
+        assert labels == {"release", "reject"}
+        share = float(np.mean(table[demo.DEMO_LABEL] == "release"))
+        assert 0.25 < share < 0.75
+        assert np.all((table["dissolution_30min_pct"] > 0) & (table["dissolution_30min_pct"] <= 100))
+        assert np.all(table["moisture_pct"] > 0)
+        assert np.all(table["coating_thickness_um"] > 0) and np.all(table["hardness_n"] > 0)
+
+
+def test_shipped_csv_reads_back_with_the_loader():
+    from solver import load_table
+
+    path, _ = demo.shipped_data()
+    ds = load_table(path, label=demo.DEMO_LABEL)
+    assert ds.feature_names == demo.DEMO_COLUMNS
+    assert ds.X.shape == (demo.N_TRAIN, 4)
+    with path.open(newline="") as fh:
+        first = next(csv.DictReader(fh))
+    assert ds.X[0, 0] == float(first["coating_thickness_um"])
+
+
+def test_acceptance_window_is_not_linear():
+    """Releases sit inside a window: both very thin and very thick coats are rejected."""
+    train, _ = demo.tablet_coating_tables(n_train=4000, n_holdout=0)
+    t = train["coating_thickness_um"]
+    rel = train[demo.DEMO_LABEL] == "release"
+    mid = rel[(t > 80) & (t < 92)].mean()
+    assert mid > rel[t < 60].mean() + 0.3
+    assert mid > rel[t > 115].mean() + 0.3
+
+
+@pytest.mark.slow
+def test_run_demo_writes_runs_explanations_and_reports(tmp_path):
+    from solver import RunStore
+
+    res = demo.run_demo(store=tmp_path / "traces")
+    out = res.train
+    assert len(out.run_ids) == 2, "SMO run plus the QP challenger"
+    assert out.converged
+    assert out.verdict is not None
+    store = RunStore(tmp_path / "traces")
+    assert {r["run_id"] for r in store.runs()} >= set(out.run_ids)
+    for rid in out.run_ids:
+        assert store.verify(rid).ok
+    for fmt in ("html", "pdf", "json"):
+        assert res.reports[fmt].is_file() and res.reports[fmt].stat().st_size > 0
+    summary = json.loads(res.reports["json"].read_text(encoding="utf-8"))
+    assert out.run_ids[0] in json.dumps(summary)
+    for fmt in ("csv", "parquet"):
+        assert res.explanation_files[fmt].is_file()
+    for f in res.data_files:
+        assert f.is_file()

@@ -1,0 +1,131 @@
+"""The public surface in ``solver/__init__.py``: every name resolves and is documented,
+the workflow names match the CLI's subcommands, and the CLI uses only the public API."""
+
+from __future__ import annotations
+
+import ast
+import importlib
+import inspect
+import re
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+
+import solver
+
+ROOT = Path(__file__).resolve().parents[1]
+PUBLIC = [n for n in solver.__all__ if n != "__version__"]
+
+
+@pytest.mark.parametrize("name", PUBLIC)
+def test_every_public_name_resolves_and_has_a_docstring(name):
+    obj = getattr(solver, name)
+    doc = inspect.getdoc(obj)
+    assert doc and len(doc.strip()) > 10, f"solver.{name} has no docstring"
+
+
+def test_all_is_sorted_into_known_names_without_duplicates():
+    assert len(solver.__all__) == len(set(solver.__all__))
+    assert set(dir(solver)) >= set(solver.__all__)
+    with pytest.raises(AttributeError):
+        solver.no_such_name  # noqa: B018
+
+
+def test_workflow_names_are_the_cli_subcommands():
+    from solver.cli import build_parser
+
+    parser = build_parser()
+    sub = next(a for a in parser._actions if a.dest == "command")
+    commands = set(sub.choices)
+    assert commands == {"train", "runs", "report", "compare", "explain", "replay", "verify",
+                        "score", "demo"}
+    for name in commands - {"demo"}:
+        assert callable(getattr(solver, name)), name
+    assert callable(solver.run_demo)
+
+
+def test_submodule_imports_do_not_replace_workflow_functions():
+    import solver.compare
+    import solver.explain
+    import solver.report
+
+    for name in ("compare", "explain", "report"):
+        assert inspect.isfunction(getattr(solver, name)), name
+        assert getattr(solver, name).__module__ == "solver.api"
+        assert inspect.ismodule(sys.modules[f"solver.{name}"])
+    from solver.compare import compare_runs
+
+    assert callable(compare_runs)
+
+
+def test_import_solver_is_light():
+    """Importing the package must not pull in the heavy backends (numba, cvxopt, matplotlib)."""
+    code = ("import sys, solver; solver.KktraceError; "
+            "print(','.join(m for m in ('numba','cvxopt','matplotlib','pyarrow') "
+            "if m in sys.modules))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True, cwd=ROOT)
+    assert out.stdout.strip() == ""
+
+
+def test_cli_imports_only_the_public_api():
+    tree = ast.parse((ROOT / "solver" / "cli.py").read_text(encoding="utf-8"))
+    for node in ast.walk(tree):
+        if isinstance(node, ast.ImportFrom):
+            assert node.level == 0, "relative import in cli.py"
+            root = (node.module or "").split(".")[0]
+            if root == "solver":
+                assert node.module == "solver", f"cli imports {node.module}"
+        elif isinstance(node, ast.Import):
+            for alias in node.names:
+                if alias.name.split(".")[0] == "solver":
+                    assert alias.name == "solver", f"cli imports {alias.name}"
+    # every solver.<name> the CLI uses is public
+    used = set(re.findall(r"\bsolver\.([A-Za-z_]+)", (ROOT / "solver" / "cli.py").read_text()))
+    assert used <= set(solver.__all__), used - set(solver.__all__)
+
+
+def test_notebook_uses_only_the_public_api():
+    import json
+
+    nb = json.loads((ROOT / "notebooks" / "audit_walkthrough.ipynb").read_text(encoding="utf-8"))
+    code = "\n".join("".join(c["source"]) for c in nb["cells"] if c["cell_type"] == "code")
+    for line in code.splitlines():
+        m = re.match(r"\s*(?:from|import)\s+(solver[\w.]*)", line)
+        if m:
+            assert m.group(1) == "solver", line
+    used = set(re.findall(r"\bsolver\.([A-Za-z_]+)", code))
+    assert used <= set(solver.__all__), used - set(solver.__all__)
+
+
+def test_api_module_docstrings_and_keyword_only_options():
+    api = importlib.import_module("solver.api")
+    for name in api.__all__:
+        obj = getattr(api, name)
+        if inspect.isfunction(obj):
+            assert inspect.getdoc(obj), name
+            params = list(inspect.signature(obj).parameters.values())
+            # options after the leading data / run arguments are keyword-only
+            positional = [p for p in params if p.kind in (p.POSITIONAL_ONLY,
+                                                          p.POSITIONAL_OR_KEYWORD)]
+            assert len(positional) <= 3, (name, positional)
+
+
+# Names that belong to other programs' interfaces and must not appear in our files.
+_FORBIDDEN = ["dual_coef_", "support_vectors_", "n_support_", "intercept_", "coef0",
+              "decision_function", "predict_proba", "nSV", "nBSV", "svm_type", "kernel_type",
+              "total_sv", "nr_class", "nr_sv", "probA", "probB", "fit_status_",
+              "optimization finished", "#iter", "obj = ", "gamma='scale'"]
+_OWNED = ["solver/api.py", "solver/cli.py", "solver/demo.py", "solver/__init__.py",
+          "notebooks/audit_walkthrough.ipynb", "README.md"]
+
+
+@pytest.mark.parametrize("rel", _OWNED)
+def test_owned_files_use_our_own_vocabulary(rel):
+    text = (ROOT / rel).read_text(encoding="utf-8")
+    for word in _FORBIDDEN:
+        assert word not in text, f"{rel} contains {word!r}"
+    # our own attribute names never end in an underscore
+    assert not re.search(r"\.[a-z][a-z0-9_]*[a-z0-9]_\b", text.replace("__", "")), rel
