@@ -339,14 +339,16 @@ def _canonical_labels(values: Any, where: Where, prefix: str, label_name: str) -
 # ---------------------------------------------------------------------------- checks
 
 
-def _check_names(names: Sequence[str], prefix: str, what: str = "column") -> None:
+def _check_names(
+    names: Sequence[str], prefix: str, what: str = "column", whats: str = "columns"
+) -> None:
     seen: dict[str, int] = {}
     for k, name in enumerate(names):
         if not str(name).strip():
             raise InvalidInputError(f"{prefix}{what} {k + 1} has an empty name")
         if name in seen:
             raise InvalidInputError(
-                f"{prefix}{what}s {seen[name] + 1} and {k + 1} are both named {name!r}; "
+                f"{prefix}{whats} {seen[name] + 1} and {k + 1} are both named {name!r}; "
                 "column names must be unique"
             )
         seen[name] = k
@@ -375,7 +377,7 @@ def _select_columns(
                 f"{prefix}no feature column(s) {', '.join(map(repr, missing))}; "
                 f"available columns: {listing}"
             )
-        _check_names(chosen, prefix + "feature_columns: ", what="entry")
+        _check_names(chosen, prefix + "feature_columns: ", what="entry", whats="entries")
         if label is not None and label in chosen:
             raise InvalidInputError(
                 f"{prefix}column {label!r} is the label column and cannot also be a feature"
@@ -641,11 +643,14 @@ def _read_parquet(
     import pyarrow.parquet as pq
 
     try:
-        table = pq.read_table(p)
+        pf = pq.ParquetFile(p)
+        names = [str(c) for c in pf.schema_arrow.names]
+        _check_names(names, prefix)  # before reading: duplicates make column lookup ambiguous
+        table = pf.read()
     except (pa.ArrowException, OSError, ValueError) as exc:
+        if isinstance(exc, InvalidInputError):
+            raise
         raise InvalidInputError(f"{prefix}cannot read as Parquet: {exc}") from None
-    names = [str(c) for c in table.column_names]
-    _check_names(names, prefix)
     chosen = _select_columns(names, label, feature_columns, prefix)
     if table.num_rows == 0:
         raise InvalidInputError(f"{prefix}the table has no data rows")
@@ -684,6 +689,15 @@ def _numpy_error(exc: Exception, prefix: str) -> InvalidInputError:
 
 
 def _load_numpy(p: Path, prefix: str) -> Any:
+    # np.load treats anything without the .npy / zip magic bytes as a pickle: check first
+    with open(p, "rb") as fh:
+        head = fh.read(6)
+    if p.suffix.lower() == ".npy" and head != b"\x93NUMPY":
+        if head[:4] == b"PK\x03\x04":
+            raise InvalidInputError(f"{prefix}the file is a .npz archive; give it the .npz suffix")
+        raise InvalidInputError(f"{prefix}cannot read as NumPy data: no .npy header")
+    if p.suffix.lower() == ".npz" and head[:4] != b"PK\x03\x04":
+        raise InvalidInputError(f"{prefix}cannot read as NumPy data: not a .npz (zip) archive")
     try:
         return np.load(p, allow_pickle=False)
     except ValueError as exc:
@@ -696,8 +710,6 @@ def _read_npy(
     p: Path, prefix: str, label: str | None, feature_columns: Sequence[str] | None,
     min_classes: int,
 ) -> Dataset:
-    if p.suffix.lower() == ".npy" and _is_npz_named_npy(p):
-        raise InvalidInputError(f"{prefix}the file is a .npz archive; give it the .npz suffix")
     arr = _load_numpy(p, prefix)
     if not isinstance(arr, np.ndarray):
         raise InvalidInputError(f"{prefix}expected one array")
@@ -712,11 +724,6 @@ def _read_npy(
     idx = [int(c[3:]) - 1 for c in chosen]
     labels = None if label is None else arr[:, int(label[3:]) - 1]
     return _from_file_arrays(arr[:, idx], labels, chosen, label, p, prefix, min_classes)
-
-
-def _is_npz_named_npy(p: Path) -> bool:
-    with open(p, "rb") as fh:
-        return fh.read(4) == b"PK\x03\x04"
 
 
 def _from_file_arrays(
