@@ -27,8 +27,7 @@ recomputes every trace quantity itself, with cvxopt's own formulas, from that ex
 iterate; the last row comes from the returned solution.  These figures are exact (they
 equal cvxopt's printed progress figures up to rounding; a test checks the final row
 against cvxopt's returned statistics).  If a future cvxopt renames those locals, the
-iterate-based columns are NaN, ``extra["trace_source"]`` says so and only the start and
-final α are stored.
+trace keeps only the final iterate's row and α, and ``extra["trace_source"]`` says so.
 """
 
 from __future__ import annotations
@@ -165,7 +164,8 @@ class _Recorder:
         if keep:
             self.append(it, row, s, z)
         if self.callback is not None:
-            state = {"iteration": it, "alpha": x.copy(), **row}
+            state = {"iteration": it, "alpha": x.copy(), "objective": row["primal_objective"],
+                     **row}
             try:
                 answer = self.callback(state)
             except StopIteration:
@@ -390,8 +390,9 @@ def solve_qp(
     time_limit : seconds; checked once per iteration.
     alpha0 : optional primal starting point for cvxopt (slacks and multipliers start at 1;
         interior-point methods gain little from it).
-    callback : called after every iteration with a mapping (``iteration``, ``alpha`` and the
-        trace quantities); returning True or raising ``StopIteration`` stops the run.
+    callback : called after every iteration with a dict (``iteration``, ``alpha``,
+        ``objective`` and the trace quantities); returning True or raising ``StopIteration``
+        stops the run (status ``stopped_by_callback``, α = that iterate).
 
     Returns
     -------
@@ -469,7 +470,7 @@ def solve_qp(
         text = str(exc)
         if rec.singular is None and "Rank" not in text:
             raise
-        raw_status, detail = "singular", text
+        raw_status, detail = f"error: {text}", rec.singular or ""
 
     iterations = 0
     if sol is not None:
@@ -500,10 +501,9 @@ def solve_qp(
 
     if stop is not None:
         status, detail = stop.status, stop.detail
-    elif raw_status == "singular" or (raw_status == "unknown" and rec.singular is not None):
-        status = Status.SINGULAR_KKT
+    elif raw_status.startswith("error") or (raw_status == "unknown" and rec.singular):
+        status = Status.SINGULAR_KKT  # cvxopt ends a run with 'unknown' on a singular KKT matrix
         detail = detail or rec.singular or "singular KKT matrix"
-        raw_status = f"unknown ({detail})" if raw_status == "unknown" else raw_status
     elif raw_status == "optimal":
         status = Status.CONVERGED
     elif raw_status == "unknown" and iterations >= max_iter:
