@@ -1,0 +1,36 @@
+"""Support-vector explanations: why these points, what each contributes, what happens without them.
+
+* :func:`point_table` — one row per training point: multiplier, margin, slack, KKT residual,
+  category with a plain-language reason, and trace history (first non-zero, last change,
+  times selected).
+* :func:`breakdown` — f(x) split into its largest support-vector contributions and a remainder.
+* :func:`feature_space` — the explicit weight vector where it exists (linear; low-degree
+  polynomial via the explicit feature map) and ‖w‖ = sqrt(αᵀQα) for every kernel.
+* :func:`leave_one_out` — support-vector-count bound, Joachims' ξα-estimate and the exact
+  leave-one-out error from warm-started refits of the support vectors only.
+* :func:`sensitivity` — per support vector, how the training decision values move without it.
+"""
+
+from __future__ import annotations
+
+from ._breakdown import Breakdown, breakdown
+from ._feature_space import MAX_MONOMIALS, FeatureSpaceView, feature_space
+from ._loo import LOO_METHODS, LeaveOneOut, Sensitivity, leave_one_out, sensitivity
+from ._table import CATEGORIES, COLUMNS, PointTable, point_table
+
+__all__ = [
+    "CATEGORIES",
+    "COLUMNS",
+    "LOO_METHODS",
+    "MAX_MONOMIALS",
+    "Breakdown",
+    "FeatureSpaceView",
+    "LeaveOneOut",
+    "PointTable",
+    "Sensitivity",
+    "breakdown",
+    "feature_space",
+    "leave_one_out",
+    "point_table",
+    "sensitivity",
+]

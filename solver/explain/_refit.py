@@ -1,0 +1,232 @@
+"""Refitting a solved problem without one training row (the engine behind leave-one-out).
+
+Removal drops the row, giving a problem with n − 1 variables (an upper bound of 0 instead
+would keep a variable with lᵢ = uᵢ that the certificate's index sets I_up / I_low still
+count as movable).  Two refits are offered:
+
+* :meth:`Refitter.cold` — the whole dropped problem from the solver's default start
+  (brute force).
+* :meth:`Refitter.warm` — warm start from the full solution (see :func:`removal_start`)
+  on a working set: the remaining support vectors, every point whose training margin is
+  below 1 + :data:`WORKING_MARGIN`, and every point the warm start made non-zero.  Points
+  outside it keep α = 0.  The answer is certified on the *whole* dropped problem with
+  :func:`solver.certificate.certify` (maximal violation ≤ tol, the solver's own stopping
+  test); points outside the working set that violate their KKT condition are added and
+  the refit continues from where it stopped — the same idea as shrinking in decomposition
+  methods (common practice), so the result is a converged solution of the dropped problem.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
+from typing import Any, ClassVar
+
+import numpy as np
+
+from ..certificate import certify
+from ..errors import InvalidInputError
+from ..kernels import Kernel
+from ..problem import DualProblem, index_features
+from ..status import Status
+
+__all__ = ["WORKING_MARGIN", "Refit", "Refitter", "drop_row", "removal_start"]
+
+#: Non-support vectors with training margin below 1 + this enter a warm refit's working set.
+WORKING_MARGIN = 0.5
+#: Working-set enlargements before a warm refit falls back to the whole dropped problem.
+MAX_ROUNDS = 4
+_BLOCK = 2048
+
+
+def _as_range(idx: np.ndarray) -> tuple[int, int] | None:
+    if idx.size and int(idx[-1]) - int(idx[0]) == idx.size - 1 and np.all(np.diff(idx) == 1):
+        return int(idx[0]), int(idx[-1]) + 1
+    return None
+
+
+@dataclass(frozen=True, eq=False)
+class _GramRows(Kernel):
+    """Kernel values read from a Gram matrix by row number (``X[:, 0]``), slicing when the
+    rows are a contiguous range.  Internal to refits, never stored or described."""
+
+    name: ClassVar[str] = "gram_rows"
+    gram: np.ndarray = field(default_factory=lambda: np.zeros((0, 0)))
+
+    def block(self, A: np.ndarray, B: np.ndarray) -> np.ndarray:
+        a = np.asarray(A, dtype=np.float64).reshape(len(A), -1)[:, 0].astype(np.intp)
+        b = np.asarray(B, dtype=np.float64).reshape(len(B), -1)[:, 0].astype(np.intp)
+        ra, rb = _as_range(a), _as_range(b)
+        if ra is not None and rb is not None:
+            return self.gram[ra[0] : ra[1], rb[0] : rb[1]].copy()
+        return self.gram[np.ix_(a, b)]
+
+    def diag(self, A: np.ndarray) -> np.ndarray:
+        a = np.asarray(A, dtype=np.float64).reshape(len(A), -1)[:, 0].astype(np.intp)
+        return self.gram[a, a]
+
+
+@dataclass(frozen=True)
+class Refit:
+    """Outcome of one refit: ``alpha`` (n − 1,) over ``keep`` (the kept row numbers),
+    ``bias``, ``status`` label, ``iterations`` summed over rounds, ``rounds`` solver calls,
+    ``working_set`` size of the last working set, ``max_violation`` on the dropped problem."""
+
+    keep: np.ndarray
+    alpha: np.ndarray
+    bias: float
+    status: str
+    iterations: int
+    rounds: int
+    working_set: int
+    max_violation: float
+
+
+def removal_start(
+    problem: DualProblem, alpha: np.ndarray, i: int, krow: np.ndarray | None = None
+) -> np.ndarray:
+    """Feasible warm start (n − 1,) for the problem without row ``i``.
+
+    α without entry i misses yᵢαᵢ in yᵀα = Δ; that amount is given to same-class points
+    in order of decreasing K(xᵢ, xⱼ) up to their upper bounds, then, if their room is
+    exhausted, taken from other-class points (same order) down to their lower bounds.
+    ``krow`` (n,) may supply the kernel row K(xᵢ, ·).
+    """
+    keep = np.delete(np.arange(problem.n), i)
+    a = np.asarray(alpha, dtype=np.float64)[keep].copy()
+    y, lo, up = problem.y[keep], problem.lower[keep], problem.upper[keep]
+    need = problem.delta - float(y @ a)  # amount of yᵀa still missing
+    if need == 0.0:
+        return a
+    if krow is None:
+        krow = problem.kernel_block(np.array([i]), slice(None))[0]
+    order = np.argsort(-np.asarray(krow, dtype=np.float64)[keep], kind="stable")
+    sign = 1.0 if need > 0 else -1.0
+    # raising a point with y = sign, or lowering one with y = −sign, adds sign·step to yᵀa
+    for same in (True, False):
+        cand = order[(y[order] == sign) == same]
+        room = (up[cand] - a[cand]) if same else (a[cand] - lo[cand])
+        take = np.minimum(room, np.maximum(abs(need) - (np.cumsum(room) - room), 0.0))
+        a[cand] += take if same else -take
+        need -= sign * float(take.sum())
+        if abs(need) <= 1e-12 * max(1.0, abs(float(alpha[i]))):
+            return np.clip(a, lo, up)
+    raise InvalidInputError(f"cannot restore feasibility after removing row {i}: "
+                            "the bounds of the remaining points cannot satisfy yᵀα = Δ")
+
+
+class Refitter:
+    """Refits of ``problem`` without one row.  With ``shared_gram`` the n × n Gram matrix is
+    computed once and every refit reads kernel values from it."""
+
+    def __init__(self, problem: DualProblem, solve: Callable[..., Any],
+                 options: Mapping[str, Any], *, shared_gram: bool) -> None:
+        self.problem = problem
+        self.solve = solve
+        self.options = dict(options)
+        self.gram: np.ndarray | None = None
+        if shared_gram:
+            n = problem.n
+            G = np.empty((n, n))
+            for s in range(0, n, _BLOCK):
+                e = min(n, s + _BLOCK)
+                G[s:e] = problem.kernel_block(slice(s, e), slice(None))
+            self.gram = G
+
+    def kernel_block(self, rows: np.ndarray | slice, cols: np.ndarray | slice) -> np.ndarray:
+        """K(x_rows, x_cols) of the original problem."""
+        if self.gram is None:
+            return self.problem.kernel_block(rows, cols)
+        return self.gram[rows][:, cols]
+
+    def _subproblem(self, rows: np.ndarray, *, sliced_gram: int | None = None) -> DualProblem:
+        """The problem restricted to original rows ``rows`` (sorted)."""
+        P = self.problem
+        if self.gram is None:
+            X, kern = P.X[rows], P.kernel
+        elif sliced_gram is not None:
+            # whole problem without row i: copy the Gram once in four blocks (fast slices)
+            i, G, m = sliced_gram, self.gram, P.n - 1
+            sub = np.empty((m, m))
+            sub[:i, :i], sub[:i, i:] = G[:i, :i], G[:i, i + 1 :]
+            sub[i:, :i], sub[i:, i:] = G[i + 1 :, :i], G[i + 1 :, i + 1 :]
+            X, kern = index_features(m), _GramRows(gram=sub)
+        else:
+            X, kern = rows.astype(np.float64)[:, None], _GramRows(gram=self.gram)
+        return DualProblem(X=X, y=P.y[rows], p=P.p[rows], lower=P.lower[rows],
+                           upper=P.upper[rows], delta=P.delta, kernel=kern, kind=P.kind,
+                           info=P.info)
+
+    def cold(self, i: int) -> Refit:
+        """Whole problem without row ``i`` from the solver's default start."""
+        keep = np.delete(np.arange(self.problem.n), i)
+        res = self.solve(self._subproblem(keep, sliced_gram=i), **self.options)
+        return Refit(keep=keep, alpha=np.asarray(res.alpha, np.float64), bias=float(res.bias),
+                     status=res.status.label, iterations=int(res.iterations), rounds=1,
+                     working_set=keep.size, max_violation=float(res.certificate.max_violation))
+
+    def warm(self, i: int, alpha: np.ndarray, margin: np.ndarray) -> Refit:
+        """Problem without row ``i``, warm-started from ``alpha`` (n,) on a working set and
+        certified on the whole dropped problem (module docstring)."""
+        P = self.problem
+        n = P.n
+        keep = np.delete(np.arange(n), i)
+        a = np.zeros(n)
+        a[keep] = removal_start(P, alpha, i, self.kernel_block(np.array([i]), slice(None))[0])
+        inside = (alpha > P.lower) | (a > P.lower) | (margin < 1.0 + WORKING_MARGIN)
+        inside[i] = False
+        # the dropped problem, for the certificate only (its kernel is never evaluated)
+        whole = DualProblem(X=P.X[keep], y=P.y[keep], p=P.p[keep], lower=P.lower[keep],
+                            upper=P.upper[keep], delta=P.delta, kernel=P.kernel, kind=P.kind,
+                            info=P.info)
+        iterations, rounds, fallback = 0, 0, False
+        while True:
+            rounds += 1
+            if fallback or rounds > MAX_ROUNDS:  # the whole dropped problem
+                inside[keep] = True
+            rows = np.flatnonzero(inside)
+            res = self.solve(self._subproblem(rows), alpha0=a[rows], **self.options)
+            iterations += int(res.iterations)
+            a[rows] = res.alpha
+            if res.status != Status.CONVERGED:
+                status, bias = res.status.label, float(res.bias)
+                viol = float(res.certificate.max_violation)
+                break
+            cert = certify(whole, a[keep], tol=float(self.options["tol"]),
+                           gradient=self._gradient(a, keep))
+            viol, bias = float(cert.max_violation), float(cert.bias)
+            if cert.meets_tol:
+                status = Status.CONVERGED.label
+                break
+            if rows.size == keep.size:  # solver converged but the certificate disagrees
+                status = Status.NUMERICAL_ERROR.label
+                break
+            # outside points whose KKT condition fails join the working set
+            bad = keep[(cert.kkt_residual > 0.5 * cert.tol) & ~inside[keep]]
+            inside[bad] = True
+            fallback = bad.size == 0
+        return Refit(keep=keep, alpha=a[keep], bias=bias, status=status, iterations=iterations,
+                     rounds=rounds, working_set=int(inside.sum()), max_violation=viol)
+
+    def _gradient(self, a: np.ndarray, keep: np.ndarray) -> np.ndarray:
+        """G = Qα + p of the dropped problem (n − 1,), from the non-zero multipliers only."""
+        P = self.problem
+        nz = np.flatnonzero(a != 0.0)
+        g = np.zeros(P.n)
+        ay = a[nz] * P.y[nz]
+        for s in range(0, P.n, _BLOCK):
+            e = min(P.n, s + _BLOCK)
+            g[s:e] = self.kernel_block(slice(s, e), nz) @ ay
+        return (P.y * g + P.p)[keep]
+
+
+def drop_row(problem: DualProblem, i: int) -> tuple[DualProblem, np.ndarray]:
+    """The problem without training row ``i`` (same kernel) and the kept row numbers (n − 1,)."""
+    if not 0 <= int(i) < problem.n:
+        raise InvalidInputError(f"row {i} is not a training row (0 … {problem.n - 1})")
+    keep = np.delete(np.arange(problem.n), int(i))
+    P = problem
+    sub = DualProblem(X=P.X[keep], y=P.y[keep], p=P.p[keep], lower=P.lower[keep],
+                      upper=P.upper[keep], delta=P.delta, kernel=P.kernel, kind=P.kind,
+                      info={**P.info, "left_out_row": int(i)})
+    return sub, keep
