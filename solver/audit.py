@@ -68,8 +68,9 @@ class PolynomialFeatureMap:
         so ``features @ features.T`` is the Gram matrix.
     exponents : (m, d) int64 exponent of each feature in each monomial, ordered by total
         degree, then with earlier features first (1, x1, x2, x1², x1·x2, x2², …).
-    weights : (m,) float64 multinomial coefficient × offset and gamma powers (all > 0;
-        monomials of weight 0, which arise when offset = 0, are left out).
+    weights : (m,) float64 multinomial coefficient × offset and gamma powers (≥ 0; the
+        monomials of degree < degree, whose weight is exactly 0 when offset = 0, are left
+        out then; a tiny positive offset may underflow some weights to 0).
     """
 
     features: np.ndarray
