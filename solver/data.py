@@ -45,16 +45,27 @@ import csv
 import functools
 import hashlib
 import json
-import math
 import warnings
 import zipfile
-from collections.abc import Callable, Sequence
+from collections.abc import Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
+from ._intake import (
+    MAX_LISTED,
+    SCALE_RATIO_WARN,
+    Where,
+    canonical_labels,
+    check_finite,
+    check_names,
+    intake_warnings,
+    numeric_column,
+    select_columns,
+    where_index,
+)
 from .errors import DataWarning, InvalidInputError
 
 __all__ = [
@@ -69,19 +80,7 @@ __all__ = [
 
 #: Bumped whenever the canonical encoding behind :func:`fingerprint` changes.
 FINGERPRINT_VERSION = "kktrace-dataset-v1"
-#: Warn when the largest / smallest feature standard deviation exceeds this ratio.
-SCALE_RATIO_WARN = 1e3
 SUPPORTED_SUFFIXES = (".csv", ".parquet", ".pq", ".npy", ".npz")
-#: At most this many examples are named in one message.
-_MAX_LISTED = 5
-
-Where = Callable[[int], str]
-
-
-def _where_index(i: int) -> str:
-    """Row description for array-like sources: 1-based row and 0-based index."""
-    return f"row {i + 1} (index {i})"
-
 
 @dataclass(frozen=True, eq=False)
 class Dataset:
@@ -210,236 +209,6 @@ def fingerprint(dataset: Dataset) -> str:
     return h.hexdigest()
 
 
-# ----------------------------------------------------------------------- value parsing
-
-
-def _parse_number(text: str) -> float | None:
-    """float value of a numeric text cell, None when it is not a number."""
-    try:
-        return float(text)
-    except (TypeError, ValueError):
-        return None
-
-
-def _numeric_column(values: Any, column: str, where: Where, prefix: str) -> np.ndarray:
-    """One feature column as float64 (n,); errors name the row and column."""
-    arr = np.asarray(values)
-    if arr.dtype.kind in "iufb":
-        return arr.astype(np.float64)
-    if arr.dtype.kind == "c":
-        raise InvalidInputError(f"{prefix}column {column!r} holds complex numbers, not real ones")
-    if arr.dtype.kind not in "USO":
-        raise InvalidInputError(
-            f"{prefix}column {column!r} has type {arr.dtype}, not numbers"
-        )
-    out = np.empty(arr.shape[0], dtype=np.float64)
-    for i, v in enumerate(arr.tolist()):
-        if v is None or (isinstance(v, str) and not v.strip()):
-            raise InvalidInputError(
-                f"{prefix}{where(i)}, column {column!r}: empty cell (missing values are not "
-                "allowed; fill or remove the row)"
-            )
-        if isinstance(v, bytes):
-            v = v.decode("utf-8", "replace")
-        if isinstance(v, (bool, np.bool_)):
-            out[i] = float(v)
-            continue
-        if isinstance(v, (int, float, np.integer, np.floating)):
-            out[i] = float(v)
-            continue
-        x = _parse_number(v) if isinstance(v, str) else None
-        if x is None:
-            raise InvalidInputError(
-                f"{prefix}{where(i)}, column {column!r}: {v!r} is not a number (if this column "
-                "is not a feature, leave it out with feature_columns)"
-            )
-        out[i] = x
-    return out
-
-
-def _check_finite(X: np.ndarray, names: Sequence[str], where: Where, prefix: str) -> None:
-    bad = ~np.isfinite(X)
-    if np.any(bad):
-        r, c = (int(v) for v in np.argwhere(bad)[0])
-        what = "NaN" if np.isnan(X[r, c]) else "an infinite value"
-        raise InvalidInputError(
-            f"{prefix}{where(r)}, column {names[c]!r}: {what} ({int(bad.sum())} non-finite "
-            "value(s) in all); every feature value must be a finite number"
-        )
-
-
-def _is_missing(v: Any) -> bool:
-    if v is None:
-        return True
-    if isinstance(v, str):
-        s = v.strip()
-        return not s or (_parse_number(s) is not None and math.isnan(float(s)))
-    if isinstance(v, (float, np.floating)):
-        return math.isnan(float(v))
-    return False
-
-
-def _canonical_labels(values: Any, where: Where, prefix: str, label_name: str) -> np.ndarray:
-    """Canonical label array (int64, float64 or str); see the module notes."""
-    arr = np.asarray(values)
-    if arr.ndim != 1:
-        raise InvalidInputError(f"{prefix}labels must be 1-D, got shape {arr.shape}")
-    what = f"label column {label_name!r}" if label_name else "labels"
-    if arr.dtype.kind == "b":
-        return np.where(arr, "True", "False").astype(str)
-    if arr.dtype.kind in "iu":
-        return arr.astype(np.int64)
-    items = arr.tolist()
-    for i, v in enumerate(items):
-        if _is_missing(v):
-            raise InvalidInputError(
-                f"{prefix}{where(i)}, {what}: label is missing ({v!r}); every row needs a label"
-            )
-    numbers: list[float | int] = []
-    for v in items:
-        if isinstance(v, bytes):
-            v = v.decode("utf-8", "replace")
-        if isinstance(v, (bool, np.bool_)):
-            break
-        if isinstance(v, (int, np.integer)):
-            numbers.append(int(v))
-        elif isinstance(v, (float, np.floating)):
-            numbers.append(float(v))
-        elif isinstance(v, str):
-            s = v.strip()
-            try:
-                numbers.append(int(s))  # exact for long integers
-            except ValueError:
-                x = _parse_number(s)
-                if x is None:
-                    break
-                numbers.append(x)
-        else:
-            break
-    if len(numbers) == len(items):
-        for i, x in enumerate(numbers):
-            if not math.isfinite(x):
-                raise InvalidInputError(
-                    f"{prefix}{where(i)}, {what}: label {items[i]!r} is not a finite value"
-                )
-        if all(float(x).is_integer() for x in numbers):
-            try:
-                return np.array([int(x) for x in numbers], dtype=np.int64)
-            except OverflowError:
-                pass
-        return np.array([float(x) for x in numbers], dtype=np.float64)
-    text = []
-    for v in items:
-        if isinstance(v, bytes):
-            v = v.decode("utf-8", "replace")
-        text.append(str(bool(v)) if isinstance(v, (bool, np.bool_)) else str(v).strip())
-    return np.array(text, dtype=str)
-
-
-# ---------------------------------------------------------------------------- checks
-
-
-def _check_names(
-    names: Sequence[str], prefix: str, what: str = "column", whats: str = "columns"
-) -> None:
-    seen: dict[str, int] = {}
-    for k, name in enumerate(names):
-        if not str(name).strip():
-            raise InvalidInputError(f"{prefix}{what} {k + 1} has an empty name")
-        if name in seen:
-            raise InvalidInputError(
-                f"{prefix}{whats} {seen[name] + 1} and {k + 1} are both named {name!r}; "
-                "column names must be unique"
-            )
-        seen[name] = k
-
-
-def _select_columns(
-    available: Sequence[str], label: str | None, feature_columns: Sequence[str] | None,
-    prefix: str,
-) -> list[str]:
-    listing = ", ".join(repr(c) for c in available)
-    if label is not None and label not in available:
-        raise InvalidInputError(
-            f"{prefix}no label column {label!r}; available columns: {listing}"
-        )
-    if feature_columns is None:
-        chosen = [c for c in available if c != label]
-    else:
-        if isinstance(feature_columns, str):
-            raise InvalidInputError(
-                f"{prefix}feature_columns must be a sequence of column names, not one string"
-            )
-        chosen = [str(c) for c in feature_columns]
-        missing = [c for c in chosen if c not in available]
-        if missing:
-            raise InvalidInputError(
-                f"{prefix}no feature column(s) {', '.join(map(repr, missing))}; "
-                f"available columns: {listing}"
-            )
-        _check_names(chosen, prefix + "feature_columns: ", what="entry", whats="entries")
-        if label is not None and label in chosen:
-            raise InvalidInputError(
-                f"{prefix}column {label!r} is the label column and cannot also be a feature"
-            )
-    if not chosen:
-        raise InvalidInputError(f"{prefix}no feature columns (available columns: {listing})")
-    return chosen
-
-
-def _intake_warnings(
-    X: np.ndarray, labels: np.ndarray | None, names: Sequence[str], where: Where, prefix: str
-) -> list[str]:
-    """Conflicting duplicates, constant features, feature scales differing > 1e3."""
-    out: list[str] = []
-    n = X.shape[0]
-    if labels is not None and n > 1:
-        _, inverse, counts = np.unique(X + 0.0, axis=0, return_inverse=True, return_counts=True)
-        inverse = inverse.reshape(-1)
-        order = np.argsort(inverse, kind="stable")  # rows grouped by identical feature vector
-        starts = np.concatenate(([0], np.cumsum(counts)[:-1]))
-        conflicts = []
-        for g in np.flatnonzero(counts > 1):
-            rows = order[starts[g]:starts[g] + counts[g]]
-            vals = list(dict.fromkeys(labels[rows].tolist()))
-            if len(vals) > 1:
-                conflicts.append((rows, vals))
-        if conflicts:
-            conflicts.sort(key=lambda c: int(c[0][0]))
-            parts = []
-            for rows, vals in conflicts[:_MAX_LISTED]:
-                shown = ", ".join(where(int(r)) for r in rows[:_MAX_LISTED])
-                more = f" and {rows.size - _MAX_LISTED} more" if rows.size > _MAX_LISTED else ""
-                parts.append(f"[{shown}{more}] labelled {', '.join(map(repr, vals))}")
-            extra = len(conflicts) - _MAX_LISTED
-            tail = f"; and {extra} more group(s)" if extra > 0 else ""
-            out.append(
-                f"{prefix}{len(conflicts)} group(s) of rows have identical features but "
-                f"different labels: {'; '.join(parts)}{tail}"
-            )
-    if n > 1:
-        spread = X.max(axis=0) - X.min(axis=0)
-        const = [names[j] for j in np.flatnonzero(spread == 0.0)]
-        if const:
-            out.append(
-                f"{prefix}constant feature column(s) {', '.join(map(repr, const))}: the same value "
-                "in every row, so they carry no information"
-            )
-        sd = X.std(axis=0)
-        live = np.flatnonzero(spread > 0.0)
-        if live.size > 1:
-            hi, lo = live[np.argmax(sd[live])], live[np.argmin(sd[live])]
-            ratio = float(sd[hi] / sd[lo]) if sd[lo] > 0 else math.inf
-            if ratio > SCALE_RATIO_WARN:
-                out.append(
-                    f"{prefix}feature scales differ by a factor of {ratio:.3g} (standard deviation "
-                    f"of {names[hi]!r} is {sd[hi]:.3g}, of {names[lo]!r} is {sd[lo]:.3g}); "
-                    "standardise the features (unscaled data slows SMO and lets the widest "
-                    "column dominate the kernel)"
-                )
-    return out
-
-
 def _build(
     X: np.ndarray, labels: Any, names: Sequence[str], label_name: str | None,
     source: str | None, where: Where, prefix: str, min_classes: int, stacklevel: int = 5,
@@ -454,19 +223,19 @@ def _build(
         raise InvalidInputError(f"{prefix}no data rows")
     if d == 0:
         raise InvalidInputError(f"{prefix}no feature columns")
-    _check_finite(X, names, where, prefix)
+    check_finite(X, names, where, prefix)
     lab = None
     if labels is not None:
-        lab = _canonical_labels(labels, where, prefix, label_name or "")
+        lab = canonical_labels(labels, where, prefix, label_name or "")
         classes = list(dict.fromkeys(lab.tolist()))
         if len(classes) < min_classes:
             what = f"label column {label_name!r}" if label_name else "the labels"
-            found = ", ".join(map(repr, classes[:_MAX_LISTED]))
+            found = ", ".join(map(repr, classes[:MAX_LISTED]))
             raise InvalidInputError(
                 f"{prefix}{what} has {len(classes)} distinct value(s) ({found} in all {n} rows); "
                 f"at least {min_classes} classes are needed"
             )
-    found_warnings = _intake_warnings(X, lab, names, where, prefix)
+    found_warnings = intake_warnings(X, lab, names, where, prefix)
     for w in found_warnings:
         warnings.warn(w, DataWarning, stacklevel=stacklevel)
     return Dataset(
@@ -491,9 +260,10 @@ def from_arrays(
 
     Parameters
     ----------
-    X : (n, d) numbers (or text that reads as numbers).
+    X : (n, d) numbers (or text that reads as numbers); a table object with a
+        ``columns`` attribute (e.g. a pandas DataFrame) also gives the feature names.
     labels : (n,) label values, or None for query data.
-    feature_names : d unique names; default ``col1`` … ``cold``.
+    feature_names : d unique names; default the table's columns, else ``col1`` … ``cold``.
     label_name : name of the label column (recorded and fingerprinted).
     source : where the arrays came from, for messages and the record.
     min_classes : fewest distinct labels accepted (2 for training; 1 for labelled
@@ -504,10 +274,12 @@ def from_arrays(
     if arr.ndim != 2:
         raise InvalidInputError(f"{prefix}X must be 2-D (rows, features), got shape {arr.shape}")
     n, d = arr.shape
+    if feature_names is None and getattr(X, "columns", None) is not None:
+        feature_names = [str(c) for c in X.columns]
     names = _default_names(d) if feature_names is None else [str(c) for c in feature_names]
     if len(names) != d:
         raise InvalidInputError(f"{prefix}{len(names)} feature names given for {d} columns of X")
-    _check_names(names, prefix)
+    check_names(names, prefix)
     if label_name is not None and label_name in names:
         raise InvalidInputError(f"{prefix}label name {label_name!r} is also a feature name")
     if arr.dtype.kind in "iufb":
@@ -515,7 +287,7 @@ def from_arrays(
     else:
         Xf = np.empty((n, d), dtype=np.float64)
         for j in range(d):
-            Xf[:, j] = _numeric_column(arr[:, j], names[j], _where_index, prefix)
+            Xf[:, j] = numeric_column(arr[:, j], names[j], where_index, prefix)
     if labels is not None:
         lab = np.asarray(labels)
         if lab.ndim != 1 or lab.shape[0] != n:
@@ -524,7 +296,7 @@ def from_arrays(
                 "give one label per row"
             )
     return _build(
-        Xf, labels, names, label_name, source, _where_index, prefix, min_classes, stacklevel=3
+        Xf, labels, names, label_name, source, where_index, prefix, min_classes, stacklevel=3
     )
 
 
@@ -614,8 +386,8 @@ def _read_csv(
         raise InvalidInputError(
             f"{prefix}the file is empty (a header row of column names is needed)"
         )
-    _check_names(header, prefix)
-    chosen = _select_columns(header, label, feature_columns, prefix)
+    check_names(header, prefix)
+    chosen = select_columns(header, label, feature_columns, prefix)
     if not rows:
         raise InvalidInputError(f"{prefix}the file has a header but no data rows")
 
@@ -630,7 +402,7 @@ def _read_csv(
         try:  # fast path; the slow path below finds the offending cell
             X[:, j] = raw.astype(str).astype(np.float64)
         except ValueError:
-            X[:, j] = _numeric_column(raw, c, where, prefix)
+            X[:, j] = numeric_column(raw, c, where, prefix)
     labels = None if label is None else cells[:, col[label]]
     return _build(X, labels, chosen, label, str(p), where, prefix, min_classes, stacklevel=4)
 
@@ -645,13 +417,13 @@ def _read_parquet(
     try:
         pf = pq.ParquetFile(p)
         names = [str(c) for c in pf.schema_arrow.names]
-        _check_names(names, prefix)  # before reading: duplicates make column lookup ambiguous
+        check_names(names, prefix)  # before reading: duplicates make column lookup ambiguous
         table = pf.read()
     except (pa.ArrowException, OSError, ValueError) as exc:
         if isinstance(exc, InvalidInputError):
             raise
         raise InvalidInputError(f"{prefix}cannot read as Parquet: {exc}") from None
-    chosen = _select_columns(names, label, feature_columns, prefix)
+    chosen = select_columns(names, label, feature_columns, prefix)
     if table.num_rows == 0:
         raise InvalidInputError(f"{prefix}the table has no data rows")
     X = np.empty((table.num_rows, len(chosen)), dtype=np.float64)
@@ -661,21 +433,21 @@ def _read_parquet(
         if column.null_count:
             i = int(np.flatnonzero(column.is_null().to_numpy(zero_copy_only=False))[0])
             raise InvalidInputError(
-                f"{prefix}{_where_index(i)}, column {c!r}: missing value (null); "
+                f"{prefix}{where_index(i)}, column {c!r}: missing value (null); "
                 "fill or remove the row"
             )
         if pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_boolean(t):
             X[:, j] = column.to_numpy().astype(np.float64)
         elif pa.types.is_decimal(t) or pa.types.is_string(t) or pa.types.is_large_string(t):
             vals = np.array([str(v) for v in column.to_pylist()], dtype=object)
-            X[:, j] = _numeric_column(vals, c, _where_index, prefix)
+            X[:, j] = numeric_column(vals, c, where_index, prefix)
         else:
             raise InvalidInputError(f"{prefix}column {c!r} has type {t}, not numbers")
     labels = None
     if label is not None:
         labels = np.array(table.column(label).to_pylist(), dtype=object)
     return _build(
-        X, labels, chosen, label, str(p), _where_index, prefix, min_classes, stacklevel=4
+        X, labels, chosen, label, str(p), where_index, prefix, min_classes, stacklevel=4
     )
 
 
@@ -718,7 +490,7 @@ def _read_npy(
             f"{prefix}expected a 2-D array (rows, columns), got shape {arr.shape}"
         )
     names = _default_names(arr.shape[1])
-    chosen = _select_columns(names, label, feature_columns, prefix)
+    chosen = select_columns(names, label, feature_columns, prefix)
     if arr.shape[0] == 0:
         raise InvalidInputError(f"{prefix}the array has no data rows")
     idx = [int(c[3:]) - 1 for c in chosen]
@@ -735,8 +507,8 @@ def _from_file_arrays(
     else:
         Xf = np.empty(X.shape, dtype=np.float64)
         for j, c in enumerate(names):
-            Xf[:, j] = _numeric_column(X[:, j], c, _where_index, prefix)
-    return _build(Xf, labels, names, label, str(p), _where_index, prefix, min_classes)
+            Xf[:, j] = numeric_column(X[:, j], c, where_index, prefix)
+    return _build(Xf, labels, names, label, str(p), where_index, prefix, min_classes)
 
 
 def _text_entry(v: np.ndarray, what: str, prefix: str) -> list[str]:
@@ -797,10 +569,10 @@ def _read_npz(
         raise InvalidInputError(
             f"{prefix}'feature_names' has {len(all_names)} names but 'X' has {X.shape[1]} columns"
         )
-    _check_names(all_names, prefix)
+    check_names(all_names, prefix)
     if label is not None and label in all_names:
         raise InvalidInputError(f"{prefix}label name {label!r} is also a feature name")
-    chosen = _select_columns(all_names, None, feature_columns, prefix)
+    chosen = select_columns(all_names, None, feature_columns, prefix)
     if labels is not None and (labels.ndim != 1 or labels.shape[0] != X.shape[0]):
         raise InvalidInputError(
             f"{prefix}label array {label_key!r} has shape {labels.shape} but 'X' has "

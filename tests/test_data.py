@@ -124,6 +124,15 @@ def test_label_canonicalisation(raw, expected, dtype):
     assert np.issubdtype(ds.labels.dtype, dtype)
 
 
+def test_dataframe_columns_become_feature_names():
+    import pandas as pd
+
+    df = pd.DataFrame({"thickness": [1.0, 2.0, 3.0], "moisture": [0.1, 0.3, 0.2]})
+    ds = from_arrays(df, ["a", "b", "a"])
+    assert ds.feature_names == ("thickness", "moisture")
+    np.testing.assert_array_equal(ds.X, df.to_numpy())
+
+
 def test_min_classes_one_for_evaluation_data():
     ds = from_arrays(np.eye(3), ["a", "a", "a"], min_classes=1)
     assert ds.labels.tolist() == ["a"] * 3
