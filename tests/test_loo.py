@@ -1,0 +1,274 @@
+"""Leave-one-out bounds, exact leave-one-out from support-vector refits, sensitivity.
+
+Published facts used as checks (sources named; exact sections from memory):
+
+* Removing a training point that is not a support vector and retraining leaves the
+  solution unchanged (Vapnik, The Nature of Statistical Learning Theory, 1995, and
+  Statistical Learning Theory, 1998; Schölkopf & Smola, Learning with Kernels, 2002,
+  chapter on leave-one-out bounds — from memory).  Consequence: leave-one-out errors ≤ #SV.
+* Joachims (2000), "Estimating the generalization performance of a SVM efficiently",
+  ICML: the ξα-estimate |{i : 2αᵢR²_Δ + ξᵢ ≥ 1}| / n bounds the leave-one-out error rate.
+"""
+
+from __future__ import annotations
+
+import warnings
+
+import numpy as np
+import pytest
+from sklearn.datasets import load_breast_cancer, load_iris, load_wine
+from sklearn.model_selection import LeaveOneOut as SkLeaveOneOut
+from sklearn.model_selection import cross_val_predict
+from sklearn.svm import SVC
+
+from solver.certificate import certify
+from solver.errors import ConvergenceWarning, InvalidInputError
+from solver.explain import _refit as refit_mod
+from solver.explain import leave_one_out, sensitivity
+from solver.explain._refit import Refitter, drop_row, removal_start
+from solver.kernels import RBFKernel
+from solver.model import Standardiser
+from solver.problem import binary_classification
+from solver.smo import solve_smo
+
+TOL = 1e-7  # tight solver tolerance so that tolerance-level differences stay far below signs
+
+
+def _problem(loader, a, b, *, gamma=None, C=1.0, rows=None, kernel=None):
+    """Classes a vs b of a scikit-learn bundled dataset, standardised."""
+    X, t = loader(return_X_y=True)
+    m = (t == a) | (t == b)
+    X, t = X[m], t[m]
+    if rows is not None:
+        X, t = X[rows], t[rows]
+    Z = Standardiser.fit(X).transform(X)
+    kern = kernel if kernel is not None else RBFKernel(gamma=gamma)
+    return binary_classification(Z, t, kernel=kern, C=C)
+
+
+def _solve(prob, tol=TOL):
+    res = solve_smo(prob, tol=tol, trace="off")
+    assert res.success, res.message
+    return res
+
+
+def _decisions(prob, res):
+    return prob.y * prob.q_times(res.alpha) + res.bias
+
+
+DATASETS = {
+    # name: (loader, class a, class b, gamma, C, rows)
+    "iris_versicolor_virginica": (load_iris, 1, 2, 0.5, 1.0, None),
+    "iris_setosa_versicolor": (load_iris, 0, 1, 0.2, 10.0, None),
+    "wine_0_1": (load_wine, 0, 1, 0.1, 1.0, None),
+    "wine_1_2": (load_wine, 1, 2, None, 3.0, None),
+    "breast_cancer_subset": (load_breast_cancer, 0, 1, 0.05, 2.0, slice(0, 150)),
+}
+
+
+@pytest.fixture(scope="module", params=sorted(DATASETS))
+def solved(request):
+    loader, a, b, gamma, C, rows = DATASETS[request.param]
+    prob = _problem(loader, a, b, gamma=gamma, C=C, rows=rows)
+    return request.param, prob, _solve(prob)
+
+
+def test_removing_a_non_support_vector_changes_nothing(solved):
+    # published property (Vapnik 1995/1998; Schölkopf & Smola 2002): retraining without a
+    # non-support vector reproduces every decision value — here with cold refits
+    name, prob, res = solved
+    f = _decisions(prob, res)
+    non_sv = np.flatnonzero(res.certificate.at_lower)
+    assert non_sv.size > 0
+    pick = non_sv[np.linspace(0, non_sv.size - 1, min(6, non_sv.size)).astype(int)]
+    for i in pick:
+        sub, keep = drop_row(prob, int(i))
+        r = _solve(sub)
+        f_sub = prob.kernel.block(prob.X, sub.X) @ (r.alpha * sub.y) + r.bias
+        np.testing.assert_allclose(f_sub, f, atol=1e-4, err_msg=f"{name}: row {i}")
+
+
+def test_non_support_vector_property_with_reference_solver():
+    # the same published property checked with an independent solver (scikit-learn SVC)
+    prob = _problem(load_wine, 0, 1, gamma=0.1, C=1.0)
+    svc = SVC(kernel="rbf", gamma=0.1, C=1.0, tol=1e-10).fit(prob.X, prob.y)
+    f = svc.decision_function(prob.X)
+    non_sv = np.setdiff1d(np.arange(prob.n), svc.support_)
+    for i in non_sv[:: max(1, non_sv.size // 5)]:
+        keep = np.delete(np.arange(prob.n), i)
+        s2 = SVC(kernel="rbf", gamma=0.1, C=1.0, tol=1e-10).fit(prob.X[keep], prob.y[keep])
+        np.testing.assert_allclose(s2.decision_function(prob.X), f, atol=1e-6)
+
+
+def test_exact_loo_equals_brute_force_and_bounds_hold(solved):
+    name, prob, res = solved
+    fast = leave_one_out(prob, res)
+    brute = leave_one_out(prob, res, method="brute_force")
+    assert fast.all_converged and brute.all_converged
+    assert fast.refits == fast.n_support < prob.n == brute.refits
+    np.testing.assert_array_equal(fast.loo_wrong, brute.loo_wrong, err_msg=name)
+    assert fast.errors == brute.errors
+    np.testing.assert_allclose(fast.loo_values, brute.loo_values, atol=1e-4)
+    # both bounds are upper bounds of the exact leave-one-out error (Vapnik; Joachims 2000)
+    assert fast.sv_bound >= fast.error_rate
+    assert fast.xi_alpha_estimate >= fast.error_rate
+    assert fast.xi_alpha_estimate <= fast.sv_bound  # ξα only counts support vectors
+    # sensitivity from either record agrees on the flips
+    s_fast = sensitivity(prob, res, loo=fast)
+    s_brute = sensitivity(prob, res, loo=brute)
+    np.testing.assert_array_equal(s_fast.rows, s_brute.rows)
+    np.testing.assert_allclose(s_fast.max_abs_change, s_brute.max_abs_change, atol=1e-4)
+
+
+def test_exact_loo_matches_reference_library():
+    # external check: scikit-learn's leave-one-out predictions with SVC on the same problem
+    prob = _problem(load_iris, 1, 2, gamma=0.5, C=1.0)
+    loo = leave_one_out(prob, _solve(prob))
+    pred = cross_val_predict(SVC(kernel="rbf", gamma=0.5, C=1.0, tol=1e-10), prob.X, prob.y,
+                             cv=SkLeaveOneOut())
+    np.testing.assert_array_equal(loo.loo_wrong, pred != prob.y)
+    assert loo.errors == int(np.sum(pred != prob.y)) > 0
+
+
+def test_non_support_vectors_are_never_loo_errors(solved):
+    _, prob, res = solved
+    loo = leave_one_out(prob, res)
+    assert not np.any(loo.loo_wrong[res.certificate.at_lower])
+    # a training error stays a leave-one-out error: comparing the two optimal objectives
+    # gives hinge(yᵢf(xᵢ)) ≤ hinge(yᵢf₋ᵢ(xᵢ)), so yᵢf₋ᵢ(xᵢ) ≤ yᵢf(xᵢ) < 0 (common practice)
+    f = _decisions(prob, res)
+    train_wrong = (f > 0) != (prob.y > 0)
+    assert np.all(loo.loo_wrong[train_wrong])
+
+
+def test_removal_start_is_feasible_and_prefers_same_class():
+    prob = _problem(load_wine, 0, 1, gamma=0.1, C=1.0)
+    res = _solve(prob)
+    for i in np.flatnonzero(~res.certificate.at_lower)[:10]:
+        sub, keep = drop_row(prob, int(i))
+        a0 = removal_start(prob, res.alpha, int(i))
+        bound, eq = sub.feasibility(a0)
+        assert bound == 0.0 and eq < 1e-12
+        moved = a0 - res.alpha[keep]
+        same = sub.y == prob.y[i]
+        room_same = float((sub.upper - res.alpha[keep])[same].sum())
+        if room_same >= res.alpha[i]:
+            assert np.all(moved[~same] == 0.0) and np.all(moved >= 0.0)
+            assert moved[same].sum() == pytest.approx(res.alpha[i])
+        # the most similar same-class point (largest kernel value) is filled first
+        k = prob.kernel.block(prob.X[i], sub.X)[0]
+        if room_same > 0:
+            best = np.flatnonzero(same & (sub.upper > res.alpha[keep]))
+            assert moved[best[np.argmax(k[best])]] > 0
+
+
+def test_removal_start_falls_back_to_other_class():
+    # three points of class +1 all at the bound C: the same class has no room, so the
+    # multiplier of the removed point is taken from the other class, nearest point first
+    X = np.array([[0.0], [0.1], [0.2], [1.0], [1.1], [3.0]])
+    prob = binary_classification(X, np.array([1, 1, 1, -1, -1, -1]), kernel=RBFKernel(gamma=1.0),
+                                 C=1.0)
+    alpha = np.array([1.0, 1.0, 1.0, 1.0, 1.0, 1.0])
+    a0 = removal_start(prob, alpha, 0)
+    sub, _ = drop_row(prob, 0)
+    assert sub.feasibility(a0) == (0.0, 0.0)
+    np.testing.assert_allclose(a0, [1.0, 1.0, 0.0, 1.0, 1.0])  # nearest other-class: x = 1.0
+
+
+def test_working_set_growth_and_fallback_stay_exact(monkeypatch):
+    # shrink the working set to the support vectors only, so refits must add points that
+    # become support vectors; then forbid growth so the whole-problem fallback runs
+    prob = _problem(load_breast_cancer, 0, 1, gamma=0.05, C=10.0, rows=slice(0, 120))
+    res = _solve(prob)
+    f = _decisions(prob, res)
+    sv = np.flatnonzero(~res.certificate.at_lower)
+    ref = Refitter(prob, solve_smo, {"tol": TOL, "trace": "off"}, shared_gram=True)
+    monkeypatch.setattr(refit_mod, "WORKING_MARGIN", -1.0)
+    grown = [ref.warm(int(i), res.alpha, prob.y * f) for i in sv[:12]]
+    assert any(g.rounds > 1 for g in grown)
+    monkeypatch.setattr(refit_mod, "MAX_ROUNDS", 1)
+    fell_back = [ref.warm(int(i), res.alpha, prob.y * f) for i in sv[:12]]
+    for g, h, i in zip(grown, fell_back, sv[:12], strict=True):
+        cold = ref.cold(int(i))
+        assert g.status == h.status == cold.status == "converged"
+        sub, _ = drop_row(prob, int(i))
+        for r in (g, h):
+            assert certify(sub, r.alpha, tol=TOL).max_violation <= TOL
+        np.testing.assert_allclose(g.alpha, cold.alpha, atol=1e-4)
+
+
+def test_shared_gram_off_gives_same_answer():
+    prob = _problem(load_iris, 1, 2, gamma=0.5, C=1.0)
+    res = _solve(prob)
+    a = leave_one_out(prob, res)
+    b = leave_one_out(prob, res, shared_gram_mb=0.0)
+    np.testing.assert_array_equal(a.loo_wrong, b.loo_wrong)
+    np.testing.assert_allclose(a.loo_values, b.loo_values, atol=1e-9)
+
+
+def test_non_converged_refits_are_reported():
+    prob = _problem(load_iris, 1, 2, gamma=0.5, C=1.0)
+    res = _solve(prob)
+    with pytest.warns(ConvergenceWarning, match="did not converge"):
+        loo = leave_one_out(prob, res, method="brute_force", solver_options={"max_iter": 2})
+    assert not loo.all_converged
+    assert loo.non_converged_rows.size == sum(s != "converged" for s in loo.refit_status) > 0
+    assert "iteration_limit" in loo.refit_status
+    assert loo.to_dict()["non_converged"] == loo.non_converged_rows.size
+    sens = sensitivity(prob, res, loo=loo)
+    assert not sens.converged.all()
+
+
+def test_progress_summary_and_columns():
+    prob = _problem(load_wine, 0, 1, gamma=0.1, C=1.0)
+    res = _solve(prob)
+    seen = []
+    loo = leave_one_out(prob, res, progress=lambda d, t: seen.append((d, t)))
+    assert seen == [(k + 1, loo.refits) for k in range(loo.refits)]
+    d = loo.to_dict()
+    assert d["refits"] == loo.n_support and d["estimated_brute_force_seconds"] > 0
+    assert d["xi_alpha_r2"] == pytest.approx(1.0 - prob.kernel.gram(prob.X).min())
+    cols = loo.to_columns()
+    assert cols["refitted"].sum() == loo.refits
+    assert loo.seconds > 0 and loo.refit_seconds.size == loo.refits
+
+
+def test_sensitivity_matches_a_direct_refit():
+    prob = _problem(load_wine, 0, 1, gamma=0.1, C=1.0)
+    res = _solve(prob)
+    f = _decisions(prob, res)
+    sens = sensitivity(prob, res)
+    assert sens.rows.size == res.certificate.n_support
+    first = sens.top(3)
+    assert [r["row_id"] for r in first] == sens.ranking[:3].tolist()
+    keyed = [(-r["flips"], -r["max_abs_change"]) for r in sens.top(sens.rows.size)]
+    assert keyed == sorted(keyed)
+    i = int(sens.ranking[0])
+    sub, keep = drop_row(prob, i)
+    r = _solve(sub)
+    f_sub = prob.kernel.block(prob.X, sub.X) @ (r.alpha * sub.y) + r.bias
+    change = np.abs(f_sub - f)[keep]
+    assert first[0]["max_abs_change"] == pytest.approx(change.max(), abs=1e-4)
+    flips = int(np.sum(((f_sub > 0) != (prob.y > 0))[keep] != ((f > 0) != (prob.y > 0))[keep]))
+    assert first[0]["flips"] == flips
+    cols = sens.to_columns()
+    assert sorted(cols["rank"].tolist()) == list(range(1, sens.rows.size + 1))
+
+
+def test_bad_requests():
+    prob = _problem(load_iris, 1, 2, gamma=0.5, C=1.0)
+    res = _solve(prob)
+    with pytest.raises(InvalidInputError, match="method"):
+        leave_one_out(prob, res, method="fast")
+    with pytest.raises(InvalidInputError, match="alpha0"):
+        leave_one_out(prob, res, solver_options={"alpha0": res.alpha})
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ConvergenceWarning)
+        stopped = solve_smo(prob, tol=TOL, max_iter=3, trace="off")
+    with pytest.raises(InvalidInputError, match="converged solution"):
+        leave_one_out(prob, stopped)
+    with pytest.raises(InvalidInputError, match="not a training row"):
+        drop_row(prob, prob.n)
+    other = _problem(load_wine, 0, 1, gamma=0.1)
+    with pytest.raises(InvalidInputError, match="rows"):
+        sensitivity(other, _solve(other), loo=leave_one_out(prob, res))
