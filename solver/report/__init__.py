@@ -1,0 +1,106 @@
+"""Convergence and audit reports from stored runs: HTML, PDF and JSON.
+
+>>> paths = write_report([record], "out", formats=("html", "json"))   # doctest: +SKIP
+
+All three formats are rendered from one :class:`ReportContent` built by
+:func:`build_report_content`, so they always carry the same figures.  Every report ends
+with the standing caution :data:`CAUTION`.
+"""
+
+from __future__ import annotations
+
+import os
+import tempfile
+from collections.abc import Mapping, Sequence
+from pathlib import Path
+from typing import Any
+
+from ..errors import InvalidInputError
+from ..run import RunRecord
+from .content import CAUTION, Flag, ReportContent, build_report_content
+
+__all__ = [
+    "CAUTION",
+    "FORMATS",
+    "Flag",
+    "ReportContent",
+    "build_report_content",
+    "write_report",
+    "render_report",
+]
+
+#: Output formats and their file suffixes.
+FORMATS: dict[str, str] = {"html": ".html", "pdf": ".pdf", "json": ".json"}
+
+
+def render_report(content: ReportContent, fmt: str) -> bytes:
+    """One format of the report as bytes (``"html"``, ``"pdf"`` or ``"json"``)."""
+    if fmt == "html":
+        from .html import render_html
+
+        return render_html(content).encode("utf-8")
+    if fmt == "json":
+        from .summary import summary_json
+
+        return summary_json(content).encode("utf-8")
+    if fmt == "pdf":
+        import io
+
+        from .pdf import render_pdf
+
+        buf = io.BytesIO()
+        render_pdf(content, buf)
+        return buf.getvalue()
+    raise InvalidInputError(f"unknown report format {fmt!r}; choose from {', '.join(FORMATS)}")
+
+
+def _atomic_write(path: Path, data: bytes) -> None:
+    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
+    try:
+        with os.fdopen(fd, "wb") as fh:
+            fh.write(data)
+        umask = os.umask(0)
+        os.umask(umask)
+        os.chmod(tmp, 0o666 & ~umask)  # mkstemp creates 0600; reports are ordinary files
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+
+
+def write_report(
+    runs: Sequence[RunRecord],
+    out_dir: str | Path,
+    *,
+    formats: Sequence[str] = ("html", "pdf", "json"),
+    comparison: Any | Mapping | None = None,
+    notes: str | None = None,
+    stem: str = "report",
+    holdout: Mapping | None = None,
+) -> dict[str, Path]:
+    """Write the report for ``runs`` into ``out_dir`` as ``<stem>.html`` / ``.pdf`` / ``.json``.
+
+    All formats are rendered in memory first and each file is written atomically, so a
+    failure leaves no half-written report.  Returns format → path.
+    """
+    formats = tuple(formats)
+    unknown = [f for f in formats if f not in FORMATS]
+    if unknown or not formats:
+        raise InvalidInputError(
+            f"unknown report format(s) {', '.join(map(repr, unknown)) or '(none given)'}; "
+            f"choose from {', '.join(FORMATS)}"
+        )
+    if not stem or "/" in stem or "\\" in stem or stem.startswith("."):
+        raise InvalidInputError(f"report file stem {stem!r} must be a plain file name")
+    out = Path(out_dir)
+    if out.exists() and not out.is_dir():
+        raise InvalidInputError(f"report folder {str(out)!r} exists and is not a folder")
+    content = build_report_content(runs, comparison=comparison, holdout=holdout, notes=notes)
+    rendered = {f: render_report(content, f) for f in formats}
+    out.mkdir(parents=True, exist_ok=True)
+    paths = {}
+    for f, data in rendered.items():
+        p = out / f"{stem}{FORMATS[f]}"
+        _atomic_write(p, data)
+        paths[f] = p
+    return paths

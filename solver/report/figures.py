@@ -1,0 +1,422 @@
+"""Drawing: :class:`~.content.FigureData` → matplotlib figures → inline SVG or PDF pages.
+
+Uses only ``matplotlib.figure.Figure`` (no pyplot, no global style change): every drawing
+runs inside :func:`style`, a local rc context with the kktrace look — warm paper, dotted
+grid, left-aligned titles and our own palette (:data:`PALETTE`).  Text taken from the
+user's data (feature names, label values, categories) passes through :func:`plain_text`
+so that matplotlib does not interpret ``$`` as mathematics; matplotlib's SVG writer escapes
+``<``, ``>`` and ``&`` itself (checked in the tests).
+"""
+
+from __future__ import annotations
+
+import io
+import re
+from collections.abc import Iterator, Mapping
+from contextlib import contextmanager
+from typing import Any
+
+import matplotlib
+import numpy as np
+from cycler import cycler
+from matplotlib.figure import Figure, SubFigure
+from matplotlib.lines import Line2D
+from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
+from matplotlib.transforms import blended_transform_factory
+
+from .content import FigureData
+
+__all__ = ["PALETTE", "style", "plain_text", "draw", "render_figure", "figure_svg", "svg_text"]
+
+#: The report palette (names are ours).  Ink and paper are for text and background.
+PALETTE: dict[str, str] = {
+    "ink": "#1d2a33",
+    "paper": "#fffdf7",
+    "grid": "#d9d2c1",
+    "muted": "#7d8489",
+    "tide": "#1f6f78",
+    "rust": "#b0472a",
+    "mustard": "#c8961e",
+    "heather": "#6b5b95",
+    "pine": "#3f7a4a",
+    "oxblood": "#8e1f2f",
+    "tint_neg": "#dcebec",
+    "tint_pos": "#f5e1d8",
+}
+LINE_COLOURS = ("tide", "rust", "heather", "mustard", "pine", "oxblood")
+CLASS_COLOURS = ("tide", "rust")  # label mapped to −1, label mapped to +1
+EVENT_COLOURS = {"shrink": "mustard", "reconstruct": "heather", "curvature_fix": "oxblood"}
+
+_STYLE: dict[str, Any] = {
+    "font.family": "DejaVu Sans",
+    "font.size": 8.0,
+    "text.color": PALETTE["ink"],
+    "axes.labelcolor": PALETTE["ink"],
+    "axes.edgecolor": PALETTE["ink"],
+    "axes.linewidth": 0.6,
+    "axes.facecolor": PALETTE["paper"],
+    "axes.spines.top": False,
+    "axes.spines.right": False,
+    "axes.grid": True,
+    "axes.axisbelow": True,
+    "axes.titlesize": 8.5,
+    "axes.titleweight": "bold",
+    "axes.titlelocation": "left",
+    "axes.titlepad": 4.0,
+    "axes.prop_cycle": cycler(color=[PALETTE[c] for c in LINE_COLOURS]),
+    "grid.color": PALETTE["grid"],
+    "grid.linewidth": 0.5,
+    "grid.linestyle": (0, (1, 2)),
+    "xtick.color": PALETTE["ink"],
+    "ytick.color": PALETTE["ink"],
+    "xtick.direction": "in",
+    "ytick.direction": "in",
+    "xtick.labelsize": 7.0,
+    "ytick.labelsize": 7.0,
+    "legend.frameon": False,
+    "legend.fontsize": 7.0,
+    "legend.handlelength": 1.6,
+    "lines.linewidth": 1.0,
+    "figure.facecolor": PALETTE["paper"],
+    "savefig.facecolor": PALETTE["paper"],
+    "svg.fonttype": "none",
+    "svg.hashsalt": "kktrace-report",
+    "pdf.fonttype": 42,
+    "path.simplify": True,
+}
+
+#: Size of one figure in the HTML report, inches.
+FIG_SIZE = (6.4, 2.7)
+FIG_SIZE_TALL = (6.4, 3.6)
+MAP_SIZE = (5.2, 4.4)
+
+
+@contextmanager
+def style() -> Iterator[None]:
+    """The kktrace drawing style, as a local rc context."""
+    with matplotlib.rc_context(_STYLE):
+        yield
+
+
+def plain_text(s: Any, limit: int = 60) -> str:
+    """User text made safe for matplotlib: ``$`` escaped (no mathtext), long text shortened."""
+    t = str(s)
+    if len(t) > limit:
+        t = t[: limit - 1] + "…"
+    return t.replace("$", r"\$")
+
+
+def _c(name: str) -> str:
+    return PALETTE[name]
+
+
+_SUPERSCRIPT = str.maketrans("-0123456789", "⁻⁰¹²³⁴⁵⁶⁷⁸⁹")
+
+
+def _pow10(v: float, _pos: int) -> str:
+    """Tick label 10ⁿ with Unicode superscripts (no mathtext parsing, which is slow)."""
+    if not v > 0:
+        return ""
+    e = np.log10(v)
+    r = int(round(e))
+    return f"10{str(r).translate(_SUPERSCRIPT)}" if abs(e - r) < 1e-9 else ""
+
+
+def _count(v: float, _pos: int) -> str:
+    """Tick label for counts and iterations: integers with thin-space thousands."""
+    if abs(v - round(v)) > 1e-9:
+        return f"{v:g}"
+    return f"{int(round(v)):,}".replace(",", "\u2009")
+
+
+def _log_y(ax: Any) -> None:
+    ax.set_yscale("log")
+    ax.yaxis.set_major_locator(LogLocator(base=10.0, numticks=7))
+    ax.yaxis.set_major_formatter(FuncFormatter(_pow10))
+    ax.yaxis.set_minor_formatter(NullFormatter())
+
+
+def _iter_x(ax: Any, label: str = "iteration") -> None:
+    ax.xaxis.set_major_formatter(FuncFormatter(_count))
+    ax.set_xlabel(label)
+
+
+def _event_marks(ax: Any, events: Mapping[str, np.ndarray], handles: list) -> None:
+    """Short ticks along the top edge at each event iteration, one row per event kind."""
+    trans = blended_transform_factory(ax.transData, ax.transAxes)
+    for k, (name, its) in enumerate(sorted(events.items())):
+        if len(its) == 0:
+            continue
+        colour = _c(EVENT_COLOURS.get(name, "muted"))
+        top = 1.0 - 0.05 * k
+        ax.vlines(its, top - 0.05, top, transform=trans, colors=colour, linewidth=0.8)
+        handles.append(Line2D([], [], color=colour, marker="|", linestyle="none",
+                              markersize=7, label=f"{plain_text(name)} event"))
+
+
+def _legend_above(ax: Any, handles: list) -> None:
+    """Legend in one band above the axes, left-aligned, so it never covers data."""
+    if handles:
+        ax.legend(handles=handles, loc="lower left", bbox_to_anchor=(0.0, 1.01),
+                  ncol=min(len(handles), 4), borderaxespad=0.0, columnspacing=1.2)
+
+
+def _draw_violation(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
+    ax = fig.add_subplot()
+    y = np.asarray(d["y"], dtype=np.float64)
+    x = np.asarray(d["x"], dtype=np.float64)
+    pos = y > 0
+    ax.plot(x[pos], y[pos], color=_c("tide"), linewidth=0.8, label="maximal violation")
+    ax.axhline(d["tol"], color=_c("rust"), linestyle=(0, (5, 3)), linewidth=1.0,
+               label=f"tol = {d['tol']:.3g}")
+    fy = d["final_y"] if d["final_y"] > 0 else (y[pos].min() if pos.any() else d["tol"]) * 0.5
+    ax.plot([d["final_x"]], [fy], marker="o", markersize=6, markerfacecolor="none",
+            markeredgecolor=_c("ink"), linestyle="none", label="final certificate")
+    _log_y(ax)
+    _iter_x(ax)
+    ax.set_ylabel("m(α) − M(α)")
+    handles, _ = ax.get_legend_handles_labels()
+    _event_marks(ax, d.get("events") or {}, handles)
+    _legend_above(ax, handles)
+
+
+def _draw_objective(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
+    top, bottom = fig.subplots(2, 1, sharex=True, height_ratios=[1.3, 1.0])
+    top.plot(d["x"], d["y"], color=_c("tide"), label="dual objective")
+    if "lower_x" in d:
+        top.plot(d["lower_x"], d["lower_y"], color=_c("rust"), linestyle=(0, (4, 2)),
+                 label="lower bound (interior-point dual)")
+    top.axhline(d["final"], color=_c("muted"), linewidth=0.6, linestyle=(0, (1, 1)))
+    top.set_ylabel("objective")
+    _legend_above(top, top.get_legend_handles_labels()[0])
+    dx, dy = np.asarray(d["dist_x"]), np.asarray(d["dist_y"])
+    if dy.size and np.any(dy > 0):
+        bottom.plot(dx[dy > 0], dy[dy > 0], color=_c("heather"), linewidth=0.8)
+        _log_y(bottom)
+    else:
+        bottom.text(0.5, 0.5, "objective equal to its final value throughout",
+                    transform=bottom.transAxes, ha="center", va="center", color=_c("muted"))
+    bottom.set_ylabel("above final")
+    _iter_x(bottom)
+
+
+def _draw_gap(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
+    ax = fig.add_subplot()
+    styles = {"gap": ("tide", "-"), "relative_gap": ("rust", "-"),
+              "primal_residual": ("heather", (0, (4, 2))), "dual_residual": ("pine", (0, (1, 1.5)))}
+    for name, (x, y) in d["lines"].items():
+        y = np.asarray(y)
+        ok = y > 0
+        colour, ls = styles.get(name, ("muted", "-"))
+        ax.plot(np.asarray(x)[ok], y[ok], color=_c(colour), linestyle=ls, marker=".",
+                markersize=3, label=name.replace("_", " "))
+    _log_y(ax)
+    _iter_x(ax)
+    _legend_above(ax, ax.get_legend_handles_labels()[0])
+
+
+def _draw_sets(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
+    ax = fig.add_subplot()
+    if "support" in d:
+        x, y = d["support"]
+        ax.step(x, y, where="post", color=_c("tide"), label="support set (α > lower bound)")
+    if "bounded" in d:
+        x, y = d["bounded"]
+        ax.step(x, y, where="post", color=_c("mustard"), linestyle=(0, (1, 1.5)),
+                label="held at upper bound")
+    if "active" in d:
+        x, y = d["active"]
+        ax.step(x, y, where="post", color=_c("rust"), linestyle=(0, (4, 2)),
+                label="active set (not shrunk)")
+    _iter_x(ax)
+    ax.yaxis.set_major_formatter(FuncFormatter(_count))
+    ax.set_ylabel("points")
+    ax.set_ylim(bottom=0)
+    handles, _ = ax.get_legend_handles_labels()
+    _event_marks(ax, d.get("events") or {}, handles)
+    _legend_above(ax, handles)
+
+
+def _draw_trajectories(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
+    ax = fig.add_subplot()
+    for k, line in enumerate(d["lines"]):
+        colour = _c(LINE_COLOURS[k % len(LINE_COLOURS)])
+        ax.step(line["x"], line["y"], where="post", color=colour, linewidth=0.9,
+                label=f"row {line['row']}")
+        ax.axhline(line["upper"], color=colour, linewidth=0.6, linestyle=(0, (1, 2)))
+    _iter_x(ax)
+    ax.set_ylabel("α")
+    ax.legend(loc="center left", bbox_to_anchor=(1.0, 0.5))
+
+
+def _category_marker(cat: str, k: int) -> tuple[str, bool, float]:
+    """(marker, filled, size) for a category name; unknown names get further shapes."""
+    kind = _category_kind(cat)
+    if kind == "bounded":
+        return "s", False, 22.0
+    if kind == "wrong":
+        return "X", True, 24.0
+    if kind == "zero":
+        return "o", True, 5.0
+    if kind == "free":
+        return "D", True, 18.0
+    return ("^", "v", "P", "X", "h")[k % 5], True, 18.0
+
+
+def _category_kind(cat: str) -> str:
+    """Coarse kind of a category name: wrong (misclassified), bounded, zero, free or other."""
+    low = cat.lower()
+    if "misclass" in low or "wrong" in low:
+        return "wrong"
+    if "bound" in low or "upper" in low or "clip" in low:
+        return "bounded"
+    if "non" in low or "zero" in low or "inactive" in low or "lower" in low:
+        return "zero"
+    if "free" in low or "margin" in low:
+        return "free"
+    return "other"
+
+
+CATEGORY_COLOURS = {"bounded": "mustard", "wrong": "oxblood", "zero": "muted", "free": "pine",
+                    "other": "heather"}
+
+
+def _draw_selection(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
+    ax = fig.add_subplot()
+    rank, count = np.asarray(d["rank"]), np.asarray(d["count"])
+    cats = d.get("category")
+    ok = count > 0
+    if cats is None:
+        ax.plot(rank[ok], count[ok], color=_c("tide"), marker=".", markersize=2, linestyle="none")
+    else:
+        cats = np.asarray(cats).astype(str)
+        for k, cat in enumerate(sorted(set(cats.tolist()))):
+            sel = ok & (cats == cat)
+            if not sel.any():
+                continue
+            marker, filled, size = _category_marker(cat, k)
+            colour = _c(CATEGORY_COLOURS[_category_kind(cat)])
+            ax.scatter(rank[sel], count[sel], s=size * 0.6, marker=marker,
+                       facecolors=colour if filled else "none", edgecolors=colour,
+                       linewidths=0.6, label=plain_text(cat, 30))
+        _legend_above(ax, ax.get_legend_handles_labels()[0])
+    if np.any(ok):
+        _log_y(ax)
+    _iter_x(ax, "points ranked by selections")
+    ax.set_ylabel("times selected")
+
+
+def _draw_regions(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
+    ax = fig.add_subplot()
+    ax.grid(False)
+    v = np.asarray(d["values"])
+    gx, gy = np.asarray(d["gx"]), np.asarray(d["gy"])
+    big = float(np.max(np.abs(v))) + 1.0 if v.size else 1.0
+    ax.contourf(gx, gy, v, levels=[-big, 0.0, big], colors=[_c("tint_neg"), _c("tint_pos")])
+    if v.min() < 0 < v.max():
+        ax.contour(gx, gy, v, levels=[0.0], colors=[_c("ink")], linewidths=1.1)
+    lv = [lvl for lvl in (-1.0, 1.0) if v.min() < lvl < v.max()]
+    if lv:
+        ax.contour(gx, gy, v, levels=lv, colors=[_c("muted")], linewidths=0.7,
+                   linestyles=[(0, (1, 2))])
+    z, y = np.asarray(d["z"]), np.asarray(d["y"])
+    cats = np.asarray(d["category"]).astype(str)
+    handles = []
+    for k, cat in enumerate(sorted(set(cats.tolist()))):
+        marker, filled, size = _category_marker(cat, k)
+        for s, cname in ((-1.0, CLASS_COLOURS[0]), (1.0, CLASS_COLOURS[1])):
+            sel = (cats == cat) & (y == s)
+            if not sel.any():
+                continue
+            colour = _c(cname)
+            ax.scatter(z[sel, 0], z[sel, 1], s=size, marker=marker,
+                       facecolors=colour if filled else "none", edgecolors=colour,
+                       linewidths=0.8 if not filled else 0.3, zorder=3)
+        handles.append(Line2D([], [], marker=marker, linestyle="none", color=_c("ink"),
+                              markerfacecolor=_c("ink") if filled else "none",
+                              markersize=4 if size < 10 else 5, label=plain_text(cat, 30)))
+    neg, pos = d["labels"]
+    handles.append(Line2D([], [], marker="o", linestyle="none", color=_c(CLASS_COLOURS[0]),
+                          markersize=5, label=f"label {plain_text(neg, 30)}"))
+    handles.append(Line2D([], [], marker="o", linestyle="none", color=_c(CLASS_COLOURS[1]),
+                          markersize=5, label=f"label {plain_text(pos, 30)}"))
+    ax.legend(handles=handles, loc="upper left", bbox_to_anchor=(1.0, 1.0))
+    ax.set_xlabel(plain_text(d["xlabel"]))
+    ax.set_ylabel(plain_text(d["ylabel"]))
+
+
+def _draw_loo(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
+    ax = fig.add_subplot()
+    x, y = np.asarray(d["x"]), np.asarray(d["y"])
+    wrong = np.asarray(d["wrong"], dtype=bool)
+    ax.axhline(0.0, color=_c("ink"), linewidth=0.7)
+    ax.axhline(1.0, color=_c("muted"), linewidth=0.6, linestyle=(0, (1, 2)))
+    ax.scatter(x[~wrong], y[~wrong], s=5, color=_c("tide"), label="kept its side")
+    ax.scatter(x[wrong], y[wrong], s=22, marker="x", color=_c("rust"), linewidths=0.9,
+               label="leave-one-out error")
+    ax.set_xlabel(plain_text(d.get("xlabel", "left-out point")))
+    ax.set_ylabel("y · f₋ᵢ(xᵢ)")
+    _legend_above(ax, ax.get_legend_handles_labels()[0])
+
+
+_DRAW = {
+    "violation": (_draw_violation, FIG_SIZE),
+    "objective": (_draw_objective, FIG_SIZE_TALL),
+    "gap": (_draw_gap, FIG_SIZE),
+    "sets": (_draw_sets, FIG_SIZE),
+    "trajectories": (_draw_trajectories, FIG_SIZE),
+    "selection": (_draw_selection, FIG_SIZE),
+    "regions": (_draw_regions, MAP_SIZE),
+    "loo": (_draw_loo, FIG_SIZE),
+}
+
+
+def draw(fig: Figure | SubFigure, fd: FigureData) -> None:
+    """Draw ``fd`` into an existing figure or sub-figure (call inside :func:`style`)."""
+    func, _ = _DRAW[fd.kind]
+    func(fig, fd.data)
+
+
+def render_figure(fd: FigureData) -> Figure:
+    """A new stand-alone matplotlib figure for ``fd``, sized for the HTML page."""
+    _, size = _DRAW[fd.kind]
+    with style():
+        fig = Figure(figsize=size, layout="constrained")
+        draw(fig, fd)
+    return fig
+
+
+_XML_HEAD = re.compile(r"^.*?(?=<svg\b)", re.S)
+_METADATA = re.compile(r"<metadata>.*?</metadata>\s*", re.S)
+_XMLNS = re.compile(r'\s+xmlns(:xlink)?="[^"]*"')
+_SIZE_ATTR = re.compile(r'\s(width|height)="[0-9.]+pt"')
+_ID = re.compile(r'\bid="([^"]+)"')
+_REF = re.compile(r'(url\(#|href="#)([^)"]+)')
+
+
+def svg_text(fig: Figure, prefix: str) -> str:
+    """``fig`` as an ``<svg>`` element for inline use in HTML.
+
+    The XML prologue, DOCTYPE and metadata are removed, namespace declarations dropped
+    (the HTML parser places inline SVG in its namespace) and every id prefixed with
+    ``prefix`` so that several figures can share one page.  Width and height are left to
+    CSS; the viewBox keeps the aspect ratio.
+    """
+    buf = io.StringIO()
+    with style():
+        fig.savefig(buf, format="svg", metadata={"Date": None, "Creator": None})
+    s = buf.getvalue()
+    s = _XML_HEAD.sub("", s, count=1)
+    s = _METADATA.sub("", s, count=1)
+    head_end = s.index(">")
+    head = _SIZE_ATTR.sub("", _XMLNS.sub("", s[:head_end]))
+    s = head + s[head_end:]
+    s = _ID.sub(lambda m: f'id="{prefix}-{m.group(1)}"', s)
+    s = _REF.sub(lambda m: f"{m.group(1)}{prefix}-{m.group(2)}", s)
+    return s.strip()
+
+
+def figure_svg(fd: FigureData, prefix: str) -> str:
+    """Render ``fd`` and return inline SVG text (see :func:`svg_text`)."""
+    fig = render_figure(fd)
+    return svg_text(fig, prefix)

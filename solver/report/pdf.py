@@ -1,0 +1,336 @@
+"""Multi-page A4 PDF written with matplotlib's ``PdfPages`` (no browser involved).
+
+The document is planned first (:func:`plan_pages`): text pages are laid out line by line
+with fixed line heights, so the page count and each page's heading are known before
+drawing.  Fonts are embedded as TrueType (``pdf.fonttype`` 42) so text can be extracted.
+"""
+
+from __future__ import annotations
+
+import textwrap
+from collections.abc import Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from matplotlib.backends.backend_pdf import PdfPages
+from matplotlib.figure import Figure
+
+from .content import FigureData, ReportContent, RunContent, Table
+from .figures import PALETTE, draw, plain_text, style
+from .html import HOLDOUT_TABLE_KEYS, _termination_rows, comparison_table, fmt
+
+__all__ = ["PdfPage", "plan_pages", "render_pdf"]
+
+PAGE = (8.27, 11.69)  # A4 portrait, inches
+LEFT, TOP, BOTTOM = 0.075, 0.945, 0.06
+LINE = 0.0145  # height of one body line, figure fraction (≈ 12 pt)
+CHARS = 104  # monospace characters per line at 7.5 pt
+SANS_CHARS = 112  # sans characters per body line at 8 pt (conservative)
+PAGE_LINES = (TOP - 0.045 - BOTTOM - 0.01) / LINE  # body lines that fit below the heading
+FIGS_PER_PAGE = 2
+
+
+@dataclass(frozen=True)
+class PdfPage:
+    """One planned page: ``heading`` (printed at the top) and either text lines or figures."""
+
+    heading: str
+    lines: tuple[tuple[str, str], ...] = ()
+    figures: tuple[FigureData, ...] = ()
+
+
+class _Lines:
+    """Accumulates (style, text) lines; styles: h (heading), p (body), m (monospace), f (flag)."""
+
+    def __init__(self) -> None:
+        self.items: list[tuple[str, str]] = []
+
+    def heading(self, text: str) -> None:
+        self.items += [("gap", ""), ("h", text)]
+
+    def para(self, text: str, style_: str = "p") -> None:
+        width = SANS_CHARS if style_ in ("p", "i") else CHARS
+        for line in textwrap.wrap(text, width=width, break_long_words=True) or [""]:
+            self.items.append((style_, line))
+
+    def flag(self, severity: str, text: str) -> None:
+        mark = {"stop": "[STOP]", "caution": "[CAUTION]"}.get(severity, "[NOTE]")
+        lines = textwrap.wrap(f"{mark} {text}", width=SANS_CHARS - 4, subsequent_indent="    ")
+        self.items += [("fs" if severity == "stop" else "f", ln) for ln in lines]
+
+    def kv(self, items: Sequence[tuple[str, Any]]) -> None:
+        for k, v in items:
+            key = str(k)[:34].ljust(36, " ")
+            text = fmt(v).replace("×10^", "e")
+            chunks = textwrap.wrap(text, width=CHARS - 36, break_long_words=True) or [""]
+            self.items.append(("m", key + chunks[0]))
+            self.items += [("m", " " * 36 + c) for c in chunks[1:]]
+
+    def pre(self, text: str) -> None:
+        for raw in text.splitlines() or [""]:
+            for line in textwrap.wrap(raw, width=CHARS, break_long_words=True,
+                                      subsequent_indent="    ") or [""]:
+                self.items.append(("m", line))
+
+    def table(self, t: Table) -> None:
+        if t.note:
+            self.para(t.note, "i")
+        cells = [[fmt(v).replace("×10^", "e") for v in row] for row in t.rows]
+        heads = [str(c) for c in t.columns]
+        ncol = len(heads)
+        widths = [max([len(heads[c])] + [len(r[c]) for r in cells]) for c in range(ncol)]
+        budget = CHARS - 2 * (ncol - 1)
+        while sum(widths) > budget and max(widths) > 6:
+            widths[widths.index(max(widths))] -= 1
+
+        def cut(s: str, w: int) -> str:
+            return s if len(s) <= w else s[: max(1, w - 1)] + "…"
+
+        def line(values: Sequence[str]) -> str:
+            return "  ".join(cut(v, w).ljust(w) for v, w in zip(values, widths, strict=True))
+
+        self.items.append(("mb", line(heads)))
+        self.items += [("m", line(r)) for r in cells]
+
+
+def _height(kind: str) -> float:
+    """Height of one line item in body lines."""
+    return {"gap": 0.6, "h": 1.35}.get(kind, 1.0)
+
+
+def _paginate(heading: str, lines: _Lines) -> list[PdfPage]:
+    """Cut line items into pages by height; a heading is never left last on a page."""
+    items = list(lines.items)
+    pages: list[list[tuple[str, str]]] = [[]]
+    used = 0.0
+    for it in items:
+        h = _height(it[0])
+        need = h + (1.0 if it[0] in ("h", "gap") else 0.0)  # keep a heading with its next line
+        if used + need > PAGE_LINES and pages[-1]:
+            pages.append([])
+            used = 0.0
+        if not pages[-1] and it[0] == "gap":
+            continue
+        pages[-1].append(it)
+        used += h
+    return [PdfPage(heading=heading if k == 0 else f"{heading} (continued)", lines=tuple(p))
+            for k, p in enumerate(pages)]
+
+
+def _cover(c: ReportContent) -> list[PdfPage]:
+    L = _Lines()
+    L.para(f"prepared {c.generated} with kktrace {c.kktrace_version} · {len(c.runs)} run(s)", "i")
+    L.heading("Outcome")
+    for r in c.runs:
+        t = r.termination
+        ok = bool(t.get("converged")) and bool(t.get("meets_tol", True))
+        L.para(f"{r.label} ({r.solver}, run id {r.run_id or 'not stored'}): "
+               f"{'CONVERGED' if ok else 'NOT CONVERGED'} — status {t.get('status')} after "
+               f"{fmt(t.get('iterations'))} iterations.", "p" if ok else "ps")
+        L.kv([("final maximal violation", t.get("max_violation")), ("tol", t.get("tol")),
+              ("dual objective", t.get("dual_objective")),
+              ("primal objective", t.get("primal_objective")),
+              ("duality gap", t.get("duality_gap")), ("relative gap", t.get("relative_gap")),
+              ("support vectors (free / at bound)",
+               f"{t.get('n_support')} ({t.get('n_free')} / {t.get('n_bounded')})")])
+    if c.comparison:
+        L.para(f"Challenger comparison verdict: {c.comparison['verdict']}")
+    else:
+        L.para("Challenger comparison: not available.")
+    L.heading("Flags raised")
+    if c.flags:
+        for f in c.flags:
+            L.flag(f.severity, f.message)
+    else:
+        L.para("No flags raised.")
+    L.heading("Scope of this record")
+    L.para(c.caution)
+    return _paginate(c.title, L)
+
+
+def _run_text(r: RunContent) -> list[PdfPage]:
+    L = _Lines()
+    L.heading("Provenance")
+    L.kv(r.identity)
+    if r.environment:
+        L.para("Environment recorded with the run:", "i")
+        L.kv(r.environment)
+    else:
+        L.para("Environment not available.", "i")
+    L.heading("How to reproduce")
+    if r.reproduce_command:
+        L.para("Command recorded with the run:", "i")
+        L.pre(r.reproduce_command)
+    else:
+        L.para("No command line was recorded with this run.", "i")
+    if r.reproduce_python:
+        L.para("Python call recorded with the run:", "i")
+        L.pre(r.reproduce_python)
+    if r.reproduce_note:
+        L.para(r.reproduce_note, "i")
+    L.para("Python code repeating the solve on the stored problem:", "i")
+    L.pre(r.reproduce_code)
+    L.heading("Problem set-up")
+    L.kv(r.problem)
+    if r.options:
+        L.para("Solver options:", "i")
+        L.kv(r.options)
+    L.heading("Kernel check")
+    L.para(r.audit_verdict)
+    if r.audit:
+        L.kv(r.audit)
+    else:
+        L.para("Kernel audit not available for this run.", "i")
+    L.heading("Data remarks")
+    for w in r.data_warnings or ("No data warnings were recorded at intake.",):
+        L.para(w)
+    L.heading("Stopping and certificate")
+    L.kv(_termination_rows(r.termination))
+    for note in r.figure_notes:
+        L.para(note, "i")
+    return _paginate(f"Record of {r.label}: provenance, set-up, certificate", L)
+
+
+def _run_support(r: RunContent) -> list[PdfPage]:
+    L = _Lines()
+    L.heading("Points carrying the solution")
+    L.table(Table(columns=("category", "points"), rows=tuple(r.categories.items()),
+                  note=f"Final category of every training point ({r.categories_source})."))
+    if r.influential is not None:
+        L.table(r.influential)
+        reason_col = next((k for k, c in enumerate(r.influential.columns) if c == "reason"), None)
+        if reason_col is not None:
+            L.para("Reasons in full:", "i")
+            for row in r.influential.rows:
+                L.para(f"row {row[0]}: {row[reason_col]}")
+    if r.influential_note:
+        L.para(r.influential_note, "i")
+    L.heading("Leave-one-out")
+    if r.loo is not None:
+        L.table(r.loo)
+    if r.loo_note:
+        L.para(r.loo_note, "i")
+    L.heading("Held-out outcomes")
+    if r.holdout:
+        L.kv([(k, v) for k, v in r.holdout.items() if k not in HOLDOUT_TABLE_KEYS])
+        if r.confusion is not None:
+            L.table(r.confusion)
+    else:
+        L.para("Held-out outcomes not available: no held-out data were scored with this run.",
+               "i")
+    if r.decision_map is None:
+        L.heading("Decision map")
+        L.para(r.decision_note, "i")
+    return _paginate(f"Record of {r.label}: support vectors and outcomes", L)
+
+
+def _challenger(c: ReportContent) -> list[PdfPage]:
+    L = _Lines()
+    comp = c.comparison
+    if not comp:
+        L.para(c.comparison_note, "i")
+    else:
+        L.para(f"Verdict: {comp['verdict']}"
+               + (f" — {comp['verdict_text']}" if comp.get("verdict_text") else ""))
+        L.table(comparison_table(comp))
+        if comp.get("extra"):
+            L.kv(list(comp["extra"].items()))
+    if c.notes:
+        L.heading("Notes from the preparer")
+        for para in c.notes.splitlines() or [""]:
+            L.para(para)
+    L.heading("Scope of this record")
+    L.para(c.caution)
+    return _paginate("Challenger cross-check", L)
+
+
+def plan_pages(content: ReportContent) -> list[PdfPage]:
+    """Every page of the PDF in order (headings, text lines, figures)."""
+    pages = _cover(content)
+    for r in content.runs:
+        pages += _run_text(r)
+        figs = list(r.figures)
+        for k in range(0, len(figs), FIGS_PER_PAGE):
+            pages.append(PdfPage(heading=f"Path to the solution — {r.label}",
+                                 figures=tuple(figs[k:k + FIGS_PER_PAGE])))
+        pages += _run_support(r)
+        extra = [f for f in (r.decision_map, r.loo_figure) if f is not None]
+        if extra:
+            pages.append(PdfPage(heading=f"Decision map and leave-one-out — {r.label}",
+                                 figures=tuple(extra)))
+    pages += _challenger(content)
+    return pages
+
+
+_FONTS = {
+    "h": dict(family="DejaVu Sans", size=10.0, weight="bold", color=PALETTE["tide"]),
+    "p": dict(family="DejaVu Sans", size=8.0, color=PALETTE["ink"]),
+    "ps": dict(family="DejaVu Sans", size=8.0, weight="bold", color=PALETTE["oxblood"]),
+    "i": dict(family="DejaVu Sans", size=8.0, color="#5f676d"),
+    "m": dict(family="DejaVu Sans Mono", size=7.2, color=PALETTE["ink"]),
+    "mb": dict(family="DejaVu Sans Mono", size=7.2, color=PALETTE["tide"]),
+    "f": dict(family="DejaVu Sans", size=8.0, color="#8a5f00"),
+    "fs": dict(family="DejaVu Sans", size=8.0, weight="bold", color=PALETTE["oxblood"]),
+}
+
+
+def _frame(fig: Figure, page: PdfPage, number: int, total: int, content: ReportContent) -> None:
+    fig.text(LEFT, 0.975, "kktrace · convergence and audit record", fontsize=7,
+             color=PALETTE["tide"], family="DejaVu Sans")
+    fig.text(1 - LEFT, 0.975, f"page {number} of {total}", fontsize=7, ha="right",
+             color="#5f676d", family="DejaVu Sans")
+    fig.text(LEFT, TOP, plain_text(page.heading, 200), fontsize=12.5, weight="bold",
+             color=PALETTE["ink"], family="DejaVu Sans", va="top")
+    fig.add_artist(_rule(TOP - 0.024))
+    fig.text(LEFT, 0.03, plain_text(content.caution, 400), fontsize=6.2,
+             color="#5f676d", family="DejaVu Sans", wrap=True)
+
+
+def _rule(y: float) -> Any:
+    from matplotlib.lines import Line2D
+
+    return Line2D([LEFT, 1 - LEFT], [y, y], linewidth=0.8, color=PALETTE["tide"])
+
+
+def _draw_text_page(fig: Figure, page: PdfPage) -> None:
+    y = TOP - 0.045
+    for kind, text in page.lines:
+        if kind == "gap":
+            y -= LINE * 0.6
+            continue
+        fig.text(LEFT, y, plain_text(text, 400), va="top", **_FONTS[kind])
+        y -= LINE * (1.35 if kind == "h" else 1.0)
+
+
+def _draw_figure_page(fig: Figure, page: PdfPage) -> None:
+    # always FIGS_PER_PAGE slots, so a lone figure keeps the size it has on a full page
+    sub = fig.subfigures(FIGS_PER_PAGE + 1, 1, height_ratios=[0.06] + [1.0] * FIGS_PER_PAGE)
+    for sf, fd in zip(sub[1:], page.figures, strict=False):
+        inner = sf.subfigures(2, 1, height_ratios=[1.0, 0.16])
+        inner[0].suptitle(plain_text(fd.title, 200), x=0.02, ha="left", fontsize=8.5,
+                          weight="bold")
+        draw(inner[0], fd)
+        caption = textwrap.fill(plain_text(fd.caption, 2000), width=130)
+        inner[1].text(0.02, 0.95, caption, va="top", fontsize=6.8, family="DejaVu Sans",
+                      color=PALETTE["ink"])
+
+
+def render_pdf(content: ReportContent, path: str | Path) -> int:
+    """Write the PDF to ``path``; returns the number of pages written."""
+    pages = plan_pages(content)
+    total = len(pages)
+    meta = {"Title": content.title, "Creator": f"kktrace {content.kktrace_version}",
+            "Subject": "convergence and audit record", "CreationDate": None}
+    with style(), PdfPages(path, metadata=meta) as pdf:
+        for k, page in enumerate(pages, start=1):
+            fig = Figure(figsize=PAGE)
+            if page.figures:
+                fig.set_layout_engine("constrained")
+                fig.get_layout_engine().set(rect=(0.04, 0.05, 0.92, 0.86))
+                _draw_figure_page(fig, page)
+            else:
+                _draw_text_page(fig, page)
+            _frame(fig, page, k, total, content)
+            pdf.savefig(fig)
+    return total

@@ -1,0 +1,117 @@
+"""JSON summary of a report for documentation pipelines; schema: ``summary.schema.json``.
+
+Same figures as the HTML and PDF: identity, certificate, counts, flags, comparison, held-out
+scores, plus each convergence series as per-bucket minimum and maximum (at most 200 buckets).
+Non-finite numbers are written as ``null``.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+from importlib import resources
+from typing import Any
+
+import numpy as np
+
+from .content import ReportContent, RunContent
+
+__all__ = ["SCHEMA_ID", "summary_dict", "summary_json", "load_schema"]
+
+SCHEMA_ID = "kktrace-report-summary"
+SCHEMA_VERSION = 1
+
+_TERMINATION_KEYS = (
+    "status", "message", "converged", "iterations", "seconds", "tol", "max_violation",
+    "meets_tol", "m_up", "M_low", "dual_objective", "primal_objective", "duality_gap",
+    "relative_gap", "bias", "bias_from", "bound_violation", "equality_residual",
+    "max_kkt_residual",
+)
+
+
+def _clean(v: Any) -> Any:
+    """Plain JSON value: non-finite floats → None, numpy → Python, tuples → lists."""
+    if isinstance(v, np.generic):
+        v = v.item()
+    if isinstance(v, float):
+        return v if math.isfinite(v) else None
+    if isinstance(v, np.ndarray):
+        return [_clean(x) for x in v.tolist()]
+    if isinstance(v, dict) or hasattr(v, "items"):
+        return {str(k): _clean(x) for k, x in v.items()}
+    if isinstance(v, (list, tuple)):
+        return [_clean(x) for x in v]
+    if isinstance(v, (str, int, bool)) or v is None:
+        return v
+    return str(v)
+
+
+def _run(r: RunContent) -> dict[str, Any]:
+    t = r.termination
+    term = {k: t.get(k) for k in _TERMINATION_KEYS}
+    return {
+        "label": r.label,
+        "run_id": r.run_id,
+        "solver": r.solver,
+        "identity": {k: v for k, v in r.identity},
+        "environment": {k: v for k, v in r.environment},
+        "reproduce": {"command": r.reproduce_command, "python": r.reproduce_code},
+        "data": dict(r.data_facts),
+        "data_warnings": list(r.data_warnings),
+        "problem": {k: v for k, v in r.problem},
+        "options": {k: v for k, v in r.options},
+        "kernel_audit": None if r.audit is None else {k: v for k, v in r.audit},
+        "termination": term,
+        "counts": {"support": t.get("n_support"), "free": t.get("n_free"),
+                   "bounded": t.get("n_bounded"), "zero": t.get("n_zero")},
+        "replay": (None if "replay_reproduced" not in t else
+                   {"reproduced": t["replay_reproduced"],
+                    "max_abs_difference": t.get("replay_max_difference")}),
+        "events": dict(t.get("events") or {}),
+        "categories": dict(r.categories),
+        "categories_source": r.categories_source,
+        "influential": (None if r.influential is None else
+                        {"columns": list(r.influential.columns),
+                         "rows": [list(row) for row in r.influential.rows]}),
+        "holdout": None if r.holdout is None else dict(r.holdout),
+        "series": {k: dict(v) for k, v in r.series.items()},
+        "figures": [{"key": f.key, "title": f.title, "caption": f.caption}
+                    for f in (*r.figures, *(x for x in (r.decision_map, r.loo_figure) if x))],
+        "flags": [{"code": f.code, "severity": f.severity, "message": f.message}
+                  for f in r.flags],
+    }
+
+
+def summary_dict(content: ReportContent) -> dict[str, Any]:
+    """The summary as plain JSON-ready data."""
+    c = content
+    comp = None
+    if c.comparison:
+        comp = {"verdict": c.comparison["verdict"], "failed": list(c.comparison["failed"]),
+                "measures": [dict(m) for m in c.comparison["measures"]]}
+    out = {
+        "schema": SCHEMA_ID,
+        "schema_version": SCHEMA_VERSION,
+        "title": c.title,
+        "generated": c.generated,
+        "kktrace_version": c.kktrace_version,
+        "all_converged": c.converged,
+        "caution": c.caution,
+        "notes": c.notes,
+        "runs": [_run(r) for r in c.runs],
+        "comparison": comp,
+        "flags": [{"code": f.code, "severity": f.severity, "message": f.message, "run": f.run}
+                  for f in c.flags],
+    }
+    return _clean(out)
+
+
+def summary_json(content: ReportContent) -> str:
+    """The summary as JSON text (UTF-8, indented, keys in a fixed order)."""
+    return json.dumps(summary_dict(content), indent=1, ensure_ascii=False, allow_nan=False)
+
+
+def load_schema() -> dict[str, Any]:
+    """The JSON Schema (draft 2020-12) the summary follows."""
+    text = resources.files("solver.report").joinpath("summary.schema.json").read_text("utf-8")
+    return json.loads(text)
