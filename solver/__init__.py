@@ -44,6 +44,7 @@ _EXPORTS: dict[str, str] = {
     "run_demo": "demo",
     "DemoOutcome": "demo",
     "tablet_coating_tables": "demo",
+    "write_demo_data": "demo",
     # data
     "Dataset": "data",
     "load_table": "data",

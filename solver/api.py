@@ -25,7 +25,7 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from .data import Dataset
-from .errors import ConvergenceWarning, DataWarning, InvalidInputError, KktraceError
+from .errors import ConvergenceWarning, DataWarning, InvalidInputError
 from .kernels import make_kernel
 from .model import Model, Standardiser, model_from_solution
 from .problem import DualProblem, binary_classification
@@ -71,9 +71,6 @@ _QP_LIMIT_FALLBACK = 5000
 #: ``progress(task, info)``: task is ``"solve"`` (info: solver, iteration, violation, tol,
 #: max_iter) or ``"leave_one_out"`` (info: done, total); ``"done"`` ends a task.
 ProgressFn = Callable[[str, Mapping[str, Any]], None]
-
-RunLike = "str | RunRecord"
-
 
 # --------------------------------------------------------------------------- helpers
 
@@ -221,7 +218,11 @@ def _solve(
 ) -> SolveResult:
     from .solvers import get_solver
 
-    options: dict[str, Any] = {"tol": tol, "trace": trace}
+    if method == "qp":
+        # the challenger runs to cvxopt's own (tight) tolerance; ``tol`` is the certificate's
+        options: dict[str, Any] = {"kkt_tol": tol, "trace": trace}
+    else:
+        options = {"tol": tol, "trace": trace}
     if max_iter is not None:
         options["max_iter"] = max_iter
     if progress is not None:
@@ -281,13 +282,6 @@ def _command(
         "note": "trained from an in-memory dataset: reproduce with the Python call and the "
         "same data (checked against the fingerprint)",
     }
-
-
-@dataclass(frozen=True, eq=False)
-class _Fitted:
-    record: RunRecord
-    summary: dict[str, Any]
-    model: Model
 
 
 # --------------------------------------------------------------------------- train
@@ -375,10 +369,11 @@ def _run_summary(record: RunRecord, run_id: str, run_dir: Path) -> dict[str, Any
     return s
 
 
-def _audit(problem: DualProblem) -> dict[str, Any]:
+def _audit(problem: DualProblem, feature_names: Sequence[str]) -> dict[str, Any]:
     from .audit import audit_kernel
 
-    return _jsonable(audit_kernel(problem.kernel, problem.X).to_dict())
+    return _jsonable(audit_kernel(problem.kernel, problem.X,
+                                  feature_names=feature_names).to_dict())
 
 
 def _jsonable(v: Any) -> Any:
@@ -444,7 +439,8 @@ def train(
     kernel, gamma, degree, offset : kernel ``linear`` | ``poly`` | ``rbf`` | ``sigmoid``;
         gamma None means the median heuristic on the standardised rows (recorded).
     C : penalty (> 0).  tol : stopping tolerance on the maximal KKT violation.
-    max_iter : iteration limit (None: the solver's default).
+    max_iter : iteration limit (None: the solver's default); with ``"both"`` it applies to
+        SMO only (the QP challenger keeps its own interior-point limit).
     solver : ``"smo"``, ``"qp"``, or ``"both"`` (SMO plus the QP challenger and their
         comparison; the challenger is skipped, with the reason recorded, above its size limit).
     standardise : standardise features (mean 0, sd 1; parameters stored with the model).
@@ -466,7 +462,7 @@ def train(
 
     Examples
     --------
-    >>> out = train("tablet_coating.csv", label="lab_decision", C=10, solver="both")  # doctest: +SKIP
+    >>> out = train("batches.csv", label="lab_decision", solver="both")  # doctest: +SKIP
     >>> out.summary()["verdict"]  # doctest: +SKIP
     'agree'
     """
@@ -549,7 +545,7 @@ def _train(
                 f"QP challenger skipped: {problem.n} training points exceed its size limit of "
                 f"{limit}"
             )
-    audit = _audit(problem)
+    audit = _audit(problem, ds.feature_names)
     data_facts = {
         "fingerprint": _fingerprint(ds),
         "feature_names": list(ds.feature_names),
@@ -564,7 +560,9 @@ def _train(
 
     records: list[RunRecord] = []
     for method in methods:
-        result = _solve(method, problem, tol=tol, max_iter=max_iter, trace=trace,
+        # with "both" the iteration limit is SMO's; the challenger keeps cvxopt's own
+        limit = max_iter if (method == "smo" or solver == "qp") else None
+        result = _solve(method, problem, tol=tol, max_iter=limit, trace=trace,
                         progress=progress)
         attachments: dict[str, Any] = {
             "audit": audit,
@@ -596,7 +594,7 @@ def _train(
         ids.append(rid)
         saved.append(replace(rec, run_id=rid, parent_id=ids[0] if k else None))
     summaries = tuple(
-        _run_summary(rec, rid, _run_dir(store, rid)) for rec, rid in zip(saved, ids)
+        _run_summary(rec, rid, _run_dir(store, rid)) for rec, rid in zip(saved, ids, strict=True)
     )
     if comparison is not None:
         summaries[1]["verdict"] = str(comparison.verdict)
@@ -696,9 +694,12 @@ def explain(
     if points is None:
         return point_table(rec.problem, rec.result)
     names = list(rec.data.get("feature_names") or [])
-    if isinstance(points, (str, Path, Dataset)):
-        q = _load_data(points, None, "query data") if not isinstance(points, Dataset) else points
+    if isinstance(points, (str, Path)):
+        lab = rec.data.get("label_name")
+        q = _load_data(points, lab if _has_column(Path(points), lab) else None, "query data")
         X = _align(q, names, "query data")
+    elif isinstance(points, Dataset):
+        X = _align(points, names, "query data")
     else:
         X = _parse_point(points, names)
     model = model_from_solution(rec.problem, rec.result, rec.standardiser)
@@ -710,7 +711,10 @@ def explain(
 def leave_one_out(
     run: str | RunRecord, *, store: Any = None, progress: ProgressFn | None = None
 ) -> Any:
-    """Exact leave-one-out (support-vector refits) with the Vapnik and Joachims bounds."""
+    """Exact leave-one-out error (support-vector refits) with the Vapnik and Joachims bounds.
+
+    Returns :class:`~solver.explain.LeaveOneOut`; needs a converged run.
+    """
     from .explain import leave_one_out as _loo
 
     rec = load_run(run, store=store)
@@ -721,10 +725,7 @@ def leave_one_out(
         progress("leave_one_out", {"done": done, "total": total})
 
     try:
-        try:
-            return _loo(rec.problem, rec.result, callback=cb)
-        except TypeError:
-            return _loo(rec.problem, rec.result)
+        return _loo(rec.problem, rec.result, progress=cb)
     finally:
         progress("done", {"task": "leave_one_out"})
 
@@ -743,41 +744,53 @@ def replay(run: str | RunRecord, iteration: int, *, store: Any = None) -> Any:
 class VerifyOutcome:
     """Result of :func:`verify`: integrity of the stored files and, optionally, a re-run.
 
-    ``integrity`` is the store's verification (``ok``, ``problems``); ``reproduction`` the
-    re-run's agreement report (None without ``rerun``).  ``ok`` is True only when every
-    check passed.
+    ``integrity`` is the store's :class:`~solver.store.Verification` (``ok``, ``problems``);
+    ``reproduction`` the re-run's :class:`~solver.store.Reproduction` (None without
+    ``rerun``); ``rerun_run_id`` the id of the stored re-run (with ``keep_rerun``).
+    ``ok`` is True only when the files are intact and any re-run reproduced α bitwise or
+    within the reproduction tolerance.
     """
 
     run_id: str
     integrity: Any
     reproduction: Any | None
+    rerun_run_id: str | None = None
 
     @property
     def ok(self) -> bool:
-        """True only when the files are intact and any re-run reproduced the run."""
+        """True only when every check passed."""
         ok = bool(self.integrity.ok)
         if self.reproduction is not None:
-            ok = ok and bool(getattr(self.reproduction, "ok", True))
+            ok = ok and bool(self.reproduction.within_tolerance)
         return ok
 
 
 def verify(
-    run: str, *, store: Any = None, rerun: Dataset | str | Path | None = None
+    run: str, *, store: Any = None, rerun: Dataset | str | Path | None = None,
+    keep_rerun: bool = False,
 ) -> VerifyOutcome:
     """Check a stored run's files (digests, chain to its parent) and optionally re-run it.
 
-    ``rerun`` is the training data (file or Dataset); it must match the stored fingerprint.
+    ``rerun`` is the training data (file or Dataset); it must match the stored
+    fingerprint.  With ``keep_rerun`` the re-run is saved as a new run whose parent is
+    ``run``.
     """
     from .store import reproduce
 
     st = open_store(store)
     integrity = st.verify(run)
     reproduction = None
+    new_id = None
     if rerun is not None:
+        if not integrity.ok:
+            return VerifyOutcome(run_id=run, integrity=integrity, reproduction=None)
         rec = st.load(run)
         ds = _load_data(rerun, rec.data.get("label_name"), "re-run data")
         reproduction = reproduce(rec, ds)
-    return VerifyOutcome(run_id=run, integrity=integrity, reproduction=reproduction)
+        if keep_rerun:
+            new_id = st.save(reproduction.record, parent=run)
+    return VerifyOutcome(run_id=run, integrity=integrity, reproduction=reproduction,
+                         rerun_run_id=new_id)
 
 
 @dataclass(frozen=True, eq=False)
@@ -812,7 +825,7 @@ class Scores:
 
 def _has_column(path: Path, column: str | None) -> bool:
     """Whether a data file has a column ``column`` (header peek; no data parsed)."""
-    if column is None:
+    if column is None or not path.is_file():
         return False
     suffix = path.suffix.lower()
     try:
@@ -904,29 +917,17 @@ def export_explanation(
     formats: Sequence[str] = ("csv", "parquet"),
 ) -> dict[str, Path]:
     """Write a run's per-point table as ``points-<run id>.csv`` / ``.parquet`` in ``out_dir``."""
-    import pyarrow as pa
-    import pyarrow.csv as pacsv
-    import pyarrow.parquet as pq
-
+    for fmt in formats:
+        if fmt not in ("csv", "parquet"):
+            raise InvalidInputError(f"unknown table format {fmt!r}; choose csv or parquet")
     rec = load_run(run, store=store)
     table = explain(rec)
-    cols = {k: np.asarray(v) for k, v in table.to_columns().items()}
-    arrow = pa.table({k: (v.astype(str) if v.dtype == object else v) for k, v in cols.items()})
     out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     stem = f"points-{rec.run_id or 'unsaved'}"
     paths: dict[str, Path] = {}
-    for fmt in formats:
-        if fmt == "csv":
-            paths["csv"] = out / f"{stem}.csv"
-            pacsv.write_csv(arrow, paths["csv"])
-        elif fmt == "parquet":
-            paths["parquet"] = out / f"{stem}.parquet"
-            pq.write_table(arrow, paths["parquet"])
-        else:
-            raise InvalidInputError(f"unknown table format {fmt!r}; choose csv or parquet")
+    if "csv" in formats:
+        paths["csv"] = table.write_csv(out / f"{stem}.csv")
+    if "parquet" in formats:
+        paths["parquet"] = table.write_parquet(out / f"{stem}.parquet")
     return paths
-
-
-# keep a reference so linters see these names as used (re-exported for type hints)
-_ = (KktraceError,)

@@ -75,9 +75,10 @@ def _to_dict(obj: Any) -> dict[str, Any]:
         return {}
     if isinstance(obj, Mapping):
         return dict(obj)
-    fn = getattr(obj, "to_dict", None)
-    if callable(fn):
-        return dict(fn())
+    for name in ("to_dict", "summary"):
+        fn = getattr(obj, name, None)
+        if callable(fn):
+            return dict(fn())
     if dataclasses.is_dataclass(obj):
         return {f.name: getattr(obj, f.name) for f in dataclasses.fields(obj)}
     return {"value": obj}
@@ -170,8 +171,12 @@ def _progress(args: argparse.Namespace) -> _Progress:
 
 def _run_block(s: Mapping[str, Any], role: str) -> list[str]:
     k = s.get("kernel") or {}
+    params = dict(k.get("params") or {})
+    source = params.pop("gamma_source", None)
     kp = ", ".join(f"{a}={_num(b) if isinstance(b, float) else b}"
-                   for a, b in (k.get("params") or {}).items() if b is not None)
+                   for a, b in params.items() if b is not None)
+    if source and source != "given":
+        kp += f"; gamma from the {source.replace('_', ' ')}"
     state = "converged" if s.get("converged") else f"NOT CONVERGED ({s['status']})"
     lines = [
         f"{role} run {s['run_id']}  [{s['solver']}]  {state}",
@@ -241,14 +246,14 @@ def cmd_runs(args: argparse.Namespace) -> int:
         print("no runs match" if any(v is not None for v in filters.values())
               else "the store holds no runs yet")
         return EXIT_OK
-    cols = [c for c in ("run_id", "created", "solver", "status", "iterations", "n_rows",
+    cols = [c for c in ("run_id", "created", "solver", "status", "iterations", "n",
                         "kernel", "C", "max_violation", "duality_gap", "parent_id")
             if any(c in r for r in rows)]
     table = [[_cell(r.get(c)) for c in cols] for r in rows]
     widths = [max(len(c), *(len(t[i]) for t in table)) for i, c in enumerate(cols)]
-    print("  ".join(c.ljust(w) for c, w in zip(cols, widths)))
+    print("  ".join(c.ljust(w) for c, w in zip(cols, widths, strict=True)))
     for t in table:
-        print("  ".join(v.ljust(w) for v, w in zip(t, widths)))
+        print("  ".join(v.ljust(w) for v, w in zip(t, widths, strict=True)))
     return EXIT_OK
 
 
@@ -286,9 +291,32 @@ def cmd_compare(args: argparse.Namespace) -> int:
     if args.json:
         _emit_json(d, sys.stdout)
         return EXIT_OK
-    print(f"runs {args.run_a} and {args.run_b}: verdict {d.get('verdict', comp.verdict)}")
-    print("\n".join(_kv_lines(d, skip=("verdict",))))
+    print(f"run A {args.run_a}\nrun B {args.run_b}")
+    print(f"verdict: {d.get('verdict')}")
+    if d.get("verdict_text"):
+        print(f"  {d['verdict_text']}")
+    measures = d.get("measures") or {}
+    if measures:
+        rows = [["measure", "value", "strict", "loose", "result"]]
+        for name, m in measures.items():
+            rule = m.get("rule", "")
+            result = ("pass" if m.get("passed") else
+                      "within loose" if m.get("passed_loose") else "FAIL")
+            rows.append([name, _num(m.get("value"), ".4g"), f"{rule} {_num(m.get('tolerance'))}",
+                         f"{rule} {_num(m.get('loose_tolerance'))}", result])
+        _print_rows(rows)
+    for run in d.get("runs") or []:
+        print("  " + ", ".join(f"{k} {_num(v, '.4g') if isinstance(v, float) else v}"
+                               for k, v in run.items()))
+    for note in list(d.get("mismatches") or []) + list(d.get("notes") or []):
+        print(f"note: {note}")
     return EXIT_OK
+
+
+def _print_rows(rows: Sequence[Sequence[str]], indent: str = "  ") -> None:
+    widths = [max(len(r[j]) for r in rows) for j in range(len(rows[0]))]
+    for r in rows:
+        print(indent + "  ".join(v.ljust(w) for v, w in zip(r, widths, strict=True)).rstrip())
 
 
 def _parse_point_text(text: str) -> dict[str, str]:
@@ -343,37 +371,65 @@ def cmd_explain(args: argparse.Namespace) -> int:
     if args.json:
         _emit_json(d, sys.stdout)
     else:
-        _print_breakdown(d)
+        _print_breakdown(d, args.run)
     return EXIT_OK
 
 
 def _print_columns(cols: Mapping[str, list[Any]]) -> None:
-    names = list(cols)
+    names = [c for c in cols if c != "reason"] + (["reason"] if "reason" in cols else [])
     n = len(next(iter(cols.values()), []))
-    rows = [[_cell(cols[c][i]) for c in names] for i in range(n)]
-    widths = [max(len(c), *(len(r[j]) for r in rows)) if rows else len(c)
-              for j, c in enumerate(names)]
-    print("  ".join(c.ljust(w) for c, w in zip(names, widths)))
-    for r in rows:
-        print("  ".join(v.ljust(w) for v, w in zip(r, widths)))
+    rows = [names] + [[_cell(cols[c][i]) for c in names] for i in range(n)]
+    _print_rows(rows, indent="")
 
 
-def _print_breakdown(d: Mapping[str, Any]) -> None:
-    print("decision breakdown f(x) = sum of support-vector contributions + bias")
-    print("\n".join(_kv_lines(d)))
+def _print_breakdown(d: Mapping[str, Any], run: str) -> None:
+    import numpy as np
+
+    values = np.atleast_1d(d["values"])
+    rows = np.atleast_2d(d["top_rows"])
+    contrib = np.atleast_2d(d["top_contributions"])
+    shares = np.atleast_2d(d["top_shares"])
+    print(f"decision values of run {run}: f(x) = sum of support-vector terms + bias "
+          f"(bias {_num(d['bias'])}, {d['n_support']} support vectors)")
+    for q in range(values.shape[0]):
+        side = "positive" if values[q] > 0 else "negative"
+        print(f"query {q}: f(x) = {values[q]:+.6g}  ({side} side)")
+        for r, c, sh in zip(rows[q], contrib[q], shares[q], strict=True):
+            print(f"  training row {int(r):>6d}  {c:+.6g}  ({sh:.1%} of the absolute total)")
+        rem = np.atleast_1d(d["remainder"])[q]
+        rem_share = np.atleast_1d(d["remainder_share"])[q]
+        print(f"  all other support vectors  {rem:+.6g}  ({rem_share:.1%})")
 
 
 def cmd_replay(args: argparse.Namespace) -> int:
     import solver
 
     state = solver.replay(args.run, args.iteration, store=args.store)
-    d = _to_dict(state)
-    d = {k: v for k, v in d.items() if not _is_long_array(v)}
+    cert = state.certificate.to_dict()
+    d = {
+        "run_id": state.run_id,
+        "iteration": state.iteration,
+        "base_iteration": state.base_iteration,
+        "deltas_applied": state.deltas_applied,
+        "certificate": cert,
+        "recorded": dict(state.recorded) if state.recorded is not None else None,
+    }
     if args.json:
+        d["alpha"] = state.alpha.tolist()
         _emit_json(d, sys.stdout)
-    else:
-        print(f"run {args.run} at iteration {args.iteration}:")
-        print("\n".join(_kv_lines(d, skip=("iteration",))))
+        return EXIT_OK
+    print(f"run {args.run} rebuilt at iteration {state.iteration} "
+          f"(snapshot {state.base_iteration} + {state.deltas_applied} recorded steps)")
+    print(f"  violation     {_num(cert['max_violation'], '.3e')}  (tol {_num(cert['tol'], '.1e')})")
+    print(f"  objectives    dual {_num(cert['dual_objective'], '.8g')}, "
+          f"primal {_num(cert['primal_objective'], '.8g')}")
+    print(f"  duality gap   {_num(cert['duality_gap'], '.3e')}")
+    print(f"  support       {cert['n_support']} points ({cert['n_free']} free, "
+          f"{cert['n_bounded']} at the bound), bias {_num(cert['bias'])}")
+    if state.recorded:
+        print("  trace row     " + ", ".join(
+            f"{k} {_num(v, '.6g') if isinstance(v, float) else v}"
+            for k, v in state.recorded.items()))
     return EXIT_OK
 
 
@@ -385,23 +441,30 @@ def _is_long_array(v: Any) -> bool:
 def cmd_verify(args: argparse.Namespace) -> int:
     import solver
 
-    res = solver.verify(args.run, store=args.store, rerun=args.rerun)
+    res = solver.verify(args.run, store=args.store, rerun=args.rerun, keep_rerun=args.keep)
     integ = _to_dict(res.integrity)
     repro = None if res.reproduction is None else _to_dict(res.reproduction)
     if args.json:
         _emit_json({"run_id": args.run, "ok": res.ok, "integrity": integ,
-                    "reproduction": repro}, sys.stdout)
+                    "reproduction": repro, "rerun_run_id": res.rerun_run_id}, sys.stdout)
     else:
         if res.integrity.ok:
-            print(f"run {args.run}: files intact (every digest matches)")
+            chain = integ.get("chain") or [args.run]
+            print(f"run {args.run}: files intact ({integ.get('files_checked', '?')} digests "
+                  f"match; chain of {len(chain)} run(s) checked)")
         else:
             print(f"run {args.run}: INTEGRITY CHECK FAILED")
-            for p in getattr(res.integrity, "problems", ()) or ():
+            for p in integ.get("problems") or ():
                 print(f"  - {p}")
         if repro is not None:
-            print("re-run:")
-            print("\n".join(_kv_lines({k: v for k, v in repro.items()
-                                       if not _is_long_array(v)})))
+            print(f"re-run: alpha {repro.get('agreement')} (max |difference| "
+                  f"{_num(repro.get('max_abs_difference'), '.3g')}, tolerance "
+                  f"{_num(repro.get('tolerance'), '.3g')}); iterations "
+                  f"{repro.get('iterations')}, status {repro.get('status')}")
+            for note in repro.get("notes") or ():
+                print(f"  note: {note}")
+        if res.rerun_run_id:
+            print(f"re-run stored as run {res.rerun_run_id}")
     if not res.ok:
         print(f"kktrace: error: run {args.run} failed verification", file=sys.stderr)
         return EXIT_ERROR
@@ -430,7 +493,7 @@ def cmd_score(args: argparse.Namespace) -> int:
         print(f"  decision values and labels written to {args.out}")
     else:
         print("row  decision_value  label")
-        for i, (v, lab) in enumerate(zip(sc.values.tolist(), sc.labels.tolist())):
+        for i, (v, lab) in enumerate(zip(sc.values.tolist(), sc.labels.tolist(), strict=True)):
             print(f"{i:<4d} {v:+.6f}       {lab}")
     return EXIT_OK
 
@@ -441,7 +504,7 @@ def _write_scores(sc: Any, path: Path) -> None:
     with path.open("w", newline="", encoding="utf-8") as fh:
         w = csv.writer(fh, lineterminator="\n")
         w.writerow(["row", "decision_value", "label"])
-        for i, (v, lab) in enumerate(zip(sc.values.tolist(), sc.labels.tolist())):
+        for i, (v, lab) in enumerate(zip(sc.values.tolist(), sc.labels.tolist(), strict=True)):
             w.writerow([i, repr(float(v)), lab])
 
 
@@ -661,6 +724,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("run", metavar="RUN_ID")
     p.add_argument("--rerun", metavar="DATAFILE", default=None,
                    help="re-run from this training data (must match the fingerprint)")
+    p.add_argument("--keep", action="store_true",
+                   help="store the re-run as a new run derived from RUN_ID")
     p.set_defaults(func=cmd_verify)
 
     p = add("score", "decision values and labels for new data", [_common()])
@@ -695,6 +760,11 @@ def main(argv: Sequence[str] | None = None) -> int:
 
     try:
         return int(args.func(args))
+    except BrokenPipeError:
+        # the reader went away (e.g. `| head`): stop quietly
+        devnull = os.open(os.devnull, os.O_WRONLY)
+        os.dup2(devnull, sys.stdout.fileno())
+        return EXIT_OK
     except KktraceError as exc:
         print(f"kktrace: error: {_one_line(exc)}", file=sys.stderr)
         return EXIT_ERROR

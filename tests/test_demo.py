@@ -43,7 +43,8 @@ def test_tables_have_the_documented_shape_and_units():
         assert labels == {"release", "reject"}
         share = float(np.mean(table[demo.DEMO_LABEL] == "release"))
         assert 0.25 < share < 0.75
-        assert np.all((table["dissolution_30min_pct"] > 0) & (table["dissolution_30min_pct"] <= 100))
+        diss = table["dissolution_30min_pct"]
+        assert np.all((diss > 0) & (diss <= 100))
         assert np.all(table["moisture_pct"] > 0)
         assert np.all(table["coating_thickness_um"] > 0) and np.all(table["hardness_n"] > 0)
 
