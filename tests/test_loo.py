@@ -109,6 +109,13 @@ def test_exact_loo_equals_brute_force_and_bounds_hold(solved):
     np.testing.assert_array_equal(fast.loo_wrong, brute.loo_wrong, err_msg=name)
     assert fast.errors == brute.errors
     np.testing.assert_allclose(fast.loo_values, brute.loo_values, atol=1e-4)
+    # independent spot check: a plain cold refit without the row, evaluated at that row
+    sv = np.flatnonzero(~res.certificate.at_lower)
+    for i in sv[np.linspace(0, sv.size - 1, 3).astype(int)]:
+        sub, _ = drop_row(prob, int(i))
+        r = _solve(sub)
+        f_i = prob.kernel.block(prob.X[i], sub.X)[0] @ (r.alpha * sub.y) + r.bias
+        assert fast.loo_values[i] == pytest.approx(f_i, abs=1e-4)
     # both bounds are upper bounds of the exact leave-one-out error (Vapnik; Joachims 2000)
     assert fast.sv_bound >= fast.error_rate
     assert fast.xi_alpha_estimate >= fast.error_rate

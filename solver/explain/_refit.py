@@ -19,15 +19,15 @@ count as movable).  Two refits are offered:
 from __future__ import annotations
 
 from collections.abc import Callable, Mapping
-from dataclasses import dataclass, field
-from typing import Any, ClassVar
+from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
 from ..certificate import certify
 from ..errors import InvalidInputError
-from ..kernels import Kernel
-from ..problem import DualProblem, index_features
+from ..kernels import PrecomputedKernel
+from ..problem import DualProblem
 from ..status import Status
 
 __all__ = ["WORKING_MARGIN", "Refit", "Refitter", "drop_row", "removal_start"]
@@ -37,33 +37,6 @@ WORKING_MARGIN = 0.5
 #: Working-set enlargements before a warm refit falls back to the whole dropped problem.
 MAX_ROUNDS = 4
 _BLOCK = 2048
-
-
-def _as_range(idx: np.ndarray) -> tuple[int, int] | None:
-    if idx.size and int(idx[-1]) - int(idx[0]) == idx.size - 1 and np.all(np.diff(idx) == 1):
-        return int(idx[0]), int(idx[-1]) + 1
-    return None
-
-
-@dataclass(frozen=True, eq=False)
-class _GramRows(Kernel):
-    """Kernel values read from a Gram matrix by row number (``X[:, 0]``), slicing when the
-    rows are a contiguous range.  Internal to refits, never stored or described."""
-
-    name: ClassVar[str] = "gram_rows"
-    gram: np.ndarray = field(default_factory=lambda: np.zeros((0, 0)))
-
-    def block(self, A: np.ndarray, B: np.ndarray) -> np.ndarray:
-        a = np.asarray(A, dtype=np.float64).reshape(len(A), -1)[:, 0].astype(np.intp)
-        b = np.asarray(B, dtype=np.float64).reshape(len(B), -1)[:, 0].astype(np.intp)
-        ra, rb = _as_range(a), _as_range(b)
-        if ra is not None and rb is not None:
-            return self.gram[ra[0] : ra[1], rb[0] : rb[1]].copy()
-        return self.gram[np.ix_(a, b)]
-
-    def diag(self, A: np.ndarray) -> np.ndarray:
-        a = np.asarray(A, dtype=np.float64).reshape(len(A), -1)[:, 0].astype(np.intp)
-        return self.gram[a, a]
 
 
 @dataclass(frozen=True)
@@ -117,7 +90,8 @@ def removal_start(
 
 class Refitter:
     """Refits of ``problem`` without one row.  With ``shared_gram`` the n × n Gram matrix is
-    computed once and every refit reads kernel values from it."""
+    computed once and every refit problem uses it as a precomputed kernel over row numbers
+    (the same kernel values, not recomputed per refit)."""
 
     def __init__(self, problem: DualProblem, solve: Callable[..., Any],
                  options: Mapping[str, Any], *, shared_gram: bool) -> None:
@@ -125,13 +99,15 @@ class Refitter:
         self.solve = solve
         self.options = dict(options)
         self.gram: np.ndarray | None = None
+        self.shared: PrecomputedKernel | None = None
         if shared_gram:
             n = problem.n
             G = np.empty((n, n))
             for s in range(0, n, _BLOCK):
                 e = min(n, s + _BLOCK)
                 G[s:e] = problem.kernel_block(slice(s, e), slice(None))
-            self.gram = G
+            self.shared = PrecomputedKernel(gram_matrix=G)  # one object for every refit
+            self.gram = self.shared.gram_matrix
 
     def kernel_block(self, rows: np.ndarray | slice, cols: np.ndarray | slice) -> np.ndarray:
         """K(x_rows, x_cols) of the original problem."""
@@ -139,20 +115,13 @@ class Refitter:
             return self.problem.kernel_block(rows, cols)
         return self.gram[rows][:, cols]
 
-    def _subproblem(self, rows: np.ndarray, *, sliced_gram: int | None = None) -> DualProblem:
+    def _subproblem(self, rows: np.ndarray) -> DualProblem:
         """The problem restricted to original rows ``rows`` (sorted)."""
         P = self.problem
-        if self.gram is None:
+        if self.shared is None:
             X, kern = P.X[rows], P.kernel
-        elif sliced_gram is not None:
-            # whole problem without row i: copy the Gram once in four blocks (fast slices)
-            i, G, m = sliced_gram, self.gram, P.n - 1
-            sub = np.empty((m, m))
-            sub[:i, :i], sub[:i, i:] = G[:i, :i], G[:i, i + 1 :]
-            sub[i:, :i], sub[i:, i:] = G[i + 1 :, :i], G[i + 1 :, i + 1 :]
-            X, kern = index_features(m), _GramRows(gram=sub)
-        else:
-            X, kern = rows.astype(np.float64)[:, None], _GramRows(gram=self.gram)
+        else:  # row numbers into the shared Gram matrix
+            X, kern = rows.astype(np.float64)[:, None], self.shared
         return DualProblem(X=X, y=P.y[rows], p=P.p[rows], lower=P.lower[rows],
                            upper=P.upper[rows], delta=P.delta, kernel=kern, kind=P.kind,
                            info=P.info)
@@ -160,7 +129,7 @@ class Refitter:
     def cold(self, i: int) -> Refit:
         """Whole problem without row ``i`` from the solver's default start."""
         keep = np.delete(np.arange(self.problem.n), i)
-        res = self.solve(self._subproblem(keep, sliced_gram=i), **self.options)
+        res = self.solve(self._subproblem(keep), **self.options)
         return Refit(keep=keep, alpha=np.asarray(res.alpha, np.float64), bias=float(res.bias),
                      status=res.status.label, iterations=int(res.iterations), rounds=1,
                      working_set=keep.size, max_violation=float(res.certificate.max_violation))

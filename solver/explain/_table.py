@@ -361,7 +361,6 @@ def _start_alpha(problem: DualProblem, result: SolveResult) -> np.ndarray | None
         hit = np.flatnonzero(its == 0)
         if hit.size and snaps.ndim == 2 and snaps.shape[1] == problem.n:
             return np.asarray(snaps[hit[0]], dtype=np.float64)
-    a0 = result.options.get("alpha0") if result.options else None
-    if a0 is None or a0 is False:
-        return problem.feasible_start()
-    return None
+    opts = result.options or {}
+    warm = opts.get("warm_start", False) or opts.get("alpha0") is not None
+    return None if warm else problem.feasible_start()
