@@ -279,6 +279,23 @@ def _column_encoding(name: str, arr: np.ndarray) -> tuple[str | None, bool]:
     return None, True
 
 
+def _to_arrow(arr: np.ndarray) -> pa.Array:
+    """Arrow array from a 1-D numpy array, built from buffers (``pa.array`` would import pandas)."""
+    n = int(arr.shape[0])
+    if arr.dtype.kind == "b":
+        bits = np.packbits(arr.astype(np.uint8), bitorder="little")
+        return pa.Array.from_buffers(pa.bool_(), n, [None, pa.py_buffer(bits.tobytes())])
+    if arr.dtype.kind in "iuf":
+        data = np.ascontiguousarray(arr, dtype=arr.dtype.newbyteorder("="))
+        return pa.Array.from_buffers(pa.from_numpy_dtype(data.dtype), n,
+                                     [None, pa.py_buffer(data.tobytes())])
+    parts = [str(v).encode("utf-8") for v in arr.tolist()]
+    offsets = np.zeros(n + 1, dtype=np.int64)
+    np.cumsum([len(b) for b in parts], out=offsets[1:])
+    return pa.Array.from_buffers(pa.large_string(), n, [None, pa.py_buffer(offsets.tobytes()),
+                                                        pa.py_buffer(b"".join(parts))])
+
+
 def write_table(
     columns: Mapping[str, np.ndarray],
     *,
@@ -293,10 +310,7 @@ def write_table(
     fields, arrays, enc, dict_cols = [], [], {}, []
     for name, arr in columns.items():
         arr = np.asarray(arr)
-        if arr.dtype.kind in "biuf":
-            pa_arr = pa.array(arr)
-        else:
-            pa_arr = pa.array([str(v) for v in arr.tolist()], type=pa.string())
+        pa_arr = _to_arrow(arr)
         meta = {"description": descriptions[name]} if descriptions and name in descriptions else None
         fields.append(pa.field(name, pa_arr.type, nullable=False, metadata=meta))
         arrays.append(pa_arr)
@@ -316,6 +330,29 @@ def write_table(
     return buf.getvalue()
 
 
+_NUMPY_OF = {name: np.dtype(name) for name in ("int8", "int16", "int32", "int64", "uint8", "uint16", "uint32",
+                          "uint64")}
+_NUMPY_OF.update({"float": np.dtype(np.float32), "double": np.dtype(np.float64),
+                  "halffloat": np.dtype(np.float16)})
+
+
+def _from_arrow(col: pa.ChunkedArray) -> np.ndarray:
+    """numpy copy of a null-free numeric or boolean column, read from its buffers."""
+    typ = col.type
+    parts = []
+    for ch in col.chunks:
+        buf = ch.buffers()[1]
+        if pa.types.is_boolean(typ):
+            bits = np.unpackbits(np.frombuffer(buf, dtype=np.uint8), bitorder="little")
+            parts.append(bits[ch.offset:ch.offset + len(ch)].astype(bool))
+        else:
+            dt = _NUMPY_OF[str(typ)]
+            parts.append(np.frombuffer(buf, dtype=dt, count=len(ch), offset=ch.offset * dt.itemsize))
+    if not parts:
+        return np.zeros(0, dtype=bool if pa.types.is_boolean(typ) else _NUMPY_OF[str(typ)])
+    return np.concatenate(parts)
+
+
 def read_table(
     data: bytes, fname: str, expected: Mapping[str, str] | None = None
 ) -> dict[str, np.ndarray]:
@@ -325,7 +362,8 @@ def read_table(
     order and dtypes must match exactly.  Malformed bytes → :class:`IntegrityError`.
     """
     try:
-        table = pq.read_table(pa.BufferReader(data), page_checksum_verification=True)
+        # ParquetFile, not pq.read_table: the latter imports pandas (a second of start-up)
+        table = pq.ParquetFile(pa.BufferReader(data), page_checksum_verification=True).read()
     except (pa.ArrowException, OSError, ValueError) as exc:
         raise IntegrityError(f"{fname}: not a readable Parquet file ({exc})") from None
     names = list(table.column_names)
@@ -341,7 +379,7 @@ def read_table(
             arr = np.array(col.to_pylist(), dtype=object)
             dt = "str"
         elif pa.types.is_integer(typ) or pa.types.is_floating(typ) or pa.types.is_boolean(typ):
-            arr = col.to_numpy()
+            arr = _from_arrow(col)
             dt = str(arr.dtype)
         else:
             raise IntegrityError(f"{fname}: column {name!r} has unsupported type {typ}")

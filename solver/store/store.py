@@ -161,10 +161,14 @@ class RunStore:
             _write_durable(tmp / MANIFEST_DIGEST, digest_file_bytes(mdigest))
             _fsync_dir(tmp)
             os.rename(tmp, final)
-            _fsync_dir(self.root)
         except BaseException:
             shutil.rmtree(tmp, ignore_errors=True)
             raise
+        try:  # make the rename itself durable; the run is complete and visible either way
+            _fsync_dir(self.root)
+        except OSError as exc:
+            warnings.warn(f"run {run_id} saved, but syncing the store folder failed ({exc}); "
+                          "the run may be lost if the machine crashes now", stacklevel=2)
         total = len(mbytes) + 65 + len(MANIFEST) + 1 + sum(len(b) for b in files.values())
         try:
             self._catalog.upsert([row_from_manifest(manifest, mdigest, total)])
