@@ -360,3 +360,40 @@ def test_demo_writes_everything_and_says_the_data_are_invented(tmp_path):
         m = re.match(r"\s+(html|pdf|json|csv|parquet)\s+(\S+)$", line)
         if m:
             assert Path(m.group(2)).is_file(), line
+
+
+# --------------------------------------------------------------------------- progress
+
+
+def _stderr_on_a_terminal(*args: object) -> tuple[int, bytes]:
+    """Run kktrace with stderr on a pseudo-terminal; return (exit status, terminal bytes)."""
+    pty = pytest.importorskip("pty")
+    master, slave = pty.openpty()
+    env = {k: v for k, v in os.environ.items() if k != "KKTRACE_STORE"}
+    try:
+        proc = subprocess.run([sys.executable, "-m", "solver.cli", *map(str, args)],
+                              stdout=subprocess.PIPE, stderr=slave, env=env, timeout=300)
+    finally:
+        os.close(slave)
+    chunks = []
+    while True:
+        try:
+            chunk = os.read(master, 4096)
+        except OSError:
+            break
+        if not chunk:
+            break
+        chunks.append(chunk)
+    os.close(master)
+    return proc.returncode, b"".join(chunks)
+
+
+def test_progress_bar_on_a_terminal_and_off_with_quiet(trained, tmp_path):
+    args = ("train", trained["train"], "--label", DEMO_LABEL, "--C", 100, "--tol", "1e-6",
+            "--store", tmp_path / "s")
+    code, shown = _stderr_on_a_terminal(*args)
+    assert code == 0
+    assert b"smo iteration" in shown and b"violation" in shown and b"tol 1.0e-06" in shown
+    assert b"\r" in shown  # redrawn in place
+    code, quiet = _stderr_on_a_terminal(*args, "--quiet")
+    assert code == 0 and quiet == b""
