@@ -7,7 +7,8 @@ Published facts used as checks (sources named; exact sections from memory):
   Statistical Learning Theory, 1998; Schölkopf & Smola, Learning with Kernels, 2002,
   chapter on leave-one-out bounds — from memory).  Consequence: leave-one-out errors ≤ #SV.
 * Joachims (2000), "Estimating the generalization performance of a SVM efficiently",
-  ICML: the ξα-estimate |{i : 2αᵢR²_Δ + ξᵢ ≥ 1}| / n bounds the leave-one-out error rate.
+  ICML: the ξα-estimate |{i : 2αᵢR²_Δ + ξᵢ ≥ 1}| / n bounds the leave-one-out error rate
+  of a stable solution (one with a free support vector) — form and condition from memory.
 """
 
 from __future__ import annotations
@@ -116,7 +117,9 @@ def test_exact_loo_equals_brute_force_and_bounds_hold(solved):
         r = _solve(sub)
         f_i = prob.kernel.block(prob.X[i], sub.X)[0] @ (r.alpha * sub.y) + r.bias
         assert fast.loo_values[i] == pytest.approx(f_i, abs=1e-4)
-    # both bounds are upper bounds of the exact leave-one-out error (Vapnik; Joachims 2000)
+    # both bounds are upper bounds of the exact leave-one-out error (Vapnik; Joachims 2000,
+    # the ξα-estimate for stable solutions: at least one free support vector)
+    assert fast.xi_alpha_stable
     assert fast.sv_bound >= fast.error_rate
     assert fast.xi_alpha_estimate >= fast.error_rate
     assert fast.xi_alpha_estimate <= fast.sv_bound  # ξα only counts support vectors
@@ -135,6 +138,21 @@ def test_exact_loo_matches_reference_library():
                              cv=SkLeaveOneOut())
     np.testing.assert_array_equal(loo.loo_wrong, pred != prob.y)
     assert loo.errors == int(np.sum(pred != prob.y)) > 0
+
+
+def test_xi_alpha_needs_a_free_support_vector():
+    # all multipliers at the bound (RBF gamma = 3, C = 0.1 on iris versicolor/virginica):
+    # every leave-one-out prediction flips to the other class (checked with scikit-learn's
+    # SVC), and the ξα-estimate, whose stability condition fails, is not a bound here
+    prob = _problem(load_iris, 1, 2, gamma=3.0, C=0.1)
+    res = _solve(prob)
+    assert res.certificate.n_free == 0
+    loo = leave_one_out(prob, res)
+    pred = cross_val_predict(SVC(kernel="rbf", gamma=3.0, C=0.1, tol=1e-10), prob.X, prob.y,
+                             cv=SkLeaveOneOut())
+    assert loo.errors == int(np.sum(pred != prob.y)) == prob.n
+    assert not loo.xi_alpha_stable and not loo.to_dict()["xi_alpha_stable"]
+    assert loo.xi_alpha_estimate < loo.error_rate <= loo.sv_bound
 
 
 def test_non_support_vectors_are_never_loo_errors(solved):

@@ -8,7 +8,11 @@
   efficiently", ICML; form and constants from memory): a point can be a leave-one-out
   error only if ρ αᵢ R²_Δ + ξᵢ ≥ 1 with ρ = 2, slack ξᵢ = max(0, 1 − yᵢf(xᵢ)) and R²_Δ
   the range of kernel values, c ≤ K(x, x') ≤ c + R²_Δ, taken here over all training pairs
-  (max K − min K).  The count of such points / n bounds the leave-one-out error rate.
+  (max K − min K).  The count of such points / n bounds the leave-one-out error rate for
+  *stable* solutions, those with at least one free support vector (0 < αᵢ < uᵢ), so that
+  the bias is pinned by the margin; reported as ``xi_alpha_stable``.  Without a free
+  support vector the bias can jump when a point is removed and the estimate may fall
+  below the exact value (seen on iris versicolor/virginica, RBF gamma = 3, C = 0.1).
 * Exact: only support vectors are refitted (see :mod:`solver.explain._refit`): each refit
   drops the row, starts from the full solution with that multiplier removed and yᵀα = Δ
   restored over the most similar same-class points, runs on a working set and is
@@ -50,14 +54,16 @@ _BLOCK = 2048
 class LeaveOneOut:
     """Leave-one-out figures for a solved binary classification problem.
 
-    Rates are fractions of n.  ``loo_values`` (n,) f₋ᵢ(xᵢ): the decision value at xᵢ of
-    the model trained without i (for non-refitted points the full model's value, which is
-    exact by the non-support-vector argument); ``loo_wrong`` (n,) its prediction is wrong.
-    Per refit (k refits, in ``refit_rows`` order): ``refit_status`` labels,
-    ``refit_iterations``, ``refit_seconds``, ``refit_max_change`` / ``refit_mean_change``
-    max / mean |f₋ᵢ(xⱼ) − f(xⱼ)| over training rows j ≠ i, ``refit_flips`` how many of those
-    predictions change sign, ``refit_rounds`` solver calls and ``refit_working_set`` final
-    working-set size of each refit.  ``non_converged_rows`` refits that did not meet the tolerance
+    Rates are fractions of n.  ``xi_alpha_stable``: the solution has a free support
+    vector, the condition under which the ξα-estimate is a bound.  ``loo_values`` (n,)
+    f₋ᵢ(xᵢ): the decision value at xᵢ of the model trained without i (for non-refitted
+    points the full model's value, exact by the non-support-vector argument);
+    ``loo_wrong`` (n,) its prediction is wrong.  Per refit (k refits, in ``refit_rows``
+    order): ``refit_status`` labels, ``refit_iterations``, ``refit_seconds``,
+    ``refit_max_change`` / ``refit_mean_change`` max / mean |f₋ᵢ(xⱼ) − f(xⱼ)| over training
+    rows j ≠ i, ``refit_flips`` how many of those predictions change sign, ``refit_rounds``
+    solver calls and ``refit_working_set`` final working-set size of each refit.
+    ``non_converged_rows`` refits that did not meet the tolerance
     (their values are used but flagged).  ``reference_seconds`` is the time of one cold
     refit (fastest of three probes for ``support_refits``, median for ``brute_force``);
     ``estimated_brute_force_seconds`` = n × that, measured directly for ``brute_force``.
@@ -73,6 +79,7 @@ class LeaveOneOut:
     xi_alpha_estimate: float
     xi_alpha_rho: float
     xi_alpha_r2: float
+    xi_alpha_stable: bool
     loo_values: np.ndarray
     loo_wrong: np.ndarray
     refit_rows: np.ndarray
@@ -118,6 +125,7 @@ class LeaveOneOut:
             "errors": self.errors, "error_rate": self.error_rate, "sv_bound": self.sv_bound,
             "xi_alpha_count": self.xi_alpha_count, "xi_alpha_estimate": self.xi_alpha_estimate,
             "xi_alpha_rho": self.xi_alpha_rho, "xi_alpha_r2": self.xi_alpha_r2,
+            "xi_alpha_stable": self.xi_alpha_stable,
             "refits": self.refits, "non_converged": int(self.non_converged_rows.size),
             "non_converged_rows": self.non_converged_rows.tolist(),
             "seconds": self.seconds, "reference_seconds": self.reference_seconds,
@@ -309,7 +317,9 @@ def leave_one_out(
     return LeaveOneOut(
         method=method, n=n, n_support=n_sv, errors=errors, error_rate=errors / n,
         sv_bound=n_sv / n, xi_alpha_count=xa_count, xi_alpha_estimate=xa_count / n,
-        xi_alpha_rho=XI_ALPHA_RHO, xi_alpha_r2=r2, loo_values=loo_values, loo_wrong=loo_wrong,
+        xi_alpha_rho=XI_ALPHA_RHO, xi_alpha_r2=r2,
+        xi_alpha_stable=bool(result.certificate.n_free > 0), loo_values=loo_values,
+        loo_wrong=loo_wrong,
         refit_rows=rows.astype(np.int64), refit_status=tuple(status), refit_iterations=iters,
         refit_seconds=secs, refit_max_change=max_change, refit_mean_change=mean_change,
         refit_flips=flips, refit_rounds=rounds, refit_working_set=wsize,
