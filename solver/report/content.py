@@ -46,13 +46,15 @@ BOUNDED_SHARE = 0.5
 #: (our heuristic; standardising before distance-based kernels is common practice).
 SCALE_RATIO = 100.0
 #: Points drawn on the decision map at most (a seeded sample beyond that; seed 0).
-MAP_POINTS = 2500
+MAP_POINTS = 1500
 #: Most-changed multipliers drawn as trajectories.
 N_TRAJECTORIES = 6
 #: Rows in the table of the most influential points.
 N_INFLUENTIAL = 15
 #: Plot points per series at most (min/max per bucket).
-PLOT_POINTS = 2000
+PLOT_POINTS = 1200
+#: Plot points per multiplier trajectory and in the selection-count plot at most.
+SMALL_PLOT_POINTS = 400
 
 
 @dataclass(frozen=True)
@@ -548,8 +550,8 @@ def _trace_figures(rec: RunRecord, label: str, categories: np.ndarray | None) ->
             tx, ty = replay.trajectory(int(t))
             tx = np.append(tx, float(x[-1]))
             ty = np.append(ty, ty[-1])
-            if tx.size > PLOT_POINTS:
-                tx, ty = minmax_downsample(tx, ty, PLOT_POINTS)
+            if tx.size > SMALL_PLOT_POINTS:
+                tx, ty = minmax_downsample(tx, ty, SMALL_PLOT_POINTS)
             traj.append({"row": int(t), "x": tx, "y": ty, "upper": float(p.upper[t]),
                          "change": float(replay.total_change[t])})
         if traj:
@@ -577,10 +579,13 @@ def _trace_figures(rec: RunRecord, label: str, categories: np.ndarray | None) ->
         rank = np.arange(1, counts.size + 1, dtype=np.float64)
         cats = None if categories is None else np.asarray(categories)[order]
         never = int(np.sum(sel == 0))
-        if counts.size > PLOT_POINTS:
+        drawn = ""
+        if counts.size > SMALL_PLOT_POINTS:
             keep = np.unique(np.concatenate((
-                np.linspace(0, counts.size - 1, PLOT_POINTS).astype(np.int64),
+                np.linspace(0, counts.size - 1, SMALL_PLOT_POINTS).astype(np.int64),
                 np.arange(min(50, counts.size)))))
+            drawn = (f" Drawn at {keep.size} of the {counts.size} ranks (the top 50 and evenly "
+                     "spaced ranks).")
             rank, counts = rank[keep], counts[keep]
             cats = None if cats is None else cats[keep]
         facts["selection"] = {"most": int(sel.max()), "never": never,
@@ -590,7 +595,7 @@ def _trace_figures(rec: RunRecord, label: str, categories: np.ndarray | None) ->
             caption=(f"Times each point entered the working set, points ranked from most to "
                      f"least selected (log scale), marked by final category. {never} of "
                      f"{sel.size} points were never selected; the most selected point entered "
-                     f"{int(sel.max())} times."),
+                     f"{int(sel.max())} times.{drawn}"),
             data={"rank": rank, "count": counts, "category": cats},
         ))
     return figs, notes, facts, series
@@ -830,16 +835,28 @@ def _run_flags(rec: RunRecord, label: str, term: Mapping[str, Any], audit: Mappi
     ev = facts.get("event_counts", {})
     curv = sum(v for k, v in ev.items() if "curvature" in k)
     if curv:
-        flags.append(Flag("curvature_fixes", "caution",
-                          f"{label}: {curv} working-set pairs had non-positive curvature and "
-                          "were regularised (a sign of an indefinite kernel).", label))
+        psd_known = audit is not None and _audit_indefinite(audit) is False
+        flags.append(Flag("curvature_fixes", "note" if psd_known else "caution",
+                          f"{label}: {curv} working-set pair(s) had non-positive curvature "
+                          "K_ii + K_jj − 2K_ij and were regularised; this happens for duplicate "
+                          "points" + (" (the kernel audit found the kernel PSD)." if psd_known
+                                      else " or an indefinite kernel."), label))
+    std = rec.standardiser
+    standardised = not bool(np.all(std.centre == 0) and np.all(std.scale == 1))
     for w in rec.data.get("warnings") or ():
         low = str(w).lower()
-        code = ("conflicting_duplicates" if "duplicate" in low else
-                "unscaled_features" if "scale" in low else "data_warning")
-        flags.append(Flag(code, "caution", f"{label}: data warning — {w}", label))
-    std = rec.standardiser
-    if (bool(np.all(std.centre == 0) and np.all(std.scale == 1))
+        if "duplicate" in low or "identical features" in low:
+            code, sev, tail = "conflicting_duplicates", "caution", ""
+        elif "scale" in low:
+            code = "unscaled_features"
+            sev, tail = (("note", " (the run standardised the features before solving)")
+                         if standardised else ("caution", ""))
+        elif "constant" in low:
+            code, sev, tail = "constant_feature", "caution", ""
+        else:
+            code, sev, tail = "data_warning", "caution", ""
+        flags.append(Flag(code, sev, f"{label}: data warning — {w}{tail}", label))
+    if (not standardised
             and rec.problem.kernel.name in ("rbf", "poly", "sigmoid", "linear")
             and rec.problem.X.shape[1] > 1
             and not any(f.code == "unscaled_features" for f in flags)):

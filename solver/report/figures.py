@@ -154,6 +154,29 @@ def _event_marks(ax: Any, events: Mapping[str, np.ndarray], handles: list) -> No
                               markersize=7, label=f"{plain_text(name)} event"))
 
 
+def _margins(fig: Figure | SubFigure, **over: float) -> dict[str, float]:
+    """Fixed axes margins as figure fractions (cheaper than a layout engine): room for tick
+    labels on the left, the axis label below and a one-line legend above."""
+    w, h = _size(fig)
+    m = {"left": min(0.2, 0.75 / w), "right": 0.98, "bottom": min(0.3, 0.45 / h),
+         "top": 1.0 - min(0.25, 0.36 / h)}
+    m.update(over)
+    return m
+
+
+def _size(fig: Figure | SubFigure) -> tuple[float, float]:
+    """Width and height in inches of a figure or sub-figure."""
+    bb = fig.bbox
+    dpi = fig.figure.dpi
+    return bb.width / dpi, bb.height / dpi
+
+
+def _axes(fig: Figure | SubFigure, **over: float) -> Any:
+    """One axes placed with :func:`_margins` (ignored when a layout engine is active)."""
+    gs = fig.add_gridspec(1, 1, **_margins(fig, **over))
+    return fig.add_subplot(gs[0])
+
+
 def _legend_above(ax: Any, handles: list) -> None:
     """Legend in one band above the axes, left-aligned, so it never covers data."""
     if handles:
@@ -162,7 +185,7 @@ def _legend_above(ax: Any, handles: list) -> None:
 
 
 def _draw_violation(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
-    ax = fig.add_subplot()
+    ax = _axes(fig)
     y = np.asarray(d["y"], dtype=np.float64)
     x = np.asarray(d["x"], dtype=np.float64)
     pos = y > 0
@@ -181,7 +204,10 @@ def _draw_violation(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
 
 
 def _draw_objective(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
-    top, bottom = fig.subplots(2, 1, sharex=True, height_ratios=[1.3, 1.0])
+    gs = fig.add_gridspec(2, 1, height_ratios=[1.3, 1.0], hspace=0.08, **_margins(fig, top=0.9))
+    top = fig.add_subplot(gs[0])
+    bottom = fig.add_subplot(gs[1], sharex=top)
+    top.tick_params(labelbottom=False)
     top.plot(d["x"], d["y"], color=_c("tide"), label="dual objective")
     if "lower_x" in d:
         top.plot(d["lower_x"], d["lower_y"], color=_c("rust"), linestyle=(0, (4, 2)),
@@ -201,7 +227,7 @@ def _draw_objective(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
 
 
 def _draw_gap(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
-    ax = fig.add_subplot()
+    ax = _axes(fig)
     styles = {"gap": ("tide", "-"), "relative_gap": ("rust", "-"),
               "primal_residual": ("heather", (0, (4, 2))), "dual_residual": ("pine", (0, (1, 1.5)))}
     for name, (x, y) in d["lines"].items():
@@ -216,7 +242,7 @@ def _draw_gap(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
 
 
 def _draw_sets(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
-    ax = fig.add_subplot()
+    ax = _axes(fig)
     if "support" in d:
         x, y = d["support"]
         ax.step(x, y, where="post", color=_c("tide"), label="support set (α > lower bound)")
@@ -238,7 +264,7 @@ def _draw_sets(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
 
 
 def _draw_trajectories(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
-    ax = fig.add_subplot()
+    ax = _axes(fig, right=0.84)
     for k, line in enumerate(d["lines"]):
         colour = _c(LINE_COLOURS[k % len(LINE_COLOURS)])
         ax.step(line["x"], line["y"], where="post", color=colour, linewidth=0.9,
@@ -282,7 +308,7 @@ CATEGORY_COLOURS = {"bounded": "mustard", "wrong": "oxblood", "zero": "muted", "
 
 
 def _draw_selection(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
-    ax = fig.add_subplot()
+    ax = _axes(fig)
     rank, count = np.asarray(d["rank"]), np.asarray(d["count"])
     cats = d.get("category")
     ok = count > 0
@@ -307,7 +333,7 @@ def _draw_selection(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
 
 
 def _draw_regions(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
-    ax = fig.add_subplot()
+    ax = _axes(fig, right=0.7, top=0.96)
     ax.grid(False)
     v = np.asarray(d["values"])
     gx, gy = np.asarray(d["gx"]), np.asarray(d["gy"])
@@ -346,7 +372,7 @@ def _draw_regions(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
 
 
 def _draw_loo(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
-    ax = fig.add_subplot()
+    ax = _axes(fig)
     x, y = np.asarray(d["x"]), np.asarray(d["y"])
     wrong = np.asarray(d["wrong"], dtype=bool)
     ax.axhline(0.0, color=_c("ink"), linewidth=0.7)
@@ -377,11 +403,16 @@ def draw(fig: Figure | SubFigure, fd: FigureData) -> None:
     func(fig, fd.data)
 
 
+#: Figure kinds with user-supplied axis or legend text: laid out by matplotlib's
+#: constrained layout (slower); all others use fixed margins.
+NEEDS_LAYOUT = frozenset({"regions"})
+
+
 def render_figure(fd: FigureData) -> Figure:
     """A new stand-alone matplotlib figure for ``fd``, sized for the HTML page."""
     _, size = _DRAW[fd.kind]
     with style():
-        fig = Figure(figsize=size, layout="constrained")
+        fig = Figure(figsize=size, layout="constrained" if fd.kind in NEEDS_LAYOUT else None)
         draw(fig, fd)
     return fig
 
@@ -392,6 +423,9 @@ _XMLNS = re.compile(r'\s+xmlns(:xlink)?="[^"]*"')
 _SIZE_ATTR = re.compile(r'\s(width|height)="[0-9.]+pt"')
 _ID = re.compile(r'\bid="([^"]+)"')
 _REF = re.compile(r'(url\(#|href="#)([^)"]+)')
+_PATH_D = re.compile(r'\bd="([^"]*)"')
+_XY = re.compile(r'(\s(?:x|y|width|height)=")([-0-9.]+)"')
+_DECIMALS = re.compile(r"(\.[0-9]{2})[0-9]+")
 
 
 def svg_text(fig: Figure, prefix: str) -> str:
@@ -413,6 +447,9 @@ def svg_text(fig: Figure, prefix: str) -> str:
     s = head + s[head_end:]
     s = _ID.sub(lambda m: f'id="{prefix}-{m.group(1)}"', s)
     s = _REF.sub(lambda m: f"{m.group(1)}{prefix}-{m.group(2)}", s)
+    # coordinates to 0.01 pt: path data and x/y attributes only (never text content)
+    s = _PATH_D.sub(lambda m: 'd="' + _DECIMALS.sub(r"\1", m.group(1)) + '"', s)
+    s = _XY.sub(lambda m: m.group(1) + _DECIMALS.sub(r"\1", m.group(2)) + '"', s)
     return s.strip()
 
 

@@ -264,14 +264,14 @@ def plan_pages(content: ReportContent) -> list[PdfPage]:
 
 
 _FONTS = {
-    "h": dict(family="DejaVu Sans", size=10.0, weight="bold", color=PALETTE["tide"]),
+    "h": dict(family="DejaVu Sans", size=10.5, color=PALETTE["tide"]),
     "p": dict(family="DejaVu Sans", size=8.0, color=PALETTE["ink"]),
-    "ps": dict(family="DejaVu Sans", size=8.0, weight="bold", color=PALETTE["oxblood"]),
+    "ps": dict(family="DejaVu Sans", size=8.0, color=PALETTE["oxblood"]),
     "i": dict(family="DejaVu Sans", size=8.0, color="#5f676d"),
     "m": dict(family="DejaVu Sans Mono", size=7.2, color=PALETTE["ink"]),
     "mb": dict(family="DejaVu Sans Mono", size=7.2, color=PALETTE["tide"]),
     "f": dict(family="DejaVu Sans", size=8.0, color="#8a5f00"),
-    "fs": dict(family="DejaVu Sans", size=8.0, weight="bold", color=PALETTE["oxblood"]),
+    "fs": dict(family="DejaVu Sans", size=8.0, color=PALETTE["oxblood"]),
 }
 
 
@@ -280,7 +280,7 @@ def _frame(fig: Figure, page: PdfPage, number: int, total: int, content: ReportC
              color=PALETTE["tide"], family="DejaVu Sans")
     fig.text(1 - LEFT, 0.975, f"page {number} of {total}", fontsize=7, ha="right",
              color="#5f676d", family="DejaVu Sans")
-    fig.text(LEFT, TOP, plain_text(page.heading, 200), fontsize=12.5, weight="bold",
+    fig.text(LEFT, TOP, plain_text(page.heading, 200), fontsize=13,
              color=PALETTE["ink"], family="DejaVu Sans", va="top")
     fig.add_artist(_rule(TOP - 0.024))
     fig.text(LEFT, 0.03, plain_text(content.caution, 400), fontsize=6.2,
@@ -304,15 +304,17 @@ def _draw_text_page(fig: Figure, page: PdfPage) -> None:
 
 
 def _draw_figure_page(fig: Figure, page: PdfPage) -> None:
-    # always FIGS_PER_PAGE slots, so a lone figure keeps the size it has on a full page
-    sub = fig.subfigures(FIGS_PER_PAGE + 1, 1, height_ratios=[0.06] + [1.0] * FIGS_PER_PAGE)
-    for sf, fd in zip(sub[1:], page.figures, strict=False):
-        inner = sf.subfigures(2, 1, height_ratios=[1.0, 0.16])
-        inner[0].suptitle(plain_text(fd.title, 200), x=0.02, ha="left", fontsize=8.5,
-                          weight="bold")
-        draw(inner[0], fd)
-        caption = textwrap.fill(plain_text(fd.caption, 2000), width=130)
-        inner[1].text(0.02, 0.95, caption, va="top", fontsize=6.8, family="DejaVu Sans",
+    # always FIGS_PER_PAGE slots, so a lone figure keeps the size it has on a full page;
+    # fixed margins, no layout engine (see figures._margins)
+    sub = fig.subfigures(FIGS_PER_PAGE + 2, 1,
+                         height_ratios=[0.12] + [1.0] * FIGS_PER_PAGE + [0.06])
+    for sf, fd in zip(sub[1:-1], page.figures, strict=False):
+        inner = sf.subfigures(3, 1, height_ratios=[0.07, 1.0, 0.2])
+        inner[0].text(LEFT, 0.2, plain_text(fd.title, 200), fontsize=9,
+                      family="DejaVu Sans", color=PALETTE["ink"])
+        draw(inner[1], fd)
+        caption = textwrap.fill(plain_text(fd.caption, 2000), width=140)
+        inner[2].text(LEFT, 0.9, caption, va="top", fontsize=6.8, family="DejaVu Sans",
                       color=PALETTE["ink"])
 
 
@@ -326,8 +328,6 @@ def render_pdf(content: ReportContent, path: str | Path) -> int:
         for k, page in enumerate(pages, start=1):
             fig = Figure(figsize=PAGE)
             if page.figures:
-                fig.set_layout_engine("constrained")
-                fig.get_layout_engine().set(rect=(0.04, 0.05, 0.92, 0.86))
                 _draw_figure_page(fig, page)
             else:
                 _draw_text_page(fig, page)

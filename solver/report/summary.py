@@ -87,7 +87,9 @@ def summary_dict(content: ReportContent) -> dict[str, Any]:
     c = content
     comp = None
     if c.comparison:
-        comp = {"verdict": c.comparison["verdict"], "failed": list(c.comparison["failed"]),
+        comp = {"verdict": c.comparison["verdict"],
+                "verdict_text": c.comparison.get("verdict_text") or "",
+                "failed": list(c.comparison["failed"]),
                 "measures": [dict(m) for m in c.comparison["measures"]]}
     out = {
         "schema": SCHEMA_ID,
