@@ -320,6 +320,24 @@ def test_parent_chain_is_tamper_evident(tmp_path) -> None:
     assert not store.verify(b).ok
 
 
+def test_consistent_forgery_is_caught_by_the_catalog(tmp_path) -> None:
+    """Rewriting manifest.json *and* manifest.sha256 still differs from the digest the
+    catalog recorded at save time (until someone also rebuilds the catalog)."""
+    import hashlib
+
+    store = RunStore(tmp_path)
+    rid = store.save(synthetic_record(3, rows=10))
+    d = store.run_dir(rid)
+    m = json.loads((d / "manifest.json").read_text())
+    m["solver"]["status"] = "converged"
+    new = (json.dumps(m, indent=1) + "\n").encode()
+    (d / "manifest.json").write_bytes(new)
+    (d / "manifest.sha256").write_text(f"{hashlib.sha256(new).hexdigest()}  manifest.json\n")
+    v = store.verify(rid)
+    assert not v.ok and v.problems == [
+        "manifest.json: digest differs from the one the catalog recorded at save"]
+
+
 def test_unknown_parent_is_refused(tmp_path) -> None:
     store = RunStore(tmp_path)
     with pytest.raises(InvalidInputError, match="no run"):

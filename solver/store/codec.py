@@ -409,7 +409,7 @@ def decode_record(manifest: Any, blobs: Mapping[str, bytes]) -> RunRecord:
         if kind == "table":
             dtypes = _str_map(get(spec, "columns", dict, M, path), M, f"{path}.columns")
             cols = read_table(blob(f"{name}.parquet"), f"{name}.parquet",
-                              _table_dtypes(dtypes, M, f"{path}.columns"))
+                              _table_dtypes(dtypes, M, f"{path}.columns"), f"{path}.columns")
             for col, dt in dtypes.items():
                 if dt.startswith("<U"):
                     cols[col] = cols[col].astype(dt)
@@ -455,12 +455,15 @@ def _decode_trace(t: dict[str, Any], blob: Any, n: int) -> Trace:
     ev_types = _table_dtypes(_str_map(get(ev, "columns", dict, M, "trace.events"), M,
                                       "trace.events.columns"), M, "trace.events.columns")
     rows = get(t, "rows", int, M, P)
-    cols = read_table(blob("trace.parquet"), "trace.parquet", col_types)
+    cols = read_table(blob("trace.parquet"), "trace.parquet", col_types, "trace.columns")
     if any(a.shape[0] != rows for a in cols.values()):
-        raise IntegrityError(f"trace.parquet: row count differs from trace.rows = {rows}")
-    events = read_table(blob("events.parquet"), "events.parquet", ev_types)
+        raise IntegrityError(f"trace.parquet: row count differs from manifest.json field "
+                             f"trace.rows = {rows}")
+    events = read_table(blob("events.parquet"), "events.parquet", ev_types,
+                        "trace.events.columns")
     if any(a.shape[0] != get(ev, "rows", int, M, "trace.events") for a in events.values()):
-        raise IntegrityError("events.parquet: row count differs from trace.events.rows")
+        raise IntegrityError("events.parquet: row count differs from manifest.json field "
+                             "trace.events.rows")
     kinds_raw = _str_map(get(t, "event_kinds", dict, M, P), M, "trace.event_kinds")
     try:
         kinds = {int(k): v for k, v in kinds_raw.items()}

@@ -354,12 +354,12 @@ def _from_arrow(col: pa.ChunkedArray) -> np.ndarray:
 
 
 def read_table(
-    data: bytes, fname: str, expected: Mapping[str, str] | None = None
+    data: bytes, fname: str, expected: Mapping[str, str] | None = None, spec: str = "columns"
 ) -> dict[str, np.ndarray]:
     """Read Parquet bytes into ``{name: 1-D numpy array}``.
 
     ``expected`` maps column name → numpy dtype string (``"str"`` for text); column set,
-    order and dtypes must match exactly.  Malformed bytes → :class:`IntegrityError`.
+    order and dtypes must match exactly (``spec`` names the manifest field in messages).  Malformed bytes → :class:`IntegrityError`.
     """
     try:
         # ParquetFile, not pq.read_table: the latter imports pandas (a second of start-up)
@@ -368,7 +368,8 @@ def read_table(
         raise IntegrityError(f"{fname}: not a readable Parquet file ({exc})") from None
     names = list(table.column_names)
     if expected is not None and names != list(expected):
-        raise IntegrityError(f"{fname}: columns {names} do not match the manifest {list(expected)}")
+        raise IntegrityError(f"{fname}: columns {names} do not match manifest.json field "
+                             f"{spec} {list(expected)}")
     out: dict[str, np.ndarray] = {}
     for name in names:
         col = table.column(name)
@@ -385,7 +386,8 @@ def read_table(
             raise IntegrityError(f"{fname}: column {name!r} has unsupported type {typ}")
         if expected is not None and expected[name] != dt:
             raise IntegrityError(
-                f"{fname}: column {name!r} has type {dt}, the manifest says {expected[name]}"
+                f"{fname}: column {name!r} has type {dt}, but manifest.json field "
+                f"{spec}.{name} says {expected[name]}"
             )
         out[name] = np.array(arr, copy=True) if dt != "str" else arr
     return out

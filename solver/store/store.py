@@ -287,7 +287,9 @@ class RunStore:
         while parent is not None:
             pid, want = parent.get("run_id"), parent.get("manifest_sha256")
             if not is_run_id(pid) or not isinstance(want, str):
-                problems.append(f"{MANIFEST}: parent record of run {chain[-1]} is malformed")
+                problems.append(f"{MANIFEST}: field parent of run {chain[-1]} is malformed "
+                                f"(parent.run_id {pid!r} must be a valid run id, "
+                                "parent.manifest_sha256 a string)")
                 return False
             if pid in chain or len(chain) > _MAX_CHAIN:
                 problems.append(f"parent run {pid}: the parent chain loops")
