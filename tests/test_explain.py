@@ -8,6 +8,8 @@ import math
 import numpy as np
 import pyarrow.parquet as pq
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from sklearn.datasets import load_breast_cancer, load_iris, load_wine
 from sklearn.svm import SVC
 
@@ -377,3 +379,23 @@ def test_non_explicit_kernels_give_norm_only():
     vs = feature_space(sig, _result(sig, res.alpha))
     assert not vs.exact
     assert math.isnan(vs.norm) == (vs.squared_norm < 0)
+
+
+# ---------------------------------------------------------------- properties
+
+@settings(derandomize=True, max_examples=30, deadline=None)
+@given(seed=st.integers(0, 10_000), top=st.integers(1, 8), gamma=st.floats(0.05, 5.0))
+def test_breakdown_identity_property(seed, top, gamma):
+    # any coefficients and bias: top terms + remainder + bias reproduce f to rounding
+    rng = np.random.default_rng(seed)
+    k, d = int(rng.integers(1, 30)), int(rng.integers(1, 5))
+    from solver.model import Model
+
+    model = Model(support_rows=np.sort(rng.choice(500, k, replace=False)),
+                  support_points=rng.normal(size=(k, d)), coefficients=rng.normal(size=k),
+                  bias=float(rng.normal()), kernel=RBFKernel(gamma=gamma),
+                  standardiser=Standardiser.identity(d), labels=(0, 1))
+    bd = breakdown(model, rng.normal(size=(7, d)), top=top)
+    assert np.max(bd.reconstruction_error()) < 1e-12
+    assert np.all(np.diff(np.abs(bd.top_contributions), axis=1) <= 0)
+    assert np.all((bd.top_shares >= 0) & (bd.top_shares <= 1))

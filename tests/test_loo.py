@@ -17,6 +17,8 @@ import warnings
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from sklearn.datasets import load_breast_cancer, load_iris, load_wine
 from sklearn.model_selection import LeaveOneOut as SkLeaveOneOut
 from sklearn.model_selection import cross_val_predict
@@ -297,3 +299,22 @@ def test_bad_requests():
     other = _problem(load_wine, 0, 1, gamma=0.1)
     with pytest.raises(InvalidInputError, match="rows"):
         sensitivity(other, _solve(other), loo=leave_one_out(prob, res))
+
+
+@settings(derandomize=True, max_examples=40, deadline=None)
+@given(seed=st.integers(0, 10_000), C=st.floats(0.1, 10.0))
+def test_removal_start_feasible_property(seed, C):
+    # any feasible α and any removed row: the warm start is feasible for the smaller problem
+    rng = np.random.default_rng(seed)
+    n = int(rng.integers(3, 25))
+    y = np.where(rng.random(n) < 0.5, -1, 1)
+    y[:2] = [-1, 1]
+    prob = binary_classification(rng.normal(size=(n, 2)), y, kernel=RBFKernel(gamma=1.0), C=C)
+    a = rng.uniform(0, C, n)
+    pos, neg = prob.y > 0, prob.y < 0  # scale the heavier class down so that yᵀα = 0
+    s_pos, s_neg = a[pos].sum(), a[neg].sum()
+    a[pos if s_pos > s_neg else neg] *= min(s_pos, s_neg) / max(s_pos, s_neg)
+    i = int(rng.integers(0, n))
+    sub, _ = drop_row(prob, i)
+    bound, eq = sub.feasibility(removal_start(prob, a, i))
+    assert bound == 0.0 and eq <= 1e-12 * max(1.0, a.sum())
