@@ -39,7 +39,7 @@ MAX_ROUNDS = 4
 _BLOCK = 2048
 
 
-@dataclass(frozen=True)
+@dataclass(frozen=True, eq=False)
 class Refit:
     """Outcome of one refit: ``alpha`` (n − 1,) over ``keep`` (the kept row numbers),
     ``bias``, ``status`` label, ``iterations`` summed over rounds, ``rounds`` solver calls,
@@ -157,7 +157,9 @@ class Refitter:
             res = self.solve(self._subproblem(rows), alpha0=a[rows], **self.options)
             iterations += int(res.iterations)
             a[rows] = res.alpha
-            if res.status != Status.CONVERGED:
+            if res.status != Status.CONVERGED or rows.size == keep.size:
+                # not converged, or solved on the whole dropped problem: the solver's own
+                # certificate is the certificate of the dropped problem
                 status, bias = res.status.label, float(res.bias)
                 viol = float(res.certificate.max_violation)
                 break
@@ -166,9 +168,6 @@ class Refitter:
             viol, bias = float(cert.max_violation), float(cert.bias)
             if cert.meets_tol:
                 status = Status.CONVERGED.label
-                break
-            if rows.size == keep.size:  # solver converged but the certificate disagrees
-                status = Status.NUMERICAL_ERROR.label
                 break
             # outside points whose KKT condition fails join the working set
             bad = keep[(cert.kkt_residual > 0.5 * cert.tol) & ~inside[keep]]
