@@ -6,22 +6,34 @@ The loop works in the signed variables βᵢ = yᵢαᵢ, in which the dual read
 
 and keeps F = −(Kβ + q) = −y∘G, so that m(α) = max F over I_up = {β < hi} and
 M(α) = min F over I_low = {β > lo} (Keerthi et al. 2001; Fan, Chen & Lin 2005, eq. 9).
-Every function is typed by its arrays, cached on disk and runs under NUMBA_DISABLE_JIT=1.
+A step moves βᵢ += s, βⱼ −= s.  Membership of I_up / I_low is kept as additive offsets
+(0 or ∓inf) so that both O(n) passes are branch-free and vectorise.
+
+Variables live at *positions*: the active (not shrunk) ones occupy positions 0..a−1 in
+increasing original index, so ties broken by lowest position are broken by lowest index.
+``perm`` maps position → original index.  Kernel rows come from a lazily filled full
+Gram matrix (rows in original order) or, when that does not fit, from an LRU cache of
+rows over the active positions, computed from the data.  Every function is typed by its
+arrays, cached on disk and also runs under NUMBA_DISABLE_JIT=1.
 """
 
 from __future__ import annotations
 
 import numpy as np
-from numba import njit
+from numba import config, njit
+
+# ---------------------------------------------------------------- constants ----------
 
 # return codes of smo_run
-RUN_CONVERGED = 0
-RUN_PAUSE = 1  # reached the requested iteration (snapshot / callback / time check)
-RUN_TRACE_FULL = 2  # trace arrays need more room
+RUN_CONVERGED = 0  # optimality test met on the active set
+RUN_PAUSE = 1  # reached istate[IS_STOP_AT] iterations
+RUN_TRACE_FULL = 2  # trace or event arrays need more room
 RUN_NUMERICAL = 3
 RUN_STALLED = 4
+RUN_SHRINK = 5  # shrinking is due (the driver shrinks, then resumes)
+RUN_NEED_ROW = 6  # a kernel row of an externally evaluated kernel is needed
 
-# istate slots
+# istate slots (int64)
 IS_ITER = 0
 IS_STOP_AT = 1
 IS_ROWS = 2
@@ -33,106 +45,564 @@ IS_LAST_IMPROVE = 7
 IS_STALL_WINDOW = 8
 IS_FORCE_ROW = 9
 IS_CURV_FIXES = 10
-IS_SIZE = 16
+IS_ACTIVE = 11
+IS_SHRINK_AT = 12
+IS_PHASE = 13
+IS_SEL_I = 14
+IS_SEL_J = 15
+IS_NEED_ORIG = 16  # original index of the row an external kernel must supply
+IS_EXT_ORIG = 17  # original index of the row waiting in ext_row (-1: none)
+IS_MODE = 18  # 0 full Gram (lazy rows), 1 row cache
+IS_KERNEL = 19  # kernel code (KERNEL_* below)
+IS_DEGREE = 20
+IS_SLOTS = 21  # number of cache slots
+IS_USED = 22  # slots in use
+IS_HEAD = 23  # most recently used slot
+IS_TAIL = 24  # least recently used slot
+IS_STRIDE = 25  # cache slot stride (elements)
+IS_HITS = 26
+IS_MISSES = 27
+IS_ROW_EVALS = 28  # kernel rows computed from data
+IS_SIZE = 32
 
-# fstate slots
+# fstate slots (float64)
 FS_OBJ = 0
 FS_TOL = 1
 FS_TAU = 2
 FS_BEST_OBJ = 3
 FS_VIOL = 4
-FS_SIZE = 8
+FS_M_UP = 5
+FS_M_LOW = 6
+FS_GAMMA = 7
+FS_OFFSET = 8
+FS_SIZE = 16
 
 EV_SHRINK = 1
 EV_RECONSTRUCT = 2
 EV_CURVATURE = 3
 
+KERNEL_LINEAR = 0
+KERNEL_POLY = 1
+KERNEL_RBF = 2
+KERNEL_SIGMOID = 3
+KERNEL_EXTERNAL = 9
 
-@njit(cache=True)
-def smo_run(K, diag, F, beta, lo, hi, y, istate, fstate,
-            tr_it, tr_i, tr_j, tr_ai, tr_aj, tr_step, tr_obj, tr_viol, tr_act,
-            ev_it, ev_kind, ev_val):  # pragma: no cover - compiled
-    """Run SMO iterations on the full variable set until a stop or pause condition.
+#: block length of the two-level arg-max / arg-min searches
+BLK = 512
+#: chunk length of kernel-row evaluation
+CHUNK = 256
 
-    K (n, n) Gram, diag (n,) its diagonal; F, beta (n,) updated in place; lo, hi (n,)
-    bounds of β; y (n,) signs.  istate/fstate hold counters and scalars (slots above);
-    tr_* are trace columns, ev_* event columns, written from row istate[IS_ROWS] /
-    istate[IS_EVENTS].  Returns one of the RUN_* codes.
+_LN2_HI = 6.93147180369123816490e-01
+_LN2_LO = 1.90821492927058770002e-10
+_LOG2E = 1.44269504088896338700e00
+_SHIFT = 6755399441055744.0  # 1.5·2^52: x + _SHIFT − _SHIFT rounds x to an integer
+
+# ---------------------------------------------------------------- min / max ----------
+# llvm.maxnum / llvm.minnum (flagged no-NaN, no-signed-zero) let LLVM vectorise the
+# reductions; a compare-and-select written in Python does not vectorise here.  The
+# pure-Python versions agree for non-NaN arguments (a NaN objective stops the loop).
+# error_model="numpy" drops Python's zero-division check, which blocks vectorisation;
+# every divisor in this module is > 0 by construction.
+
+if config.DISABLE_JIT:  # pragma: no cover - exercised in a subprocess test
+
+    def _fmax(a: float, b: float) -> float:
+        return a if a >= b else b
+
+    def _fmin(a: float, b: float) -> float:
+        return a if a <= b else b
+
+else:
+    from llvmlite import ir
+    from numba import types
+    from numba.extending import intrinsic
+
+    def _llvm_binary(name: str):
+        @intrinsic
+        def _op(typingctx, a, b):
+            sig = types.float64(types.float64, types.float64)
+
+            def codegen(context, builder, signature, args):
+                dbl = ir.DoubleType()
+                fn = builder.module.declare_intrinsic(
+                    name, [dbl], ir.FunctionType(dbl, [dbl, dbl]))
+                return builder.call(fn, args, fastmath=("nnan", "nsz"))
+
+            return sig, codegen
+
+        return _op
+
+    _fmax = _llvm_binary("llvm.maxnum")
+    _fmin = _llvm_binary("llvm.minnum")
+
+
+_jit = njit(cache=True, error_model="numpy")
+
+# ---------------------------------------------------------------- kernel rows --------
+
+
+@_jit
+def exp_inplace(x, ibuf):
+    """x[t] ← exp(x[t]) for x (L,) float64, x ≤ 709; below −708 the result is exp(−708).
+
+    Cody–Waite reduction x = k ln2 + r, |r| ≤ ln2/2, degree-13 Taylor polynomial and
+    scaling by 2^k built from its bit pattern in ``ibuf`` (L,) int64; ≤ 1 ulp from libm
+    in our checks.  Written as two flat loops so that it vectorises.
     """
-    n = F.shape[0]
+    n = x.shape[0]
+    fb = ibuf[:n].view(np.float64)
+    for t in range(n):
+        v = min(max(x[t], -708.0), 709.0)
+        k = (v * _LOG2E + _SHIFT) - _SHIFT
+        r = (v - k * _LN2_HI) - k * _LN2_LO
+        p = 1.0 / 6227020800.0
+        p = p * r + 1.0 / 479001600.0
+        p = p * r + 1.0 / 39916800.0
+        p = p * r + 1.0 / 3628800.0
+        p = p * r + 1.0 / 362880.0
+        p = p * r + 1.0 / 40320.0
+        p = p * r + 1.0 / 5040.0
+        p = p * r + 1.0 / 720.0
+        p = p * r + 1.0 / 120.0
+        p = p * r + 1.0 / 24.0
+        p = p * r + 1.0 / 6.0
+        p = p * r + 0.5
+        p = p * r + 1.0
+        p = p * r + 1.0
+        ibuf[t] = (np.int64(k) + 1023) << 52
+        x[t] = p
+    for t in range(n):
+        x[t] = x[t] * fb[t]
+
+
+@_jit
+def self_dots(XK, out):
+    """out[t] = Σₖ XK[k, t]² with the same summation order as :func:`kernel_row`."""
+    d, n = XK.shape
+    for t in range(n):
+        acc = 0.0
+        k = 0
+        while k + 4 <= d:
+            x0 = XK[k, t]
+            x1 = XK[k + 1, t]
+            x2 = XK[k + 2, t]
+            x3 = XK[k + 3, t]
+            acc += (x0 * x0 + x1 * x1) + (x2 * x2 + x3 * x3)
+            k += 4
+        while k < d:
+            acc += XK[k, t] * XK[k, t]
+            k += 1
+        out[t] = acc
+
+
+@_jit
+def kernel_row(XK, sq, src, count, out, code, gamma, offset, degree, acc, ibuf):
+    """out[t] = K(x_src, x_t) for t < count, x_t = XK[:, t]  (XK (d, n) float64).
+
+    sq (n,) squared norms from :func:`self_dots`; acc (CHUNK,) float64 and ibuf (CHUNK,)
+    int64 work buffers; out may be float32 (values are rounded on store).  Every entry is
+    computed by the same arithmetic wherever column t sits, so rows over permuted
+    columns are bitwise equal to the matching entries of unpermuted rows.
+    """
+    d = XK.shape[0]
+    sqi = sq[src]
+    for s in range(0, count, CHUNK):
+        e = min(count, s + CHUNK)
+        L = e - s
+        a = acc[:L]
+        for t in range(L):
+            a[t] = 0.0
+        k = 0
+        while k + 4 <= d:
+            x0 = XK[k, src]
+            x1 = XK[k + 1, src]
+            x2 = XK[k + 2, src]
+            x3 = XK[k + 3, src]
+            r0 = XK[k, s:e]
+            r1 = XK[k + 1, s:e]
+            r2 = XK[k + 2, s:e]
+            r3 = XK[k + 3, s:e]
+            for t in range(L):
+                a[t] += (x0 * r0[t] + x1 * r1[t]) + (x2 * r2[t] + x3 * r3[t])
+            k += 4
+        while k < d:
+            xk = XK[k, src]
+            rk = XK[k, s:e]
+            for t in range(L):
+                a[t] += xk * rk[t]
+            k += 1
+        o = out[s:e]
+        if code == KERNEL_RBF:
+            sqs = sq[s:e]
+            for t in range(L):
+                v = (sqi + sqs[t]) - 2.0 * a[t]
+                a[t] = -gamma * max(v, 0.0)
+            exp_inplace(a, ibuf)
+            for t in range(L):
+                o[t] = a[t]
+        elif code == KERNEL_POLY:
+            for t in range(L):
+                v = gamma * a[t] + offset
+                w = v
+                for _ in range(degree - 1):
+                    w = w * v
+                o[t] = w
+        elif code == KERNEL_SIGMOID:
+            for t in range(L):
+                o[t] = np.tanh(gamma * a[t] + offset)
+        else:
+            for t in range(L):
+                o[t] = a[t]
+
+
+@_jit
+def kernel_diag(XK, sq, out, code, gamma, offset, degree, acc, ibuf):
+    """out[t] = K(x_t, x_t) (n,), by the same arithmetic as :func:`kernel_row`."""
+    n = XK.shape[1]
+    one = np.empty(1)
+    for t in range(n):
+        v = sq[t]
+        if code == KERNEL_RBF:
+            one[0] = -gamma * max((v + v) - 2.0 * v, 0.0)
+            exp_inplace(one, ibuf)
+            out[t] = one[0]
+        elif code == KERNEL_POLY:
+            b = gamma * v + offset
+            w = b
+            for _ in range(degree - 1):
+                w = w * b
+            out[t] = w
+        elif code == KERNEL_SIGMOID:
+            out[t] = np.tanh(gamma * v + offset)
+        else:
+            out[t] = v
+
+
+@_jit
+def fill_rows(XK, sq, rows, gram, ready, code, gamma, offset, degree, acc, ibuf):
+    """Compute Gram rows ``rows`` (original indices) that are not ready yet."""
+    n = gram.shape[1]
+    done = 0
+    for r in range(rows.shape[0]):
+        o = rows[r]
+        if ready[o] == 0:
+            kernel_row(XK, sq, o, n, gram[o], code, gamma, offset, degree, acc, ibuf)
+            ready[o] = 1
+            done += 1
+    return done
+
+
+@_jit
+def gram_times(gram, src, coef, targets, out):
+    """out[k] = Σ_s coef[s] · gram[src[s], targets[k]] (symmetric Gram, rows src ready)."""
+    for k in range(targets.shape[0]):
+        out[k] = 0.0
+    for s in range(src.shape[0]):
+        row = gram[src[s]]
+        c = coef[s]
+        for k in range(targets.shape[0]):
+            out[k] += c * row[targets[k]]
+
+
+@_jit
+def compact_cache(cache, stride, slot_owner, keep, new_a):
+    """Rows held in cache slots keep only the positions ``keep`` (increasing), in place."""
+    for s in range(slot_owner.shape[0]):
+        if slot_owner[s] >= 0:
+            base = s * stride
+            for k in range(new_a):
+                cache[base + k] = cache[base + keep[k]]
+
+
+# ---------------------------------------------------------------- row cache ----------
+
+
+@_jit
+def _lru_touch(s, lru_prev, lru_next, istate):
+    """Move slot s to the head (most recently used) of the LRU list."""
+    head = istate[IS_HEAD]
+    if head == s:
+        return
+    p = lru_prev[s]
+    q = lru_next[s]
+    if p >= 0:
+        lru_next[p] = q
+    if q >= 0:
+        lru_prev[q] = p
+    if istate[IS_TAIL] == s:
+        istate[IS_TAIL] = p
+    lru_prev[s] = -1
+    lru_next[s] = head
+    if head >= 0:
+        lru_prev[head] = s
+    istate[IS_HEAD] = s
+    if istate[IS_TAIL] < 0:
+        istate[IS_TAIL] = s
+
+
+@_jit
+def _lru_take(slot_of, slot_owner, lru_prev, lru_next, istate):
+    """A slot for a new row: a free one, else the least recently used (evicted)."""
+    used = istate[IS_USED]
+    if used < istate[IS_SLOTS]:
+        s = used
+        istate[IS_USED] = used + 1
+        lru_prev[s] = -1
+        lru_next[s] = -1
+    else:
+        s = istate[IS_TAIL]
+        slot_of[slot_owner[s]] = -1
+    _lru_touch(s, lru_prev, lru_next, istate)
+    return s
+
+
+@_jit
+def _fetch(p, a, perm, gram, ready, cache, slot_of, slot_owner, lru_prev, lru_next, ext_row,
+           XK, sq, acc, ibuf, istate, fstate):
+    """Kernel row of position p over positions 0..a−1 (a view); ok=False if an external
+    kernel must supply it first (istate[IS_NEED_ORIG] says which)."""
+    o = perm[p]
+    n = perm.shape[0]
+    mode = istate[IS_MODE]
+    code = istate[IS_KERNEL]
+    if mode == 0:
+        if ready[o] == 0:
+            if code == KERNEL_EXTERNAL:
+                istate[IS_NEED_ORIG] = o
+                return False, cache[0:0]
+            kernel_row(XK, sq, o, n, gram[o], code, fstate[FS_GAMMA], fstate[FS_OFFSET],
+                       istate[IS_DEGREE], acc, ibuf)
+            ready[o] = 1
+            istate[IS_ROW_EVALS] += 1
+        if a == n:
+            return True, gram[o]
+    stride = istate[IS_STRIDE]
+    s = slot_of[o]
+    if s >= 0:
+        istate[IS_HITS] += 1
+        _lru_touch(s, lru_prev, lru_next, istate)
+        return True, cache[s * stride:s * stride + a]
+    if mode == 1 and code == KERNEL_EXTERNAL and istate[IS_EXT_ORIG] != o:
+        istate[IS_NEED_ORIG] = o
+        return False, cache[0:0]
+    istate[IS_MISSES] += 1
+    s = _lru_take(slot_of, slot_owner, lru_prev, lru_next, istate)
+    slot_of[o] = s
+    slot_owner[s] = o
+    row = cache[s * stride:s * stride + a]
+    if mode == 0:
+        g = gram[o]
+        for t in range(a):
+            row[t] = g[perm[t]]
+    elif code == KERNEL_EXTERNAL:
+        for t in range(a):
+            row[t] = ext_row[t]
+        istate[IS_EXT_ORIG] = -1
+    else:
+        kernel_row(XK, sq, p, a, row, code, fstate[FS_GAMMA], fstate[FS_OFFSET],
+                   istate[IS_DEGREE], acc, ibuf)
+        istate[IS_ROW_EVALS] += 1
+    return True, row
+
+
+# ---------------------------------------------------------------- the two passes -----
+
+
+@_jit
+def pass_up(F, Ki, Kj, di, dj, off, a, bm, update):
+    """Optionally F[t] −= Ki[t]·di + Kj[t]·dj, then (m, i): m = max_{t<a} F[t] + off[t]
+    and i its lowest position (−1 if m = −inf).  bm holds per-block maxima."""
+    nb = (a + BLK - 1) // BLK
+    m = -np.inf
+    for k in range(nb):
+        s = k * BLK
+        e = min(a, s + BLK)
+        L = e - s
+        Fs = F[s:e]
+        Os = off[s:e]
+        mk = -np.inf
+        if update:
+            Is = Ki[s:e]
+            Js = Kj[s:e]
+            for t in range(L):
+                v = Fs[t] - (Is[t] * di + Js[t] * dj)
+                Fs[t] = v
+                mk = _fmax(mk, v + Os[t])
+        else:
+            for t in range(L):
+                mk = _fmax(mk, Fs[t] + Os[t])
+        bm[k] = mk
+        m = _fmax(m, mk)
+    if not m > -np.inf:
+        return m, -1
+    for k in range(nb):
+        if bm[k] == m:
+            s = k * BLK
+            e = min(a, s + BLK)
+            for t in range(s, e):
+                if F[t] + off[t] == m:
+                    return m, t
+    return m, -1
+
+
+@_jit
+def pass_low(F, Ki, diag, off, a, m, kii, tau, second, bm):
+    """(best, j, M) over positions t < a with off[t] = 0 (I_low):
+    M = min F[t]; j = lowest position minimising the selection value
+    −(m − F[t])²/āᵢₜ (second order; āᵢₜ = Kᵢᵢ + Kₜₜ − 2Kᵢₜ, τ if ≤ 0; Fan, Chen & Lin 2005,
+    WSS 2) or −(m − F[t]) (first order) among F[t] < m; j = −1 if none (best ≥ 0)."""
+    nb = (a + BLK - 1) // BLK
+    best = np.inf
+    big_m = np.inf
+    for k in range(nb):
+        s = k * BLK
+        e = min(a, s + BLK)
+        L = e - s
+        Fs = F[s:e]
+        Os = off[s:e]
+        bk = np.inf
+        mk = np.inf
+        if second:
+            Is = Ki[s:e]
+            Ds = diag[s:e]
+            for t in range(L):
+                ft = Fs[t] + Os[t]
+                mk = _fmin(mk, ft)
+                b = _fmax(m - ft, 0.0)
+                q = (kii + Ds[t]) - 2.0 * Is[t]
+                q = q if q > 0.0 else tau
+                bk = _fmin(bk, -(b * b) / q)
+        else:
+            for t in range(L):
+                ft = Fs[t] + Os[t]
+                mk = _fmin(mk, ft)
+                bk = _fmin(bk, -_fmax(m - ft, 0.0))
+        bm[k] = bk
+        best = _fmin(best, bk)
+        big_m = _fmin(big_m, mk)
+    if not best < 0.0:
+        return best, -1, big_m
+    for k in range(nb):
+        if bm[k] == best:
+            s = k * BLK
+            e = min(a, s + BLK)
+            for t in range(s, e):
+                ft = F[t] + off[t]
+                b = _fmax(m - ft, 0.0)
+                if second:
+                    q = (kii + diag[t]) - 2.0 * Ki[t]
+                    q = q if q > 0.0 else tau
+                    v = -(b * b) / q
+                else:
+                    v = -b
+                if v == best:
+                    return best, t, big_m
+    return best, -1, big_m
+
+
+# ---------------------------------------------------------------- the loop -----------
+
+
+@_jit
+def smo_run(F, beta, lo, hi, diag, ysign, offup, offlow, perm,
+            gram, ready, cache, slot_of, slot_owner, lru_prev, lru_next, ext_row,
+            XK, sq, acc, ibuf, bm, istate, fstate,
+            tr_it, tr_i, tr_j, tr_ai, tr_aj, tr_step, tr_obj, tr_viol, tr_act,
+            ev_it, ev_kind, ev_val):
+    """Run SMO iterations on the active positions until a stop or pause condition.
+
+    Position arrays (n,): F, beta (updated in place), lo, hi, diag, ysign, offup, offlow
+    (0 / −inf and 0 / +inf membership offsets, kept in step with beta), perm (int64).
+    Kernel access: gram (n, n) with ready (n,) uint8 (mode 0) or the slot cache (mode 1);
+    cache, slot_of, slot_owner, lru_prev, lru_next: LRU cache of rows over the active
+    positions; ext_row: a row supplied by the driver for an external kernel.  XK (d, n),
+    sq (n,): data for kernel rows.  acc, ibuf, bm: work buffers.  istate / fstate: counters
+    and scalars (IS_* / FS_* slots).  tr_*: trace columns, ev_*: event columns.
+    Returns a RUN_* code; on every return F is up to date with beta.
+    """
+    a = istate[IS_ACTIVE]
     it = istate[IS_ITER]
     stop_at = istate[IS_STOP_AT]
+    shrink_at = istate[IS_SHRINK_AT]
     level = istate[IS_LEVEL]
     sample = istate[IS_SAMPLE]
-    second = istate[IS_SECOND_ORDER]
+    second = istate[IS_SECOND_ORDER] == 1
     stall_window = istate[IS_STALL_WINDOW]
     tol = fstate[FS_TOL]
     tau = fstate[FS_TAU]
     obj = fstate[FS_OBJ]
     cap_rows = tr_it.shape[0]
     cap_ev = ev_it.shape[0]
+    phase = istate[IS_PHASE]
+    i = istate[IS_SEL_I]
+    j = istate[IS_SEL_J]
+    m = fstate[FS_M_UP]
+    big_m = fstate[FS_M_LOW]
+    viol = fstate[FS_VIOL]
+    pending = False
+    di = 0.0
+    dj = 0.0
+    Ki = cache[0:0]
+    Kj = cache[0:0]
+    ret = -1
     while True:
-        if (level != 2 and istate[IS_ROWS] >= cap_rows) or istate[IS_EVENTS] + 1 > cap_ev:
-            istate[IS_ITER] = it
-            fstate[FS_OBJ] = obj
-            return RUN_TRACE_FULL
-        # first index: i = argmax_{t in I_up} F_t (lowest index on ties)
-        m = -np.inf
-        i = -1
-        for t in range(n):
-            if beta[t] < hi[t] and F[t] > m:
-                m = F[t]
-                i = t
-        # second index and M = min_{t in I_low} F_t
-        big_m = np.inf
-        j = -1
-        best = np.inf
-        if i >= 0:
-            kii = diag[i]
-            for t in range(n):
-                if beta[t] > lo[t]:
-                    ft = F[t]
-                    if ft < big_m:
-                        big_m = ft
-                    b = m - ft
-                    if b > 0.0:
-                        if second == 1:
-                            a = kii + diag[t] - 2.0 * K[i, t]
-                            if a <= 0.0:
-                                a = tau
-                            val = -(b * b) / a
-                        else:
-                            val = -b
-                        if val < best:
-                            best = val
-                            j = t
-        viol = m - big_m
-        fstate[FS_VIOL] = viol
-        if j < 0 or viol <= tol:
-            istate[IS_ITER] = it
-            fstate[FS_OBJ] = obj
-            return RUN_CONVERGED
-        if it >= stop_at:
-            istate[IS_ITER] = it
-            fstate[FS_OBJ] = obj
-            return RUN_PAUSE
-        # two-variable step along β_i += s, β_j -= s (Platt 1998; Fan, Chen & Lin 2005, eq. 15)
+        if phase == 0:
+            m, i = pass_up(F, Ki, Kj, di, dj, offup, a, bm, pending)
+            pending = False
+            if ret >= 0:
+                break
+            if it >= shrink_at:
+                ret = RUN_SHRINK
+                break
+            if (level != 2 and istate[IS_ROWS] >= cap_rows) or istate[IS_EVENTS] >= cap_ev:
+                ret = RUN_TRACE_FULL
+                break
+            if i < 0:
+                viol = 0.0
+                ret = RUN_CONVERGED
+                break
+            phase = 1
+        if phase == 1:
+            ok, Ki = _fetch(i, a, perm, gram, ready, cache, slot_of, slot_owner, lru_prev,
+                            lru_next, ext_row, XK, sq, acc, ibuf, istate, fstate)
+            if not ok:
+                ret = RUN_NEED_ROW
+                break
+            best, j, big_m = pass_low(F, Ki, diag, offlow, a, m, diag[i], tau, second, bm)
+            viol = m - big_m
+            if j < 0 or viol <= tol:
+                ret = RUN_CONVERGED
+                break
+            if it >= stop_at:
+                ret = RUN_PAUSE
+                break
+            phase = 2
+        # phase 2: the step
+        ok, Kj = _fetch(j, a, perm, gram, ready, cache, slot_of, slot_owner, lru_prev,
+                        lru_next, ext_row, XK, sq, acc, ibuf, istate, fstate)
+        if not ok:
+            ret = RUN_NEED_ROW
+            break
+        if Ki.shape[0] == 0:  # resumed after an external row: fetch row i again (a hit)
+            ok, Ki = _fetch(i, a, perm, gram, ready, cache, slot_of, slot_owner, lru_prev,
+                            lru_next, ext_row, XK, sq, acc, ibuf, istate, fstate)
+        # two-variable subproblem along βᵢ += s, βⱼ −= s (Platt 1998; Fan, Chen & Lin
+        # 2005, eq. 15): unconstrained minimiser s = bᵢⱼ/aᵢⱼ, clipped to the box
+        kij = Ki[j]
         b = m - F[j]
-        kij = K[i, j]
-        a = diag[i] + diag[j] - 2.0 * kij
+        aij = (diag[i] + diag[j]) - 2.0 * kij
         event = False
-        if a <= 0.0:
+        if aij <= 0.0:
             ev = istate[IS_EVENTS]
             ev_it[ev] = it + 1
             ev_kind[ev] = EV_CURVATURE
-            ev_val[ev] = a
+            ev_val[ev] = aij
             istate[IS_EVENTS] = ev + 1
             istate[IS_CURV_FIXES] += 1
             event = True
-            a_use = tau
+            s = b / tau
         else:
-            a_use = a
-        s = b / a_use
+            s = b / aij
         bi_old = beta[i]
         bj_old = beta[j]
         cap_i = hi[i] - bi_old
@@ -141,9 +611,7 @@ def smo_run(K, diag, F, beta, lo, hi, y, istate, fstate,
             if cap_i <= cap_j:
                 s = cap_i
                 bi_new = hi[i]
-                bj_new = bj_old - s
-                if cap_i == cap_j:
-                    bj_new = lo[j]
+                bj_new = lo[j] if cap_i == cap_j else bj_old - s
             else:
                 s = cap_j
                 bj_new = lo[j]
@@ -155,34 +623,44 @@ def smo_run(K, diag, F, beta, lo, hi, y, istate, fstate,
         dj = bj_new - bj_old
         beta[i] = bi_new
         beta[j] = bj_new
-        # objective change of the two-variable step (exact for the quadratic): gᵀd + ½dᵀKd
+        offup[i] = 0.0 if bi_new < hi[i] else -np.inf
+        offlow[i] = 0.0 if bi_new > lo[i] else np.inf
+        offup[j] = 0.0 if bj_new < hi[j] else -np.inf
+        offlow[j] = 0.0 if bj_new > lo[j] else np.inf
+        # exact change of ½βᵀKβ + qᵀβ for the two-variable step: gᵀd + ½dᵀKd, g = −F
         obj += -(F[i] * di + F[j] * dj) + 0.5 * (diag[i] * di * di + diag[j] * dj * dj
                                                  + 2.0 * kij * di * dj)
-        for t in range(n):
-            F[t] -= K[i, t] * di + K[j, t] * dj
+        pending = True
         it += 1
-        if not np.isfinite(obj):
-            istate[IS_ITER] = it
-            fstate[FS_OBJ] = obj
-            return RUN_NUMERICAL
-        if obj < fstate[FS_BEST_OBJ] - 1e-15 * max(1.0, abs(fstate[FS_BEST_OBJ])):
-            fstate[FS_BEST_OBJ] = obj
-            istate[IS_LAST_IMPROVE] = it
         if level != 2:
             if level == 0 or it % sample == 0 or event or istate[IS_FORCE_ROW] == 1:
                 r = istate[IS_ROWS]
                 tr_it[r] = it
-                tr_i[r] = i
-                tr_j[r] = j
-                tr_ai[r] = y[i] * bi_new
-                tr_aj[r] = y[j] * bj_new
-                tr_step[r] = y[i] * di
+                tr_i[r] = perm[i]
+                tr_j[r] = perm[j]
+                tr_ai[r] = ysign[i] * bi_new
+                tr_aj[r] = ysign[j] * bj_new
+                tr_step[r] = ysign[i] * di
                 tr_obj[r] = obj
                 tr_viol[r] = viol
-                tr_act[r] = n
+                tr_act[r] = a
                 istate[IS_ROWS] = r + 1
                 istate[IS_FORCE_ROW] = 0
-        if it - istate[IS_LAST_IMPROVE] >= stall_window:
-            istate[IS_ITER] = it
-            fstate[FS_OBJ] = obj
-            return RUN_STALLED
+        if not (abs(obj) < np.inf):
+            ret = RUN_NUMERICAL
+        elif obj < fstate[FS_BEST_OBJ] - 1e-15 * max(1.0, abs(fstate[FS_BEST_OBJ])):
+            fstate[FS_BEST_OBJ] = obj
+            istate[IS_LAST_IMPROVE] = it
+        elif it - istate[IS_LAST_IMPROVE] >= stall_window:
+            ret = RUN_STALLED
+        phase = 0
+    # on every exit F matches beta (a pending update was applied by pass_up)
+    istate[IS_ITER] = it
+    istate[IS_PHASE] = phase if ret == RUN_NEED_ROW else 0
+    istate[IS_SEL_I] = i
+    istate[IS_SEL_J] = j
+    fstate[FS_OBJ] = obj
+    fstate[FS_M_UP] = m
+    fstate[FS_M_LOW] = big_m
+    fstate[FS_VIOL] = viol
+    return ret

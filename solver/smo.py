@@ -21,12 +21,18 @@ import numpy as np
 from . import _smo_kernels as _k
 from .certificate import certify
 from .errors import ConvergenceWarning, InvalidInputError
-from .kernels import PrecomputedKernel
+from .kernels import (
+    LinearKernel,
+    PolynomialKernel,
+    PrecomputedKernel,
+    RBFKernel,
+    SigmoidKernel,
+)
 from .problem import DualProblem
 from .result import TRACE_LEVELS, SolveResult, Trace
 from .status import Status, status_message
 
-__all__ = ["solve_smo", "EVENT_KINDS", "SELECTIONS", "replay_alpha"]
+__all__ = ["solve_smo", "EVENT_KINDS", "SELECTIONS", "replay_alpha", "repair_start"]
 
 #: code → name of trace events (``result.trace.events["kind"]``).
 EVENT_KINDS: dict[int, str] = {
@@ -132,23 +138,6 @@ def _available_mb() -> float:
     return 4096.0
 
 
-def _full_gram(problem: DualProblem, dtype: np.dtype, block: int = 1024) -> np.ndarray:
-    """Gram matrix K (n, n) of the problem's rows, computed in symmetric row blocks."""
-    if isinstance(problem.kernel, PrecomputedKernel):
-        idx = problem.X[:, 0].astype(np.int64)
-        K = problem.kernel.gram_matrix[np.ix_(idx, idx)]
-        return np.ascontiguousarray(K, dtype=dtype)
-    n = problem.n
-    K = np.empty((n, n), dtype=dtype)
-    X = problem.X
-    for s in range(0, n, block):
-        e = min(n, s + block)
-        B = problem.kernel.block(X[s:e], X[s:])
-        K[s:e, s:] = B
-        K[s:, s:e] = B.T
-    return K
-
-
 def _new_trace_arrays(level: str, rows: int, events: int) -> dict[str, np.ndarray]:
     cap = 0 if level == "off" else rows
     arrs = {name: np.zeros(cap, dtype=dt) for name, dt in _TRACE_COLUMNS}
@@ -193,6 +182,309 @@ def replay_alpha(trace: Trace, iteration: int) -> np.ndarray:
     return alpha
 
 
+def _kernel_code(kernel: Any) -> tuple[int, float, float, int]:
+    """(code, gamma, offset, degree) of kernels evaluated inside the compiled loop."""
+    if isinstance(kernel, RBFKernel):
+        return _k.KERNEL_RBF, float(kernel.gamma), 0.0, 1
+    if isinstance(kernel, PolynomialKernel):
+        return _k.KERNEL_POLY, float(kernel.gamma), float(kernel.offset), int(kernel.degree)
+    if isinstance(kernel, SigmoidKernel):
+        return _k.KERNEL_SIGMOID, float(kernel.gamma), float(kernel.offset), 1
+    if isinstance(kernel, LinearKernel):
+        return _k.KERNEL_LINEAR, 0.0, 0.0, 1
+    return _k.KERNEL_EXTERNAL, 0.0, 0.0, 1
+
+
+class _Engine:
+    """State of one SMO run: position arrays, kernel access, trace buffers.
+
+    Positions 0..a−1 hold the active variables in increasing original index;
+    ``perm[pos]`` is the original index.  All arrays handed to the compiled loop are
+    owned here and reused across pauses.
+    """
+
+    def __init__(self, problem: DualProblem, alpha: np.ndarray, *, dtype: np.dtype,
+                 budget_mb: float, cache_mb: float, level: int, trace_rows: int) -> None:
+        self.problem = problem
+        n = self.n = problem.n
+        y = problem.y
+        self.ysign = y.copy()
+        self.lo = np.where(y > 0, problem.lower, -problem.upper)
+        self.hi = np.where(y > 0, problem.upper, -problem.lower)
+        self.beta = y * alpha
+        self.q = y * problem.p
+        self.perm = np.arange(n, dtype=np.int64)
+        self.active = n
+        self.dtype = dtype
+        kern = problem.kernel
+        code, gamma, offset, degree = _kernel_code(kern)
+        self.code = code
+        self.precomputed = isinstance(kern, PrecomputedKernel)
+        itemsize = dtype.itemsize
+        gram_mb = n * n * itemsize / 2**20
+        # data for kernel rows: features as (d, n) columns
+        if code != _k.KERNEL_EXTERNAL:
+            self.XK = np.ascontiguousarray(problem.X.T)
+        else:
+            self.XK = np.zeros((0, n))
+        self.sq = np.zeros(n)
+        _k.self_dots(self.XK, self.sq)
+        self.acc = np.zeros(_k.CHUNK)
+        self.ibuf = np.zeros(_k.CHUNK, dtype=np.int64)
+        if self.precomputed:
+            idx = problem.X[:, 0].astype(np.int64)
+            self.mode = 0
+            self.gram = np.array(kern.gram_matrix[np.ix_(idx, idx)], dtype=dtype, order="C")
+            self.ready = np.ones(n, dtype=np.uint8)
+            cache_bytes = min(cache_mb * 2**20, 0.1 * n * n * itemsize + 64 * 2**20)
+        elif gram_mb <= budget_mb:
+            self.mode = 0
+            self.gram = np.empty((n, n), dtype=dtype)  # rows filled when first needed
+            self.ready = np.zeros(n, dtype=np.uint8)
+            cache_bytes = min(cache_mb * 2**20, 0.1 * n * n * itemsize + 64 * 2**20)
+        else:
+            self.mode = 1
+            self.gram = np.empty((1, 1), dtype=dtype)
+            self.ready = np.zeros(1, dtype=np.uint8)
+            cache_bytes = cache_mb * 2**20
+        slots = int(max(2, min(n, cache_bytes // (n * itemsize))))
+        self.cache = np.empty(slots * n, dtype=dtype)
+        self.slot_of = np.full(n, -1, dtype=np.int64)
+        self.slot_owner = np.full(slots, -1, dtype=np.int64)
+        self.lru_prev = np.full(slots, -1, dtype=np.int64)
+        self.lru_next = np.full(slots, -1, dtype=np.int64)
+        self.ext_row = np.zeros(n if code == _k.KERNEL_EXTERNAL else 1)
+        self.bm = np.zeros(n // _k.BLK + 2)
+        self.istate = np.zeros(_k.IS_SIZE, dtype=np.int64)
+        self.fstate = np.zeros(_k.FS_SIZE, dtype=np.float64)
+        ist, fst = self.istate, self.fstate
+        ist[_k.IS_MODE] = self.mode
+        ist[_k.IS_KERNEL] = code
+        ist[_k.IS_DEGREE] = degree
+        ist[_k.IS_SLOTS] = slots
+        ist[_k.IS_STRIDE] = n
+        ist[_k.IS_LEVEL] = level
+        ist[_k.IS_ACTIVE] = n
+        ist[_k.IS_EXT_ORIG] = -1
+        fst[_k.FS_GAMMA] = gamma
+        fst[_k.FS_OFFSET] = offset
+        self._flush_cache()
+        # diagonal, rounded like the stored rows
+        if code != _k.KERNEL_EXTERNAL:
+            diag = np.zeros(n)
+            _k.kernel_diag(self.XK, self.sq, diag, code, gamma, offset, degree, self.acc,
+                           self.ibuf)
+        elif self.precomputed:
+            diag = np.diagonal(self.gram).astype(np.float64)
+        else:
+            diag = np.asarray(kern.diag(problem.X), dtype=np.float64)
+        self.diag = diag.astype(dtype).astype(np.float64)
+        # gradient in the form F = −(Kβ + q)
+        nz = np.flatnonzero(self.beta)
+        self.F = -self.q.copy()
+        if nz.size:
+            self.F -= self.k_times(nz, self.beta[nz], np.arange(n))
+        self.offup = np.where(self.beta < self.hi, 0.0, -np.inf)
+        self.offlow = np.where(self.beta > self.lo, 0.0, np.inf)
+        self.objective0 = 0.5 * float(self.beta @ (-self.F - self.q)) + float(self.q @ self.beta)
+        cap = 0 if level == 2 else trace_rows
+        self.tr = {name: np.zeros(cap, dtype=dt) for name, dt in _TRACE_COLUMNS}
+        self.ev = {"iteration": np.zeros(256, dtype=np.int64), "kind": np.zeros(256, dtype=np.int8),
+                   "value": np.zeros(256)}
+        self.unshrunk = False
+        self.shrinks = 0
+        self.reconstructions = 0
+        self.external_rows = 0
+
+    # -- kernel access -------------------------------------------------------------
+    def _flush_cache(self) -> None:
+        self.slot_of.fill(-1)
+        self.slot_owner.fill(-1)
+        ist = self.istate
+        ist[_k.IS_USED] = 0
+        ist[_k.IS_HEAD] = -1
+        ist[_k.IS_TAIL] = -1
+
+    def _ensure_rows(self, rows: np.ndarray) -> None:
+        """Gram rows ``rows`` (original indices) computed (full-Gram mode)."""
+        if self.code != _k.KERNEL_EXTERNAL:
+            _k.fill_rows(self.XK, self.sq, rows, self.gram, self.ready, self.code,
+                         self.fstate[_k.FS_GAMMA], self.fstate[_k.FS_OFFSET],
+                         int(self.istate[_k.IS_DEGREE]), self.acc, self.ibuf)
+            return
+        X = self.problem.X
+        for o in rows[self.ready[rows] == 0]:
+            self.gram[o] = self.problem.kernel.block(X[o:o + 1], X)[0]
+            self.ready[o] = 1
+            self.external_rows += 1
+
+    def k_times(self, src: np.ndarray, coef: np.ndarray, targets: np.ndarray) -> np.ndarray:
+        """Σ_s coef[s] K(x_src[s], x_t) for t in ``targets`` (original indices)."""
+        out = np.zeros(targets.shape[0])
+        if src.size == 0 or targets.size == 0:
+            return out
+        src = np.ascontiguousarray(src, dtype=np.int64)
+        targets = np.ascontiguousarray(targets, dtype=np.int64)
+        if self.mode == 0:
+            self._ensure_rows(src)
+            _k.gram_times(self.gram, src, np.ascontiguousarray(coef, dtype=np.float64),
+                          targets, out)
+            return out
+        X = self.problem.X
+        for s in range(0, targets.size, 2048):
+            t = targets[s:s + 2048]
+            out[s:s + 2048] = self.problem.kernel.block(X[t], X[src]) @ coef
+        return out
+
+    def supply_row(self) -> None:
+        """Evaluate the row an external (Python) kernel was asked for."""
+        o = int(self.istate[_k.IS_NEED_ORIG])
+        X = self.problem.X
+        if self.mode == 0:
+            self._ensure_rows(np.array([o], dtype=np.int64))
+        else:
+            a = self.active
+            self.ext_row[:a] = self.problem.kernel.block(X[o:o + 1], X[self.perm[:a]])[0]
+            self.istate[_k.IS_EXT_ORIG] = o
+            self.external_rows += 1
+
+    # -- positions ------------------------------------------------------------------
+    _POS_ARRAYS = ("F", "beta", "lo", "hi", "diag", "ysign", "offup", "offlow", "perm", "q")
+
+    def _reorder(self, order: np.ndarray) -> None:
+        for name in self._POS_ARRAYS:
+            setattr(self, name, np.ascontiguousarray(getattr(self, name)[order]))
+        if self.mode == 1:  # row-cache mode evaluates kernels over positions
+            self.XK = np.ascontiguousarray(self.XK[:, order])
+            self.sq = np.ascontiguousarray(self.sq[order])
+
+    def alpha(self) -> np.ndarray:
+        out = np.empty(self.n)
+        out[self.perm] = self.ysign * self.beta
+        return out
+
+    def gradient(self) -> np.ndarray:
+        """G = Qα + p in original order (needs a full gradient: call after unshrink)."""
+        out = np.empty(self.n)
+        out[self.perm] = -self.ysign * self.F
+        return out
+
+    def extremes(self, a: int) -> tuple[float, float]:
+        """(m, M) over positions < a."""
+        if a == 0:
+            return -np.inf, np.inf
+        return (float(np.max(self.F[:a] + self.offup[:a])),
+                float(np.min(self.F[:a] + self.offlow[:a])))
+
+    def unshrink(self, it: int) -> None:
+        """Reconstruct F of the shrunk variables and make every variable active again."""
+        a, n = self.active, self.n
+        if a < n:
+            sv = np.flatnonzero(self.beta)
+            self.F[a:] = -self.q[a:] - self.k_times(self.perm[sv], self.beta[sv], self.perm[a:])
+            self._reorder(np.argsort(self.perm, kind="stable"))
+            self.active = n
+            self.istate[_k.IS_ACTIVE] = n
+            self._flush_cache()
+            self.reconstructions += 1
+            m, big_m = self.extremes(n)
+            self.add_event(it, _k.EV_RECONSTRUCT, m - big_m)
+
+    def shrink(self, it: int, tol: float) -> None:
+        """Shrinking as in Fan, Chen & Lin (2005, section 5): drop bound variables whose
+        gradient says they will stay at the bound; once the violation is within 10·tol,
+        reconstruct and unshrink once (common practice)."""
+        a = self.active
+        m, big_m = self.extremes(a)
+        if not self.unshrunk and m - big_m <= 10.0 * tol:
+            self.unshrunk = True
+            self.unshrink(it)
+            a = self.active
+            m, big_m = self.extremes(a)
+        Fa = self.F[:a]
+        in_up = self.offup[:a] == 0.0
+        in_low = self.offlow[:a] == 0.0
+        remove = (~in_up & (~in_low | (Fa > m))) | (~in_low & (Fa < big_m))
+        k = int(np.count_nonzero(remove))
+        if k == 0 or k == a:
+            return
+        keep = np.flatnonzero(~remove)
+        order = np.concatenate([keep, np.flatnonzero(remove), np.arange(a, self.n)])
+        self._reorder(order)
+        if self.mode == 0:
+            self._flush_cache()
+        else:
+            used = int(self.istate[_k.IS_USED])
+            _k.compact_cache(self.cache, self.n, self.slot_owner[:used], keep, keep.size)
+            # position-ordered cached rows now match the new order; slot_of is by index
+        self.active = int(keep.size)
+        self.istate[_k.IS_ACTIVE] = self.active
+        self.shrinks += 1
+        self.add_event(it, _k.EV_SHRINK, float(self.active))
+
+    # -- trace ----------------------------------------------------------------------
+    def add_event(self, it: int, kind: int, value: float) -> None:
+        k = int(self.istate[_k.IS_EVENTS])
+        if k >= self.ev["iteration"].shape[0]:
+            for name in self.ev:
+                self.ev[name] = _grow(self.ev[name], k, k + 1)
+        self.ev["iteration"][k] = it
+        self.ev["kind"][k] = kind
+        self.ev["value"][k] = value
+        self.istate[_k.IS_EVENTS] = k + 1
+        self.istate[_k.IS_FORCE_ROW] = 1
+
+    def grow_trace(self) -> None:
+        rows, evs = int(self.istate[_k.IS_ROWS]), int(self.istate[_k.IS_EVENTS])
+        if self.istate[_k.IS_LEVEL] != 2 and rows >= self.tr["iteration"].shape[0]:
+            for name in self.tr:
+                self.tr[name] = _grow(self.tr[name], rows, rows + 1)
+        if evs >= self.ev["iteration"].shape[0]:
+            for name in self.ev:
+                self.ev[name] = _grow(self.ev[name], evs, evs + 1)
+
+    def run(self) -> int:
+        tr, ev = self.tr, self.ev
+        return int(_k.smo_run(
+            self.F, self.beta, self.lo, self.hi, self.diag, self.ysign, self.offup,
+            self.offlow, self.perm, self.gram, self.ready, self.cache, self.slot_of,
+            self.slot_owner, self.lru_prev, self.lru_next, self.ext_row, self.XK, self.sq,
+            self.acc, self.ibuf, self.bm, self.istate, self.fstate,
+            tr["iteration"], tr["i"], tr["j"], tr["alpha_i"], tr["alpha_j"], tr["step"],
+            tr["objective"], tr["violation"], tr["active"],
+            ev["iteration"], ev["kind"], ev["value"]))
+
+
+_compiled: set[str] = set()
+
+
+def _warm_up(dtype: np.dtype) -> float:
+    """Compile (or load from the on-disk cache) the loop for ``dtype``; seconds spent."""
+    key = dtype.name
+    if key in _compiled:
+        return 0.0
+    t0 = time.perf_counter()
+    X = np.array([[0.0, 1.0], [1.0, 0.0], [1.0, 1.0]])
+    prob = DualProblem(X=X, y=np.array([1.0, -1.0, 1.0]), p=-np.ones(3), lower=np.zeros(3),
+                       upper=np.ones(3), delta=0.0, kernel=RBFKernel(gamma=1.0),
+                       kind="warm_up", info={})
+    eng = _Engine(prob, np.zeros(3), dtype=dtype, budget_mb=1.0, cache_mb=1.0, level=0,
+                  trace_rows=16)
+    eng.istate[_k.IS_STOP_AT] = 10
+    eng.istate[_k.IS_SHRINK_AT] = 2
+    eng.istate[_k.IS_STALL_WINDOW] = 100
+    eng.istate[_k.IS_SAMPLE] = 1
+    eng.istate[_k.IS_SECOND_ORDER] = 1
+    eng.fstate[_k.FS_TOL] = 1e-3
+    eng.fstate[_k.FS_TAU] = TAU
+    eng.run()
+    eng.shrink(1, 1e-3)
+    eng.unshrink(1)
+    _k.compact_cache(eng.cache, 3, eng.slot_owner[:0], np.zeros(0, dtype=np.int64), 0)
+    _compiled.add(key)
+    return time.perf_counter() - t0
+
+
 def solve_smo(
     problem: DualProblem,
     *,
@@ -220,27 +512,43 @@ def solve_smo(
     tol : stopping tolerance on the maximal violation m(α) − M(α) (gradient units).
     max_iter : iteration limit; default max(10⁷, 100 n).
     time_limit : wall-clock budget in seconds (checked between pauses of the loop).
-    selection : ``"second_order"`` (Fan, Chen & Lin 2005) or ``"first_order"``
+    selection : ``"second_order"`` (Fan, Chen & Lin 2005, WSS 2) or ``"first_order"``
         (maximal violating pair, Keerthi et al. 2001).
-    shrinking : drop variables at bounds that are unlikely to move (gradient
-        reconstructed before the final test, so the answer does not depend on it).
-    trace : ``"full"``, ``"sampled"`` (every ``sample_every``-th iteration plus every
-        iteration with an event) or ``"off"``.
-    snapshot_every : store α every this many iterations; default max(1000, n).
-    kernel_memory_mb : budget for the full Gram matrix; default half the available memory.
-    kernel_dtype : ``"float64"`` or ``"float32"`` kernel storage (arithmetic is float64).
-    cache_mb : kernel column cache size when the Gram does not fit the budget.
-    alpha0 : feasible warm start (n,); default the problem's feasible start.
+    shrinking : drop bound variables that are unlikely to move; the gradient is
+        reconstructed and the optimality test repeated on all variables before stopping.
+    trace : ``"full"`` (every iteration), ``"sampled"`` (every ``sample_every``-th
+        iteration plus every iteration with an event) or ``"off"``.
+    snapshot_every : store α every this many iterations (and at the end); default
+        max(1000, n).
+    kernel_memory_mb : budget for the full Gram matrix (MB); default half the available
+        memory.  Within budget, Gram rows are computed on first use and kept; beyond it,
+        an LRU cache of rows over the active variables (``cache_mb``) is used.
+    kernel_dtype : ``"float64"`` or ``"float32"`` kernel storage (arithmetic in float64).
+    cache_mb : row-cache size in MB.
+    alpha0 : feasible warm start (n,) (see :func:`repair_start`); default the problem's
+        feasible start (α = 0 for classification).
     callback : called every ``callback_every`` iterations with a dict of ``iteration``,
         ``violation``, ``tol``, ``active``, ``objective``; returning True or raising
         ``StopIteration`` stops the run (status ``stopped_by_callback``).
-    stall_window : stop as stalled after this many iterations without objective decrease;
-        default max(10⁶, 10 n).
+    stall_window : stop as stalled after this many iterations without objective
+        decrease; default max(10⁶, 10 n).
+
+    Returns
+    -------
+    SolveResult with ``solver="smo"``; ``extra`` holds timings (``compile_seconds``,
+    ``setup_seconds``, ``solve_seconds``), ``kernel_mode`` (``"full_gram"`` or
+    ``"column_cache"``), kernel-row counts, shrink and reconstruction counts and
+    ``curvature_fixes``.
+
+    Notes
+    -----
+    The dual is  min ½αᵀQα + pᵀα  s.t. yᵀα = Δ, l ≤ α ≤ u  (see :mod:`solver.problem`).
+    The loop is deterministic: ties in the working-set selection go to the lowest index.
 
     References
     ----------
     Platt (1998) Sequential minimal optimization; Keerthi, Shevade, Bhattacharyya &
-    Murthy (2001) Neural Computation 13; Fan, Chen & Lin (2005) JMLR 6:1889–1918.
+    Murthy (2001) Neural Computation 13:637–649; Fan, Chen & Lin (2005) JMLR 6:1889–1918.
     """
     t_start = time.perf_counter()
     if not isinstance(problem, DualProblem):
@@ -276,76 +584,59 @@ def solve_smo(
     if stall_window is None:
         stall_window = max(1_000_000, 10 * n)
     alpha = problem.feasible_start() if alpha0 is None else _check_start(problem, alpha0)
-
-    y = np.ascontiguousarray(problem.y)
-    lo = np.where(y > 0, problem.lower, -problem.upper)
-    hi = np.where(y > 0, problem.upper, -problem.lower)
-    beta = y * alpha
-    q = y * problem.p
-
-    # kernel access
-    t0 = time.perf_counter()
     dtype = np.dtype(kernel_dtype)
-    itemsize = dtype.itemsize
-    gram_mb = n * n * itemsize / 2**20
-    if gram_mb > budget_mb:
-        raise InvalidInputError(
-            f"the Gram matrix needs {gram_mb:.0f} MB, above the kernel memory budget "
-            f"{budget_mb:.0f} MB (column cache mode is not available yet)"
-        )
-    K = _full_gram(problem, np.dtype(np.float64))
-    diag = np.ascontiguousarray(np.diagonal(K)).copy()
-    kernel_seconds = time.perf_counter() - t0
-    kernel_mode = "full_gram"
 
-    nz = np.flatnonzero(beta)
-    F = -(K[:, nz] @ beta[nz] + q) if nz.size else -q.copy()
-    obj0 = 0.5 * float(beta @ (-F - q)) + float(q @ beta)
-
+    compile_seconds = _warm_up(dtype)
+    t_setup = time.perf_counter()
     level = {"full": 0, "sampled": 1, "off": 2}[trace]
-    istate = np.zeros(_k.IS_SIZE, dtype=np.int64)
-    fstate = np.zeros(_k.FS_SIZE, dtype=np.float64)
-    istate[_k.IS_LEVEL] = level
-    istate[_k.IS_SAMPLE] = sample_every
-    istate[_k.IS_SECOND_ORDER] = 1 if selection == "second_order" else 0
-    istate[_k.IS_STALL_WINDOW] = stall_window
-    fstate[_k.FS_OBJ] = obj0
-    fstate[_k.FS_BEST_OBJ] = obj0
-    fstate[_k.FS_TOL] = tol
-    fstate[_k.FS_TAU] = TAU
-    arrs = _new_trace_arrays(trace, 4096, 256)
+    eng = _Engine(problem, alpha, dtype=dtype, budget_mb=budget_mb, cache_mb=cache_mb,
+                  level=level, trace_rows=min(max_iter, max(4096, 4 * n)))
+    ist, fst = eng.istate, eng.fstate
+    ist[_k.IS_SAMPLE] = sample_every
+    ist[_k.IS_SECOND_ORDER] = 1 if selection == "second_order" else 0
+    ist[_k.IS_STALL_WINDOW] = stall_window
+    shrink_every = min(n, 1000)
+    ist[_k.IS_SHRINK_AT] = shrink_every if shrinking else np.iinfo(np.int64).max
+    fst[_k.FS_OBJ] = eng.objective0
+    fst[_k.FS_BEST_OBJ] = eng.objective0
+    fst[_k.FS_TOL] = tol
+    fst[_k.FS_TAU] = TAU
     snap_its = [0]
-    snaps = [y * beta]
+    snaps = [eng.alpha()]
+    setup_seconds = time.perf_counter() - t_setup
 
     t_solve = time.perf_counter()
     status: Status | None = None
     detail = ""
     next_cb = callback_every if callback is not None else None
+    chunk = 1000
     while status is None:
-        it = int(istate[_k.IS_ITER])
-        stops = [max_iter, (it // snapshot_every + 1) * snapshot_every]
+        it = int(ist[_k.IS_ITER])
+        stop = min(max_iter, (it // snapshot_every + 1) * snapshot_every)
         if next_cb is not None:
-            stops.append(next_cb)
+            stop = min(stop, next_cb)
         if time_limit is not None:
-            stops.append(it + 2000)
-        istate[_k.IS_STOP_AT] = min(stops)
-        code = _k.smo_run(
-            K, diag, F, beta, lo, hi, y, istate, fstate,
-            arrs["iteration"], arrs["i"], arrs["j"], arrs["alpha_i"], arrs["alpha_j"],
-            arrs["step"], arrs["objective"], arrs["violation"], arrs["active"],
-            arrs["ev_iteration"], arrs["ev_kind"], arrs["ev_value"],
-        )
-        it = int(istate[_k.IS_ITER])
+            stop = min(stop, it + chunk)
+        ist[_k.IS_STOP_AT] = stop
+        t_run = time.perf_counter()
+        code = eng.run()
+        it = int(ist[_k.IS_ITER])
         if code == _k.RUN_TRACE_FULL:
-            rows, evs = int(istate[_k.IS_ROWS]), int(istate[_k.IS_EVENTS])
-            if level != 2 and rows >= arrs["iteration"].shape[0]:
-                for name, _ in _TRACE_COLUMNS:
-                    arrs[name] = _grow(arrs[name], rows, rows + 1)
-            if evs + 1 > arrs["ev_iteration"].shape[0]:
-                for name in ("ev_iteration", "ev_kind", "ev_value"):
-                    arrs[name] = _grow(arrs[name], evs, evs + 1)
+            eng.grow_trace()
+            continue
+        if code == _k.RUN_NEED_ROW:
+            eng.supply_row()
+            continue
+        if code == _k.RUN_SHRINK:
+            eng.shrink(it, tol)
+            ist[_k.IS_SHRINK_AT] = it + shrink_every
             continue
         if code == _k.RUN_CONVERGED:
+            if eng.active < n:  # final test on all variables (Fan, Chen & Lin 2005, sec. 5)
+                eng.unshrink(it)
+                if shrinking:
+                    ist[_k.IS_SHRINK_AT] = it + shrink_every
+                continue
             status = Status.CONVERGED
             break
         if code == _k.RUN_NUMERICAL:
@@ -356,41 +647,46 @@ def solve_smo(
             detail = f"no objective decrease in {stall_window} iterations"
             break
         # pause
+        if time_limit is not None:
+            per_it = (time.perf_counter() - t_run) / max(1, it - (stop - chunk))
+            chunk = int(min(100_000, max(100, 0.05 / max(per_it, 1e-9))))
         if it % snapshot_every == 0 and it > snap_its[-1]:
             snap_its.append(it)
-            snaps.append(y * beta)
+            snaps.append(eng.alpha())
         if it >= max_iter:
             status, detail = Status.ITERATION_LIMIT, f"{max_iter} iterations"
             break
         if next_cb is not None and it >= next_cb:
             next_cb += callback_every
-            info = {"iteration": it, "violation": float(fstate[_k.FS_VIOL]), "tol": tol,
-                    "active": n, "objective": float(fstate[_k.FS_OBJ])}
+            info = {"iteration": it, "violation": float(fst[_k.FS_VIOL]), "tol": tol,
+                    "active": eng.active, "objective": float(fst[_k.FS_OBJ])}
             try:
-                stop = callback(info)
+                stop_now = callback(info)
             except StopIteration:
-                stop = True
-            if stop is True:
+                stop_now = True
+            if stop_now is True:
                 status, detail = Status.STOPPED_BY_CALLBACK, f"at iteration {it}"
                 break
         if time_limit is not None and time.perf_counter() - t_start > time_limit:
             status, detail = Status.TIME_LIMIT, f"{time_limit:g} s"
             break
+    it = int(ist[_k.IS_ITER])
+    if eng.active < n:
+        eng.unshrink(it)
     solve_seconds = time.perf_counter() - t_solve
-    it = int(istate[_k.IS_ITER])
-    alpha = y * beta
+    alpha = eng.alpha()
     if snap_its[-1] != it:
         snap_its.append(it)
         snaps.append(alpha.copy())
-    G = -y * F
+    G = eng.gradient()
+    if dtype != np.float64:  # the certificate uses the exact float64 gradient
+        G = problem.gradient(alpha)
     cert = certify(problem, alpha, tol=tol, gradient=G)
-    rows, evs = int(istate[_k.IS_ROWS]), int(istate[_k.IS_EVENTS])
-    columns = {name: arrs[name][:rows].copy() for name, _ in _TRACE_COLUMNS} if level != 2 else {
-        name: np.zeros(0, dtype=dt) for name, dt in _TRACE_COLUMNS}
+    rows, evs = int(ist[_k.IS_ROWS]), int(ist[_k.IS_EVENTS])
+    columns = {name: eng.tr[name][:rows].copy() for name, _ in _TRACE_COLUMNS}
     tr = Trace(
         solver="smo", level=trace, columns=columns,
-        events={"iteration": arrs["ev_iteration"][:evs].copy(),
-                "kind": arrs["ev_kind"][:evs].copy(), "value": arrs["ev_value"][:evs].copy()},
+        events={name: eng.ev[name][:evs].copy() for name in ("iteration", "kind", "value")},
         event_kinds=dict(EVENT_KINDS), snapshot_iterations=np.asarray(snap_its, dtype=np.int64),
         snapshots=np.vstack(snaps), sample_every=sample_every if trace == "sampled" else 1,
         snapshot_every=snapshot_every,
@@ -398,14 +694,22 @@ def solve_smo(
     options = {
         "tol": tol, "max_iter": max_iter, "time_limit": time_limit, "selection": selection,
         "shrinking": bool(shrinking), "trace": trace, "sample_every": sample_every,
-        "snapshot_every": snapshot_every, "kernel_memory_mb": budget_mb,
+        "snapshot_every": snapshot_every, "kernel_memory_mb": float(budget_mb),
         "kernel_dtype": kernel_dtype, "cache_mb": cache_mb, "warm_start": alpha0 is not None,
         "callback_every": callback_every, "stall_window": stall_window, "tau": TAU,
     }
     extra = {
-        "kernel_mode": kernel_mode, "kernel_seconds": kernel_seconds,
-        "solve_seconds": solve_seconds, "curvature_fixes": int(istate[_k.IS_CURV_FIXES]),
-        "loop_violation": float(fstate[_k.FS_VIOL]), "loop_objective": float(fstate[_k.FS_OBJ]),
+        "kernel_mode": "full_gram" if eng.mode == 0 else "column_cache",
+        "kernel_source": "precomputed" if eng.precomputed else (
+            "python" if eng.code == _k.KERNEL_EXTERNAL else "compiled"),
+        "compile_seconds": compile_seconds, "setup_seconds": setup_seconds,
+        "solve_seconds": solve_seconds,
+        "kernel_rows_computed": int(ist[_k.IS_ROW_EVALS]) + eng.external_rows,
+        "cache_hits": int(ist[_k.IS_HITS]), "cache_misses": int(ist[_k.IS_MISSES]),
+        "cache_slots": int(ist[_k.IS_SLOTS]),
+        "curvature_fixes": int(ist[_k.IS_CURV_FIXES]), "shrinks": eng.shrinks,
+        "reconstructions": eng.reconstructions,
+        "loop_violation": float(fst[_k.FS_VIOL]), "loop_objective": float(fst[_k.FS_OBJ]),
     }
     message = status_message(status, detail)
     if status != Status.CONVERGED:
