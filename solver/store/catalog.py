@@ -97,7 +97,9 @@ def _command_text(v: Any) -> str | None:
     return json.dumps(v, ensure_ascii=False, sort_keys=True)
 
 
-def row_from_manifest(m: Mapping[str, Any], manifest_sha256: str, total_bytes: int) -> dict[str, Any]:
+def row_from_manifest(
+    m: Mapping[str, Any], manifest_sha256: str | None, total_bytes: int
+) -> dict[str, Any]:
     """Catalog row from a parsed manifest (tolerant: a missing or mistyped field gives NULL)."""
     cert = _get(m, "certificate") or {}
     kern = _get(m, "problem", "kernel") or {}
@@ -174,7 +176,8 @@ class Catalog:
             con.execute("DROP TABLE runs")
             cols = ", ".join(f'"{c}" {t}' for c, t in COLUMNS)
             con.execute(f"CREATE TABLE runs ({cols})")
-            con.execute("UPDATE meta SET value=? WHERE key='schema_version'", (str(SCHEMA_VERSION),))
+            con.execute("UPDATE meta SET value=? WHERE key='schema_version'",
+                        (str(SCHEMA_VERSION),))
             con.execute("COMMIT")
         return con
 

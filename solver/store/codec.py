@@ -29,7 +29,6 @@ from .format import (
     FORMAT_NAME,
     FORMAT_VERSION,
     dump_json,
-    field as get,
     from_plain,
     number,
     parse_json,
@@ -40,6 +39,9 @@ from .format import (
     write_npz,
     write_table,
 )
+from .format import (
+    field as get,
+)
 
 __all__ = ["encode_record", "decode_record", "decode_model", "UnavailableKernel", "MODEL_FORMAT"]
 
@@ -48,6 +50,7 @@ M = "manifest.json"
 _ATTACHMENT_NAME = re.compile(r"[a-z][a-z0-9_]{0,40}")
 _RESERVED = {"manifest", "trace", "events", "snapshots", "solution", "model", "arrays", "catalog"}
 TABLE_ATTACHMENTS = ("explanation",)
+_DTYPE = re.compile(r"bool|u?int(8|16|32|64)|float(32|64)|<U[0-9]{1,6}")
 
 #: Units and meanings of the SMO and QP trace columns (copied into Parquet field metadata).
 COLUMN_DOCS = {
@@ -57,7 +60,8 @@ COLUMN_DOCS = {
     "alpha_i": "new value of alpha[i] after the step (units of C)",
     "alpha_j": "new value of alpha[j] after the step (units of C)",
     "step": "change of alpha[i] in this iteration (units of C)",
-    "objective": "dual objective 1/2 a'Qa + p'a after the step (minimised; <= 0 for classification)",
+    "objective": "dual objective 1/2 a'Qa + p'a after the step (minimised; <= 0 for "
+                 "classification)",
     "violation": "maximal KKT violation m(a) - M(a) before the step (units of the gradient)",
     "active": "size of the active (unshrunk) set during the iteration",
     "primal_objective": "interior-point primal objective (units of the dual objective)",
@@ -154,7 +158,8 @@ def encode_record(
     }
     for key in ("kkt_residual", "at_lower", "at_upper"):
         if solution[key].shape != (n,):
-            raise InvalidInputError(f"certificate.{key} has shape {solution[key].shape}, expected ({n},)")
+            raise InvalidInputError(
+                f"certificate.{key} has shape {solution[key].shape}, expected ({n},)")
     if solution["alpha"].dtype != np.float64:
         raise InvalidInputError(f"result.alpha must be float64, got {solution['alpha'].dtype}")
     if isinstance(problem.kernel, PrecomputedKernel):
@@ -170,16 +175,17 @@ def encode_record(
         model = model_from_solution(problem, result, record.standardiser)
         model_m = "model.json"
         files["model.npz"] = write_npz({
-            "support_rows": model.support_rows.astype(np.int64), "support_points": model.support_points,
+            "support_rows": model.support_rows.astype(np.int64),
+            "support_points": model.support_points,
             "coefficients": model.coefficients, "centre": model.standardiser.centre,
             "scale": model.standardiser.scale,
         })
         files["model.json"] = dump_json({
             "format": MODEL_FORMAT, "format_version": FORMAT_VERSION, "run_id": run_id,
             "status": result.status.label, "converged": result.success,
-            "decision_rule": "f(x) = sum over s of coefficients[s] * K(support_points[s], z) + bias, "
-                             "z = (x - centre) / scale; label = labels.positive where f(x) > 0, "
-                             "else labels.negative",
+            "decision_rule": "f(x) = sum over s of coefficients[s] * K(support_points[s], z) "
+                             "+ bias, z = (x - centre) / scale; label = labels.positive where "
+                             "f(x) > 0, else labels.negative",
             "kernel": to_plain(problem.kernel.describe(), None, "model.kernel"),
             "bias": to_plain(model.bias, None, "model.bias"),
             "labels": {"negative": to_plain(model.labels[0], None, "labels"),
@@ -294,9 +300,7 @@ def _str_map(obj: Any, fname: str, path: str) -> dict[str, str]:
 def _table_dtypes(spec: dict[str, str], fname: str, path: str) -> dict[str, str]:
     out = {}
     for name, dt in spec.items():
-        if dt not in ("str", "object") and not re.fullmatch(r"(bool|u?int(8|16|32|64)|float(32|64))",
-                                                               dt) and not re.fullmatch(
-                                                                   r"<U[0-9]{1,6}", dt):
+        if dt not in ("str", "object") and not _DTYPE.fullmatch(dt):
             raise IntegrityError(f"{fname}: field {path}.{name} has unsupported dtype {dt!r}")
         out[name] = "str" if dt in ("object",) or dt.startswith("<U") else dt
     return out
@@ -311,7 +315,8 @@ def decode_record(manifest: Any, blobs: Mapping[str, bytes]) -> RunRecord:
         raise IntegrityError(f"{M}: field format must be {FORMAT_NAME!r}")
     ver = get(m, "format_version", int, M, "")
     if ver != FORMAT_VERSION:
-        raise IntegrityError(f"{M}: format_version {ver} is not supported (this is {FORMAT_VERSION})")
+        raise IntegrityError(
+            f"{M}: format_version {ver} is not supported (this is {FORMAT_VERSION})")
     run_id = fmt.check_run_id_integrity(get(m, "run_id", str, M, ""), M)
     created = get(m, "created", str, M, "")
     parent = get(m, "parent", dict, M, "", optional=True)

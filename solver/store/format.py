@@ -120,7 +120,8 @@ def to_plain(value: Any, arrays: dict[str, np.ndarray] | None, where: str) -> An
             raise InvalidInputError(f"{where}: arrays are not allowed here")
         if value.dtype.kind not in _ALLOWED_KINDS:
             raise InvalidInputError(
-                f"{where}: array of dtype {value.dtype} cannot be stored (numbers and booleans only)"
+                f"{where}: array of dtype {value.dtype} cannot be stored "
+                "(numbers and booleans only)"
             )
         key = f"a{len(arrays)}"
         arrays[key] = np.ascontiguousarray(value)
@@ -244,7 +245,7 @@ def read_npz(
                 if expected is not None:
                     kinds, want = expected[key]
                     if dtype.kind not in kinds or len(shape) != len(want) or any(
-                        w is not None and w != s for w, s in zip(want, shape)
+                        w is not None and w != s for w, s in zip(want, shape, strict=True)
                     ):
                         raise IntegrityError(
                             f"{fname}: array {key!r} has dtype {dtype} shape {shape}, "
@@ -311,7 +312,8 @@ def write_table(
     for name, arr in columns.items():
         arr = np.asarray(arr)
         pa_arr = _to_arrow(arr)
-        meta = {"description": descriptions[name]} if descriptions and name in descriptions else None
+        doc = descriptions.get(name) if descriptions else None
+        meta = {"description": doc} if doc else None
         fields.append(pa.field(name, pa_arr.type, nullable=False, metadata=meta))
         arrays.append(pa_arr)
         e, use_dict = _column_encoding(name, arr)
@@ -330,8 +332,8 @@ def write_table(
     return buf.getvalue()
 
 
-_NUMPY_OF = {name: np.dtype(name) for name in ("int8", "int16", "int32", "int64", "uint8", "uint16", "uint32",
-                          "uint64")}
+_NUMPY_OF = {name: np.dtype(name) for name in (
+    "int8", "int16", "int32", "int64", "uint8", "uint16", "uint32", "uint64")}
 _NUMPY_OF.update({"float": np.dtype(np.float32), "double": np.dtype(np.float64),
                   "halffloat": np.dtype(np.float16)})
 
@@ -347,7 +349,8 @@ def _from_arrow(col: pa.ChunkedArray) -> np.ndarray:
             parts.append(bits[ch.offset:ch.offset + len(ch)].astype(bool))
         else:
             dt = _NUMPY_OF[str(typ)]
-            parts.append(np.frombuffer(buf, dtype=dt, count=len(ch), offset=ch.offset * dt.itemsize))
+            parts.append(np.frombuffer(buf, dtype=dt, count=len(ch),
+                                       offset=ch.offset * dt.itemsize))
     if not parts:
         return np.zeros(0, dtype=bool if pa.types.is_boolean(typ) else _NUMPY_OF[str(typ)])
     return np.concatenate(parts)
@@ -359,7 +362,8 @@ def read_table(
     """Read Parquet bytes into ``{name: 1-D numpy array}``.
 
     ``expected`` maps column name → numpy dtype string (``"str"`` for text); column set,
-    order and dtypes must match exactly (``spec`` names the manifest field in messages).  Malformed bytes → :class:`IntegrityError`.
+    order and dtypes must match exactly (``spec`` names the manifest field in messages).
+    Malformed bytes → :class:`IntegrityError`.
     """
     try:
         # ParquetFile, not pq.read_table: the latter imports pandas (a second of start-up)
@@ -400,7 +404,7 @@ def write_csv(columns: Mapping[str, np.ndarray]) -> bytes:
     names = list(columns)
     w.writerow(names)
     cols = [np.asarray(columns[c]).tolist() for c in names]
-    for row in zip(*cols):
+    for row in zip(*cols, strict=True):
         w.writerow([repr(v) if isinstance(v, float) else v for v in row])
     return buf.getvalue().encode()
 

@@ -101,7 +101,9 @@ def check_file_entries(files: Any) -> list[str]:
     return out
 
 
-def check_folder(run_dir: Path, run_id: str) -> tuple[list[str], dict[str, Any] | None, str | None, int]:
+def check_folder(
+    run_dir: Path, run_id: str
+) -> tuple[list[str], dict[str, Any] | None, str | None, int]:
     """Check one run folder against its own manifest.
 
     Returns (problems, parsed manifest or None, actual manifest digest or None,

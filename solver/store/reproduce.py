@@ -11,7 +11,7 @@ from __future__ import annotations
 
 import inspect
 from collections.abc import Mapping
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, replace
 from typing import Any
 
 import numpy as np
@@ -107,16 +107,16 @@ def _rebuild_problem(record: RunRecord, dataset: Dataset, notes: list[str]) -> t
     if class_weight:
         lookup = {str(v): v for v in np.unique(dataset.labels).tolist()}
         cw = {lookup.get(k, k): float(w) for k, w in class_weight.items()}
-    sample_weight = None
-    if info.get("sample_weight"):
-        # the weights are not in the data file; recover them from the stored bounds
-        base = binary_classification(std.transform(dataset.X), dataset.labels, kernel=stored.kernel,
-                                     C=C, class_weight=cw, positive_label=labels["positive"])
-        sample_weight = stored.upper / base.upper
-        notes.append("sample weights recovered from the stored upper bounds")
     problem = binary_classification(std.transform(dataset.X), dataset.labels, kernel=stored.kernel,
-                                    C=C, class_weight=cw, sample_weight=sample_weight,
-                                    positive_label=labels["positive"])
+                                    C=C, class_weight=cw, positive_label=labels["positive"])
+    if info.get("sample_weight"):
+        # per-point weights are not part of the data file: take the bounds they produced
+        ratio = stored.upper / problem.upper
+        if not np.all(np.isfinite(ratio) & (ratio > 0)):
+            raise InvalidInputError("the stored upper bounds do not fit this data's C and weights")
+        problem = replace(problem, upper=stored.upper.copy(),
+                          info={**problem.info, "sample_weight": True})
+        notes.append("sample weights taken from the stored upper bounds")
     return problem, std
 
 

@@ -132,7 +132,8 @@ class RunStore:
                 pbytes = (pdir / MANIFEST).read_bytes()
                 recorded = parse_digest_file((pdir / MANIFEST_DIGEST).read_bytes())
             except OSError as exc:
-                raise IntegrityError(f"parent run {parent_id}: cannot read its manifest ({exc})") from None
+                raise IntegrityError(
+                    f"parent run {parent_id}: cannot read its manifest ({exc})") from None
             pdigest = sha256_hex(pbytes)
             if recorded != pdigest:
                 raise IntegrityError(f"parent run {parent_id}: manifest.json does not match "
@@ -226,10 +227,13 @@ class RunStore:
                 raise IntegrityError("manifest.json: changed while loading")
         record = decode_record(manifest, self._blobs(d, manifest, verify))
         if record.run_id != run_id:
-            raise IntegrityError(f"manifest.json: run_id {record.run_id} does not match folder {run_id}")
+            raise IntegrityError(
+                f"manifest.json: run_id {record.run_id} does not match folder {run_id}")
         return record
 
-    def load_model(self, run_id: str, *, verify: bool = True, require_converged: bool = True) -> Model:
+    def load_model(
+        self, run_id: str, *, verify: bool = True, require_converged: bool = True
+    ) -> Model:
         """The trained model of a classification run (from ``model.json`` + ``model.npz``).
 
         A run whose solver did not converge raises :class:`InvalidInputError` unless
@@ -282,7 +286,9 @@ class RunStore:
                             files_checked=checked, parent_id=parent_id,
                             parent_chain_ok=parent_ok, chain=chain, manifest_sha256=digest)
 
-    def _check_chain(self, parent: Mapping[str, Any], chain: list[str], problems: list[str]) -> bool:
+    def _check_chain(
+        self, parent: Mapping[str, Any], chain: list[str], problems: list[str]
+    ) -> bool:
         ok = True
         while parent is not None:
             pid, want = parent.get("run_id"), parent.get("manifest_sha256")
@@ -376,7 +382,8 @@ class RunStore:
         """Temporary folders of saves in progress or interrupted by a crash."""
         if not self.root.is_dir():
             return []
-        return sorted(p for p in self.root.iterdir() if p.name.startswith(TEMP_PREFIX) and p.is_dir())
+        return sorted(p for p in self.root.iterdir()
+                      if p.name.startswith(TEMP_PREFIX) and p.is_dir())
 
     def clean_temp(self, *, max_age_seconds: float = 6 * 3600.0) -> list[str]:
         """Delete temporary folders whose writing process has ended (same host) or that are
