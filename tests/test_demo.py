@@ -9,6 +9,7 @@ from __future__ import annotations
 
 import csv
 import json
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -72,23 +73,28 @@ def test_acceptance_window_is_not_linear():
 
 
 @pytest.mark.slow
-def test_run_demo_writes_runs_explanations_and_reports(tmp_path):
+def test_demo_command_json_lists_runs_explanations_and_reports(tmp_path, capsys):
+    """``kktrace demo --json`` (in-process): every promised file exists and verifies."""
     from solver import RunStore
+    from solver.cli import main
 
-    res = demo.run_demo(store=tmp_path / "traces")
-    out = res.train
-    assert len(out.run_ids) == 2, "SMO run plus the QP challenger"
-    assert out.converged
-    assert out.verdict is not None
+    assert main(["demo", "--store", str(tmp_path / "traces"), "--json"]) == 0
+    out = json.loads(capsys.readouterr().out)
+    assert out["invented_data"] is True
+    runs = out["runs"]
+    ids = [runs["run_id"], runs["challenger"]["run_id"]]
+    assert runs["converged"] and runs["verdict"] in ("agree", "agree_within_tolerances")
     store = RunStore(tmp_path / "traces")
-    assert {r["run_id"] for r in store.runs()} >= set(out.run_ids)
-    for rid in out.run_ids:
+    assert {r["run_id"] for r in store.runs()} >= set(ids)
+    for rid in ids:
         assert store.verify(rid).ok
     for fmt in ("html", "pdf", "json"):
-        assert res.reports[fmt].is_file() and res.reports[fmt].stat().st_size > 0
-    summary = json.loads(res.reports["json"].read_text(encoding="utf-8"))
-    assert out.run_ids[0] in json.dumps(summary)
+        p = Path(out["reports"][fmt])
+        assert p.is_file() and p.stat().st_size > 0
+    summary = json.loads(Path(out["reports"]["json"]).read_text(encoding="utf-8"))
+    assert ids[0] in json.dumps(summary)
+    assert "invented" in json.dumps(summary).lower()
     for fmt in ("csv", "parquet"):
-        assert res.explanation_files[fmt].is_file()
-    for f in res.data_files:
-        assert f.is_file()
+        assert Path(out["explanations"][fmt]).is_file()
+    for f in out["data_files"]:
+        assert Path(f).is_file()
