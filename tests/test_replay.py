@@ -221,6 +221,26 @@ def test_reproduce_reports_a_difference_within_and_beyond_tolerance(smo_loaded) 
     assert tight.agreement == "different" and not tight.within_tolerance
 
 
+def test_reproduce_qp_run(tmp_path, rng) -> None:
+    from solver.qp import solve_qp
+
+    ds = _dataset(rng, n=40)
+    std = Standardiser.fit(ds.X)
+    prob = binary_classification(std.transform(ds.X), ds.labels, kernel=RBFKernel(), C=1.0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ConvergenceWarning)
+        res = solve_qp(prob, callback=lambda state: None)
+    store = RunStore(tmp_path)
+    rec = store.load(store.save(RunRecord(problem=prob, result=res, data=ds.describe(),
+                                          standardiser=std)))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore", ConvergenceWarning)
+        rp = reproduce(rec, ds)
+    assert rp.problem_identical and rp.within_tolerance
+    assert "callback" not in rp.options and "alpha0" not in rp.options
+    assert rp.agreement == "bitwise"  # cvxopt is deterministic on one machine
+
+
 def test_reproduce_rejects_wrong_data(smo_loaded, rng) -> None:
     rec, ds, _ = smo_loaded
     other = _dataset(np.random.default_rng(1), n=120)

@@ -161,14 +161,25 @@ def reproduce(
                 if p.kind is inspect.Parameter.KEYWORD_ONLY}
     opts: dict[str, Any] = {}
     dropped = []
+    warm = bool(res0.options.get("warm_start"))
     for key, value in res0.options.items():
         if key in _NOT_OPTIONS:
+            continue
+        if key == "alpha0":  # recorded as the start itself, or as a flag "a start was given"
+            if isinstance(value, np.ndarray):
+                opts[key] = value
+            else:
+                warm = warm or value is True
+            continue
+        if key == "callback":  # recorded by name only; progress reporting is not replayed
+            if value is not None:
+                notes.append("the recorded callback was not re-attached")
             continue
         if key in accepted and not (isinstance(value, dict) and "$callable" in value):
             opts[key] = value
         else:
             dropped.append(key)
-    if res0.options.get("warm_start") and "alpha0" in accepted:
+    if warm and "alpha0" in accepted and "alpha0" not in opts:
         tr = res0.trace
         if tr is not None and tr.snapshot_iterations.size and tr.snapshot_iterations[0] == 0:
             opts["alpha0"] = np.array(tr.snapshots[0])
