@@ -40,7 +40,6 @@ from collections.abc import Callable, Mapping
 from typing import Any
 
 import numpy as np
-import scipy.linalg
 
 from .certificate import certify
 from .errors import ConvergenceWarning, InvalidInputError
@@ -73,10 +72,17 @@ class _Stop(Exception):
         self.detail = detail
 
 
-def _dense_q(problem: DualProblem, block_rows: int = 1024) -> np.ndarray:
-    """Q (n, n) built from kernel blocks, symmetrised (rounding in blocks can break symmetry)."""
+def _dense_q(problem: DualProblem, block_rows: int = 1024) -> tuple[Any, np.ndarray]:
+    """Q (n, n) from kernel blocks, symmetrised (rounding in blocks can break symmetry).
+
+    Returned as a cvxopt matrix and a NumPy view of the same memory, so that all dense
+    linear algebra of the solve runs on cvxopt's own BLAS / LAPACK.
+    """
+    from cvxopt import matrix
+
     n = problem.n
-    Q = np.empty((n, n))
+    Qc = matrix(0.0, (n, n))
+    Q = np.asarray(Qc)  # column-major view, writable
     for s in range(0, n, block_rows):
         e = min(n, s + block_rows)
         Q[s:e] = problem.q_block(slice(s, e), slice(None))
@@ -87,13 +93,22 @@ def _dense_q(problem: DualProblem, block_rows: int = 1024) -> np.ndarray:
             avg = 0.5 * (Q[s:e, t:f] + Q[t:f, s:e].T)
             Q[s:e, t:f] = avg
             Q[t:f, s:e] = avg.T
-    return Q
+    return Qc, Q
+
+
+def _qx(Qc: Any, x: np.ndarray) -> np.ndarray:
+    """Q x with cvxopt's BLAS (symv, lower triangle), as a NumPy vector."""
+    from cvxopt import blas, matrix
+
+    out = matrix(0.0, (Qc.size[0], 1))
+    blas.symv(Qc, matrix(np.ascontiguousarray(x, dtype=np.float64)), out)
+    return np.array(out).ravel()
 
 
 class _Recorder:
     """Collects one trace row per interior-point iterate; owns stop checks and the callback."""
 
-    def __init__(self, problem: DualProblem, Q: np.ndarray, *, level: str, sample_every: int,
+    def __init__(self, problem: DualProblem, Q: Any, *, level: str, sample_every: int,
                  snapshot_every: int, callback: Callable[[Mapping[str, Any]], Any] | None,
                  time_limit: float | None, started: float) -> None:
         self.problem, self.Q = problem, Q
@@ -120,7 +135,7 @@ class _Recorder:
     def stats(self, x: np.ndarray, yv: float, s: np.ndarray, z: np.ndarray) -> dict[str, float]:
         """cvxopt's coneqp statistics recomputed from the iterate (same formulas)."""
         n, pr = self.n, self.problem
-        Qx = self.Q @ x
+        Qx = _qx(self.Q, x)
         f0 = 0.5 * float(x @ Qx) + float(self.q @ x)
         rx = Qx + self.q + yv * pr.y - z[:n] + z[n:]
         ry = float(pr.y @ x) - pr.delta
@@ -203,23 +218,37 @@ class _Recorder:
         self.observe(np.asarray(x), yv, np.asarray(s), np.asarray(z), it)
 
 
-def _structured_factory(Q: np.ndarray, a: np.ndarray, rec: _Recorder) -> Callable:
-    """KKT-solver factory exploiting G = [−I; I] and one equality row (see module notes)."""
+def _structured_factory(Qc: Any, a: np.ndarray, rec: _Recorder) -> Callable:
+    """KKT-solver factory exploiting G = [−I; I] and one equality row (see module notes).
+
+    The factorisation and solves use cvxopt's LAPACK (``potrf`` / ``potrs``), the same
+    library cvxopt's generic path uses, so the benchmark compares formulations, not BLAS.
+    """
+    from cvxopt import lapack, matrix
+
     n = a.shape[0]
-    H = np.empty_like(Q)
+    Q = np.asarray(Qc)
+    Hc = matrix(0.0, (n, n))
+    H = np.asarray(Hc)
+    diag = np.arange(n)
+
+    def chol_solve(rhs: np.ndarray) -> np.ndarray:
+        B = matrix(np.ascontiguousarray(rhs, dtype=np.float64))
+        lapack.potrs(Hc, B)
+        return np.array(B).ravel()
 
     def factor(W: Mapping[str, Any]) -> Callable:
         rec.from_frame()
         d = np.array(W["d"]).ravel()
         w1, w2 = d[:n] ** -2, d[n:] ** -2
         np.copyto(H, Q)
-        H.flat[:: n + 1] += w1 + w2
+        H[diag, diag] += w1 + w2
         try:
-            cf = scipy.linalg.cho_factor(H, lower=True, overwrite_a=True, check_finite=False)
-        except np.linalg.LinAlgError as exc:
+            lapack.potrf(Hc)  # lower Cholesky factor, in place
+        except ArithmeticError as exc:
             rec.singular = f"Cholesky of Q + D failed: {exc}"
             raise ArithmeticError(rec.singular) from None
-        Ha = scipy.linalg.cho_solve(cf, a, check_finite=False)
+        Ha = chol_solve(a)
         schur = float(a @ Ha)
         if not (math.isfinite(schur) and schur > 0.0) or not np.all(np.isfinite(Ha)):
             rec.singular = f"Schur complement aᵀ(Q + D)⁻¹a = {schur!r} is not positive"
@@ -230,7 +259,7 @@ def _structured_factory(Q: np.ndarray, a: np.ndarray, rec: _Recorder) -> Callabl
             xv, zv = np.asarray(x).ravel(), np.asarray(z).ravel()
             by = float(np.asarray(y).ravel()[0])
             bz1, bz2 = zv[:n].copy(), zv[n:].copy()
-            Hr = scipy.linalg.cho_solve(cf, xv - w1 * bz1 + w2 * bz2, check_finite=False)
+            Hr = chol_solve(xv - w1 * bz1 + w2 * bz2)
             uy = (float(a @ Hr) - by) / schur
             ux = Hr - uy * Ha
             xv[:] = ux
@@ -422,11 +451,11 @@ def solve_qp(
     started = time.perf_counter()
     a0 = _check_options(problem, tol, max_iter, size_limit, trace, kkt, kkt_tol, sample_every,
                         snapshot_every, time_limit, callback, alpha0, force)
-    from cvxopt import matrix, solvers
+    from cvxopt import blas, matrix, solvers
 
     n = problem.n
-    Q = _dense_q(problem)
-    rec = _Recorder(problem, Q, level=trace, sample_every=int(sample_every),
+    Qc, Q = _dense_q(problem)
+    rec = _Recorder(problem, Qc, level=trace, sample_every=int(sample_every),
                     snapshot_every=int(snapshot_every), callback=callback,
                     time_limit=time_limit, started=started)
     q = matrix(problem.p.copy())
@@ -437,9 +466,7 @@ def solve_qp(
                    "reltol": float(tol), "feastol": float(tol), "refinement": 0}
     if kkt == "structured":
         def P(u: Any, v: Any, alpha: float = 1.0, beta: float = 0.0) -> None:
-            vv = np.asarray(v).ravel()
-            vv *= beta
-            vv += alpha * (Q @ np.asarray(u).ravel())
+            blas.symv(Qc, u, v, alpha=alpha, beta=beta)
 
         def G(u: Any, v: Any, alpha: float = 1.0, beta: float = 0.0, trans: str = "N") -> None:
             uu, vv = np.asarray(u).ravel(), np.asarray(v).ravel()
@@ -451,9 +478,9 @@ def solve_qp(
                 vv += alpha * (uu[n:] - uu[:n])
 
         Pm, Gm = P, G
-        factory = _structured_factory(Q, problem.y, rec)
+        factory = _structured_factory(Qc, problem.y, rec)
     else:
-        Pm = matrix(Q)
+        Pm = Qc
         Gm = matrix(np.vstack([-np.eye(n), np.eye(n)]))
         factory = _generic_factory(Gm, A, Pm, rec)
     initvals = {"x": matrix(a0)} if a0 is not None else None
@@ -517,7 +544,7 @@ def solve_qp(
 
     kappa = max(float(np.max(np.diag(Q))), np.finfo(float).tiny)
     alpha, snap = _snap(problem, x, s, z, kappa)
-    cert = certify(problem, alpha, tol=kkt_tol, gradient=Q @ alpha + problem.p)
+    cert = certify(problem, alpha, tol=kkt_tol, gradient=_qx(Qc, alpha) + problem.p)
     detail_text = f"cvxopt status {raw_status!r}" + (f": {detail}" if detail else "")
     message = status_message(status, detail_text)
     if status == Status.CONVERGED and not cert.meets_tol:
