@@ -168,25 +168,29 @@ def test_non_support_vectors_are_never_loo_errors(solved):
     assert np.all(loo.loo_wrong[train_wrong])
 
 
-def test_removal_start_is_feasible_and_prefers_same_class():
+def test_removal_start_is_feasible_and_keeps_free_margins():
+    # decremental step (Cauwenberghs & Poggio 2001): f is linear in (α, b), so when no
+    # multiplier is clipped the free support vectors keep their margins exactly (the
+    # common shift is absorbed by the bias)
     prob = _problem(load_wine, 0, 1, gamma=0.1, C=1.0)
     res = _solve(prob)
-    for i in np.flatnonzero(~res.certificate.at_lower)[:10]:
+    c = res.certificate
+    free = ~(c.at_lower | c.at_upper)
+    K = prob.kernel.gram(prob.X)
+    checked = 0
+    for i in np.flatnonzero(~c.at_lower):
         sub, keep = drop_row(prob, int(i))
         a0 = removal_start(prob, res.alpha, int(i))
         bound, eq = sub.feasibility(a0)
         assert bound == 0.0 and eq < 1e-12
-        moved = a0 - res.alpha[keep]
-        same = sub.y == prob.y[i]
-        room_same = float((sub.upper - res.alpha[keep])[same].sum())
-        if room_same >= res.alpha[i]:
-            assert np.all(moved[~same] == 0.0) and np.all(moved >= 0.0)
-            assert moved[same].sum() == pytest.approx(res.alpha[i])
-        # the most similar same-class point (largest kernel value) is filled first
-        k = prob.kernel.block(prob.X[i], sub.X)[0]
-        if room_same > 0:
-            best = np.flatnonzero(same & (sub.upper > res.alpha[keep]))
-            assert moved[best[np.argmax(k[best])]] > 0
+        S = np.flatnonzero(free[keep])
+        if S.size < 2 or np.any((a0[S] <= 0.0) | (a0[S] >= sub.upper[S])):
+            continue  # a multiplier hit its bound: only feasibility is promised
+        F_old = K[keep] @ (res.alpha * prob.y)
+        F_new = K[np.ix_(keep, keep)] @ (a0 * sub.y)
+        assert np.ptp((F_new - F_old)[S]) < 1e-9  # every free margin moves by the same Δb
+        checked += 1
+    assert checked >= 3
 
 
 def test_removal_start_falls_back_to_other_class():
@@ -230,7 +234,7 @@ def test_shared_gram_off_gives_same_answer():
     a = leave_one_out(prob, res)
     b = leave_one_out(prob, res, shared_gram_mb=0.0)
     np.testing.assert_array_equal(a.loo_wrong, b.loo_wrong)
-    np.testing.assert_allclose(a.loo_values, b.loo_values, atol=1e-9)
+    np.testing.assert_allclose(a.loo_values, b.loo_values, atol=1e-5)
 
 
 def test_non_converged_refits_are_reported():

@@ -14,10 +14,11 @@
   support vector the bias can jump when a point is removed and the estimate may fall
   below the exact value (seen on iris versicolor/virginica, RBF gamma = 3, C = 0.1).
 * Exact: only support vectors are refitted (see :mod:`solver.explain._refit`): each refit
-  drops the row, starts from the full solution with that multiplier removed and yᵀα = Δ
-  restored over the most similar same-class points, runs on a working set and is
-  certified on the whole dropped problem.  ``brute_force`` refits every row from the
-  solver's default start on the whole dropped problem, for comparison.
+  drops the row, starts from the full solution with that multiplier removed — the free
+  support vectors adjusted to stay on the margin (decremental step, Cauwenberghs & Poggio
+  2001) and yᵀα = Δ restored within the bounds — runs on a working set and is certified
+  on the whole dropped problem.  ``brute_force`` refits every row from the solver's
+  default start on the whole dropped problem, for comparison.
 """
 
 from __future__ import annotations

@@ -6,14 +6,16 @@ count as movable).  Two refits are offered:
 
 * :meth:`Refitter.cold` — the whole dropped problem from the solver's default start
   (brute force).
-* :meth:`Refitter.warm` — warm start from the full solution (see :func:`removal_start`)
-  on a working set: the remaining support vectors, every point whose training margin is
-  below 1 + :data:`WORKING_MARGIN`, and every point the warm start made non-zero.  Points
-  outside it keep α = 0.  The answer is certified on the *whole* dropped problem with
-  :func:`solver.certificate.certify` (maximal violation ≤ tol, the solver's own stopping
-  test); points outside the working set that violate their KKT condition are added and
-  the refit continues from where it stopped — the same idea as shrinking in decomposition
-  methods (common practice), so the result is a converged solution of the dropped problem.
+* :meth:`Refitter.warm` — warm start from the full solution (see :func:`removal_start`:
+  a decremental step that keeps the free support vectors on the margin, then yᵀα = Δ
+  restored within the bounds) on a working set: the remaining support vectors, every point
+  whose training margin is below 1 + :data:`WORKING_MARGIN`, and every point the warm start
+  made non-zero.  Points outside it keep α = 0.  The answer is certified on the *whole*
+  dropped problem with :func:`solver.certificate.certify` (maximal violation ≤ tol, the
+  solver's own stopping test); points outside the working set that violate their KKT
+  condition are added and the refit continues from where it stopped — the same idea as
+  shrinking in decomposition methods (common practice), so the result is a converged
+  solution of the dropped problem.
 """
 
 from __future__ import annotations
@@ -55,37 +57,75 @@ class Refit:
     max_violation: float
 
 
-def removal_start(
-    problem: DualProblem, alpha: np.ndarray, i: int, krow: np.ndarray | None = None
-) -> np.ndarray:
-    """Feasible warm start (n − 1,) for the problem without row ``i``.
-
-    α without entry i misses yᵢαᵢ in yᵀα = Δ; that amount is given to same-class points
-    in order of decreasing K(xᵢ, xⱼ) up to their upper bounds, then, if their room is
-    exhausted, taken from other-class points (same order) down to their lower bounds.
-    ``krow`` (n,) may supply the kernel row K(xᵢ, ·).
-    """
-    keep = np.delete(np.arange(problem.n), i)
-    a = np.asarray(alpha, dtype=np.float64)[keep].copy()
-    y, lo, up = problem.y[keep], problem.lower[keep], problem.upper[keep]
-    need = problem.delta - float(y @ a)  # amount of yᵀa still missing
-    if need == 0.0:
-        return a
-    if krow is None:
-        krow = problem.kernel_block(np.array([i]), slice(None))[0]
-    order = np.argsort(-np.asarray(krow, dtype=np.float64)[keep], kind="stable")
+def _rebalance(a: np.ndarray, y: np.ndarray, lo: np.ndarray, up: np.ndarray, need: float,
+               order: np.ndarray) -> np.ndarray:
+    """Change ``a`` in place so that yᵀa grows by ``need``: raise points with y = sign(need),
+    then lower the others, each group in ``order``, within [lo, up]."""
     sign = 1.0 if need > 0 else -1.0
+    scale = max(1.0, abs(need))
     # raising a point with y = sign, or lowering one with y = −sign, adds sign·step to yᵀa
     for same in (True, False):
+        if abs(need) <= 1e-12 * scale:
+            break
         cand = order[(y[order] == sign) == same]
         room = (up[cand] - a[cand]) if same else (a[cand] - lo[cand])
         take = np.minimum(room, np.maximum(abs(need) - (np.cumsum(room) - room), 0.0))
         a[cand] += take if same else -take
         need -= sign * float(take.sum())
-        if abs(need) <= 1e-12 * max(1.0, abs(float(alpha[i]))):
-            return np.clip(a, lo, up)
-    raise InvalidInputError(f"cannot restore feasibility after removing row {i}: "
-                            "the bounds of the remaining points cannot satisfy yᵀα = Δ")
+    if abs(need) > 1e-12 * scale:
+        raise InvalidInputError("the bounds of the remaining points cannot satisfy yᵀα = Δ")
+    return np.clip(a, lo, up, out=a)
+
+
+def removal_start(
+    problem: DualProblem, alpha: np.ndarray, i: int, krow: np.ndarray | None = None,
+    gram: np.ndarray | None = None,
+) -> np.ndarray:
+    """Feasible warm start (n − 1,) for the problem without row ``i``.
+
+    Decremental step (Cauwenberghs & Poggio 2001, from memory): with αᵢ removed, the free
+    support vectors S keep their margins (yₛf(xₛ) = 1) and yᵀα = Δ holds to first order when
+    (Δb, Δα_S) solves  [0 y_Sᵀ; y_S Q_SS] [Δb; Δα_S] = [yᵢαᵢ; Q_Si αᵢ]  (least squares if
+    singular); the new multipliers are clipped to their bounds.  The remaining gap in yᵀα = Δ
+    goes to same-class points in order of decreasing K(xᵢ, xⱼ) within their bounds, then is
+    taken from other-class points in the same order.  ``krow`` (n,) may supply K(xᵢ, ·) and
+    ``gram`` (n, n) the whole Gram matrix.
+    """
+    n = problem.n
+    keep = np.delete(np.arange(n), i)
+    y, lo, up = problem.y, problem.lower, problem.upper
+    a = np.asarray(alpha, dtype=np.float64).copy()
+    ai = float(a[i] - lo[i])
+    a[i] = lo[i]
+    width = np.maximum(up - lo, 0.0)
+    free = (a > lo + 1e-8 * width) & (a < up - 1e-8 * width)
+    free[i] = False
+    S = np.flatnonzero(free)
+    if S.size and ai != 0.0:
+        K_SS = gram[np.ix_(S, S)] if gram is not None else problem.kernel_block(S, S)
+        K_Si = gram[S, i] if gram is not None else problem.kernel_block(S, np.array([i]))[:, 0]
+        A = np.empty((S.size + 1, S.size + 1))
+        A[0, 0] = 0.0
+        A[0, 1:] = A[1:, 0] = y[S]
+        A[1:, 1:] = K_SS * np.outer(y[S], y[S])
+        rhs = np.concatenate([[y[i] * ai], y[S] * y[i] * K_Si * ai])
+        step = np.linalg.lstsq(A, rhs, rcond=None)[0][1:]
+        if np.all(np.isfinite(step)):
+            a[S] = np.clip(a[S] + step, lo[S], up[S])
+    a = a[keep]
+    need = problem.delta - float(y[keep] @ a)
+    if need == 0.0:
+        return a
+    if krow is None:
+        krow = gram[i] if gram is not None else problem.kernel_block(np.array([i]),
+                                                                     slice(None))[0]
+    order = np.argsort(-np.asarray(krow, dtype=np.float64)[keep], kind="stable")
+    try:
+        return _rebalance(a, y[keep], lo[keep], up[keep], need, order)
+    except InvalidInputError:
+        raise InvalidInputError(
+            f"cannot restore feasibility after removing row {i}: the bounds of the remaining "
+            "points cannot satisfy yᵀα = Δ") from None
 
 
 class Refitter:
@@ -141,7 +181,7 @@ class Refitter:
         n = P.n
         keep = np.delete(np.arange(n), i)
         a = np.zeros(n)
-        a[keep] = removal_start(P, alpha, i, self.kernel_block(np.array([i]), slice(None))[0])
+        a[keep] = removal_start(P, alpha, i, gram=self.gram)
         inside = (alpha > P.lower) | (a > P.lower) | (margin < 1.0 + WORKING_MARGIN)
         inside[i] = False
         # the dropped problem, for the certificate only (its kernel is never evaluated)
