@@ -109,7 +109,10 @@ def removal_start(
         A[0, 1:] = A[1:, 0] = y[S]
         A[1:, 1:] = K_SS * np.outer(y[S], y[S])
         rhs = np.concatenate([[y[i] * ai], y[S] * y[i] * K_Si * ai])
-        step = np.linalg.lstsq(A, rhs, rcond=None)[0][1:]
+        try:
+            step = np.linalg.solve(A, rhs)[1:]
+        except np.linalg.LinAlgError:  # e.g. duplicated free points
+            step = np.linalg.lstsq(A, rhs, rcond=None)[0][1:]
         if np.all(np.isfinite(step)):
             a[S] = np.clip(a[S] + step, lo[S], up[S])
     a = a[keep]
