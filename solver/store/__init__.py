@@ -8,7 +8,7 @@ from __future__ import annotations
 from .catalog import COLUMNS as CATALOG_COLUMNS
 from .format import FORMAT_NAME, FORMAT_VERSION, RUN_ID_PATTERN, check_run_id, is_run_id, new_run_id
 from .integrity import Verification
-from .replay import ReplayState, replay
+from .replay import ReplayState, replay, replayable_iterations
 from .reproduce import Reproduction, reproduce
 from .store import DEFAULT_DIR, ENV_VAR, RunStore
 
@@ -17,6 +17,7 @@ __all__ = [
     "Verification",
     "replay",
     "ReplayState",
+    "replayable_iterations",
     "reproduce",
     "Reproduction",
     "FORMAT_NAME",

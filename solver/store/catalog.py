@@ -233,6 +233,18 @@ class Catalog:
         finally:
             con.close()
 
+    def digest(self, run_id: str) -> str | None:
+        """The manifest digest recorded for ``run_id`` (None when absent or no catalog)."""
+        if not self.path.exists():
+            return None
+        con = self._connect()
+        try:
+            row = con.execute("SELECT manifest_sha256 FROM runs WHERE run_id = ?",
+                              (run_id,)).fetchone()
+            return None if row is None else row[0]
+        finally:
+            con.close()
+
     def query(self, filters: Mapping[str, Any]) -> list[dict[str, Any]]:
         """Rows matching every filter, oldest first.
 

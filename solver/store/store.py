@@ -118,7 +118,8 @@ class RunStore:
     # ------------------------------------------------------------------ save
 
     def save(self, record: RunRecord, *, parent: str | None = None) -> str:
-        """Store ``record`` as a new run and return its run id.
+        """Store ``record`` as a new run and return its run id (always a new run, even for a
+        record that was loaded from a store).
 
         ``parent`` (or, when omitted, ``record.parent_id``) names the run this one derives
         from; it must be in this store, and its manifest digest is recorded.  The run
@@ -269,7 +270,7 @@ class RunStore:
         """Check a run folder byte for byte against its manifest, and its parent chain."""
         check_run_id(run_id)
         problems, manifest, digest, checked = check_folder(self.root / run_id, run_id)
-        recorded = self._catalog.digests().get(run_id) if self._catalog.path.exists() else None
+        recorded = self._catalog.digest(run_id)
         if recorded and digest and recorded != digest:
             problems.append(f"{MANIFEST}: digest differs from the one the catalog recorded at save")
         chain = [run_id]
