@@ -22,7 +22,6 @@ from cycler import cycler
 from matplotlib.figure import Figure, SubFigure
 from matplotlib.lines import Line2D
 from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
-from matplotlib.transforms import blended_transform_factory
 
 from .content import FigureData
 
@@ -129,6 +128,17 @@ def _count(v: float, _pos: int) -> str:
     return f"{int(round(v)):,}".replace(",", "\u2009")
 
 
+def _num(v: float, _pos: int) -> str:
+    """Tick label for a real value: 3 significant digits, ×10ⁿ for large or small values."""
+    if v == 0:
+        return "0"
+    text = f"{v:.3g}"
+    if "e" in text:
+        m, e = text.split("e")
+        text = f"{m}×10{str(int(e)).translate(_SUPERSCRIPT)}"
+    return text.replace("-", "−")
+
+
 def _log_y(ax: Any) -> None:
     ax.set_yscale("log")
     ax.yaxis.set_major_locator(LogLocator(base=10.0, numticks=7))
@@ -141,17 +151,26 @@ def _iter_x(ax: Any, label: str = "iteration") -> None:
     ax.set_xlabel(label)
 
 
-def _event_marks(ax: Any, events: Mapping[str, np.ndarray], handles: list) -> None:
-    """Short ticks along the top edge at each event iteration, one row per event kind."""
-    trans = blended_transform_factory(ax.transData, ax.transAxes)
-    for k, (name, its) in enumerate(sorted(events.items())):
-        if len(its) == 0:
-            continue
+def _with_rug(fig: Figure | SubFigure, events: Mapping[str, np.ndarray]) -> tuple[Any, Any]:
+    """Main axes plus, when there are events, a thin strip below it with one row of ticks
+    per event kind (shrink, reconstruct, curvature fix ...) on the shared iteration axis."""
+    kinds = sorted(k for k, v in events.items() if len(v))
+    if not kinds:
+        return _axes(fig), None
+    gs = fig.add_gridspec(2, 1, height_ratios=[1.0, 0.05 + 0.07 * len(kinds)], hspace=0.06,
+                          **_margins(fig))
+    ax = fig.add_subplot(gs[0])
+    rug = fig.add_subplot(gs[1], sharex=ax)
+    ax.tick_params(labelbottom=False)
+    for row, name in enumerate(kinds):
         colour = _c(EVENT_COLOURS.get(name, "muted"))
-        top = 1.0 - 0.05 * k
-        ax.vlines(its, top - 0.05, top, transform=trans, colors=colour, linewidth=0.8)
-        handles.append(Line2D([], [], color=colour, marker="|", linestyle="none",
-                              markersize=7, label=f"{plain_text(name)} event"))
+        rug.vlines(events[name], row + 0.15, row + 0.85, colors=colour, linewidth=0.7)
+    rug.set_ylim(0, len(kinds))
+    rug.set_yticks(np.arange(len(kinds)) + 0.5, labels=[plain_text(k, 20) for k in kinds])
+    rug.tick_params(axis="y", length=0, labelsize=6.5)
+    rug.grid(False)
+    rug.spines["left"].set_visible(False)
+    return ax, rug
 
 
 def _margins(fig: Figure | SubFigure, **over: float) -> dict[str, float]:
@@ -185,7 +204,7 @@ def _legend_above(ax: Any, handles: list) -> None:
 
 
 def _draw_violation(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
-    ax = _axes(fig)
+    ax, rug = _with_rug(fig, d.get("events") or {})
     y = np.asarray(d["y"], dtype=np.float64)
     x = np.asarray(d["x"], dtype=np.float64)
     pos = y > 0
@@ -196,11 +215,9 @@ def _draw_violation(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
     ax.plot([d["final_x"]], [fy], marker="o", markersize=6, markerfacecolor="none",
             markeredgecolor=_c("ink"), linestyle="none", label="final certificate")
     _log_y(ax)
-    _iter_x(ax)
+    _iter_x(rug if rug is not None else ax)
     ax.set_ylabel("m(α) − M(α)")
-    handles, _ = ax.get_legend_handles_labels()
-    _event_marks(ax, d.get("events") or {}, handles)
-    _legend_above(ax, handles)
+    _legend_above(ax, ax.get_legend_handles_labels()[0])
 
 
 def _draw_objective(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
@@ -213,6 +230,7 @@ def _draw_objective(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
         top.plot(d["lower_x"], d["lower_y"], color=_c("rust"), linestyle=(0, (4, 2)),
                  label="lower bound (interior-point dual)")
     top.axhline(d["final"], color=_c("muted"), linewidth=0.6, linestyle=(0, (1, 1)))
+    top.yaxis.set_major_formatter(FuncFormatter(_num))
     top.set_ylabel("objective")
     _legend_above(top, top.get_legend_handles_labels()[0])
     dx, dy = np.asarray(d["dist_x"]), np.asarray(d["dist_y"])
@@ -242,7 +260,7 @@ def _draw_gap(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
 
 
 def _draw_sets(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
-    ax = _axes(fig)
+    ax, rug = _with_rug(fig, d.get("events") or {})
     if "support" in d:
         x, y = d["support"]
         ax.step(x, y, where="post", color=_c("tide"), label="support set (α > lower bound)")
@@ -254,13 +272,11 @@ def _draw_sets(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
         x, y = d["active"]
         ax.step(x, y, where="post", color=_c("rust"), linestyle=(0, (4, 2)),
                 label="active set (not shrunk)")
-    _iter_x(ax)
+    _iter_x(rug if rug is not None else ax)
     ax.yaxis.set_major_formatter(FuncFormatter(_count))
     ax.set_ylabel("points")
     ax.set_ylim(bottom=0)
-    handles, _ = ax.get_legend_handles_labels()
-    _event_marks(ax, d.get("events") or {}, handles)
-    _legend_above(ax, handles)
+    _legend_above(ax, ax.get_legend_handles_labels()[0])
 
 
 def _draw_trajectories(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
@@ -271,6 +287,7 @@ def _draw_trajectories(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
                 label=f"row {line['row']}")
         ax.axhline(line["upper"], color=colour, linewidth=0.6, linestyle=(0, (1, 2)))
     _iter_x(ax)
+    ax.yaxis.set_major_formatter(FuncFormatter(_num))
     ax.set_ylabel("α")
     ax.legend(loc="center left", bbox_to_anchor=(1.0, 0.5))
 

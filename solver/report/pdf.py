@@ -307,12 +307,14 @@ def _draw_figure_page(fig: Figure, page: PdfPage) -> None:
     # always FIGS_PER_PAGE slots, so a lone figure keeps the size it has on a full page;
     # fixed margins, no layout engine (see figures._margins)
     sub = fig.subfigures(FIGS_PER_PAGE + 2, 1,
-                         height_ratios=[0.12] + [1.0] * FIGS_PER_PAGE + [0.06])
+                         height_ratios=[0.16] + [1.0] * FIGS_PER_PAGE + [0.06])
     for sf, fd in zip(sub[1:-1], page.figures, strict=False):
-        inner = sf.subfigures(3, 1, height_ratios=[0.07, 1.0, 0.2])
-        inner[0].text(LEFT, 0.2, plain_text(fd.title, 200), fontsize=9,
-                      family="DejaVu Sans", color=PALETTE["ink"])
-        draw(inner[1], fd)
+        inner = sf.subfigures(3, 1, height_ratios=[0.08, 1.0, 0.2])
+        inner[0].text(LEFT, 0.3, plain_text(fd.title, 200), fontsize=9.5,
+                      family="DejaVu Sans", color=PALETTE["tide"])
+        # inset left and right so plots line up with the text margins of the page
+        plot = inner[1].subfigures(1, 3, width_ratios=[0.035, 1.0, 0.05])[1]
+        draw(plot, fd)
         caption = textwrap.fill(plain_text(fd.caption, 2000), width=140)
         inner[2].text(LEFT, 0.9, caption, va="top", fontsize=6.8, family="DejaVu Sans",
                       color=PALETTE["ink"])
