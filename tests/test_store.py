@@ -235,6 +235,27 @@ def test_every_file_byte_flip_is_detected_and_named(tmp_path) -> None:
     assert store.verify(rid).ok
 
 
+def test_every_byte_of_the_manifest_pair_is_covered(saved) -> None:
+    """Exhaustive for manifest.sha256 (every byte, two flips) and every 16th byte of
+    manifest.json: the special-cased pair always fails and names the changed file."""
+    store, rid, _ = saved
+    d = store.run_dir(rid)
+    for name, stride, masks in (("manifest.sha256", 1, (0x01, 0x80)),
+                                ("manifest.json", 16, (0x01,))):
+        data = (d / name).read_bytes()
+        try:
+            for pos in range(0, len(data), stride):
+                for mask in masks:
+                    b = bytearray(data)
+                    b[pos] ^= mask
+                    (d / name).write_bytes(bytes(b))
+                    v = store.verify(rid)
+                    assert not v.ok and any(name in p for p in v.problems), (pos, mask)
+        finally:
+            (d / name).write_bytes(data)
+    assert store.verify(rid).ok
+
+
 @settings(derandomize=True, max_examples=40, deadline=None,
           suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(which=st.integers(0, 10_000), where=st.floats(0, 1), bit=st.integers(0, 7))
@@ -378,6 +399,19 @@ def test_catalog_filters_and_rebuild(tmp_path, rng) -> None:
 
     shutil.rmtree(store.run_dir(ids[1]))
     assert ids[1] not in {r["run_id"] for r in store.runs()}
+
+
+def test_damaged_catalog_is_set_aside_and_rebuilt(tmp_path) -> None:
+    store = RunStore(tmp_path)
+    ids = {store.save(synthetic_record(s, rows=10)) for s in range(2)}
+    for f in tmp_path.glob("catalog.sqlite-*"):
+        f.unlink()
+    store.catalog_path.write_bytes(b"this is not an SQLite database" * 10)
+    with pytest.warns(UserWarning, match="damaged"):
+        rows = store.runs()
+    assert {r["run_id"] for r in rows} == ids
+    assert len(list(tmp_path.glob("catalog.sqlite.damaged-*"))) == 1
+    assert all(store.verify(r).ok for r in ids)
 
 
 def test_temp_folders_are_ignored_and_cleaned(tmp_path) -> None:

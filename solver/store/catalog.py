@@ -7,11 +7,14 @@ Schema (table ``runs``, one row per run) is listed in :data:`COLUMNS` and in
 
 from __future__ import annotations
 
+import contextlib
 import json
 import math
+import os
 import shlex
 import sqlite3
 import time
+import warnings
 from collections.abc import Iterable, Mapping
 from pathlib import Path
 from typing import Any
@@ -146,11 +149,35 @@ class Catalog:
 
     def __init__(self, root: Path) -> None:
         self.path = Path(root) / CATALOG_FILE
+        self._ready = False  # schema checked by this object while the file existed
 
     def _connect(self) -> sqlite3.Connection:
+        try:
+            return self._open()
+        except sqlite3.DatabaseError as exc:
+            if isinstance(exc, sqlite3.OperationalError):
+                raise
+            # not a database (overwritten, truncated): the folders are the truth, so set
+            # the damaged file aside and start an empty catalog that listings re-fill
+            aside = self.path.with_name(f"{CATALOG_FILE}.damaged-{time.time_ns()}")
+            try:
+                os.replace(self.path, aside)
+            except FileNotFoundError:
+                pass  # another process set it aside first
+            for suffix in ("-wal", "-shm"):
+                with contextlib.suppress(FileNotFoundError):
+                    os.unlink(str(self.path) + suffix)
+            warnings.warn(f"catalog {self.path} was damaged ({exc}); moved to {aside.name} "
+                          "and rebuilt from the run folders", stacklevel=3)
+            return self._open()
+
+    def _open(self) -> sqlite3.Connection:
+        existed = self.path.exists()
         con = sqlite3.connect(str(self.path), timeout=BUSY_TIMEOUT_S, isolation_level=None)
         con.row_factory = sqlite3.Row
         con.execute(f"PRAGMA busy_timeout = {int(BUSY_TIMEOUT_S * 1000)}")
+        if self._ready and existed:
+            return con
         deadline = time.monotonic() + BUSY_TIMEOUT_S
         while True:  # switching to WAL needs a moment of exclusive access
             try:
@@ -179,6 +206,7 @@ class Catalog:
             con.execute("UPDATE meta SET value=? WHERE key='schema_version'",
                         (str(SCHEMA_VERSION),))
             con.execute("COMMIT")
+        self._ready = True
         return con
 
     def upsert(self, rows: Iterable[Mapping[str, Any]]) -> None:
