@@ -177,6 +177,12 @@ class Catalog:
         con.row_factory = sqlite3.Row
         con.execute(f"PRAGMA busy_timeout = {int(BUSY_TIMEOUT_S * 1000)}")
         if self._ready and existed:
+            try:
+                con.execute("PRAGMA schema_version").fetchone()  # reads the header: cheap
+            except sqlite3.DatabaseError:
+                con.close()
+                self._ready = False
+                raise
             return con
         deadline = time.monotonic() + BUSY_TIMEOUT_S
         while True:  # switching to WAL needs a moment of exclusive access
