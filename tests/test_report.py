@@ -402,3 +402,34 @@ def test_failed_render_leaves_no_files(work: dict, tmp_path: Path,
     assert sorted(p.name for p in out.iterdir()) == ["only.html", "only.json"]
     assert set(paths) == {"html", "json"}
     assert paths["html"].stat().st_mode & 0o044  # ordinary readable file, not 0600
+
+
+def test_leave_one_out_attachment_is_shown(work: dict) -> None:
+    from solver.explain import leave_one_out
+
+    rec = work["pair"][0]
+    loo = leave_one_out(rec.problem, rec.result)
+    attached = replace(rec, attachments={**rec.attachments,
+                                         "leave_one_out": {**loo.to_dict(), **loo.to_columns()}})
+    rc = build_report_content([attached]).runs[0]
+    scalars = dict(rc.loo.rows)
+    assert scalars["errors"] == loo.errors and scalars["method"] == loo.method
+    fig = rc.loo_figure
+    assert fig is not None and int(np.sum(fig.data["wrong"])) == loo.errors
+    # plotted values are signed: a leave-one-out error is a point with y·f₋ᵢ(xᵢ) ≤ 0
+    assert np.all(fig.data["y"][fig.data["wrong"]] <= 0)
+    # the object itself works too (scalars from to_dict, per-point columns from to_columns)
+    rc2 = build_report_content([replace(rec, attachments={"leave_one_out": loo})]).runs[0]
+    assert rc2.loo_figure is not None and rc2.loo is not None
+    html = render_html(build_report_content([attached]))
+    assert "leave-one-out decision values" in html
+
+
+def test_stored_trace_is_not_modified(work: dict) -> None:
+    rec = work["pair"][0]
+    before = {k: np.array(v, copy=True) for k, v in rec.result.trace.columns.items()}
+    alpha = rec.result.alpha.copy()
+    build_report_content([rec])
+    for k, v in rec.result.trace.columns.items():
+        assert np.array_equal(v, before[k]), k
+    assert np.array_equal(rec.result.alpha, alpha)
