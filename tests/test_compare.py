@@ -256,6 +256,18 @@ def test_non_unique_alpha_is_waived_not_hidden(rng):
     assert c.measures["alpha_max_diff"].waived and c.measures["alpha_max_diff"].passed
     assert c.verdict == "agree"
     assert any("not unique" in n for n in c.notes)
+    # plus a small real change of the model (between the strict and loose decision
+    # tolerances): α is then waived only at the loose level
+    k = i if a[i] > 0 else j  # the duplicate now holding the multiplier
+    p = int(np.flatnonzero(c0.at_lower & (labels != labels[i]))[0])  # a point off the margin
+    direction = np.eye(prob.n)[p] + np.eye(prob.n)[k]  # keeps yᵀα = 0 (opposite labels)
+    step = 5e-3 / np.max(np.abs(prob.q_times(direction)))
+    a2 = a + step * direction
+    c3 = compare_runs(rec, with_result(rec, alpha=a2))
+    m = c3.measures["alpha_max_diff"]
+    assert m.waived and not m.passed and m.passed_loose
+    assert c3.verdict == "agree_within_tolerances"
+    assert "decision_max_diff" in c3.failed and "alpha_max_diff" in c3.failed
     # the same move beyond the box is infeasible and is not waived away
     b = res.alpha.copy()
     b[i], b[j] = total + 0.5, -0.5
@@ -317,3 +329,11 @@ def test_qp_iteration_limit_run_versus_converged(raw, run):
     c = compare_runs(run, early)
     assert c.verdict == "disagree"
     assert "converged" in c.failed and "objective_rel_diff" in c.failed
+
+
+def test_loosely_solved_run_gets_a_hint(raw):
+    loose = make_run(*raw, kkt_tol=0.05)
+    c = compare_runs(loose, with_result(loose, bias=loose.result.bias + 0.004))
+    assert c.verdict == "agree_within_tolerances"
+    assert any("tighter tol" in n for n in c.notes)
+    assert not any("tighter tol" in n for n in compare_runs(loose, loose).notes)
