@@ -433,3 +433,38 @@ def test_stored_trace_is_not_modified(work: dict) -> None:
     for k, v in rec.result.trace.columns.items():
         assert np.array_equal(v, before[k]), k
     assert np.array_equal(rec.result.alpha, alpha)
+
+
+def _in_memory(problem, **solve_opts: object):
+    from solver.model import Standardiser
+    from solver.run import RunRecord
+    from solver.smo import solve_smo
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        result = solve_smo(problem, **solve_opts)
+    d = problem.X.shape[1]
+    return RunRecord(problem=problem, result=result,
+                     data={"feature_names": [f"f{k}" for k in range(d)], "n_rows": problem.n},
+                     standardiser=Standardiser.identity(d))
+
+
+def test_unusual_problems_render(rng: np.random.Generator) -> None:
+    from solver.kernels import LinearKernel, PrecomputedKernel, RBFKernel
+    from solver.problem import binary_classification, index_features
+
+    X = rng.normal(size=(60, 3))
+    y = np.where(X[:, 0] > 0, 1, -1)
+    gram = RBFKernel(gamma=0.5).gram(X)
+    pre = binary_classification(index_features(60), y, kernel=PrecomputedKernel(gram_matrix=gram))
+    one = binary_classification(X[:, :1] * 1000.0, y, kernel=LinearKernel())
+    for rec, expected in ((_in_memory(pre), "kernel is precomputed"),
+                          (_in_memory(one), "fewer than two features")):
+        content = build_report_content([rec])
+        rc = content.runs[0]
+        assert rc.decision_map is None and expected in rc.decision_note
+        assert rc.run_id is None and "not stored" in dict(rc.identity)["run id"]
+        assert "binary_classification(X, labels" in rc.reproduce_code  # in-memory recipe
+        html = render_html(content)
+        assert expected in html
+        assert jsonschema.Draft202012Validator(load_schema()).is_valid(summary_dict(content))

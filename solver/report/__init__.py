@@ -10,7 +10,7 @@ with the standing caution :data:`CAUTION`.
 from __future__ import annotations
 
 import os
-import tempfile
+import secrets
 from collections.abc import Mapping, Sequence
 from pathlib import Path
 from typing import Any
@@ -54,17 +54,23 @@ def render_report(content: ReportContent, fmt: str) -> bytes:
     raise InvalidInputError(f"unknown report format {fmt!r}; choose from {', '.join(FORMATS)}")
 
 
-def _atomic_write(path: Path, data: bytes) -> None:
-    fd, tmp = tempfile.mkstemp(prefix=f".{path.name}.", dir=path.parent)
+def _write_all(files: Mapping[Path, bytes]) -> None:
+    """Write every file under a fresh temporary name in its folder, then rename them all.
+
+    A failure while writing leaves no report file behind.  ``open(..., "xb")`` honours the
+    umask (unlike ``mkstemp``'s 0600), so reports are ordinary readable files."""
+    temps: dict[Path, Path] = {}
     try:
-        with os.fdopen(fd, "wb") as fh:
-            fh.write(data)
-        umask = os.umask(0)
-        os.umask(umask)
-        os.chmod(tmp, 0o666 & ~umask)  # mkstemp creates 0600; reports are ordinary files
-        os.replace(tmp, path)
+        for path, data in files.items():
+            tmp = path.with_name(f".{path.name}.{os.getpid()}.{secrets.token_hex(6)}.tmp")
+            temps[path] = tmp
+            with open(tmp, "xb") as fh:
+                fh.write(data)
+        for path, tmp in temps.items():
+            os.replace(tmp, path)
     except BaseException:
-        Path(tmp).unlink(missing_ok=True)
+        for tmp in temps.values():
+            tmp.unlink(missing_ok=True)
         raise
 
 
@@ -98,9 +104,6 @@ def write_report(
     content = build_report_content(runs, comparison=comparison, holdout=holdout, notes=notes)
     rendered = {f: render_report(content, f) for f in formats}
     out.mkdir(parents=True, exist_ok=True)
-    paths = {}
-    for f, data in rendered.items():
-        p = out / f"{stem}{FORMATS[f]}"
-        _atomic_write(p, data)
-        paths[f] = p
+    paths = {f: out / f"{stem}{FORMATS[f]}" for f in rendered}
+    _write_all({paths[f]: data for f, data in rendered.items()})
     return paths

@@ -1055,8 +1055,9 @@ def build_report_content(
     flags = [f for rc in contents for f in rc.flags] + comp_flags
     flags.sort(key=lambda f: SEVERITIES.index(f.severity))
     if title is None:
-        ids = ", ".join(str(r.run_id) for r in runs if r.run_id) or "unsaved run"
-        title = f"Convergence and audit record — {ids}"
+        first = runs[0].run_id or "unsaved run"
+        more = f" and {len(runs) - 1} further run(s)" if len(runs) > 1 else ""
+        title = f"Convergence and audit record — {first}{more}"
     return ReportContent(
         title=title,
         generated=generated or datetime.now(timezone.utc).isoformat(timespec="seconds"),
