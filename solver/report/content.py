@@ -534,12 +534,15 @@ def _trace_figures(rec: RunRecord, label: str, categories: np.ndarray | None) ->
     if "support" in sets or "active" in sets or "bounded" in sets:
         src = sets.get("support_source", "not available")
         figs.append(FigureData(
-            key="sets", kind="sets", title=f"{label}: support set and active set",
+            key="sets", kind="sets",
+            title=f"{label}: support set" + (" and active set" if "active" in sets else ""),
             caption=("Number of points with α above its lower bound (support set; "
                      f"{src})"
                      + (", points held at the upper bound" if "bounded" in sets else "")
                      + (" and points still in the active (unshrunk) set" if "active" in sets
-                        else "") + f". Shrinking events: {ev_counts.get('shrink', 0)}."),
+                        else "") + "."
+                     + (f" Shrinking events: {ev_counts.get('shrink', 0)}." if "active" in sets
+                        else "")),
             data=sets,
         ))
     if replay is not None and p.n:
