@@ -65,8 +65,6 @@ STORE_ENV = "KKTRACE_STORE"
 DEFAULT_STORE = "traces"
 SOLVER_CHOICES = ("smo", "qp", "both")
 KERNEL_CHOICES = ("linear", "poly", "rbf", "sigmoid")
-#: Fallback size limit of the QP challenger when :mod:`solver.qp` does not publish one.
-_QP_LIMIT_FALLBACK = 5000
 
 #: ``progress(task, info)``: task is ``"solve"`` (info: solver, iteration, violation, tol,
 #: max_iter) or ``"leave_one_out"`` (info: done, total); ``"done"`` ends a task.
@@ -90,14 +88,6 @@ def open_store(store: Any = None) -> RunStore:
     if root.exists() and not root.is_dir():
         raise InvalidInputError(f"store {str(root)!r} exists but is not a directory")
     return RunStore(root)
-
-
-def _run_dir(store: RunStore, run_id: str) -> Path:
-    for name in ("run_dir", "path_of", "run_path"):
-        fn = getattr(store, name, None)
-        if callable(fn):
-            return Path(fn(run_id))
-    return Path(store.root) / run_id
 
 
 def load_run(run: str | RunRecord, *, store: Any = None) -> RunRecord:
@@ -227,12 +217,10 @@ def _solve(
         options["max_iter"] = max_iter
     if progress is not None:
 
-        def cb(state: Any) -> None:
+        def cb(state: Mapping[str, Any]) -> None:
             info = {"solver": method, "tol": tol, "max_iter": max_iter}
-            for key in ("iteration", "violation", "gap", "relative_gap", "objective"):
-                val = state.get(key) if isinstance(state, Mapping) else getattr(state, key, None)
-                if val is not None:
-                    info[key] = val
+            info.update({k: state[k] for k in ("iteration", "violation", "gap", "objective")
+                         if state.get(k) is not None})
             progress("solve", info)
 
         options["callback"] = cb
@@ -246,13 +234,10 @@ def _solve(
 
 
 def _qp_limit() -> int:
-    from . import qp
+    """Largest problem the QP challenger solves without being forced."""
+    from .qp import DEFAULT_SIZE_LIMIT
 
-    for name in ("DEFAULT_SIZE_LIMIT", "SIZE_LIMIT", "DEFAULT_MAX_N", "MAX_N"):
-        v = getattr(qp, name, None)
-        if isinstance(v, int):
-            return v
-    return _QP_LIMIT_FALLBACK
+    return int(DEFAULT_SIZE_LIMIT)
 
 
 def _command(
@@ -594,7 +579,7 @@ def _train(
         ids.append(rid)
         saved.append(replace(rec, run_id=rid, parent_id=ids[0] if k else None))
     summaries = tuple(
-        _run_summary(rec, rid, _run_dir(store, rid)) for rec, rid in zip(saved, ids, strict=True)
+        _run_summary(rec, rid, store.run_dir(rid)) for rec, rid in zip(saved, ids, strict=True)
     )
     if comparison is not None:
         summaries[1]["verdict"] = str(comparison.verdict)

@@ -275,7 +275,7 @@ def test_iteration_limit_exits_3_and_run_is_stored_marked(trained, tmp_path):
     assert any("did not converge" in w for w in d["warnings"])
     rows = ok_json(kk("runs", "--store", store, "--status", "iteration_limit", "--json"))
     assert [r["run_id"] for r in rows] == [d["run_id"]]
-    assert kk("verify", d["run_id"], "--store", store).returncode == 0
+    assert rows[0]["converged"] in (0, False)
     human = kk("train", trained["train"], "--label", DEMO_LABEL, "--max-iter", 5,
                "--store", store)
     assert human.returncode == 3 and "NOT CONVERGED" in human.stdout
@@ -389,11 +389,11 @@ def _stderr_on_a_terminal(*args: object) -> tuple[int, bytes]:
 
 
 def test_progress_bar_on_a_terminal_and_off_with_quiet(trained, tmp_path):
-    args = ("train", trained["train"], "--label", DEMO_LABEL, "--C", 100, "--tol", "1e-6",
+    args = ("train", trained["train"], "--label", DEMO_LABEL, "--C", 10, "--tol", "1e-5",
             "--store", tmp_path / "s")
     code, shown = _stderr_on_a_terminal(*args)
     assert code == 0
-    assert b"smo iteration" in shown and b"violation" in shown and b"tol 1.0e-06" in shown
+    assert b"smo iteration" in shown and b"violation" in shown and b"tol 1.0e-05" in shown
     assert b"\r" in shown  # redrawn in place
     code, quiet = _stderr_on_a_terminal(*args, "--quiet")
     assert code == 0 and quiet == b""
