@@ -169,6 +169,33 @@ def test_round_trip_precomputed_kernel_and_no_trace(tmp_path, rng) -> None:
     assert not (store.run_dir(back.run_id) / "trace.parquet").exists()
 
 
+def _dot(A, B):
+    return A @ B.T
+
+
+def test_callable_kernel_is_described_but_not_evaluable_after_load(tmp_path, rng) -> None:
+    from dataclasses import replace
+
+    from solver.certificate import certify
+    from solver.kernels import CallableKernel
+
+    X = rng.normal(size=(10, 2))
+    prob = binary_classification(X, np.array([0, 1] * 5), kernel=CallableKernel(func=_dot))
+    rec0 = synthetic_record(2)
+    res = replace(rec0.result, alpha=np.zeros(10), certificate=certify(prob, np.zeros(10)),
+                  trace=None, options={}, extra={})
+    rec = RunRecord(problem=prob, result=res, data={}, standardiser=Standardiser.identity(2))
+    store = RunStore(tmp_path)
+    rid = store.save(rec)
+    back = store.load(rid)
+    assert back.problem.kernel.describe() == prob.kernel.describe()
+    assert same_bits(back.result.alpha, rec.result.alpha)
+    with pytest.raises(InvalidInputError, match="not stored"):
+        back.problem.kernel_block(slice(0, 2), slice(0, 2))
+    with pytest.raises(InvalidInputError, match="not stored"):
+        store.load_model(rid, require_converged=False).values(X)
+
+
 def test_unknown_attachment_plain_data_is_json_and_objects_are_refused(tmp_path) -> None:
     store = RunStore(tmp_path)
     rec = synthetic_record(4, attachments={"leave_one_out": {"changes": [1, 2]},
