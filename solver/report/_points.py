@@ -1,0 +1,200 @@
+"""Report content on the points: categories, most influential points, leave-one-out,
+held-out outcomes and the decision map."""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from typing import Any
+
+import numpy as np
+
+from ..run import RunRecord
+from ._records import FigureData, Table, _as_mapping, _plain
+
+#: Points drawn on the decision map at most (a seeded sample beyond that; seed 0).
+MAP_POINTS = 1500
+#: Rows in the table of the most influential points.
+N_INFLUENTIAL = 15
+
+
+# --------------------------------------------------------------------------- support vectors
+
+
+def _categories(rec: RunRecord) -> tuple[np.ndarray, str]:
+    expl = rec.attachments.get("explanation") if rec.attachments else None
+    if isinstance(expl, Mapping) and "category" in expl:
+        cat = np.asarray(expl["category"]).astype(str)
+        if cat.shape == (rec.problem.n,):
+            return cat, "explanation attachment"
+    c = rec.result.certificate
+    cat = np.where(c.at_lower, "non-support", np.where(c.at_upper, "bounded", "free"))
+    return cat.astype(str), "certificate (α against its bounds)"
+
+
+def _influential(rec: RunRecord, sel: np.ndarray | None) -> tuple[Table | None, str]:
+    expl = rec.attachments.get("explanation") if rec.attachments else None
+    p, res = rec.problem, rec.result
+    if isinstance(expl, Mapping) and "alpha" in expl:
+        alpha = np.asarray(expl["alpha"], dtype=np.float64)
+        tie = (np.asarray(expl["times_selected"], np.float64) if "times_selected" in expl
+               else np.zeros_like(alpha))
+        order = np.lexsort((-tie, -alpha))[:N_INFLUENTIAL]
+        order = order[alpha[order] > 0]
+        wanted = ["row_id", "label", "category", "alpha", "alpha_ratio", "margin", "slack",
+                  "kkt_residual", "times_selected", "first_nonzero_iteration",
+                  "last_change_iteration", "reason"]
+        cols = [c for c in wanted if c in expl]
+        rows = tuple(tuple(_plain(np.asarray(expl[c])[k]) for c in cols) for k in order)
+        return Table(columns=tuple(cols), rows=rows,
+                     note=f"Points with the largest multipliers α (top {len(rows)}), "
+                          "from the explanation attachment."), ""
+    if p.n == 0:
+        return None, "no training points"
+    alpha = res.alpha
+    # largest α first; ties (e.g. all at C) broken by how often the solver selected the point
+    tie = sel if sel is not None else np.zeros(p.n)
+    order = np.lexsort((-tie, -alpha))[:N_INFLUENTIAL]
+    order = order[alpha[order] > p.lower[order]]
+    labels = p.labels
+    cats, _ = _categories(rec)
+    rows = []
+    for k in order:
+        lab = (labels[1] if p.y[k] > 0 else labels[0]) if labels else int(p.y[k])
+        ratio = alpha[k] / p.upper[k] if p.upper[k] > 0 else float("nan")
+        rows.append((int(k), _plain(lab), str(cats[k]), float(alpha[k]), float(ratio),
+                     float(res.certificate.kkt_residual[k]),
+                     int(sel[k]) if sel is not None else None))
+    return (Table(columns=("row", "label", "category", "alpha", "alpha_ratio", "kkt_residual",
+                           "times_selected"), rows=tuple(rows),
+                  note=f"Points with the largest multipliers α (top {len(rows)}), from the "
+                       "solver result."),
+            "Explanation attachment not available: reasons, margins and slacks are not shown.")
+
+
+def _loo(rec: RunRecord, label: str) -> tuple[Table | None, FigureData | None, str]:
+    """Leave-one-out scalars as a table and, with per-point values, a figure."""
+    raw = rec.attachments.get("leave_one_out") if rec.attachments else None
+    if raw is None:
+        return None, None, "Leave-one-out figures not available for this run."
+    loo: dict[str, Any] = dict(_as_mapping(raw) or {})
+    to_columns = getattr(raw, "to_columns", None)
+    if callable(to_columns):
+        loo.update(to_columns())
+    if not loo:
+        return None, None, "Leave-one-out figures not available for this run."
+    arrays = {str(k): np.asarray(v) for k, v in loo.items()
+              if isinstance(v, (np.ndarray, list, tuple)) and np.asarray(v).ndim == 1
+              and np.asarray(v).size > 20}
+    scalars = [(str(k), _plain(v)) for k, v in loo.items()
+               if str(k) not in arrays and not isinstance(v, Mapping)]
+    table = Table(columns=("measure", "value"), rows=tuple(scalars),
+                  note="Leave-one-out figures for this run.") if scalars else None
+    fig = None
+    values = arrays.get("loo_value", arrays.get("loo_values"))
+    if values is not None and values.dtype.kind in "fiu":
+        p = rec.problem
+        rows = arrays.get("row_id", np.arange(values.size)).astype(np.float64)
+        wrong = arrays.get("loo_wrong")
+        wrong = (np.zeros(values.size, bool) if wrong is None else wrong.astype(bool))
+        y = p.y if p.n == values.size else np.ones(values.size)
+        fig = FigureData(
+            key="loo", kind="loo", title=f"{label}: leave-one-out decision values",
+            caption=("Signed decision value y·f₋ᵢ(xᵢ) of each training point under the model "
+                     "trained without it; points below zero (marked) are leave-one-out "
+                     f"errors ({int(wrong.sum())} of {values.size})."),
+            data={"x": rows, "y": y * values.astype(np.float64), "wrong": wrong,
+                  "xlabel": "training row (0-based)"},
+        )
+    return table, fig, ""
+
+
+# --------------------------------------------------------------------------- held-out, map
+
+
+def _confusion(hold: Mapping[str, Any], labels: tuple | None) -> Table | None:
+    cm = None
+    for k in ("confusion_matrix", "confusion", "matrix"):
+        if k in hold:
+            cm = hold[k]
+            break
+    if cm is None:
+        return None
+    lab = None
+    if isinstance(cm, Mapping):
+        lab = cm.get("labels")
+        cm = cm.get("matrix", cm.get("counts"))
+    try:
+        arr = np.asarray(cm, dtype=np.int64)
+    except (TypeError, ValueError):
+        return None
+    if arr.ndim != 2 or arr.shape[0] != arr.shape[1]:
+        return None
+    lab = lab or hold.get("labels") or (list(labels) if labels else list(range(arr.shape[0])))
+    lab = [str(v) for v in lab][: arr.shape[0]]
+    if len(lab) != arr.shape[0]:
+        lab = [str(i) for i in range(arr.shape[0])]
+    rows = tuple((f"actual {lab[r]}", *[int(v) for v in arr[r]]) for r in range(arr.shape[0]))
+    return Table(columns=("", *[f"classified {v}" for v in lab]), rows=rows)
+
+
+def _decision_map(rec: RunRecord, label: str, cats: np.ndarray) -> tuple[FigureData | None, str]:
+    from ..kernels import PrecomputedKernel
+    from ..model import model_from_solution
+
+    p = rec.problem
+    if isinstance(p.kernel, PrecomputedKernel):
+        return None, "Decision map not available: the kernel is precomputed (no feature space)."
+    if p.labels is None:
+        return None, f"Decision map not available for problem kind {p.kind!r}."
+    d = int(p.X.shape[1])
+    if d < 2 or p.n < 3:
+        return None, "Decision map not available: fewer than two features or three points."
+    model = model_from_solution(p, rec.result, None)
+    names = [str(v) for v in (rec.data.get("feature_names") or [])]
+    std = rec.standardiser
+    standardised = not bool(np.all(std.centre == 0) and np.all(std.scale == 1))
+    unit = " (standardised)" if standardised else ""
+    X = p.X
+    if d == 2:
+        Z = X
+        basis = None
+        centre = np.zeros(2)
+        xlabel = (names[0] if len(names) == 2 else "feature 1") + unit
+        ylabel = (names[1] if len(names) == 2 else "feature 2") + unit
+        how = "the two features"
+    else:
+        centre = X.mean(axis=0)
+        _, s, vt = np.linalg.svd(X - centre, full_matrices=False)
+        basis = vt[:2]
+        Z = (X - centre) @ basis.T
+        share = (s[:2] ** 2).sum() / max((s**2).sum(), np.finfo(float).tiny)
+        xlabel, ylabel = "principal component 1", "principal component 2"
+        kind = unit.strip(" ()") or "raw"
+        how = (f"a 2-D projection: the first two principal components of the {kind} "
+               f"training rows ({100 * share:.1f} % of the variance); regions are the "
+               "classifier on the plane through the data mean spanned by these components")
+    lo, hi = Z.min(axis=0), Z.max(axis=0)
+    pad = 0.06 * np.maximum(hi - lo, 1e-9)
+    lo, hi = lo - pad, hi + pad
+    g = 90 if model.support_rows.size <= 4000 else 60
+    gx = np.linspace(lo[0], hi[0], g)
+    gy = np.linspace(lo[1], hi[1], g)
+    GX, GY = np.meshgrid(gx, gy)
+    plane = np.column_stack((GX.ravel(), GY.ravel()))
+    pts = plane if basis is None else centre + plane @ basis
+    vals = model.values(pts, standardised=True).reshape(g, g)
+    idx = np.arange(p.n)
+    sampled = ""
+    if p.n > MAP_POINTS:
+        idx = np.sort(np.random.default_rng(0).choice(p.n, size=MAP_POINTS, replace=False))
+        sampled = f" {MAP_POINTS} of {p.n} points drawn (seeded sample, seed 0)."
+    neg, pos = p.labels
+    return FigureData(
+        key="decision_map", kind="regions", title=f"{label}: decision regions",
+        caption=(f"Classifier regions over {how}. Shaded: classified {pos} (f > 0) or {neg}; "
+                 "solid line f = 0, dotted lines f = ±1. Points are marked by their final "
+                 f"category and coloured by label.{sampled}"),
+        data={"gx": gx, "gy": gy, "values": vals, "z": Z[idx], "y": p.y[idx],
+              "category": cats[idx], "xlabel": xlabel, "ylabel": ylabel,
+              "labels": (str(neg), str(pos))},
+    ), ""

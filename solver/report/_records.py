@@ -1,0 +1,192 @@
+"""Plain-data records of a report (:class:`ReportContent` and its parts) and small helpers.
+
+Shared by the content builders (:mod:`._provenance`, :mod:`._convergence`, :mod:`._points`,
+:mod:`._flags`) and the renderers.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from ..status import Status
+
+__all__ = ["CAUTION", "SEVERITIES", "Flag", "Table", "FigureData", "RunContent", "ReportContent"]
+
+#: The standing caution printed on every report (HTML, PDF and JSON).
+CAUTION = (
+    "kktrace gives evidence about the optimisation, not a validation sign-off; decisions on use "
+    "rest with the accountable model owner and validator under local regulation."
+)
+
+#: Severity order used for sorting flags: "stop" (result not usable as is), "caution", "note".
+SEVERITIES = ("stop", "caution", "note")
+
+
+@dataclass(frozen=True)
+class Flag:
+    """One warning: ``code`` (stable identifier), ``severity`` (stop/caution/note), message."""
+
+    code: str
+    severity: str
+    message: str
+    run: str | None = None
+
+
+@dataclass(frozen=True, eq=False)
+class Table:
+    """A small table of plain values (str, int, float, None)."""
+
+    columns: tuple[str, ...]
+    rows: tuple[tuple[Any, ...], ...]
+    note: str = ""
+
+
+@dataclass(frozen=True, eq=False)
+class FigureData:
+    """Plot-ready data for one figure; ``kind`` selects the drawing routine in :mod:`.figures`."""
+
+    key: str
+    kind: str
+    title: str
+    caption: str
+    data: Mapping[str, Any]
+
+
+@dataclass(frozen=True, eq=False)
+class RunContent:
+    """Everything shown about one run.  ``label`` is the short name used across the report."""
+
+    label: str
+    run_id: str | None
+    solver: str
+    identity: tuple[tuple[str, Any], ...]
+    environment: tuple[tuple[str, Any], ...]
+    reproduce_command: str | None
+    reproduce_python: str | None
+    reproduce_note: str | None
+    reproduce_code: str
+    problem: tuple[tuple[str, Any], ...]
+    options: tuple[tuple[str, Any], ...]
+    audit: tuple[tuple[str, Any], ...] | None
+    audit_verdict: str
+    data_warnings: tuple[str, ...]
+    termination: Mapping[str, Any]
+    figures: tuple[FigureData, ...]
+    figure_notes: tuple[str, ...]
+    categories: Mapping[str, int]
+    categories_source: str
+    influential: Table | None
+    influential_note: str
+    loo: Table | None
+    loo_figure: FigureData | None
+    loo_note: str
+    holdout: Mapping[str, Any] | None
+    confusion: Table | None
+    decision_map: FigureData | None
+    decision_note: str
+    flags: tuple[Flag, ...]
+    series: Mapping[str, Mapping[str, list[float]]] = field(default_factory=dict)
+    data_facts: Mapping[str, Any] = field(default_factory=dict)
+
+
+@dataclass(frozen=True, eq=False)
+class ReportContent:
+    """The whole report as plain data."""
+
+    title: str
+    generated: str
+    kktrace_version: str
+    caution: str
+    notes: str | None
+    runs: tuple[RunContent, ...]
+    comparison: Mapping[str, Any] | None
+    comparison_note: str
+    flags: tuple[Flag, ...]
+
+    @property
+    def converged(self) -> bool:
+        """True when every run met its optimality test."""
+        return all(r.termination.get("converged") for r in self.runs)
+
+
+# --------------------------------------------------------------------------- helpers
+
+
+def _plain(v: Any) -> Any:
+    """Numpy scalars → Python scalars; arrays → short description; mappings recursively."""
+    if isinstance(v, np.generic):
+        return v.item()
+    if isinstance(v, np.ndarray):
+        if v.size <= 8 and v.ndim <= 1:
+            return [_plain(x) for x in v.tolist()]
+        return f"array of shape {tuple(v.shape)}"
+    if isinstance(v, Status):
+        return v.label
+    if isinstance(v, Mapping):
+        return {str(k): _plain(x) for k, x in v.items()}
+    if isinstance(v, (list, tuple)):
+        if len(v) > 20:
+            return f"{len(v)} items"
+        return [_plain(x) for x in v]
+    if isinstance(v, (str, int, float, bool)) or v is None:
+        return v
+    return repr(v)
+
+
+def _scalar_items(
+    d: Mapping[str, Any] | None, skip: Sequence[str] = ()
+) -> tuple[tuple[str, Any], ...]:
+    if not d:
+        return ()
+    out = []
+    for k, v in d.items():
+        if k in skip:
+            continue
+        out.append((str(k), _plain(v)))
+    return tuple(out)
+
+
+def _status_of(result: Any) -> Status | None:
+    s = getattr(result, "status", None)
+    if isinstance(s, Status):
+        return s
+    try:
+        return Status(int(s)) if isinstance(s, (int, np.integer)) else Status.from_label(str(s))
+    except (ValueError, TypeError):
+        return None
+
+
+def _as_mapping(obj: Any) -> Mapping[str, Any] | None:
+    if obj is None:
+        return None
+    if isinstance(obj, Mapping):
+        return obj
+    to_dict = getattr(obj, "to_dict", None)
+    if callable(to_dict):
+        d = to_dict()
+        return d if isinstance(d, Mapping) else None
+    return None
+
+
+def _float(v: Any) -> float | None:
+    try:
+        f = float(v)
+    except (TypeError, ValueError):
+        return None
+    return f
+
+
+def _fmt_num(v: Any) -> str:
+    f = _float(v)
+    if f is None:
+        return str(v)
+    if math.isnan(f):
+        return "n/a"
+    if f != 0 and (abs(f) < 1e-3 or abs(f) >= 1e5):
+        return f"{f:.3e}"
+    return f"{f:.6g}"
