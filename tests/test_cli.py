@@ -397,3 +397,27 @@ def test_progress_bar_on_a_terminal_and_off_with_quiet(trained, tmp_path):
     assert b"\r" in shown  # redrawn in place
     code, quiet = _stderr_on_a_terminal(*args, "--quiet")
     assert code == 0 and quiet == b""
+
+
+def test_parquet_and_npz_inputs_give_the_same_fingerprint(trained, tmp_path):
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    with trained["train"].open(newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    X = np.array([[float(r[c]) for c in DEMO_COLUMNS] for r in rows])
+    y = np.array([r[DEMO_LABEL] for r in rows])
+    table = {c: X[:, k] for k, c in enumerate(DEMO_COLUMNS)}
+    table[DEMO_LABEL] = y
+    pq.write_table(pa.table(table), tmp_path / "batches.parquet")
+    np.savez(tmp_path / "batches.npz", X=X, y=y, feature_names=np.array(DEMO_COLUMNS),
+             label_name=np.array(DEMO_LABEL))
+    store = tmp_path / "s"
+    for name in ("batches.parquet", "batches.npz"):
+        d = ok_json(kk("train", tmp_path / name, "--label", DEMO_LABEL, "--kernel", "linear",
+                       "--store", store, "--json"))
+        assert d["status"] == "converged"
+    rows = ok_json(kk("runs", "--store", store, "--json"))
+    csv_rows = ok_json(kk("runs", "--store", trained["store"], "--json"))
+    prints = {r["data_fingerprint"] for r in rows} | {csv_rows[0]["data_fingerprint"]}
+    assert len(rows) == 2 and len(prints) == 1
