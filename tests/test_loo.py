@@ -28,6 +28,7 @@ from solver.certificate import certify
 from solver.errors import ConvergenceWarning, InvalidInputError
 from solver.explain import _refit as refit_mod
 from solver.explain import leave_one_out, sensitivity
+from solver.explain._decrement import decremental_path
 from solver.explain._refit import Refitter, drop_row, removal_start
 from solver.kernels import RBFKernel
 from solver.model import Standardiser
@@ -206,19 +207,47 @@ def test_removal_start_falls_back_to_other_class():
     np.testing.assert_allclose(a0, [1.0, 1.0, 0.0, 1.0, 1.0])  # nearest other-class: x = 1.0
 
 
+def test_decremental_path_matches_reference_refits():
+    # the path alone (no solver call) must give the solution of the problem without the
+    # row: checked with kktrace's certificate and against scikit-learn's SVC refitted
+    # without that row (external reference)
+    prob = _problem(load_wine, 0, 1, gamma=0.1, C=1.0)
+    res = _solve(prob)
+    ref = Refitter(prob, solve_smo, {"tol": TOL, "trace": "off"}, alpha=res.alpha,
+                   bias=res.bias, shared_gram=True)
+    used = 0
+    for i in np.flatnonzero(~res.certificate.at_lower):
+        path = decremental_path(prob, res.alpha, res.bias, ref.s, int(i), ref.rows)
+        if path is None:
+            continue
+        a, b, events = path
+        sub, keep = drop_row(prob, int(i))
+        assert sub.feasibility(a[keep])[0] == 0.0 and sub.feasibility(a[keep])[1] < 1e-10
+        cert = certify(sub, a[keep], tol=TOL)
+        assert cert.max_violation <= 10 * TOL
+        svc = SVC(kernel="rbf", gamma=0.1, C=1.0, tol=1e-10).fit(sub.X, sub.y)
+        f = prob.kernel.block(prob.X, sub.X) @ (a[keep] * sub.y) + cert.bias
+        np.testing.assert_allclose(f, svc.decision_function(prob.X), atol=1e-5)
+        used += events > 0
+    assert used >= 3  # paths with set changes were exercised
+
+
 def test_working_set_growth_and_fallback_stay_exact(monkeypatch):
-    # shrink the working set to the support vectors only, so refits must add points that
-    # become support vectors; then forbid growth so the whole-problem fallback runs
+    # without the decremental path, shrink the working set to the support vectors only,
+    # so refits must add points that become support vectors; then forbid growth so the
+    # whole-problem fallback runs
     prob = _problem(load_breast_cancer, 0, 1, gamma=0.05, C=10.0, rows=slice(0, 120))
     res = _solve(prob)
     f = _decisions(prob, res)
     sv = np.flatnonzero(~res.certificate.at_lower)
-    ref = Refitter(prob, solve_smo, {"tol": TOL, "trace": "off"}, shared_gram=True)
+    ref = Refitter(prob, solve_smo, {"tol": TOL, "trace": "off"}, alpha=res.alpha,
+                   bias=res.bias, shared_gram=True)
+    monkeypatch.setattr(refit_mod, "decremental_path", lambda *args, **kw: None)
     monkeypatch.setattr(refit_mod, "WORKING_MARGIN", -1.0)
-    grown = [ref.warm(int(i), res.alpha, prob.y * f) for i in sv[:12]]
+    grown = [ref.warm(int(i), prob.y * f) for i in sv[:12]]
     assert any(g.rounds > 1 for g in grown)
     monkeypatch.setattr(refit_mod, "MAX_ROUNDS", 1)
-    fell_back = [ref.warm(int(i), res.alpha, prob.y * f) for i in sv[:12]]
+    fell_back = [ref.warm(int(i), prob.y * f) for i in sv[:12]]
     for g, h, i in zip(grown, fell_back, sv[:12], strict=True):
         cold = ref.cold(int(i))
         assert g.status == h.status == cold.status == "converged"

@@ -14,11 +14,12 @@
   support vector the bias can jump when a point is removed and the estimate may fall
   below the exact value (seen on iris versicolor/virginica, RBF gamma = 3, C = 0.1).
 * Exact: only support vectors are refitted (see :mod:`solver.explain._refit`): each refit
-  drops the row, starts from the full solution with that multiplier removed — the free
-  support vectors adjusted to stay on the margin (decremental step, Cauwenberghs & Poggio
-  2001) and yᵀα = Δ restored within the bounds — runs on a working set and is certified
-  on the whole dropped problem.  ``brute_force`` refits every row from the solver's
-  default start on the whole dropped problem, for comparison.
+  drops the row and starts from the full solution with that multiplier lowered to 0 along
+  the decremental path (Cauwenberghs & Poggio 2001: the free support vectors stay on the
+  margin, sets updated at each event).  If that start meets the solver's stopping test on
+  the whole dropped problem it is the refit; otherwise SMO continues from it on a working
+  set and the answer is certified on the whole dropped problem.  ``brute_force`` refits
+  every row with SMO from its default start on the whole dropped problem, for comparison.
 """
 
 from __future__ import annotations
@@ -249,7 +250,8 @@ def leave_one_out(
     n, y = problem.n, problem.y
     alpha = np.asarray(result.alpha, dtype=np.float64)
     b = float(result.bias)
-    ref = Refitter(problem, _solver(), opts, shared_gram=n * n * 8 / 2**20 <= shared_gram_mb)
+    ref = Refitter(problem, _solver(), opts, alpha=alpha, bias=b,
+                   shared_gram=n * n * 8 / 2**20 <= shared_gram_mb)
     f_full = decision_on_training(problem, alpha, b)
     wrong_full = misclassified(f_full, y)
     margin = y * f_full
@@ -264,7 +266,7 @@ def leave_one_out(
         t0 = time.perf_counter()
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", ConvergenceWarning)
-            out = ref.cold(i) if cold else ref.warm(i, alpha, margin)
+            out = ref.cold(i) if cold else ref.warm(i, margin)
         return out, time.perf_counter() - t0
 
     reference = float("nan")
@@ -292,7 +294,7 @@ def leave_one_out(
         status.append(out.status)
         iters[r] = out.iterations
         rounds[r], wsize[r] = out.rounds, out.working_set
-        f_new = f_full + _decision_change(ref, alpha, b, int(i), out)
+        f_new = f_full + out.change + (out.bias - b)
         loo_values[i] = f_new[i]
         keep = out.keep
         diff = np.abs(f_new[keep] - f_full[keep])
@@ -328,21 +330,6 @@ def leave_one_out(
         reference_seconds=reference, estimated_brute_force_seconds=brute,
         tol=float(opts["tol"]), solver_options=dict(opts),
     )
-
-
-def _decision_change(ref: Refitter, alpha: np.ndarray, b: float, i: int, out: Refit) -> np.ndarray:
-    """f₋ᵢ(xⱼ) − f(xⱼ) for every training row j (n,), from the changed coefficients only."""
-    y, keep = ref.problem.y, out.keep
-    d = (out.alpha - alpha[keep]) * y[keep]
-    moved = np.flatnonzero(d != 0.0)
-    cols = np.concatenate([keep[moved], [i]])
-    coef = np.concatenate([d[moved], [-alpha[i] * y[i]]])
-    n = ref.problem.n
-    change = np.full(n, out.bias - b)
-    for s in range(0, n, _BLOCK):
-        e = min(n, s + _BLOCK)
-        change[s:e] += ref.kernel_block(slice(s, e), cols) @ coef
-    return change
 
 
 def sensitivity(

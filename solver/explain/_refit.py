@@ -6,15 +6,20 @@ count as movable).  Two refits are offered:
 
 * :meth:`Refitter.cold` — the whole dropped problem from the solver's default start
   (brute force).
-* :meth:`Refitter.warm` — warm start from the full solution (see :func:`removal_start`:
-  a decremental step that keeps the free support vectors on the margin, then yᵀα = Δ
-  restored within the bounds) on a working set: the remaining support vectors, every point
-  whose training margin is below 1 + :data:`WORKING_MARGIN`, and every point the warm start
-  made non-zero.  Points outside it keep α = 0.  The answer is certified on the *whole*
-  dropped problem with :func:`solver.certificate.certify` (maximal violation ≤ tol, the
-  solver's own stopping test); points outside the working set that violate their KKT
-  condition are added and the refit continues from where it stopped — the same idea as
-  shrinking in decomposition methods (common practice), so the result is a converged
+* :meth:`Refitter.warm` — warm start from the full solution: the decremental path of
+  :mod:`solver.explain._decrement` (the multiplier lowered to 0 while the free support
+  vectors stay on the margin, sets updated at each event), or, if that path gives up, the
+  single step of :func:`removal_start` with yᵀα = Δ restored within the bounds.  When
+  that start already meets the solver's stopping test
+  on the whole dropped problem (no point changed status) it is the answer, with no solver
+  call.  Otherwise the solver runs from it on a working set: the remaining support
+  vectors, every point whose training margin is below 1 + :data:`WORKING_MARGIN`, every
+  point the warm start made non-zero and every point whose KKT condition it violates.
+  Points outside it keep α = 0.  The answer is certified on the *whole* dropped problem
+  with :func:`solver.certificate.certify` (maximal violation ≤ tol, the solver's own
+  stopping test); points outside the working set that violate their KKT condition are
+  added and the refit continues from where it stopped — the same idea as shrinking in
+  decomposition methods (common practice), so the result is a converged
   solution of the dropped problem.
 """
 
@@ -31,6 +36,7 @@ from ..errors import InvalidInputError
 from ..kernels import PrecomputedKernel
 from ..problem import DualProblem
 from ..status import Status
+from ._decrement import decremental_path
 
 __all__ = ["WORKING_MARGIN", "Refit", "Refitter", "drop_row", "removal_start"]
 
@@ -44,17 +50,22 @@ _BLOCK = 2048
 @dataclass(frozen=True, eq=False)
 class Refit:
     """Outcome of one refit: ``alpha`` (n − 1,) over ``keep`` (the kept row numbers),
-    ``bias``, ``status`` label, ``iterations`` summed over rounds, ``rounds`` solver calls,
-    ``working_set`` size of the last working set, ``max_violation`` on the dropped problem."""
+    ``bias``, ``change`` (n,) Σⱼ(α'ⱼ − αⱼ)yⱼK(xⱼ, ·) on every training row (so the refit's
+    f = full f + change + bias' − bias), ``status`` label, ``iterations`` summed over rounds,
+    ``rounds`` solver calls (0: the decremental start was already converged), ``working_set``
+    size of the last working set, ``max_violation`` on the dropped problem, ``path_events``
+    set changes along the decremental path (−1: not used or gave up)."""
 
     keep: np.ndarray
     alpha: np.ndarray
     bias: float
+    change: np.ndarray
     status: str
     iterations: int
     rounds: int
     working_set: int
     max_violation: float
+    path_events: int = -1
 
 
 def _rebalance(a: np.ndarray, y: np.ndarray, lo: np.ndarray, up: np.ndarray, need: float,
@@ -132,31 +143,56 @@ def removal_start(
 
 
 class Refitter:
-    """Refits of ``problem`` without one row.  With ``shared_gram`` the n × n Gram matrix is
-    computed once and every refit problem uses it as a precomputed kernel over row numbers
-    (the same kernel values, not recomputed per refit)."""
+    """Refits of ``problem`` without one row, around the full solution ``alpha``, ``bias``.
+
+    With ``shared_gram`` the n × n Gram matrix is computed once; the changes of f and the
+    gradients are then read from it, and warm refits give the solver a precomputed kernel
+    over row numbers (the same kernel values).  Cold refits always hand the solver the
+    problem without the row and its own kernel, as a user would.
+    """
 
     def __init__(self, problem: DualProblem, solve: Callable[..., Any],
-                 options: Mapping[str, Any], *, shared_gram: bool) -> None:
+                 options: Mapping[str, Any], *, alpha: np.ndarray, bias: float,
+                 shared_gram: bool) -> None:
         self.problem = problem
         self.solve = solve
         self.options = dict(options)
+        self.tol = float(self.options["tol"])
         self.gram: np.ndarray | None = None
         self.shared: PrecomputedKernel | None = None
+        n = problem.n
         if shared_gram:
-            n = problem.n
             G = np.empty((n, n))
             for s in range(0, n, _BLOCK):
                 e = min(n, s + _BLOCK)
                 G[s:e] = problem.kernel_block(slice(s, e), slice(None))
             self.shared = PrecomputedKernel(gram_matrix=G)  # one object for every refit
             self.gram = self.shared.gram_matrix
+        self.alpha = np.asarray(alpha, dtype=np.float64)
+        self.bias = float(bias)
+        #: Σⱼ αⱼyⱼK(xⱼ, xᵢ) for every training row (f without the bias), (n,)
+        self.base = problem.q_times(self.alpha) * problem.y
+        #: sᵢ = Gᵢ + b yᵢ, the KKT quantity of the full solution, (n,)
+        self.s = problem.y * self.base + problem.p + self.bias * problem.y
 
-    def kernel_block(self, rows: np.ndarray | slice, cols: np.ndarray | slice) -> np.ndarray:
-        """K(x_rows, x_cols) of the original problem."""
+    def rows(self, rows: np.ndarray) -> np.ndarray:
+        """Kernel rows K(x_rows, ·) of the original problem, shape ``(len(rows), n)``."""
         if self.gram is None:
-            return self.problem.kernel_block(rows, cols)
-        return self.gram[rows][:, cols]
+            return self.problem.kernel_block(rows, slice(None))
+        return self.gram[rows]
+
+    def _change(self, keep: np.ndarray, a_keep: np.ndarray, i: int) -> np.ndarray:
+        """Σⱼ (α'ⱼ − αⱼ)yⱼK(xⱼ, ·) over all training rows (n,), for α' over ``keep`` and αᵢ' = 0."""
+        y = self.problem.y
+        d = (a_keep - self.alpha[keep]) * y[keep]
+        moved = np.flatnonzero(d != 0.0)
+        src = np.concatenate([keep[moved], [i]])
+        coef = np.concatenate([d[moved], [-self.alpha[i] * y[i]]])
+        out = np.zeros(self.problem.n)
+        for s in range(0, src.size, _BLOCK):
+            e = min(src.size, s + _BLOCK)
+            out += coef[s:e] @ self.rows(src[s:e])  # K symmetric: rows serve as columns
+        return out
 
     def _subproblem(self, rows: np.ndarray) -> DualProblem:
         """The problem restricted to original rows ``rows`` (sorted)."""
@@ -170,27 +206,46 @@ class Refitter:
                            info=P.info)
 
     def cold(self, i: int) -> Refit:
-        """Whole problem without row ``i`` from the solver's default start."""
-        keep = np.delete(np.arange(self.problem.n), i)
-        res = self.solve(self._subproblem(keep), **self.options)
-        return Refit(keep=keep, alpha=np.asarray(res.alpha, np.float64), bias=float(res.bias),
+        """Whole problem without row ``i`` (own kernel) from the solver's default start."""
+        sub, keep = drop_row(self.problem, i)
+        res = self.solve(sub, **self.options)
+        a = np.asarray(res.alpha, np.float64)
+        return Refit(keep=keep, alpha=a, bias=float(res.bias), change=self._change(keep, a, i),
                      status=res.status.label, iterations=int(res.iterations), rounds=1,
                      working_set=keep.size, max_violation=float(res.certificate.max_violation))
 
-    def warm(self, i: int, alpha: np.ndarray, margin: np.ndarray) -> Refit:
-        """Problem without row ``i``, warm-started from ``alpha`` (n,) on a working set and
-        certified on the whole dropped problem (module docstring)."""
-        P = self.problem
-        n = P.n
-        keep = np.delete(np.arange(n), i)
-        a = np.zeros(n)
-        a[keep] = removal_start(P, alpha, i, gram=self.gram)
-        inside = (alpha > P.lower) | (a > P.lower) | (margin < 1.0 + WORKING_MARGIN)
-        inside[i] = False
+    def warm(self, i: int, margin: np.ndarray) -> Refit:
+        """Problem without row ``i``, from the decremental warm start: returned at once when
+        that start already meets the stopping test on the whole dropped problem, else
+        refitted on a working set and certified on the whole dropped problem (module
+        docstring).  ``margin`` (n,) are the full solution's yᵢf(xᵢ)."""
+        P, alpha = self.problem, self.alpha
+        keep = np.delete(np.arange(P.n), i)
+        a = np.zeros(P.n)
+        path = decremental_path(P, alpha, self.bias, self.s, i, self.rows)
+        events = -1
+        if path is not None:
+            a[keep], events = path[0][keep], path[2]
+            need = P.delta - float(P.y[keep] @ a[keep])
+            if abs(need) > 1e-13 * max(1.0, float(np.abs(a).sum())):  # rounding only
+                a[keep] = _rebalance(a[keep], P.y[keep], P.lower[keep], P.upper[keep], need,
+                                     np.arange(keep.size))
+        else:  # single decremental step, then feasibility restored
+            a[keep] = removal_start(P, alpha, i, gram=self.gram)
         # the dropped problem, for the certificate only (its kernel is never evaluated)
         whole = DualProblem(X=P.X[keep], y=P.y[keep], p=P.p[keep], lower=P.lower[keep],
                             upper=P.upper[keep], delta=P.delta, kernel=P.kernel, kind=P.kind,
                             info=P.info)
+        change = self._change(keep, a[keep], i)
+        cert = certify(whole, a[keep], tol=self.tol,
+                       gradient=(P.y * (self.base + change) + P.p)[keep])
+        if cert.meets_tol:  # the decremental start alone is a converged solution
+            return Refit(keep=keep, alpha=a[keep], bias=float(cert.bias), change=change,
+                         status=Status.CONVERGED.label, iterations=0, rounds=0, working_set=0,
+                         max_violation=float(cert.max_violation), path_events=events)
+        inside = (alpha > P.lower) | (a > P.lower) | (margin < 1.0 + WORKING_MARGIN)
+        inside[i] = False
+        inside[keep[(cert.kkt_residual > 0.5 * cert.tol)]] = True
         iterations, rounds, fallback = 0, 0, False
         while True:
             rounds += 1
@@ -200,14 +255,15 @@ class Refitter:
             res = self.solve(self._subproblem(rows), alpha0=a[rows], **self.options)
             iterations += int(res.iterations)
             a[rows] = res.alpha
+            change = self._change(keep, a[keep], i)
             if res.status != Status.CONVERGED or rows.size == keep.size:
                 # not converged, or solved on the whole dropped problem: the solver's own
                 # certificate is the certificate of the dropped problem
                 status, bias = res.status.label, float(res.bias)
                 viol = float(res.certificate.max_violation)
                 break
-            cert = certify(whole, a[keep], tol=float(self.options["tol"]),
-                           gradient=self._gradient(a, keep))
+            cert = certify(whole, a[keep], tol=self.tol,
+                           gradient=(P.y * (self.base + change) + P.p)[keep])
             viol, bias = float(cert.max_violation), float(cert.bias)
             if cert.meets_tol:
                 status = Status.CONVERGED.label
@@ -216,19 +272,9 @@ class Refitter:
             bad = keep[(cert.kkt_residual > 0.5 * cert.tol) & ~inside[keep]]
             inside[bad] = True
             fallback = bad.size == 0
-        return Refit(keep=keep, alpha=a[keep], bias=bias, status=status, iterations=iterations,
-                     rounds=rounds, working_set=int(inside.sum()), max_violation=viol)
-
-    def _gradient(self, a: np.ndarray, keep: np.ndarray) -> np.ndarray:
-        """G = Qα + p of the dropped problem (n − 1,), from the non-zero multipliers only."""
-        P = self.problem
-        nz = np.flatnonzero(a != 0.0)
-        g = np.zeros(P.n)
-        ay = a[nz] * P.y[nz]
-        for s in range(0, P.n, _BLOCK):
-            e = min(P.n, s + _BLOCK)
-            g[s:e] = self.kernel_block(slice(s, e), nz) @ ay
-        return (P.y * g + P.p)[keep]
+        return Refit(keep=keep, alpha=a[keep], bias=bias, change=change, status=status,
+                     iterations=iterations, rounds=rounds, working_set=int(inside.sum()),
+                     max_violation=viol, path_events=events)
 
 
 def drop_row(problem: DualProblem, i: int) -> tuple[DualProblem, np.ndarray]:
