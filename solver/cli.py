@@ -635,7 +635,8 @@ def build_parser() -> argparse.ArgumentParser:
         "run 'kktrace COMMAND --help' for a command's options.\n\n" + _EXIT_TEXT,
     )
     top.add_argument("--help", action="help", help="show this help and exit")
-    top.add_argument("--version", action="version", version=_version())
+    top.add_argument("--version", action="version", version=_version(),
+                     help="show the kktrace version and exit")
     sub = top.add_subparsers(dest="command", metavar="COMMAND", required=True)
 
     def add(name: str, helptext: str, parents: list[argparse.ArgumentParser]) -> Any:
@@ -660,7 +661,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--tol", type=_float, default=1e-3,
                    help="tolerance on the maximal KKT violation (default 1e-3)")
     p.add_argument("--max-iter", type=_positive_int, default=None,
-                   help="iteration limit (default: the solver's own)")
+                   help="iteration limit (default: the solver's own; with --solver both it "
+                   "limits SMO only)")
     p.add_argument("--solver", choices=("smo", "qp", "both"), default="smo",
                    help="smo, qp, or both: SMO plus the QP challenger and their comparison")
     p.add_argument("--holdout", metavar="FILE", default=None,
