@@ -63,6 +63,7 @@ IS_STRIDE = 25  # cache slot stride (elements)
 IS_HITS = 26
 IS_MISSES = 27
 IS_ROW_EVALS = 28  # kernel rows computed from data
+IS_POOL_USED = 29  # Gram rows stored so far (mode 0)
 IS_SIZE = 32
 
 # fstate slots (float64)
@@ -196,16 +197,15 @@ def self_dots(XK, out):
 
 
 @_jit
-def kernel_row(XK, sq, src, count, out, code, gamma, offset, degree, acc, ibuf):
-    """out[t] = K(x_src, x_t) for t < count, x_t = XK[:, t]  (XK (d, n) float64).
+def kernel_row(XS, src, sqi, XK, sq, count, out, code, gamma, offset, degree, acc, ibuf):
+    """out[t] = K(x, x_t) for t < count with x = XS[:, src], x_t = XK[:, t] ((d, ·) float64).
 
-    sq (n,) squared norms from :func:`self_dots`; acc (CHUNK,) float64 and ibuf (CHUNK,)
-    int64 work buffers; out may be float32 (values are rounded on store).  Every entry is
-    computed by the same arithmetic wherever column t sits, so rows over permuted
-    columns are bitwise equal to the matching entries of unpermuted rows.
+    sqi = ‖x‖², sq squared norms of the XK columns (from :func:`self_dots`); acc (CHUNK,)
+    float64 and ibuf (CHUNK,) int64 work buffers; out may be float32 (values are rounded
+    on store).  Every entry is computed by the same arithmetic wherever column t sits, so
+    rows over permuted columns are bitwise equal to the matching entries of other rows.
     """
     d = XK.shape[0]
-    sqi = sq[src]
     for s in range(0, count, CHUNK):
         e = min(count, s + CHUNK)
         L = e - s
@@ -214,10 +214,10 @@ def kernel_row(XK, sq, src, count, out, code, gamma, offset, degree, acc, ibuf):
             a[t] = 0.0
         k = 0
         while k + 4 <= d:
-            x0 = XK[k, src]
-            x1 = XK[k + 1, src]
-            x2 = XK[k + 2, src]
-            x3 = XK[k + 3, src]
+            x0 = XS[k, src]
+            x1 = XS[k + 1, src]
+            x2 = XS[k + 2, src]
+            x3 = XS[k + 3, src]
             r0 = XK[k, s:e]
             r1 = XK[k + 1, s:e]
             r2 = XK[k + 2, s:e]
@@ -226,7 +226,7 @@ def kernel_row(XK, sq, src, count, out, code, gamma, offset, degree, acc, ibuf):
                 a[t] += (x0 * r0[t] + x1 * r1[t]) + (x2 * r2[t] + x3 * r3[t])
             k += 4
         while k < d:
-            xk = XK[k, src]
+            xk = XS[k, src]
             rk = XK[k, s:e]
             for t in range(L):
                 a[t] += xk * rk[t]
@@ -279,47 +279,74 @@ def kernel_diag(XK, sq, out, code, gamma, offset, degree, acc, ibuf):
 
 
 @_jit
-def fill_rows(XK, sq, rows, gram, ready, code, gamma, offset, degree, acc, ibuf):
-    """Compute Gram rows ``rows`` (original indices) that are not ready yet."""
+def fill_rows(XK, sq, rows, gram, rowslot, istate, code, gamma, offset, degree, acc, ibuf):
+    """Compute the Gram rows ``rows`` (original indices) not stored yet.
+
+    Rows are packed into ``gram`` (n, n) in the order they are first needed
+    (``rowslot[o]`` is the storage row of index o, −1 if not computed), so that only
+    the memory of computed rows is ever touched.
+    """
     n = gram.shape[1]
     done = 0
     for r in range(rows.shape[0]):
         o = rows[r]
-        if ready[o] == 0:
-            kernel_row(XK, sq, o, n, gram[o], code, gamma, offset, degree, acc, ibuf)
-            ready[o] = 1
+        if rowslot[o] < 0:
+            k = istate[IS_POOL_USED]
+            kernel_row(XK, o, sq[o], XK, sq, n, gram[k], code, gamma, offset, degree, acc,
+                       ibuf)
+            rowslot[o] = k
+            istate[IS_POOL_USED] = k + 1
             done += 1
     return done
 
 
 @_jit
-def gram_times(gram, src, coef, targets, out):
-    """out[k] = Σ_s coef[s] · gram[src[s], targets[k]] (symmetric Gram, rows src ready)."""
+def reconstruct(XK, sq, targets, XV, sqv, coef, q, F, code, gamma, offset, degree, row, acc,
+                ibuf):
+    """F[t] = −q[t] − Σ_s coef[s] K(x_t, v_s) for t in ``targets`` (columns of XK), with the
+    support points v_s the columns of XV (d, m); ``row`` (m,) work buffer.  Used to
+    rebuild the gradient of shrunk variables without a stored Gram."""
+    m = XV.shape[1]
+    for r in range(targets.shape[0]):
+        t = targets[r]
+        kernel_row(XK, t, sq[t], XV, sqv, m, row, code, gamma, offset, degree, acc, ibuf)
+        s = 0.0
+        for k in range(m):
+            s += coef[k] * row[k]
+        F[t] = -q[t] - s
+
+
+@_jit
+def gram_times(gram, rowslot, src, coef, targets, out):
+    """out[k] = Σ_s coef[s] · K[src[s], targets[k]] from stored rows of the symmetric Gram."""
     for k in range(targets.shape[0]):
         out[k] = 0.0
     for s in range(src.shape[0]):
-        row = gram[src[s]]
+        row = gram[rowslot[src[s]]]
         c = coef[s]
         for k in range(targets.shape[0]):
             out[k] += c * row[targets[k]]
 
 
 @_jit
-def compact_cache(cache, stride, slot_owner, keep, new_a):
-    """Rows held in cache slots keep only the positions ``keep`` (increasing), in place."""
-    for s in range(slot_owner.shape[0]):
-        if slot_owner[s] >= 0:
-            base = s * stride
-            for k in range(new_a):
-                cache[base + k] = cache[base + keep[k]]
+def compact_cache(cache, old_stride, new_stride, survivors, keep, new_a):
+    """Move the cached rows of slots ``survivors`` (increasing) to slots 0, 1, … of length
+    ``new_stride`` ≤ old_stride, keeping only the positions ``keep`` (increasing, new_a of
+    them).  In place: every copy goes forward, so nothing is overwritten before it is read."""
+    for r in range(survivors.shape[0]):
+        src = survivors[r] * old_stride
+        dst = r * new_stride
+        for k in range(new_a):
+            cache[dst + k] = cache[src + keep[k]]
 
 
 # ---------------------------------------------------------------- row cache ----------
 
 
 @_jit
-def _lru_touch(s, lru_prev, lru_next, istate):
-    """Move slot s to the head (most recently used) of the LRU list."""
+def _lru_touch(s, lru_prev, lru_next, slot_stamp, istate, it):
+    """Move slot s to the head (most recently used) of the LRU list; stamp it with ``it``."""
+    slot_stamp[s] = it
     head = istate[IS_HEAD]
     if head == s:
         return
@@ -341,7 +368,7 @@ def _lru_touch(s, lru_prev, lru_next, istate):
 
 
 @_jit
-def _lru_take(slot_of, slot_owner, lru_prev, lru_next, istate):
+def _lru_take(slot_of, slot_owner, lru_prev, lru_next, slot_stamp, istate, it):
     """A slot for a new row: a free one, else the least recently used (evicted)."""
     used = istate[IS_USED]
     if used < istate[IS_SLOTS]:
@@ -352,13 +379,13 @@ def _lru_take(slot_of, slot_owner, lru_prev, lru_next, istate):
     else:
         s = istate[IS_TAIL]
         slot_of[slot_owner[s]] = -1
-    _lru_touch(s, lru_prev, lru_next, istate)
+    _lru_touch(s, lru_prev, lru_next, slot_stamp, istate, it)
     return s
 
 
 @_jit
-def _fetch(p, a, perm, gram, ready, cache, slot_of, slot_owner, lru_prev, lru_next, ext_row,
-           XK, sq, acc, ibuf, istate, fstate):
+def _fetch(p, a, perm, gram, rowslot, cache, slot_of, slot_owner, lru_prev, lru_next,
+           slot_stamp, ext_row, XK, sq, acc, ibuf, istate, fstate, it):
     """Kernel row of position p over positions 0..a−1 (a view); ok=False if an external
     kernel must supply it first (istate[IS_NEED_ORIG] says which)."""
     o = perm[p]
@@ -366,32 +393,35 @@ def _fetch(p, a, perm, gram, ready, cache, slot_of, slot_owner, lru_prev, lru_ne
     mode = istate[IS_MODE]
     code = istate[IS_KERNEL]
     if mode == 0:
-        if ready[o] == 0:
+        k = rowslot[o]
+        if k < 0:
             if code == KERNEL_EXTERNAL:
                 istate[IS_NEED_ORIG] = o
                 return False, cache[0:0]
-            kernel_row(XK, sq, o, n, gram[o], code, fstate[FS_GAMMA], fstate[FS_OFFSET],
-                       istate[IS_DEGREE], acc, ibuf)
-            ready[o] = 1
+            k = istate[IS_POOL_USED]
+            kernel_row(XK, o, sq[o], XK, sq, n, gram[k], code, fstate[FS_GAMMA],
+                       fstate[FS_OFFSET], istate[IS_DEGREE], acc, ibuf)
+            rowslot[o] = k
+            istate[IS_POOL_USED] = k + 1
             istate[IS_ROW_EVALS] += 1
         if a == n:
-            return True, gram[o]
+            return True, gram[k]
     stride = istate[IS_STRIDE]
     s = slot_of[o]
     if s >= 0:
         istate[IS_HITS] += 1
-        _lru_touch(s, lru_prev, lru_next, istate)
+        _lru_touch(s, lru_prev, lru_next, slot_stamp, istate, it)
         return True, cache[s * stride:s * stride + a]
     if mode == 1 and code == KERNEL_EXTERNAL and istate[IS_EXT_ORIG] != o:
         istate[IS_NEED_ORIG] = o
         return False, cache[0:0]
     istate[IS_MISSES] += 1
-    s = _lru_take(slot_of, slot_owner, lru_prev, lru_next, istate)
+    s = _lru_take(slot_of, slot_owner, lru_prev, lru_next, slot_stamp, istate, it)
     slot_of[o] = s
     slot_owner[s] = o
     row = cache[s * stride:s * stride + a]
     if mode == 0:
-        g = gram[o]
+        g = gram[rowslot[o]]
         for t in range(a):
             row[t] = g[perm[t]]
     elif code == KERNEL_EXTERNAL:
@@ -399,7 +429,7 @@ def _fetch(p, a, perm, gram, ready, cache, slot_of, slot_owner, lru_prev, lru_ne
             row[t] = ext_row[t]
         istate[IS_EXT_ORIG] = -1
     else:
-        kernel_row(XK, sq, p, a, row, code, fstate[FS_GAMMA], fstate[FS_OFFSET],
+        kernel_row(XK, p, sq[p], XK, sq, a, row, code, fstate[FS_GAMMA], fstate[FS_OFFSET],
                    istate[IS_DEGREE], acc, ibuf)
         istate[IS_ROW_EVALS] += 1
     return True, row
@@ -505,7 +535,7 @@ def pass_low(F, Ki, diag, off, a, m, kii, tau, second, bm):
 
 @_jit
 def smo_run(F, beta, lo, hi, diag, ysign, offup, offlow, perm,
-            gram, ready, cache, slot_of, slot_owner, lru_prev, lru_next, ext_row,
+            gram, rowslot, cache, slot_of, slot_owner, lru_prev, lru_next, slot_stamp, ext_row,
             XK, sq, acc, ibuf, bm, istate, fstate,
             tr_it, tr_i, tr_j, tr_ai, tr_aj, tr_step, tr_obj, tr_viol, tr_act,
             ev_it, ev_kind, ev_val):
@@ -513,9 +543,11 @@ def smo_run(F, beta, lo, hi, diag, ysign, offup, offlow, perm,
 
     Position arrays (n,): F, beta (updated in place), lo, hi, diag, ysign, offup, offlow
     (0 / −inf and 0 / +inf membership offsets, kept in step with beta), perm (int64).
-    Kernel access: gram (n, n) with ready (n,) uint8 (mode 0) or the slot cache (mode 1);
-    cache, slot_of, slot_owner, lru_prev, lru_next: LRU cache of rows over the active
-    positions; ext_row: a row supplied by the driver for an external kernel.  XK (d, n),
+    Kernel access: Gram rows packed in gram (n, n) with rowslot (n,) (mode 0; see
+    :func:`fill_rows`), and, when a < n or in mode 1, the slot cache;
+    cache, slot_of, slot_owner, lru_prev, lru_next, slot_stamp: LRU cache of rows over
+    the active positions (slot_stamp: iteration of last use); ext_row: a row supplied by
+    the driver for an external kernel.  XK (d, n),
     sq (n,): data for kernel rows.  acc, ibuf, bm: work buffers.  istate / fstate: counters
     and scalars (IS_* / FS_* slots).  tr_*: trace columns, ev_*: event columns.
     Returns a RUN_* code; on every return F is up to date with beta.
@@ -563,8 +595,8 @@ def smo_run(F, beta, lo, hi, diag, ysign, offup, offlow, perm,
                 break
             phase = 1
         if phase == 1:
-            ok, Ki = _fetch(i, a, perm, gram, ready, cache, slot_of, slot_owner, lru_prev,
-                            lru_next, ext_row, XK, sq, acc, ibuf, istate, fstate)
+            ok, Ki = _fetch(i, a, perm, gram, rowslot, cache, slot_of, slot_owner, lru_prev,
+                            lru_next, slot_stamp, ext_row, XK, sq, acc, ibuf, istate, fstate, it)
             if not ok:
                 ret = RUN_NEED_ROW
                 break
@@ -578,14 +610,14 @@ def smo_run(F, beta, lo, hi, diag, ysign, offup, offlow, perm,
                 break
             phase = 2
         # phase 2: the step
-        ok, Kj = _fetch(j, a, perm, gram, ready, cache, slot_of, slot_owner, lru_prev,
-                        lru_next, ext_row, XK, sq, acc, ibuf, istate, fstate)
+        ok, Kj = _fetch(j, a, perm, gram, rowslot, cache, slot_of, slot_owner, lru_prev,
+                        lru_next, slot_stamp, ext_row, XK, sq, acc, ibuf, istate, fstate, it)
         if not ok:
             ret = RUN_NEED_ROW
             break
         if Ki.shape[0] == 0:  # resumed after an external row: fetch row i again (a hit)
-            ok, Ki = _fetch(i, a, perm, gram, ready, cache, slot_of, slot_owner, lru_prev,
-                            lru_next, ext_row, XK, sq, acc, ibuf, istate, fstate)
+            ok, Ki = _fetch(i, a, perm, gram, rowslot, cache, slot_of, slot_owner, lru_prev,
+                            lru_next, slot_stamp, ext_row, XK, sq, acc, ibuf, istate, fstate, it)
         # two-variable subproblem along βᵢ += s, βⱼ −= s (Platt 1998; Fan, Chen & Lin
         # 2005, eq. 15): unconstrained minimiser s = bᵢⱼ/aᵢⱼ, clipped to the box
         kij = Ki[j]

@@ -41,6 +41,8 @@ EVENT_KINDS: dict[int, str] = {
     _k.EV_CURVATURE: "curvature_fix",
 }
 SELECTIONS = ("second_order", "first_order")
+#: a shrink is carried out only when it removes at least this fraction of the active set
+SHRINK_MIN_FRACTION = 0.05
 #: τ substituted for non-positive curvature (Fan, Chen & Lin 2005, section 4).
 TAU = 1e-12
 
@@ -235,24 +237,29 @@ class _Engine:
             idx = problem.X[:, 0].astype(np.int64)
             self.mode = 0
             self.gram = np.array(kern.gram_matrix[np.ix_(idx, idx)], dtype=dtype, order="C")
-            self.ready = np.ones(n, dtype=np.uint8)
+            self.rowslot = np.arange(n, dtype=np.int64)
             cache_bytes = min(cache_mb * 2**20, 0.1 * n * n * itemsize + 64 * 2**20)
         elif gram_mb <= budget_mb:
             self.mode = 0
-            self.gram = np.empty((n, n), dtype=dtype)  # rows filled when first needed
-            self.ready = np.zeros(n, dtype=np.uint8)
+            # rows are computed when first needed and packed in that order, so that only
+            # the memory of rows actually used is touched (fresh pages are costly)
+            self.gram = np.empty((n, n), dtype=dtype)
+            self.rowslot = np.full(n, -1, dtype=np.int64)
             cache_bytes = min(cache_mb * 2**20, 0.1 * n * n * itemsize + 64 * 2**20)
         else:
             self.mode = 1
             self.gram = np.empty((1, 1), dtype=dtype)
-            self.ready = np.zeros(1, dtype=np.uint8)
+            self.rowslot = np.full(1, -1, dtype=np.int64)
             cache_bytes = cache_mb * 2**20
-        slots = int(max(2, min(n, cache_bytes // (n * itemsize))))
-        self.cache = np.empty(slots * n, dtype=dtype)
+        # row cache over the active positions; slots are re-laid out at each shrink so
+        # that shorter rows give more slots
+        self.cache_elems = int(max(2 * n, cache_bytes // itemsize))
+        self.cache = np.empty(self.cache_elems, dtype=dtype)
         self.slot_of = np.full(n, -1, dtype=np.int64)
-        self.slot_owner = np.full(slots, -1, dtype=np.int64)
-        self.lru_prev = np.full(slots, -1, dtype=np.int64)
-        self.lru_next = np.full(slots, -1, dtype=np.int64)
+        self.slot_owner = np.full(n, -1, dtype=np.int64)
+        self.lru_prev = np.full(n, -1, dtype=np.int64)
+        self.lru_next = np.full(n, -1, dtype=np.int64)
+        self.slot_stamp = np.zeros(n, dtype=np.int64)
         self.ext_row = np.zeros(n if code == _k.KERNEL_EXTERNAL else 1)
         self.bm = np.zeros(n // _k.BLK + 2)
         self.istate = np.zeros(_k.IS_SIZE, dtype=np.int64)
@@ -261,8 +268,6 @@ class _Engine:
         ist[_k.IS_MODE] = self.mode
         ist[_k.IS_KERNEL] = code
         ist[_k.IS_DEGREE] = degree
-        ist[_k.IS_SLOTS] = slots
-        ist[_k.IS_STRIDE] = n
         ist[_k.IS_LEVEL] = level
         ist[_k.IS_ACTIVE] = n
         ist[_k.IS_EXT_ORIG] = -1
@@ -292,30 +297,69 @@ class _Engine:
         self.ev = {"iteration": np.zeros(256, dtype=np.int64), "kind": np.zeros(256, dtype=np.int8),
                    "value": np.zeros(256)}
         self.unshrunk = False
+        self.last_shrink = 0
         self.shrinks = 0
         self.reconstructions = 0
         self.external_rows = 0
 
     # -- kernel access -------------------------------------------------------------
     def _flush_cache(self) -> None:
+        """Empty the row cache and lay it out for rows of the current active length."""
         self.slot_of.fill(-1)
         self.slot_owner.fill(-1)
         ist = self.istate
+        stride = max(1, self.active)
+        ist[_k.IS_STRIDE] = stride
+        ist[_k.IS_SLOTS] = min(self.n, self.cache_elems // stride)
         ist[_k.IS_USED] = 0
         ist[_k.IS_HEAD] = -1
         ist[_k.IS_TAIL] = -1
 
+    def _compact_cache(self, keep: np.ndarray, since: int) -> None:
+        """After a shrink to positions ``keep``: rows used since iteration ``since`` move to
+        the front slots with only the kept entries; older rows are dropped (LRU order
+        kept).  Cost O(rows kept × active)."""
+        ist = self.istate
+        used = int(ist[_k.IS_USED])
+        new_a = int(keep.size)
+        stamps = self.slot_stamp[:used]
+        survivors = np.flatnonzero((self.slot_owner[:used] >= 0) & (stamps >= since))
+        _k.compact_cache(self.cache, int(ist[_k.IS_STRIDE]), new_a, survivors, keep, new_a)
+        owners = self.slot_owner[survivors].copy()
+        st = stamps[survivors].copy()
+        self.slot_of[self.slot_owner[:used][self.slot_owner[:used] >= 0]] = -1
+        self.slot_owner[:used] = -1
+        k = survivors.size
+        self.slot_owner[:k] = owners
+        self.slot_of[owners] = np.arange(k)
+        self.slot_stamp[:k] = st
+        # LRU list: most recent first, ties by slot
+        order = np.lexsort((np.arange(k), -st))
+        self.lru_prev[:k] = -1
+        self.lru_next[:k] = -1
+        if k:
+            self.lru_next[order[:-1]] = order[1:]
+            self.lru_prev[order[1:]] = order[:-1]
+        ist[_k.IS_HEAD] = order[0] if k else -1
+        ist[_k.IS_TAIL] = order[-1] if k else -1
+        ist[_k.IS_USED] = k
+        ist[_k.IS_STRIDE] = new_a
+        ist[_k.IS_SLOTS] = min(self.n, self.cache_elems // new_a)
+
     def _ensure_rows(self, rows: np.ndarray) -> None:
         """Gram rows ``rows`` (original indices) computed (full-Gram mode)."""
         if self.code != _k.KERNEL_EXTERNAL:
-            _k.fill_rows(self.XK, self.sq, rows, self.gram, self.ready, self.code,
-                         self.fstate[_k.FS_GAMMA], self.fstate[_k.FS_OFFSET],
-                         int(self.istate[_k.IS_DEGREE]), self.acc, self.ibuf)
+            self.istate[_k.IS_ROW_EVALS] += _k.fill_rows(
+                self.XK, self.sq, rows, self.gram, self.rowslot, self.istate, self.code,
+                self.fstate[_k.FS_GAMMA], self.fstate[_k.FS_OFFSET],
+                int(self.istate[_k.IS_DEGREE]), self.acc, self.ibuf)
             return
         X = self.problem.X
-        for o in rows[self.ready[rows] == 0]:
-            self.gram[o] = self.problem.kernel.block(X[o:o + 1], X)[0]
-            self.ready[o] = 1
+        for o in rows[self.rowslot[rows] < 0]:
+            k = int(self.istate[_k.IS_POOL_USED])
+            self.gram[k] = self.problem.kernel.block(X[o:o + 1], X)[0]
+            self.rowslot[o] = k
+            self.istate[_k.IS_POOL_USED] = k + 1
             self.external_rows += 1
 
     def k_times(self, src: np.ndarray, coef: np.ndarray, targets: np.ndarray) -> np.ndarray:
@@ -327,13 +371,13 @@ class _Engine:
         targets = np.ascontiguousarray(targets, dtype=np.int64)
         if self.mode == 0:
             self._ensure_rows(src)
-            _k.gram_times(self.gram, src, np.ascontiguousarray(coef, dtype=np.float64),
-                          targets, out)
+            _k.gram_times(self.gram, self.rowslot, src,
+                          np.ascontiguousarray(coef, dtype=np.float64), targets, out)
             return out
         X = self.problem.X
-        for s in range(0, targets.size, 2048):
-            t = targets[s:s + 2048]
-            out[s:s + 2048] = self.problem.kernel.block(X[t], X[src]) @ coef
+        for s in range(0, targets.size, 1024):
+            t = targets[s:s + 1024]
+            out[s:s + 1024] = self.problem.kernel.block(X[t], X[src]) @ coef
         return out
 
     def supply_row(self) -> None:
@@ -381,7 +425,18 @@ class _Engine:
         a, n = self.active, self.n
         if a < n:
             sv = np.flatnonzero(self.beta)
-            self.F[a:] = -self.q[a:] - self.k_times(self.perm[sv], self.beta[sv], self.perm[a:])
+            if self.mode == 1 and self.code != _k.KERNEL_EXTERNAL:
+                # kernel rows over the support vectors only; XK is in position order
+                XV = np.ascontiguousarray(self.XK[:, sv])
+                _k.reconstruct(self.XK, self.sq, np.arange(a, n, dtype=np.int64), XV,
+                               np.ascontiguousarray(self.sq[sv]),
+                               np.ascontiguousarray(self.beta[sv]), self.q, self.F, self.code,
+                               self.fstate[_k.FS_GAMMA], self.fstate[_k.FS_OFFSET],
+                               int(self.istate[_k.IS_DEGREE]), np.zeros(sv.size), self.acc,
+                               self.ibuf)
+            else:
+                self.F[a:] = -self.q[a:] - self.k_times(self.perm[sv], self.beta[sv],
+                                                        self.perm[a:])
             self._reorder(np.argsort(self.perm, kind="stable"))
             self.active = n
             self.istate[_k.IS_ACTIVE] = n
@@ -406,20 +461,19 @@ class _Engine:
         in_low = self.offlow[:a] == 0.0
         remove = (~in_up & (~in_low | (Fa > m))) | (~in_low & (Fa < big_m))
         k = int(np.count_nonzero(remove))
-        if k == 0 or k == a:
+        # compaction costs about (cached rows) × a copies, so small removals wait
+        if k == a or k < max(1, int(SHRINK_MIN_FRACTION * a)):
             return
         keep = np.flatnonzero(~remove)
         order = np.concatenate([keep, np.flatnonzero(remove), np.arange(a, self.n)])
         self._reorder(order)
-        if self.mode == 0:
-            self._flush_cache()
-        else:
-            used = int(self.istate[_k.IS_USED])
-            _k.compact_cache(self.cache, self.n, self.slot_owner[:used], keep, keep.size)
-            # position-ordered cached rows now match the new order; slot_of is by index
-        self.active = int(keep.size)
-        self.istate[_k.IS_ACTIVE] = self.active
+        ist = self.istate
+        new_a = int(keep.size)
+        self._compact_cache(keep, self.last_shrink)
+        self.active = new_a
+        ist[_k.IS_ACTIVE] = self.active
         self.shrinks += 1
+        self.last_shrink = it
         self.add_event(it, _k.EV_SHRINK, float(self.active))
 
     # -- trace ----------------------------------------------------------------------
@@ -447,8 +501,9 @@ class _Engine:
         tr, ev = self.tr, self.ev
         return int(_k.smo_run(
             self.F, self.beta, self.lo, self.hi, self.diag, self.ysign, self.offup,
-            self.offlow, self.perm, self.gram, self.ready, self.cache, self.slot_of,
-            self.slot_owner, self.lru_prev, self.lru_next, self.ext_row, self.XK, self.sq,
+            self.offlow, self.perm, self.gram, self.rowslot, self.cache, self.slot_of,
+            self.slot_owner, self.lru_prev, self.lru_next, self.slot_stamp, self.ext_row,
+            self.XK, self.sq,
             self.acc, self.ibuf, self.bm, self.istate, self.fstate,
             tr["iteration"], tr["i"], tr["j"], tr["alpha_i"], tr["alpha_j"], tr["step"],
             tr["objective"], tr["violation"], tr["active"],
@@ -480,7 +535,9 @@ def _warm_up(dtype: np.dtype) -> float:
     eng.run()
     eng.shrink(1, 1e-3)
     eng.unshrink(1)
-    _k.compact_cache(eng.cache, 3, eng.slot_owner[:0], np.zeros(0, dtype=np.int64), 0)
+    _k.compact_cache(eng.cache, 3, 3, np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.int64), 0)
+    _k.reconstruct(eng.XK, eng.sq, np.zeros(0, dtype=np.int64), eng.XK, eng.sq, eng.beta, eng.q,
+                   eng.F.copy(), _k.KERNEL_RBF, 1.0, 0.0, 1, np.zeros(3), eng.acc, eng.ibuf)
     _compiled.add(key)
     return time.perf_counter() - t0
 

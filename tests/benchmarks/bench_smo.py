@@ -1,0 +1,250 @@
+"""Benchmark of the SMO solver against scikit-learn's SVC measured in the same run.
+
+Not a unit test: it prints figures.  Problem (issue 3): scikit-learn's
+``make_classification(n_samples=n, n_features=20, n_informative=10, flip_y=0.05,
+random_state=0)``, standardised, RBF kernel with gamma = 0.05, tol = 1e-3, C ∈ {1, 100},
+n ∈ {2000, 5000, 10000, 20000}.  SVC is given ``cache_size=2000`` (MB) so that its kernel
+cache can hold most of the columns it needs; both solvers use shrinking.
+
+Every measured fit runs in its own fresh process (so peak memory is per fit and page
+faults are paid by each), one after the other, never in parallel.  Times are wall-clock
+seconds and CPU seconds (user + system of that process); on a shared machine the CPU
+ratio is the steadier figure.  "end to end" for kktrace is everything ``solve_smo`` does
+(kernel rows + solve + trace + certificate) with the compiled code already on disk.
+
+Usage::
+
+    python tests/benchmarks/bench_smo.py                 # all sizes
+    python tests/benchmarks/bench_smo.py --sizes 2000 5000 --repeat 2
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+import warnings
+
+import numpy as np
+
+HERE = os.path.dirname(os.path.abspath(__file__))
+ROOT = os.path.dirname(os.path.dirname(HERE))
+GAMMA = 0.05
+TOL = 1e-3
+SIZES = (2000, 5000, 10000, 20000)
+CS = (1.0, 100.0)
+SVC_CACHE_MB = 2000
+LEGEND = """\
+columns: svc s / smo s = wall seconds end to end; cpu = CPU seconds (user + system) of the
+  fitting process; ratio = kktrace / SVC (<= 1 means kktrace is faster); it = iterations
+  (1st-ord: kktrace with first-order selection, '+' = stopped at its time limit);
+  rel dobj = |D_kktrace - D_svc| / |D_svc|, both objectives recomputed from alpha in float64;
+  max |df| = largest decision-value difference on the training points; pred diff = points
+  whose predicted label differs (all / those with |f| >= 1e-3 for both); trace ovh = solve
+  time with full trace vs trace off, minus 1; peak MB = peak resident memory of the kktrace
+  process (Python, numpy, scikit-learn, data included); limit = 1.25*8n^2 bytes + 400 MB."""
+
+
+def _data(n: int) -> tuple[np.ndarray, np.ndarray]:
+    from sklearn.datasets import make_classification
+
+    X, lab = make_classification(n_samples=n, n_features=20, n_informative=10, flip_y=0.05,
+                                 random_state=0)
+    X = (X - X.mean(axis=0)) / X.std(axis=0)
+    return X, lab
+
+
+def _cpu() -> float:
+    r = resource.getrusage(resource.RUSAGE_SELF)
+    return r.ru_utime + r.ru_stime
+
+
+def _peak_mb() -> float:
+    return resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024.0
+
+
+def child(args: argparse.Namespace) -> None:
+    """One fit in this process; prints one JSON line."""
+    sys.path.insert(0, ROOT)
+    X, lab = _data(args.n)
+    out: dict = {"n": args.n, "C": args.C, "who": args.child}
+    if args.child == "svc":
+        from sklearn.svm import SVC
+
+        base_mb = _peak_mb()
+        t0, c0 = time.perf_counter(), _cpu()
+        model = SVC(C=args.C, kernel="rbf", gamma=GAMMA, tol=TOL, cache_size=SVC_CACHE_MB,
+                    shrinking=True).fit(X, lab)
+        out.update(wall=time.perf_counter() - t0, cpu=_cpu() - c0,
+                   iterations=int(np.sum(model.n_iter_)))
+        alpha = np.zeros(args.n)
+        alpha[model.support_] = np.abs(model.dual_coef_[0])  # dual coefficients are α·y
+        out["alpha"] = alpha.tolist()
+        out["values"] = model.decision_function(X).tolist()
+        out["peak_mb"] = _peak_mb()
+        out["base_mb"] = base_mb
+    else:
+        from solver.kernels import RBFKernel
+        from solver.model import model_from_solution
+        from solver.problem import binary_classification
+        from solver.smo import _warm_up, solve_smo
+
+        t0 = time.perf_counter()
+        _warm_up(np.dtype(np.float64))  # loads the compiled code from the disk cache
+        out["load_seconds"] = time.perf_counter() - t0
+        prob = binary_classification(X, lab, kernel=RBFKernel(gamma=GAMMA), C=args.C)
+        base_mb = _peak_mb()
+        options = dict(tol=TOL, trace=args.trace, selection=args.selection)
+        if args.time_limit:
+            options["time_limit"] = args.time_limit
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            t0, c0 = time.perf_counter(), _cpu()
+            res = solve_smo(prob, **options)
+            out.update(wall=time.perf_counter() - t0, cpu=_cpu() - c0)
+        out["peak_mb"] = _peak_mb()
+        out["base_mb"] = base_mb
+        out.update(iterations=res.iterations, status=res.status.label,
+                   violation=res.certificate.max_violation,
+                   extra={k: v for k, v in res.extra.items() if not isinstance(v, np.ndarray)})
+        if args.values:
+            model = model_from_solution(prob, res)
+            out["alpha"] = res.alpha.tolist()
+            out["values"] = model.values(X, standardised=True).tolist()
+    print("RESULT " + json.dumps(out))
+
+
+def _run_child(n: int, C: float, who: str, *, trace: str = "full", selection: str = "second_order",
+               values: bool = False, time_limit: float | None = None,
+               env: dict | None = None) -> dict:
+    cmd = [sys.executable, os.path.abspath(__file__), "--child", who, "--n", str(n), "--C", str(C),
+           "--trace", trace, "--selection", selection]
+    if values:
+        cmd.append("--values")
+    if time_limit:
+        cmd += ["--time-limit", str(time_limit)]
+    proc = subprocess.run(cmd, capture_output=True, text=True, env=env or os.environ.copy(),
+                          check=False)
+    for line in proc.stdout.splitlines():
+        if line.startswith("RESULT "):
+            return json.loads(line[7:])
+    raise RuntimeError(f"child {who} n={n} C={C} failed:\n{proc.stdout}\n{proc.stderr}")
+
+
+def compile_times() -> tuple[float, float, float]:
+    """(cold compile s, warm load s, import s) measured in fresh processes."""
+    code = ("import time; t0 = time.perf_counter(); import numpy as np; import solver.smo as s; "
+            "t1 = time.perf_counter(); s._warm_up(np.dtype(np.float64)); "
+            "print('T', t1 - t0, time.perf_counter() - t1)")
+    with tempfile.TemporaryDirectory() as cache_dir:
+        env = os.environ.copy()
+        env["NUMBA_CACHE_DIR"] = cache_dir
+        env["PYTHONPATH"] = ROOT + os.pathsep + env.get("PYTHONPATH", "")
+        outs = []
+        for _ in range(2):
+            p = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                               env=env, check=True)
+            line = [ln for ln in p.stdout.splitlines() if ln.startswith("T ")][0]
+            outs.append(tuple(float(v) for v in line.split()[1:]))
+    return outs[0][1], outs[1][1], outs[1][0]
+
+
+def main(argv: list[str] | None = None) -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--sizes", type=int, nargs="+", default=list(SIZES))
+    ap.add_argument("--Cs", type=float, nargs="+", default=list(CS))
+    ap.add_argument("--repeat", type=int, default=1, help="fits per solver; the fastest is kept")
+    ap.add_argument("--first-order-limit", type=float, default=120.0,
+                    help="time limit (s) of the first-order comparison fit; 0 skips it")
+    ap.add_argument("--child", choices=("svc", "smo"))
+    ap.add_argument("--n", type=int)
+    ap.add_argument("--C", type=float)
+    ap.add_argument("--trace", default="full")
+    ap.add_argument("--selection", default="second_order")
+    ap.add_argument("--values", action="store_true")
+    ap.add_argument("--time-limit", type=float, default=None)
+    args = ap.parse_args(argv)
+    if args.child:
+        child(args)
+        return
+
+    sys.path.insert(0, ROOT)
+    import numba
+    import sklearn
+
+    print(f"kktrace SMO benchmark: RBF gamma={GAMMA}, tol={TOL}; "
+          f"scikit-learn {sklearn.__version__} "
+          f"SVC with cache_size={SVC_CACHE_MB} MB; numba {numba.__version__}; "
+          f"{os.cpu_count()} CPUs; load average {os.getloadavg()[0]:.1f} at start")
+    cold, warm, imp = compile_times()
+    print(f"compile: cold (empty NUMBA_CACHE_DIR) {cold:.2f} s [target <= 20 s]; "
+          f"warm load {warm:.2f} s [target <= 3 s]; import solver.smo {imp:.2f} s")
+    print()
+    hdr = (f"{'n':>6} {'C':>5} | {'svc s':>7} {'smo s':>7} {'ratio':>6} | {'svc cpu':>7} "
+           f"{'smo cpu':>7} {'ratio':>6} | {'svc it':>7} {'smo it':>7} {'1st-ord it':>10} | "
+           f"{'rel dobj':>8} {'max |df|':>8} {'pred diff':>9} | {'trace ovh':>9} | "
+           f"{'peak MB':>7} {'limit':>6} | mode")
+    print(hdr)
+    print("-" * len(hdr))
+    summary = []
+    for n in args.sizes:
+        for C in args.Cs:
+            svc = min((_run_child(n, C, "svc") for _ in range(args.repeat)),
+                      key=lambda r: r["wall"])
+            fulls = [_run_child(n, C, "smo", values=True) for _ in range(args.repeat)]
+            full = min(fulls, key=lambda r: r["wall"])
+            off = min((_run_child(n, C, "smo", trace="off") for _ in range(args.repeat)),
+                      key=lambda r: r["wall"])
+            first = None
+            if args.first_order_limit > 0:
+                first = _run_child(n, C, "smo", trace="off", selection="first_order",
+                                   time_limit=args.first_order_limit)
+            a_s, a_k = np.asarray(svc["alpha"]), np.asarray(full["alpha"])
+            from solver.kernels import RBFKernel
+            from solver.problem import binary_classification
+
+            X, lab = _data(n)
+            prob = binary_classification(X, lab, kernel=RBFKernel(gamma=GAMMA), C=C)
+            d_s, d_k = prob.objective(a_s), prob.objective(a_k)
+            rel = abs(d_k - d_s) / abs(d_s)
+            f_s, f_k = np.asarray(svc["values"]), np.asarray(full["values"])
+            dmax = float(np.max(np.abs(f_s - f_k)))
+            differ = np.sign(f_s) != np.sign(f_k)
+            pred_diff = int(np.sum(differ))
+            pred_diff_big = int(np.sum(differ & (np.minimum(np.abs(f_s), np.abs(f_k)) >= 1e-3)))
+            ratio = full["wall"] / svc["wall"]
+            cratio = full["cpu"] / svc["cpu"]
+            ovh = full["extra"]["solve_seconds"] / off["extra"]["solve_seconds"] - 1.0
+            limit = (1.25 * 8 * n * n) / 2**20 + 400
+            peak = full["peak_mb"]
+            fo = "-" if first is None else (
+                f"{first['iterations']}" + ("" if first["status"] == "converged" else "+"))
+            print(f"{n:>6} {C:>5g} | {svc['wall']:>7.2f} {full['wall']:>7.2f} {ratio:>6.2f} | "
+                  f"{svc['cpu']:>7.2f} {full['cpu']:>7.2f} {cratio:>6.2f} | "
+                  f"{svc['iterations']:>7} {full['iterations']:>7} {fo:>10} | "
+                  f"{rel:>8.1e} {dmax:>8.1e} {pred_diff:>4}/{pred_diff_big:<4} | {ovh:>+8.1%} | "
+                  f"{peak:>7.0f} {limit:>6.0f} | {full['extra']['kernel_mode']}", flush=True)
+            summary.append((n, C, ratio, cratio, rel, pred_diff_big, peak, limit, full, svc))
+    print()
+    print(LEGEND)
+    print()
+    worst = max(s[2] for s in summary)
+    print(f"worst wall ratio {worst:.2f} [target <= 1.0]; worst CPU ratio "
+          f"{max(s[3] for s in summary):.2f}")
+    for n, C, ratio, cratio, *_ in summary:
+        if n == 20000 and C == 100.0:
+            print(f"n=20000, C=100: SVC / kktrace = {1 / ratio:.2f}x wall, {1 / cratio:.2f}x CPU "
+                  "[target >= 3x]")
+    print(f"max rel dual-objective difference {max(s[4] for s in summary):.1e} [target <= 1e-6]; "
+          f"predictions differing with |f| >= 1e-3: {sum(s[5] for s in summary)}")
+    print(f"peak memory within limit in every case: {all(s[6] <= s[7] for s in summary)}")
+    print(f"load average at end {os.getloadavg()[0]:.1f}")
+
+
+if __name__ == "__main__":
+    main()
