@@ -133,6 +133,21 @@ def test_exact_loo_equals_brute_force_and_bounds_hold(solved):
     np.testing.assert_allclose(s_fast.max_abs_change, s_brute.max_abs_change, atol=1e-4)
 
 
+@pytest.mark.parametrize("name", ["wine_1_2", "breast_cancer_subset"])
+def test_loose_tolerance_disagreements_are_flagged(name):
+    # at tol = 1e-3 two valid solutions may differ by about tol in f: any row on which the
+    # two methods disagree must be flagged as near the boundary by one of them
+    loader, a, b, gamma, C, rows = DATASETS[name]
+    prob = _problem(loader, a, b, gamma=gamma, C=C, rows=rows)
+    res = _solve(prob, tol=1e-3)
+    fast = leave_one_out(prob, res)
+    brute = leave_one_out(prob, res, method="brute_force")
+    differ = set(np.flatnonzero(fast.loo_wrong != brute.loo_wrong).tolist())
+    assert differ <= set(fast.near_boundary_rows.tolist()) | set(brute.near_boundary_rows)
+    np.testing.assert_array_equal(fast.near_boundary_rows,
+                                  np.flatnonzero(np.abs(fast.loo_values) <= 1e-3))
+
+
 def test_exact_loo_matches_reference_library():
     # external check: scikit-learn's leave-one-out predictions with SVC on the same problem
     prob = _problem(load_iris, 1, 2, gamma=0.5, C=1.0)
@@ -217,10 +232,12 @@ def test_decremental_path_matches_reference_refits():
                    bias=res.bias, shared_gram=True)
     used = 0
     for i in np.flatnonzero(~res.certificate.at_lower):
-        path = decremental_path(prob, res.alpha, res.bias, ref.s, int(i), ref.rows)
+        path = decremental_path(prob, res.alpha, res.bias, ref.s, int(i), ref.rows,
+                                work_factor=1e9)
         if path is None:
             continue
-        a, b, events = path
+        a, b, events, complete = path
+        assert complete
         sub, keep = drop_row(prob, int(i))
         assert sub.feasibility(a[keep])[0] == 0.0 and sub.feasibility(a[keep])[1] < 1e-10
         cert = certify(sub, a[keep], tol=TOL)

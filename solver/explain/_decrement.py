@@ -26,9 +26,14 @@ import numpy as np
 from ..certificate import DEFAULT_BOUND_TOL
 from ..problem import DualProblem
 
-__all__ = ["decremental_path"]
+__all__ = ["WORK_FACTOR", "decremental_path"]
 
 _EPS = 1e-12
+#: Path work budget in units of n² operations (see :func:`decremental_path`).
+WORK_FACTOR = 4.0
+#: Smallest path work budget (operations): on small problems the fixed cost of a solver
+#: call, not the linear algebra, dominates.
+MIN_WORK = 5e6
 
 
 def decremental_path(
@@ -40,7 +45,8 @@ def decremental_path(
     rows: Callable[[np.ndarray], np.ndarray],
     *,
     max_events: int | None = None,
-) -> tuple[np.ndarray, float, int] | None:
+    work_factor: float = WORK_FACTOR,
+) -> tuple[np.ndarray, float, int, bool] | None:
     """Lower α_c to its lower bound along the solution path.
 
     Parameters
@@ -48,12 +54,17 @@ def decremental_path(
     problem : the problem with row ``c`` still in it (n rows).
     alpha : (n,) optimal multipliers; bias : b; s : (n,) Gᵢ + b yᵢ at ``alpha``.
     rows : kernel rows K(x_rows, ·), shape ``(len(rows), n)``.
-    max_events : give up after this many set changes (default 50 + n / 10).
+    max_events : stop after this many set changes (default 50 + n / 10).
+    work_factor : stop once the linear algebra (≈ |S|³/3 + 2n|S| per segment) exceeds
+        max(``work_factor`` · n², :data:`MIN_WORK`) operations, about the work of one
+        cold solve.
 
     Returns
     -------
-    (alpha (n,) with α_c at its lower bound, bias, number of events), or None when the
-    path gave up.
+    (alpha (n,), bias, number of events, complete): when ``complete`` α_c is at its lower
+    bound; otherwise the path stopped early (budget) at a feasible point with α_c still
+    above it.  None when the path cannot start or continue (no free support vector,
+    singular system).
     """
     y, lo, up = problem.y, problem.lower, problem.upper
     n = problem.n
@@ -68,11 +79,15 @@ def decremental_path(
     remaining = float(a[c] - lo[c])
     k_c = np.asarray(rows(np.array([c])), dtype=np.float64)[0]
     limit = max_events if max_events is not None else 50 + n // 10
+    budget, work = max(work_factor * float(n) ** 2, MIN_WORK), 0.0
     events = 0
     while remaining > 0.0:
         S = np.flatnonzero(free)
-        if S.size == 0 or events > limit:
+        if S.size == 0:
             return None
+        work += S.size**3 / 3.0 + 2.0 * n * S.size
+        if events > limit or (events > 0 and work > budget):
+            return a, b, events, False
         K_S = np.asarray(rows(S), dtype=np.float64)  # (|S|, n)
         yS = y[S]
         A = np.empty((S.size + 1, S.size + 1))
@@ -120,4 +135,4 @@ def decremental_path(
             free[who], at_lo[who], at_up[who] = True, False, False
     a[c] = lo[c]
     np.clip(a, lo, up, out=a)
-    return a, b, events
+    return a, b, events, True

@@ -65,6 +65,9 @@ class LeaveOneOut:
     ``refit_max_change`` / ``refit_mean_change`` max / mean |f₋ᵢ(xⱼ) − f(xⱼ)| over training
     rows j ≠ i, ``refit_flips`` how many of those predictions change sign, ``refit_rounds``
     solver calls and ``refit_working_set`` final working-set size of each refit.
+    ``near_boundary_rows`` rows with |f₋ᵢ(xᵢ)| ≤ tol: their leave-one-out sign is within
+    the solver tolerance, so another solution meeting the same tolerance may classify
+    them the other way (tighten ``tol`` to settle them).
     ``non_converged_rows`` refits that did not meet the tolerance
     (their values are used but flagged).  ``reference_seconds`` is the time of one cold
     refit (fastest of three probes for ``support_refits``, median for ``brute_force``);
@@ -94,6 +97,7 @@ class LeaveOneOut:
     refit_rounds: np.ndarray
     refit_working_set: np.ndarray
     non_converged_rows: np.ndarray
+    near_boundary_rows: np.ndarray
     seconds: float
     reference_seconds: float
     estimated_brute_force_seconds: float
@@ -130,6 +134,7 @@ class LeaveOneOut:
             "xi_alpha_stable": self.xi_alpha_stable,
             "refits": self.refits, "non_converged": int(self.non_converged_rows.size),
             "non_converged_rows": self.non_converged_rows.tolist(),
+            "near_boundary_rows": self.near_boundary_rows.tolist(),
             "seconds": self.seconds, "reference_seconds": self.reference_seconds,
             "estimated_brute_force_seconds": self.estimated_brute_force_seconds,
             "estimated_seconds_saved": self.estimated_seconds_saved,
@@ -326,7 +331,9 @@ def leave_one_out(
         refit_rows=rows.astype(np.int64), refit_status=tuple(status), refit_iterations=iters,
         refit_seconds=secs, refit_max_change=max_change, refit_mean_change=mean_change,
         refit_flips=flips, refit_rounds=rounds, refit_working_set=wsize,
-        non_converged_rows=bad.astype(np.int64), seconds=seconds,
+        non_converged_rows=bad.astype(np.int64),
+        near_boundary_rows=np.flatnonzero(np.abs(loo_values) <= float(opts["tol"])),
+        seconds=seconds,
         reference_seconds=reference, estimated_brute_force_seconds=brute,
         tol=float(opts["tol"]), solver_options=dict(opts),
     )

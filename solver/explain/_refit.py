@@ -33,7 +33,7 @@ import numpy as np
 
 from ..certificate import certify
 from ..errors import InvalidInputError
-from ..kernels import PrecomputedKernel
+from ..kernels import KERNELS, PrecomputedKernel
 from ..problem import DualProblem
 from ..status import Status
 from ._decrement import decremental_path
@@ -145,10 +145,11 @@ def removal_start(
 class Refitter:
     """Refits of ``problem`` without one row, around the full solution ``alpha``, ``bias``.
 
-    With ``shared_gram`` the n × n Gram matrix is computed once; the changes of f and the
-    gradients are then read from it, and warm refits give the solver a precomputed kernel
-    over row numbers (the same kernel values).  Cold refits always hand the solver the
-    problem without the row and its own kernel, as a user would.
+    With ``shared_gram`` the n × n Gram matrix is computed once; the decremental path, the
+    changes of f and the gradients then read it, and warm refits with a kernel the solver
+    does not evaluate itself (callable, precomputed) get it as a precomputed kernel over
+    row numbers (the same values).  Cold refits always hand the solver the problem without
+    the row and its own kernel, as a user would.
     """
 
     def __init__(self, problem: DualProblem, solve: Callable[..., Any],
@@ -195,9 +196,10 @@ class Refitter:
         return out
 
     def _subproblem(self, rows: np.ndarray) -> DualProblem:
-        """The problem restricted to original rows ``rows`` (sorted)."""
+        """The problem restricted to original rows ``rows`` (sorted).  Registered kernels
+        (evaluated by the solver itself) are kept; others read the shared Gram matrix."""
         P = self.problem
-        if self.shared is None:
+        if self.shared is None or type(P.kernel) in KERNELS.values():
             X, kern = P.X[rows], P.kernel
         else:  # row numbers into the shared Gram matrix
             X, kern = rows.astype(np.float64)[:, None], self.shared
@@ -225,11 +227,14 @@ class Refitter:
         path = decremental_path(P, alpha, self.bias, self.s, i, self.rows)
         events = -1
         if path is not None:
+            # complete: α_i is at 0 and yᵀα = Δ up to rounding; stopped early: α_i's rest
+            # is removed and yᵀα = Δ restored as in removal_start
             a[keep], events = path[0][keep], path[2]
             need = P.delta - float(P.y[keep] @ a[keep])
-            if abs(need) > 1e-13 * max(1.0, float(np.abs(a).sum())):  # rounding only
+            if abs(need) > 1e-13 * max(1.0, float(np.abs(a).sum())):
+                order = np.argsort(-self.rows(np.array([i]))[0][keep], kind="stable")
                 a[keep] = _rebalance(a[keep], P.y[keep], P.lower[keep], P.upper[keep], need,
-                                     np.arange(keep.size))
+                                     order)
         else:  # single decremental step, then feasibility restored
             a[keep] = removal_start(P, alpha, i, gram=self.gram)
         # the dropped problem, for the certificate only (its kernel is never evaluated)
