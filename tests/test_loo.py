@@ -249,6 +249,29 @@ def test_decremental_path_matches_reference_refits():
     assert used >= 3  # paths with set changes were exercised
 
 
+@pytest.mark.parametrize("name", ["wine_0_1", "breast_cancer_subset"])
+def test_compiled_path_equals_array_path(name):
+    # the numba kernel (full Gram) and the array version (kernel rows) are one algorithm
+    loader, a, b, gamma, C, rows = DATASETS[name]
+    prob = _problem(loader, a, b, gamma=gamma, C=C, rows=rows)
+    res = _solve(prob)
+    ref = Refitter(prob, solve_smo, {"tol": TOL, "trace": "off"}, alpha=res.alpha,
+                   bias=res.bias, shared_gram=True)
+    events = 0
+    for i in np.flatnonzero(~res.certificate.at_lower):
+        fast = decremental_path(prob, res.alpha, res.bias, ref.s, int(i), ref.rows,
+                                gram=ref.gram)
+        slow = decremental_path(prob, res.alpha, res.bias, ref.s, int(i), ref.rows)
+        assert (fast is None) == (slow is None)
+        if fast is None:
+            continue
+        np.testing.assert_allclose(fast[0], slow[0], atol=1e-12)
+        assert fast[1] == pytest.approx(slow[1], abs=1e-12)
+        assert fast[2:] == slow[2:]
+        events += fast[2]
+    assert events > 0
+
+
 def test_working_set_growth_and_fallback_stay_exact(monkeypatch):
     # without the decremental path, shrink the working set to the support vectors only,
     # so refits must add points that become support vectors; then forbid growth so the

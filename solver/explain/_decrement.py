@@ -25,6 +25,7 @@ import numpy as np
 
 from ..certificate import DEFAULT_BOUND_TOL
 from ..problem import DualProblem
+from ._path_kernel import PATH_COMPLETE, PATH_FAILED, path_run
 
 __all__ = ["WORK_FACTOR", "decremental_path"]
 
@@ -44,6 +45,7 @@ def decremental_path(
     c: int,
     rows: Callable[[np.ndarray], np.ndarray],
     *,
+    gram: np.ndarray | None = None,
     max_events: int | None = None,
     work_factor: float = WORK_FACTOR,
 ) -> tuple[np.ndarray, float, int, bool] | None:
@@ -54,6 +56,8 @@ def decremental_path(
     problem : the problem with row ``c`` still in it (n rows).
     alpha : (n,) optimal multipliers; bias : b; s : (n,) Gᵢ + b yᵢ at ``alpha``.
     rows : kernel rows K(x_rows, ·), shape ``(len(rows), n)``.
+    gram : the whole (n, n) Gram matrix, when in memory: the path then runs in the
+        compiled kernel :func:`solver.explain._path_kernel.path_run` (same algorithm).
     max_events : stop after this many set changes (default 50 + n / 10).
     work_factor : stop once the linear algebra (≈ |S|³/3 + 2n|S| per segment) exceeds
         max(``work_factor`` · n², :data:`MIN_WORK`) operations, about the work of one
@@ -80,6 +84,15 @@ def decremental_path(
     k_c = np.asarray(rows(np.array([c])), dtype=np.float64)[0]
     limit = max_events if max_events is not None else 50 + n // 10
     budget, work = max(work_factor * float(n) ** 2, MIN_WORK), 0.0
+    if gram is not None:
+        state = np.where(free, 0, np.where(at_lo, 1, 2)).astype(np.int8)
+        state[c] = 3
+        info = np.zeros(2)
+        code = path_run(np.ascontiguousarray(gram, dtype=np.float64), y, lo, up, a, s, state,
+                        int(c), int(limit), float(budget), info)
+        if code == PATH_FAILED:
+            return None
+        return a, b + float(info[0]), int(info[1]), code == PATH_COMPLETE
     events = 0
     while remaining > 0.0:
         S = np.flatnonzero(free)

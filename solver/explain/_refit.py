@@ -224,7 +224,7 @@ class Refitter:
         P, alpha = self.problem, self.alpha
         keep = np.delete(np.arange(P.n), i)
         a = np.zeros(P.n)
-        path = decremental_path(P, alpha, self.bias, self.s, i, self.rows)
+        path = decremental_path(P, alpha, self.bias, self.s, i, self.rows, gram=self.gram)
         events = -1
         if path is not None:
             # complete: α_i is at 0 and yᵀα = Δ up to rounding; stopped early: α_i's rest
