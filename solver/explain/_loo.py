@@ -257,7 +257,7 @@ def leave_one_out(
     b = float(result.bias)
     ref = Refitter(problem, _solver(), opts, alpha=alpha, bias=b,
                    shared_gram=n * n * 8 / 2**20 <= shared_gram_mb)
-    f_full = decision_on_training(problem, alpha, b)
+    f_full = ref.base + b  # decision values of the full model on the training rows
     wrong_full = misclassified(f_full, y)
     margin = y * f_full
     support = ~np.asarray(result.certificate.at_lower, dtype=bool)

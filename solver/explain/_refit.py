@@ -172,7 +172,10 @@ class Refitter:
         self.alpha = np.asarray(alpha, dtype=np.float64)
         self.bias = float(bias)
         #: Σⱼ αⱼyⱼK(xⱼ, xᵢ) for every training row (f without the bias), (n,)
-        self.base = problem.q_times(self.alpha) * problem.y
+        if self.gram is not None:
+            self.base = self.gram @ (self.alpha * problem.y)
+        else:
+            self.base = problem.q_times(self.alpha) * problem.y
         #: sᵢ = Gᵢ + b yᵢ, the KKT quantity of the full solution, (n,)
         self.s = problem.y * self.base + problem.p + self.bias * problem.y
 
