@@ -7,7 +7,8 @@
 * :func:`feature_space` — the explicit weight vector where it exists (linear; low-degree
   polynomial via the explicit feature map) and ‖w‖ = sqrt(αᵀQα) for every kernel.
 * :func:`leave_one_out` — support-vector-count bound, Joachims' ξα-estimate and the exact
-  leave-one-out error from warm-started refits of the support vectors only.
+  leave-one-out error from refits of the support vectors only (decremental path from the
+  full solution, SMO where the path's answer does not meet the stopping test).
 * :func:`sensitivity` — per support vector, how the training decision values move without it.
 """
 

@@ -42,8 +42,8 @@ from ._table import _check_classification, decision_on_training, misclassified
 __all__ = ["LOO_METHODS", "XI_ALPHA_RHO", "LeaveOneOut", "Sensitivity", "leave_one_out",
            "sensitivity"]
 
-#: ``support_refits``: refit support vectors only, warm-started; ``brute_force``: refit
-#: every point from the solver's default start.
+#: ``support_refits``: refit support vectors only (decremental path, SMO where needed);
+#: ``brute_force``: SMO on every problem without one row from the default start.
 LOO_METHODS = ("support_refits", "brute_force")
 #: ρ in Joachims' ξα-estimate (ρ = 2 gives the bound; from memory).
 XI_ALPHA_RHO = 2.0
@@ -223,13 +223,16 @@ def leave_one_out(
     Parameters
     ----------
     problem, result : the solved problem and its converged solution.
-    method : ``"support_refits"`` (refit support vectors only, warm-started) or
-        ``"brute_force"`` (refit every point from the solver's default start).
+    method : ``"support_refits"`` (refit support vectors only: decremental path, SMO
+        warm-started from it where needed) or ``"brute_force"`` (SMO on every problem
+        without one row, from the solver's default start).
     solver_options : keyword options for :func:`solver.smo.solve_smo` on each refit
-        (default: the full solution's tolerance ``tol`` and ``trace="off"``).
+        (default: the full solution's tolerance ``tol`` and ``trace="off"``); ``tol`` is
+        also the stopping test every refit, path or solver, must meet.
     progress : called as ``progress(done, total)`` after each refit.
-    shared_gram_mb : when the n × n Gram matrix fits this many MiB it is computed once
-        and every refit reads its kernel values from it (both methods alike).
+    shared_gram_mb : when the n × n Gram matrix fits this many MiB it is computed once;
+        the decremental path (compiled), decision-value changes and certificates then read
+        it.  Larger problems use kernel rows on demand (slower, same answers).
 
     Notes
     -----
@@ -276,10 +279,9 @@ def leave_one_out(
 
     reference = float("nan")
     if warm:
-        # brute-force time reference: the fastest of three cold refits (a conservative
-        # estimate of the saving), not counted in `seconds`
+        # brute-force time reference: the fastest of three cold refits after one untimed
+        # warm-up (a conservative estimate of the saving), not counted in `seconds`
         t0 = time.perf_counter()
-        # (after one untimed warm-up: first large allocations are slower than later ones)
         probe = [refit(int(i), True)[1] for i in np.linspace(0, n - 1, min(4, n)).astype(int)]
         reference = float(min(probe[1:] or probe))
         t_start += time.perf_counter() - t0
