@@ -272,44 +272,44 @@ def leave_one_out(
 
     def refit(i: int, cold: bool) -> tuple[Refit, float]:
         t0 = time.perf_counter()
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore", ConvergenceWarning)
-            out = ref.cold(i) if cold else ref.warm(i, margin)
+        out = ref.cold(i) if cold else ref.warm(i, margin)
         return out, time.perf_counter() - t0
 
-    reference = float("nan")
-    if warm:
-        # brute-force time reference: the fastest of three cold refits after one untimed
-        # warm-up (a conservative estimate of the saving), not counted in `seconds`
-        t0 = time.perf_counter()
-        probe = [refit(int(i), True)[1] for i in np.linspace(0, n - 1, min(4, n)).astype(int)]
-        reference = float(min(probe[1:] or probe))
-        t_start += time.perf_counter() - t0
-    rows = np.flatnonzero(support) if warm else np.arange(n)
-    k = rows.size
-    loo_values = f_full.copy()
-    status: list[str] = []
-    iters = np.zeros(k, np.int64)
-    secs = np.zeros(k)
-    max_change = np.zeros(k)
-    mean_change = np.zeros(k)
-    flips = np.zeros(k, np.int64)
-    rounds = np.zeros(k, np.int64)
-    wsize = np.zeros(k, np.int64)
-    for r, i in enumerate(rows):
-        out, secs[r] = refit(int(i), not warm)
-        status.append(out.status)
-        iters[r] = out.iterations
-        rounds[r], wsize[r] = out.rounds, out.working_set
-        f_new = f_full + out.change + (out.bias - b)
-        loo_values[i] = f_new[i]
-        keep = out.keep
-        diff = np.abs(f_new[keep] - f_full[keep])
-        max_change[r] = float(diff.max(initial=0.0))
-        mean_change[r] = float(diff.mean()) if diff.size else 0.0
-        flips[r] = int(np.sum(misclassified(f_new[keep], y[keep]) != wrong_full[keep]))
-        if progress is not None:
-            progress(r + 1, k)
+    with warnings.catch_warnings():  # per-refit warnings are summarised below
+        warnings.simplefilter("ignore", ConvergenceWarning)
+        reference = float("nan")
+        if warm:
+            # brute-force time reference: the fastest of three cold refits after one untimed
+            # warm-up (a conservative estimate of the saving), not counted in `seconds`
+            t0 = time.perf_counter()
+            probe = [refit(int(i), True)[1] for i in np.linspace(0, n - 1, min(4, n)).astype(int)]
+            reference = float(min(probe[1:] or probe))
+            t_start += time.perf_counter() - t0
+        rows = np.flatnonzero(support) if warm else np.arange(n)
+        k = rows.size
+        loo_values = f_full.copy()
+        status: list[str] = []
+        iters = np.zeros(k, np.int64)
+        secs = np.zeros(k)
+        max_change = np.zeros(k)
+        mean_change = np.zeros(k)
+        flips = np.zeros(k, np.int64)
+        rounds = np.zeros(k, np.int64)
+        wsize = np.zeros(k, np.int64)
+        for r, i in enumerate(rows):
+            out, secs[r] = refit(int(i), not warm)
+            status.append(out.status)
+            iters[r] = out.iterations
+            rounds[r], wsize[r] = out.rounds, out.working_set
+            f_new = f_full + out.change + (out.bias - b)
+            loo_values[i] = f_new[i]
+            keep = out.keep
+            diff = np.abs(f_new[keep] - f_full[keep])
+            max_change[r] = float(diff.max(initial=0.0))
+            mean_change[r] = float(diff.mean()) if diff.size else 0.0
+            flips[r] = int(np.sum(misclassified(f_new[keep], y[keep]) != wrong_full[keep]))
+            if progress is not None:
+                progress(r + 1, k)
     seconds = time.perf_counter() - t_start
     if not warm:
         reference = float(np.median(secs)) if k else float("nan")
