@@ -48,6 +48,8 @@ def main() -> None:
     Z = Standardiser.fit(X).transform(X)
     prob = binary_classification(Z, t, kernel=RBFKernel(), C=args.C)
     solve_smo(prob, tol=args.tol, trace="off")  # compile / load the numba cache
+    small = binary_classification(Z[:80], t[:80], kernel=RBFKernel(), C=args.C)
+    leave_one_out(small, solve_smo(small, tol=args.tol, trace="off"))  # same for the path
     t0 = time.perf_counter()
     res = solve_smo(prob, tol=args.tol, trace="off")
     full = time.perf_counter() - t0
