@@ -15,8 +15,6 @@ HTML / PDF / JSON.  Names are loaded on first use, so ``import solver`` stays li
 
 from __future__ import annotations
 
-import sys
-import types
 from importlib import import_module
 from typing import Any
 
@@ -76,23 +74,6 @@ _EXPORTS: dict[str, str] = {
 __all__ = ["__version__", *_EXPORTS]
 
 
-#: Public functions whose names are also submodule names (``solver/compare.py``,
-#: ``solver/explain.py``, ``solver/report/``).  ``solver.compare`` etc. are always the
-#: workflow functions; the submodules stay importable by their dotted names
-#: (``from solver.compare import compare_runs``, ``import solver.report``) and live in
-#: ``sys.modules``, but the import system is not allowed to rebind the package attribute.
-_SHADOWED = frozenset({"compare", "explain", "report"})
-
-
-class _Package(types.ModuleType):
-    """The ``solver`` package module: keeps the workflow functions in :data:`_SHADOWED`."""
-
-    def __setattr__(self, name: str, value: Any) -> None:
-        if name in _SHADOWED and isinstance(value, types.ModuleType):
-            return
-        super().__setattr__(name, value)
-
-
 def __getattr__(name: str) -> Any:
     module = _EXPORTS.get(name)
     if module is None:
@@ -105,5 +86,3 @@ def __getattr__(name: str) -> Any:
 def __dir__() -> list[str]:
     return sorted(set(globals()) | set(_EXPORTS))
 
-
-sys.modules[__name__].__class__ = _Package

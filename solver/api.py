@@ -280,7 +280,7 @@ class TrainOutcome:
         challenger when one ran.
     records : the saved :class:`~solver.run.RunRecord` objects, same order.
     summaries : one plain-data summary per run (see :meth:`summary`).
-    comparison : the solver-agreement :class:`~solver.compare.Comparison`, or None.
+    comparison : the solver-agreement :class:`~solver.agreement.Comparison`, or None.
     challenger_skipped : why the QP challenger did not run (None when it ran or was not asked).
     store : root directory of the store.
     """
@@ -375,7 +375,7 @@ def _jsonable(v: Any) -> Any:
 
 
 def _explanation(problem: DualProblem, result: SolveResult) -> dict[str, np.ndarray]:
-    from .explain import point_table
+    from .explanation import point_table
 
     return dict(point_table(problem, result).to_columns())
 
@@ -565,7 +565,7 @@ def _train(
 
     comparison = None
     if len(records) == 2:
-        from .compare import compare_runs
+        from .agreement import compare_runs
 
         hX = None if hold is None else _align(hold, ds.feature_names, "held-out data")
         comparison = compare_runs(records[0], records[1], holdout_X=hX)
@@ -607,13 +607,13 @@ def compare(
     tolerances: Mapping[str, float] | None = None,
     allow_mismatch: bool = False,
 ) -> Any:
-    """Solver-agreement :class:`~solver.compare.Comparison` of two runs.
+    """Solver-agreement :class:`~solver.agreement.Comparison` of two runs.
 
     ``holdout`` (data file or Dataset, label column optional) adds decision-value agreement
     on held-out rows.  Runs of different problems raise
     :class:`~solver.errors.ProblemMismatchError` unless ``allow_mismatch``.
     """
-    from .compare import compare_runs
+    from .agreement import compare_runs
 
     a, b = load_run(run_a, store=store), load_run(run_b, store=store)
     hX = None
@@ -667,13 +667,13 @@ def explain(
 ) -> Any:
     """Explain a run.
 
-    Without ``points``: the per-point :class:`~solver.explain.PointTable` of the training
+    Without ``points``: the per-point :class:`~solver.explanation.PointTable` of the training
     data (category and reason for every point).  With ``points`` (a mapping feature →
     value, an (m, d) array in raw units, a Dataset or a data file): the decision
-    :class:`~solver.explain.Breakdown` of each query into its ``top`` contributing support
+    :class:`~solver.explanation.Breakdown` of each query into its ``top`` contributing support
     vectors and the remainder.
     """
-    from .explain import breakdown, point_table
+    from .explanation import breakdown, point_table
 
     rec = load_run(run, store=store)
     if points is None:
@@ -698,9 +698,9 @@ def leave_one_out(
 ) -> Any:
     """Exact leave-one-out error (support-vector refits) with the Vapnik and Joachims bounds.
 
-    Returns :class:`~solver.explain.LeaveOneOut`; needs a converged run.
+    Returns :class:`~solver.explanation.LeaveOneOut`; needs a converged run.
     """
-    from .explain import leave_one_out as _loo
+    from .explanation import leave_one_out as _loo
 
     rec = load_run(run, store=store)
     if progress is None:
@@ -878,7 +878,7 @@ def report(
     derives from the first; otherwise the two runs are compared afresh.  ``out_dir``
     defaults to ``<store>/reports/<first run id>``.
     """
-    from .report import write_report
+    from .reporting import write_report
 
     st = open_store(store)
     ids = [run_ids] if isinstance(run_ids, (str, RunRecord)) else list(run_ids)
@@ -889,7 +889,7 @@ def report(
     if len(recs) == 2:
         comparison = _stored_comparison(recs[1], recs[0])
         if comparison is None:
-            from .compare import compare_runs
+            from .agreement import compare_runs
 
             comparison = compare_runs(recs[0], recs[1])
     out = Path(out_dir) if out_dir is not None else Path(st.root) / "reports" / str(recs[0].run_id)

@@ -16,7 +16,7 @@ import numpy as np
 import pytest
 
 from solver import api
-from solver.report import write_report
+from solver.reporting import write_report
 from solver.store import RunStore
 
 CHROMIUM = Path("/usr/bin/chromium")

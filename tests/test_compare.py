@@ -9,7 +9,7 @@ from dataclasses import replace
 import numpy as np
 import pytest
 
-from solver.compare import VERDICTS, Comparison, Tolerances, compare_results, compare_runs
+from solver.agreement import VERDICTS, Comparison, Tolerances, compare_results, compare_runs
 from solver.errors import ConvergenceWarning, InvalidInputError, ProblemMismatchError
 from solver.kernels import LinearKernel, PrecomputedKernel, RBFKernel
 from solver.model import Standardiser
@@ -296,7 +296,7 @@ def test_tolerances_validation_and_mapping():
 def test_every_tolerance_is_documented():
     import importlib
 
-    mod = importlib.import_module("solver.compare")
+    mod = importlib.import_module("solver.agreement")
     src = open(mod.__file__, encoding="utf-8").read()
     for name in Tolerances().to_dict():
         block = src.split(f"    {name}: float = ", 1)[1].split("\n", 2)[1]

@@ -1,4 +1,4 @@
-"""Per-point table, decision breakdown and feature-space view (solver.explain)."""
+"""Per-point table, decision breakdown and feature-space view (solver.explanation)."""
 
 from __future__ import annotations
 
@@ -15,7 +15,7 @@ from sklearn.svm import SVC
 
 from solver.certificate import certify
 from solver.errors import InvalidInputError
-from solver.explain import (
+from solver.explanation import (
     CATEGORIES,
     COLUMNS,
     PointTable,

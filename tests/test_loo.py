@@ -26,10 +26,10 @@ from sklearn.svm import SVC
 
 from solver.certificate import certify
 from solver.errors import ConvergenceWarning, InvalidInputError
-from solver.explain import _refit as refit_mod
-from solver.explain import leave_one_out, sensitivity
-from solver.explain._decrement import decremental_path
-from solver.explain._refit import Refitter, drop_row, removal_start
+from solver.explanation import _refit as refit_mod
+from solver.explanation import leave_one_out, sensitivity
+from solver.explanation._decrement import decremental_path
+from solver.explanation._refit import Refitter, drop_row, removal_start
 from solver.kernels import RBFKernel
 from solver.model import Standardiser
 from solver.problem import binary_classification

@@ -46,18 +46,17 @@ def test_workflow_names_are_the_cli_subcommands():
     assert callable(solver.run_demo)
 
 
-def test_submodule_imports_do_not_replace_workflow_functions():
-    import solver.compare
-    import solver.explain
-    import solver.report
+def test_workflow_names_are_functions_not_submodules():
+    """The workflow names ``compare``, ``explain``, ``report`` are not shadowed by submodules
+    (the implementations live in ``solver.agreement``, ``solver.explanation``, ``solver.reporting``)."""
+    import solver.agreement
+    import solver.explanation
+    import solver.reporting  # noqa: F401
 
     for name in ("compare", "explain", "report"):
         assert inspect.isfunction(getattr(solver, name)), name
         assert getattr(solver, name).__module__ == "solver.api"
-        assert inspect.ismodule(sys.modules[f"solver.{name}"])
-    from solver.compare import compare_runs
-
-    assert callable(compare_runs)
+        assert f"solver.{name}" not in sys.modules
 
 
 def test_import_solver_is_light():

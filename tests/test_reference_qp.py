@@ -18,7 +18,7 @@ from hypothesis import strategies as st
 from sklearn.datasets import load_breast_cancer, load_digits, load_iris, load_wine
 from sklearn.svm import SVC
 
-from solver.compare import compare_runs
+from solver.agreement import compare_runs
 from solver.errors import ConvergenceWarning, ProblemMismatchError
 from solver.kernels import LinearKernel, PolynomialKernel, RBFKernel
 from solver.model import Standardiser

@@ -22,12 +22,12 @@ import pytest
 
 from solver import api
 from solver.errors import InvalidInputError
-from solver.report import build_report_content, write_report
-from solver.report._series import replay_pairs
-from solver.report.content import CAUTION
-from solver.report.html import fmt, render_html
-from solver.report.pdf import plan_pages
-from solver.report.summary import load_schema, summary_dict, summary_json
+from solver.reporting import build_report_content, write_report
+from solver.reporting._series import replay_pairs
+from solver.reporting.content import CAUTION
+from solver.reporting.html import fmt, render_html
+from solver.reporting.pdf import plan_pages
+from solver.reporting.summary import load_schema, summary_dict, summary_json
 from solver.smo import replay_alpha
 from solver.store import RunStore
 
@@ -388,7 +388,7 @@ def test_write_report_rejects_bad_requests(work: dict, tmp_path: Path) -> None:
 
 def test_failed_render_leaves_no_files(work: dict, tmp_path: Path,
                                        monkeypatch: pytest.MonkeyPatch) -> None:
-    from solver.report import pdf as pdf_mod  # (solver.report is also a function name)
+    from solver.reporting import pdf as pdf_mod  # (solver.reporting is also a function name)
 
     def boom(*_a: object, **_k: object) -> int:
         raise RuntimeError("disk on fire")
@@ -405,7 +405,7 @@ def test_failed_render_leaves_no_files(work: dict, tmp_path: Path,
 
 
 def test_leave_one_out_attachment_is_shown(work: dict) -> None:
-    from solver.explain import leave_one_out
+    from solver.explanation import leave_one_out
 
     rec = work["pair"][0]
     loo = leave_one_out(rec.problem, rec.result)

@@ -7,7 +7,7 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-from solver.report._series import (
+from solver.reporting._series import (
     bucket_envelope,
     minmax_downsample,
     replay_pairs,

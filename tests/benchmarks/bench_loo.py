@@ -27,8 +27,8 @@ import numpy as np
 from sklearn.datasets import load_breast_cancer
 
 from solver.errors import ConvergenceWarning
-from solver.explain import leave_one_out
-from solver.explain._refit import drop_row
+from solver.explanation import leave_one_out
+from solver.explanation._refit import drop_row
 from solver.kernels import RBFKernel
 from solver.model import Standardiser
 from solver.problem import binary_classification

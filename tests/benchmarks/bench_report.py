@@ -23,7 +23,7 @@ import numpy as np
 from solver.kernels import RBFKernel
 from solver.model import Standardiser
 from solver.problem import binary_classification
-from solver.report import build_report_content, render_report
+from solver.reporting import build_report_content, render_report
 from solver.run import RunRecord
 from solver.smo import solve_smo
 from solver.store import RunStore

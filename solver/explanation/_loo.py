@@ -13,7 +13,7 @@
   the bias is pinned by the margin; reported as ``xi_alpha_stable``.  Without a free
   support vector the bias can jump when a point is removed and the estimate may fall
   below the exact value (seen on iris versicolor/virginica, RBF gamma = 3, C = 0.1).
-* Exact: only support vectors are refitted (see :mod:`solver.explain._refit`): each refit
+* Exact: only support vectors are refitted (see :mod:`solver.explanation._refit`): each refit
   drops the row and starts from the full solution with that multiplier lowered to 0 along
   the decremental path (Cauwenberghs & Poggio 2001: the free support vectors stay on the
   margin, sets updated at each event).  If that start meets the solver's stopping test on

@@ -127,7 +127,7 @@ def build_report_content(
 ) -> ReportContent:
     """Collect the report for ``runs`` (one or more stored runs) as plain data.
 
-    comparison : a :class:`solver.compare.Comparison` or its ``to_dict()``; default the first
+    comparison : a :class:`solver.agreement.Comparison` or its ``to_dict()``; default the first
         ``"comparison"`` attachment found on the runs.
     holdout : held-out scores for the first run (default: each run's ``"holdout"`` attachment).
     notes : free text from the person preparing the report (shown escaped).

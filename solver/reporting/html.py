@@ -68,7 +68,7 @@ def _num_html(v: Any) -> str:
 
 
 def _css() -> str:
-    return resources.files("solver.report").joinpath("report.css").read_text(encoding="utf-8")
+    return resources.files("solver.reporting").joinpath("report.css").read_text(encoding="utf-8")
 
 
 def _cell_class(v: Any) -> str:

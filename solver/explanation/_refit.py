@@ -7,7 +7,7 @@ count as movable).  Two refits are offered:
 * :meth:`Refitter.cold` — the whole dropped problem from the solver's default start
   (brute force).
 * :meth:`Refitter.warm` — warm start from the full solution: the decremental path of
-  :mod:`solver.explain._decrement` (the multiplier lowered to 0 while the free support
+  :mod:`solver.explanation._decrement` (the multiplier lowered to 0 while the free support
   vectors stay on the margin, sets updated at each event), or, if that path gives up, the
   single step of :func:`removal_start` with yᵀα = Δ restored within the bounds.  When
   that start already meets the solver's stopping test

@@ -57,7 +57,7 @@ def decremental_path(
     alpha : (n,) optimal multipliers; bias : b; s : (n,) Gᵢ + b yᵢ at ``alpha``.
     rows : kernel rows K(x_rows, ·), shape ``(len(rows), n)``.
     gram : the whole (n, n) Gram matrix, when in memory: the path then runs in the
-        compiled kernel :func:`solver.explain._path_kernel.path_run` (same algorithm).
+        compiled kernel :func:`solver.explanation._path_kernel.path_run` (same algorithm).
     max_events : stop after this many set changes (default 50 + n / 10).
     work_factor : stop once the linear algebra (≈ |S|³/3 + 2n|S| per segment) exceeds
         max(``work_factor`` · n², :data:`MIN_WORK`) operations, about the work of one

@@ -1,4 +1,4 @@
-"""Numba kernel of the decremental path (see :mod:`solver.explain._decrement`) on a full Gram.
+"""Numba kernel of the decremental path (see :mod:`solver.explanation._decrement`) on a full Gram.
 
 Flat, module-level, typed by its arrays, ``cache=True``; runs unchanged (slowly) with
 ``NUMBA_DISABLE_JIT=1``.  Returns a status code; the Python layer decides what to do.

@@ -115,5 +115,5 @@ def summary_json(content: ReportContent) -> str:
 
 def load_schema() -> dict[str, Any]:
     """The JSON Schema (draft 2020-12) the summary follows."""
-    text = resources.files("solver.report").joinpath("summary.schema.json").read_text("utf-8")
+    text = resources.files("solver.reporting").joinpath("summary.schema.json").read_text("utf-8")
     return json.loads(text)
