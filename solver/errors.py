@@ -27,4 +27,7 @@ class ConvergenceWarning(UserWarning):
 
 
 class DataWarning(UserWarning):
-    """Input data are usable but suspicious (conflicting duplicates, constant or unscaled features)."""
+    """Input data are usable but suspicious.
+
+    Examples: conflicting duplicates, constant or unscaled features.
+    """

@@ -1,4 +1,4 @@
-"""The trained classifier: support vectors, their coefficients, bias, kernel, standardiser, labels."""
+"""The trained classifier: support vectors, coefficients, bias, kernel, standardiser, labels."""
 
 from __future__ import annotations
 
@@ -57,7 +57,9 @@ class Standardiser:
         except (KeyError, TypeError, ValueError) as exc:
             raise InvalidInputError(f"standardiser record is malformed: {exc}") from None
         if c.ndim != 1 or c.shape != s.shape or not np.all(s > 0):
-            raise InvalidInputError("standardiser record is malformed: centre/scale shapes or scale <= 0")
+            raise InvalidInputError(
+                "standardiser record is malformed: centre/scale shapes or scale <= 0"
+            )
         return cls(centre=c, scale=s)
 
 
@@ -77,7 +79,9 @@ class Model:
     standardiser: Standardiser
     labels: tuple[Hashable, Hashable]
 
-    def values(self, X: np.ndarray, *, standardised: bool = False, block_rows: int = 4096) -> np.ndarray:
+    def values(
+        self, X: np.ndarray, *, standardised: bool = False, block_rows: int = 4096
+    ) -> np.ndarray:
         """Decision values f(x) for rows of ``X`` (m, d) in raw units (unless ``standardised``)."""
         Z = np.asarray(X, dtype=np.float64) if standardised else self.standardiser.transform(X)
         out = np.empty(Z.shape[0])

@@ -29,5 +29,8 @@ def get_solver(name: str) -> Callable[..., SolveResult]:
 
 
 def solve(problem: DualProblem, *, method: str = "smo", **options: Any) -> SolveResult:
-    """Solve ``problem`` with the registered solver ``method``; options are that solver's keywords."""
+    """Solve ``problem`` with the registered solver ``method``.
+
+    ``options`` are that solver's keyword options.
+    """
     return get_solver(method)(problem, **options)

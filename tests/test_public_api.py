@@ -47,8 +47,11 @@ def test_workflow_names_are_the_cli_subcommands():
 
 
 def test_workflow_names_are_functions_not_submodules():
-    """The workflow names ``compare``, ``explain``, ``report`` are not shadowed by submodules
-    (the implementations live in ``solver.agreement``, ``solver.explanation``, ``solver.reporting``)."""
+    """``compare``, ``explain``, ``report`` are API functions, not shadowed by submodules.
+
+    The implementations live in ``solver.agreement``, ``solver.explanation``,
+    ``solver.reporting``.
+    """
     import solver.agreement
     import solver.explanation
     import solver.reporting  # noqa: F401
