@@ -75,20 +75,20 @@ def _trace_figures(rec: RunRecord, label: str, categories: np.ndarray | None) ->
                   "final_y": float(res.certificate.max_violation), "events": ev_draw},
         ))
     final = float(res.certificate.dual_objective)
-    obj = lower = None
+    objective = lower = None
     if "objective" in cols:  # SMO: the dual objective after each step
-        obj = np.asarray(cols["objective"], dtype=np.float64)
+        objective = np.asarray(cols["objective"], dtype=np.float64)
     elif "primal_objective" in cols:
         # interior point: our dual problem is the QP solver's primal, so its primal objective
         # is our (minimised) dual objective and its dual objective a lower bound on it
-        obj = np.asarray(cols["primal_objective"], dtype=np.float64)
+        objective = np.asarray(cols["primal_objective"], dtype=np.float64)
         if "dual_objective" in cols:
             lower = np.asarray(cols["dual_objective"], dtype=np.float64)
-    if obj is not None:
-        ox, oyd = minmax_downsample(x, obj, PLOT_POINTS)
-        dist = np.abs(obj - final)
+    if objective is not None:
+        ox, oyd = minmax_downsample(x, objective, PLOT_POINTS)
+        dist = np.abs(objective - final)
         dx, dy = minmax_downsample(x, np.where(dist > 0, dist, np.nan), PLOT_POINTS)
-        series["dual_objective"] = bucket_envelope(x, obj)
+        series["dual_objective"] = bucket_envelope(x, objective)
         data: dict[str, Any] = {"x": ox, "y": oyd, "final": final, "dist_x": dx, "dist_y": dy}
         if lower is not None:
             lx, ly = minmax_downsample(x, lower, PLOT_POINTS)
