@@ -64,6 +64,8 @@ IS_HITS = 26
 IS_MISSES = 27
 IS_ROW_EVALS = 28  # kernel rows computed from data
 IS_POOL_USED = 29  # Gram rows stored so far (mode 0)
+IS_REMISSES = 30  # misses on rows that had been cached before (evicted or dropped)
+IS_UNIT_DIAG = 31  # 1 when every K(x, x) = 1
 IS_SIZE = 32
 
 # fstate slots (float64)
@@ -77,6 +79,10 @@ FS_M_LOW = 6
 FS_GAMMA = 7
 FS_OFFSET = 8
 FS_SIZE = 16
+
+# status bits of a variable (uint8): in I_up (β < hi), in I_low (β > lo)
+UP = 1
+LOW = 2
 
 EV_SHRINK = 1
 EV_RECONSTRUCT = 2
@@ -100,7 +106,9 @@ _SHIFT = 6755399441055744.0  # 1.5·2^52: x + _SHIFT − _SHIFT rounds x to an i
 
 # ---------------------------------------------------------------- min / max ----------
 # llvm.maxnum / llvm.minnum (flagged no-NaN, no-signed-zero) let LLVM vectorise the
-# reductions; a compare-and-select written in Python does not vectorise here.  The
+# reductions; a compare-and-select written in Python does not vectorise here.  Membership
+# of I_up / I_low is one status byte per variable, turned into ∓inf by a select, so the
+# passes read as few bytes per variable as possible (they are limited by cache bandwidth).  The
 # pure-Python versions agree for non-NaN arguments (a NaN objective stops the loop).
 # error_model="numpy" drops Python's zero-division check, which blocks vectorisation;
 # every divisor in this module is > 0 by construction.
@@ -138,11 +146,14 @@ else:
 
 
 _jit = njit(cache=True, error_model="numpy")
+# kernel evaluation may fuse multiply-adds (about 1.6x faster exp); the SMO passes and
+# steps do not, so that they match the pure-Python run bit for bit on equal kernel values
+_jit_fma = njit(cache=True, error_model="numpy", fastmath={"contract"})
 
 # ---------------------------------------------------------------- kernel rows --------
 
 
-@_jit
+@_jit_fma
 def exp_inplace(x, ibuf):
     """x[t] ← exp(x[t]) for x (L,) float64, x ≤ 709; below −708 the result is exp(−708).
 
@@ -176,7 +187,7 @@ def exp_inplace(x, ibuf):
         x[t] = x[t] * fb[t]
 
 
-@_jit
+@_jit_fma
 def self_dots(XK, out):
     """out[t] = Σₖ XK[k, t]² with the same summation order as :func:`kernel_row`."""
     d, n = XK.shape
@@ -196,7 +207,7 @@ def self_dots(XK, out):
         out[t] = acc
 
 
-@_jit
+@_jit_fma
 def kernel_row(XS, src, sqi, XK, sq, count, out, code, gamma, offset, degree, acc, ibuf):
     """out[t] = K(x, x_t) for t < count with x = XS[:, src], x_t = XK[:, t] ((d, ·) float64).
 
@@ -231,31 +242,34 @@ def kernel_row(XS, src, sqi, XK, sq, count, out, code, gamma, offset, degree, ac
             for t in range(L):
                 a[t] += xk * rk[t]
             k += 1
+        _transform(a, sqi, sq[s:e], code, gamma, offset, degree, ibuf)
         o = out[s:e]
-        if code == KERNEL_RBF:
-            sqs = sq[s:e]
-            for t in range(L):
-                v = (sqi + sqs[t]) - 2.0 * a[t]
-                a[t] = -gamma * max(v, 0.0)
-            exp_inplace(a, ibuf)
-            for t in range(L):
-                o[t] = a[t]
-        elif code == KERNEL_POLY:
-            for t in range(L):
-                v = gamma * a[t] + offset
-                w = v
-                for _ in range(degree - 1):
-                    w = w * v
-                o[t] = w
-        elif code == KERNEL_SIGMOID:
-            for t in range(L):
-                o[t] = np.tanh(gamma * a[t] + offset)
-        else:
-            for t in range(L):
-                o[t] = a[t]
+        for t in range(L):
+            o[t] = a[t]
 
 
-@_jit
+@_jit_fma
+def _transform(a, sqi, sqs, code, gamma, offset, degree, ibuf):
+    """a[t] ← kernel value from the inner product a[t] = x·x_t (‖x‖² = sqi, ‖x_t‖² = sqs[t])."""
+    L = a.shape[0]
+    if code == KERNEL_RBF:
+        for t in range(L):
+            v = (sqi + sqs[t]) - 2.0 * a[t]
+            a[t] = -gamma * max(v, 0.0)
+        exp_inplace(a, ibuf)
+    elif code == KERNEL_POLY:
+        for t in range(L):
+            v = gamma * a[t] + offset
+            w = v
+            for _ in range(degree - 1):
+                w = w * v
+            a[t] = w
+    elif code == KERNEL_SIGMOID:
+        for t in range(L):
+            a[t] = np.tanh(gamma * a[t] + offset)
+
+
+@_jit_fma
 def kernel_diag(XK, sq, out, code, gamma, offset, degree, acc, ibuf):
     """out[t] = K(x_t, x_t) (n,), by the same arithmetic as :func:`kernel_row`."""
     n = XK.shape[1]
@@ -300,20 +314,62 @@ def fill_rows(XK, sq, rows, gram, rowslot, istate, code, gamma, offset, degree, 
     return done
 
 
-@_jit
-def reconstruct(XK, sq, targets, XV, sqv, coef, q, F, code, gamma, offset, degree, row, acc,
-                ibuf):
+@_jit_fma
+def reconstruct(XK, sq, targets, XV, sqv, coef, q, F, code, gamma, offset, degree, acc4, ibuf):
     """F[t] = −q[t] − Σ_s coef[s] K(x_t, v_s) for t in ``targets`` (columns of XK), with the
-    support points v_s the columns of XV (d, m); ``row`` (m,) work buffer.  Used to
-    rebuild the gradient of shrunk variables without a stored Gram."""
+    support points v_s the columns of XV (d, m); acc4 (4, CHUNK) work buffer.  Rebuilds
+    the gradient of shrunk variables without a stored Gram; four targets share each pass
+    over XV."""
+    d = XK.shape[0]
     m = XV.shape[1]
-    for r in range(targets.shape[0]):
-        t = targets[r]
-        kernel_row(XK, t, sq[t], XV, sqv, m, row, code, gamma, offset, degree, acc, ibuf)
-        s = 0.0
-        for k in range(m):
-            s += coef[k] * row[k]
-        F[t] = -q[t] - s
+    nt = targets.shape[0]
+    sums = np.zeros(4)
+    for r0 in range(0, nt, 4):
+        rb = min(4, nt - r0)
+        for u in range(4):
+            sums[u] = 0.0
+        for s in range(0, m, CHUNK):
+            e = min(m, s + CHUNK)
+            L = e - s
+            for u in range(rb):
+                au = acc4[u, :L]
+                for t in range(L):
+                    au[t] = 0.0
+            k = 0
+            while k + 4 <= d:
+                r0_ = XV[k, s:e]
+                r1_ = XV[k + 1, s:e]
+                r2_ = XV[k + 2, s:e]
+                r3_ = XV[k + 3, s:e]
+                for u in range(rb):
+                    c = targets[r0 + u]
+                    x0 = XK[k, c]
+                    x1 = XK[k + 1, c]
+                    x2 = XK[k + 2, c]
+                    x3 = XK[k + 3, c]
+                    au = acc4[u, :L]
+                    for t in range(L):
+                        au[t] += (x0 * r0_[t] + x1 * r1_[t]) + (x2 * r2_[t] + x3 * r3_[t])
+                k += 4
+            while k < d:
+                rk = XV[k, s:e]
+                for u in range(rb):
+                    xk = XK[k, targets[r0 + u]]
+                    au = acc4[u, :L]
+                    for t in range(L):
+                        au[t] += xk * rk[t]
+                k += 1
+            cs = coef[s:e]
+            for u in range(rb):
+                au = acc4[u, :L]
+                _transform(au, sq[targets[r0 + u]], sqv[s:e], code, gamma, offset, degree, ibuf)
+                tot = 0.0
+                for t in range(L):
+                    tot += cs[t] * au[t]
+                sums[u] += tot
+        for u in range(rb):
+            c = targets[r0 + u]
+            F[c] = -q[c] - sums[u]
 
 
 @_jit
@@ -378,7 +434,7 @@ def _lru_take(slot_of, slot_owner, lru_prev, lru_next, slot_stamp, istate, it):
         lru_next[s] = -1
     else:
         s = istate[IS_TAIL]
-        slot_of[slot_owner[s]] = -1
+        slot_of[slot_owner[s]] = -2  # evicted: a later miss on it counts as a re-miss
     _lru_touch(s, lru_prev, lru_next, slot_stamp, istate, it)
     return s
 
@@ -416,6 +472,8 @@ def _fetch(p, a, perm, gram, rowslot, cache, slot_of, slot_owner, lru_prev, lru_
         istate[IS_NEED_ORIG] = o
         return False, cache[0:0]
     istate[IS_MISSES] += 1
+    if s == -2:
+        istate[IS_REMISSES] += 1
     s = _lru_take(slot_of, slot_owner, lru_prev, lru_next, slot_stamp, istate, it)
     slot_of[o] = s
     slot_owner[s] = o
@@ -439,9 +497,10 @@ def _fetch(p, a, perm, gram, rowslot, cache, slot_of, slot_owner, lru_prev, lru_
 
 
 @_jit
-def pass_up(F, Ki, Kj, di, dj, off, a, bm, update):
-    """Optionally F[t] −= Ki[t]·di + Kj[t]·dj, then (m, i): m = max_{t<a} F[t] + off[t]
-    and i its lowest position (−1 if m = −inf).  bm holds per-block maxima."""
+def pass_up(F, Ki, Kj, di, dj, status, a, bm, update):
+    """Optionally F[t] −= Ki[t]·di + Kj[t]·dj, then (m, i): m = max F[t] over t < a in
+    I_up (status bit 1) and i its lowest position (−1 if I_up is empty).  bm holds
+    per-block maxima."""
     nb = (a + BLK - 1) // BLK
     m = -np.inf
     for k in range(nb):
@@ -449,18 +508,15 @@ def pass_up(F, Ki, Kj, di, dj, off, a, bm, update):
         e = min(a, s + BLK)
         L = e - s
         Fs = F[s:e]
-        Os = off[s:e]
+        Ss = status[s:e]
         mk = -np.inf
-        if update:
+        if update:  # a separate loop: a store in the reduction loop stops vectorisation
             Is = Ki[s:e]
             Js = Kj[s:e]
             for t in range(L):
-                v = Fs[t] - (Is[t] * di + Js[t] * dj)
-                Fs[t] = v
-                mk = _fmax(mk, v + Os[t])
-        else:
-            for t in range(L):
-                mk = _fmax(mk, Fs[t] + Os[t])
+                Fs[t] = Fs[t] - (Is[t] * di + Js[t] * dj)
+        for t in range(L):
+            mk = _fmax(mk, Fs[t] if (Ss[t] & UP) != 0 else -np.inf)
         bm[k] = mk
         m = _fmax(m, mk)
     if not m > -np.inf:
@@ -470,17 +526,30 @@ def pass_up(F, Ki, Kj, di, dj, off, a, bm, update):
             s = k * BLK
             e = min(a, s + BLK)
             for t in range(s, e):
-                if F[t] + off[t] == m:
+                if (status[t] & UP) != 0 and F[t] == m:
                     return m, t
     return m, -1
 
 
 @_jit
-def pass_low(F, Ki, diag, off, a, m, kii, tau, second, bm):
-    """(best, j, M) over positions t < a with off[t] = 0 (I_low):
-    M = min F[t]; j = lowest position minimising the selection value
-    −(m − F[t])²/āᵢₜ (second order; āᵢₜ = Kᵢᵢ + Kₜₜ − 2Kᵢₜ, τ if ≤ 0; Fan, Chen & Lin 2005,
-    WSS 2) or −(m − F[t]) (first order) among F[t] < m; j = −1 if none (best ≥ 0)."""
+def _low_value(ft, m, kii, dt, kit, tau, second):
+    """Selection value of candidate t (see :func:`pass_low`); identical arithmetic in the
+    vectorised search and in the scan that locates the winner."""
+    b = _fmax(m - ft, 0.0)
+    if second:
+        q = (kii + dt) - 2.0 * kit
+        q = q if q > 0.0 else tau
+        return -(b * b) / q
+    return -b
+
+
+@_jit
+def pass_low(F, Ki, diag, status, a, m, kii, tau, second, unit_diag, bm):
+    """(best, j, M) over positions t < a in I_low (status bit 2): M = min F[t];
+    j = lowest position minimising the selection value −(m − F[t])²/āᵢₜ (second order;
+    āᵢₜ = Kᵢᵢ + Kₜₜ − 2Kᵢₜ, τ if ≤ 0; Fan, Chen & Lin 2005, WSS 2) or −(m − F[t]) (first
+    order) among F[t] < m; j = −1 if there is none (best ≥ 0).  ``unit_diag``: every
+    Kₜₜ = 1 (RBF), so ``diag`` is not read."""
     nb = (a + BLK - 1) // BLK
     best = np.inf
     big_m = np.inf
@@ -489,14 +558,23 @@ def pass_low(F, Ki, diag, off, a, m, kii, tau, second, bm):
         e = min(a, s + BLK)
         L = e - s
         Fs = F[s:e]
-        Os = off[s:e]
+        Ss = status[s:e]
         bk = np.inf
         mk = np.inf
-        if second:
+        if second and unit_diag:
+            Is = Ki[s:e]
+            for t in range(L):
+                ft = Fs[t] if (Ss[t] & LOW) != 0 else np.inf
+                mk = _fmin(mk, ft)
+                b = _fmax(m - ft, 0.0)
+                q = (kii + 1.0) - 2.0 * Is[t]
+                q = q if q > 0.0 else tau
+                bk = _fmin(bk, -(b * b) / q)
+        elif second:
             Is = Ki[s:e]
             Ds = diag[s:e]
             for t in range(L):
-                ft = Fs[t] + Os[t]
+                ft = Fs[t] if (Ss[t] & LOW) != 0 else np.inf
                 mk = _fmin(mk, ft)
                 b = _fmax(m - ft, 0.0)
                 q = (kii + Ds[t]) - 2.0 * Is[t]
@@ -504,7 +582,7 @@ def pass_low(F, Ki, diag, off, a, m, kii, tau, second, bm):
                 bk = _fmin(bk, -(b * b) / q)
         else:
             for t in range(L):
-                ft = Fs[t] + Os[t]
+                ft = Fs[t] if (Ss[t] & LOW) != 0 else np.inf
                 mk = _fmin(mk, ft)
                 bk = _fmin(bk, -_fmax(m - ft, 0.0))
         bm[k] = bk
@@ -517,16 +595,10 @@ def pass_low(F, Ki, diag, off, a, m, kii, tau, second, bm):
             s = k * BLK
             e = min(a, s + BLK)
             for t in range(s, e):
-                ft = F[t] + off[t]
-                b = _fmax(m - ft, 0.0)
-                if second:
-                    q = (kii + diag[t]) - 2.0 * Ki[t]
-                    q = q if q > 0.0 else tau
-                    v = -(b * b) / q
-                else:
-                    v = -b
-                if v == best:
-                    return best, t, big_m
+                if (status[t] & LOW) != 0:
+                    dt = 1.0 if unit_diag else diag[t]
+                    if _low_value(F[t], m, kii, dt, Ki[t], tau, second) == best:
+                        return best, t, big_m
     return best, -1, big_m
 
 
@@ -534,15 +606,15 @@ def pass_low(F, Ki, diag, off, a, m, kii, tau, second, bm):
 
 
 @_jit
-def smo_run(F, beta, lo, hi, diag, ysign, offup, offlow, perm,
+def smo_run(F, beta, lo, hi, diag, ysign, status, perm,
             gram, rowslot, cache, slot_of, slot_owner, lru_prev, lru_next, slot_stamp, ext_row,
             XK, sq, acc, ibuf, bm, istate, fstate,
             tr_it, tr_i, tr_j, tr_ai, tr_aj, tr_step, tr_obj, tr_viol, tr_act,
             ev_it, ev_kind, ev_val):
     """Run SMO iterations on the active positions until a stop or pause condition.
 
-    Position arrays (n,): F, beta (updated in place), lo, hi, diag, ysign, offup, offlow
-    (0 / −inf and 0 / +inf membership offsets, kept in step with beta), perm (int64).
+    Position arrays (n,): F, beta (updated in place), lo, hi, diag, ysign, status (uint8
+    bits UP / LOW, kept in step with beta), perm (int64).
     Kernel access: Gram rows packed in gram (n, n) with rowslot (n,) (mode 0; see
     :func:`fill_rows`), and, when a < n or in mode 1, the slot cache;
     cache, slot_of, slot_owner, lru_prev, lru_next, slot_stamp: LRU cache of rows over
@@ -559,6 +631,7 @@ def smo_run(F, beta, lo, hi, diag, ysign, offup, offlow, perm,
     level = istate[IS_LEVEL]
     sample = istate[IS_SAMPLE]
     second = istate[IS_SECOND_ORDER] == 1
+    unit_diag = istate[IS_UNIT_DIAG] == 1
     stall_window = istate[IS_STALL_WINDOW]
     tol = fstate[FS_TOL]
     tau = fstate[FS_TAU]
@@ -579,7 +652,7 @@ def smo_run(F, beta, lo, hi, diag, ysign, offup, offlow, perm,
     ret = -1
     while True:
         if phase == 0:
-            m, i = pass_up(F, Ki, Kj, di, dj, offup, a, bm, pending)
+            m, i = pass_up(F, Ki, Kj, di, dj, status, a, bm, pending)
             pending = False
             if ret >= 0:
                 break
@@ -600,7 +673,8 @@ def smo_run(F, beta, lo, hi, diag, ysign, offup, offlow, perm,
             if not ok:
                 ret = RUN_NEED_ROW
                 break
-            best, j, big_m = pass_low(F, Ki, diag, offlow, a, m, diag[i], tau, second, bm)
+            best, j, big_m = pass_low(F, Ki, diag, status, a, m, diag[i], tau, second,
+                                      unit_diag, bm)
             viol = m - big_m
             if j < 0 or viol <= tol:
                 ret = RUN_CONVERGED
@@ -655,10 +729,8 @@ def smo_run(F, beta, lo, hi, diag, ysign, offup, offlow, perm,
         dj = bj_new - bj_old
         beta[i] = bi_new
         beta[j] = bj_new
-        offup[i] = 0.0 if bi_new < hi[i] else -np.inf
-        offlow[i] = 0.0 if bi_new > lo[i] else np.inf
-        offup[j] = 0.0 if bj_new < hi[j] else -np.inf
-        offlow[j] = 0.0 if bj_new > lo[j] else np.inf
+        status[i] = (UP if bi_new < hi[i] else 0) | (LOW if bi_new > lo[i] else 0)
+        status[j] = (UP if bj_new < hi[j] else 0) | (LOW if bj_new > lo[j] else 0)
         # exact change of ½βᵀKβ + qᵀβ for the two-variable step: gᵀd + ½dᵀKd, g = −F
         obj += -(F[i] * di + F[j] * dj) + 0.5 * (diag[i] * di * di + diag[j] * dj * dj
                                                  + 2.0 * kij * di * dj)

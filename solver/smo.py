@@ -11,6 +11,7 @@ the loop in pauses (snapshots, callback, time limit), and builds the result.
 from __future__ import annotations
 
 import math
+import mmap
 import time
 import warnings
 from collections.abc import Callable
@@ -43,6 +44,12 @@ EVENT_KINDS: dict[int, str] = {
 SELECTIONS = ("second_order", "first_order")
 #: a shrink is carried out only when it removes at least this fraction of the active set
 SHRINK_MIN_FRACTION = 0.05
+#: initial row-cache capacity (MB); it grows up to ``cache_mb`` while evicted rows recur
+CACHE_START_MB = 64
+#: default full-Gram budget (MB) when ``kernel_memory_mb`` is not given: the smaller of this
+#: and half the available memory.  Rows are computed when first needed either way; beyond
+#: the budget the LRU row cache is used, which touches less fresh memory.
+DEFAULT_GRAM_MB = 256
 #: τ substituted for non-positive curvature (Fan, Chen & Lin 2005, section 4).
 TAU = 1e-12
 
@@ -138,6 +145,21 @@ def _available_mb() -> float:
     except OSError:
         pass
     return 4096.0
+
+
+def _fresh_array(shape: tuple[int, ...], dtype: np.dtype) -> np.ndarray:
+    """Uninitialised array on its own anonymous private mapping with ordinary pages.
+
+    numpy asks for transparent huge pages on large arrays; on the virtual machines we
+    measured, first-touching huge pages cost 2–3 s/GB against about 0.5 s/GB for ordinary
+    pages, and kernel rows are touched a few at a time.  Pages are touched only when used.
+    """
+    nbytes = int(np.prod(shape)) * np.dtype(dtype).itemsize
+    flags = getattr(mmap, "MAP_PRIVATE", 0) | getattr(mmap, "MAP_ANONYMOUS", 0)
+    if nbytes < 2**22 or not flags:
+        return np.empty(shape, dtype=dtype)
+    buf = mmap.mmap(-1, nbytes, flags=flags)
+    return np.frombuffer(buf, dtype=dtype).reshape(shape)
 
 
 def _new_trace_arrays(level: str, rows: int, events: int) -> dict[str, np.ndarray]:
@@ -243,7 +265,7 @@ class _Engine:
             self.mode = 0
             # rows are computed when first needed and packed in that order, so that only
             # the memory of rows actually used is touched (fresh pages are costly)
-            self.gram = np.empty((n, n), dtype=dtype)
+            self.gram = _fresh_array((n, n), dtype)
             self.rowslot = np.full(n, -1, dtype=np.int64)
             cache_bytes = min(cache_mb * 2**20, 0.1 * n * n * itemsize + 64 * 2**20)
         else:
@@ -254,7 +276,12 @@ class _Engine:
         # row cache over the active positions; slots are re-laid out at each shrink so
         # that shorter rows give more slots
         self.cache_elems = int(max(2 * n, cache_bytes // itemsize))
-        self.cache = np.empty(self.cache_elems, dtype=dtype)
+        self.cache = _fresh_array((self.cache_elems,), dtype)  # pages touched only when used
+        # capacity in use: starts small and doubles while evicted rows are needed again,
+        # since first-touched memory costs more than recomputing a row (see module notes)
+        start = max(2 * n, CACHE_START_MB * 2**20 // itemsize)
+        self.cap_elems = int(min(self.cache_elems, start))
+        self.remisses_seen = 0
         self.slot_of = np.full(n, -1, dtype=np.int64)
         self.slot_owner = np.full(n, -1, dtype=np.int64)
         self.lru_prev = np.full(n, -1, dtype=np.int64)
@@ -289,8 +316,9 @@ class _Engine:
         self.F = -self.q.copy()
         if nz.size:
             self.F -= self.k_times(nz, self.beta[nz], np.arange(n))
-        self.offup = np.where(self.beta < self.hi, 0.0, -np.inf)
-        self.offlow = np.where(self.beta > self.lo, 0.0, np.inf)
+        self.status = (np.where(self.beta < self.hi, _k.UP, 0)
+                       | np.where(self.beta > self.lo, _k.LOW, 0)).astype(np.uint8)
+        self.istate[_k.IS_UNIT_DIAG] = int(bool(np.all(self.diag == 1.0)))
         self.objective0 = 0.5 * float(self.beta @ (-self.F - self.q)) + float(self.q @ self.beta)
         cap = 0 if level == 2 else trace_rows
         self.tr = {name: np.zeros(cap, dtype=dt) for name, dt in _TRACE_COLUMNS}
@@ -310,10 +338,21 @@ class _Engine:
         ist = self.istate
         stride = max(1, self.active)
         ist[_k.IS_STRIDE] = stride
-        ist[_k.IS_SLOTS] = min(self.n, self.cache_elems // stride)
+        ist[_k.IS_SLOTS] = min(self.n, self.cap_elems // stride)
         ist[_k.IS_USED] = 0
         ist[_k.IS_HEAD] = -1
         ist[_k.IS_TAIL] = -1
+
+    def adapt_cache(self, window: int) -> None:
+        """Double the cache capacity when more than 20 % of the row requests of the last
+        ``window`` iterations were for rows evicted earlier (up to ``cache_mb``)."""
+        ist = self.istate
+        rem = int(ist[_k.IS_REMISSES])
+        recent = rem - self.remisses_seen
+        self.remisses_seen = rem
+        if recent > 0.2 * 2 * window and self.cap_elems < self.cache_elems:
+            self.cap_elems = min(self.cache_elems, 2 * self.cap_elems)
+            ist[_k.IS_SLOTS] = min(self.n, self.cap_elems // int(ist[_k.IS_STRIDE]))
 
     def _compact_cache(self, keep: np.ndarray, since: int) -> None:
         """After a shrink to positions ``keep``: rows used since iteration ``since`` move to
@@ -327,7 +366,7 @@ class _Engine:
         _k.compact_cache(self.cache, int(ist[_k.IS_STRIDE]), new_a, survivors, keep, new_a)
         owners = self.slot_owner[survivors].copy()
         st = stamps[survivors].copy()
-        self.slot_of[self.slot_owner[:used][self.slot_owner[:used] >= 0]] = -1
+        self.slot_of[self.slot_owner[:used][self.slot_owner[:used] >= 0]] = -2
         self.slot_owner[:used] = -1
         k = survivors.size
         self.slot_owner[:k] = owners
@@ -344,7 +383,7 @@ class _Engine:
         ist[_k.IS_TAIL] = order[-1] if k else -1
         ist[_k.IS_USED] = k
         ist[_k.IS_STRIDE] = new_a
-        ist[_k.IS_SLOTS] = min(self.n, self.cache_elems // new_a)
+        ist[_k.IS_SLOTS] = min(self.n, self.cap_elems // new_a)
 
     def _ensure_rows(self, rows: np.ndarray) -> None:
         """Gram rows ``rows`` (original indices) computed (full-Gram mode)."""
@@ -393,7 +432,7 @@ class _Engine:
             self.external_rows += 1
 
     # -- positions ------------------------------------------------------------------
-    _POS_ARRAYS = ("F", "beta", "lo", "hi", "diag", "ysign", "offup", "offlow", "perm", "q")
+    _POS_ARRAYS = ("F", "beta", "lo", "hi", "diag", "ysign", "status", "perm", "q")
 
     def _reorder(self, order: np.ndarray) -> None:
         for name in self._POS_ARRAYS:
@@ -417,8 +456,10 @@ class _Engine:
         """(m, M) over positions < a."""
         if a == 0:
             return -np.inf, np.inf
-        return (float(np.max(self.F[:a] + self.offup[:a])),
-                float(np.min(self.F[:a] + self.offlow[:a])))
+        F, st = self.F[:a], self.status[:a]
+        up, low = (st & _k.UP) != 0, (st & _k.LOW) != 0
+        return (float(np.max(F[up])) if up.any() else -np.inf,
+                float(np.min(F[low])) if low.any() else np.inf)
 
     def unshrink(self, it: int) -> None:
         """Reconstruct F of the shrunk variables and make every variable active again."""
@@ -432,7 +473,7 @@ class _Engine:
                                np.ascontiguousarray(self.sq[sv]),
                                np.ascontiguousarray(self.beta[sv]), self.q, self.F, self.code,
                                self.fstate[_k.FS_GAMMA], self.fstate[_k.FS_OFFSET],
-                               int(self.istate[_k.IS_DEGREE]), np.zeros(sv.size), self.acc,
+                               int(self.istate[_k.IS_DEGREE]), np.zeros((4, _k.CHUNK)),
                                self.ibuf)
             else:
                 self.F[a:] = -self.q[a:] - self.k_times(self.perm[sv], self.beta[sv],
@@ -457,8 +498,8 @@ class _Engine:
             a = self.active
             m, big_m = self.extremes(a)
         Fa = self.F[:a]
-        in_up = self.offup[:a] == 0.0
-        in_low = self.offlow[:a] == 0.0
+        in_up = (self.status[:a] & _k.UP) != 0
+        in_low = (self.status[:a] & _k.LOW) != 0
         remove = (~in_up & (~in_low | (Fa > m))) | (~in_low & (Fa < big_m))
         k = int(np.count_nonzero(remove))
         # compaction costs about (cached rows) × a copies, so small removals wait
@@ -500,10 +541,9 @@ class _Engine:
     def run(self) -> int:
         tr, ev = self.tr, self.ev
         return int(_k.smo_run(
-            self.F, self.beta, self.lo, self.hi, self.diag, self.ysign, self.offup,
-            self.offlow, self.perm, self.gram, self.rowslot, self.cache, self.slot_of,
-            self.slot_owner, self.lru_prev, self.lru_next, self.slot_stamp, self.ext_row,
-            self.XK, self.sq,
+            self.F, self.beta, self.lo, self.hi, self.diag, self.ysign, self.status,
+            self.perm, self.gram, self.rowslot, self.cache, self.slot_of, self.slot_owner,
+            self.lru_prev, self.lru_next, self.slot_stamp, self.ext_row, self.XK, self.sq,
             self.acc, self.ibuf, self.bm, self.istate, self.fstate,
             tr["iteration"], tr["i"], tr["j"], tr["alpha_i"], tr["alpha_j"], tr["step"],
             tr["objective"], tr["violation"], tr["active"],
@@ -537,7 +577,7 @@ def _warm_up(dtype: np.dtype) -> float:
     eng.unshrink(1)
     _k.compact_cache(eng.cache, 3, 3, np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.int64), 0)
     _k.reconstruct(eng.XK, eng.sq, np.zeros(0, dtype=np.int64), eng.XK, eng.sq, eng.beta, eng.q,
-                   eng.F.copy(), _k.KERNEL_RBF, 1.0, 0.0, 1, np.zeros(3), eng.acc, eng.ibuf)
+                   eng.F.copy(), _k.KERNEL_RBF, 1.0, 0.0, 1, np.zeros((4, _k.CHUNK)), eng.ibuf)
     _compiled.add(key)
     return time.perf_counter() - t0
 
@@ -577,11 +617,13 @@ def solve_smo(
         iteration plus every iteration with an event) or ``"off"``.
     snapshot_every : store α every this many iterations (and at the end); default
         max(1000, n).
-    kernel_memory_mb : budget for the full Gram matrix (MB); default half the available
-        memory.  Within budget, Gram rows are computed on first use and kept; beyond it,
-        an LRU cache of rows over the active variables (``cache_mb``) is used.
+    kernel_memory_mb : budget for the full Gram matrix (MB); default the smaller of
+        ``DEFAULT_GRAM_MB`` and half the available memory.  Within budget the Gram is
+        stored, each row computed when first needed; beyond it, an LRU cache of rows over
+        the active variables (at most ``cache_mb``) is used.
     kernel_dtype : ``"float64"`` or ``"float32"`` kernel storage (arithmetic in float64).
-    cache_mb : row-cache size in MB.
+    cache_mb : largest row-cache size in MB (the cache starts at ``CACHE_START_MB`` and
+        doubles while evicted rows are requested again).
     alpha0 : feasible warm start (n,) (see :func:`repair_start`); default the problem's
         feasible start (α = 0 for classification).
     callback : called every ``callback_every`` iterations with a dict of ``iteration``,
@@ -629,7 +671,8 @@ def solve_smo(
     if snapshot_every is None:
         snapshot_every = max(1000, n)
     kernel_memory_mb = _positive_float(kernel_memory_mb, "kernel_memory_mb", allow_none=True)
-    budget_mb = kernel_memory_mb if kernel_memory_mb is not None else 0.5 * _available_mb()
+    budget_mb = (kernel_memory_mb if kernel_memory_mb is not None
+                 else min(DEFAULT_GRAM_MB, 0.5 * _available_mb()))
     if kernel_dtype not in ("float64", "float32"):
         raise InvalidInputError(
             f"option kernel_dtype must be 'float64' or 'float32', got {kernel_dtype!r}")
@@ -642,18 +685,92 @@ def solve_smo(
         stall_window = max(1_000_000, 10 * n)
     alpha = problem.feasible_start() if alpha0 is None else _check_start(problem, alpha0)
     dtype = np.dtype(kernel_dtype)
+    cfg = dict(tol=tol, max_iter=max_iter, time_limit=time_limit, selection=selection,
+               shrinking=bool(shrinking), trace=trace, sample_every=sample_every,
+               snapshot_every=snapshot_every, budget_mb=budget_mb, cache_mb=cache_mb,
+               callback=callback, callback_every=callback_every, stall_window=stall_window)
+    ph = _run_phase(problem, alpha, dtype, cfg, t_start)
+    polish_iterations = 0
+    if dtype != np.float64 and ph["status"] == Status.CONVERGED:
+        # float32 kernel storage: the loop's gradient carries rounding of the stored kernel
+        # values, so optimality is checked with the exact float64 gradient and, if needed,
+        # the run continues from the same α with float64 kernel values
+        G = problem.gradient(ph["alpha"])
+        if certify(problem, ph["alpha"], tol=tol, gradient=G).max_violation > tol:
+            cfg2 = dict(cfg, max_iter=max(1, max_iter - ph["iterations"]))
+            ph2 = _run_phase(problem, ph["alpha"], np.dtype(np.float64), cfg2, t_start,
+                             first_iteration=ph["iterations"])
+            polish_iterations = ph2["iterations"] - ph["iterations"]
+            ph = _merge_phases(ph, ph2)
+        else:
+            ph["G"] = G
+    elif dtype != np.float64:
+        ph["G"] = problem.gradient(ph["alpha"])
+    status, detail, alpha, it = ph["status"], ph["detail"], ph["alpha"], ph["iterations"]
+    cert = certify(problem, alpha, tol=tol, gradient=ph["G"])
+    tr = Trace(
+        solver="smo", level=trace, columns=ph["columns"], events=ph["events"],
+        event_kinds=dict(EVENT_KINDS),
+        snapshot_iterations=np.asarray(ph["snap_its"], dtype=np.int64),
+        snapshots=np.vstack(ph["snaps"]), sample_every=sample_every if trace == "sampled" else 1,
+        snapshot_every=snapshot_every,
+    )
+    options = {
+        "tol": tol, "max_iter": max_iter, "time_limit": time_limit, "selection": selection,
+        "shrinking": bool(shrinking), "trace": trace, "sample_every": sample_every,
+        "snapshot_every": snapshot_every, "kernel_memory_mb": float(budget_mb),
+        "kernel_dtype": kernel_dtype, "cache_mb": cache_mb, "warm_start": alpha0 is not None,
+        "callback_every": callback_every, "stall_window": stall_window, "tau": TAU,
+    }
+    extra = dict(ph["extra"])
+    extra["polish_iterations"] = polish_iterations
+    message = status_message(status, detail)
+    if status != Status.CONVERGED:
+        warnings.warn(f"SMO did not converge: {message}", ConvergenceWarning, stacklevel=2)
+    return SolveResult(
+        solver="smo", status=status, message=message, alpha=alpha, bias=cert.bias,
+        iterations=it, certificate=cert, seconds=time.perf_counter() - t_start,
+        options=options, trace=tr, extra=extra,
+    )
 
+
+def _merge_phases(a: dict[str, Any], b: dict[str, Any]) -> dict[str, Any]:
+    """Trace of a float32 phase followed by its float64 continuation (iterations continue)."""
+    out = dict(b)
+    out["columns"] = {k: np.concatenate([a["columns"][k], b["columns"][k]]) for k in a["columns"]}
+    out["events"] = {k: np.concatenate([a["events"][k], b["events"][k]]) for k in a["events"]}
+    out["snap_its"] = list(a["snap_its"]) + list(b["snap_its"][1:])
+    out["snaps"] = list(a["snaps"]) + list(b["snaps"][1:])
+    extra = dict(b["extra"])
+    for key in ("compile_seconds", "setup_seconds", "solve_seconds", "kernel_rows_computed",
+                "cache_hits", "cache_misses", "cache_remisses", "curvature_fixes", "shrinks",
+                "reconstructions"):
+        extra[key] = a["extra"][key] + b["extra"][key]
+    extra["kernel_mode"] = a["extra"]["kernel_mode"]
+    out["extra"] = extra
+    return out
+
+
+def _run_phase(problem: DualProblem, alpha: np.ndarray, dtype: np.dtype, cfg: dict[str, Any],
+               t_start: float, first_iteration: int = 0) -> dict[str, Any]:
+    """Run the loop from ``alpha``; iteration numbers in the trace start after
+    ``first_iteration``.  Returns status, α, full gradient and trace pieces."""
+    n = problem.n
+    tol, max_iter, time_limit = cfg["tol"], cfg["max_iter"], cfg["time_limit"]
+    snapshot_every, callback = cfg["snapshot_every"], cfg["callback"]
+    callback_every, stall_window = cfg["callback_every"], cfg["stall_window"]
     compile_seconds = _warm_up(dtype)
     t_setup = time.perf_counter()
-    level = {"full": 0, "sampled": 1, "off": 2}[trace]
-    eng = _Engine(problem, alpha, dtype=dtype, budget_mb=budget_mb, cache_mb=cache_mb,
-                  level=level, trace_rows=min(max_iter, max(4096, 4 * n)))
+    level = {"full": 0, "sampled": 1, "off": 2}[cfg["trace"]]
+    eng = _Engine(problem, alpha, dtype=dtype, budget_mb=cfg["budget_mb"],
+                  cache_mb=cfg["cache_mb"], level=level,
+                  trace_rows=min(max_iter, max(4096, 4 * n)))
     ist, fst = eng.istate, eng.fstate
-    ist[_k.IS_SAMPLE] = sample_every
-    ist[_k.IS_SECOND_ORDER] = 1 if selection == "second_order" else 0
+    ist[_k.IS_SAMPLE] = cfg["sample_every"]
+    ist[_k.IS_SECOND_ORDER] = 1 if cfg["selection"] == "second_order" else 0
     ist[_k.IS_STALL_WINDOW] = stall_window
-    shrink_every = min(n, 1000)
-    ist[_k.IS_SHRINK_AT] = shrink_every if shrinking else np.iinfo(np.int64).max
+    shrink_every = min(n, 1000)  # also the period of cache adaptation
+    ist[_k.IS_SHRINK_AT] = shrink_every
     fst[_k.FS_OBJ] = eng.objective0
     fst[_k.FS_BEST_OBJ] = eng.objective0
     fst[_k.FS_TOL] = tol
@@ -675,7 +792,7 @@ def solve_smo(
         if time_limit is not None:
             stop = min(stop, it + chunk)
         ist[_k.IS_STOP_AT] = stop
-        t_run = time.perf_counter()
+        t_run, it_run = time.perf_counter(), it
         code = eng.run()
         it = int(ist[_k.IS_ITER])
         if code == _k.RUN_TRACE_FULL:
@@ -685,44 +802,47 @@ def solve_smo(
             eng.supply_row()
             continue
         if code == _k.RUN_SHRINK:
-            eng.shrink(it, tol)
+            eng.adapt_cache(shrink_every)
+            if cfg["shrinking"]:
+                eng.shrink(it, tol)
             ist[_k.IS_SHRINK_AT] = it + shrink_every
             continue
         if code == _k.RUN_CONVERGED:
             if eng.active < n:  # final test on all variables (Fan, Chen & Lin 2005, sec. 5)
                 eng.unshrink(it)
-                if shrinking:
-                    ist[_k.IS_SHRINK_AT] = it + shrink_every
+                ist[_k.IS_SHRINK_AT] = it + shrink_every
                 continue
             status = Status.CONVERGED
             break
         if code == _k.RUN_NUMERICAL:
-            status, detail = Status.NUMERICAL_ERROR, f"non-finite objective at iteration {it}"
+            status = Status.NUMERICAL_ERROR
+            detail = f"non-finite objective at iteration {it + first_iteration}"
             break
         if code == _k.RUN_STALLED:
             status = Status.STALLED
             detail = f"no objective decrease in {stall_window} iterations"
             break
         # pause
-        if time_limit is not None:
-            per_it = (time.perf_counter() - t_run) / max(1, it - (stop - chunk))
+        if time_limit is not None and it > it_run:
+            per_it = (time.perf_counter() - t_run) / (it - it_run)
             chunk = int(min(100_000, max(100, 0.05 / max(per_it, 1e-9))))
         if it % snapshot_every == 0 and it > snap_its[-1]:
             snap_its.append(it)
             snaps.append(eng.alpha())
         if it >= max_iter:
-            status, detail = Status.ITERATION_LIMIT, f"{max_iter} iterations"
+            status, detail = Status.ITERATION_LIMIT, f"{max_iter + first_iteration} iterations"
             break
         if next_cb is not None and it >= next_cb:
             next_cb += callback_every
-            info = {"iteration": it, "violation": float(fst[_k.FS_VIOL]), "tol": tol,
-                    "active": eng.active, "objective": float(fst[_k.FS_OBJ])}
+            info = {"iteration": it + first_iteration, "violation": float(fst[_k.FS_VIOL]),
+                    "tol": tol, "active": eng.active, "objective": float(fst[_k.FS_OBJ])}
             try:
                 stop_now = callback(info)
             except StopIteration:
                 stop_now = True
             if stop_now is True:
-                status, detail = Status.STOPPED_BY_CALLBACK, f"at iteration {it}"
+                status = Status.STOPPED_BY_CALLBACK
+                detail = f"at iteration {it + first_iteration}"
                 break
         if time_limit is not None and time.perf_counter() - t_start > time_limit:
             status, detail = Status.TIME_LIMIT, f"{time_limit:g} s"
@@ -735,26 +855,11 @@ def solve_smo(
     if snap_its[-1] != it:
         snap_its.append(it)
         snaps.append(alpha.copy())
-    G = eng.gradient()
-    if dtype != np.float64:  # the certificate uses the exact float64 gradient
-        G = problem.gradient(alpha)
-    cert = certify(problem, alpha, tol=tol, gradient=G)
     rows, evs = int(ist[_k.IS_ROWS]), int(ist[_k.IS_EVENTS])
     columns = {name: eng.tr[name][:rows].copy() for name, _ in _TRACE_COLUMNS}
-    tr = Trace(
-        solver="smo", level=trace, columns=columns,
-        events={name: eng.ev[name][:evs].copy() for name in ("iteration", "kind", "value")},
-        event_kinds=dict(EVENT_KINDS), snapshot_iterations=np.asarray(snap_its, dtype=np.int64),
-        snapshots=np.vstack(snaps), sample_every=sample_every if trace == "sampled" else 1,
-        snapshot_every=snapshot_every,
-    )
-    options = {
-        "tol": tol, "max_iter": max_iter, "time_limit": time_limit, "selection": selection,
-        "shrinking": bool(shrinking), "trace": trace, "sample_every": sample_every,
-        "snapshot_every": snapshot_every, "kernel_memory_mb": float(budget_mb),
-        "kernel_dtype": kernel_dtype, "cache_mb": cache_mb, "warm_start": alpha0 is not None,
-        "callback_every": callback_every, "stall_window": stall_window, "tau": TAU,
-    }
+    events = {name: eng.ev[name][:evs].copy() for name in ("iteration", "kind", "value")}
+    columns["iteration"] += first_iteration
+    events["iteration"] += first_iteration
     extra = {
         "kernel_mode": "full_gram" if eng.mode == 0 else "column_cache",
         "kernel_source": "precomputed" if eng.precomputed else (
@@ -763,16 +868,12 @@ def solve_smo(
         "solve_seconds": solve_seconds,
         "kernel_rows_computed": int(ist[_k.IS_ROW_EVALS]) + eng.external_rows,
         "cache_hits": int(ist[_k.IS_HITS]), "cache_misses": int(ist[_k.IS_MISSES]),
-        "cache_slots": int(ist[_k.IS_SLOTS]),
+        "cache_remisses": int(ist[_k.IS_REMISSES]),
+        "cache_capacity_mb": eng.cap_elems * dtype.itemsize / 2**20,
         "curvature_fixes": int(ist[_k.IS_CURV_FIXES]), "shrinks": eng.shrinks,
         "reconstructions": eng.reconstructions,
         "loop_violation": float(fst[_k.FS_VIOL]), "loop_objective": float(fst[_k.FS_OBJ]),
     }
-    message = status_message(status, detail)
-    if status != Status.CONVERGED:
-        warnings.warn(f"SMO did not converge: {message}", ConvergenceWarning, stacklevel=2)
-    return SolveResult(
-        solver="smo", status=status, message=message, alpha=alpha, bias=cert.bias,
-        iterations=it, certificate=cert, seconds=time.perf_counter() - t_start,
-        options=options, trace=tr, extra=extra,
-    )
+    return {"status": status, "detail": detail, "alpha": alpha, "G": eng.gradient(),
+            "iterations": it + first_iteration, "columns": columns, "events": events,
+            "snap_its": [v + first_iteration for v in snap_its], "snaps": snaps, "extra": extra}

@@ -121,3 +121,205 @@ def test_infeasible_warm_start(problem):
         solve_smo(problem, alpha0=a)
     with pytest.raises(InvalidInputError, match="entries"):
         solve_smo(problem, alpha0=np.zeros(3))
+
+
+def test_sampled_and_off_trace_levels(problem):
+    full = solve_smo(problem, tol=1e-5)
+    samp = solve_smo(problem, tol=1e-5, trace="sampled", sample_every=10)
+    off = solve_smo(problem, tol=1e-5, trace="off")
+    assert np.array_equal(full.alpha, samp.alpha) and np.array_equal(full.alpha, off.alpha)
+    it = samp.trace.columns["iteration"]
+    ev_its = set(samp.trace.events["iteration"].tolist())
+    assert samp.trace.level == "sampled" and samp.trace.sample_every == 10
+    for k in it:  # every recorded row is a multiple of 10 or follows an event
+        assert k % 10 == 0 or k in ev_its or (k - 1) in ev_its
+    assert set(range(10, full.iterations + 1, 10)) <= set(it.tolist())
+    rows = {int(k): r for r, k in enumerate(full.trace.columns["iteration"])}
+    for name in ("i", "j", "alpha_i", "objective", "violation"):
+        assert np.array_equal(samp.trace.columns[name],
+                              full.trace.columns[name][[rows[int(k)] for k in it]])
+    assert off.trace.n_rows == 0 and off.trace.snapshots.shape[0] >= 2
+    assert np.array_equal(off.trace.snapshots[-1], off.alpha)
+
+
+def test_time_limit(rng):
+    X, lab = _blobs(rng, n=1500, d=5, shift=0.3)
+    prob = binary_classification(X, lab, kernel=make_kernel("rbf", gamma=0.5), C=100.0)
+    with pytest.warns(ConvergenceWarning, match="wall-clock"):
+        r = solve_smo(prob, tol=1e-12, time_limit=0.05, trace="off")
+    assert r.status == Status.TIME_LIMIT and r.seconds < 5.0
+    assert r.certificate.max_violation > 1e-12
+
+
+def test_stall_window(rng):
+    # near the optimum with a tolerance below rounding, steps stop decreasing the objective
+    X, lab = _blobs(rng, n=60, d=2, shift=0.5)
+    prob = binary_classification(X, lab, kernel=make_kernel("rbf", gamma=1.0), C=10.0)
+    with pytest.warns(ConvergenceWarning, match="did not decrease"):
+        r = solve_smo(prob, tol=1e-300, stall_window=50, trace="off")
+    assert r.status == Status.STALLED
+    assert r.certificate.max_violation <= 1e-6  # it got as close as rounding allows
+
+
+def test_curvature_fix_recorded_for_duplicate_points(rng):
+    # identical rows with opposite labels give aᵢⱼ = Kᵢᵢ + Kⱼⱼ − 2Kᵢⱼ = 0 (Fan, Chen & Lin
+    # 2005, sec. 4: τ replaces a non-positive curvature)
+    X, lab = _blobs(rng, n=40, d=2)
+    X = np.vstack([X, X[:5]])
+    lab = np.concatenate([lab, -lab[:5]])
+    prob = binary_classification(X, lab, kernel=make_kernel("rbf", gamma=0.5), C=1.0)
+    r = solve_smo(prob, tol=1e-6)
+    assert r.success and r.certificate.max_violation <= 1e-6
+    kinds = r.trace.events["kind"]
+    assert r.extra["curvature_fixes"] >= 1
+    assert np.sum(kinds == 3) == r.extra["curvature_fixes"] and EVENT_KINDS[3] == "curvature_fix"
+    assert np.all(r.trace.events["value"][kinds == 3] <= 0.0)
+
+
+def test_indefinite_sigmoid_kernel_converges(rng):
+    X, lab = _blobs(rng, n=80, d=3)
+    prob = binary_classification(X, lab, kernel=make_kernel("sigmoid", gamma=0.5, offset=-1.0),
+                                 C=1.0)
+    r = solve_smo(prob, tol=1e-4)
+    assert r.status in (Status.CONVERGED, Status.STALLED)
+    if r.success:
+        assert r.certificate.max_violation <= 1e-4
+
+
+def test_numerical_error_status(rng):
+    from solver.kernels import CallableKernel
+
+    X, lab = _blobs(rng, n=20, d=2)
+    huge = CallableKernel(func=lambda A, B: np.full((A.shape[0], B.shape[0]), 1e308)
+                          + np.eye(A.shape[0], B.shape[0]) * 1e307)
+    prob = binary_classification(X, lab, kernel=huge, C=1e300)
+    with pytest.warns(ConvergenceWarning, match="non-finite"):
+        r = solve_smo(prob)
+    assert r.status == Status.NUMERICAL_ERROR
+
+
+def test_kernel_modes_give_identical_runs(problem):
+    full = solve_smo(problem, tol=1e-5)
+    cached = solve_smo(problem, tol=1e-5, kernel_memory_mb=0.01, cache_mb=0.02)
+    assert full.extra["kernel_mode"] == "full_gram"
+    assert cached.extra["kernel_mode"] == "column_cache"
+    assert cached.extra["cache_misses"] > 0
+    assert np.array_equal(full.alpha, cached.alpha)
+    assert np.array_equal(full.trace.columns["i"], cached.trace.columns["i"])
+
+
+@pytest.mark.parametrize("memory", [None, 0.01])
+def test_python_and_precomputed_kernels(problem, memory):
+    from solver.kernels import CallableKernel, PrecomputedKernel
+    from solver.problem import DualProblem, index_features
+
+    ref = solve_smo(problem, tol=1e-6)
+    func = CallableKernel(func=lambda A, B: make_kernel("rbf", gamma=0.5).block(A, B))
+    gram = make_kernel("rbf", gamma=0.5).block(problem.X, problem.X)
+    pre = PrecomputedKernel(gram_matrix=gram)
+    for kern, X in ((func, problem.X), (pre, index_features(problem.n))):
+        prob = DualProblem(X=X, y=problem.y, p=problem.p, lower=problem.lower,
+                           upper=problem.upper, delta=0.0, kernel=kern, kind="t", info={})
+        r = solve_smo(prob, tol=1e-6, kernel_memory_mb=memory, cache_mb=0.02)
+        assert r.success
+        assert r.certificate.dual_objective == pytest.approx(ref.certificate.dual_objective,
+                                                            rel=1e-9)
+        assert np.max(np.abs(r.alpha - ref.alpha)) <= 1e-4
+
+
+def test_general_dual_with_lower_bounds_and_delta(rng):
+    # a general instance of the dual: l > 0, Δ ≠ 0, random p (e.g. the ε-regression form)
+    from solver.problem import DualProblem
+
+    n = 50
+    X = rng.normal(size=(n, 3))
+    y = np.where(rng.random(n) < 0.5, 1.0, -1.0)
+    lo = rng.uniform(0.0, 0.2, n)
+    up = lo + rng.uniform(0.5, 2.0, n)
+    prob = DualProblem(X=X, y=y, p=rng.normal(size=n), lower=lo, upper=up, delta=0.7,
+                       kernel=make_kernel("rbf", gamma=0.3), kind="general", info={})
+    r = solve_smo(prob, tol=1e-8)
+    assert r.success and r.certificate.max_violation <= 1e-8
+    assert np.all(r.alpha >= lo) and np.all(r.alpha <= up)
+    assert abs(y @ r.alpha - 0.7) <= 1e-10
+    # no feasible direction decreases the objective: compare with a projected-gradient check
+    assert r.certificate.dual_objective == pytest.approx(prob.objective(r.alpha), rel=1e-10)
+
+
+def test_leave_one_out_warm_start(problem):
+    # the pattern used for leave-one-out refits: bound of one row set to 0, warm start
+    from solver.problem import DualProblem
+    from solver.smo import repair_start
+
+    full = solve_smo(problem, tol=1e-6)
+    k = int(np.flatnonzero(full.alpha > 0)[0])
+    up = problem.upper.copy()
+    up[k] = 0.0
+    loo = DualProblem(X=problem.X, y=problem.y, p=problem.p, lower=problem.lower, upper=up,
+                      delta=0.0, kernel=problem.kernel, kind=problem.kind, info=problem.info)
+    with pytest.raises(InvalidInputError, match="infeasible"):
+        solve_smo(loo, alpha0=full.alpha)
+    start = repair_start(loo, full.alpha)
+    assert start[k] == 0.0 and abs(loo.y @ start) <= 1e-12
+    warm = solve_smo(loo, tol=1e-6, alpha0=start)
+    cold = solve_smo(loo, tol=1e-6)
+    assert warm.success and warm.alpha[k] == 0.0
+    assert warm.options["warm_start"] is True
+    assert warm.iterations < cold.iterations
+    assert warm.certificate.dual_objective == pytest.approx(cold.certificate.dual_objective,
+                                                           rel=1e-6)
+
+
+def test_float32_kernel_storage_keeps_certificate(rng):
+    X, lab = _blobs(rng, n=400, d=4, shift=0.5)
+    for C in (1.0, 1000.0):
+        prob = binary_classification(X, lab, kernel=make_kernel("rbf", gamma=0.2), C=C)
+        r32 = solve_smo(prob, tol=1e-4, kernel_dtype="float32")
+        r64 = solve_smo(prob, tol=1e-4)
+        assert r32.success and r32.options["kernel_dtype"] == "float32"
+        # certificate computed from the exact float64 gradient
+        exact = problem_violation(prob, r32.alpha)
+        assert exact == pytest.approx(r32.certificate.max_violation, rel=1e-6, abs=1e-10)
+        assert r32.certificate.max_violation <= 1e-4
+        assert r32.certificate.dual_objective == pytest.approx(r64.certificate.dual_objective,
+                                                              rel=1e-6)
+        for k, it in enumerate(r32.trace.snapshot_iterations):
+            assert np.array_equal(replay_alpha(r32.trace, int(it)), r32.trace.snapshots[k])
+
+
+def problem_violation(prob, alpha) -> float:
+    from solver.certificate import certify
+
+    return certify(prob, alpha, tol=1.0).max_violation
+
+
+def test_options_resolved_as_plain_data(problem):
+    import json
+
+    r = solve_smo(problem)
+    expected = {"tol", "max_iter", "time_limit", "selection", "shrinking", "trace",
+                "sample_every", "snapshot_every", "kernel_memory_mb", "kernel_dtype",
+                "cache_mb", "warm_start", "callback_every", "stall_window", "tau"}
+    assert expected <= set(r.options)
+    json.dumps(dict(r.options))
+    json.dumps({k: v for k, v in r.extra.items()})
+    assert r.options["max_iter"] == max(10_000_000, 100 * problem.n)
+    assert r.solver == "smo" and r.message.startswith("optimality test met")
+
+
+def test_callback_stop_iteration(problem):
+    def cb(info):
+        raise StopIteration
+
+    with pytest.warns(ConvergenceWarning, match="callback"):
+        r = solve_smo(problem, tol=1e-12, callback=cb, callback_every=2)
+    assert r.status == Status.STOPPED_BY_CALLBACK and r.iterations == 2
+    # the certificate is still that of the returned α
+    assert r.certificate.max_violation > 1e-12
+
+
+def test_registry_dispatch(problem):
+    from solver.solvers import solve
+
+    r = solve(problem, method="smo", tol=1e-4)
+    assert r.solver == "smo" and r.success
