@@ -146,8 +146,10 @@ else:
 
 
 _jit = njit(cache=True, error_model="numpy")
-# kernel evaluation may fuse multiply-adds (about 1.6x faster exp); the SMO passes and
-# steps do not, so that they match the pure-Python run bit for bit on equal kernel values
+# exp may fuse multiply-adds (about 1.6x faster; its Horner steps fuse only one way, so
+# every inlined copy rounds alike); nothing else does, so that kernel rows are bitwise
+# equal wherever they are computed and the loop matches the pure-Python run bit for bit
+# on equal kernel values
 _jit_fma = njit(cache=True, error_model="numpy", fastmath={"contract"})
 
 # ---------------------------------------------------------------- kernel rows --------
@@ -187,7 +189,7 @@ def exp_inplace(x, ibuf):
         x[t] = x[t] * fb[t]
 
 
-@_jit_fma
+@_jit
 def self_dots(XK, out):
     """out[t] = Σₖ XK[k, t]² with the same summation order as :func:`kernel_row`."""
     d, n = XK.shape
@@ -207,7 +209,7 @@ def self_dots(XK, out):
         out[t] = acc
 
 
-@_jit_fma
+@_jit
 def kernel_row(XS, src, sqi, XK, sq, count, out, code, gamma, offset, degree, acc, ibuf):
     """out[t] = K(x, x_t) for t < count with x = XS[:, src], x_t = XK[:, t] ((d, ·) float64).
 
@@ -248,7 +250,7 @@ def kernel_row(XS, src, sqi, XK, sq, count, out, code, gamma, offset, degree, ac
             o[t] = a[t]
 
 
-@_jit_fma
+@_jit
 def _transform(a, sqi, sqs, code, gamma, offset, degree, ibuf):
     """a[t] ← kernel value from the inner product a[t] = x·x_t (‖x‖² = sqi, ‖x_t‖² = sqs[t])."""
     L = a.shape[0]
@@ -269,7 +271,7 @@ def _transform(a, sqi, sqs, code, gamma, offset, degree, ibuf):
             a[t] = np.tanh(gamma * a[t] + offset)
 
 
-@_jit_fma
+@_jit
 def kernel_diag(XK, sq, out, code, gamma, offset, degree, acc, ibuf):
     """out[t] = K(x_t, x_t) (n,), by the same arithmetic as :func:`kernel_row`."""
     n = XK.shape[1]
@@ -314,12 +316,14 @@ def fill_rows(XK, sq, rows, gram, rowslot, istate, code, gamma, offset, degree, 
     return done
 
 
-@_jit_fma
-def reconstruct(XK, sq, targets, XV, sqv, coef, q, F, code, gamma, offset, degree, acc4, ibuf):
-    """F[t] = −q[t] − Σ_s coef[s] K(x_t, v_s) for t in ``targets`` (columns of XK), with the
-    support points v_s the columns of XV (d, m); acc4 (4, CHUNK) work buffer.  Rebuilds
-    the gradient of shrunk variables without a stored Gram; four targets share each pass
-    over XV."""
+@_jit
+def reconstruct(XK, sq, targets, out_pos, XV, sqv, coef, q, F, code, gamma, offset, degree,
+                acc4, ibuf):
+    """F[p] = −q[p] − Σ_s coef[s] K(x_t, v_s) for the columns t = targets[r] of XK and
+    positions p = out_pos[r], with the support points v_s the columns of XV (d, m);
+    acc4 (4, CHUNK) work buffer.  Rebuilds the gradient from the data (kernel values by
+    the arithmetic of :func:`kernel_row`, so every kernel mode gets the same bits); four
+    targets share each pass over XV."""
     d = XK.shape[0]
     m = XV.shape[1]
     nt = targets.shape[0]
@@ -368,7 +372,7 @@ def reconstruct(XK, sq, targets, XV, sqv, coef, q, F, code, gamma, offset, degre
                     tot += cs[t] * au[t]
                 sums[u] += tot
         for u in range(rb):
-            c = targets[r0 + u]
+            c = out_pos[r0 + u]
             F[c] = -q[c] - sums[u]
 
 

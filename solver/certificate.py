@@ -117,8 +117,9 @@ def certify(
     free = ~(at_lower | at_upper)
     minus_yg = -y * G
     pos = y > 0
-    in_up = (~at_upper & pos) | (~at_lower & ~pos)
-    in_low = (~at_upper & ~pos) | (~at_lower & pos)
+    movable = width > 0.0  # a variable with l = u (e.g. a left-out point) cannot move
+    in_up = ((~at_upper & pos) | (~at_lower & ~pos)) & movable
+    in_low = ((~at_upper & ~pos) | (~at_lower & pos)) & movable
     m_up = float(np.max(minus_yg[in_up])) if np.any(in_up) else -np.inf
     M_low = float(np.min(minus_yg[in_low])) if np.any(in_low) else np.inf
     if np.isfinite(m_up) and np.isfinite(M_low):
@@ -134,6 +135,7 @@ def certify(
     resid = np.where(
         at_lower, np.maximum(0.0, -s), np.where(at_upper, np.maximum(0.0, s), np.abs(s))
     )
+    resid[~movable] = 0.0
     quad = float(alpha @ (G - problem.p))  # αᵀQα
     dual = 0.5 * quad + float(problem.p @ alpha)
     if np.all(lo == 0.0):

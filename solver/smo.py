@@ -312,10 +312,8 @@ class _Engine:
             diag = np.asarray(kern.diag(problem.X), dtype=np.float64)
         self.diag = diag.astype(dtype).astype(np.float64)
         # gradient in the form F = −(Kβ + q)
-        nz = np.flatnonzero(self.beta)
         self.F = -self.q.copy()
-        if nz.size:
-            self.F -= self.k_times(nz, self.beta[nz], np.arange(n))
+        self.rebuild_gradient(np.arange(n, dtype=np.int64))
         self.status = (np.where(self.beta < self.hi, _k.UP, 0)
                        | np.where(self.beta > self.lo, _k.LOW, 0)).astype(np.uint8)
         self.istate[_k.IS_UNIT_DIAG] = int(bool(np.all(self.diag == 1.0)))
@@ -461,23 +459,30 @@ class _Engine:
         return (float(np.max(F[up])) if up.any() else -np.inf,
                 float(np.min(F[low])) if low.any() else np.inf)
 
+    def rebuild_gradient(self, pos: np.ndarray) -> None:
+        """F at positions ``pos`` recomputed as −q − Σ_s β_s K(x_s, ·) over β_s ≠ 0."""
+        sv = np.flatnonzero(self.beta)
+        if sv.size == 0 or pos.size == 0:
+            self.F[pos] = -self.q[pos]
+            return
+        if self.code == _k.KERNEL_EXTERNAL or self.precomputed:
+            self.F[pos] = -self.q[pos] - self.k_times(self.perm[sv], self.beta[sv],
+                                                      self.perm[pos])
+            return
+        # XK columns are original indices in full-Gram mode and positions in row-cache mode
+        cols = self.perm if self.mode == 0 else np.arange(self.n, dtype=np.int64)
+        XV = np.ascontiguousarray(self.XK[:, cols[sv]])
+        _k.reconstruct(self.XK, self.sq, np.ascontiguousarray(cols[pos]), pos, XV,
+                       np.ascontiguousarray(self.sq[cols[sv]]),
+                       np.ascontiguousarray(self.beta[sv]), self.q, self.F, self.code,
+                       self.fstate[_k.FS_GAMMA], self.fstate[_k.FS_OFFSET],
+                       int(self.istate[_k.IS_DEGREE]), np.zeros((4, _k.CHUNK)), self.ibuf)
+
     def unshrink(self, it: int) -> None:
         """Reconstruct F of the shrunk variables and make every variable active again."""
         a, n = self.active, self.n
         if a < n:
-            sv = np.flatnonzero(self.beta)
-            if self.mode == 1 and self.code != _k.KERNEL_EXTERNAL:
-                # kernel rows over the support vectors only; XK is in position order
-                XV = np.ascontiguousarray(self.XK[:, sv])
-                _k.reconstruct(self.XK, self.sq, np.arange(a, n, dtype=np.int64), XV,
-                               np.ascontiguousarray(self.sq[sv]),
-                               np.ascontiguousarray(self.beta[sv]), self.q, self.F, self.code,
-                               self.fstate[_k.FS_GAMMA], self.fstate[_k.FS_OFFSET],
-                               int(self.istate[_k.IS_DEGREE]), np.zeros((4, _k.CHUNK)),
-                               self.ibuf)
-            else:
-                self.F[a:] = -self.q[a:] - self.k_times(self.perm[sv], self.beta[sv],
-                                                        self.perm[a:])
+            self.rebuild_gradient(np.arange(a, n, dtype=np.int64))
             self._reorder(np.argsort(self.perm, kind="stable"))
             self.active = n
             self.istate[_k.IS_ACTIVE] = n
@@ -576,8 +581,7 @@ def _warm_up(dtype: np.dtype) -> float:
     eng.shrink(1, 1e-3)
     eng.unshrink(1)
     _k.compact_cache(eng.cache, 3, 3, np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.int64), 0)
-    _k.reconstruct(eng.XK, eng.sq, np.zeros(0, dtype=np.int64), eng.XK, eng.sq, eng.beta, eng.q,
-                   eng.F.copy(), _k.KERNEL_RBF, 1.0, 0.0, 1, np.zeros((4, _k.CHUNK)), eng.ibuf)
+    eng.rebuild_gradient(np.arange(3, dtype=np.int64))
     _compiled.add(key)
     return time.perf_counter() - t0
 
