@@ -145,17 +145,15 @@ else:
     _fmin = _llvm_binary("llvm.minnum")
 
 
+# No fast-math contraction anywhere: fused multiply-adds would make the compiled results
+# differ in the last bit from the pure-Python run (NUMBA_DISABLE_JIT=1) and, depending on
+# where a function is inlined, from each other; without them every run is bitwise equal.
 _jit = njit(cache=True, error_model="numpy")
-# exp may fuse multiply-adds (about 1.6x faster; its Horner steps fuse only one way, so
-# every inlined copy rounds alike); nothing else does, so that kernel rows are bitwise
-# equal wherever they are computed and the loop matches the pure-Python run bit for bit
-# on equal kernel values
-_jit_fma = njit(cache=True, error_model="numpy", fastmath={"contract"})
 
 # ---------------------------------------------------------------- kernel rows --------
 
 
-@_jit_fma
+@_jit
 def exp_inplace(x, ibuf):
     """x[t] ← exp(x[t]) for x (L,) float64, x ≤ 709; below −708 the result is exp(−708).
 
