@@ -178,7 +178,7 @@ def test_repeated_calls_do_not_recompile():
     solve_smo(prob)
     counts = {name: len(getattr(K, name).signatures)
               for name in ("smo_run", "pass_up", "pass_low", "kernel_row", "reconstruct")}
-    assert counts["smo_run"] == 1
+    assert counts["smo_run"] <= 2  # float64 and, if a float32 run happened, float32
     rng = np.random.default_rng(11)
     for n, kern in ((30, make_kernel("linear")), (55, make_kernel("poly", gamma=0.1, degree=2)),
                     (40, make_kernel("rbf", gamma=2.0))):
