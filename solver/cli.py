@@ -184,9 +184,9 @@ def _run_block(s: Mapping[str, Any], role: str) -> list[str]:
         + f", C = {_num(s.get('C'))}",
         f"  iterations    {s['iterations']}  in {s['seconds']:.2f} s",
         f"  violation     {_num(s['max_violation'], '.3e')}  (tol {_num(s['tol'], '.1e')})",
-        f"  objectives    dual {_num(s['dual_objective'], '.8g')}, "
+        f"  objectives    dual (minimised) {_num(s['dual_objective'], '.8g')}, "
         f"primal {_num(s['primal_objective'], '.8g')}",
-        f"  duality gap   {_num(s['duality_gap'], '.3e')}  "
+        f"  duality gap   {_num(s['duality_gap'], '.3e')} = primal + dual  "
         f"(relative {_num(s.get('relative_gap'), '.2e')})",
         f"  support       {s['n_support']} of {s['n_rows']} points "
         f"({s['n_free']} on the margin, {s['n_bounded']} at the bound), bias {_num(s['bias'])}",
