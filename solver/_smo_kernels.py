@@ -499,10 +499,10 @@ def _fetch(p, a, perm, gram, rowslot, cache, slot_of, slot_owner, lru_prev, lru_
 
 
 @_jit
-def pass_up(F, Ki, Kj, di, dj, status, a, bm, update):
+def pass_up(F, Ki, Kj, di, dj, status, a, bm, wbuf, update):
     """Optionally F[t] −= Ki[t]·di + Kj[t]·dj, then (m, i): m = max F[t] over t < a in
     I_up (status bit 1) and i its lowest position (−1 if I_up is empty).  bm holds
-    per-block maxima."""
+    per-block maxima, wbuf (BLK,) is work space."""
     nb = (a + BLK - 1) // BLK
     m = -np.inf
     for k in range(nb):
@@ -524,29 +524,23 @@ def pass_up(F, Ki, Kj, di, dj, status, a, bm, update):
     if not m > -np.inf:
         return m, -1
     for k in range(nb):
-        if bm[k] == m:
+        if bm[k] == m:  # first block holding the maximum: locate it there
             s = k * BLK
             e = min(a, s + BLK)
-            for t in range(s, e):
-                if (status[t] & UP) != 0 and F[t] == m:
-                    return m, t
+            L = e - s
+            Fs = F[s:e]
+            Ss = status[s:e]
+            w = wbuf[:L]
+            for t in range(L):
+                w[t] = Fs[t] if (Ss[t] & UP) != 0 else -np.inf
+            for t in range(L):
+                if w[t] == m:
+                    return m, s + t
     return m, -1
 
 
 @_jit
-def _low_value(ft, m, kii, dt, kit, tau, second):
-    """Selection value of candidate t (see :func:`pass_low`); identical arithmetic in the
-    vectorised search and in the scan that locates the winner."""
-    b = _fmax(m - ft, 0.0)
-    if second:
-        q = (kii + dt) - 2.0 * kit
-        q = q if q > 0.0 else tau
-        return -(b * b) / q
-    return -b
-
-
-@_jit
-def pass_low(F, Ki, diag, status, a, m, kii, tau, second, unit_diag, bm):
+def pass_low(F, Ki, diag, status, a, m, kii, tau, second, unit_diag, bm, wbuf):
     """(best, j, M) over positions t < a in I_low (status bit 2): M = min F[t];
     j = lowest position minimising the selection value −(m − F[t])²/āᵢₜ (second order;
     āᵢₜ = Kᵢᵢ + Kₜₜ − 2Kᵢₜ, τ if ≤ 0; Fan, Chen & Lin 2005, WSS 2) or −(m − F[t]) (first
@@ -593,14 +587,37 @@ def pass_low(F, Ki, diag, status, a, m, kii, tau, second, unit_diag, bm):
     if not best < 0.0:
         return best, -1, big_m
     for k in range(nb):
-        if bm[k] == best:
+        if bm[k] == best:  # first block holding the minimum: recompute its values, locate
             s = k * BLK
             e = min(a, s + BLK)
-            for t in range(s, e):
-                if (status[t] & LOW) != 0:
-                    dt = 1.0 if unit_diag else diag[t]
-                    if _low_value(F[t], m, kii, dt, Ki[t], tau, second) == best:
-                        return best, t, big_m
+            L = e - s
+            Fs = F[s:e]
+            Ss = status[s:e]
+            w = wbuf[:L]
+            if second and unit_diag:
+                Is = Ki[s:e]
+                for t in range(L):
+                    ft = Fs[t] if (Ss[t] & LOW) != 0 else np.inf
+                    b = _fmax(m - ft, 0.0)
+                    q = (kii + 1.0) - 2.0 * Is[t]
+                    q = q if q > 0.0 else tau
+                    w[t] = -(b * b) / q
+            elif second:
+                Is = Ki[s:e]
+                Ds = diag[s:e]
+                for t in range(L):
+                    ft = Fs[t] if (Ss[t] & LOW) != 0 else np.inf
+                    b = _fmax(m - ft, 0.0)
+                    q = (kii + Ds[t]) - 2.0 * Is[t]
+                    q = q if q > 0.0 else tau
+                    w[t] = -(b * b) / q
+            else:
+                for t in range(L):
+                    ft = Fs[t] if (Ss[t] & LOW) != 0 else np.inf
+                    w[t] = -_fmax(m - ft, 0.0)
+            for t in range(L):
+                if w[t] == best:
+                    return best, s + t, big_m
     return best, -1, big_m
 
 
@@ -651,10 +668,11 @@ def smo_run(F, beta, lo, hi, diag, ysign, status, perm,
     dj = 0.0
     Ki = cache[0:0]
     Kj = cache[0:0]
+    wbuf = np.empty(BLK)
     ret = -1
     while True:
         if phase == 0:
-            m, i = pass_up(F, Ki, Kj, di, dj, status, a, bm, pending)
+            m, i = pass_up(F, Ki, Kj, di, dj, status, a, bm, wbuf, pending)
             pending = False
             if ret >= 0:
                 break
@@ -676,7 +694,7 @@ def smo_run(F, beta, lo, hi, diag, ysign, status, perm,
                 ret = RUN_NEED_ROW
                 break
             best, j, big_m = pass_low(F, Ki, diag, status, a, m, diag[i], tau, second,
-                                      unit_diag, bm)
+                                      unit_diag, bm, wbuf)
             viol = m - big_m
             if j < 0 or viol <= tol:
                 ret = RUN_CONVERGED

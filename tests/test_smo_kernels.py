@@ -87,7 +87,7 @@ def test_pass_up_and_low_match_direct_search(rng):
     diag = rng.uniform(0.5, 1.5, a)
     bm = np.zeros(a // K.BLK + 2)
     G = F.copy()
-    m, i = K.pass_up(F, Ki, Kj, 0.25, -0.5, status, a, bm, True)
+    m, i = K.pass_up(F, Ki, Kj, 0.25, -0.5, status, a, bm, np.zeros(K.BLK), True)
     G -= Ki * 0.25 + Kj * -0.5
     assert np.array_equal(F, G)
     up = (status & K.UP) != 0
@@ -95,7 +95,8 @@ def test_pass_up_and_low_match_direct_search(rng):
     low = (status & K.LOW) != 0
     for second, unit in ((True, False), (False, False), (True, True)):
         dd = np.ones(a) if unit else diag
-        best, j, big_m = K.pass_low(F, Ki, dd, status, a, m, dd[i], 1e-12, second, unit, bm)
+        best, j, big_m = K.pass_low(F, Ki, dd, status, a, m, dd[i], 1e-12, second, unit, bm,
+                                     np.zeros(K.BLK))
         assert big_m == G[low].min()
         b = np.maximum(m - G, 0.0)
         q = dd[i] + dd - 2.0 * Ki
