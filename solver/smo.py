@@ -699,7 +699,7 @@ def solve_smo(
         # float32 kernel storage: the loop's gradient carries rounding of the stored kernel
         # values, so optimality is checked with the exact float64 gradient and, if needed,
         # the run continues from the same α with float64 kernel values
-        G = problem.gradient(ph["alpha"])
+        G = _exact_gradient(problem, ph["alpha"])
         if certify(problem, ph["alpha"], tol=tol, gradient=G).max_violation > tol:
             cfg2 = dict(cfg, max_iter=max(1, max_iter - ph["iterations"]))
             ph2 = _run_phase(problem, ph["alpha"], np.dtype(np.float64), cfg2, t_start,
@@ -709,7 +709,7 @@ def solve_smo(
         else:
             ph["G"] = G
     elif dtype != np.float64:
-        ph["G"] = problem.gradient(ph["alpha"])
+        ph["G"] = _exact_gradient(problem, ph["alpha"])
     status, detail, alpha, it = ph["status"], ph["detail"], ph["alpha"], ph["iterations"]
     cert = certify(problem, alpha, tol=tol, gradient=ph["G"])
     tr = Trace(
@@ -736,6 +736,30 @@ def solve_smo(
         iterations=it, certificate=cert, seconds=time.perf_counter() - t_start,
         options=options, trace=tr, extra=extra,
     )
+
+
+def _exact_gradient(problem: DualProblem, alpha: np.ndarray) -> np.ndarray:
+    """G = Qα + p in float64 from the support vectors only (rows of the data)."""
+    sv = np.flatnonzero(alpha != 0.0)
+    code, gamma, offset, degree = _kernel_code(problem.kernel)
+    yb = problem.y * alpha
+    if sv.size == 0:
+        return problem.p.copy()
+    if code == _k.KERNEL_EXTERNAL:
+        out = np.empty(problem.n)
+        for s in range(0, problem.n, 1024):
+            blk = problem.kernel_block(slice(s, s + 1024), sv)
+            out[s:s + 1024] = blk @ yb[sv]
+        return problem.y * out + problem.p
+    XK = np.ascontiguousarray(problem.X.T)
+    sq = np.zeros(problem.n)
+    _k.self_dots(XK, sq)
+    F = np.zeros(problem.n)
+    allpos = np.arange(problem.n, dtype=np.int64)
+    _k.reconstruct(XK, sq, allpos, allpos, np.ascontiguousarray(XK[:, sv]), sq[sv],
+                   np.ascontiguousarray(yb[sv]), np.zeros(problem.n), F, code, gamma, offset,
+                   degree, np.zeros((4, _k.CHUNK)), np.zeros(_k.CHUNK, dtype=np.int64))
+    return problem.y * (-F) + problem.p  # F = −Kβ here (q = 0)
 
 
 def _merge_phases(a: dict[str, Any], b: dict[str, Any]) -> dict[str, Any]:

@@ -10,7 +10,10 @@ Every measured fit runs in its own fresh process (so peak memory is per fit and 
 faults are paid by each), one after the other, never in parallel.  Times are wall-clock
 seconds and CPU seconds (user + system of that process); on a shared machine the CPU
 ratio is the steadier figure.  "end to end" for kktrace is everything ``solve_smo`` does
-(kernel rows + solve + trace + certificate) with the compiled code already on disk.
+(kernel rows + solve + full trace + certificate) with default options and the compiled
+code already on disk; the numba compile time is measured separately (cold: empty
+NUMBA_CACHE_DIR in a fresh process; warm: loading from that cache in another).  Finally
+the largest size is fitted once more with the full Gram forced, for the memory target.
 
 Usage::
 
@@ -45,9 +48,11 @@ columns: svc s / smo s = wall seconds end to end; cpu = CPU seconds (user + syst
   (1st-ord: kktrace with first-order selection, '+' = stopped at its time limit);
   rel dobj = |D_kktrace - D_svc| / |D_svc|, both objectives recomputed from alpha in float64;
   max |df| = largest decision-value difference on the training points; pred diff = points
-  whose predicted label differs (all / those with |f| >= 1e-3 for both); trace ovh = solve
-  time with full trace vs trace off, minus 1; peak MB = peak resident memory of the kktrace
-  process (Python, numpy, scikit-learn, data included); limit = 1.25*8n^2 bytes + 400 MB."""
+  whose predicted label differs (all / those with |f| >= 1e-3 for both); trace ovh = loop
+  time with full trace vs trace off, minus 1 (best of two each, in one warmed process);
+  peak MB = peak resident memory of the kktrace process (Python, numpy, scikit-learn and
+  data included); limit = 1.25*8n^2 bytes + 400 MB; mode = kernel access chosen by default
+  (full_gram up to solver.smo.DEFAULT_GRAM_MB, else column_cache)."""
 
 
 def _data(n: int) -> tuple[np.ndarray, np.ndarray]:
@@ -102,6 +107,21 @@ def child(args: argparse.Namespace) -> None:
         options = dict(tol=TOL, trace=args.trace, selection=args.selection)
         if args.time_limit:
             options["time_limit"] = args.time_limit
+        if args.kernel_memory_mb:
+            options["kernel_memory_mb"] = args.kernel_memory_mb
+        if args.overhead:
+            # tracing overhead in one process: warm-up, then off / full alternately
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                solve_smo(prob, **dict(options, trace="off"))
+                best = {"off": np.inf, "full": np.inf}
+                for _ in range(2):
+                    for level in ("off", "full"):
+                        r = solve_smo(prob, **dict(options, trace=level))
+                        best[level] = min(best[level], r.extra["solve_seconds"])
+            out.update(off=best["off"], full=best["full"])
+            print("RESULT " + json.dumps(out))
+            return
         with warnings.catch_warnings():
             warnings.simplefilter("ignore")
             t0, c0 = time.perf_counter(), _cpu()
@@ -120,14 +140,18 @@ def child(args: argparse.Namespace) -> None:
 
 
 def _run_child(n: int, C: float, who: str, *, trace: str = "full", selection: str = "second_order",
-               values: bool = False, time_limit: float | None = None,
-               env: dict | None = None) -> dict:
+               values: bool = False, time_limit: float | None = None, overhead: bool = False,
+               kernel_memory_mb: float | None = None, env: dict | None = None) -> dict:
     cmd = [sys.executable, os.path.abspath(__file__), "--child", who, "--n", str(n), "--C", str(C),
            "--trace", trace, "--selection", selection]
     if values:
         cmd.append("--values")
+    if overhead:
+        cmd.append("--overhead")
     if time_limit:
         cmd += ["--time-limit", str(time_limit)]
+    if kernel_memory_mb:
+        cmd += ["--kernel-memory-mb", str(kernel_memory_mb)]
     proc = subprocess.run(cmd, capture_output=True, text=True, env=env or os.environ.copy(),
                           check=False)
     for line in proc.stdout.splitlines():
@@ -168,6 +192,10 @@ def main(argv: list[str] | None = None) -> None:
     ap.add_argument("--selection", default="second_order")
     ap.add_argument("--values", action="store_true")
     ap.add_argument("--time-limit", type=float, default=None)
+    ap.add_argument("--overhead", action="store_true")
+    ap.add_argument("--kernel-memory-mb", type=float, default=None)
+    ap.add_argument("--no-full-gram-check", action="store_true",
+                    help="skip the forced full-Gram fits (peak memory in full-Gram mode)")
     args = ap.parse_args(argv)
     if args.child:
         child(args)
@@ -198,8 +226,7 @@ def main(argv: list[str] | None = None) -> None:
                       key=lambda r: r["wall"])
             fulls = [_run_child(n, C, "smo", values=True) for _ in range(args.repeat)]
             full = min(fulls, key=lambda r: r["wall"])
-            off = min((_run_child(n, C, "smo", trace="off") for _ in range(args.repeat)),
-                      key=lambda r: r["wall"])
+            ovh_run = _run_child(n, C, "smo", overhead=True)
             first = None
             if args.first_order_limit > 0:
                 first = _run_child(n, C, "smo", trace="off", selection="first_order",
@@ -219,7 +246,7 @@ def main(argv: list[str] | None = None) -> None:
             pred_diff_big = int(np.sum(differ & (np.minimum(np.abs(f_s), np.abs(f_k)) >= 1e-3)))
             ratio = full["wall"] / svc["wall"]
             cratio = full["cpu"] / svc["cpu"]
-            ovh = full["extra"]["solve_seconds"] / off["extra"]["solve_seconds"] - 1.0
+            ovh = ovh_run["full"] / ovh_run["off"] - 1.0
             limit = (1.25 * 8 * n * n) / 2**20 + 400
             peak = full["peak_mb"]
             fo = "-" if first is None else (
@@ -243,6 +270,21 @@ def main(argv: list[str] | None = None) -> None:
     print(f"max rel dual-objective difference {max(s[4] for s in summary):.1e} [target <= 1e-6]; "
           f"predictions differing with |f| >= 1e-3: {sum(s[5] for s in summary)}")
     print(f"peak memory within limit in every case: {all(s[6] <= s[7] for s in summary)}")
+    if not args.no_full_gram_check:
+        # the default keeps the full Gram only up to DEFAULT_GRAM_MB; force it for the
+        # memory target "full-Gram float64 mode <= 1.25 * 8 n^2 bytes + 400 MB"
+        print()
+        print("forced full-Gram float64 mode (kernel_memory_mb=1e6), full trace:")
+        for n in sorted(set(args.sizes))[-1:]:
+            for C in args.Cs:
+                fg = _run_child(n, C, "smo", kernel_memory_mb=1e6)
+                svc = next(s[9] for s in summary if s[0] == n and s[1] == C)
+                limit = (1.25 * 8 * n * n) / 2**20 + 400
+                print(f"  n={n} C={C:g}: {fg['wall']:.2f} s wall ({fg['cpu']:.2f} s CPU), "
+                      f"ratio to SVC {fg['wall'] / svc['wall']:.2f}, {fg['iterations']} it, "
+                      f"{fg['extra']['kernel_rows_computed']} Gram rows computed, peak "
+                      f"{fg['peak_mb']:.0f} MB [limit {limit:.0f} MB], "
+                      f"mode {fg['extra']['kernel_mode']}", flush=True)
     print(f"load average at end {os.getloadavg()[0]:.1f}")
 
 
