@@ -5,7 +5,21 @@ second-order gain (Fan, Chen & Lin, JMLR 6, 2005, WSS 2, the default); non-posit
 curvature aᵢⱼ ≤ 0 is replaced by τ = 1e-12 as in that paper (section 4) and recorded as an
 event.  Stopping test: maximal violation m(α) − M(α) ≤ tol.  The numerical loop lives in
 :mod:`solver._smo_kernels`; this module validates options, prepares kernel access, runs
-the loop in pauses (snapshots, callback, time limit), and builds the result.
+the loop in pauses (snapshots, callback, time limit, shrinking), and builds the result.
+
+Kernel access.  Kernel rows are computed from the data when first needed (compiled code
+for the built-in kernels, the kernel's own ``block`` otherwise).  When the n×n Gram fits
+the budget (``kernel_memory_mb``) each row is kept once computed ("full_gram"); otherwise
+an LRU cache of rows over the active variables is used ("column_cache").  Both give the
+same bits for the built-in kernels.  Memory is taken on ordinary pages and only touched
+when used: on the shared virtual machines this was measured on, first-touching memory
+cost 0.5 s/GB (ordinary pages) to 3 s/GB (huge pages), more than recomputing a kernel row
+costs, which is why the default Gram budget is small and the cache grows only while
+evicted rows keep being requested.
+
+Trace.  Row k of the trace describes the state after iteration k (1-based); α at any
+recorded iteration of a full trace is rebuilt exactly from the nearest earlier snapshot by
+:func:`replay_alpha` (values are copied, never recomputed).
 """
 
 from __future__ import annotations
@@ -160,15 +174,6 @@ def _fresh_array(shape: tuple[int, ...], dtype: np.dtype) -> np.ndarray:
         return np.empty(shape, dtype=dtype)
     buf = mmap.mmap(-1, nbytes, flags=flags)
     return np.frombuffer(buf, dtype=dtype).reshape(shape)
-
-
-def _new_trace_arrays(level: str, rows: int, events: int) -> dict[str, np.ndarray]:
-    cap = 0 if level == "off" else rows
-    arrs = {name: np.zeros(cap, dtype=dt) for name, dt in _TRACE_COLUMNS}
-    arrs["ev_iteration"] = np.zeros(events, dtype=np.int64)
-    arrs["ev_kind"] = np.zeros(events, dtype=np.int8)
-    arrs["ev_value"] = np.zeros(events, dtype=np.float64)
-    return arrs
 
 
 def _grow(arr: np.ndarray, used: int, need: int) -> np.ndarray:
@@ -638,15 +643,41 @@ def solve_smo(
 
     Returns
     -------
-    SolveResult with ``solver="smo"``; ``extra`` holds timings (``compile_seconds``,
-    ``setup_seconds``, ``solve_seconds``), ``kernel_mode`` (``"full_gram"`` or
-    ``"column_cache"``), kernel-row counts, shrink and reconstruction counts and
-    ``curvature_fixes``.
+    SolveResult with ``solver="smo"``; its certificate is computed from the final full
+    gradient (after gradient reconstruction).  ``extra`` holds timings in seconds
+    (``compile_seconds``, ``setup_seconds``, ``solve_seconds``), ``kernel_mode``
+    (``"full_gram"`` or ``"column_cache"``), ``kernel_source``, kernel-row and cache
+    counts, ``shrinks``, ``reconstructions``, ``curvature_fixes`` and
+    ``polish_iterations`` (float64 iterations after a float32 phase).  The trace has the
+    SMO columns of :class:`solver.result.Trace`, events coded by :data:`EVENT_KINDS`
+    (value: active-set size after a shrink, violation after a reconstruction, the
+    curvature aᵢⱼ ≤ 0 that was replaced by τ) and α snapshots at iteration 0, every
+    ``snapshot_every`` iterations and at the end.
+
+    Raises
+    ------
+    InvalidInputError for a bad option or an infeasible ``alpha0``.  Not converging is
+    not an error: the status says why the run stopped and a ConvergenceWarning is issued.
 
     Notes
     -----
     The dual is  min ½αᵀQα + pᵀα  s.t. yᵀα = Δ, l ≤ α ≤ u  (see :mod:`solver.problem`).
-    The loop is deterministic: ties in the working-set selection go to the lowest index.
+    The loop is deterministic: ties in the working-set selection go to the lowest index,
+    and the compiled code gives the same bits as the pure-Python run
+    (``NUMBA_DISABLE_JIT=1``).  With ``kernel_dtype="float32"`` the loop works on rounded
+    kernel values; optimality is then checked with the exact float64 gradient and, when
+    that test fails, the run continues from the same α with float64 kernel values.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from solver.kernels import make_kernel
+    >>> from solver.problem import binary_classification
+    >>> X = np.array([[0.0, 0.0], [2.0, 0.0], [0.0, 2.0]])
+    >>> prob = binary_classification(X, [-1, 1, 1], kernel=make_kernel("linear"), C=1e6)
+    >>> res = solve_smo(prob, tol=1e-12)
+    >>> res.status.label, np.round(res.alpha, 6).tolist(), round(res.bias, 6)
+    ('converged', [1.0, 0.5, 0.5], -1.0)
 
     References
     ----------
