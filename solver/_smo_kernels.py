@@ -654,7 +654,7 @@ def smo_run(F, beta, lo, hi, diag, ysign, status, perm,
     stall_window = istate[IS_STALL_WINDOW]
     tol = fstate[FS_TOL]
     tau = fstate[FS_TAU]
-    obj = fstate[FS_OBJ]
+    dual_value = fstate[FS_OBJ]
     cap_rows = tr_it.shape[0]
     cap_ev = ev_it.shape[0]
     phase = istate[IS_PHASE]
@@ -752,8 +752,9 @@ def smo_run(F, beta, lo, hi, diag, ysign, status, perm,
         status[i] = (UP if bi_new < hi[i] else 0) | (LOW if bi_new > lo[i] else 0)
         status[j] = (UP if bj_new < hi[j] else 0) | (LOW if bj_new > lo[j] else 0)
         # exact change of ½βᵀKβ + qᵀβ for the two-variable step: gᵀd + ½dᵀKd, g = −F
-        obj += -(F[i] * di + F[j] * dj) + 0.5 * (diag[i] * di * di + diag[j] * dj * dj
-                                                 + 2.0 * kij * di * dj)
+        dual_value += -(F[i] * di + F[j] * dj) + 0.5 * (diag[i] * di * di
+                                                        + diag[j] * dj * dj
+                                                        + 2.0 * kij * di * dj)
         pending = True
         it += 1
         if level != 2:
@@ -765,15 +766,15 @@ def smo_run(F, beta, lo, hi, diag, ysign, status, perm,
                 tr_ai[r] = ysign[i] * bi_new
                 tr_aj[r] = ysign[j] * bj_new
                 tr_step[r] = ysign[i] * di
-                tr_obj[r] = obj
+                tr_obj[r] = dual_value
                 tr_viol[r] = viol
                 tr_act[r] = a
                 istate[IS_ROWS] = r + 1
                 istate[IS_FORCE_ROW] = 0
-        if not (abs(obj) < np.inf):
+        if not (abs(dual_value) < np.inf):
             ret = RUN_NUMERICAL
-        elif obj < fstate[FS_BEST_OBJ] - 1e-15 * max(1.0, abs(fstate[FS_BEST_OBJ])):
-            fstate[FS_BEST_OBJ] = obj
+        elif dual_value < fstate[FS_BEST_OBJ] - 1e-15 * max(1.0, abs(fstate[FS_BEST_OBJ])):
+            fstate[FS_BEST_OBJ] = dual_value
             istate[IS_LAST_IMPROVE] = it
         elif it - istate[IS_LAST_IMPROVE] >= stall_window:
             ret = RUN_STALLED
@@ -783,7 +784,7 @@ def smo_run(F, beta, lo, hi, diag, ysign, status, perm,
     istate[IS_PHASE] = phase if ret == RUN_NEED_ROW else 0
     istate[IS_SEL_I] = i
     istate[IS_SEL_J] = j
-    fstate[FS_OBJ] = obj
+    fstate[FS_OBJ] = dual_value
     fstate[FS_M_UP] = m
     fstate[FS_M_LOW] = big_m
     fstate[FS_VIOL] = viol

@@ -127,11 +127,11 @@ def _check_start(problem: DualProblem, alpha0: Any) -> np.ndarray:
 
 
 def repair_start(problem: DualProblem, alpha: np.ndarray) -> np.ndarray:
-    """A feasible α close to ``alpha`` (n,): clipped to the bounds, then yᵀα = Δ restored.
+    """A feasible α near ``alpha`` (n,): clipped to the bounds, then yᵀα = Δ restored.
 
-    The equality is restored by moving the residual over rows in index order (within
-    their bounds), largest-room rows first is not attempted: the result is feasible, not
-    a projection.  Useful for warm starts after bounds were changed (leave-one-out).
+    The equality residual is moved onto rows in index order, each within its bounds; the
+    result is feasible, not the nearest feasible point.  Meant for warm starts after
+    bounds changed (e.g. leave-one-out refits with one upper bound set to 0).
     """
     a = np.clip(np.asarray(alpha, dtype=np.float64).reshape(-1), problem.lower, problem.upper)
     if a.shape != (problem.n,):
