@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 
 import solver
-from solver import api
+from solver import api, training
 from solver.errors import ConvergenceWarning, InvalidInputError
 
 
@@ -152,7 +152,7 @@ def test_runs_compare_and_report(both, tmp_path):
 
 
 def test_challenger_skipped_above_its_size_limit(files, monkeypatch, tmp_path):
-    monkeypatch.setattr(api, "_qp_limit", lambda: 50)
+    monkeypatch.setattr(training, "_qp_limit", lambda: 50)
     out = solver.train(files["train"], label="outcome", kernel="linear", solver="both",
                        store=tmp_path)
     assert len(out.run_ids) == 1 and out.comparison is None
