@@ -66,7 +66,9 @@ IS_ROW_EVALS = 28  # kernel rows computed from data
 IS_POOL_USED = 29  # Gram rows stored so far (mode 0)
 IS_REMISSES = 30  # misses on rows that had been cached before (evicted or dropped)
 IS_UNIT_DIAG = 31  # 1 when every K(x, x) = 1
-IS_SIZE = 32
+IS_VERSION = 32  # layout version of the active positions (raised at each lazy shrink)
+IS_REMAPS = 33  # cached rows brought to the current layout when hit
+IS_SIZE = 40
 
 # fstate slots (float64)
 FS_OBJ = 0
@@ -398,6 +400,26 @@ def compact_cache(cache, old_stride, new_stride, survivors, keep, new_a):
             cache[dst + k] = cache[src + keep[k]]
 
 
+@_jit
+def relayout_cache(cache, old_stride, new_stride, survivors, slot_ver, vmaps, cur, keep, new_a):
+    """Like :func:`compact_cache`, for rows cached in older layouts: the row of slot s is
+    in layout ``slot_ver[s]``; the entry of old-layout position keep[k] is, for a row of
+    an older version v < cur, at position vmaps[v, keep[k]] ≥ keep[k] ≥ k, so every copy
+    still goes forward."""
+    for r in range(survivors.shape[0]):
+        s = survivors[r]
+        src = s * old_stride
+        dst = r * new_stride
+        v = slot_ver[s]
+        if v == cur:
+            for k in range(new_a):
+                cache[dst + k] = cache[src + keep[k]]
+        else:
+            mv = vmaps[v]
+            for k in range(new_a):
+                cache[dst + k] = cache[src + mv[keep[k]]]
+
+
 # ---------------------------------------------------------------- row cache ----------
 
 
@@ -443,9 +465,11 @@ def _lru_take(slot_of, slot_owner, lru_prev, lru_next, slot_stamp, istate, it):
 
 @_jit
 def _fetch(p, a, perm, gram, rowslot, cache, slot_of, slot_owner, lru_prev, lru_next,
-           slot_stamp, ext_row, XK, sq, acc, ibuf, istate, fstate, it):
+           slot_stamp, slot_ver, vmaps, ext_row, XK, sq, acc, ibuf, istate, fstate, it):
     """Kernel row of position p over positions 0..a−1 (a view); ok=False if an external
-    kernel must supply it first (istate[IS_NEED_ORIG] says which)."""
+    kernel must supply it first (istate[IS_NEED_ORIG] says which).  A cached row stored
+    in an older layout v (before shrinks) is first moved to the current one in place:
+    entry k comes from position vmaps[v, k] ≥ k (copies go forward)."""
     o = perm[p]
     n = perm.shape[0]
     mode = istate[IS_MODE]
@@ -469,7 +493,16 @@ def _fetch(p, a, perm, gram, rowslot, cache, slot_of, slot_owner, lru_prev, lru_
     if s >= 0:
         istate[IS_HITS] += 1
         _lru_touch(s, lru_prev, lru_next, slot_stamp, istate, it)
-        return True, cache[s * stride:s * stride + a]
+        base = s * stride
+        v = slot_ver[s]
+        cur = istate[IS_VERSION]
+        if v != cur:
+            mv = vmaps[v]
+            for k in range(a):
+                cache[base + k] = cache[base + mv[k]]
+            slot_ver[s] = cur
+            istate[IS_REMAPS] += 1
+        return True, cache[base:base + a]
     if mode == 1 and code == KERNEL_EXTERNAL and istate[IS_EXT_ORIG] != o:
         istate[IS_NEED_ORIG] = o
         return False, cache[0:0]
@@ -479,6 +512,7 @@ def _fetch(p, a, perm, gram, rowslot, cache, slot_of, slot_owner, lru_prev, lru_
     s = _lru_take(slot_of, slot_owner, lru_prev, lru_next, slot_stamp, istate, it)
     slot_of[o] = s
     slot_owner[s] = o
+    slot_ver[s] = istate[IS_VERSION]
     row = cache[s * stride:s * stride + a]
     if mode == 0:
         g = gram[rowslot[o]]
@@ -626,8 +660,8 @@ def pass_low(F, Ki, diag, status, a, m, kii, tau, second, unit_diag, bm, wbuf):
 
 @_jit
 def smo_run(F, beta, lo, hi, diag, ysign, status, perm,
-            gram, rowslot, cache, slot_of, slot_owner, lru_prev, lru_next, slot_stamp, ext_row,
-            XK, sq, acc, ibuf, bm, istate, fstate,
+            gram, rowslot, cache, slot_of, slot_owner, lru_prev, lru_next, slot_stamp, slot_ver,
+            vmaps, ext_row, XK, sq, acc, ibuf, bm, istate, fstate,
             tr_it, tr_i, tr_j, tr_ai, tr_aj, tr_step, tr_obj, tr_viol, tr_act,
             ev_it, ev_kind, ev_val):
     """Run SMO iterations on the active positions until a stop or pause condition.
@@ -637,8 +671,10 @@ def smo_run(F, beta, lo, hi, diag, ysign, status, perm,
     Kernel access: Gram rows packed in gram (n, n) with rowslot (n,) (mode 0; see
     :func:`fill_rows`), and, when a < n or in mode 1, the slot cache;
     cache, slot_of, slot_owner, lru_prev, lru_next, slot_stamp: LRU cache of rows over
-    the active positions (slot_stamp: iteration of last use); ext_row: a row supplied by
-    the driver for an external kernel.  XK (d, n),
+    the active positions (slot_stamp: iteration of last use); slot_ver (n,), vmaps (V, n):
+    layout version of each cached row and the maps from current positions to those of
+    older layouts (see :func:`_fetch`); ext_row: a row supplied by the driver for an
+    external kernel.  XK (d, n),
     sq (n,): data for kernel rows.  acc, ibuf, bm: work buffers.  istate / fstate: counters
     and scalars (IS_* / FS_* slots).  tr_*: trace columns, ev_*: event columns.
     Returns a RUN_* code; on every return F is up to date with beta.
@@ -689,7 +725,8 @@ def smo_run(F, beta, lo, hi, diag, ysign, status, perm,
             phase = 1
         if phase == 1:
             ok, Ki = _fetch(i, a, perm, gram, rowslot, cache, slot_of, slot_owner, lru_prev,
-                            lru_next, slot_stamp, ext_row, XK, sq, acc, ibuf, istate, fstate, it)
+                            lru_next, slot_stamp, slot_ver, vmaps, ext_row, XK, sq, acc, ibuf,
+                            istate, fstate, it)
             if not ok:
                 ret = RUN_NEED_ROW
                 break
@@ -705,13 +742,15 @@ def smo_run(F, beta, lo, hi, diag, ysign, status, perm,
             phase = 2
         # phase 2: the step
         ok, Kj = _fetch(j, a, perm, gram, rowslot, cache, slot_of, slot_owner, lru_prev,
-                        lru_next, slot_stamp, ext_row, XK, sq, acc, ibuf, istate, fstate, it)
+                        lru_next, slot_stamp, slot_ver, vmaps, ext_row, XK, sq, acc, ibuf,
+                        istate, fstate, it)
         if not ok:
             ret = RUN_NEED_ROW
             break
         if Ki.shape[0] == 0:  # resumed after an external row: fetch row i again (a hit)
             ok, Ki = _fetch(i, a, perm, gram, rowslot, cache, slot_of, slot_owner, lru_prev,
-                            lru_next, slot_stamp, ext_row, XK, sq, acc, ibuf, istate, fstate, it)
+                            lru_next, slot_stamp, slot_ver, vmaps, ext_row, XK, sq, acc, ibuf,
+                            istate, fstate, it)
         # two-variable subproblem along βᵢ += s, βⱼ −= s (Platt 1998; Fan, Chen & Lin
         # 2005, eq. 15): unconstrained minimiser s = bᵢⱼ/aᵢⱼ, clipped to the box
         kij = Ki[j]

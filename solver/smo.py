@@ -64,6 +64,8 @@ CACHE_START_MB = 64
 #: and half the available memory.  Rows are computed when first needed either way; beyond
 #: the budget the LRU row cache is used, which touches less fresh memory.
 DEFAULT_GRAM_MB = 256
+#: layouts a cached row may lag behind before all cached rows are moved (see _shrink_cache)
+LAYOUT_VERSIONS = 16
 #: τ substituted for non-positive curvature (Fan, Chen & Lin 2005, section 4).
 TAU = 1e-12
 
@@ -292,6 +294,11 @@ class _Engine:
         self.lru_prev = np.full(n, -1, dtype=np.int64)
         self.lru_next = np.full(n, -1, dtype=np.int64)
         self.slot_stamp = np.zeros(n, dtype=np.int64)
+        # lazy shrinking of cached rows: a row keeps the layout it was stored in until it
+        # is hit again (then it is gathered in place); vmaps[v] maps current positions to
+        # those of layout v
+        self.slot_ver = np.zeros(n, dtype=np.int64)
+        self.vmaps = np.zeros((LAYOUT_VERSIONS, n), dtype=np.int64)
         self.ext_row = np.zeros(n if code == _k.KERNEL_EXTERNAL else 1)
         self.bm = np.zeros(n // _k.BLK + 2)
         self.istate = np.zeros(_k.IS_SIZE, dtype=np.int64)
@@ -345,6 +352,7 @@ class _Engine:
         ist[_k.IS_USED] = 0
         ist[_k.IS_HEAD] = -1
         ist[_k.IS_TAIL] = -1
+        ist[_k.IS_VERSION] = 0
 
     def adapt_cache(self, window: int) -> None:
         """Double the cache capacity when more than 20 % of the row requests of the last
@@ -357,24 +365,36 @@ class _Engine:
             self.cap_elems = min(self.cache_elems, 2 * self.cap_elems)
             ist[_k.IS_SLOTS] = min(self.n, self.cap_elems // int(ist[_k.IS_STRIDE]))
 
-    def _compact_cache(self, keep: np.ndarray, since: int) -> None:
-        """After a shrink to positions ``keep``: rows used since iteration ``since`` move to
-        the front slots with only the kept entries; older rows are dropped (LRU order
-        kept).  Cost O(rows kept × active)."""
+    def _shrink_cache(self, keep: np.ndarray) -> None:
+        """After a shrink to positions ``keep`` (of the current layout): cached rows are
+        left in place and gathered when next hit (see ``_k._fetch``); only when the cache
+        is full, the rows have become at most half the slot stride or the layout versions
+        run out are all cached rows moved to slots of the new length (more slots fit)."""
         ist = self.istate
-        used = int(ist[_k.IS_USED])
         new_a = int(keep.size)
-        stamps = self.slot_stamp[:used]
-        survivors = np.flatnonzero((self.slot_owner[:used] >= 0) & (stamps >= since))
-        _k.compact_cache(self.cache, int(ist[_k.IS_STRIDE]), new_a, survivors, keep, new_a)
-        owners = self.slot_owner[survivors].copy()
-        st = stamps[survivors].copy()
-        self.slot_of[self.slot_owner[:used][self.slot_owner[:used] >= 0]] = -2
+        cur = int(ist[_k.IS_VERSION])
+        stride = int(ist[_k.IS_STRIDE])
+        full = ist[_k.IS_USED] >= ist[_k.IS_SLOTS]  # evicting: shorter slots give more room
+        if not full and stride < 2 * new_a and cur + 1 < self.vmaps.shape[0]:
+            vm = self.vmaps
+            for v in range(cur):
+                vm[v, :new_a] = vm[v, keep]
+            vm[cur, :new_a] = keep
+            ist[_k.IS_VERSION] = cur + 1
+            return
+        used = int(ist[_k.IS_USED])
+        owners = self.slot_owner[:used]
+        survivors = np.flatnonzero(owners >= 0)
+        _k.relayout_cache(self.cache, stride, new_a, survivors, self.slot_ver, self.vmaps,
+                          cur, np.ascontiguousarray(keep, dtype=np.int64), new_a)
+        owners = owners[survivors].copy()
+        st = self.slot_stamp[survivors].copy()
         self.slot_owner[:used] = -1
         k = survivors.size
         self.slot_owner[:k] = owners
         self.slot_of[owners] = np.arange(k)
         self.slot_stamp[:k] = st
+        self.slot_ver[:k] = 0
         # LRU list: most recent first, ties by slot
         order = np.lexsort((np.arange(k), -st))
         self.lru_prev[:k] = -1
@@ -387,6 +407,7 @@ class _Engine:
         ist[_k.IS_USED] = k
         ist[_k.IS_STRIDE] = new_a
         ist[_k.IS_SLOTS] = min(self.n, self.cap_elems // new_a)
+        ist[_k.IS_VERSION] = 0
 
     def _ensure_rows(self, rows: np.ndarray) -> None:
         """Gram rows ``rows`` (original indices) computed (full-Gram mode)."""
@@ -520,7 +541,7 @@ class _Engine:
         self._reorder(order)
         ist = self.istate
         new_a = int(keep.size)
-        self._compact_cache(keep, self.last_shrink)
+        self._shrink_cache(keep)
         self.active = new_a
         ist[_k.IS_ACTIVE] = self.active
         self.shrinks += 1
@@ -553,7 +574,8 @@ class _Engine:
         return int(_k.smo_run(
             self.F, self.beta, self.lo, self.hi, self.diag, self.ysign, self.status,
             self.perm, self.gram, self.rowslot, self.cache, self.slot_of, self.slot_owner,
-            self.lru_prev, self.lru_next, self.slot_stamp, self.ext_row, self.XK, self.sq,
+            self.lru_prev, self.lru_next, self.slot_stamp, self.slot_ver, self.vmaps,
+            self.ext_row, self.XK, self.sq,
             self.acc, self.ibuf, self.bm, self.istate, self.fstate,
             tr["iteration"], tr["i"], tr["j"], tr["alpha_i"], tr["alpha_j"], tr["step"],
             tr["objective"], tr["violation"], tr["active"],
@@ -586,6 +608,8 @@ def _warm_up(dtype: np.dtype) -> float:
     eng.shrink(1, 1e-3)
     eng.unshrink(1)
     _k.compact_cache(eng.cache, 3, 3, np.zeros(0, dtype=np.int64), np.zeros(0, dtype=np.int64), 0)
+    _k.relayout_cache(eng.cache, 3, 3, np.zeros(0, dtype=np.int64), eng.slot_ver, eng.vmaps, 0,
+                      np.zeros(0, dtype=np.int64), 0)
     eng.rebuild_gradient(np.arange(3, dtype=np.int64))
     _compiled.add(key)
     return time.perf_counter() - t0
@@ -802,8 +826,8 @@ def _merge_phases(a: dict[str, Any], b: dict[str, Any]) -> dict[str, Any]:
     out["snaps"] = list(a["snaps"]) + list(b["snaps"][1:])
     extra = dict(b["extra"])
     for key in ("compile_seconds", "setup_seconds", "solve_seconds", "kernel_rows_computed",
-                "cache_hits", "cache_misses", "cache_remisses", "curvature_fixes", "shrinks",
-                "reconstructions"):
+                "cache_hits", "cache_misses", "cache_remisses", "cache_remaps", "curvature_fixes",
+                "shrinks", "reconstructions"):
         extra[key] = a["extra"][key] + b["extra"][key]
     extra["kernel_mode"] = a["extra"]["kernel_mode"]
     out["extra"] = extra
@@ -927,7 +951,7 @@ def _run_phase(problem: DualProblem, alpha: np.ndarray, dtype: np.dtype, cfg: di
         "solve_seconds": solve_seconds,
         "kernel_rows_computed": int(ist[_k.IS_ROW_EVALS]) + eng.external_rows,
         "cache_hits": int(ist[_k.IS_HITS]), "cache_misses": int(ist[_k.IS_MISSES]),
-        "cache_remisses": int(ist[_k.IS_REMISSES]),
+        "cache_remisses": int(ist[_k.IS_REMISSES]), "cache_remaps": int(ist[_k.IS_REMAPS]),
         "cache_capacity_mb": eng.cap_elems * dtype.itemsize / 2**20,
         "curvature_fixes": int(ist[_k.IS_CURV_FIXES]), "shrinks": eng.shrinks,
         "reconstructions": eng.reconstructions,
