@@ -298,7 +298,7 @@ class _Engine:
         # is hit again (then it is gathered in place); vmaps[v] maps current positions to
         # those of layout v
         self.slot_ver = np.zeros(n, dtype=np.int64)
-        self.vmaps = np.zeros((LAYOUT_VERSIONS, n), dtype=np.int64)
+        self.vmaps = np.zeros((LAYOUT_VERSIONS, n), dtype=np.int32)
         self.ext_row = np.zeros(n if code == _k.KERNEL_EXTERNAL else 1)
         self.bm = np.zeros(n // _k.BLK + 2)
         self.istate = np.zeros(_k.IS_SIZE, dtype=np.int64)
@@ -355,17 +355,24 @@ class _Engine:
         ist[_k.IS_VERSION] = 0
 
     def adapt_cache(self, window: int) -> None:
-        """Double the cache capacity when more than 20 % of the row requests of the last
-        ``window`` iterations were for rows evicted earlier (up to ``cache_mb``)."""
+        """Row-cache capacity: double it (up to ``cache_mb``) when the last ``window``
+        iterations re-computed more evicted rows than the cache has slots, i.e. when
+        re-computing cost more than first-touching the added memory would (the two cost
+        about the same per row here, see module notes); when the cache is full and its
+        slots are longer than the rows, move the rows to shorter slots first."""
         ist = self.istate
         rem = int(ist[_k.IS_REMISSES])
         recent = rem - self.remisses_seen
         self.remisses_seen = rem
-        if recent > 0.2 * 2 * window and self.cap_elems < self.cache_elems:
+        slots = int(ist[_k.IS_SLOTS])
+        if (ist[_k.IS_USED] >= slots and 4 * int(ist[_k.IS_STRIDE]) >= 5 * self.active
+                and slots < self.n):
+            self._shrink_cache(np.arange(self.active, dtype=np.int64), eager=True)
+        elif recent > slots and self.cap_elems < self.cache_elems:
             self.cap_elems = min(self.cache_elems, 2 * self.cap_elems)
             ist[_k.IS_SLOTS] = min(self.n, self.cap_elems // int(ist[_k.IS_STRIDE]))
 
-    def _shrink_cache(self, keep: np.ndarray) -> None:
+    def _shrink_cache(self, keep: np.ndarray, *, eager: bool = False) -> None:
         """After a shrink to positions ``keep`` (of the current layout): cached rows are
         left in place and gathered when next hit (see ``_k._fetch``); only when the cache
         is full, the rows have become at most half the slot stride or the layout versions
@@ -375,7 +382,7 @@ class _Engine:
         cur = int(ist[_k.IS_VERSION])
         stride = int(ist[_k.IS_STRIDE])
         full = ist[_k.IS_USED] >= ist[_k.IS_SLOTS]  # evicting: shorter slots give more room
-        if not full and stride < 2 * new_a and cur + 1 < self.vmaps.shape[0]:
+        if not (eager or full) and stride < 2 * new_a and cur + 1 < self.vmaps.shape[0]:
             vm = self.vmaps
             for v in range(cur):
                 vm[v, :new_a] = vm[v, keep]
