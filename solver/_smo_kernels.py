@@ -98,8 +98,11 @@ KERNEL_EXTERNAL = 9
 
 #: block length of the two-level arg-max / arg-min searches
 BLK = 512
-#: chunk length of kernel-row evaluation
+#: chunk length of the gradient reconstruction (its sums run chunk by chunk)
 CHUNK = 256
+#: chunk length of kernel-row evaluation used by the driver (any length gives the same
+#: bits; longer chunks run faster with rows of thousands of entries)
+ROW_CHUNK = 1024
 
 _LN2_HI = 6.93147180369123816490e-01
 _LN2_LO = 1.90821492927058770002e-10
@@ -213,14 +216,16 @@ def self_dots(XK, out):
 def kernel_row(XS, src, sqi, XK, sq, count, out, code, gamma, offset, degree, acc, ibuf):
     """out[t] = K(x, x_t) for t < count with x = XS[:, src], x_t = XK[:, t] ((d, ·) float64).
 
-    sqi = ‖x‖², sq squared norms of the XK columns (from :func:`self_dots`); acc (CHUNK,)
-    float64 and ibuf (CHUNK,) int64 work buffers; out may be float32 (values are rounded
-    on store).  Every entry is computed by the same arithmetic wherever column t sits, so
-    rows over permuted columns are bitwise equal to the matching entries of other rows.
+    sqi = ‖x‖², sq squared norms of the XK columns (from :func:`self_dots`); acc (L,)
+    float64 and ibuf (≥ L,) int64 work buffers, L the chunk length; out may be float32
+    (values are rounded on store).  Every entry is computed by the same arithmetic
+    wherever column t sits and whatever L is, so rows over permuted columns are bitwise
+    equal to the matching entries of other rows.
     """
     d = XK.shape[0]
-    for s in range(0, count, CHUNK):
-        e = min(count, s + CHUNK)
+    step = acc.shape[0]
+    for s in range(0, count, step):
+        e = min(count, s + step)
         L = e - s
         a = acc[:L]
         for t in range(L):

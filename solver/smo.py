@@ -260,8 +260,8 @@ class _Engine:
             self.XK = np.zeros((0, n))
         self.sq = np.zeros(n)
         _k.self_dots(self.XK, self.sq)
-        self.acc = np.zeros(_k.CHUNK)
-        self.ibuf = np.zeros(_k.CHUNK, dtype=np.int64)
+        self.acc = np.zeros(_k.ROW_CHUNK)
+        self.ibuf = np.zeros(max(_k.ROW_CHUNK, _k.CHUNK), dtype=np.int64)
         if self.precomputed:
             idx = problem.X[:, 0].astype(np.int64)
             self.mode = 0
