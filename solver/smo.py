@@ -255,7 +255,7 @@ class _Engine:
         gram_mb = n * n * itemsize / 2**20
         # data for kernel rows: features as (d, n) columns
         if code != _k.KERNEL_EXTERNAL:
-            self.XK = np.ascontiguousarray(problem.X.T)
+            self.XK = np.array(problem.X.T, order="C")  # own writable copy: one compiled type
         else:
             self.XK = np.zeros((0, n))
         self.sq = np.zeros(n)
@@ -813,7 +813,7 @@ def _exact_gradient(problem: DualProblem, alpha: np.ndarray) -> np.ndarray:
             blk = problem.kernel_block(slice(s, s + 1024), sv)
             out[s:s + 1024] = blk @ yb[sv]
         return problem.y * out + problem.p
-    XK = np.ascontiguousarray(problem.X.T)
+    XK = np.array(problem.X.T, order="C")
     sq = np.zeros(problem.n)
     _k.self_dots(XK, sq)
     F = np.zeros(problem.n)
