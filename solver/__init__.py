@@ -62,6 +62,7 @@ _EXPORTS: dict[str, str] = {
     "RunRecord": "run",
     "RunStore": "store",
     "Status": "status",
+    "to_plain": "plaindata",
     # errors and warnings
     "KktraceError": "errors",
     "InvalidInputError": "errors",

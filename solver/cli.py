@@ -35,21 +35,9 @@ _STORE_HELP = "run store directory (default: $KKTRACE_STORE, else ./traces)"
 
 def _clean(v: Any) -> Any:
     """JSON-safe copy: non-finite floats become null, numpy values become Python values."""
-    import numpy as np
+    import solver
 
-    if isinstance(v, Mapping):
-        return {str(k): _clean(x) for k, x in v.items()}
-    if isinstance(v, (list, tuple)):
-        return [_clean(x) for x in v]
-    if isinstance(v, np.ndarray):
-        return _clean(v.tolist())
-    if isinstance(v, np.generic):
-        v = v.item()
-    if isinstance(v, float) and not math.isfinite(v):
-        return None
-    if isinstance(v, Path):
-        return str(v)
-    return v
+    return solver.to_plain(v, nonfinite_as_none=True)
 
 
 def _emit_json(obj: Any, out: TextIO) -> None:

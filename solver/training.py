@@ -29,6 +29,7 @@ from .data import Dataset
 from .errors import ConvergenceWarning, DataWarning, InvalidInputError
 from .kernels import make_kernel
 from .model import Model, Standardiser, model_from_solution
+from .plaindata import to_plain
 from .problem import DualProblem, binary_classification
 from .result import TRACE_LEVELS, SolveResult
 from .run import RunRecord
@@ -212,21 +213,8 @@ def _run_summary(record: RunRecord, run_id: str, run_dir: Path) -> dict[str, Any
 def _audit(problem: DualProblem, feature_names: Sequence[str]) -> dict[str, Any]:
     from .audit import audit_kernel
 
-    return _jsonable(audit_kernel(problem.kernel, problem.X,
+    return to_plain(audit_kernel(problem.kernel, problem.X,
                                   feature_names=feature_names).to_dict())
-
-
-def _jsonable(v: Any) -> Any:
-    """Plain JSON-ready data (numpy scalars and arrays converted, NaN kept as float)."""
-    if isinstance(v, Mapping):
-        return {str(k): _jsonable(x) for k, x in v.items()}
-    if isinstance(v, (list, tuple)):
-        return [_jsonable(x) for x in v]
-    if isinstance(v, np.ndarray):
-        return _jsonable(v.tolist())
-    if isinstance(v, np.generic):
-        return v.item()
-    return v
 
 
 def _explanation(problem: DualProblem, result: SolveResult) -> dict[str, np.ndarray]:
@@ -425,7 +413,7 @@ def _train(
         hX = None if hold is None else _align(hold, ds.feature_names, "held-out data")
         comparison = compare_runs(records[0], records[1], holdout_X=hX)
         records[1] = replace(records[1], attachments={
-            **records[1].attachments, "comparison": _jsonable(comparison.to_dict())})
+            **records[1].attachments, "comparison": to_plain(comparison.to_dict())})
 
     ids: list[str] = []
     saved: list[RunRecord] = []

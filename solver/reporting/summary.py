@@ -8,12 +8,10 @@ Non-finite numbers are written as ``null``.
 from __future__ import annotations
 
 import json
-import math
 from importlib import resources
 from typing import Any
 
-import numpy as np
-
+from ..plaindata import to_plain
 from .content import ReportContent, RunContent
 
 __all__ = ["SCHEMA_ID", "summary_dict", "summary_json", "load_schema"]
@@ -27,23 +25,6 @@ _TERMINATION_KEYS = (
     "relative_gap", "bias", "bias_from", "bound_violation", "equality_residual",
     "max_kkt_residual",
 )
-
-
-def _clean(v: Any) -> Any:
-    """Plain JSON value: non-finite floats → None, numpy → Python, tuples → lists."""
-    if isinstance(v, np.generic):
-        v = v.item()
-    if isinstance(v, float):
-        return v if math.isfinite(v) else None
-    if isinstance(v, np.ndarray):
-        return [_clean(x) for x in v.tolist()]
-    if isinstance(v, dict) or hasattr(v, "items"):
-        return {str(k): _clean(x) for k, x in v.items()}
-    if isinstance(v, (list, tuple)):
-        return [_clean(x) for x in v]
-    if isinstance(v, (str, int, bool)) or v is None:
-        return v
-    return str(v)
 
 
 def _run(r: RunContent) -> dict[str, Any]:
@@ -105,7 +86,7 @@ def summary_dict(content: ReportContent) -> dict[str, Any]:
         "flags": [{"code": f.code, "severity": f.severity, "message": f.message, "run": f.run}
                   for f in c.flags],
     }
-    return _clean(out)
+    return to_plain(out, nonfinite_as_none=True, other=str)
 
 
 def summary_json(content: ReportContent) -> str:
