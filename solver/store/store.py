@@ -208,6 +208,15 @@ class RunStore:
             blobs[name] = data
         return blobs
 
+    def _checked_dir(self, run_id: str, verify: bool) -> Path:
+        """The run's folder; with ``verify``, IntegrityError listing every finding first."""
+        d = self._existing(run_id)
+        if verify:
+            v = self.verify(run_id)
+            if not v.ok:
+                raise IntegrityError(f"run {run_id} failed verification: " + "; ".join(v.problems))
+        return d
+
     def load(self, run_id: str, *, verify: bool = True) -> RunRecord:
         """The stored run as a :class:`RunRecord` (``manifest`` filled in).
 
@@ -216,11 +225,7 @@ class RunStore:
         raises :class:`IntegrityError` listing every problem.  Without it, malformed
         files still raise :class:`IntegrityError` naming the file and field.
         """
-        d = self._existing(run_id)
-        if verify:
-            v = self.verify(run_id)
-            if not v.ok:
-                raise IntegrityError(f"run {run_id} failed verification: " + "; ".join(v.problems))
+        d = self._checked_dir(run_id, verify)
         manifest, mbytes = self._read_manifest(d, run_id)
         if verify:
             recorded = parse_digest_file((d / MANIFEST_DIGEST).read_bytes())
@@ -240,11 +245,7 @@ class RunStore:
         A run whose solver did not converge raises :class:`InvalidInputError` unless
         ``require_converged`` is False.
         """
-        d = self._existing(run_id)
-        if verify:
-            v = self.verify(run_id)
-            if not v.ok:
-                raise IntegrityError(f"run {run_id} failed verification: " + "; ".join(v.problems))
+        d = self._checked_dir(run_id, verify)
         manifest, _ = self._read_manifest(d, run_id)
         if manifest.get("model") is None:
             raise InvalidInputError(f"run {run_id} holds no classification model")
