@@ -418,7 +418,7 @@ def _read_parquet(
         pf = pq.ParquetFile(p)
         names = [str(c) for c in pf.schema_arrow.names]
         check_names(names, prefix)  # before reading: duplicates make column lookup ambiguous
-        table = pf.read()
+        table = pf.read(use_threads=False)  # see solver.store.format.read_table
     except (pa.ArrowException, OSError, ValueError) as exc:
         if isinstance(exc, InvalidInputError):
             raise

@@ -427,3 +427,22 @@ def test_scales_within_1e3_not_warned():
     with warnings.catch_warnings():
         warnings.simplefilter("error", DataWarning)
         assert from_arrays(X, np.arange(10) % 2).warnings == ()
+
+
+def test_parquet_is_read_single_threaded(tmp_path, monkeypatch):
+    """Data files and stored tables are read without Arrow's thread pool: once started, it
+    aborted about 1 CLI exit in 20 ("terminate called without an active exception")."""
+    from solver.store.format import read_table, write_table
+
+    calls = []
+    original = pq.ParquetFile.read
+
+    def spy(self, *args, **kwargs):
+        calls.append(kwargs.get("use_threads", True))
+        return original(self, *args, **kwargs)
+
+    monkeypatch.setattr(pq.ParquetFile, "read", spy)
+    pq.write_table(pa.table({"x": [1.0, 2.0, 3.0], "y": [1, -1, 1]}), tmp_path / "t.parquet")
+    load_table(tmp_path / "t.parquet", label="y")
+    read_table(write_table({"a": np.arange(3.0)}), "a.parquet")
+    assert calls == [False, False]
