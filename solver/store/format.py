@@ -369,7 +369,7 @@ def read_table(
         # ParquetFile, not pq.read_table: the latter imports pandas (a second of start-up)
         # one thread: once Arrow's thread pool has started, the process can abort at exit
         # ("terminate called without an active exception": 5 of 100 CLI runs, four at a time
-        # on two cores; none in 120 without it).  A 1,000,000-row trace reads in ~0.1 s.
+        # on two cores; none in 280 with this).  A 1,000,000-row trace reads in ~0.1 s.
         table = pq.ParquetFile(pa.BufferReader(data), page_checksum_verification=True).read(
             use_threads=False)
     except (pa.ArrowException, OSError, ValueError) as exc:
