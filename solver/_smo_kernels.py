@@ -82,6 +82,37 @@ FS_GAMMA = 7
 FS_OFFSET = 8
 FS_SIZE = 16
 
+# helper-thread protocol (see :func:`helper_loop`): hctl (H_SIZE,) int64, hval (HV_SIZE,)
+# float64.  The loop posts a job by raising hctl[H_POSTED]; the helper answers by raising
+# hctl[H_DONE] to the same number.  The two counters sit on separate cache lines.
+H_POSTED = 0
+H_DONE = 8
+H_ON = 16  # 1 while a helper thread serves the running loop
+H_KIND = 17
+H_LO = 18  # the helper's part: positions (or columns) H_LO..H_HI-1
+H_HI = 19
+H_REF_I = 20  # rows, by reference (see :func:`_row_of`), and their length
+H_REF_J = 21
+H_LEN = 22
+H_SRC = 23  # data column of a kernel row
+H_FLAG = 24
+H_RES = 25  # index found by the helper (−1: none)
+H_SIZE = 32
+HV_DI = 0
+HV_DJ = 1
+HV_M = 2
+HV_KII = 3
+HV_RES = 8  # value found by the helper
+HV_RES2 = 9
+HV_SIZE = 16
+JOB_EXIT = 0
+JOB_UP = 1
+JOB_LOW = 2
+JOB_ROW = 3
+#: shortest pass / kernel row that is split between the loop and its helper thread
+SPLIT_PASS = 4096
+SPLIT_ROW = 2048
+
 # status bits of a variable (uint8): in I_up (β < hi), in I_low (β > lo)
 UP = 1
 LOW = 2
@@ -126,6 +157,15 @@ if config.DISABLE_JIT:  # pragma: no cover - exercised in a subprocess test
     def _fmin(a: float, b: float) -> float:
         return a if a <= b else b
 
+    def _load_acquire(arr, k):
+        return arr[k]
+
+    def _store_release(arr, k, v):
+        arr[k] = v
+
+    def _spin_pause():
+        return None
+
 else:
     from llvmlite import ir
     from numba import types
@@ -149,11 +189,53 @@ else:
     _fmax = _llvm_binary("llvm.maxnum")
     _fmin = _llvm_binary("llvm.minnum")
 
+    # The loop and its helper thread meet through two counters: an acquire load / release
+    # store on them orders every plain access to the shared arrays before and after.
+    def _item_pointer(context, builder, aryty, ary_val, idx):
+        from numba.core import cgutils
+        ary = context.make_array(aryty)(context, builder, ary_val)
+        return cgutils.get_item_pointer(context, builder, aryty, ary, [idx])
+
+    @intrinsic
+    def _load_acquire(typingctx, arr, k):
+        sig = types.int64(arr, k)
+
+        def codegen(context, builder, signature, args):
+            ptr = _item_pointer(context, builder, signature.args[0], args[0], args[1])
+            return builder.load_atomic(ptr, "acquire", 8)
+
+        return sig, codegen
+
+    @intrinsic
+    def _store_release(typingctx, arr, k, v):
+        sig = types.void(arr, k, types.int64)
+
+        def codegen(context, builder, signature, args):
+            ptr = _item_pointer(context, builder, signature.args[0], args[0], args[1])
+            builder.store_atomic(args[2], ptr, "release", 8)
+            return context.get_dummy_value()
+
+        return sig, codegen
+
+    @intrinsic
+    def _spin_pause(typingctx):
+        sig = types.void()
+
+        def codegen(context, builder, signature, args):
+            import platform
+            if platform.machine().lower() in ("x86_64", "amd64", "i686", "x86"):
+                fn = builder.module.declare_intrinsic(
+                    "llvm.x86.sse2.pause", fnty=ir.FunctionType(ir.VoidType(), []))
+                builder.call(fn, [])
+            return context.get_dummy_value()
+
+        return sig, codegen
+
 
 # No fast-math contraction anywhere: fused multiply-adds would make the compiled results
 # differ in the last bit from the pure-Python run (NUMBA_DISABLE_JIT=1) and, depending on
 # where a function is inlined, from each other; without them every run is bitwise equal.
-_jit = njit(cache=True, error_model="numpy")
+_jit = njit(cache=True, error_model="numpy", nogil=True)
 
 # ---------------------------------------------------------------- kernel rows --------
 
@@ -222,6 +304,14 @@ def kernel_row(XS, src, sqi, XK, sq, count, out, code, gamma, offset, degree, ac
     wherever column t sits and whatever L is, so rows over permuted columns are bitwise
     equal to the matching entries of other rows.
     """
+    kernel_row_part(XS, src, sqi, XK, sq, 0, count, out, code, gamma, offset, degree, acc,
+                    ibuf)
+
+
+@_jit
+def kernel_row_part(XS, src, sqi, XK, sq, c0, count, out, code, gamma, offset, degree, acc,
+                    ibuf):
+    """Like :func:`kernel_row` for the columns c0..c0+count−1 of XK: out[t] = K(x, x_{c0+t})."""
     d = XK.shape[0]
     step = acc.shape[0]
     for s in range(0, count, step):
@@ -236,20 +326,20 @@ def kernel_row(XS, src, sqi, XK, sq, count, out, code, gamma, offset, degree, ac
             x1 = XS[k + 1, src]
             x2 = XS[k + 2, src]
             x3 = XS[k + 3, src]
-            r0 = XK[k, s:e]
-            r1 = XK[k + 1, s:e]
-            r2 = XK[k + 2, s:e]
-            r3 = XK[k + 3, s:e]
+            r0 = XK[k, c0 + s:c0 + e]
+            r1 = XK[k + 1, c0 + s:c0 + e]
+            r2 = XK[k + 2, c0 + s:c0 + e]
+            r3 = XK[k + 3, c0 + s:c0 + e]
             for t in range(L):
                 a[t] += (x0 * r0[t] + x1 * r1[t]) + (x2 * r2[t] + x3 * r3[t])
             k += 4
         while k < d:
             xk = XS[k, src]
-            rk = XK[k, s:e]
+            rk = XK[k, c0 + s:c0 + e]
             for t in range(L):
                 a[t] += xk * rk[t]
             k += 1
-        _transform(a, sqi, sq[s:e], code, gamma, offset, degree, ibuf)
+        _transform(a, sqi, sq[c0 + s:c0 + e], code, gamma, offset, degree, ibuf)
         o = out[s:e]
         for t in range(L):
             o[t] = a[t]
@@ -470,9 +560,10 @@ def _lru_take(slot_of, slot_owner, lru_prev, lru_next, slot_stamp, istate, it):
 
 @_jit
 def _fetch(p, a, perm, gram, rowslot, cache, slot_of, slot_owner, lru_prev, lru_next,
-           slot_stamp, slot_ver, vmaps, ext_row, XK, sq, acc, ibuf, istate, fstate, it):
-    """Kernel row of position p over positions 0..a−1 (a view); ok=False if an external
-    kernel must supply it first (istate[IS_NEED_ORIG] says which).  A cached row stored
+           slot_stamp, slot_ver, vmaps, ext_row, XK, sq, acc, ibuf, istate, fstate, it, hctl):
+    """(ok, row, ref): kernel row of position p over positions 0..a−1 (a view) and its
+    reference for the helper thread (:func:`_row_of`); ok=False if an external kernel
+    must supply it first (istate[IS_NEED_ORIG] says which).  A cached row stored
     in an older layout v (before shrinks) is first moved to the current one in place:
     entry k comes from position vmaps[v, k] ≥ k (copies go forward)."""
     o = perm[p]
@@ -484,15 +575,15 @@ def _fetch(p, a, perm, gram, rowslot, cache, slot_of, slot_owner, lru_prev, lru_
         if k < 0:
             if code == KERNEL_EXTERNAL:
                 istate[IS_NEED_ORIG] = o
-                return False, cache[0:0]
+                return False, cache[0:0], 0
             k = istate[IS_POOL_USED]
-            kernel_row(XK, o, sq[o], XK, sq, n, gram[k], code, fstate[FS_GAMMA],
-                       fstate[FS_OFFSET], istate[IS_DEGREE], acc, ibuf)
+            row_split(XK, o, sq, n, gram[k], -1 - k, code, fstate[FS_GAMMA],
+                      fstate[FS_OFFSET], istate[IS_DEGREE], acc, ibuf, hctl)
             rowslot[o] = k
             istate[IS_POOL_USED] = k + 1
             istate[IS_ROW_EVALS] += 1
         if a == n:
-            return True, gram[k]
+            return True, gram[k], -1 - k
     stride = istate[IS_STRIDE]
     s = slot_of[o]
     if s >= 0:
@@ -507,10 +598,10 @@ def _fetch(p, a, perm, gram, rowslot, cache, slot_of, slot_owner, lru_prev, lru_
                 cache[base + k] = cache[base + mv[k]]
             slot_ver[s] = cur
             istate[IS_REMAPS] += 1
-        return True, cache[base:base + a]
+        return True, cache[base:base + a], base
     if mode == 1 and code == KERNEL_EXTERNAL and istate[IS_EXT_ORIG] != o:
         istate[IS_NEED_ORIG] = o
-        return False, cache[0:0]
+        return False, cache[0:0], 0
     istate[IS_MISSES] += 1
     if s == -2:
         istate[IS_REMISSES] += 1
@@ -528,10 +619,10 @@ def _fetch(p, a, perm, gram, rowslot, cache, slot_of, slot_owner, lru_prev, lru_
             row[t] = ext_row[t]
         istate[IS_EXT_ORIG] = -1
     else:
-        kernel_row(XK, p, sq[p], XK, sq, a, row, code, fstate[FS_GAMMA], fstate[FS_OFFSET],
-                   istate[IS_DEGREE], acc, ibuf)
+        row_split(XK, p, sq, a, row, s * stride, code, fstate[FS_GAMMA], fstate[FS_OFFSET],
+                  istate[IS_DEGREE], acc, ibuf, hctl)
         istate[IS_ROW_EVALS] += 1
-    return True, row
+    return True, row, s * stride
 
 
 # ---------------------------------------------------------------- the two passes -----
@@ -588,6 +679,7 @@ def pass_low(F, Ki, diag, status, a, m, kii, tau, second, unit_diag, bm, wbuf):
     nb = (a + BLK - 1) // BLK
     best = np.inf
     big_m = np.inf
+
     for k in range(nb):
         s = k * BLK
         e = min(a, s + BLK)
@@ -660,6 +752,166 @@ def pass_low(F, Ki, diag, status, a, m, kii, tau, second, unit_diag, bm, wbuf):
     return best, -1, big_m
 
 
+# ---------------------------------------------------------------- helper thread ------
+# On a machine with a second core the loop hands the upper part of each long pass, and of
+# each long kernel row, to a helper thread (:func:`helper_loop`) and does the lower part
+# itself.  Every entry is computed by the same arithmetic either way, and the two partial
+# results combine with ties going to the lower part, so the run is bitwise the same as
+# with one thread (the passes are limited by memory bandwidth, which two cores double).
+
+
+@_jit
+def _row_of(ref, length, gram, cache):
+    """The stored row ``ref``: Gram row −1−ref when ref < 0, else cache[ref:ref+length]."""
+    if ref < 0:
+        return gram[-1 - ref]
+    return cache[ref:ref + length]
+
+
+@_jit
+def _split_point(count):
+    """Where the loop's part ends and the helper's begins (a multiple of 64)."""
+    return (count // 2) & ~63
+
+
+@_jit
+def _post(hctl, kind):
+    """Post a job of ``kind`` (its fields already written); returns its number."""
+    hctl[H_KIND] = kind
+    seq = hctl[H_POSTED] + 1
+    _store_release(hctl, H_POSTED, seq)
+    return seq
+
+
+@_jit
+def _await(hctl, seq):
+    """Wait until the helper has finished job ``seq``."""
+    while _load_acquire(hctl, H_DONE) < seq:
+        _spin_pause()
+
+
+@_jit
+def row_split(XK, src, sq, count, out, ref, code, gamma, offset, degree, acc, ibuf, hctl):
+    """out[t] = K(x_src, x_t) for t < count (:func:`kernel_row`), the columns from the
+    split point on computed by the helper when one serves the loop; ``ref`` names ``out``
+    for the helper (see :func:`_row_of`)."""
+    if hctl[H_ON] == 1 and count >= SPLIT_ROW:
+        h = _split_point(count)
+        hctl[H_LO] = h
+        hctl[H_HI] = count
+        hctl[H_SRC] = src
+        hctl[H_REF_I] = ref
+        hctl[H_LEN] = count
+        seq = _post(hctl, JOB_ROW)
+        kernel_row_part(XK, src, sq[src], XK, sq, 0, h, out, code, gamma, offset, degree,
+                        acc, ibuf)
+        _await(hctl, seq)
+    else:
+        kernel_row(XK, src, sq[src], XK, sq, count, out, code, gamma, offset, degree, acc,
+                   ibuf)
+
+
+@_jit
+def up_split(F, Ki, Kj, ref_i, ref_j, di, dj, status, a, bm, wbuf, update, hctl, hval):
+    """:func:`pass_up` over positions < a, shared with the helper when one serves the loop."""
+    if hctl[H_ON] == 1 and a >= SPLIT_PASS:
+        h = _split_point(a)
+        hctl[H_LO] = h
+        hctl[H_HI] = a
+        hctl[H_REF_I] = ref_i
+        hctl[H_REF_J] = ref_j
+        hctl[H_LEN] = a if update else 0
+        hctl[H_FLAG] = 1 if update else 0
+        hval[HV_DI] = di
+        hval[HV_DJ] = dj
+        seq = _post(hctl, JOB_UP)
+        m, i = pass_up(F, Ki, Kj, di, dj, status, h, bm, wbuf, update)
+        _await(hctl, seq)
+        if hval[HV_RES] > m:  # ties go to the lower positions
+            return hval[HV_RES], h + hctl[H_RES]
+        return m, i
+    return pass_up(F, Ki, Kj, di, dj, status, a, bm, wbuf, update)
+
+
+@_jit
+def low_split(F, Ki, ref_i, diag, status, a, m, kii, tau, second, unit_diag, bm, wbuf, hctl,
+              hval):
+    """:func:`pass_low` over positions < a, shared with the helper when one serves the loop."""
+    if hctl[H_ON] == 1 and a >= SPLIT_PASS:
+        h = _split_point(a)
+        hctl[H_LO] = h
+        hctl[H_HI] = a
+        hctl[H_REF_I] = ref_i
+        hctl[H_LEN] = a
+        hctl[H_FLAG] = (1 if second else 0) + (2 if unit_diag else 0)
+        hval[HV_M] = m
+        hval[HV_KII] = kii
+        seq = _post(hctl, JOB_LOW)
+        best, j, big_m = pass_low(F, Ki, diag, status, h, m, kii, tau, second, unit_diag, bm,
+                                  wbuf)
+        _await(hctl, seq)
+        big_m = _fmin(big_m, hval[HV_RES2])
+        if hval[HV_RES] < best:  # ties go to the lower positions
+            j2 = hctl[H_RES]
+            return hval[HV_RES], (h + j2 if j2 >= 0 else -1), big_m
+        return best, j, big_m
+    return pass_low(F, Ki, diag, status, a, m, kii, tau, second, unit_diag, bm, wbuf)
+
+
+@_jit
+def helper_loop(hctl, hval, F, diag, status, gram, cache, XK, sq, istate, fstate):
+    """The helper thread: serve the jobs posted by :func:`smo_run` (its arrays, shared)
+    until JOB_EXIT.  Each job covers positions (or columns) hctl[H_LO]..hctl[H_HI]−1."""
+    bm = np.empty(F.shape[0] // BLK + 2)
+    wbuf = np.empty(BLK)
+    acc = np.empty(ROW_CHUNK)
+    ibuf = np.empty(ROW_CHUNK, dtype=np.int64)
+    seen = hctl[H_DONE]
+    tau = fstate[FS_TAU]
+    while True:
+        seen += 1
+        while _load_acquire(hctl, H_POSTED) < seen:
+            _spin_pause()
+        kind = hctl[H_KIND]
+        if kind == JOB_EXIT:
+            _store_release(hctl, H_DONE, seen)
+            return
+        lo = hctl[H_LO]
+        hi = hctl[H_HI]
+        ln = hctl[H_LEN]
+        if kind == JOB_ROW:
+            out = _row_of(hctl[H_REF_I], ln, gram, cache)
+            kernel_row_part(XK, hctl[H_SRC], sq[hctl[H_SRC]], XK, sq, lo, hi - lo, out[lo:hi],
+                            istate[IS_KERNEL], fstate[FS_GAMMA], fstate[FS_OFFSET],
+                            istate[IS_DEGREE], acc, ibuf)
+        elif kind == JOB_UP:
+            Ki = _row_of(hctl[H_REF_I], ln, gram, cache)
+            Kj = _row_of(hctl[H_REF_J], ln, gram, cache)
+            up = hctl[H_FLAG] == 1
+            m, i = pass_up(F[lo:hi], Ki[lo:hi], Kj[lo:hi], hval[HV_DI], hval[HV_DJ],
+                           status[lo:hi], hi - lo, bm, wbuf, up)
+            hval[HV_RES] = m
+            hctl[H_RES] = i
+        else:
+            Ki = _row_of(hctl[H_REF_I], ln, gram, cache)
+            flag = hctl[H_FLAG]
+            best, j, big_m = pass_low(F[lo:hi], Ki[lo:hi], diag[lo:hi], status[lo:hi],
+                                      hi - lo, hval[HV_M], hval[HV_KII], tau,
+                                      (flag & 1) != 0, (flag & 2) != 0, bm, wbuf)
+            hval[HV_RES] = best
+            hval[HV_RES2] = big_m
+            hctl[H_RES] = j
+        _store_release(hctl, H_DONE, seen)
+
+
+@_jit
+def helper_stop(hctl):
+    """Tell a helper serving the loop to return (the loop calls this on every exit)."""
+    if hctl[H_ON] == 1:
+        _post(hctl, JOB_EXIT)
+        hctl[H_ON] = 0
+
+
 # ---------------------------------------------------------------- the loop -----------
 
 
@@ -668,7 +920,7 @@ def smo_run(F, beta, lo, hi, diag, ysign, status, perm,
             gram, rowslot, cache, slot_of, slot_owner, lru_prev, lru_next, slot_stamp, slot_ver,
             vmaps, ext_row, XK, sq, acc, ibuf, bm, istate, fstate,
             tr_it, tr_i, tr_j, tr_ai, tr_aj, tr_step, tr_obj, tr_viol, tr_act,
-            ev_it, ev_kind, ev_val):
+            ev_it, ev_kind, ev_val, hctl, hval):
     """Run SMO iterations on the active positions until a stop or pause condition.
 
     Position arrays (n,): F, beta (updated in place), lo, hi, diag, ysign, status (uint8
@@ -709,11 +961,14 @@ def smo_run(F, beta, lo, hi, diag, ysign, status, perm,
     dj = 0.0
     Ki = cache[0:0]
     Kj = cache[0:0]
+    ref_i = 0
+    ref_j = 0
     wbuf = np.empty(BLK)
     ret = -1
     while True:
         if phase == 0:
-            m, i = pass_up(F, Ki, Kj, di, dj, status, a, bm, wbuf, pending)
+            m, i = up_split(F, Ki, Kj, ref_i, ref_j, di, dj, status, a, bm, wbuf, pending,
+                            hctl, hval)
             pending = False
             if ret >= 0:
                 break
@@ -729,14 +984,14 @@ def smo_run(F, beta, lo, hi, diag, ysign, status, perm,
                 break
             phase = 1
         if phase == 1:
-            ok, Ki = _fetch(i, a, perm, gram, rowslot, cache, slot_of, slot_owner, lru_prev,
-                            lru_next, slot_stamp, slot_ver, vmaps, ext_row, XK, sq, acc, ibuf,
-                            istate, fstate, it)
+            ok, Ki, ref_i = _fetch(i, a, perm, gram, rowslot, cache, slot_of, slot_owner,
+                                   lru_prev, lru_next, slot_stamp, slot_ver, vmaps, ext_row, XK,
+                                   sq, acc, ibuf, istate, fstate, it, hctl)
             if not ok:
                 ret = RUN_NEED_ROW
                 break
-            best, j, big_m = pass_low(F, Ki, diag, status, a, m, diag[i], tau, second,
-                                      unit_diag, bm, wbuf)
+            best, j, big_m = low_split(F, Ki, ref_i, diag, status, a, m, diag[i], tau, second,
+                                       unit_diag, bm, wbuf, hctl, hval)
             viol = m - big_m
             if j < 0 or viol <= tol:
                 ret = RUN_CONVERGED
@@ -746,16 +1001,16 @@ def smo_run(F, beta, lo, hi, diag, ysign, status, perm,
                 break
             phase = 2
         # phase 2: the step
-        ok, Kj = _fetch(j, a, perm, gram, rowslot, cache, slot_of, slot_owner, lru_prev,
-                        lru_next, slot_stamp, slot_ver, vmaps, ext_row, XK, sq, acc, ibuf,
-                        istate, fstate, it)
+        ok, Kj, ref_j = _fetch(j, a, perm, gram, rowslot, cache, slot_of, slot_owner,
+                               lru_prev, lru_next, slot_stamp, slot_ver, vmaps, ext_row, XK, sq,
+                               acc, ibuf, istate, fstate, it, hctl)
         if not ok:
             ret = RUN_NEED_ROW
             break
         if Ki.shape[0] == 0:  # resumed after an external row: fetch row i again (a hit)
-            ok, Ki = _fetch(i, a, perm, gram, rowslot, cache, slot_of, slot_owner, lru_prev,
-                            lru_next, slot_stamp, slot_ver, vmaps, ext_row, XK, sq, acc, ibuf,
-                            istate, fstate, it)
+            ok, Ki, ref_i = _fetch(i, a, perm, gram, rowslot, cache, slot_of, slot_owner,
+                                   lru_prev, lru_next, slot_stamp, slot_ver, vmaps, ext_row, XK,
+                                   sq, acc, ibuf, istate, fstate, it, hctl)
         # two-variable subproblem along βᵢ += s, βⱼ −= s (Platt 1998; Fan, Chen & Lin
         # 2005, eq. 15): unconstrained minimiser s = bᵢⱼ/aᵢⱼ, clipped to the box
         kij = Ki[j]
@@ -824,6 +1079,7 @@ def smo_run(F, beta, lo, hi, diag, ysign, status, perm,
             ret = RUN_STALLED
         phase = 0
     # on every exit F matches beta (a pending update was applied by pass_up)
+    helper_stop(hctl)
     istate[IS_ITER] = it
     istate[IS_PHASE] = phase if ret == RUN_NEED_ROW else 0
     istate[IS_SEL_I] = i

@@ -26,6 +26,8 @@ from __future__ import annotations
 
 import math
 import mmap
+import os
+import threading
 import time
 import warnings
 from collections.abc import Callable
@@ -66,6 +68,8 @@ CACHE_START_MB = 64
 DEFAULT_GRAM_MB = 256
 #: layouts a cached row may lag behind before all cached rows are moved (see _shrink_cache)
 LAYOUT_VERSIONS = 16
+#: most threads the loop uses (itself and one helper that takes part of each long pass)
+MAX_THREADS = 2
 #: τ substituted for non-positive curvature (Fan, Chen & Lin 2005, section 4).
 TAU = 1e-12
 
@@ -152,6 +156,31 @@ def repair_start(problem: DualProblem, alpha: np.ndarray) -> np.ndarray:
     return a
 
 
+def available_cores() -> int:
+    """Cores this process may run on (1 under NUMBA_DISABLE_JIT: plain Python holds the GIL)."""
+    if _k.config.DISABLE_JIT:
+        return 1
+    try:
+        return max(1, len(os.sched_getaffinity(0)))
+    except AttributeError:  # pragma: no cover - platforms without affinity masks
+        return max(1, os.cpu_count() or 1)
+
+
+def _threads_from_environment() -> int:
+    """``KKTRACE_THREADS`` (a positive integer) if set, else ``MAX_THREADS``."""
+    raw = os.environ.get("KKTRACE_THREADS", "").strip()
+    if not raw:
+        return MAX_THREADS
+    try:
+        value = int(raw)
+    except ValueError:
+        value = 0
+    if value < 1:
+        raise InvalidInputError(
+            f"environment variable KKTRACE_THREADS must be a positive integer, got {raw!r}")
+    return value
+
+
 def _available_mb() -> float:
     try:
         with open("/proc/meminfo", encoding="ascii") as fh:
@@ -235,8 +264,13 @@ class _Engine:
     """
 
     def __init__(self, problem: DualProblem, alpha: np.ndarray, *, dtype: np.dtype,
-                 budget_mb: float, cache_mb: float, level: int, trace_rows: int) -> None:
+                 budget_mb: float, cache_mb: float, level: int, trace_rows: int,
+                 threads: int = 1) -> None:
         self.problem = problem
+        self.threads = threads
+        self.hctl = np.zeros(_k.H_SIZE, dtype=np.int64)
+        self.hval = np.zeros(_k.HV_SIZE)
+        self.helper_jobs = 0
         n = self.n = problem.n
         y = problem.y
         self.ysign = y.copy()
@@ -504,11 +538,25 @@ class _Engine:
         # XK columns are original indices in full-Gram mode and positions in row-cache mode
         cols = self.perm if self.mode == 0 else np.arange(self.n, dtype=np.int64)
         XV = np.ascontiguousarray(self.XK[:, cols[sv]])
-        _k.reconstruct(self.XK, self.sq, np.ascontiguousarray(cols[pos]), pos, XV,
-                       np.ascontiguousarray(self.sq[cols[sv]]),
-                       np.ascontiguousarray(self.beta[sv]), self.q, self.F, self.code,
-                       self.fstate[_k.FS_GAMMA], self.fstate[_k.FS_OFFSET],
-                       int(self.istate[_k.IS_DEGREE]), np.zeros((4, _k.CHUNK)), self.ibuf)
+        sqv = np.ascontiguousarray(self.sq[cols[sv]])
+        coef = np.ascontiguousarray(self.beta[sv])
+        targets = np.ascontiguousarray(cols[pos])
+
+        def part(lo: int, hi: int) -> None:
+            _k.reconstruct(self.XK, self.sq, targets[lo:hi], pos[lo:hi], XV, sqv, coef, self.q,
+                           self.F, self.code, self.fstate[_k.FS_GAMMA],
+                           self.fstate[_k.FS_OFFSET], int(self.istate[_k.IS_DEGREE]),
+                           np.zeros((4, _k.CHUNK)), np.zeros(_k.CHUNK, dtype=np.int64))
+
+        # each position is computed alone, so the positions split between two threads
+        # give the same bits as one thread
+        h = pos.size // 2 if self.threads > 1 and pos.size * sv.size >= 1 << 20 else 0
+        helper = threading.Thread(target=part, args=(h, pos.size)) if h else None
+        if helper is not None:
+            helper.start()
+        part(0, h if h else pos.size)
+        if helper is not None:
+            helper.join()
 
     def unshrink(self, it: int) -> None:
         """Reconstruct F of the shrunk variables and make every variable active again."""
@@ -574,7 +622,33 @@ class _Engine:
             for name in self.ev:
                 self.ev[name] = _grow(self.ev[name], evs, evs + 1)
 
+    def _start_helper(self) -> threading.Thread | None:
+        """A helper thread serving the next :meth:`run` (see ``_k.helper_loop``), when two
+        threads are allowed and the active set is long enough to share."""
+        hc = self.hctl
+        hc[:] = 0
+        if self.threads < 2 or self.active < _k.SPLIT_ROW or self.code == _k.KERNEL_EXTERNAL:
+            return None
+        hc[_k.H_ON] = 1
+        th = threading.Thread(
+            target=_k.helper_loop, name="kktrace-smo-helper", daemon=True,
+            args=(hc, self.hval, self.F, self.diag, self.status, self.gram, self.cache,
+                  self.XK, self.sq, self.istate, self.fstate))
+        th.start()
+        return th
+
     def run(self) -> int:
+        helper = self._start_helper()
+        try:
+            return self._run_loop()
+        finally:
+            if helper is not None:
+                if self.hctl[_k.H_ON] == 1:  # the loop did not reach its exit: stop the helper
+                    _k.helper_stop(self.hctl)
+                helper.join()
+                self.helper_jobs += int(self.hctl[_k.H_DONE]) - 1  # the last job is the exit
+
+    def _run_loop(self) -> int:
         tr, ev = self.tr, self.ev
         return int(_k.smo_run(
             self.F, self.beta, self.lo, self.hi, self.diag, self.ysign, self.status,
@@ -584,10 +658,12 @@ class _Engine:
             self.acc, self.ibuf, self.bm, self.istate, self.fstate,
             tr["iteration"], tr["i"], tr["j"], tr["alpha_i"], tr["alpha_j"], tr["step"],
             tr["objective"], tr["violation"], tr["active"],
-            ev["iteration"], ev["kind"], ev["value"]))
+            ev["iteration"], ev["kind"], ev["value"], self.hctl, self.hval))
 
 
 _compiled: set[str] = set()
+#: loop returns after which the run ends whatever the clock says
+_FINAL_CODES = (_k.RUN_CONVERGED, _k.RUN_NUMERICAL, _k.RUN_STALLED)
 
 
 def _warm_up(dtype: np.dtype) -> float:
@@ -616,6 +692,11 @@ def _warm_up(dtype: np.dtype) -> float:
     _k.relayout_cache(eng.cache, 3, 3, np.zeros(0, dtype=np.int64), eng.slot_ver, eng.vmaps, 0,
                       np.zeros(0, dtype=np.int64), 0)
     eng.rebuild_gradient(np.arange(3, dtype=np.int64))
+    hc = np.zeros(_k.H_SIZE, dtype=np.int64)
+    hc[_k.H_POSTED] = 1  # a helper told to return at once: compiles (or loads) it
+    hc[_k.H_KIND] = _k.JOB_EXIT
+    _k.helper_loop(hc, eng.hval, eng.F, eng.diag, eng.status, eng.gram, eng.cache, eng.XK,
+                   eng.sq, eng.istate, eng.fstate)
     _compiled.add(key)
     return time.perf_counter() - t0
 
@@ -638,6 +719,7 @@ def solve_smo(
     callback: Callable[[dict], bool | None] | None = None,
     callback_every: int = 1000,
     stall_window: int | None = None,
+    threads: int | None = None,
 ) -> SolveResult:
     """Solve ``problem`` by SMO and return α, bias, status, certificate and trace.
 
@@ -669,6 +751,11 @@ def solve_smo(
         ``StopIteration`` stops the run (status ``stopped_by_callback``).
     stall_window : stop as stalled after this many iterations without objective
         decrease; default max(10⁶, 10 n).
+    threads : threads the loop may use: 1 or 2 (``MAX_THREADS``), never more than the
+        cores this process may run on; default the environment variable
+        ``KKTRACE_THREADS``, else 2.  With two, a helper thread computes the upper
+        half of every long pass and kernel row; α, trace and certificate are bitwise the
+        same as with one.
 
     Returns
     -------
@@ -676,7 +763,8 @@ def solve_smo(
     gradient (after gradient reconstruction).  ``extra`` holds timings in seconds
     (``compile_seconds``, ``setup_seconds``, ``solve_seconds``), ``kernel_mode``
     (``"full_gram"`` or ``"column_cache"``), ``kernel_source``, kernel-row and cache
-    counts, ``shrinks``, ``reconstructions``, ``curvature_fixes`` and
+    counts, ``shrinks``, ``reconstructions``, ``curvature_fixes``, ``threads``,
+    ``helper_jobs`` (passes and kernel rows shared with the helper thread) and
     ``polish_iterations`` (float64 iterations after a float32 phase).  The trace has the
     SMO columns of :class:`solver.result.Trace`, events coded by :data:`EVENT_KINDS`
     (value: active-set size after a shrink, violation after a reconstruction, the
@@ -745,6 +833,10 @@ def solve_smo(
         raise InvalidInputError("option callback must be callable or None")
     callback_every = _positive_int(callback_every, "callback_every")
     stall_window = _positive_int(stall_window, "stall_window", allow_none=True)
+    threads = _positive_int(threads, "threads", allow_none=True)
+    if threads is None:
+        threads = _threads_from_environment()
+    threads = min(threads, available_cores(), MAX_THREADS)
     if stall_window is None:
         stall_window = max(1_000_000, 10 * n)
     alpha = problem.feasible_start() if alpha0 is None else _check_start(problem, alpha0)
@@ -752,7 +844,8 @@ def solve_smo(
     cfg = dict(tol=tol, max_iter=max_iter, time_limit=time_limit, selection=selection,
                shrinking=bool(shrinking), trace=trace, sample_every=sample_every,
                snapshot_every=snapshot_every, budget_mb=budget_mb, cache_mb=cache_mb,
-               callback=callback, callback_every=callback_every, stall_window=stall_window)
+               callback=callback, callback_every=callback_every, stall_window=stall_window,
+               threads=threads)
     ph = _run_phase(problem, alpha, dtype, cfg, t_start)
     polish_iterations = 0
     if dtype != np.float64 and ph["status"] == Status.CONVERGED:
@@ -785,6 +878,7 @@ def solve_smo(
         "snapshot_every": snapshot_every, "kernel_memory_mb": float(budget_mb),
         "kernel_dtype": kernel_dtype, "cache_mb": cache_mb, "warm_start": alpha0 is not None,
         "callback_every": callback_every, "stall_window": stall_window, "tau": TAU,
+        "threads": threads,
     }
     extra = dict(ph["extra"])
     extra["polish_iterations"] = polish_iterations
@@ -832,7 +926,7 @@ def _merge_phases(a: dict[str, Any], b: dict[str, Any]) -> dict[str, Any]:
     extra = dict(b["extra"])
     for key in ("compile_seconds", "setup_seconds", "solve_seconds", "kernel_rows_computed",
                 "cache_hits", "cache_misses", "cache_remisses", "cache_remaps", "curvature_fixes",
-                "shrinks", "reconstructions"):
+                "shrinks", "reconstructions", "helper_jobs"):
         extra[key] = a["extra"][key] + b["extra"][key]
     extra["kernel_mode"] = a["extra"]["kernel_mode"]
     out["extra"] = extra
@@ -852,7 +946,7 @@ def _run_phase(problem: DualProblem, alpha: np.ndarray, dtype: np.dtype, cfg: di
     level = {"full": 0, "sampled": 1, "off": 2}[cfg["trace"]]
     eng = _Engine(problem, alpha, dtype=dtype, budget_mb=cfg["budget_mb"],
                   cache_mb=cfg["cache_mb"], level=level,
-                  trace_rows=min(max_iter, max(4096, 4 * n)))
+                  trace_rows=min(max_iter, max(4096, 4 * n)), threads=cfg["threads"])
     ist, fst = eng.istate, eng.fstate
     ist[_k.IS_SAMPLE] = cfg["sample_every"]
     ist[_k.IS_SECOND_ORDER] = 1 if cfg["selection"] == "second_order" else 0
@@ -871,18 +965,24 @@ def _run_phase(problem: DualProblem, alpha: np.ndarray, dtype: np.dtype, cfg: di
     status: Status | None = None
     detail = ""
     next_cb = callback_every if callback is not None else None
-    chunk = 1000
+    # the clock is read at least every ``clock_at`` iterations (an absolute count: the
+    # loop also returns for shrinking, which must not push the next reading further)
+    clock_at = int(ist[_k.IS_ITER]) + 1000
+    t_clock, it_clock = time.perf_counter(), int(ist[_k.IS_ITER])
     while status is None:
         it = int(ist[_k.IS_ITER])
         stop = min(max_iter, (it // snapshot_every + 1) * snapshot_every)
         if next_cb is not None:
             stop = min(stop, next_cb)
         if time_limit is not None:
-            stop = min(stop, it + chunk)
+            stop = min(stop, clock_at)
         ist[_k.IS_STOP_AT] = stop
-        t_run, it_run = time.perf_counter(), it
         code = eng.run()
         it = int(ist[_k.IS_ITER])
+        if (time_limit is not None and code not in _FINAL_CODES
+                and time.perf_counter() - t_start > time_limit):
+            status, detail = Status.TIME_LIMIT, f"{time_limit:g} s"
+            break
         if code == _k.RUN_TRACE_FULL:
             eng.grow_trace()
             continue
@@ -911,9 +1011,11 @@ def _run_phase(problem: DualProblem, alpha: np.ndarray, dtype: np.dtype, cfg: di
             detail = f"no objective decrease in {stall_window} iterations"
             break
         # pause
-        if time_limit is not None and it > it_run:
-            per_it = (time.perf_counter() - t_run) / (it - it_run)
-            chunk = int(min(100_000, max(100, 0.05 / max(per_it, 1e-9))))
+        if time_limit is not None and it >= clock_at:  # about 20 clock readings a second
+            now = time.perf_counter()
+            per_it = (now - t_clock) / max(1, it - it_clock)
+            clock_at = it + int(min(100_000, max(100, 0.05 / max(per_it, 1e-9))))
+            t_clock, it_clock = now, it
         if it % snapshot_every == 0 and it > snap_its[-1]:
             snap_its.append(it)
             snaps.append(eng.alpha())
@@ -932,9 +1034,6 @@ def _run_phase(problem: DualProblem, alpha: np.ndarray, dtype: np.dtype, cfg: di
                 status = Status.STOPPED_BY_CALLBACK
                 detail = f"at iteration {it + first_iteration}"
                 break
-        if time_limit is not None and time.perf_counter() - t_start > time_limit:
-            status, detail = Status.TIME_LIMIT, f"{time_limit:g} s"
-            break
     it = int(ist[_k.IS_ITER])
     if eng.active < n:
         eng.unshrink(it)
@@ -959,7 +1058,8 @@ def _run_phase(problem: DualProblem, alpha: np.ndarray, dtype: np.dtype, cfg: di
         "cache_remisses": int(ist[_k.IS_REMISSES]), "cache_remaps": int(ist[_k.IS_REMAPS]),
         "cache_capacity_mb": eng.cap_elems * dtype.itemsize / 2**20,
         "curvature_fixes": int(ist[_k.IS_CURV_FIXES]), "shrinks": eng.shrinks,
-        "reconstructions": eng.reconstructions,
+        "reconstructions": eng.reconstructions, "threads": eng.threads,
+        "helper_jobs": eng.helper_jobs,
         "loop_violation": float(fst[_k.FS_VIOL]), "loop_objective": float(fst[_k.FS_OBJ]),
     }
     return {"status": status, "detail": detail, "alpha": alpha, "G": eng.gradient(),

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import time
+
 import numpy as np
 import pytest
 
@@ -149,6 +151,20 @@ def test_time_limit(rng):
         r = solve_smo(prob, tol=1e-12, time_limit=0.05, trace="off")
     assert r.status == Status.TIME_LIMIT and r.seconds < 5.0
     assert r.certificate.max_violation > 1e-12
+
+
+def test_time_limit_is_kept_while_shrinking_returns_every_1000_iterations(rng):
+    # the loop returns to the driver for shrinking every 1000 iterations; those returns
+    # must not postpone the clock reading (they once did, and the limit was never applied)
+    X, lab = _blobs(rng, n=4000, d=5, shift=0.3)
+    prob = binary_classification(X, lab, kernel=make_kernel("rbf", gamma=0.5), C=100.0)
+    budget = 0.05
+    t0 = time.perf_counter()
+    with pytest.warns(ConvergenceWarning, match="wall-clock"):
+        r = solve_smo(prob, tol=1e-12, time_limit=budget, threads=1)
+    assert r.status == Status.TIME_LIMIT
+    assert r.iterations <= 2000  # the first readings already exceed the budget
+    assert time.perf_counter() - t0 < 5.0
 
 
 def test_stall_window(rng):
@@ -299,7 +315,7 @@ def test_options_resolved_as_plain_data(problem):
     r = solve_smo(problem)
     expected = {"tol", "max_iter", "time_limit", "selection", "shrinking", "trace",
                 "sample_every", "snapshot_every", "kernel_memory_mb", "kernel_dtype",
-                "cache_mb", "warm_start", "callback_every", "stall_window", "tau"}
+                "cache_mb", "warm_start", "callback_every", "stall_window", "tau", "threads"}
     assert expected <= set(r.options)
     json.dumps(dict(r.options))
     json.dumps({k: v for k, v in r.extra.items()})
