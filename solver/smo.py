@@ -17,6 +17,10 @@ cost 0.5 s/GB (ordinary pages) to 3 s/GB (huge pages), more than recomputing a k
 costs, which is why the default Gram budget is small and the cache grows only while
 evicted rows keep being requested.
 
+Threads.  With ``threads=2`` (the default where two cores are available) a helper thread
+computes the upper half of every long pass and kernel row (see ``_k.helper_loop``); the
+run is bitwise the same as with one thread.
+
 Trace.  Row k of the trace describes the state after iteration k (1-based); α at any
 recorded iteration of a full trace is rebuilt exactly from the nearest earlier snapshot by
 :func:`replay_alpha` (values are copied, never recomputed).
@@ -68,6 +72,7 @@ CACHE_START_MB = 64
 DEFAULT_GRAM_MB = 256
 #: layouts a cached row may lag behind before all cached rows are moved (see _shrink_cache)
 LAYOUT_VERSIONS = 16
+RELAYOUT_GAIN = 1.2
 #: most threads the loop uses (itself and one helper that takes part of each long pass)
 MAX_THREADS = 2
 #: τ substituted for non-positive curvature (Fan, Chen & Lin 2005, section 4).
@@ -415,6 +420,7 @@ class _Engine:
         cur = int(ist[_k.IS_VERSION])
         stride = int(ist[_k.IS_STRIDE])
         full = ist[_k.IS_USED] >= ist[_k.IS_SLOTS]  # evicting: shorter slots give more room
+        full = full and RELAYOUT_GAIN * new_a <= stride
         if not (eager or full) and stride < 2 * new_a and cur + 1 < self.vmaps.shape[0]:
             vm = self.vmaps
             for v in range(cur):
@@ -424,7 +430,14 @@ class _Engine:
             return
         used = int(ist[_k.IS_USED])
         owners = self.slot_owner[:used]
-        survivors = np.flatnonzero(owners >= 0)
+        # rows of variables shrunk away are not requested again before the cache is
+        # flushed (unshrink), so they are dropped rather than moved
+        live = np.zeros(self.n, dtype=bool)
+        live[self.perm[:new_a]] = True
+        held = owners >= 0
+        dead = owners[held & ~live[np.maximum(owners, 0)]]
+        self.slot_of[dead] = -1
+        survivors = np.flatnonzero(held & live[np.maximum(owners, 0)])
         _k.relayout_cache(self.cache, stride, new_a, survivors, self.slot_ver, self.vmaps,
                           cur, np.ascontiguousarray(keep, dtype=np.int64), new_a)
         owners = owners[survivors].copy()

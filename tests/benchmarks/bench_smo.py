@@ -211,6 +211,8 @@ def main(argv: list[str] | None = None) -> None:
           f"scikit-learn {sklearn.__version__} "
           f"SVC with cache_size={SVC_CACHE_MB} MB; numba {numba.__version__}; "
           f"{os.cpu_count()} CPUs; load average {os.getloadavg()[0]:.1f} at start")
+    print(f"kktrace threads: KKTRACE_THREADS={os.environ.get('KKTRACE_THREADS', '(unset)')} "
+          f"(the solver uses at most 2, never more than the cores; SVC uses one)")
     cold, warm, imp = compile_times()
     print(f"compile: cold (empty NUMBA_CACHE_DIR) {cold:.2f} s [target <= 20 s]; "
           f"warm load {warm:.2f} s [target <= 3 s]; import solver.smo {imp:.2f} s")
