@@ -169,6 +169,7 @@ if config.DISABLE_JIT:  # pragma: no cover - exercised in a subprocess test
 else:
     from llvmlite import ir
     from numba import types
+    from numba.core import cgutils
     from numba.extending import intrinsic
 
     def _llvm_binary(name: str):
@@ -192,7 +193,6 @@ else:
     # The loop and its helper thread meet through two counters: an acquire load / release
     # store on them orders every plain access to the shared arrays before and after.
     def _item_pointer(context, builder, aryty, ary_val, idx):
-        from numba.core import cgutils
         ary = context.make_array(aryty)(context, builder, ary_val)
         return cgutils.get_item_pointer(context, builder, aryty, ary, [idx])
 

@@ -642,12 +642,12 @@ class _Engine:
         hc[:] = 0
         if self.threads < 2 or self.active < _k.SPLIT_ROW or self.code == _k.KERNEL_EXTERNAL:
             return None
-        hc[_k.H_ON] = 1
         th = threading.Thread(
             target=_k.helper_loop, name="kktrace-smo-helper", daemon=True,
             args=(hc, self.hval, self.F, self.diag, self.status, self.gram, self.cache,
                   self.XK, self.sq, self.istate, self.fstate))
         th.start()
+        hc[_k.H_ON] = 1  # the loop shares work only with a thread that exists
         return th
 
     def run(self) -> int:
