@@ -72,6 +72,8 @@ CACHE_START_MB = 64
 DEFAULT_GRAM_MB = 256
 #: layouts a cached row may lag behind before all cached rows are moved (see _shrink_cache)
 LAYOUT_VERSIONS = 16
+#: a full row cache is re-laid out at a shrink only when that gives at least this factor
+#: more slots (each relayout moves every cached row; see DEVELOPERS.md, SMO speed)
 RELAYOUT_GAIN = 1.2
 #: most threads the loop uses (itself and one helper that takes part of each long pass)
 MAX_THREADS = 2
@@ -419,8 +421,8 @@ class _Engine:
         new_a = int(keep.size)
         cur = int(ist[_k.IS_VERSION])
         stride = int(ist[_k.IS_STRIDE])
-        full = ist[_k.IS_USED] >= ist[_k.IS_SLOTS]  # evicting: shorter slots give more room
-        full = full and RELAYOUT_GAIN * new_a <= stride
+        # evicting, and shorter slots give enough more room
+        full = ist[_k.IS_USED] >= ist[_k.IS_SLOTS] and RELAYOUT_GAIN * new_a <= stride
         if not (eager or full) and stride < 2 * new_a and cur + 1 < self.vmaps.shape[0]:
             vm = self.vmaps
             for v in range(cur):
@@ -435,9 +437,9 @@ class _Engine:
         live = np.zeros(self.n, dtype=bool)
         live[self.perm[:new_a]] = True
         held = owners >= 0
-        dead = owners[held & ~live[np.maximum(owners, 0)]]
-        self.slot_of[dead] = -1
-        survivors = np.flatnonzero(held & live[np.maximum(owners, 0)])
+        alive = held & live[np.maximum(owners, 0)]
+        self.slot_of[owners[held & ~alive]] = -1
+        survivors = np.flatnonzero(alive)
         _k.relayout_cache(self.cache, stride, new_a, survivors, self.slot_ver, self.vmaps,
                           cur, np.ascontiguousarray(keep, dtype=np.int64), new_a)
         owners = owners[survivors].copy()
@@ -561,15 +563,15 @@ class _Engine:
                            self.fstate[_k.FS_OFFSET], int(self.istate[_k.IS_DEGREE]),
                            np.zeros((4, _k.CHUNK)), np.zeros(_k.CHUNK, dtype=np.int64))
 
-        # each position is computed alone, so the positions split between two threads
-        # give the same bits as one thread
-        h = pos.size // 2 if self.threads > 1 and pos.size * sv.size >= 1 << 20 else 0
-        helper = threading.Thread(target=part, args=(h, pos.size)) if h else None
-        if helper is not None:
+        if self.threads > 1 and pos.size * sv.size >= 1 << 20:
+            # each position is computed alone, so two threads give the bits of one
+            h = pos.size // 2
+            helper = threading.Thread(target=part, args=(h, pos.size))
             helper.start()
-        part(0, h if h else pos.size)
-        if helper is not None:
+            part(0, h)
             helper.join()
+        else:
+            part(0, pos.size)
 
     def unshrink(self, it: int) -> None:
         """Reconstruct F of the shrunk variables and make every variable active again."""
