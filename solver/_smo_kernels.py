@@ -19,6 +19,8 @@ arrays, cached on disk and also runs under NUMBA_DISABLE_JIT=1.
 
 from __future__ import annotations
 
+import platform
+
 import numpy as np
 from numba import config, njit
 
@@ -91,12 +93,11 @@ H_ON = 16  # 1 while a helper thread serves the running loop
 H_KIND = 17
 H_LO = 18  # the helper's part: positions (or columns) H_LO..H_HI-1
 H_HI = 19
-H_REF_I = 20  # rows, by reference (see :func:`_row_of`), and their length
+H_REF_I = 20  # rows (of length H_HI), by reference (see :func:`_row_of`)
 H_REF_J = 21
-H_LEN = 22
-H_SRC = 23  # data column of a kernel row
-H_FLAG = 24
-H_RES = 25  # index found by the helper (−1: none)
+H_SRC = 22  # data column of a kernel row
+H_FLAG = 23
+H_RES = 24  # index found by the helper (−1: none)
 H_SIZE = 32
 HV_DI = 0
 HV_DJ = 1
@@ -170,6 +171,8 @@ else:
     from llvmlite import ir
     from numba import types
     from numba.core import cgutils
+
+    _X86 = platform.machine().lower() in ("x86_64", "amd64", "i686", "x86")
     from numba.extending import intrinsic
 
     def _llvm_binary(name: str):
@@ -222,8 +225,7 @@ else:
         sig = types.void()
 
         def codegen(context, builder, signature, args):
-            import platform
-            if platform.machine().lower() in ("x86_64", "amd64", "i686", "x86"):
+            if _X86:
                 fn = builder.module.declare_intrinsic(
                     "llvm.x86.sse2.pause", fnty=ir.FunctionType(ir.VoidType(), []))
                 builder.call(fn, [])
@@ -757,7 +759,7 @@ def pass_low(F, Ki, diag, status, a, m, kii, tau, second, unit_diag, bm, wbuf):
 # each long kernel row, to a helper thread (:func:`helper_loop`) and does the lower part
 # itself.  Every entry is computed by the same arithmetic either way, and the two partial
 # results combine with ties going to the lower part, so the run is bitwise the same as
-# with one thread (the passes are limited by memory bandwidth, which two cores double).
+# with one thread.  Measured gains per phase are in DEVELOPERS.md ("SMO speed").
 
 
 @_jit
@@ -801,7 +803,6 @@ def row_split(XK, src, sq, count, out, ref, code, gamma, offset, degree, acc, ib
         hctl[H_HI] = count
         hctl[H_SRC] = src
         hctl[H_REF_I] = ref
-        hctl[H_LEN] = count
         seq = _post(hctl, JOB_ROW)
         kernel_row_part(XK, src, sq[src], XK, sq, 0, h, out, code, gamma, offset, degree,
                         acc, ibuf)
@@ -820,7 +821,6 @@ def up_split(F, Ki, Kj, ref_i, ref_j, di, dj, status, a, bm, wbuf, update, hctl,
         hctl[H_HI] = a
         hctl[H_REF_I] = ref_i
         hctl[H_REF_J] = ref_j
-        hctl[H_LEN] = a if update else 0
         hctl[H_FLAG] = 1 if update else 0
         hval[HV_DI] = di
         hval[HV_DJ] = dj
@@ -842,7 +842,6 @@ def low_split(F, Ki, ref_i, diag, status, a, m, kii, tau, second, unit_diag, bm,
         hctl[H_LO] = h
         hctl[H_HI] = a
         hctl[H_REF_I] = ref_i
-        hctl[H_LEN] = a
         hctl[H_FLAG] = (1 if second else 0) + (2 if unit_diag else 0)
         hval[HV_M] = m
         hval[HV_KII] = kii
@@ -878,22 +877,21 @@ def helper_loop(hctl, hval, F, diag, status, gram, cache, XK, sq, istate, fstate
             return
         lo = hctl[H_LO]
         hi = hctl[H_HI]
-        ln = hctl[H_LEN]
         if kind == JOB_ROW:
-            out = _row_of(hctl[H_REF_I], ln, gram, cache)
+            out = _row_of(hctl[H_REF_I], hi, gram, cache)
             kernel_row_part(XK, hctl[H_SRC], sq[hctl[H_SRC]], XK, sq, lo, hi - lo, out[lo:hi],
                             istate[IS_KERNEL], fstate[FS_GAMMA], fstate[FS_OFFSET],
                             istate[IS_DEGREE], acc, ibuf)
         elif kind == JOB_UP:
-            Ki = _row_of(hctl[H_REF_I], ln, gram, cache)
-            Kj = _row_of(hctl[H_REF_J], ln, gram, cache)
-            up = hctl[H_FLAG] == 1
+            up = hctl[H_FLAG] == 1  # without an update the rows are not read
+            Ki = _row_of(hctl[H_REF_I], hi, gram, cache)
+            Kj = _row_of(hctl[H_REF_J], hi, gram, cache)
             m, i = pass_up(F[lo:hi], Ki[lo:hi], Kj[lo:hi], hval[HV_DI], hval[HV_DJ],
                            status[lo:hi], hi - lo, bm, wbuf, up)
             hval[HV_RES] = m
             hctl[H_RES] = i
         else:
-            Ki = _row_of(hctl[H_REF_I], ln, gram, cache)
+            Ki = _row_of(hctl[H_REF_I], hi, gram, cache)
             flag = hctl[H_FLAG]
             best, j, big_m = pass_low(F[lo:hi], Ki[lo:hi], diag[lo:hi], status[lo:hi],
                                       hi - lo, hval[HV_M], hval[HV_KII], tau,
