@@ -9,7 +9,10 @@ cache can hold most of the columns it needs; both solvers use shrinking.
 Every measured fit runs in its own fresh process (so peak memory is per fit and page
 faults are paid by each), one after the other, never in parallel.  Times are wall-clock
 seconds and CPU seconds (user + system of that process); on a shared machine the CPU
-ratio is the steadier figure.  "end to end" for kktrace is everything ``solve_smo`` does
+ratio is the steadier figure.  Each solver is fitted several times, alternating, and its
+fastest fit is kept: 3 fits for n > 5000, 7 for the sub-second cases (n <= 5000), where one
+slow moment of the machine once decided a whole 3-fit minimum (0.05 s against 0.02-0.03 s).
+"end to end" for kktrace is everything ``solve_smo`` does
 (kernel rows + solve + full trace + certificate) with default options and the compiled
 code already on disk; the numba compile time is measured separately (cold: empty
 NUMBA_CACHE_DIR in a fresh process; warm: loading from that cache in another).  Finally
@@ -18,7 +21,7 @@ the largest size is fitted once more with the full Gram forced, for the memory t
 Usage::
 
     python tests/benchmarks/bench_smo.py                 # all sizes
-    python tests/benchmarks/bench_smo.py --sizes 2000 5000 --repeat 1   # quicker, noisier
+    python tests/benchmarks/bench_smo.py --sizes 2000 5000 --repeat-small 1   # quicker, noisier
 """
 
 from __future__ import annotations
@@ -183,8 +186,10 @@ def main(argv: list[str] | None = None) -> None:
     ap.add_argument("--sizes", type=int, nargs="+", default=list(SIZES))
     ap.add_argument("--Cs", type=float, nargs="+", default=list(CS))
     ap.add_argument("--repeat", type=int, default=3,
-                    help="fits per solver, alternating; the fastest of each is kept (single fits "
-                         "under 0.5 s varied by 2x on the shared VMs)")
+                    help="fits per solver for n > 5000, alternating; the fastest of each is kept")
+    ap.add_argument("--repeat-small", type=int, default=7,
+                    help="fits per solver for n <= 5000 (sub-second fits, which varied by 2x on "
+                         "the shared VMs)")
     ap.add_argument("--first-order-limit", type=float, default=120.0,
                     help="time limit (s) of the first-order comparison fit; 0 skips it")
     ap.add_argument("--child", choices=("svc", "smo"))
@@ -212,7 +217,8 @@ def main(argv: list[str] | None = None) -> None:
           f"SVC with cache_size={SVC_CACHE_MB} MB; numba {numba.__version__}; "
           f"{os.cpu_count()} CPUs; load average {os.getloadavg()[0]:.1f} at start")
     print(f"kktrace threads: KKTRACE_THREADS={os.environ.get('KKTRACE_THREADS', '(unset)')} "
-          f"(the solver uses at most 2, never more than the cores; SVC uses one)")
+          f"(the solver uses at most 2, never more than the cores; SVC uses one); fastest of "
+          f"{args.repeat_small} fits per solver for n <= 5000, of {args.repeat} above")
     cold, warm, imp = compile_times()
     print(f"compile: cold (empty NUMBA_CACHE_DIR) {cold:.2f} s [target <= 20 s]; "
           f"warm load {warm:.2f} s [target <= 3 s]; import solver.smo {imp:.2f} s")
@@ -227,7 +233,8 @@ def main(argv: list[str] | None = None) -> None:
     for n in args.sizes:
         for C in args.Cs:
             svcs, fulls = [], []
-            for _ in range(args.repeat):  # alternating, so both see the same machine state
+            repeat = args.repeat_small if n <= 5000 else args.repeat
+            for _ in range(repeat):  # alternating, so both see the same machine state
                 svcs.append(_run_child(n, C, "svc"))
                 fulls.append(_run_child(n, C, "smo", values=True))
             svc = min(svcs, key=lambda r: r["wall"])
