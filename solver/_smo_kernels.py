@@ -777,9 +777,16 @@ def _split_point(count):
 
 
 @_jit
-def _post(hctl, kind):
-    """Post a job of ``kind`` (its fields already written); returns its number."""
+def _post(hctl, kind, lo, hi, src, ref_i, ref_j, flag):
+    """Post a job of ``kind`` over positions (or columns) lo..hi−1, with its fields (the
+    values it needs, if any, already in hval); returns its number."""
     hctl[H_KIND] = kind
+    hctl[H_LO] = lo
+    hctl[H_HI] = hi
+    hctl[H_SRC] = src
+    hctl[H_REF_I] = ref_i
+    hctl[H_REF_J] = ref_j
+    hctl[H_FLAG] = flag
     seq = hctl[H_POSTED] + 1
     _store_release(hctl, H_POSTED, seq)
     return seq
@@ -799,11 +806,7 @@ def row_split(XK, src, sq, count, out, ref, code, gamma, offset, degree, acc, ib
     for the helper (see :func:`_row_of`)."""
     if hctl[H_ON] == 1 and count >= SPLIT_ROW:
         h = _split_point(count)
-        hctl[H_LO] = h
-        hctl[H_HI] = count
-        hctl[H_SRC] = src
-        hctl[H_REF_I] = ref
-        seq = _post(hctl, JOB_ROW)
+        seq = _post(hctl, JOB_ROW, h, count, src, ref, 0, 0)
         kernel_row_part(XK, src, sq[src], XK, sq, 0, h, out, code, gamma, offset, degree,
                         acc, ibuf)
         _await(hctl, seq)
@@ -817,14 +820,9 @@ def up_split(F, Ki, Kj, ref_i, ref_j, di, dj, status, a, bm, wbuf, update, hctl,
     """:func:`pass_up` over positions < a, shared with the helper when one serves the loop."""
     if hctl[H_ON] == 1 and a >= SPLIT_PASS:
         h = _split_point(a)
-        hctl[H_LO] = h
-        hctl[H_HI] = a
-        hctl[H_REF_I] = ref_i
-        hctl[H_REF_J] = ref_j
-        hctl[H_FLAG] = 1 if update else 0
         hval[HV_DI] = di
         hval[HV_DJ] = dj
-        seq = _post(hctl, JOB_UP)
+        seq = _post(hctl, JOB_UP, h, a, 0, ref_i, ref_j, 1 if update else 0)
         m, i = pass_up(F, Ki, Kj, di, dj, status, h, bm, wbuf, update)
         _await(hctl, seq)
         if hval[HV_RES] > m:  # ties go to the lower positions
@@ -839,13 +837,10 @@ def low_split(F, Ki, ref_i, diag, status, a, m, kii, tau, second, unit_diag, bm,
     """:func:`pass_low` over positions < a, shared with the helper when one serves the loop."""
     if hctl[H_ON] == 1 and a >= SPLIT_PASS:
         h = _split_point(a)
-        hctl[H_LO] = h
-        hctl[H_HI] = a
-        hctl[H_REF_I] = ref_i
-        hctl[H_FLAG] = (1 if second else 0) + (2 if unit_diag else 0)
         hval[HV_M] = m
         hval[HV_KII] = kii
-        seq = _post(hctl, JOB_LOW)
+        flag = (1 if second else 0) + (2 if unit_diag else 0)
+        seq = _post(hctl, JOB_LOW, h, a, 0, ref_i, 0, flag)
         best, j, big_m = pass_low(F, Ki, diag, status, h, m, kii, tau, second, unit_diag, bm,
                                   wbuf)
         _await(hctl, seq)
@@ -906,7 +901,7 @@ def helper_loop(hctl, hval, F, diag, status, gram, cache, XK, sq, istate, fstate
 def helper_stop(hctl):
     """Tell a helper serving the loop to return (the loop calls this on every exit)."""
     if hctl[H_ON] == 1:
-        _post(hctl, JOB_EXIT)
+        _post(hctl, JOB_EXIT, 0, 0, 0, 0, 0, 0)
         hctl[H_ON] = 0
 
 
