@@ -85,8 +85,11 @@ FS_OFFSET = 8
 FS_SIZE = 16
 
 # helper-thread protocol (see :func:`helper_loop`): hctl (H_SIZE,) int64, hval (HV_SIZE,)
-# float64.  The loop posts a job by raising hctl[H_POSTED]; the helper answers by raising
-# hctl[H_DONE] to the same number.  The two counters sit on separate cache lines.
+# float64.  The loop posts a job by raising hctl[H_POSTED]; whoever first raises
+# hctl[H_CLAIM] to the job's number (compare-and-swap) does the helper's part: the helper,
+# which then raises hctl[H_DONE] to that number, or the loop, once its own part is done
+# and the helper has not started (see :func:`_take_back`).  The two counters POSTED and
+# DONE sit on separate cache lines.
 H_POSTED = 0
 H_DONE = 8
 H_ON = 16  # 1 while a helper thread serves the running loop
@@ -98,6 +101,8 @@ H_REF_J = 21
 H_SRC = 22  # data column of a kernel row
 H_FLAG = 23
 H_RES = 24  # index found by the helper (−1: none)
+H_CLAIM = 25  # number of the last job claimed, by the helper or taken back by the loop
+H_TAKEN = 26  # jobs of this call the loop took back and did itself (helper not there yet)
 H_SIZE = 32
 HV_DI = 0
 HV_DJ = 1
@@ -164,6 +169,12 @@ if config.DISABLE_JIT:  # pragma: no cover - exercised in a subprocess test
     def _store_release(arr, k, v):
         arr[k] = v
 
+    def _claim(arr, k, old, new):
+        if arr[k] == old:
+            arr[k] = new
+            return True
+        return False
+
     def _spin_pause():
         return None
 
@@ -217,6 +228,18 @@ else:
             ptr = _item_pointer(context, builder, signature.args[0], args[0], args[1])
             builder.store_atomic(args[2], ptr, "release", 8)
             return context.get_dummy_value()
+
+        return sig, codegen
+
+    @intrinsic
+    def _claim(typingctx, arr, k, old, new):
+        """Atomically arr[k] ← new if arr[k] == old; True when it did (compare-and-swap)."""
+        sig = types.boolean(arr, k, types.int64, types.int64)
+
+        def codegen(context, builder, signature, args):
+            ptr = _item_pointer(context, builder, signature.args[0], args[0], args[1])
+            res = builder.cmpxchg(ptr, args[2], args[3], "acq_rel", "acquire")
+            return builder.extract_value(res, 1)
 
         return sig, codegen
 
@@ -793,10 +816,20 @@ def _post(hctl, kind, lo, hi, src, ref_i, ref_j, flag):
 
 
 @_jit
-def _await(hctl, seq):
-    """Wait until the helper has finished job ``seq``."""
+def _take_back(hctl, seq):
+    """After the loop has done its part of job ``seq``: True when the helper had not
+    claimed the job yet and the loop has taken it back (the loop then does the helper's
+    part itself), False once the helper has finished it.  So a helper that is slow to
+    start, or waits for a core on a busy machine, never holds the loop up before it has
+    begun a job."""
+    if _load_acquire(hctl, H_DONE) >= seq:
+        return False
+    if _claim(hctl, H_CLAIM, seq - 1, seq):
+        hctl[H_TAKEN] += 1
+        return True
     while _load_acquire(hctl, H_DONE) < seq:
         _spin_pause()
+    return False
 
 
 @_jit
@@ -809,7 +842,9 @@ def row_split(XK, src, sq, count, out, ref, code, gamma, offset, degree, acc, ib
         seq = _post(hctl, JOB_ROW, h, count, src, ref, 0, 0)
         kernel_row_part(XK, src, sq[src], XK, sq, 0, h, out, code, gamma, offset, degree,
                         acc, ibuf)
-        _await(hctl, seq)
+        if _take_back(hctl, seq):
+            kernel_row_part(XK, src, sq[src], XK, sq, h, count - h, out[h:count], code,
+                            gamma, offset, degree, acc, ibuf)
     else:
         kernel_row(XK, src, sq[src], XK, sq, count, out, code, gamma, offset, degree, acc,
                    ibuf)
@@ -824,9 +859,13 @@ def up_split(F, Ki, Kj, ref_i, ref_j, di, dj, status, a, bm, wbuf, update, hctl,
         hval[HV_DJ] = dj
         seq = _post(hctl, JOB_UP, h, a, 0, ref_i, ref_j, 1 if update else 0)
         m, i = pass_up(F, Ki, Kj, di, dj, status, h, bm, wbuf, update)
-        _await(hctl, seq)
-        if hval[HV_RES] > m:  # ties go to the lower positions
-            return hval[HV_RES], h + hctl[H_RES]
+        if _take_back(hctl, seq):
+            m2, i2 = pass_up(F[h:a], Ki[h:a], Kj[h:a], di, dj, status[h:a], a - h, bm, wbuf,
+                             update)
+        else:
+            m2, i2 = hval[HV_RES], hctl[H_RES]
+        if m2 > m:  # ties go to the lower positions
+            return m2, h + i2
         return m, i
     return pass_up(F, Ki, Kj, di, dj, status, a, bm, wbuf, update)
 
@@ -843,11 +882,14 @@ def low_split(F, Ki, ref_i, diag, status, a, m, kii, tau, second, unit_diag, bm,
         seq = _post(hctl, JOB_LOW, h, a, 0, ref_i, 0, flag)
         best, j, big_m = pass_low(F, Ki, diag, status, h, m, kii, tau, second, unit_diag, bm,
                                   wbuf)
-        _await(hctl, seq)
-        big_m = _fmin(big_m, hval[HV_RES2])
-        if hval[HV_RES] < best:  # ties go to the lower positions
-            j2 = hctl[H_RES]
-            return hval[HV_RES], (h + j2 if j2 >= 0 else -1), big_m
+        if _take_back(hctl, seq):
+            best2, j2, big_m2 = pass_low(F[h:a], Ki[h:a], diag[h:a], status[h:a], a - h, m,
+                                         kii, tau, second, unit_diag, bm, wbuf)
+        else:
+            best2, j2, big_m2 = hval[HV_RES], hctl[H_RES], hval[HV_RES2]
+        big_m = _fmin(big_m, big_m2)
+        if best2 < best:  # ties go to the lower positions
+            return best2, (h + j2 if j2 >= 0 else -1), big_m
         return best, j, big_m
     return pass_low(F, Ki, diag, status, a, m, kii, tau, second, unit_diag, bm, wbuf)
 
@@ -860,12 +902,15 @@ def helper_loop(hctl, hval, F, diag, status, gram, cache, XK, sq, istate, fstate
     wbuf = np.empty(BLK)
     acc = np.empty(ROW_CHUNK)
     ibuf = np.empty(ROW_CHUNK, dtype=np.int64)
-    seen = hctl[H_DONE]
+    seen = hctl[H_CLAIM]
     tau = fstate[FS_TAU]
     while True:
         seen += 1
         while _load_acquire(hctl, H_POSTED) < seen:
             _spin_pause()
+        if not _claim(hctl, H_CLAIM, seen - 1, seen):
+            continue  # the loop took this job back (it never takes JOB_EXIT)
+        # claimed: the loop posts no other job before this one is done, so its fields hold
         kind = hctl[H_KIND]
         if kind == JOB_EXIT:
             _store_release(hctl, H_DONE, seen)

@@ -19,7 +19,11 @@ evicted rows keep being requested.
 
 Threads.  With ``threads=2`` (the default where two cores are available) a helper thread
 computes the upper half of every long pass and kernel row (see ``_k.helper_loop``); the
-run is bitwise the same as with one thread.
+run is bitwise the same as with one thread.  On a busy machine the helper waits for a
+core: the loop then takes back each part the helper has not begun (``_k._take_back``),
+and after a call in which the helper had a core for less than ``HELPER_MIN_SHARE`` of the
+time, no helper is started for the next ``HELPER_PAUSE`` iterations, twice as many after
+each further such call in a row (at most ``HELPER_PAUSE_MAX``).
 
 Trace.  Row k of the trace describes the state after iteration k (1-based); α at any
 recorded iteration of a full trace is rebuilt exactly from the nearest earlier snapshot by
@@ -49,7 +53,7 @@ from .kernels import (
     RBFKernel,
     SigmoidKernel,
 )
-from .problem import DualProblem
+from .problem import DualProblem, serial_dot
 from .result import TRACE_LEVELS, SolveResult, Trace
 from .status import Status, status_message
 
@@ -77,6 +81,14 @@ LAYOUT_VERSIONS = 16
 RELAYOUT_GAIN = 1.2
 #: most threads the loop uses (itself and one helper that takes part of each long pass)
 MAX_THREADS = 2
+#: a helper that had a core (CPU seconds / wall seconds) for less than this share of a call
+#: of at least HELPER_MIN_WALL seconds means a busy machine: no helper for HELPER_PAUSE
+#: iterations, doubled after each such call in a row up to HELPER_PAUSE_MAX (see module
+#: notes; a short first pause because a busy host shows the same sign now and then)
+HELPER_MIN_SHARE = 0.8
+HELPER_MIN_WALL = 0.002
+HELPER_PAUSE = 1000
+HELPER_PAUSE_MAX = 64_000
 #: τ substituted for non-positive curvature (Fan, Chen & Lin 2005, section 4).
 TAU = 1e-12
 
@@ -129,7 +141,7 @@ def _check_start(problem: DualProblem, alpha0: Any) -> np.ndarray:
             f"[{lo[r]!r}, {up[r]!r}] ({bad.size} row(s) out of bounds)"
         )
     np.clip(a, lo, up, out=a)
-    resid = abs(float(problem.y @ a) - problem.delta)
+    resid = abs(serial_dot(problem.y, a) - problem.delta)
     scale = max(1.0, float(np.sum(np.abs(a))), abs(problem.delta))
     if resid > 1e-10 * scale:
         raise InvalidInputError(
@@ -149,7 +161,7 @@ def repair_start(problem: DualProblem, alpha: np.ndarray) -> np.ndarray:
     a = np.clip(np.asarray(alpha, dtype=np.float64).reshape(-1), problem.lower, problem.upper)
     if a.shape != (problem.n,):
         raise InvalidInputError(f"alpha must have {problem.n} entries, got {a.size}")
-    need = problem.delta - float(problem.y @ a)
+    need = problem.delta - serial_dot(problem.y, a)
     for t in range(problem.n):
         if abs(need) <= 1e-14 * max(1.0, abs(problem.delta)):
             break
@@ -278,6 +290,12 @@ class _Engine:
         self.hctl = np.zeros(_k.H_SIZE, dtype=np.int64)
         self.hval = np.zeros(_k.HV_SIZE)
         self.helper_jobs = 0
+        self.helper_taken = 0  # jobs the loop took back from the helper
+        self.helper_seconds = [0.0, 0.0]  # helper: wall, CPU (of the current call, then all)
+        self.helper_totals = [0.0, 0.0]
+        self.helper_pauses = 0
+        self.helper_resume_at = 0  # no helper before this iteration
+        self.helper_busy_calls = 0  # calls in a row in which the helper lacked a core
         n = self.n = problem.n
         y = problem.y
         self.ysign = y.copy()
@@ -370,7 +388,8 @@ class _Engine:
         self.status = (np.where(self.beta < self.hi, _k.UP, 0)
                        | np.where(self.beta > self.lo, _k.LOW, 0)).astype(np.uint8)
         self.istate[_k.IS_UNIT_DIAG] = int(bool(np.all(self.diag == 1.0)))
-        self.objective0 = 0.5 * float(self.beta @ (-self.F - self.q)) + float(self.q @ self.beta)
+        self.objective0 = (0.5 * serial_dot(self.beta, -self.F - self.q)
+                           + serial_dot(self.q, self.beta))
         cap = 0 if level == 2 else trace_rows
         self.tr = {name: np.zeros(cap, dtype=dt) for name, dt in _TRACE_COLUMNS}
         self.ev = {"iteration": np.zeros(256, dtype=np.int64), "kind": np.zeros(256, dtype=np.int8),
@@ -642,15 +661,20 @@ class _Engine:
         threads are allowed and the active set is long enough to share."""
         hc = self.hctl
         hc[:] = 0
-        if self.threads < 2 or self.active < _k.SPLIT_ROW or self.code == _k.KERNEL_EXTERNAL:
+        if (self.threads < 2 or self.active < _k.SPLIT_ROW or self.code == _k.KERNEL_EXTERNAL
+                or self.istate[_k.IS_ITER] < self.helper_resume_at):
             return None
-        th = threading.Thread(
-            target=_k.helper_loop, name="kktrace-smo-helper", daemon=True,
-            args=(hc, self.hval, self.F, self.diag, self.status, self.gram, self.cache,
-                  self.XK, self.sq, self.istate, self.fstate))
+        th = threading.Thread(target=self._serve, name="kktrace-smo-helper", daemon=True)
         th.start()
         hc[_k.H_ON] = 1  # the loop shares work only with a thread that exists
         return th
+
+    def _serve(self) -> None:
+        """Body of the helper thread: ``_k.helper_loop``, timed in wall and CPU seconds."""
+        w0, c0 = time.perf_counter(), time.thread_time()
+        _k.helper_loop(self.hctl, self.hval, self.F, self.diag, self.status, self.gram,
+                       self.cache, self.XK, self.sq, self.istate, self.fstate)
+        self.helper_seconds = [time.perf_counter() - w0, time.thread_time() - c0]
 
     def run(self) -> int:
         helper = self._start_helper()
@@ -661,7 +685,21 @@ class _Engine:
                 if self.hctl[_k.H_ON] == 1:  # the loop did not reach its exit: stop the helper
                     _k.helper_stop(self.hctl)
                 helper.join()
-                self.helper_jobs += int(self.hctl[_k.H_DONE]) - 1  # the last job is the exit
+                hc = self.hctl
+                # every posted job but the exit was done by the helper or taken back
+                self.helper_jobs += int(hc[_k.H_POSTED] - 1 - hc[_k.H_TAKEN])
+                self.helper_taken += int(hc[_k.H_TAKEN])
+                wall, cpu = self.helper_seconds
+                self.helper_totals = [self.helper_totals[0] + wall, self.helper_totals[1] + cpu]
+                # the helper spins whenever it runs, so CPU / wall is the share of the call
+                # for which it had a core; less means other work wants the cores
+                if wall >= HELPER_MIN_WALL and cpu < HELPER_MIN_SHARE * wall:
+                    pause = min(HELPER_PAUSE_MAX, HELPER_PAUSE << self.helper_busy_calls)
+                    self.helper_busy_calls += 1
+                    self.helper_pauses += 1
+                    self.helper_resume_at = int(self.istate[_k.IS_ITER]) + pause
+                else:
+                    self.helper_busy_calls = 0
 
     def _run_loop(self) -> int:
         tr, ev = self.tr, self.ev
@@ -779,7 +817,11 @@ def solve_smo(
     (``compile_seconds``, ``setup_seconds``, ``solve_seconds``), ``kernel_mode``
     (``"full_gram"`` or ``"column_cache"``), ``kernel_source``, kernel-row and cache
     counts, ``shrinks``, ``reconstructions``, ``curvature_fixes``, ``threads``,
-    ``helper_jobs`` (passes and kernel rows shared with the helper thread) and
+    ``helper_jobs`` (passes and kernel rows shared with the helper thread),
+    ``helper_taken`` (jobs the loop took back because the helper had not begun them),
+    ``helper_pauses`` (times no helper was started for a while because the machine was
+    busy; see the module notes), ``helper_seconds`` and ``helper_cpu_seconds`` (the
+    helper's lifetime and CPU time) and
     ``polish_iterations`` (float64 iterations after a float32 phase).  The trace has the
     SMO columns of :class:`solver.result.Trace`, events coded by :data:`EVENT_KINDS`
     (value: active-set size after a shrink, violation after a reconstruction, the
@@ -941,7 +983,8 @@ def _merge_phases(a: dict[str, Any], b: dict[str, Any]) -> dict[str, Any]:
     extra = dict(b["extra"])
     for key in ("compile_seconds", "setup_seconds", "solve_seconds", "kernel_rows_computed",
                 "cache_hits", "cache_misses", "cache_remisses", "cache_remaps", "curvature_fixes",
-                "shrinks", "reconstructions", "helper_jobs"):
+                "shrinks", "reconstructions", "helper_jobs", "helper_taken", "helper_pauses",
+                "helper_seconds", "helper_cpu_seconds"):
         extra[key] = a["extra"][key] + b["extra"][key]
     extra["kernel_mode"] = a["extra"]["kernel_mode"]
     out["extra"] = extra
@@ -1074,7 +1117,9 @@ def _run_phase(problem: DualProblem, alpha: np.ndarray, dtype: np.dtype, cfg: di
         "cache_capacity_mb": eng.cap_elems * dtype.itemsize / 2**20,
         "curvature_fixes": int(ist[_k.IS_CURV_FIXES]), "shrinks": eng.shrinks,
         "reconstructions": eng.reconstructions, "threads": eng.threads,
-        "helper_jobs": eng.helper_jobs,
+        "helper_jobs": eng.helper_jobs, "helper_taken": eng.helper_taken,
+        "helper_pauses": eng.helper_pauses, "helper_seconds": eng.helper_totals[0],
+        "helper_cpu_seconds": eng.helper_totals[1],
         "loop_violation": float(fst[_k.FS_VIOL]), "loop_objective": float(fst[_k.FS_OBJ]),
     }
     return {"status": status, "detail": detail, "alpha": alpha, "G": eng.gradient(),

@@ -1,6 +1,7 @@
 """The SMO loop with a helper thread (solver/_smo_kernels.py: helper_loop, up_split,
 low_split, row_split): two threads must give bitwise the run of one thread, and the helper
-must be stopped on every way out of the loop.
+must be stopped on every way out of the loop.  On a busy machine the loop takes back the
+parts a late helper has not begun and pauses the helper; the run stays the same.
 
 Problems of 5000 points, so that passes (≥ SPLIT_PASS) and kernel rows (≥ SPLIT_ROW) are
 really shared; the data are seeded random draws (an invariance check, not a reference).
@@ -10,6 +11,7 @@ Under NUMBA_DISABLE_JIT=1 the solver uses one thread, so the thread tests are sk
 from __future__ import annotations
 
 import threading
+import time
 from contextlib import nullcontext
 
 import numpy as np
@@ -17,6 +19,7 @@ import pytest
 from numba import config
 
 from solver import _smo_kernels as K
+from solver import smo
 from solver.errors import ConvergenceWarning, InvalidInputError
 from solver.kernels import make_kernel
 from solver.problem import binary_classification
@@ -172,3 +175,100 @@ def test_split_passes_send_ties_to_the_lower_part() -> None:
     th.join()
     assert got_up == expect_up and got_up[1] == h + 3
     assert not _helpers()
+
+
+def test_parts_the_helper_has_not_begun_are_taken_back() -> None:
+    """A helper that never comes (a busy machine): the loop takes each posted part back and
+    computes it itself, with the same results as the unsplit pass and kernel row."""
+    a = 2 * K.SPLIT_PASS
+    h = (a // 2) & ~63
+    rng = np.random.default_rng(3)
+    F = rng.standard_normal(a)
+    status = rng.choice(np.array([K.UP, K.LOW, K.UP | K.LOW], dtype=np.uint8), size=a)
+    Ki, Kj = rng.uniform(0.0, 1.0, a), rng.uniform(0.0, 1.0, a)
+    diag = np.ones(a)
+    bm = np.zeros(a // K.BLK + 2)
+    wbuf = np.zeros(K.BLK)
+    hctl = np.zeros(K.H_SIZE, dtype=np.int64)
+    hctl[K.H_ON] = 1  # the loop believes a helper serves it; none runs
+    hval = np.zeros(K.HV_SIZE)
+    F_one = F.copy()
+    expect_up = K.pass_up(F_one, Ki, Kj, 0.5, -0.25, status, a, bm, wbuf, True)
+    got_up = K.up_split(F, Ki, Kj, 0, 1, 0.5, -0.25, status, a, bm, wbuf, True, hctl, hval)
+    assert got_up == expect_up and np.array_equal(F, F_one)  # the update was applied once
+    expect_low = K.pass_low(F, Ki, diag, status, a, got_up[0], 1.0, 1e-12, True, True, bm, wbuf)
+    got_low = K.low_split(F, Ki, 0, diag, status, a, got_up[0], 1.0, 1e-12, True, True, bm,
+                          wbuf, hctl, hval)
+    assert got_low == expect_low
+    XK = rng.standard_normal((3, a))
+    sq = np.zeros(a)
+    K.self_dots(XK, sq)
+    acc, ibuf = np.zeros(K.ROW_CHUNK), np.zeros(K.ROW_CHUNK, dtype=np.int64)
+    row_one, row_split = np.zeros(a), np.zeros(a)
+    K.kernel_row(XK, 5, sq[5], XK, sq, a, row_one, K.KERNEL_RBF, 0.3, 0.0, 3, acc, ibuf)
+    K.row_split(XK, 5, sq, a, row_split, 0, K.KERNEL_RBF, 0.3, 0.0, 3, acc, ibuf, hctl)
+    assert np.array_equal(row_one, row_split)
+    assert hctl[K.H_TAKEN] == 3 and hctl[K.H_CLAIM] == 3 and hctl[K.H_POSTED] == 3
+    assert h < a  # each part really was split
+
+
+@pytest.mark.skipif(not JIT, reason="the split loop runs compiled code only")
+def test_run_without_a_helper_thread_is_bitwise_the_same(monkeypatch) -> None:
+    """Every part of every split job taken back by the loop: still the one-thread run."""
+    prob = _problem(5000, kernel="rbf", C=10.0, gamma=0.1)
+    one = solve_smo(prob, tol=1e-3, threads=1, kernel_memory_mb=1.0)
+    calls: list[tuple[int, int]] = []
+
+    def absent(self):
+        self.hctl[:] = 0
+        self.hctl[K.H_ON] = 1
+        return None
+
+    run_loop = smo._Engine._run_loop
+
+    def counted(self):
+        code = run_loop(self)
+        calls.append((int(self.hctl[K.H_POSTED]), int(self.hctl[K.H_TAKEN])))
+        return code
+
+    monkeypatch.setattr(smo._Engine, "_start_helper", absent)
+    monkeypatch.setattr(smo._Engine, "_run_loop", counted)
+    alone = solve_smo(prob, tol=1e-3, threads=1, kernel_memory_mb=1.0)
+    _assert_same_run(one, alone)
+    assert sum(t for _, t in calls) > 1000
+    assert all(t == posted - 1 for posted, t in calls if posted)  # all but the exit
+
+
+class _BusyClock:
+    """``solver.smo.time`` on a machine where the helper never gets a core: its CPU
+    clock stands still, wall time runs."""
+
+    perf_counter = staticmethod(time.perf_counter)
+
+    @staticmethod
+    def thread_time() -> float:
+        return 0.0
+
+
+@needs_two
+def test_a_helper_without_a_core_is_paused_for_doubling_spans(monkeypatch) -> None:
+    prob = _problem(5000, kernel="rbf", C=100.0, gamma=0.1)
+    one = solve_smo(prob, tol=1e-3, threads=1, kernel_memory_mb=1.0)
+    started: list[int] = []
+    start = smo._Engine._start_helper
+
+    def logged(self):
+        th = start(self)
+        if th is not None:
+            started.append(int(self.istate[K.IS_ITER]))
+        return th
+
+    monkeypatch.setattr(smo._Engine, "_start_helper", logged)
+    monkeypatch.setattr(smo, "time", _BusyClock)
+    busy = solve_smo(prob, tol=1e-3, threads=2, kernel_memory_mb=1.0)
+    _assert_same_run(one, busy)
+    assert busy.extra["helper_pauses"] == len(started) >= 3
+    gaps = np.diff(started)
+    pauses = np.minimum(smo.HELPER_PAUSE_MAX, smo.HELPER_PAUSE * 2 ** np.arange(gaps.size))
+    assert np.all(gaps >= pauses)  # each pause twice the last
+    assert busy.extra["helper_cpu_seconds"] == 0.0 and busy.extra["helper_seconds"] > 0.0
