@@ -103,6 +103,7 @@ H_FLAG = 23
 H_RES = 24  # index found by the helper (−1: none)
 H_CLAIM = 25  # number of the last job claimed, by the helper or taken back by the loop
 H_TAKEN = 26  # jobs of this call the loop took back and did itself (helper not there yet)
+H_AWAY = 27  # 1 when the loop sent the helper away in this call (see :func:`_take_back`)
 H_SIZE = 32
 HV_DI = 0
 HV_DJ = 1
@@ -118,6 +119,9 @@ JOB_ROW = 3
 #: shortest pass / kernel row that is split between the loop and its helper thread
 SPLIT_PASS = 4096
 SPLIT_ROW = 2048
+#: the loop sends the helper away for the rest of a call once it has taken back at least
+#: TAKE_BACK_LIMIT parts and half of all posted (an idle machine: at most ~5 % per call)
+TAKE_BACK_LIMIT = 256
 
 # status bits of a variable (uint8): in I_up (β < hi), in I_low (β > lo)
 UP = 1
@@ -821,11 +825,14 @@ def _take_back(hctl, seq):
     claimed the job yet and the loop has taken it back (the loop then does the helper's
     part itself), False once the helper has finished it.  So a helper that is slow to
     start, or waits for a core on a busy machine, never holds the loop up before it has
-    begun a job."""
+    begun a job; one that missed half of the jobs is sent away for the rest of the call."""
     if _load_acquire(hctl, H_DONE) >= seq:
         return False
     if _claim(hctl, H_CLAIM, seq - 1, seq):
         hctl[H_TAKEN] += 1
+        if hctl[H_TAKEN] >= TAKE_BACK_LIMIT and 2 * hctl[H_TAKEN] >= seq:
+            hctl[H_AWAY] = 1
+            helper_stop(hctl)
         return True
     while _load_acquire(hctl, H_DONE) < seq:
         _spin_pause()

@@ -693,7 +693,7 @@ class _Engine:
                 self.helper_totals = [self.helper_totals[0] + wall, self.helper_totals[1] + cpu]
                 # the helper spins whenever it runs, so CPU / wall is the share of the call
                 # for which it had a core; less means other work wants the cores
-                if wall >= HELPER_MIN_WALL and cpu < HELPER_MIN_SHARE * wall:
+                if hc[_k.H_AWAY] or (wall >= HELPER_MIN_WALL and cpu < HELPER_MIN_SHARE * wall):
                     pause = min(HELPER_PAUSE_MAX, HELPER_PAUSE << self.helper_busy_calls)
                     self.helper_busy_calls += 1
                     self.helper_pauses += 1

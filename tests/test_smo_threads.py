@@ -214,10 +214,12 @@ def test_parts_the_helper_has_not_begun_are_taken_back() -> None:
 
 @pytest.mark.skipif(not JIT, reason="the split loop runs compiled code only")
 def test_run_without_a_helper_thread_is_bitwise_the_same(monkeypatch) -> None:
-    """Every part of every split job taken back by the loop: still the one-thread run."""
+    """Every part of every split job taken back by the loop, which after TAKE_BACK_LIMIT of
+    them in a call sends the (absent) helper away for the rest of it: still the one-thread
+    run."""
     prob = _problem(5000, kernel="rbf", C=10.0, gamma=0.1)
     one = solve_smo(prob, tol=1e-3, threads=1, kernel_memory_mb=1.0)
-    calls: list[tuple[int, int]] = []
+    calls: list[tuple[int, int, int]] = []
 
     def absent(self):
         self.hctl[:] = 0
@@ -228,15 +230,17 @@ def test_run_without_a_helper_thread_is_bitwise_the_same(monkeypatch) -> None:
 
     def counted(self):
         code = run_loop(self)
-        calls.append((int(self.hctl[K.H_POSTED]), int(self.hctl[K.H_TAKEN])))
+        hc = self.hctl
+        calls.append((int(hc[K.H_POSTED]), int(hc[K.H_TAKEN]), int(hc[K.H_AWAY])))
         return code
 
     monkeypatch.setattr(smo._Engine, "_start_helper", absent)
     monkeypatch.setattr(smo._Engine, "_run_loop", counted)
     alone = solve_smo(prob, tol=1e-3, threads=1, kernel_memory_mb=1.0)
     _assert_same_run(one, alone)
-    assert sum(t for _, t in calls) > 1000
-    assert all(t == posted - 1 for posted, t in calls if posted)  # all but the exit
+    assert any(away for _, _, away in calls)
+    assert all(t == posted - 1 for posted, t, _ in calls if posted)  # all but the exit
+    assert all(away == (t >= K.TAKE_BACK_LIMIT) for _, t, away in calls)
 
 
 class _BusyClock:
