@@ -21,9 +21,10 @@ Threads.  With ``threads=2`` (the default where two cores are available) a helpe
 computes the upper half of every long pass and kernel row (see ``_k.helper_loop``); the
 run is bitwise the same as with one thread.  On a busy machine the helper waits for a
 core: the loop then takes back each part the helper has not begun (``_k._take_back``),
-and after a call in which the helper had a core for less than ``HELPER_MIN_SHARE`` of the
-time, no helper is started for the next ``HELPER_PAUSE`` iterations, twice as many after
-each further such call in a row (at most ``HELPER_PAUSE_MAX``).
+sending it away for the rest of the call when it missed half of them.  After such a call,
+or one in which the helper had a core for less than ``HELPER_MIN_SHARE`` of the time, no
+helper is started for the next ``HELPER_PAUSE`` iterations, twice as many after each
+further such call in a row (at most ``HELPER_PAUSE_MAX``).
 
 Trace.  Row k of the trace describes the state after iteration k (1-based); α at any
 recorded iteration of a full trace is rebuilt exactly from the nearest earlier snapshot by
