@@ -11,7 +11,6 @@ Under NUMBA_DISABLE_JIT=1 the solver uses one thread, so the thread tests are sk
 from __future__ import annotations
 
 import threading
-import time
 from contextlib import nullcontext
 
 import numpy as np
@@ -74,7 +73,10 @@ def test_two_threads_give_bitwise_the_run_of_one(case) -> None:
     two = solve_smo(prob, tol=1e-3, threads=2, **skw)
     assert one.options["threads"] == 1 and two.options["threads"] == 2
     assert one.extra["helper_jobs"] == 0
-    assert two.extra["helper_jobs"] > 1000  # passes and rows were really shared
+    # passes and rows were really split (whether the helper or, when it was late, the loop
+    # did a part depends on the machine; the run may not)
+    assert two.extra["helper_jobs"] + two.extra["helper_taken"] > 1000
+    assert two.extra["helper_jobs"] > 0
     _assert_same_run(one, two)
 
 
@@ -101,7 +103,7 @@ def test_helper_thread_ends_with_every_run(how) -> None:
           "converged": {}}[how]
     with pytest.warns(ConvergenceWarning) if how != "converged" else nullcontext():
         res = solve_smo(prob, tol=1e-3, threads=2, kernel_memory_mb=1.0, **kw)
-    assert res.extra["helper_jobs"] > 0
+    assert res.extra["helper_jobs"] + res.extra["helper_taken"] > 0  # a helper served
     assert _helpers() == []
     assert res.status.label == {"iteration_limit": "iteration_limit",
                                 "callback": "stopped_by_callback",
@@ -244,13 +246,18 @@ def test_run_without_a_helper_thread_is_bitwise_the_same(monkeypatch) -> None:
 
 
 class _BusyClock:
-    """``solver.smo.time`` on a machine where the helper never gets a core: its CPU
-    clock stands still, wall time runs."""
+    """``solver.smo.time`` on a machine where the helper never gets a core: its CPU clock
+    stands still, while each wall-clock reading is 10 ms after the last (so every call of
+    the loop lasts longer than HELPER_MIN_WALL, however fast the machine)."""
 
-    perf_counter = staticmethod(time.perf_counter)
+    def __init__(self) -> None:
+        self.now = 0.0
 
-    @staticmethod
-    def thread_time() -> float:
+    def perf_counter(self) -> float:
+        self.now += 0.01
+        return self.now
+
+    def thread_time(self) -> float:
         return 0.0
 
 
@@ -268,7 +275,7 @@ def test_a_helper_without_a_core_is_paused_for_doubling_spans(monkeypatch) -> No
         return th
 
     monkeypatch.setattr(smo._Engine, "_start_helper", logged)
-    monkeypatch.setattr(smo, "time", _BusyClock)
+    monkeypatch.setattr(smo, "time", _BusyClock())
     busy = solve_smo(prob, tol=1e-3, threads=2, kernel_memory_mb=1.0)
     _assert_same_run(one, busy)
     assert busy.extra["helper_pauses"] == len(started) >= 3
