@@ -73,10 +73,10 @@ def test_two_threads_give_bitwise_the_run_of_one(case) -> None:
     two = solve_smo(prob, tol=1e-3, threads=2, **skw)
     assert one.options["threads"] == 1 and two.options["threads"] == 2
     assert one.extra["helper_jobs"] == 0
-    # passes and rows were really split (whether the helper or, when it was late, the loop
-    # did a part depends on the machine; the run may not)
-    assert two.extra["helper_jobs"] + two.extra["helper_taken"] > 1000
-    assert two.extra["helper_jobs"] > 0
+    # passes and rows were really split; the helper did > 1000 parts, unless the machine was
+    # busy (then the loop took parts back and paused the helper: the run is the same)
+    assert two.extra["helper_jobs"] + two.extra["helper_taken"] >= 256
+    assert two.extra["helper_jobs"] > 1000 or two.extra["helper_pauses"] > 0
     _assert_same_run(one, two)
 
 
