@@ -292,8 +292,8 @@ class _Engine:
         self.hval = np.zeros(_k.HV_SIZE)
         self.helper_jobs = 0
         self.helper_taken = 0  # jobs the loop took back from the helper
-        self.helper_seconds = [0.0, 0.0]  # helper: wall, CPU (of the current call, then all)
-        self.helper_totals = [0.0, 0.0]
+        self.helper_seconds = [0.0, 0.0]  # the last helper's life: wall, CPU seconds
+        self.helper_totals = [0.0, 0.0]  # summed over the run
         self.helper_pauses = 0
         self.helper_resume_at = 0  # no helper before this iteration
         self.helper_busy_calls = 0  # calls in a row in which the helper lacked a core
