@@ -686,21 +686,26 @@ class _Engine:
                 if self.hctl[_k.H_ON] == 1:  # the loop did not reach its exit: stop the helper
                     _k.helper_stop(self.hctl)
                 helper.join()
-                hc = self.hctl
-                # every posted job but the exit was done by the helper or taken back
-                self.helper_jobs += int(hc[_k.H_POSTED] - 1 - hc[_k.H_TAKEN])
-                self.helper_taken += int(hc[_k.H_TAKEN])
-                wall, cpu = self.helper_seconds
-                self.helper_totals = [self.helper_totals[0] + wall, self.helper_totals[1] + cpu]
-                # the helper spins whenever it runs, so CPU / wall is the share of the call
-                # for which it had a core; less means other work wants the cores
-                if hc[_k.H_AWAY] or (wall >= HELPER_MIN_WALL and cpu < HELPER_MIN_SHARE * wall):
-                    pause = min(HELPER_PAUSE_MAX, HELPER_PAUSE << self.helper_busy_calls)
-                    self.helper_busy_calls += 1
-                    self.helper_pauses += 1
-                    self.helper_resume_at = int(self.istate[_k.IS_ITER]) + pause
-                else:
-                    self.helper_busy_calls = 0
+                self._account_helper()
+
+    def _account_helper(self) -> None:
+        """After a call served by a helper: count its jobs and time, and pause it when the
+        machine was busy (see module notes)."""
+        hc = self.hctl
+        # every posted job but the exit was done by the helper or taken back
+        self.helper_jobs += int(hc[_k.H_POSTED] - 1 - hc[_k.H_TAKEN])
+        self.helper_taken += int(hc[_k.H_TAKEN])
+        wall, cpu = self.helper_seconds
+        self.helper_totals = [self.helper_totals[0] + wall, self.helper_totals[1] + cpu]
+        # the helper spins whenever it runs, so CPU / wall is the share of the call for
+        # which it had a core; less means other work wants the cores
+        if hc[_k.H_AWAY] or (wall >= HELPER_MIN_WALL and cpu < HELPER_MIN_SHARE * wall):
+            pause = min(HELPER_PAUSE_MAX, HELPER_PAUSE << self.helper_busy_calls)
+            self.helper_busy_calls += 1
+            self.helper_pauses += 1
+            self.helper_resume_at = int(self.istate[_k.IS_ITER]) + pause
+        else:
+            self.helper_busy_calls = 0
 
     def _run_loop(self) -> int:
         tr, ev = self.tr, self.ev
