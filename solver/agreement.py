@@ -305,7 +305,7 @@ def _run_facts(label: str, problem: DualProblem, result: SolveResult, objective:
         "dual_objective": float(objective),
         "certificate_dual_objective": float(c.dual_objective),
         "duality_gap": float(c.duality_gap), "relative_gap": float(c.relative_gap),
-        "max_violation": float(c.max_violation), "certificate_tol": float(c.tol),
+        "max_violation": float(c.max_violation), "certificate_tol": float(c.kkt_tol),
         "bias": float(result.bias), "bound_violation": bound, "equality_residual": eq,
         "fingerprint": None if data is None else data.get("fingerprint"),
     }

@@ -40,10 +40,31 @@ def test_workflow_names_are_the_cli_subcommands():
     sub = next(a for a in parser._actions if a.dest == "command")
     commands = set(sub.choices)
     assert commands == {"train", "runs", "report", "compare", "explain", "replay", "verify",
-                        "score", "demo"}
+                        "apply", "demo"}
     for name in commands - {"demo"}:
         assert callable(getattr(solver, name)), name
     assert callable(solver.run_demo)
+
+
+def test_options_use_our_own_names():
+    """Issue 13 item 12: the KKT tolerance, the iteration limit and the apply command have
+    our own names; the old spellings are gone from the command line and the Python API."""
+    import inspect as _inspect
+
+    from solver.cli import build_parser
+
+    sub = next(a for a in build_parser()._actions if a.dest == "command")
+    train = {s for a in sub.choices["train"]._actions for s in a.option_strings}
+    assert {"--kkt-tol", "--iteration-limit"} <= train
+    assert not {"--tol", "--max-iter"} & train
+    assert "score" not in sub.choices and "apply" in sub.choices
+    for fn in (solver.train, solver.solve):
+        params = set(_inspect.signature(fn).parameters)
+        assert not {"tol", "max_iter", "cache_mb", "tau"} & params, fn
+    from solver.smo import solve_smo
+
+    params = set(_inspect.signature(solve_smo).parameters)
+    assert {"kkt_tol", "iteration_limit", "row_cache_mb"} <= params
 
 
 def test_workflow_names_are_functions_not_submodules():

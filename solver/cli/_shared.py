@@ -108,15 +108,16 @@ class Progress:
 
     def _solve_line(self, info: Mapping[str, Any]) -> str:
         it = info.get("iteration")
-        v, tol = info.get("violation"), info.get("tol")
+        v, kkt_tol = info.get("violation"), info.get("kkt_tol")
         text = f"{info.get('solver', 'solver')} iteration {it if it is not None else '?'}"
         frac = None
-        if isinstance(v, (int, float)) and isinstance(tol, (int, float)) and v > 0 and tol > 0:
+        if isinstance(v, (int, float)) and isinstance(kkt_tol, (int,
+                                                                float)) and v > 0 and kkt_tol > 0:
             if self.first_violation is None or v > self.first_violation:
-                self.first_violation = max(float(v), float(tol) * 10)
-            span = math.log(self.first_violation / tol)
-            frac = 1.0 if v <= tol else max(0.0, math.log(self.first_violation / v) / span)
-            text += f"  violation {v:.2e} (tol {tol:.1e})"
+                self.first_violation = max(float(v), float(kkt_tol) * 10)
+            span = math.log(self.first_violation / kkt_tol)
+            frac = 1.0 if v <= kkt_tol else max(0.0, math.log(self.first_violation / v) / span)
+            text += f"  violation {v:.2e} (kkt_tol {kkt_tol:.1e})"
         elif isinstance(info.get("gap"), (int, float)):
             text += f"  gap {info['gap']:.2e}"
         return (f"{bar(frac)} " if frac is not None else "") + text

@@ -13,22 +13,22 @@ from ._shared import (
     emit_json,
 )
 
-_SCORE_EXAMPLES = """examples:
-  kktrace score RUN_ID new_batches.csv
-  kktrace score RUN_ID new_batches.csv --out scores.csv --json"""
+_APPLY_EXAMPLES = """examples:
+  kktrace apply RUN_ID new_batches.csv
+  kktrace apply RUN_ID new_batches.csv --out outputs.csv --json"""
 
 
-def cmd_score(args: argparse.Namespace) -> int:
+def cmd_apply(args: argparse.Namespace) -> int:
     import solver
 
-    sc = solver.score(args.run, args.data, store=args.store, label=args.label)
+    sc = solver.apply(args.run, args.data, store=args.store, label=args.label)
     if args.out:
-        _write_scores(sc, Path(args.out))
+        _write_outputs(sc, Path(args.out))
     if args.json:
         emit_json(sc.to_dict(), sys.stdout)
         return EXIT_OK
     n = len(sc.values)
-    print(f"scored {n} rows of {sc.source or 'the data'} with run {args.run}")
+    print(f"applied run {args.run} to {n} rows of {sc.source or 'the data'} ")
     if sc.confusion is not None:
         c = sc.confusion
         print(f"  accuracy {c['accuracy']:.3f}, balanced accuracy {c['balanced_accuracy']:.3f}")
@@ -45,7 +45,7 @@ def cmd_score(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-def _write_scores(sc: Any, path: Path) -> None:
+def _write_outputs(sc: Any, path: Path) -> None:
     import csv
 
     with path.open("w", newline="", encoding="utf-8") as fh:
@@ -58,11 +58,11 @@ def _write_scores(sc: Any, path: Path) -> None:
 
 def register(sub: Any) -> None:
     """Add this module's commands to the sub-command table."""
-    p = add_command(sub, "score", "decision values and labels for new data", _SCORE_EXAMPLES)
+    p = add_command(sub, "apply", "decision values and labels for new data", _APPLY_EXAMPLES)
     p.add_argument("run", metavar="RUN_ID")
     p.add_argument("data", metavar="DATAFILE")
     p.add_argument("--label", metavar="COLUMN", default=None,
                    help="label column, if the data have one (default: the run's, if present)")
     p.add_argument("--out", metavar="FILE", default=None, help="write row, value, label as CSV")
-    p.set_defaults(func=cmd_score)
+    p.set_defaults(func=cmd_apply)
 

@@ -69,7 +69,8 @@ def cmd_replay(args: argparse.Namespace) -> int:
         return EXIT_OK
     print(f"run {args.run} rebuilt at iteration {state.iteration} "
           f"(snapshot {state.base_iteration} + {state.deltas_applied} recorded steps)")
-    print(f"  violation     {num(cert['max_violation'], '.3e')}  (tol {num(cert['tol'], '.1e')})")
+    print(f"  violation     {num(cert['max_violation'], '.3e')}  "
+          f"(kkt_tol {num(cert['kkt_tol'], '.1e')})")
     print(f"  objectives    dual {num(cert['dual_objective'], '.8g')}, "
           f"primal {num(cert['primal_objective'], '.8g')}")
     print(f"  duality gap   {num(cert['duality_gap'], '.3e')}")

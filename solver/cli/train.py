@@ -22,7 +22,7 @@ _TRAIN_EXAMPLES = """examples:
   kktrace train batches.csv --label lab_decision --kernel rbf --C 10 --solver both \\
       --holdout batches_holdout.csv
   kktrace train scores.parquet --label outcome --kernel poly --degree 2 --offset 1 --json
-  kktrace train X.npz --label y --kernel linear --tol 1e-5 --store audit-traces"""
+  kktrace train X.npz --label y --kernel linear --kkt-tol 1e-5 --store audit-traces"""
 
 _DEMO_EXAMPLES = """examples:
   kktrace demo
@@ -43,7 +43,7 @@ def _run_block(s: Mapping[str, Any], role: str) -> list[str]:
         f"  kernel        {k.get('name', '?')}" + (f" ({kp})" if kp else "")
         + f", C = {num(s.get('C'))}",
         f"  iterations    {s['iterations']}  in {s['seconds']:.2f} s",
-        f"  violation     {num(s['max_violation'], '.3e')}  (tol {num(s['tol'], '.1e')})",
+        f"  violation     {num(s['max_violation'], '.3e')}  (kkt_tol {num(s['kkt_tol'], '.1e')})",
         f"  objectives    dual (minimised) {num(s['dual_objective'], '.8g')}, "
         f"primal {num(s['primal_objective'], '.8g')}",
         f"  duality gap   {num(s['duality_gap'], '.3e')} = primal + dual  "
@@ -67,8 +67,9 @@ def cmd_train(args: argparse.Namespace) -> int:
 
     outcome = solver.train(
         args.data, label=args.label, kernel=args.kernel, gamma=args.gamma,
-        degree=args.degree, offset=args.offset, C=args.C, tol=args.tol,
-        max_iter=args.max_iter, solver=args.solver, standardise=not args.no_standardise,
+        degree=args.degree, offset=args.offset, C=args.C, kkt_tol=args.kkt_tol,
+        iteration_limit=args.iteration_limit, solver=args.solver, standardise=not
+        args.no_standardise,
         holdout=args.holdout, store=args.store, trace=args.trace, quiet=True,
         progress=progress(args),
     )
@@ -137,9 +138,9 @@ def register(sub: Any) -> None:
     p.add_argument("--offset", type=float_arg, default=0.0,
                    help="poly / sigmoid kernel constant (default 0)")
     p.add_argument("--C", type=float_arg, default=1.0, help="penalty C > 0 (default 1)")
-    p.add_argument("--tol", type=float_arg, default=1e-3,
+    p.add_argument("--kkt-tol", type=float_arg, default=1e-3,
                    help="tolerance on the maximal KKT violation (default 1e-3)")
-    p.add_argument("--max-iter", type=positive_int, default=None,
+    p.add_argument("--iteration-limit", type=positive_int, default=None,
                    help="iteration limit (default: the solver's own; with --solver both it "
                    "limits SMO only)")
     p.add_argument("--solver", choices=("smo", "qp", "both"), default="smo",
