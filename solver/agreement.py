@@ -472,7 +472,7 @@ def compare_results(
             notes.append(
                 f"run {r['label']} ({r['solver']}) was solved only to maximal violation "
                 f"<= {r['certificate_tol']:g}; differences of that order are expected, so "
-                "re-solve it with a tighter tol to tell solver tolerance from disagreement")
+                "re-solve it with a tighter kkt_tol to tell solver tolerance from disagreement")
     return Comparison(
         verdict=verdict, verdict_text=text, measures=measures, failed=failed, failures=failures,
         tolerances=tol, runs=runs, objective_abs_diff=obj_abs, alpha_rms_diff=alpha_rms,
