@@ -218,14 +218,17 @@ class VerifyOutcome:
     ``integrity`` is the store's :class:`~solver.store.Verification` (``ok``, ``problems``);
     ``reproduction`` the re-run's :class:`~solver.store.Reproduction` (None without
     ``rerun``); ``rerun_run_id`` the id of the stored re-run (with ``keep_rerun``).
-    ``ok`` is True only when the files are intact and any re-run reproduced α bitwise or
-    within the reproduction tolerance.
+    ``calibration`` the re-fitted probability calibration compared with the stored one
+    (runs trained with probabilities, with ``rerun``).
+    ``ok`` is True only when the files are intact, any re-run reproduced α bitwise or
+    within the reproduction tolerance, and any calibration reproduced bitwise.
     """
 
     run_id: str
     integrity: Any
     reproduction: Any | None
     rerun_run_id: str | None = None
+    calibration: Mapping[str, Any] | None = None
 
     @property
     def ok(self) -> bool:
@@ -233,6 +236,8 @@ class VerifyOutcome:
         ok = bool(self.integrity.ok)
         if self.reproduction is not None:
             ok = ok and bool(self.reproduction.within_tolerance)
+        if self.calibration is not None:
+            ok = ok and self.calibration["agreement"] == "bitwise"
         return ok
 
 
@@ -252,6 +257,7 @@ def verify(
     integrity = st.verify(run)
     reproduction = None
     new_id = None
+    calibration = None
     if rerun is not None:
         if not integrity.ok:
             return VerifyOutcome(run_id=run, integrity=integrity, reproduction=None)
@@ -260,8 +266,12 @@ def verify(
         reproduction = reproduce(rec, ds)
         if keep_rerun:
             new_id = st.save(reproduction.record, parent=run)
+        if rec.attachments.get("calibration") is not None:
+            from .calibration.reproduce import recalibrate
+
+            calibration = recalibrate(rec.attachments["calibration"], reproduction.record.problem)
     return VerifyOutcome(run_id=run, integrity=integrity, reproduction=reproduction,
-                         rerun_run_id=new_id)
+                         rerun_run_id=new_id, calibration=calibration)
 
 
 @dataclass(frozen=True, eq=False)
@@ -271,6 +281,9 @@ class ModelOutput:
     values : (m,) decision values f(x); labels : (m,) predicted label values;
     truth : (m,) given labels or None; confusion : confusion matrix and accuracies when
     the data carried the label column, else None; fingerprint : of the scored data.
+    probabilities : (m, k) class probabilities (columns in ``probability_labels`` order)
+    when asked for, else None; probability_disagreements : rows whose most probable class
+    differs from the decision-value label.
     """
 
     run_id: str | None
@@ -280,10 +293,13 @@ class ModelOutput:
     confusion: Mapping[str, Any] | None
     fingerprint: str
     source: str | None
+    probabilities: np.ndarray | None = None
+    probability_labels: tuple[Any, ...] | None = None
+    probability_disagreements: int | None = None
 
     def to_dict(self) -> dict[str, Any]:
         """Plain data (lists)."""
-        return {
+        out = {
             "run_id": self.run_id,
             "n": int(self.values.shape[0]),
             "fingerprint": self.fingerprint,
@@ -292,6 +308,11 @@ class ModelOutput:
             "labels": [_plain(v) for v in self.labels.tolist()],
             "confusion": None if self.confusion is None else dict(self.confusion),
         }
+        if self.probabilities is not None:
+            out["probability_labels"] = [_plain(v) for v in self.probability_labels or ()]
+            out["probabilities"] = self.probabilities.tolist()
+            out["probability_disagreements"] = self.probability_disagreements
+        return out
 
 
 def _has_column(path: Path, column: str | None) -> bool:
@@ -320,12 +341,15 @@ def _has_column(path: Path, column: str | None) -> bool:
 
 def apply(
     run: str | RunRecord, data: Dataset | str | Path, *, store: Any = None,
-    label: str | None = None,
+    label: str | None = None, probabilities: bool = False,
 ) -> ModelOutput:
     """Decision values and predicted labels of a stored run's model on ``data``.
 
     When the data carry a label column (``label``, or the run's label column if the file
-    has it) the confusion matrix, accuracy and balanced accuracy are included.
+    has it) the confusion matrix, accuracy and balanced accuracy are included.  With
+    ``probabilities`` the run's fitted sigmoid gives P(class | x) for every class (an
+    :class:`InvalidInputError` says how to get one when the run has none, or why its fit
+    failed).
     """
     rec = load_run(run, store=store)
     names = list(rec.data.get("feature_names") or [])
@@ -338,8 +362,18 @@ def apply(
     values = model.values(X)
     pred = model.classify(X)
     conf = None if ds.labels is None else _confusion(ds.labels, pred, model.labels)
+    probs = plabels = disagree = None
+    if probabilities:
+        from .calibration.reproduce import run_calibration
+
+        cal = run_calibration(rec)
+        probs = cal.probabilities(values)
+        plabels = tuple(model.labels)
+        disagree = int(np.sum((probs[:, 1] > 0.5) != (values > 0)))
     return ModelOutput(run_id=rec.run_id, values=values, labels=pred, truth=ds.labels,
-                  confusion=conf, fingerprint=_fingerprint(ds), source=ds.source)
+                       confusion=conf, fingerprint=_fingerprint(ds), source=ds.source,
+                       probabilities=probs, probability_labels=plabels,
+                       probability_disagreements=disagree)
 
 
 def _stored_comparison(second: RunRecord, first: RunRecord) -> Any | None:

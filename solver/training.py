@@ -109,11 +109,15 @@ def _command(
         if label is not None:
             argv += ["--label", label]
         for k, v in opts.items():
-            if v is None or k in ("standardise",):
+            if v is None or k in ("standardise", "probabilities"):
+                continue
+            if k.startswith("calibration_") and not opts.get("probabilities"):
                 continue
             argv += ["--" + k.replace("_", "-"), str(v)]
         if not opts.get("standardise", True):
             argv.append("--no-standardise")
+        if opts.get("probabilities"):
+            argv.append("--probabilities")
         if holdout is not None and isinstance(holdout, (str, Path)):
             argv += ["--holdout", str(holdout)]
         py = f"solver.train({str(data)!r}, label={label!r}, {py_args})"
@@ -202,6 +206,10 @@ def _run_summary(record: RunRecord, run_id: str, run_dir: Path) -> dict[str, Any
         "kernel": record.problem.kernel.describe(),
         "C": record.problem.info.get("C"),
     }
+    cal = record.attachments.get("calibration")
+    if cal:
+        s["calibration"] = {k: cal.get(k) for k in ("status", "message", "A", "B", "n_folds",
+                                                    "seed")}
     hold = record.attachments.get("holdout")
     if hold:
         s["holdout_accuracy"] = hold["accuracy"]
@@ -237,6 +245,22 @@ def _holdout_facts(
     return facts
 
 
+def _calibration(problem: DualProblem, method: str, kkt_tol: float, limit: int | None,
+                 n_folds: int, seed: int, model: Model, hold: Dataset | None,
+                 feature_names: Sequence[str]) -> dict[str, Any]:
+    """Cross-validated Platt scaling of the primary run (plain data for the attachment)."""
+    from .calibration import calibrate
+
+    cal = calibrate(problem, n_folds=n_folds, seed=seed, solver=method, kkt_tol=kkt_tol,
+                    iteration_limit=limit)
+    if hold is not None:
+        Xh = _align(hold, feature_names, "held-out data")
+        positive = np.asarray([v == model.labels[1] for v in hold.labels.tolist()], dtype=bool)
+        cal = cal.with_holdout(model.values(Xh), positive, source=hold.source,
+                               fingerprint=_fingerprint(hold))
+    return cal.to_attachment()
+
+
 def train(
     data: Dataset | str | Path,
     *,
@@ -256,6 +280,9 @@ def train(
     explain: bool = True,
     quiet: bool = True,
     progress: ProgressFn | None = None,
+    probabilities: bool = False,
+    calibration_folds: int = 5,
+    calibration_seed: int = 0,
 ) -> TrainOutcome:
     """Train a binary kernel SVM, audit it and save the run(s) to the store.
 
@@ -280,6 +307,10 @@ def train(
     quiet : keep solver and data warnings out of the warnings machinery (they are
         recorded in the outcome either way).
     progress : optional ``progress(task, info)`` callable (see :data:`ProgressFn`).
+    probabilities : also fit Platt scaling on cross-validated decision values of the
+        primary run (attachment ``"calibration"``; see :mod:`solver.calibration`).
+    calibration_folds, calibration_seed : the stratified folds of that cross-validation
+        (recorded with the run, so a re-run reproduces the probabilities bitwise).
 
     Returns
     -------
@@ -319,6 +350,8 @@ def train(
             kkt_tol=float(kkt_tol), iteration_limit=iteration_limit, solver=solver,
             standardise=standardise,
             holdout=holdout, store=run_store, trace=trace, explain=explain, progress=progress,
+            probabilities=bool(probabilities), calibration_folds=calibration_folds,
+            calibration_seed=calibration_seed,
         )
     for w in wlist:
         if issubclass(w.category, (ConvergenceWarning, DataWarning)):
@@ -350,6 +383,9 @@ def _train(
     trace: str,
     explain: bool,
     progress: ProgressFn | None,
+    probabilities: bool = False,
+    calibration_folds: int = 5,
+    calibration_seed: int = 0,
 ) -> TrainOutcome:
     ds = _load_data(data, label, "training data")
     if ds.labels is None:
@@ -363,6 +399,12 @@ def _train(
         _align(hold, ds.feature_names, "held-out data")  # fail before solving
     std = Standardiser.fit(ds.X) if standardise else Standardiser.identity(ds.X.shape[1])
     problem = binary_classification(std.transform(ds.X), ds.labels, kernel=kern, C=C)
+    if probabilities:
+        from .calibration import stratified_folds
+
+        info = problem.info["labels"]
+        stratified_folds(problem.y, calibration_folds, calibration_seed,  # fail before solving
+                         class_names=[str(info["negative"]), str(info["positive"])])
 
     methods = ["qp"] if solver == "qp" else ["smo"]
     skipped = None
@@ -386,7 +428,10 @@ def _train(
     }
     opts = {"kernel": kernel, "gamma": gamma, "degree": degree if kernel == "poly" else None,
             "offset": offset if kernel in ("poly", "sigmoid") else None, "C": C, "kkt_tol": kkt_tol,
-            "iteration_limit": iteration_limit, "standardise": standardise}
+            "iteration_limit": iteration_limit, "standardise": standardise,
+            "probabilities": probabilities or None,
+            "calibration_folds": calibration_folds if probabilities else None,
+            "calibration_seed": calibration_seed if probabilities else None}
 
     records: list[RunRecord] = []
     for method in methods:
@@ -405,6 +450,10 @@ def _train(
             attachments["holdout"] = _holdout_facts(model, hold, ds.feature_names)
         if method == "smo" and skipped:
             attachments["challenger"] = {"ran": False, "reason": skipped}
+        if probabilities and not records:
+            attachments["calibration"] = _calibration(
+                problem, method, kkt_tol, limit, calibration_folds, calibration_seed, model,
+                hold, ds.feature_names)
         records.append(RunRecord(problem=problem, result=result, data=data_facts,
                                  standardiser=std, attachments=attachments))
 
@@ -434,6 +483,9 @@ def _train(
             notes.append(f"{s['solver']} run {s['run_id']} did not converge: {s['message']}")
     if skipped:
         notes.append(skipped)
+    cal = saved[0].attachments.get("calibration")
+    if cal and cal["status"] != "fitted":
+        notes.append(f"probabilities: {cal['message']}; this run gives no probabilities")
     return TrainOutcome(
         run_ids=tuple(ids), records=tuple(saved), summaries=summaries, comparison=comparison,
         challenger_skipped=skipped, store=Path(store.root), warnings=tuple(notes),

@@ -21,7 +21,8 @@ _APPLY_EXAMPLES = """examples:
 def cmd_apply(args: argparse.Namespace) -> int:
     import solver
 
-    sc = solver.apply(args.run, args.data, store=args.store, label=args.label)
+    sc = solver.apply(args.run, args.data, store=args.store, label=args.label,
+                      probabilities=args.probabilities)
     if args.out:
         _write_outputs(sc, Path(args.out))
     if args.json:
@@ -36,13 +37,27 @@ def cmd_apply(args: argparse.Namespace) -> int:
         m = c["matrix"]
         print(f"  true {neg}: predicted {neg} {m[0][0]}, predicted {pos} {m[0][1]}")
         print(f"  true {pos}: predicted {neg} {m[1][0]}, predicted {pos} {m[1][1]}")
+    probs = sc.probabilities
+    if probs is not None:
+        print(f"  {sc.probability_disagreements} of {n} rows: the most probable class differs "
+              "from the decision-value label (the sigmoid's midpoint -B/A is not at f = 0; "
+              "see the report's probability section)")
     if args.out:
-        print(f"  decision values and labels written to {args.out}")
+        what = "decision values, labels and probabilities" if probs is not None else \
+            "decision values and labels"
+        print(f"  {what} written to {args.out}")
     else:
-        print("row  decision_value  label")
+        heads = "" if probs is None else "  " + "  ".join(
+            _prob_column(lab) for lab in sc.probability_labels)
+        print("row  decision_value  label" + heads)
         for i, (v, lab) in enumerate(zip(sc.values.tolist(), sc.labels.tolist(), strict=True)):
-            print(f"{i:<4d} {v:+.6f}       {lab}")
+            extra = "" if probs is None else "  " + "  ".join(f"{q:.6f}" for q in probs[i])
+            print(f"{i:<4d} {v:+.6f}       {lab}{extra}")
     return EXIT_OK
+
+
+def _prob_column(label: Any) -> str:
+    return f"probability_{label}"
 
 
 def _write_outputs(sc: Any, path: Path) -> None:
@@ -50,9 +65,12 @@ def _write_outputs(sc: Any, path: Path) -> None:
 
     with path.open("w", newline="", encoding="utf-8") as fh:
         w = csv.writer(fh, lineterminator="\n")
-        w.writerow(["row", "decision_value", "label"])
+        probs = sc.probabilities
+        heads = [] if probs is None else [_prob_column(lab) for lab in sc.probability_labels]
+        w.writerow(["row", "decision_value", "label", *heads])
         for i, (v, lab) in enumerate(zip(sc.values.tolist(), sc.labels.tolist(), strict=True)):
-            w.writerow([i, repr(float(v)), lab])
+            extra = [] if probs is None else [repr(float(q)) for q in probs[i]]
+            w.writerow([i, repr(float(v)), lab, *extra])
 
 
 
@@ -63,6 +81,10 @@ def register(sub: Any) -> None:
     p.add_argument("data", metavar="DATAFILE")
     p.add_argument("--label", metavar="COLUMN", default=None,
                    help="label column, if the data have one (default: the run's, if present)")
-    p.add_argument("--out", metavar="FILE", default=None, help="write row, value, label as CSV")
+    p.add_argument("--out", metavar="FILE", default=None,
+                   help="write row, value, label (and probability_<label> columns) as CSV")
+    p.add_argument("--probabilities", action="store_true",
+                   help="add P(class | x) for every class from the run's fitted sigmoid "
+                   "(the run must be trained with --probabilities)")
     p.set_defaults(func=cmd_apply)
 

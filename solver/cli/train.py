@@ -56,6 +56,15 @@ def _run_block(s: Mapping[str, Any], role: str) -> list[str]:
             f"  held-out      accuracy {num(s['holdout_accuracy'], '.3f')}, balanced accuracy "
             f"{num(s['holdout_balanced_accuracy'], '.3f')}"
         )
+    cal = s.get("calibration")
+    if cal:
+        if cal.get("status") == "fitted":
+            lines.append(f"  probabilities P(positive) = 1 / (1 + exp(A f + B)), A = "
+                         f"{num(cal.get('A'), '.6g')}, B = {num(cal.get('B'), '.6g')} "
+                         f"(on {cal.get('n_folds')}-fold cross-validated values, seed "
+                         f"{cal.get('seed')})")
+        else:
+            lines.append(f"  probabilities NOT AVAILABLE: {cal.get('message')}")
     if not s.get("converged"):
         lines.append(f"  note          {s.get('message', '')}")
     lines.append(f"  stored in     {s['run_dir']}")
@@ -71,7 +80,8 @@ def cmd_train(args: argparse.Namespace) -> int:
         iteration_limit=args.iteration_limit, solver=args.solver, standardise=not
         args.no_standardise,
         holdout=args.holdout, store=args.store, trace=args.trace, quiet=True,
-        progress=progress(args),
+        progress=progress(args), probabilities=args.probabilities,
+        calibration_folds=args.calibration_folds, calibration_seed=args.calibration_seed,
     )
     if args.json:
         emit_json(outcome.summary(), sys.stdout)
@@ -151,6 +161,13 @@ def register(sub: Any) -> None:
                    help="trace level (default full)")
     p.add_argument("--no-standardise", action="store_true",
                    help="use the features as given (default: standardise to mean 0, sd 1)")
+    p.add_argument("--probabilities", action="store_true",
+                   help="also fit Platt scaling on cross-validated decision values, so that "
+                   "'apply --probabilities' can give class probabilities")
+    p.add_argument("--calibration-folds", type=positive_int, default=5,
+                   help="stratified folds of that cross-validation (default 5)")
+    p.add_argument("--calibration-seed", type=int, default=0,
+                   help="seed of the fold assignment (default 0; recorded with the run)")
     p.set_defaults(func=cmd_train)
 
     p = add_command(sub, "demo", "run the full audit on invented tablet-coating QC data",

@@ -28,7 +28,8 @@ def cmd_verify(args: argparse.Namespace) -> int:
     repro = None if res.reproduction is None else to_dict(res.reproduction)
     if args.json:
         emit_json({"run_id": args.run, "ok": res.ok, "integrity": integ,
-                    "reproduction": repro, "rerun_run_id": res.rerun_run_id}, sys.stdout)
+                    "reproduction": repro, "rerun_run_id": res.rerun_run_id,
+                    "calibration": res.calibration}, sys.stdout)
     else:
         if res.integrity.ok:
             chain = integ.get("chain") or [args.run]
@@ -45,6 +46,12 @@ def cmd_verify(args: argparse.Namespace) -> int:
                   f"{repro.get('iterations')}, status {repro.get('status')}")
             for note in repro.get("notes") or ():
                 print(f"  note: {note}")
+        cal = res.calibration
+        if cal is not None:
+            print(f"re-run: probability calibration {cal['agreement']} ({cal['n_folds']} folds, "
+                  f"seed {cal['seed']}; A {num(cal['A'][0], '.10g')} vs "
+                  f"{num(cal['A'][1], '.10g')}, B {num(cal['B'][0], '.10g')} vs "
+                  f"{num(cal['B'][1], '.10g')})")
         if res.rerun_run_id:
             print(f"re-run stored as run {res.rerun_run_id}")
     if not res.ok:
