@@ -22,7 +22,10 @@ _TRAIN_EXAMPLES = """examples:
   kktrace train batches.csv --label lab_decision --kernel rbf --C 10 --solver both \\
       --holdout batches_holdout.csv
   kktrace train scores.parquet --label outcome --kernel poly --degree 2 --offset 1 --json
-  kktrace train X.npz --label y --kernel linear --kkt-tol 1e-5 --store audit-traces"""
+  kktrace train X.npz --label y --kernel linear --kkt-tol 1e-5 --store audit-traces
+  kktrace train grades.csv --label grade --class-weight balanced --solver both
+  kktrace train batches.csv --label outcome --weight-column batch_weight \\
+      --class-weight release=1,rework=2,reject=4"""
 
 _DEMO_EXAMPLES = """examples:
   kktrace demo
@@ -62,6 +65,56 @@ def _run_block(s: Mapping[str, Any], role: str) -> list[str]:
     return lines
 
 
+def class_weight_arg(text: str) -> str | dict[str, float]:
+    """``balanced`` or ``LABEL=W,LABEL=W`` (weights parsed later, errors name the label)."""
+    text = text.strip()
+    if text == "balanced":
+        return text
+    out: dict[str, Any] = {}
+    for part in text.split(","):
+        label, sep, w = part.partition("=")
+        if not sep or not label.strip():
+            raise argparse.ArgumentTypeError(
+                f"{part!r} is not LABEL=W (use e.g. 'pass=1,rework=2.5' or 'balanced')")
+        out[label.strip()] = w.strip()
+    return out
+
+
+def _pair_line(s: Mapping[str, Any]) -> str:
+    state = "converged" if s.get("converged") else f"NOT CONVERGED ({s['status']})"
+    key = " vs ".join(s.get("key") or [])
+    verdict = f", agreement {s['verdict']}" if s.get("verdict") else ""
+    return (f"  {key:24s} {s['solver']:3s} {s['run_id']}  {state}, {s['iterations']} it, "
+            f"violation {num(s['max_violation'], '.2e')}, gap {num(s['duality_gap'], '.2e')}"
+            f"{verdict}")
+
+
+def _print_parent(outcome: Any) -> None:
+    s = outcome.summaries[0]
+    info = outcome.parent.info
+    state = "converged" if s.get("converged") else f"NOT CONVERGED (worst status {s['status']})"
+    ex = info.get("execution") or {}
+    out = [
+        f"multi-class parent {s['run_id']}  [one-vs-one, {s['pairs']} pairs]  {state}",
+        f"  classes       {', '.join(info['classes'])}",
+        f"  pairs ran     {ex.get('mode', 'sequential')} ({ex.get('reason', 'one pair')})",
+        f"  slowest pair  {' vs '.join(s['slowest_pair']['key'] or [])}: "
+        f"{s['slowest_pair']['iterations']} iterations",
+        f"  worst verdict {s.get('worst_verdict') or 'n/a (no challenger)'}",
+        f"  violation     largest {num(s['max_violation'], '.3e')} "
+        f"(kkt_tol {num(s['kkt_tol'], '.1e')})",
+    ]
+    if "holdout_accuracy" in s:
+        out.append(f"  held-out      accuracy {num(s['holdout_accuracy'], '.3f')}, balanced "
+                   f"accuracy {num(s['holdout_balanced_accuracy'], '.3f')}")
+    out.append("  pair runs:")
+    out += [_pair_line(m) for m in outcome.members]
+    out.append(f"  stored in     {s['run_dir']}")
+    for w in outcome.warnings:
+        out.append(f"warning: {w}")
+    print("\n".join(out))
+
+
 def cmd_train(args: argparse.Namespace) -> int:
     import solver
 
@@ -71,10 +124,14 @@ def cmd_train(args: argparse.Namespace) -> int:
         iteration_limit=args.iteration_limit, solver=args.solver, standardise=not
         args.no_standardise,
         holdout=args.holdout, store=args.store, trace=args.trace, quiet=True,
-        progress=progress(args),
+        progress=progress(args), class_weight=args.class_weight,
+        weight_column=args.weight_column, max_classes=args.max_classes,
+        parallel=args.parallel,
     )
     if args.json:
         emit_json(outcome.summary(), sys.stdout)
+    elif outcome.parent is not None:
+        _print_parent(outcome)
     else:
         _print_outcome(outcome)
     return EXIT_OK if outcome.converged else EXIT_NOT_CONVERGED
@@ -128,7 +185,9 @@ def register(sub: Any) -> None:
     """Add ``train`` and ``demo`` to the sub-command table."""
     p = add_command(sub, "train", "train on a data file and store the run(s)", _TRAIN_EXAMPLES)
     p.add_argument("data", metavar="DATAFILE", help="CSV (header row), Parquet, .npy or .npz")
-    p.add_argument("--label", metavar="COLUMN", required=True, help="label column (two values)")
+    p.add_argument("--label", metavar="COLUMN", required=True,
+                   help="label column: two values, or three or more for one-vs-one "
+                   "(one run per pair of classes, tied together by a parent record)")
     p.add_argument("--kernel", choices=("linear", "poly", "rbf", "sigmoid"), default="rbf",
                    help="kernel (default rbf)")
     p.add_argument("--gamma", type=float_arg, default=None,
@@ -149,6 +208,19 @@ def register(sub: Any) -> None:
                    help="held-out labelled data, scored and recorded with the run")
     p.add_argument("--trace", choices=("full", "sampled", "off"), default="full",
                    help="trace level (default full)")
+    p.add_argument("--class-weight", metavar="LABEL=W,...", type=class_weight_arg,
+                   default=None,
+                   help="scale C per class: LABEL=W pairs, or 'balanced' for "
+                   "w_c = n / (k * n_c) (n rows, k classes, n_c rows of class c); "
+                   "bounds become u_i = C * w_class * w_row")
+    p.add_argument("--weight-column", metavar="COLUMN", default=None,
+                   help="column of per-row weights > 0 scaling C per row (not a feature)")
+    p.add_argument("--max-classes", type=positive_int, default=None,
+                   help="refuse a label column with more classes than this (default 30)")
+    p.add_argument("--parallel", metavar="WHERE", default="auto",
+                   help="where one-vs-one pairs run: auto (a Dask LocalCluster when the "
+                   "work is large enough, else in this process), sequential, local, or a "
+                   "Dask scheduler address tcp://HOST:PORT (default auto)")
     p.add_argument("--no-standardise", action="store_true",
                    help="use the features as given (default: standardise to mean 0, sd 1)")
     p.set_defaults(func=cmd_train)

@@ -27,7 +27,7 @@ from typing import Any
 
 from ..errors import IntegrityError, InvalidInputError
 from ..model import Model
-from ..run import RunRecord
+from ..run import ParentRecord, RunRecord
 from .catalog import CATALOG_FILE, Catalog, row_from_manifest
 from .codec import decode_model, decode_record, encode_record
 from .format import check_run_id, dump_json, is_run_id, new_run_id, parse_json, read_npz, utc_stamp
@@ -40,6 +40,7 @@ from .integrity import (
     parse_digest_file,
     sha256_hex,
 )
+from .parents import is_parent_manifest
 
 __all__ = ["RunStore", "ENV_VAR", "DEFAULT_DIR", "TEMP_PREFIX"]
 
@@ -227,6 +228,10 @@ class RunStore:
         """
         d = self._checked_dir(run_id, verify)
         manifest, mbytes = self._read_manifest(d, run_id)
+        if is_parent_manifest(manifest):
+            raise InvalidInputError(
+                f"{run_id} is a parent record (task {manifest.get('task')}) over "
+                f"{len(manifest.get('members') or [])} member runs; load it with load_parent")
         if verify:
             recorded = parse_digest_file((d / MANIFEST_DIGEST).read_bytes())
             if recorded != sha256_hex(mbytes):
@@ -268,8 +273,14 @@ class RunStore:
     # ------------------------------------------------------------------ verify
 
     def verify(self, run_id: str) -> Verification:
-        """Check a run folder byte for byte against its manifest, and its parent chain."""
+        """Check a run folder byte for byte against its manifest, and its parent chain.
+
+        For a parent record, check it and every member it names (:mod:`.parents`)."""
         check_run_id(run_id)
+        if self.is_parent(run_id):
+            from .parents import verify_parent
+
+            return verify_parent(self, run_id)
         problems, manifest, digest, checked = check_folder(self.root / run_id, run_id)
         recorded = self._catalog.digest(run_id)
         if recorded and digest and recorded != digest:
@@ -407,6 +418,86 @@ class RunStore:
                 shutil.rmtree(p, ignore_errors=True)
                 removed.append(p.name)
         return removed
+
+    # ------------------------------------------------------------------ parents
+
+    def is_parent(self, run_id: str) -> bool:
+        """True when the folder ``run_id`` holds a parent record (its manifest says so)."""
+        d = self.run_dir(run_id)
+        try:
+            manifest = parse_json((d / MANIFEST).read_bytes(), MANIFEST)
+        except (OSError, IntegrityError):
+            return False
+        return is_parent_manifest(manifest)
+
+    def save_parent(self, record: ParentRecord) -> str:
+        """Store a parent record over member runs already in this store; returns its id.
+
+        The SHA-256 of every member's ``manifest.json`` is recorded (a member whose
+        manifest does not match its ``manifest.sha256`` is refused).  Atomic like
+        :meth:`save`.
+        """
+        from .parents import encode_parent
+
+        digests: dict[str, str] = {}
+        for m in record.members if isinstance(record, ParentRecord) else ():
+            mdir = self._existing(m.run_id)
+            try:
+                mb = (mdir / MANIFEST).read_bytes()
+                rec = parse_digest_file((mdir / MANIFEST_DIGEST).read_bytes())
+            except OSError as exc:
+                raise IntegrityError(f"member run {m.run_id}: cannot read its manifest "
+                                     f"({exc})") from None
+            if rec != sha256_hex(mb):
+                raise IntegrityError(f"member run {m.run_id}: manifest.json does not match "
+                                     "manifest.sha256")
+            digests[m.run_id] = sha256_hex(mb)
+        now = datetime.now(timezone.utc)
+        run_id = new_run_id(now)
+        files, manifest = encode_parent(record, run_id=run_id, created=utc_stamp(now),
+                                        digests=digests)
+        manifest["files"] = {name: {"sha256": sha256_hex(b), "bytes": len(b)}
+                             for name, b in files.items()}
+        mbytes = dump_json(manifest)
+        mdigest = sha256_hex(mbytes)
+        self.root.mkdir(parents=True, exist_ok=True)
+        tmp = self.root / f"{TEMP_PREFIX}{run_id}-{os.getpid()}"
+        tmp.mkdir()
+        try:
+            for name, data in files.items():
+                _write_durable(tmp / name, data)
+            _write_durable(tmp / MANIFEST, mbytes)
+            _write_durable(tmp / MANIFEST_DIGEST, digest_file_bytes(mdigest))
+            _fsync_dir(tmp)
+            os.rename(tmp, self.root / run_id)
+        except BaseException:
+            shutil.rmtree(tmp, ignore_errors=True)
+            raise
+        try:
+            _fsync_dir(self.root)
+        except OSError as exc:
+            warnings.warn(f"parent {run_id} saved, but syncing the store folder failed ({exc})",
+                          stacklevel=2)
+        total = len(mbytes) + 65 + len(MANIFEST) + 1 + sum(len(b) for b in files.values())
+        try:
+            self._catalog.upsert([row_from_manifest(manifest, mdigest, total)])
+        except sqlite3.Error as exc:
+            warnings.warn(f"parent {run_id} saved but the catalog was not updated ({exc})",
+                          stacklevel=2)
+        return run_id
+
+    def load_parent(self, run_id: str, *, verify: bool = True) -> ParentRecord:
+        """The stored parent record (with ``verify``: it and every member verified first)."""
+        from .parents import decode_parent
+
+        d = self._checked_dir(run_id, verify)
+        manifest, _ = self._read_manifest(d, run_id)
+        if not is_parent_manifest(manifest):
+            raise InvalidInputError(f"run {run_id} is not a parent record")
+        files = manifest.get("files")
+        if not isinstance(files, dict):
+            raise IntegrityError("manifest.json: field files must be an object")
+        return decode_parent(manifest, self._blobs(d, manifest, verify))
 
     @property
     def catalog_path(self) -> Path:
