@@ -51,6 +51,11 @@ _EXPORTS: dict[str, str] = {
     # building blocks
     "make_kernel": "kernels",
     "binary_classification": "problem",
+    "regression": "problem",
+    "one_class": "problem",
+    "regression_measures": "measures",
+    "novelty_measures": "measures",
+    "nu_property": "measures",
     "DualProblem": "problem",
     "solve": "solvers",
     "SolveResult": "result",
