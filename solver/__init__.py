@@ -9,7 +9,7 @@ The public workflow, with the same names as the ``kktrace`` command:
 ``train`` solves with SMO (and the QP challenger), ``load_run`` / ``runs`` read the store,
 ``compare`` gives the solver-agreement verdict, ``explain`` / ``leave_one_out`` say why
 points became support vectors, ``replay`` rebuilds a recorded iteration, ``verify``
-checks integrity and reproduction, ``score`` applies a stored model, ``report`` writes
+checks integrity and reproduction, ``apply`` applies a stored model, ``report`` writes
 HTML / PDF / JSON.  Names are loaded on first use, so ``import solver`` stays light.
 """
 
@@ -33,8 +33,8 @@ _EXPORTS: dict[str, str] = {
     "replay": "api",
     "verify": "api",
     "VerifyOutcome": "api",
-    "score": "api",
-    "Scores": "api",
+    "apply": "api",
+    "ModelOutput": "api",
     "report": "api",
     "export_explanation": "api",
     "open_store": "api",

@@ -990,7 +990,7 @@ def smo_run(F, beta, lo, hi, diag, ysign, status, perm,
     second = istate[IS_SECOND_ORDER] == 1
     unit_diag = istate[IS_UNIT_DIAG] == 1
     stall_window = istate[IS_STALL_WINDOW]
-    tol = fstate[FS_TOL]
+    kkt_tol = fstate[FS_TOL]
     tau = fstate[FS_TAU]
     dual_value = fstate[FS_OBJ]
     cap_rows = tr_it.shape[0]
@@ -1038,7 +1038,7 @@ def smo_run(F, beta, lo, hi, diag, ysign, status, perm,
             best, j, big_m = low_split(F, Ki, ref_i, diag, status, a, m, diag[i], tau, second,
                                        unit_diag, bm, wbuf, hctl, hval)
             viol = m - big_m
-            if j < 0 or viol <= tol:
+            if j < 0 or viol <= kkt_tol:
                 ret = RUN_CONVERGED
                 break
             if it >= stop_at:

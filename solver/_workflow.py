@@ -26,8 +26,8 @@ DEFAULT_STORE = "traces"
 SOLVER_CHOICES = ("smo", "qp", "both")
 KERNEL_CHOICES = ("linear", "poly", "rbf", "sigmoid")
 
-#: ``progress(task, info)``: task is ``"solve"`` (info: solver, iteration, violation, tol,
-#: max_iter) or ``"leave_one_out"`` (info: done, total); ``"done"`` ends a task.
+#: ``progress(task, info)``: task is ``"solve"`` (info: solver, iteration, violation, kkt_tol,
+#: iteration_limit) or ``"leave_one_out"`` (info: done, total); ``"done"`` ends a task.
 ProgressFn = Callable[[str, Mapping[str, Any]], None]
 
 

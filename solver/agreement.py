@@ -305,7 +305,7 @@ def _run_facts(label: str, problem: DualProblem, result: SolveResult, objective:
         "dual_objective": float(objective),
         "certificate_dual_objective": float(c.dual_objective),
         "duality_gap": float(c.duality_gap), "relative_gap": float(c.relative_gap),
-        "max_violation": float(c.max_violation), "certificate_tol": float(c.tol),
+        "max_violation": float(c.max_violation), "certificate_tol": float(c.kkt_tol),
         "bias": float(result.bias), "bound_violation": bound, "equality_residual": eq,
         "fingerprint": None if data is None else data.get("fingerprint"),
     }
@@ -472,7 +472,7 @@ def compare_results(
             notes.append(
                 f"run {r['label']} ({r['solver']}) was solved only to maximal violation "
                 f"<= {r['certificate_tol']:g}; differences of that order are expected, so "
-                "re-solve it with a tighter tol to tell solver tolerance from disagreement")
+                "re-solve it with a tighter kkt_tol to tell solver tolerance from disagreement")
     return Comparison(
         verdict=verdict, verdict_text=text, measures=measures, failed=failed, failures=failures,
         tolerances=tol, runs=runs, objective_abs_diff=obj_abs, alpha_rms_diff=alpha_rms,

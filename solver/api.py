@@ -2,10 +2,10 @@
 
 ``train`` loads data, standardises it, audits the kernel, solves the SVM dual with SMO
 (and, with ``solver="both"``, with the independent QP challenger), explains every
-training point, scores held-out data and saves each run to the store.  The other
+training point, applies each model to held-out data and saves each run to the store.  The other
 functions are thin wrappers that take run ids (or loaded records) and a store:
 ``load_run``, ``runs``, ``compare``, ``explain``, ``leave_one_out``, ``replay``,
-``verify``, ``score``, ``report`` and ``export_explanation``.
+``verify``, ``apply``, ``report`` and ``export_explanation``.
 
 Nothing here prints; progress is reported through an optional ``progress(task, info)``
 callable (see :data:`ProgressFn`).
@@ -50,7 +50,7 @@ __all__ = [
     "KERNEL_CHOICES",
     "ProgressFn",
     "TrainOutcome",
-    "Scores",
+    "ModelOutput",
     "VerifyOutcome",
     "open_store",
     "train",
@@ -61,7 +61,7 @@ __all__ = [
     "leave_one_out",
     "replay",
     "verify",
-    "score",
+    "apply",
     "report",
     "export_explanation",
     "check_output_path",
@@ -323,7 +323,7 @@ def new_signing_keys(name: str, directory: str | Path) -> tuple[Path, Path]:
 
 
 @dataclass(frozen=True, eq=False)
-class Scores:
+class ModelOutput:
     """Decision values and labels of a run's model on new data.
 
     values : (m,) decision values f(x); labels : (m,) predicted label values;
@@ -376,10 +376,10 @@ def _has_column(path: Path, column: str | None) -> bool:
     return False
 
 
-def score(
+def apply(
     run: str | RunRecord, data: Dataset | str | Path, *, store: Any = None,
     label: str | None = None,
-) -> Scores:
+) -> ModelOutput:
     """Decision values and predicted labels of a stored run's model on ``data``.
 
     When the data carry a label column (``label``, or the run's label column if the file
@@ -390,13 +390,13 @@ def score(
     if isinstance(data, (str, Path)) and label is None:
         lab = rec.data.get("label_name")
         label = lab if _has_column(Path(data), lab) else None
-    ds = _load_data(data, label, "data to score")
-    X = _align(ds, names, "data to score")
+    ds = _load_data(data, label, "data the model is applied to")
+    X = _align(ds, names, "data the model is applied to")
     model = model_from_solution(rec.problem, rec.result, rec.standardiser)
     values = model.values(X)
     pred = model.classify(X)
     conf = None if ds.labels is None else _confusion(ds.labels, pred, model.labels)
-    return Scores(run_id=rec.run_id, values=values, labels=pred, truth=ds.labels,
+    return ModelOutput(run_id=rec.run_id, values=values, labels=pred, truth=ds.labels,
                   confusion=conf, fingerprint=_fingerprint(ds), source=ds.source)
 
 

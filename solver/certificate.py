@@ -32,7 +32,7 @@ DEFAULT_BOUND_TOL = 1e-8
 class Certificate:
     """Optimality evidence for one α.  Objectives in the units of the dual objective."""
 
-    tol: float
+    kkt_tol: float
     max_violation: float
     m_up: float
     M_low: float
@@ -59,17 +59,17 @@ class Certificate:
 
     @property
     def meets_tol(self) -> bool:
-        """True when the maximal violation is within ``tol``.
+        """True when the maximal violation is within ``kkt_tol``.
 
         Feasibility is not part of this test; read :attr:`bound_violation` and
         :attr:`equality_residual` for it.
         """
-        return bool(self.max_violation <= self.tol)
+        return bool(self.max_violation <= self.kkt_tol)
 
     def to_dict(self) -> dict[str, Any]:
         """Scalars only, as plain data for manifests and JSON."""
         return {
-            "tol": self.tol,
+            "kkt_tol": self.kkt_tol,
             "max_violation": self.max_violation,
             "m_up": self.m_up,
             "M_low": self.M_low,
@@ -95,7 +95,7 @@ def certify(
     problem: DualProblem,
     alpha: np.ndarray,
     *,
-    tol: float = 1e-3,
+    kkt_tol: float = 1e-3,
     gradient: np.ndarray | None = None,
     bound_tol: float = DEFAULT_BOUND_TOL,
 ) -> Certificate:
@@ -146,7 +146,7 @@ def certify(
     scale = max(abs(primal), abs(dual), np.finfo(float).tiny)
     bound_violation, eq_resid = problem.feasibility(alpha)
     return Certificate(
-        tol=float(tol), max_violation=float(max_violation), m_up=m_up, M_low=M_low,
+        kkt_tol=float(kkt_tol), max_violation=float(max_violation), m_up=m_up, M_low=M_low,
         bias=bias, bias_from=bias_from, dual_objective=dual, primal_objective=primal,
         duality_gap=gap, relative_gap=gap / scale, bound_violation=bound_violation,
         equality_residual=eq_resid, n_free=int(free.sum()), n_bounded=int(at_upper.sum()),

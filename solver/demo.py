@@ -60,7 +60,7 @@ N_TRAIN, N_HOLDOUT = 360, 120
 _DECIMALS = {"coating_thickness_um": 1, "dissolution_30min_pct": 1, "hardness_n": 0,
              "moisture_pct": 2}
 #: Training settings used by :func:`run_demo` (RBF kernel, gamma by the median heuristic).
-DEMO_SETTINGS: Mapping[str, Any] = {"kernel": "rbf", "C": 10.0, "tol": 1e-5}
+DEMO_SETTINGS: Mapping[str, Any] = {"kernel": "rbf", "C": 10.0, "kkt_tol": 1e-5}
 TRAIN_FILE, HOLDOUT_FILE = "tablet_coating.csv", "tablet_coating_holdout.csv"
 
 

@@ -47,13 +47,14 @@ from .problem import DualProblem
 from .result import TRACE_LEVELS, SolveResult, Trace
 from .status import Status, status_message
 
-__all__ = ["solve_qp", "KKT_METHODS", "DEFAULT_TOL", "DEFAULT_KKT_TOL", "DEFAULT_SIZE_LIMIT"]
+__all__ = ["solve_qp", "KKT_METHODS", "DEFAULT_INTERIOR_POINT_TOL", "DEFAULT_KKT_TOL",
+           "DEFAULT_SIZE_LIMIT"]
 
 #: cvxopt abstol = reltol = feastol.  Interior-point accuracy in α and in the gradient is
 #: roughly the square root of the final gap, so cvxopt's default 1e-7 left maximal
 #: violations up to 3e-3 on scikit-learn's breast cancer data (C = 100); 1e-9 costs one or
 #: two more iterations and gave ≤ 5e-5 on every bundled dataset tried (measured).
-DEFAULT_TOL = 1e-9
+DEFAULT_INTERIOR_POINT_TOL = 1e-9
 #: Tolerance on the shared certificate's maximal violation m(α) − M(α) (gradient units);
 #: the usual SMO stopping tolerance (common practice).
 DEFAULT_KKT_TOL = 1e-3
@@ -337,7 +338,8 @@ def _snap(problem: DualProblem, x: np.ndarray, s: np.ndarray, z: np.ndarray,
                    "max_change": change, "equality_shift": abs(shift), "restored": total}
 
 
-def _check_options(problem: DualProblem, tol: float, max_iter: int, size_limit: int,
+def _check_options(problem: DualProblem, interior_point_tol: float, iteration_limit: int,
+                   size_limit: int,
                    trace: str, kkt: str, kkt_tol: float, sample_every: int,
                    snapshot_every: int, time_limit: float | None, callback: Any,
                    alpha0: np.ndarray | None, force: bool) -> np.ndarray | None:
@@ -351,9 +353,9 @@ def _check_options(problem: DualProblem, tol: float, max_iter: int, size_limit: 
         if isinstance(v, bool) or not isinstance(v, (int, np.integer)) or int(v) < least:
             raise InvalidInputError(f"qp solver: {name} must be an integer >= {least}, got {v!r}")
 
-    positive("tol", tol)
+    positive("interior_point_tol", interior_point_tol)
     positive("kkt_tol", kkt_tol)
-    count("max_iter", max_iter, 1)
+    count("iteration_limit", iteration_limit, 1)
     count("size_limit", size_limit, 1)
     count("sample_every", sample_every, 1)
     count("snapshot_every", snapshot_every, 0)
@@ -385,8 +387,8 @@ def _check_options(problem: DualProblem, tol: float, max_iter: int, size_limit: 
 def solve_qp(
     problem: DualProblem,
     *,
-    tol: float = DEFAULT_TOL,
-    max_iter: int = 100,
+    interior_point_tol: float = DEFAULT_INTERIOR_POINT_TOL,
+    iteration_limit: int = 100,
     size_limit: int = DEFAULT_SIZE_LIMIT,
     force: bool = False,
     trace: str = "full",
@@ -404,10 +406,12 @@ def solve_qp(
     ----------
     problem : the dual problem (n points; Q is formed densely, 8·n² bytes, plus the same again
         for the factorisation).
-    tol : cvxopt's ``abstol``, ``reltol`` and ``feastol`` all set to this value: cvxopt stops when
-        the primal and dual residuals (relative, its definitions) are ≤ tol and the duality gap
-        sᵀz ≤ tol or the relative gap ≤ tol.
-    max_iter : cvxopt ``maxiters``.
+    interior_point_tol : cvxopt's ``abstol``, ``reltol`` and ``feastol`` all set to this value:
+    cvxopt stops when
+        the primal and dual residuals (relative,
+                                       its definitions) are ≤ interior_point_tol and the duality gap
+        sᵀz ≤ interior_point_tol or the relative gap ≤ interior_point_tol.
+    iteration_limit : cvxopt ``maxiters``.
     size_limit, force : above ``size_limit`` points the call is refused unless ``force``.
     trace : ``"full"`` (a row per iteration), ``"sampled"`` (every ``sample_every``-th) or
         ``"off"``.  Columns: ``iteration``, ``primal_objective`` (½αᵀQα + pᵀα at the iterate,
@@ -458,7 +462,8 @@ def solve_qp(
     'converged'
     """
     started = time.perf_counter()
-    a0 = _check_options(problem, tol, max_iter, size_limit, trace, kkt, kkt_tol, sample_every,
+    a0 = _check_options(problem, interior_point_tol, iteration_limit, size_limit, trace, kkt,
+                        kkt_tol, sample_every,
                         snapshot_every, time_limit, callback, alpha0, force)
     from cvxopt import blas, matrix, solvers
 
@@ -471,8 +476,10 @@ def solve_qp(
     h = matrix(rec.h.copy())
     A = matrix(problem.y.copy(), (1, n))
     b = matrix([problem.delta])
-    cvx_options = {"show_progress": False, "maxiters": int(max_iter), "abstol": float(tol),
-                   "reltol": float(tol), "feastol": float(tol), "refinement": 0}
+    cvx_options = {"show_progress": False, "maxiters": int(iteration_limit),
+                   "abstol": float(interior_point_tol),
+                   "reltol": float(interior_point_tol), "feastol": float(interior_point_tol),
+                   "refinement": 0}
     if kkt == "structured":
         def P(u: Any, v: Any, alpha: float = 1.0, beta: float = 0.0) -> None:
             blas.symv(Qc, u, v, alpha=alpha, beta=beta)
@@ -542,7 +549,7 @@ def solve_qp(
         detail = detail or rec.singular or "singular KKT matrix"
     elif raw_status == "optimal":
         status = Status.CONVERGED
-    elif raw_status == "unknown" and iterations >= max_iter:
+    elif raw_status == "unknown" and iterations >= iteration_limit:
         status = Status.ITERATION_LIMIT
     else:
         status = Status.NUMERICAL_ERROR
@@ -553,7 +560,7 @@ def solve_qp(
 
     kappa = max(float(np.max(np.diag(Q))), np.finfo(float).tiny)
     alpha, snap = _snap(problem, x, s, z, kappa)
-    cert = certify(problem, alpha, tol=kkt_tol, gradient=_qx(Qc, alpha) + problem.p)
+    cert = certify(problem, alpha, kkt_tol=kkt_tol, gradient=_qx(Qc, alpha) + problem.p)
     detail_text = f"cvxopt status {raw_status!r}" + (f": {detail}" if detail else "")
     message = status_message(status, detail_text)
     if status == Status.CONVERGED and not cert.meets_tol:
@@ -583,7 +590,8 @@ def solve_qp(
                     "primal infeasibility", "dual infeasibility", "primal slack", "dual slack"):
             v = sol.get(key)
             backend_stats[key.replace(" ", "_")] = None if v is None else float(v)
-    options = {"tol": float(tol), "max_iter": int(max_iter), "size_limit": int(size_limit),
+    options = {"interior_point_tol": float(interior_point_tol),
+               "iteration_limit": int(iteration_limit), "size_limit": int(size_limit),
                "force": bool(force), "trace": trace, "kkt": kkt, "kkt_tol": float(kkt_tol),
                "sample_every": int(sample_every), "snapshot_every": int(snapshot_every),
                "time_limit": time_limit, "alpha0": a0 is not None,

@@ -3,7 +3,7 @@
 Working-set selection by maximal violating pair (first order; Keerthi et al. 2001) or by
 second-order gain (Fan, Chen & Lin, JMLR 6, 2005, WSS 2, the default); non-positive
 curvature aᵢⱼ ≤ 0 is replaced by τ = 1e-12 as in that paper (section 4) and recorded as an
-event.  Stopping test: maximal violation m(α) − M(α) ≤ tol.  The numerical loop lives in
+event.  Stopping test: maximal violation m(α) − M(α) ≤ kkt_tol.  The numerical loop lives in
 :mod:`solver._smo_kernels`; this module validates options, prepares kernel access, runs
 the loop in pauses (snapshots, callback, time limit, shrinking), and builds the result.
 
@@ -69,7 +69,7 @@ EVENT_KINDS: dict[int, str] = {
 SELECTIONS = ("second_order", "first_order")
 #: a shrink is carried out only when it removes at least this fraction of the active set
 SHRINK_MIN_FRACTION = 0.05
-#: initial row-cache capacity (MB); it grows up to ``cache_mb`` while evicted rows recur
+#: initial row-cache capacity (MB); it grows up to ``row_cache_mb`` while evicted rows recur
 CACHE_START_MB = 64
 #: default full-Gram budget (MB) when ``kernel_memory_mb`` is not given: the smaller of this
 #: and half the available memory.  Rows are computed when first needed either way; beyond
@@ -284,7 +284,7 @@ class _Engine:
     """
 
     def __init__(self, problem: DualProblem, alpha: np.ndarray, *, dtype: np.dtype,
-                 budget_mb: float, cache_mb: float, level: int, trace_rows: int,
+                 budget_mb: float, row_cache_mb: float, level: int, trace_rows: int,
                  threads: int = 1) -> None:
         self.problem = problem
         self.threads = threads
@@ -327,19 +327,19 @@ class _Engine:
             self.mode = 0
             self.gram = np.array(kern.gram_matrix[np.ix_(idx, idx)], dtype=dtype, order="C")
             self.rowslot = np.arange(n, dtype=np.int64)
-            cache_bytes = min(cache_mb * 2**20, 0.1 * n * n * itemsize + 64 * 2**20)
+            cache_bytes = min(row_cache_mb * 2**20, 0.1 * n * n * itemsize + 64 * 2**20)
         elif gram_mb <= budget_mb:
             self.mode = 0
             # rows are computed when first needed and packed in that order, so that only
             # the memory of rows actually used is touched (fresh pages are costly)
             self.gram = _fresh_array((n, n), dtype)
             self.rowslot = np.full(n, -1, dtype=np.int64)
-            cache_bytes = min(cache_mb * 2**20, 0.1 * n * n * itemsize + 64 * 2**20)
+            cache_bytes = min(row_cache_mb * 2**20, 0.1 * n * n * itemsize + 64 * 2**20)
         else:
             self.mode = 1
             self.gram = np.empty((1, 1), dtype=dtype)
             self.rowslot = np.full(1, -1, dtype=np.int64)
-            cache_bytes = cache_mb * 2**20
+            cache_bytes = row_cache_mb * 2**20
         # row cache over the active positions; slots are re-laid out at each shrink so
         # that shorter rows give more slots
         self.cache_elems = int(max(2 * n, cache_bytes // itemsize))
@@ -415,7 +415,7 @@ class _Engine:
         ist[_k.IS_VERSION] = 0
 
     def adapt_cache(self, window: int) -> None:
-        """Row-cache capacity: double it (up to ``cache_mb``) when the last ``window``
+        """Row-cache capacity: double it (up to ``row_cache_mb``) when the last ``window``
         iterations re-computed more evicted rows than the cache has slots, i.e. when
         re-computing cost more than first-touching the added memory would (the two cost
         about the same per row here, see module notes); when the cache is full and its
@@ -611,7 +611,7 @@ class _Engine:
         gradient says they will stay at the bound.  The dropped variables come back only
         when the active set meets the stopping test (:meth:`unshrink`, then the test is
         repeated on all variables).  The paper also unshrinks once when the violation first
-        falls below 10·tol; on the benchmark problems that extra reconstruction never paid
+        falls below 10·kkt_tol; on the benchmark problems that extra reconstruction never paid
         off (n = 20000: 0.98–1.03 s against 1.22–1.29 s at C = 1, 4.67–4.92 s against
         5.03–5.19 s at C = 100; equal at n = 2000), so it is not done."""
         a = self.active
@@ -735,7 +735,7 @@ def _warm_up(dtype: np.dtype) -> float:
     prob = DualProblem(X=X, y=np.array([1.0, -1.0, 1.0]), p=-np.ones(3), lower=np.zeros(3),
                        upper=np.ones(3), delta=0.0, kernel=RBFKernel(gamma=1.0),
                        kind="warm_up", info={})
-    eng = _Engine(prob, np.zeros(3), dtype=dtype, budget_mb=1.0, cache_mb=1.0, level=0,
+    eng = _Engine(prob, np.zeros(3), dtype=dtype, budget_mb=1.0, row_cache_mb=1.0, level=0,
                   trace_rows=16)
     eng.istate[_k.IS_STOP_AT] = 10
     eng.istate[_k.IS_SHRINK_AT] = 2
@@ -763,8 +763,8 @@ def _warm_up(dtype: np.dtype) -> float:
 def solve_smo(
     problem: DualProblem,
     *,
-    tol: float = 1e-3,
-    max_iter: int | None = None,
+    kkt_tol: float = 1e-3,
+    iteration_limit: int | None = None,
     time_limit: float | None = None,
     selection: str = "second_order",
     shrinking: bool = True,
@@ -773,7 +773,7 @@ def solve_smo(
     snapshot_every: int | None = None,
     kernel_memory_mb: float | None = None,
     kernel_dtype: str = "float64",
-    cache_mb: float = 1024.0,
+    row_cache_mb: float = 1024.0,
     alpha0: np.ndarray | None = None,
     callback: Callable[[dict], bool | None] | None = None,
     callback_every: int = 1000,
@@ -785,8 +785,8 @@ def solve_smo(
     Parameters
     ----------
     problem : the dual problem (n variables).
-    tol : stopping tolerance on the maximal violation m(α) − M(α) (gradient units).
-    max_iter : iteration limit; default max(10⁷, 100 n).
+    kkt_tol : stopping tolerance on the maximal violation m(α) − M(α) (gradient units).
+    iteration_limit : iteration limit; default max(10⁷, 100 n).
     time_limit : wall-clock budget in seconds (checked between pauses of the loop).
     selection : ``"second_order"`` (Fan, Chen & Lin 2005, WSS 2) or ``"first_order"``
         (maximal violating pair, Keerthi et al. 2001).
@@ -799,14 +799,14 @@ def solve_smo(
     kernel_memory_mb : budget for the full Gram matrix (MB); default the smaller of
         ``DEFAULT_GRAM_MB`` and half the available memory.  Within budget the Gram is
         stored, each row computed when first needed; beyond it, an LRU cache of rows over
-        the active variables (at most ``cache_mb``) is used.
+        the active variables (at most ``row_cache_mb``) is used.
     kernel_dtype : ``"float64"`` or ``"float32"`` kernel storage (arithmetic in float64).
-    cache_mb : largest row-cache size in MB (the cache starts at ``CACHE_START_MB`` and
+    row_cache_mb : largest row-cache size in MB (the cache starts at ``CACHE_START_MB`` and
         doubles while evicted rows are requested again).
     alpha0 : feasible warm start (n,) (see :func:`repair_start`); default the problem's
         feasible start (α = 0 for classification).
     callback : called every ``callback_every`` iterations with a dict of ``iteration``,
-        ``violation``, ``tol``, ``active``, ``objective``; returning True or raising
+        ``violation``, ``kkt_tol``, ``active``, ``objective``; returning True or raising
         ``StopIteration`` stops the run (status ``stopped_by_callback``).
     stall_window : stop as stalled after this many iterations without objective
         decrease; default max(10⁶, 10 n).
@@ -855,7 +855,7 @@ def solve_smo(
     >>> from solver.problem import binary_classification
     >>> X = np.array([[0.0, 0.0], [2.0, 0.0], [0.0, 2.0]])
     >>> prob = binary_classification(X, [-1, 1, 1], kernel=make_kernel("linear"), C=1e6)
-    >>> res = solve_smo(prob, tol=1e-12)
+    >>> res = solve_smo(prob, kkt_tol=1e-12)
     >>> res.status.label, np.round(res.alpha, 6).tolist(), round(res.bias, 6)
     ('converged', [1.0, 0.5, 0.5], -1.0)
 
@@ -868,10 +868,10 @@ def solve_smo(
     if not isinstance(problem, DualProblem):
         raise InvalidInputError(f"problem must be a DualProblem, got {type(problem).__name__}")
     n = problem.n
-    tol = _positive_float(tol, "tol")
-    max_iter = _positive_int(max_iter, "max_iter", allow_none=True)
-    if max_iter is None:
-        max_iter = max(10_000_000, 100 * n)
+    kkt_tol = _positive_float(kkt_tol, "kkt_tol")
+    iteration_limit = _positive_int(iteration_limit, "iteration_limit", allow_none=True)
+    if iteration_limit is None:
+        iteration_limit = max(10_000_000, 100 * n)
     time_limit = _positive_float(time_limit, "time_limit", allow_none=True)
     if selection not in SELECTIONS:
         raise InvalidInputError(
@@ -891,7 +891,7 @@ def solve_smo(
     if kernel_dtype not in ("float64", "float32"):
         raise InvalidInputError(
             f"option kernel_dtype must be 'float64' or 'float32', got {kernel_dtype!r}")
-    cache_mb = _positive_float(cache_mb, "cache_mb")
+    row_cache_mb = _positive_float(row_cache_mb, "row_cache_mb")
     if callback is not None and not callable(callback):
         raise InvalidInputError("option callback must be callable or None")
     callback_every = _positive_int(callback_every, "callback_every")
@@ -904,9 +904,10 @@ def solve_smo(
         stall_window = max(1_000_000, 10 * n)
     alpha = problem.feasible_start() if alpha0 is None else _check_start(problem, alpha0)
     dtype = np.dtype(kernel_dtype)
-    cfg = dict(tol=tol, max_iter=max_iter, time_limit=time_limit, selection=selection,
+    cfg = dict(kkt_tol=kkt_tol, iteration_limit=iteration_limit, time_limit=time_limit,
+               selection=selection,
                shrinking=bool(shrinking), trace=trace, sample_every=sample_every,
-               snapshot_every=snapshot_every, budget_mb=budget_mb, cache_mb=cache_mb,
+               snapshot_every=snapshot_every, budget_mb=budget_mb, row_cache_mb=row_cache_mb,
                callback=callback, callback_every=callback_every, stall_window=stall_window,
                threads=threads)
     ph = _run_phase(problem, alpha, dtype, cfg, t_start)
@@ -916,8 +917,8 @@ def solve_smo(
         # values, so optimality is checked with the exact float64 gradient and, if needed,
         # the run continues from the same α with float64 kernel values
         G = _exact_gradient(problem, ph["alpha"])
-        if certify(problem, ph["alpha"], tol=tol, gradient=G).max_violation > tol:
-            cfg2 = dict(cfg, max_iter=max(1, max_iter - ph["iterations"]))
+        if certify(problem, ph["alpha"], kkt_tol=kkt_tol, gradient=G).max_violation > kkt_tol:
+            cfg2 = dict(cfg, iteration_limit=max(1, iteration_limit - ph["iterations"]))
             ph2 = _run_phase(problem, ph["alpha"], np.dtype(np.float64), cfg2, t_start,
                              first_iteration=ph["iterations"])
             polish_iterations = ph2["iterations"] - ph["iterations"]
@@ -927,7 +928,7 @@ def solve_smo(
     elif dtype != np.float64:
         ph["G"] = _exact_gradient(problem, ph["alpha"])
     status, detail, alpha, it = ph["status"], ph["detail"], ph["alpha"], ph["iterations"]
-    cert = certify(problem, alpha, tol=tol, gradient=ph["G"])
+    cert = certify(problem, alpha, kkt_tol=kkt_tol, gradient=ph["G"])
     tr = Trace(
         solver="smo", level=trace, columns=ph["columns"], events=ph["events"],
         event_kinds=dict(EVENT_KINDS),
@@ -936,11 +937,13 @@ def solve_smo(
         snapshot_every=snapshot_every,
     )
     options = {
-        "tol": tol, "max_iter": max_iter, "time_limit": time_limit, "selection": selection,
+        "kkt_tol": kkt_tol, "iteration_limit": iteration_limit, "time_limit": time_limit,
+        "selection": selection,
         "shrinking": bool(shrinking), "trace": trace, "sample_every": sample_every,
         "snapshot_every": snapshot_every, "kernel_memory_mb": float(budget_mb),
-        "kernel_dtype": kernel_dtype, "cache_mb": cache_mb, "warm_start": alpha0 is not None,
-        "callback_every": callback_every, "stall_window": stall_window, "tau": TAU,
+        "kernel_dtype": kernel_dtype, "row_cache_mb": row_cache_mb, "warm_start": alpha0 is not
+        None,
+        "callback_every": callback_every, "stall_window": stall_window, "curvature_floor": TAU,
         "threads": threads,
     }
     extra = dict(ph["extra"])
@@ -1002,15 +1005,15 @@ def _run_phase(problem: DualProblem, alpha: np.ndarray, dtype: np.dtype, cfg: di
     """Run the loop from ``alpha``; iteration numbers in the trace start after
     ``first_iteration``.  Returns status, α, full gradient and trace pieces."""
     n = problem.n
-    tol, max_iter, time_limit = cfg["tol"], cfg["max_iter"], cfg["time_limit"]
+    kkt_tol, iteration_limit, time_limit = cfg["kkt_tol"], cfg["iteration_limit"], cfg["time_limit"]
     snapshot_every, callback = cfg["snapshot_every"], cfg["callback"]
     callback_every, stall_window = cfg["callback_every"], cfg["stall_window"]
     compile_seconds = _warm_up(dtype)
     t_setup = time.perf_counter()
     level = {"full": 0, "sampled": 1, "off": 2}[cfg["trace"]]
     eng = _Engine(problem, alpha, dtype=dtype, budget_mb=cfg["budget_mb"],
-                  cache_mb=cfg["cache_mb"], level=level,
-                  trace_rows=min(max_iter, max(4096, 4 * n)), threads=cfg["threads"])
+                  row_cache_mb=cfg["row_cache_mb"], level=level,
+                  trace_rows=min(iteration_limit, max(4096, 4 * n)), threads=cfg["threads"])
     ist, fst = eng.istate, eng.fstate
     ist[_k.IS_SAMPLE] = cfg["sample_every"]
     ist[_k.IS_SECOND_ORDER] = 1 if cfg["selection"] == "second_order" else 0
@@ -1019,7 +1022,7 @@ def _run_phase(problem: DualProblem, alpha: np.ndarray, dtype: np.dtype, cfg: di
     ist[_k.IS_SHRINK_AT] = shrink_every
     fst[_k.FS_OBJ] = eng.objective0
     fst[_k.FS_BEST_OBJ] = eng.objective0
-    fst[_k.FS_TOL] = tol
+    fst[_k.FS_TOL] = kkt_tol
     fst[_k.FS_TAU] = TAU
     snap_its = [0]
     snaps = [eng.alpha()]
@@ -1035,7 +1038,7 @@ def _run_phase(problem: DualProblem, alpha: np.ndarray, dtype: np.dtype, cfg: di
     t_clock, it_clock = time.perf_counter(), int(ist[_k.IS_ITER])
     while status is None:
         it = int(ist[_k.IS_ITER])
-        stop = min(max_iter, (it // snapshot_every + 1) * snapshot_every)
+        stop = min(iteration_limit, (it // snapshot_every + 1) * snapshot_every)
         if next_cb is not None:
             stop = min(stop, next_cb)
         if time_limit is not None:
@@ -1083,13 +1086,14 @@ def _run_phase(problem: DualProblem, alpha: np.ndarray, dtype: np.dtype, cfg: di
         if it % snapshot_every == 0 and it > snap_its[-1]:
             snap_its.append(it)
             snaps.append(eng.alpha())
-        if it >= max_iter:
-            status, detail = Status.ITERATION_LIMIT, f"{max_iter + first_iteration} iterations"
+        if it >= iteration_limit:
+            status = Status.ITERATION_LIMIT
+            detail = f"{iteration_limit + first_iteration} iterations"
             break
         if next_cb is not None and it >= next_cb:
             next_cb += callback_every
             info = {"iteration": it + first_iteration, "violation": float(fst[_k.FS_VIOL]),
-                    "tol": tol, "active": eng.active, "objective": float(fst[_k.FS_OBJ])}
+                    "kkt_tol": kkt_tol, "active": eng.active, "objective": float(fst[_k.FS_OBJ])}
             try:
                 stop_now = callback(info)
             except StopIteration:

@@ -60,24 +60,24 @@ def _solve(
     method: str,
     problem: DualProblem,
     *,
-    tol: float,
-    max_iter: int | None,
+    kkt_tol: float,
+    iteration_limit: int | None,
     trace: str,
     progress: ProgressFn | None,
 ) -> SolveResult:
     from .solvers import get_solver
 
     if method == "qp":
-        # the challenger runs to cvxopt's own (tight) tolerance; ``tol`` is the certificate's
-        options: dict[str, Any] = {"kkt_tol": tol, "trace": trace}
+        # the challenger runs to cvxopt's own (tight) tolerance; ``kkt_tol`` is the certificate's
+        options: dict[str, Any] = {"kkt_tol": kkt_tol, "trace": trace}
     else:
-        options = {"tol": tol, "trace": trace}
-    if max_iter is not None:
-        options["max_iter"] = max_iter
+        options = {"kkt_tol": kkt_tol, "trace": trace}
+    if iteration_limit is not None:
+        options["iteration_limit"] = iteration_limit
     if progress is not None:
 
         def cb(state: Mapping[str, Any]) -> None:
-            info = {"solver": method, "tol": tol, "max_iter": max_iter}
+            info = {"solver": method, "kkt_tol": kkt_tol, "iteration_limit": iteration_limit}
             info.update({k: state[k] for k in ("iteration", "violation", "gap", "objective")
                          if state.get(k) is not None})
             progress("solve", info)
@@ -108,11 +108,10 @@ def _command(
         argv = ["kktrace", "train", str(data)]
         if label is not None:
             argv += ["--label", label]
-        flag = {"max_iter": "--max-iter"}
         for k, v in opts.items():
             if v is None or k in ("standardise",):
                 continue
-            argv += [flag.get(k, f"--{k}"), str(v)]
+            argv += ["--" + k.replace("_", "-"), str(v)]
         if not opts.get("standardise", True):
             argv.append("--no-standardise")
         if holdout is not None and isinstance(holdout, (str, Path)):
@@ -192,7 +191,7 @@ def _run_summary(record: RunRecord, run_id: str, run_dir: Path) -> dict[str, Any
         "duality_gap": float(c.duality_gap),
         "relative_gap": float(c.relative_gap),
         "max_violation": float(c.max_violation),
-        "tol": float(c.tol),
+        "kkt_tol": float(c.kkt_tol),
         "n_support": int(c.n_support),
         "n_free": int(c.n_free),
         "n_bounded": int(c.n_bounded),
@@ -247,8 +246,8 @@ def train(
     degree: int = 3,
     offset: float = 0.0,
     C: float = 1.0,
-    tol: float = 1e-3,
-    max_iter: int | None = None,
+    kkt_tol: float = 1e-3,
+    iteration_limit: int | None = None,
     solver: str = "smo",
     standardise: bool = True,
     holdout: Dataset | str | Path | None = None,
@@ -266,8 +265,8 @@ def train(
     label : label column (required for files).
     kernel, gamma, degree, offset : kernel ``linear`` | ``poly`` | ``rbf`` | ``sigmoid``;
         gamma None means the median heuristic on the standardised rows (recorded).
-    C : penalty (> 0).  tol : stopping tolerance on the maximal KKT violation.
-    max_iter : iteration limit (None: the solver's default); with ``"both"`` it applies to
+    C : penalty (> 0).  kkt_tol : stopping tolerance on the maximal KKT violation.
+    iteration_limit : iteration limit (None: the solver's default); with ``"both"`` it applies to
         SMO only (the QP challenger keeps its own interior-point limit).
     solver : ``"smo"``, ``"qp"``, or ``"both"`` (SMO plus the QP challenger and their
         comparison; the challenger is skipped, with the reason recorded, above its size limit).
@@ -302,11 +301,13 @@ def train(
         raise InvalidInputError(
             f"unknown trace level {trace!r}; choose one of {', '.join(TRACE_LEVELS)}"
         )
-    if not (isinstance(tol, (int, float)) and math.isfinite(tol) and tol > 0):
-        raise InvalidInputError(f"tol must be a finite number > 0, got {tol!r}")
-    if max_iter is not None and (isinstance(max_iter, bool) or not isinstance(max_iter, int)
-                                 or max_iter < 1):
-        raise InvalidInputError(f"max_iter must be a positive integer, got {max_iter!r}")
+    if not (isinstance(kkt_tol, (int, float)) and math.isfinite(kkt_tol) and kkt_tol > 0):
+        raise InvalidInputError(f"kkt_tol must be a finite number > 0, got {kkt_tol!r}")
+    if iteration_limit is not None and (isinstance(iteration_limit,
+                                                   bool) or not isinstance(iteration_limit, int)
+                                 or iteration_limit < 1):
+        raise InvalidInputError(
+            f"iteration_limit must be a positive integer, got {iteration_limit!r}")
     if isinstance(data, (str, Path)) and label is None:
         raise InvalidInputError("name the label column of the training file (--label COLUMN)")
     run_store = open_store(store)
@@ -315,7 +316,8 @@ def train(
         warnings.simplefilter("always")
         outcome = _train(
             data, label=label, kernel=kernel, gamma=gamma, degree=degree, offset=offset, C=C,
-            tol=float(tol), max_iter=max_iter, solver=solver, standardise=standardise,
+            kkt_tol=float(kkt_tol), iteration_limit=iteration_limit, solver=solver,
+            standardise=standardise,
             holdout=holdout, store=run_store, trace=trace, explain=explain, progress=progress,
         )
     for w in wlist:
@@ -340,8 +342,8 @@ def _train(
     degree: int,
     offset: float,
     C: float,
-    tol: float,
-    max_iter: int | None,
+    kkt_tol: float,
+    iteration_limit: int | None,
     solver: str,
     standardise: bool,
     holdout: Dataset | str | Path | None,
@@ -384,14 +386,14 @@ def _train(
         "n_rows": int(ds.X.shape[0]),
     }
     opts = {"kernel": kernel, "gamma": gamma, "degree": degree if kernel == "poly" else None,
-            "offset": offset if kernel in ("poly", "sigmoid") else None, "C": C, "tol": tol,
-            "max_iter": max_iter, "standardise": standardise}
+            "offset": offset if kernel in ("poly", "sigmoid") else None, "C": C, "kkt_tol": kkt_tol,
+            "iteration_limit": iteration_limit, "standardise": standardise}
 
     records: list[RunRecord] = []
     for method in methods:
         # with "both" the iteration limit is SMO's; the challenger keeps cvxopt's own
-        limit = max_iter if (method == "smo" or solver == "qp") else None
-        result = _solve(method, problem, tol=tol, max_iter=limit, trace=trace,
+        limit = iteration_limit if (method == "smo" or solver == "qp") else None
+        result = _solve(method, problem, kkt_tol=kkt_tol, iteration_limit=limit, trace=trace,
                         progress=progress)
         attachments: dict[str, Any] = {
             "audit": audit,

@@ -52,7 +52,7 @@ def files(tmp_path_factory):
 @pytest.fixture(scope="module")
 def both(files):
     store = files["dir"] / "store"
-    out = solver.train(files["train"], label="outcome", kernel="rbf", C=2.0, tol=1e-5,
+    out = solver.train(files["train"], label="outcome", kernel="rbf", C=2.0, kkt_tol=1e-5,
                        solver="both", holdout=files["holdout"], store=store)
     return out, store
 
@@ -84,7 +84,7 @@ def test_holdout_scores_match_the_reference_metrics(both, files):
 
     out, store = both
     hold = out.records[0].attachments["holdout"]
-    sc = solver.score(out.run_id, files["holdout"], store=store)
+    sc = solver.apply(out.run_id, files["holdout"], store=store)
     neg, pos = hold["labels"]
     cm = confusion_matrix(files["yh"], sc.labels.astype(str), labels=[neg, pos])
     assert hold["matrix"] == cm.tolist()
@@ -98,7 +98,7 @@ def test_score_explain_and_model_agree(both, files):
     out, store = both
     rec = solver.load_run(out.run_id, store=store)
     model = solver.model_from_solution(rec.problem, rec.result, rec.standardiser)
-    sc = solver.score(out.run_id, files["query"], store=store)
+    sc = solver.apply(out.run_id, files["query"], store=store)
     assert sc.confusion is None and sc.truth is None
     np.testing.assert_allclose(sc.values, model.values(files["Xh"][:9]), rtol=1e-12)
     point = dict(zip(["f1", "f2", "f3"], files["Xh"][0].tolist(), strict=True))
@@ -172,7 +172,7 @@ def test_qp_alone_is_the_primary_run(files, tmp_path):
 def test_non_converged_run_is_stored_and_reported(files, tmp_path):
     X, y = files["X"], files["y"]
     ds = solver.from_arrays(X, y, feature_names=["f1", "f2", "f3"], label_name="outcome")
-    out = solver.train(ds, kernel="rbf", C=5.0, max_iter=3, store=tmp_path)
+    out = solver.train(ds, kernel="rbf", C=5.0, iteration_limit=3, store=tmp_path)
     s = out.summary()
     assert not out.converged and s["status"] == "iteration_limit" and s["iterations"] == 3
     assert any("did not converge" in w for w in out.warnings)
@@ -181,10 +181,10 @@ def test_non_converged_run_is_stored_and_reported(files, tmp_path):
     assert solver.verify(out.run_id, store=tmp_path).ok
     assert rec.attachments["command"]["text"] is None  # in-memory data: no CLI command
     with pytest.warns(ConvergenceWarning):
-        solver.train(ds, kernel="rbf", C=5.0, max_iter=3, store=tmp_path, quiet=False)
+        solver.train(ds, kernel="rbf", C=5.0, iteration_limit=3, store=tmp_path, quiet=False)
     with warnings.catch_warnings():
         warnings.simplefilter("error", ConvergenceWarning)
-        solver.train(ds, kernel="rbf", C=5.0, max_iter=3, store=tmp_path, quiet=True)
+        solver.train(ds, kernel="rbf", C=5.0, iteration_limit=3, store=tmp_path, quiet=True)
 
 
 def test_command_attachment_round_trips_through_the_cli_parser(both):
@@ -193,7 +193,7 @@ def test_command_attachment_round_trips_through_the_cli_parser(both):
     out, _ = both
     cmd = out.records[0].attachments["command"]
     args = build_parser().parse_args(cmd["argv"][1:])
-    assert (args.command, args.label, args.kernel, args.C, args.tol, args.solver) == (
+    assert (args.command, args.label, args.kernel, args.C, args.kkt_tol, args.solver) == (
         "train", "outcome", "rbf", 2.0, 1e-5, "both")
     assert Path(args.holdout).name == "holdout.csv"
 
@@ -201,8 +201,8 @@ def test_command_attachment_round_trips_through_the_cli_parser(both):
 @pytest.mark.parametrize("kwargs, word", [
     ({"solver": "fast"}, "solver"),
     ({"trace": "everything"}, "trace"),
-    ({"tol": 0.0}, "tol"),
-    ({"max_iter": 0}, "max_iter"),
+    ({"kkt_tol": 0.0}, "kkt_tol"),
+    ({"iteration_limit": 0}, "iteration_limit"),
     ({"kernel": "cubic"}, "kernel"),
     ({"C": -1.0}, "C"),
     ({"label": None}, "label"),
@@ -227,7 +227,7 @@ def test_open_store_default_and_env(monkeypatch, tmp_path):
 
 def test_progress_callback_sees_the_solve(files, tmp_path):
     events = []
-    solver.train(files["train"], label="outcome", kernel="rbf", C=50.0, tol=1e-6,
+    solver.train(files["train"], label="outcome", kernel="rbf", C=50.0, kkt_tol=1e-6,
                  store=tmp_path, progress=lambda task, info: events.append((task, dict(info))))
     assert events[-1][0] == "done"
     solves = [i for t, i in events if t == "solve"]

@@ -32,7 +32,7 @@ D2 = float(np.sum((X1 - X2) ** 2))  # ‖Δ‖² = 6.25
 def test_two_point_hard_margin_optimum():
     P = two_points(X1, X2, C=10.0)
     a = 2.0 / D2
-    c = certify(P, np.array([a, a]), tol=1e-9)
+    c = certify(P, np.array([a, a]), kkt_tol=1e-9)
     assert c.max_violation <= 1e-14 and c.meets_tol
     assert c.bias == pytest.approx((X2 @ X2 - X1 @ X1) / D2, abs=1e-14)
     assert c.bias_from == "free_support_vectors"
@@ -64,7 +64,7 @@ def test_alpha_zero_hand_computed():
     sw = np.array([1.0, 2.0, 3.0, 4.0])
     P = binary_classification(X, ["a", "a", "b", "b"], kernel=LinearKernel(), C=1.0,
                               sample_weight=sw)
-    c = certify(P, np.zeros(4), tol=1e-3)
+    c = certify(P, np.zeros(4), kkt_tol=1e-3)
     assert (c.m_up, c.M_low, c.max_violation) == (1.0, -1.0, 2.0)
     assert not c.meets_tol
     assert c.bias == 0.0 and c.bias_from == "interval_midpoint"
@@ -97,7 +97,7 @@ def test_non_optimal_point_hand_computed():
     # both free → violation 1, bias 0, |G + b y| = 0.5 each; dual ½·0.25 − 0.5 = −0.375,
     # primal 0.125 + 10·(0.5 + 0.5) = 10.125, gap 9.75.
     P = two_points([1.0, 0.0], [-1.0, 0.0], C=10.0)
-    c = certify(P, np.array([0.25, 0.25]), tol=0.5)
+    c = certify(P, np.array([0.25, 0.25]), kkt_tol=0.5)
     assert c.max_violation == pytest.approx(1.0) and not c.meets_tol
     assert c.bias == pytest.approx(0.0, abs=1e-15)
     np.testing.assert_allclose(c.kkt_residual, 0.5)

@@ -2,7 +2,7 @@
 
 One module-scoped store is trained once on the shipped demo CSVs (invented data, used here
 only to exercise the workflow); the tests then walk train → runs → report → compare →
-explain → replay → verify → score on it and check outputs and files.
+explain → replay → verify → apply on it and check outputs and files.
 """
 
 from __future__ import annotations
@@ -21,10 +21,10 @@ import pytest
 
 from solver.demo import DEMO_COLUMNS, DEMO_LABEL, shipped_data
 
-SUBCOMMANDS = ("train", "runs", "report", "compare", "explain", "replay", "verify", "score",
+SUBCOMMANDS = ("train", "runs", "report", "compare", "explain", "replay", "verify", "apply",
                "demo")
 TRAIN_KEYS = {"run_id", "solver", "status", "iterations", "dual_objective", "primal_objective",
-              "duality_gap", "max_violation", "tol", "n_support", "n_bounded", "bias",
+              "duality_gap", "max_violation", "kkt_tol", "n_support", "n_bounded", "bias",
               "seconds", "run_dir"}
 
 
@@ -52,7 +52,7 @@ def trained(tmp_path_factory):
     hold_csv = Path(shutil.copy(hold_src, work / "batches_holdout.csv"))
     store = work / "store"
     proc = kk("train", train_csv.name, "--label", DEMO_LABEL, "--kernel", "rbf", "--C", 10,
-              "--tol", "1e-5", "--solver", "both", "--holdout", hold_csv.name,
+              "--kkt-tol", "1e-5", "--solver", "both", "--holdout", hold_csv.name,
               "--store", store, "--json", cwd=work)
     summary = ok_json(proc)
     return {"work": work, "store": store, "train": train_csv, "holdout": hold_csv,
@@ -69,7 +69,7 @@ def test_train_json_summary_has_every_field(trained):
     assert TRAIN_KEYS <= set(s["challenger"])
     assert s["solver"] == "smo" and s["challenger"]["solver"] == "qp"
     assert s["status"] == "converged" and s["converged"] is True
-    assert s["max_violation"] <= s["tol"] == 1e-5
+    assert s["max_violation"] <= s["kkt_tol"] == 1e-5
     assert s["duality_gap"] >= 0
     assert s["verdict"] in ("agree", "agree_within_tolerances", "disagree")
     assert s["n_support"] == s["n_free"] + s["n_bounded"]
@@ -179,7 +179,7 @@ def test_explain_point_matches_score(trained, tmp_path):
     assert total == pytest.approx(f[0], rel=1e-10, abs=1e-12)
     q = tmp_path / "one.csv"
     q.write_text(",".join(values) + "\n" + ",".join(str(v) for v in values.values()) + "\n")
-    sc = ok_json(kk("score", trained["smo"], q, "--store", trained["store"], "--json"))
+    sc = ok_json(kk("apply", trained["smo"], q, "--store", trained["store"], "--json"))
     assert sc["values"][0] == pytest.approx(f[0], rel=1e-12)
     human = kk("explain", trained["smo"], "--store", trained["store"], "--point", point)
     assert human.returncode == 0 and "training row" in human.stdout
@@ -243,7 +243,7 @@ def test_verify_detects_a_changed_byte(trained, tmp_path):
 
 
 def test_score_labelled_and_unlabelled(trained, tmp_path):
-    d = ok_json(kk("score", trained["smo"], trained["holdout"], "--store", trained["store"],
+    d = ok_json(kk("apply", trained["smo"], trained["holdout"], "--store", trained["store"],
                    "--out", tmp_path / "scores.csv", "--json"))
     assert d["n"] == 120 and len(d["values"]) == 120
     assert d["confusion"]["accuracy"] == pytest.approx(trained["summary"]["holdout_accuracy"])
@@ -258,7 +258,7 @@ def test_score_labelled_and_unlabelled(trained, tmp_path):
         w.writerow(DEMO_COLUMNS)
         for r in src[:7]:
             w.writerow([r[c] for c in DEMO_COLUMNS])
-    d2 = ok_json(kk("score", trained["smo"], q, "--store", trained["store"], "--json"))
+    d2 = ok_json(kk("apply", trained["smo"], q, "--store", trained["store"], "--json"))
     assert d2["n"] == 7 and d2["confusion"] is None
     assert d2["values"] == pytest.approx(d["values"][:7], rel=1e-12)
 
@@ -268,15 +268,15 @@ def test_score_labelled_and_unlabelled(trained, tmp_path):
 
 def test_iteration_limit_exits_3_and_run_is_stored_marked(trained, tmp_path):
     store = tmp_path / "s"
-    d = ok_json(kk("train", trained["train"], "--label", DEMO_LABEL, "--max-iter", 5,
+    d = ok_json(kk("train", trained["train"], "--label", DEMO_LABEL, "--iteration-limit", 5,
                    "--store", store, "--json"), code=3)
     assert d["status"] == "iteration_limit" and d["converged"] is False
-    assert d["iterations"] == 5 and d["max_violation"] > d["tol"]
+    assert d["iterations"] == 5 and d["max_violation"] > d["kkt_tol"]
     assert any("did not converge" in w for w in d["warnings"])
     rows = ok_json(kk("runs", "--store", store, "--status", "iteration_limit", "--json"))
     assert [r["run_id"] for r in rows] == [d["run_id"]]
     assert rows[0]["converged"] in (0, False)
-    human = kk("train", trained["train"], "--label", DEMO_LABEL, "--max-iter", 5,
+    human = kk("train", trained["train"], "--label", DEMO_LABEL, "--iteration-limit", 5,
                "--store", store)
     assert human.returncode == 3 and "NOT CONVERGED" in human.stdout
 
@@ -308,7 +308,7 @@ def test_top_level_help_and_version():
     ["train", "x.csv", "--lab", "y"],              # no abbreviations
     ["train", "x.csv"],                            # --label is required
     ["train", "x.csv", "--label", "y", "--kernel", "cubic"],
-    ["train", "x.csv", "--label", "y", "--max-iter", "0"],
+    ["train", "x.csv", "--label", "y", "--iteration-limit", "0"],
     ["replay", "RUN"],                             # --iteration is required
     ["frobnicate"],
     [],
@@ -389,11 +389,11 @@ def _stderr_on_a_terminal(*args: object) -> tuple[int, bytes]:
 
 
 def test_progress_bar_on_a_terminal_and_off_with_quiet(trained, tmp_path):
-    args = ("train", trained["train"], "--label", DEMO_LABEL, "--C", 10, "--tol", "1e-5",
+    args = ("train", trained["train"], "--label", DEMO_LABEL, "--C", 10, "--kkt-tol", "1e-5",
             "--store", tmp_path / "s")
     code, shown = _stderr_on_a_terminal(*args)
     assert code == 0
-    assert b"smo iteration" in shown and b"violation" in shown and b"tol 1.0e-05" in shown
+    assert b"smo iteration" in shown and b"violation" in shown and b"kkt_tol 1.0e-05" in shown
     assert b"\r" in shown  # redrawn in place
     code, quiet = _stderr_on_a_terminal(*args, "--quiet")
     assert code == 0 and quiet == b""

@@ -325,7 +325,7 @@ def test_non_run_input_refused(run):
 def test_qp_iteration_limit_run_versus_converged(raw, run):
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)
-        early = make_run(*raw, max_iter=3)
+        early = make_run(*raw, iteration_limit=3)
     c = compare_runs(run, early)
     assert c.verdict == "disagree"
     assert "converged" in c.failed and "objective_rel_diff" in c.failed
@@ -335,5 +335,5 @@ def test_loosely_solved_run_gets_a_hint(raw):
     loose = make_run(*raw, kkt_tol=0.05)
     c = compare_runs(loose, with_result(loose, bias=loose.result.bias + 0.004))
     assert c.verdict == "agree_within_tolerances"
-    assert any("tighter tol" in n for n in c.notes)
-    assert not any("tighter tol" in n for n in compare_runs(loose, loose).notes)
+    assert any("tighter kkt_tol" in n for n in c.notes)
+    assert not any("tighter kkt_tol" in n for n in compare_runs(loose, loose).notes)

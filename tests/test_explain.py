@@ -31,17 +31,17 @@ from solver.smo import solve_smo
 from solver.status import Status
 
 
-def _result(problem: DualProblem, alpha: np.ndarray, tol: float = 1e-3) -> SolveResult:
+def _result(problem: DualProblem, alpha: np.ndarray, kkt_tol: float = 1e-3) -> SolveResult:
     """A SolveResult for a given α (closed form or reference solver), certified by kktrace."""
-    cert = certify(problem, alpha, tol=tol)
+    cert = certify(problem, alpha, kkt_tol=kkt_tol)
     status = Status.CONVERGED if cert.meets_tol else Status.ITERATION_LIMIT
     return SolveResult(solver="reference", status=status, message="given", alpha=alpha,
                        bias=cert.bias, iterations=0, certificate=cert, seconds=0.0,
-                       options={"tol": tol})
+                       options={"kkt_tol": kkt_tol})
 
 
-def _solve(problem: DualProblem, tol: float = 1e-6, trace: str = "off") -> SolveResult:
-    res = solve_smo(problem, tol=tol, trace=trace)
+def _solve(problem: DualProblem, kkt_tol: float = 1e-6, trace: str = "off") -> SolveResult:
+    res = solve_smo(problem, kkt_tol=kkt_tol, trace=trace)
     assert res.success, res.message
     return res
 
@@ -143,7 +143,7 @@ def cancer():
     X, t = X[:200], t[:200]
     Z = Standardiser.fit(X).transform(X)
     prob = binary_classification(Z, t, kernel=RBFKernel(gamma=0.05), C=2.0)
-    return prob, solve_smo(prob, tol=1e-4, trace="full")
+    return prob, solve_smo(prob, kkt_tol=1e-4, trace="full")
 
 
 def test_categories_agree_with_certificate_and_reference(cancer):
@@ -190,7 +190,7 @@ def test_trace_history_columns(cancer):
 
 def test_trace_columns_unavailable_without_full_trace(cancer):
     prob, _ = cancer
-    res = solve_smo(prob, tol=1e-3, trace="sampled")
+    res = solve_smo(prob, kkt_tol=1e-3, trace="sampled")
     t = point_table(prob, res)
     assert t.trace_level is None
     for c in ("first_nonzero_iteration", "last_change_iteration", "times_selected"):
@@ -304,7 +304,7 @@ def test_breakdown_top_larger_than_support_and_bad_input(wine_model):
 def test_linear_weights_equal_primal_computation():
     Z, t, sd, X_raw = _pair(load_iris, 1, 2)
     prob = binary_classification(Z, t, kernel=LinearKernel(), C=1.0)
-    res = _solve(prob, tol=1e-8)
+    res = _solve(prob, kkt_tol=1e-8)
     names = ["sepal length", "sepal width", "petal length", "petal width"]
     v = feature_space(prob, res, feature_names=names, standardiser=sd)
     assert v.exact and v.names == tuple(names)
@@ -329,7 +329,7 @@ def test_polynomial_monomial_weights_reproduce_f(degree, offset):
     Z, t, _, _ = _pair(load_iris, 1, 2)
     kern = PolynomialKernel(gamma=0.5, degree=degree, offset=offset)
     prob = binary_classification(Z, t, kernel=kern, C=1.0)
-    res = _solve(prob, tol=1e-6)
+    res = _solve(prob, kkt_tol=1e-6)
     v = feature_space(prob, res, feature_names=["sl", "sw", "pl", "pw"])
     assert v.exact, v.note
     assert v.reproduction_error < 1e-10

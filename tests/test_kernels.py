@@ -211,8 +211,8 @@ def test_psd_kernels_give_psd_grams(X, kernel):
     K = kernel.gram(X)
     lam = np.linalg.eigvalsh(0.5 * (K + K.T))
     n = X.shape[0]
-    tol = n * rounding_bound(kernel, X) + 10 * n * EPS * np.max(np.abs(lam))
-    assert lam[0] >= -tol
+    kkt_tol = n * rounding_bound(kernel, X) + 10 * n * EPS * np.max(np.abs(lam))
+    assert lam[0] >= -kkt_tol
 
 
 # ---------------------------------------------------------------- validation

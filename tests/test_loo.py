@@ -50,8 +50,8 @@ def _problem(loader, a, b, *, gamma=None, C=1.0, rows=None, kernel=None):
     return binary_classification(Z, t, kernel=kern, C=C)
 
 
-def _solve(prob, tol=TOL):
-    res = solve_smo(prob, tol=tol, trace="off")
+def _solve(prob, kkt_tol=TOL):
+    res = solve_smo(prob, kkt_tol=kkt_tol, trace="off")
     assert res.success, res.message
     return res
 
@@ -135,11 +135,11 @@ def test_exact_loo_equals_brute_force_and_bounds_hold(solved):
 
 @pytest.mark.parametrize("name", ["wine_1_2", "breast_cancer_subset"])
 def test_loose_tolerance_disagreements_are_flagged(name):
-    # at tol = 1e-3 two valid solutions may differ by about tol in f: any row on which the
+    # at kkt_tol = 1e-3 two valid solutions may differ by about kkt_tol in f: any row on which the
     # two methods disagree must be flagged as near the boundary by one of them
     loader, a, b, gamma, C, rows = DATASETS[name]
     prob = _problem(loader, a, b, gamma=gamma, C=C, rows=rows)
-    res = _solve(prob, tol=1e-3)
+    res = _solve(prob, kkt_tol=1e-3)
     fast = leave_one_out(prob, res)
     brute = leave_one_out(prob, res, method="brute_force")
     differ = set(np.flatnonzero(fast.loo_wrong != brute.loo_wrong).tolist())
@@ -228,7 +228,7 @@ def test_decremental_path_matches_reference_refits():
     # without that row (external reference)
     prob = _problem(load_wine, 0, 1, gamma=0.1, C=1.0)
     res = _solve(prob)
-    ref = Refitter(prob, solve_smo, {"tol": TOL, "trace": "off"}, alpha=res.alpha,
+    ref = Refitter(prob, solve_smo, {"kkt_tol": TOL, "trace": "off"}, alpha=res.alpha,
                    bias=res.bias, shared_gram=True)
     used = 0
     for i in np.flatnonzero(~res.certificate.at_lower):
@@ -240,7 +240,7 @@ def test_decremental_path_matches_reference_refits():
         assert complete
         sub, keep = drop_row(prob, int(i))
         assert sub.feasibility(a[keep])[0] == 0.0 and sub.feasibility(a[keep])[1] < 1e-10
-        cert = certify(sub, a[keep], tol=TOL)
+        cert = certify(sub, a[keep], kkt_tol=TOL)
         assert cert.max_violation <= 10 * TOL
         svc = SVC(kernel="rbf", gamma=0.1, C=1.0, tol=1e-10).fit(sub.X, sub.y)
         f = prob.kernel.block(prob.X, sub.X) @ (a[keep] * sub.y) + cert.bias
@@ -255,7 +255,7 @@ def test_compiled_path_equals_array_path(name):
     loader, a, b, gamma, C, rows = DATASETS[name]
     prob = _problem(loader, a, b, gamma=gamma, C=C, rows=rows)
     res = _solve(prob)
-    ref = Refitter(prob, solve_smo, {"tol": TOL, "trace": "off"}, alpha=res.alpha,
+    ref = Refitter(prob, solve_smo, {"kkt_tol": TOL, "trace": "off"}, alpha=res.alpha,
                    bias=res.bias, shared_gram=True)
     events = 0
     for i in np.flatnonzero(~res.certificate.at_lower):
@@ -280,7 +280,7 @@ def test_working_set_growth_and_fallback_stay_exact(monkeypatch):
     res = _solve(prob)
     f = _decisions(prob, res)
     sv = np.flatnonzero(~res.certificate.at_lower)
-    ref = Refitter(prob, solve_smo, {"tol": TOL, "trace": "off"}, alpha=res.alpha,
+    ref = Refitter(prob, solve_smo, {"kkt_tol": TOL, "trace": "off"}, alpha=res.alpha,
                    bias=res.bias, shared_gram=True)
     monkeypatch.setattr(refit_mod, "decremental_path", lambda *args, **kw: None)
     monkeypatch.setattr(refit_mod, "WORKING_MARGIN", -1.0)
@@ -293,7 +293,7 @@ def test_working_set_growth_and_fallback_stay_exact(monkeypatch):
         assert g.status == h.status == cold.status == "converged"
         sub, _ = drop_row(prob, int(i))
         for r in (g, h):
-            assert certify(sub, r.alpha, tol=TOL).max_violation <= TOL
+            assert certify(sub, r.alpha, kkt_tol=TOL).max_violation <= TOL
         np.testing.assert_allclose(g.alpha, cold.alpha, atol=1e-4)
 
 
@@ -310,7 +310,7 @@ def test_non_converged_refits_are_reported():
     prob = _problem(load_iris, 1, 2, gamma=0.5, C=1.0)
     res = _solve(prob)
     with pytest.warns(ConvergenceWarning, match="did not converge"):
-        loo = leave_one_out(prob, res, method="brute_force", solver_options={"max_iter": 2})
+        loo = leave_one_out(prob, res, method="brute_force", solver_options={"iteration_limit": 2})
     assert not loo.all_converged
     assert loo.non_converged_rows.size == sum(s != "converged" for s in loo.refit_status) > 0
     assert "iteration_limit" in loo.refit_status
@@ -364,7 +364,7 @@ def test_bad_requests():
         leave_one_out(prob, res, solver_options={"alpha0": res.alpha})
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)
-        stopped = solve_smo(prob, tol=TOL, max_iter=3, trace="off")
+        stopped = solve_smo(prob, kkt_tol=TOL, iteration_limit=3, trace="off")
     with pytest.raises(InvalidInputError, match="converged solution"):
         leave_one_out(prob, stopped)
     with pytest.raises(InvalidInputError, match="not a training row"):

@@ -40,10 +40,31 @@ def test_workflow_names_are_the_cli_subcommands():
     sub = next(a for a in parser._actions if a.dest == "command")
     commands = set(sub.choices)
     assert commands == {"train", "runs", "report", "compare", "explain", "replay", "verify",
-                        "score", "demo"}
+                        "apply", "demo"}
     for name in commands - {"demo"}:
         assert callable(getattr(solver, name)), name
     assert callable(solver.run_demo)
+
+
+def test_options_use_our_own_names():
+    """Issue 13 item 12: the KKT tolerance, the iteration limit and the apply command have
+    our own names; the old spellings are gone from the command line and the Python API."""
+    import inspect as _inspect
+
+    from solver.cli import build_parser
+
+    sub = next(a for a in build_parser()._actions if a.dest == "command")
+    train = {s for a in sub.choices["train"]._actions for s in a.option_strings}
+    assert {"--kkt-tol", "--iteration-limit"} <= train
+    assert not {"--tol", "--max-iter"} & train
+    assert "score" not in sub.choices and "apply" in sub.choices
+    for fn in (solver.train, solver.solve):
+        params = set(_inspect.signature(fn).parameters)
+        assert not {"tol", "max_iter", "cache_mb", "tau"} & params, fn
+    from solver.smo import solve_smo
+
+    params = set(_inspect.signature(solve_smo).parameters)
+    assert {"kkt_tol", "iteration_limit", "row_cache_mb"} <= params
 
 
 def test_workflow_names_are_functions_not_submodules():
@@ -73,20 +94,35 @@ def test_import_solver_is_light():
 
 
 def test_cli_imports_only_the_public_api():
-    tree = ast.parse((ROOT / "solver" / "cli.py").read_text(encoding="utf-8"))
-    for node in ast.walk(tree):
-        if isinstance(node, ast.ImportFrom):
-            assert node.level == 0, "relative import in cli.py"
-            root = (node.module or "").split(".")[0]
-            if root == "solver":
-                assert node.module == "solver", f"cli imports {node.module}"
-        elif isinstance(node, ast.Import):
-            for alias in node.names:
-                if alias.name.split(".")[0] == "solver":
-                    assert alias.name == "solver", f"cli imports {alias.name}"
-    # every solver.<name> the CLI uses is public
-    used = set(re.findall(r"\bsolver\.([A-Za-z_]+)", (ROOT / "solver" / "cli.py").read_text()))
+    """Every module of the ``solver.cli`` package imports only ``solver`` (and its own siblings)."""
+    files = sorted((ROOT / "solver" / "cli").glob("*.py"))
+    assert len(files) >= 3
+    used: set[str] = set()
+    for path in files:
+        text = path.read_text(encoding="utf-8")
+        for node in ast.walk(ast.parse(text)):
+            if isinstance(node, ast.ImportFrom):
+                if node.level:
+                    assert node.level == 1, f"{path.name}: import from outside solver.cli"
+                    continue
+                if (node.module or "").split(".")[0] == "solver":
+                    assert node.module in ("solver", "solver.cli"), \
+                        f"{path.name} imports {node.module}"
+            elif isinstance(node, ast.Import):
+                for alias in node.names:
+                    if alias.name.split(".")[0] == "solver":
+                        assert alias.name == "solver", f"{path.name} imports {alias.name}"
+        used |= set(re.findall(r"\bsolver\.([A-Za-z_]+)", text))
+    # every solver.<name> the CLI uses is public (``solver.cli`` itself aside)
+    used.discard("cli")
     assert used <= set(solver.__all__), used - set(solver.__all__)
+
+
+def test_no_library_module_imports_the_cli():
+    for path in (ROOT / "solver").rglob("*.py"):
+        if "cli" in path.relative_to(ROOT / "solver").parts:
+            continue
+        assert "solver.cli" not in path.read_text(encoding="utf-8"), path
 
 
 def test_notebook_uses_only_the_public_api():

@@ -139,7 +139,7 @@ def test_kkt_tol_is_the_certificate_tolerance(rng):
     X, y = blobs(rng, n=40)
     prob = binary_classification(X, y, kernel=RBFKernel(gamma=0.5), C=1.0)
     r = qp.solve_qp(prob, kkt_tol=0.05)
-    assert r.certificate.tol == 0.05
+    assert r.certificate.kkt_tol == 0.05
     assert r.options["kkt_tol"] == 0.05
 
 
@@ -150,7 +150,7 @@ def test_iteration_limit_maps_faithfully(rng):
     X, y = blobs(rng, n=60)
     prob = binary_classification(X, y, kernel=RBFKernel(gamma=0.5), C=1.0)
     with pytest.warns(ConvergenceWarning, match="iteration"):
-        r = qp.solve_qp(prob, max_iter=2)
+        r = qp.solve_qp(prob, iteration_limit=2)
     assert r.status == Status.ITERATION_LIMIT and not r.success
     assert r.iterations == 2
     assert r.extra["backend_status"] == "unknown"
@@ -307,7 +307,8 @@ def test_size_limit_refuses_unless_forced(rng):
 
 
 @pytest.mark.parametrize("bad", [
-    {"tol": 0.0}, {"tol": float("nan")}, {"tol": "1e-6"}, {"max_iter": 0}, {"max_iter": 2.5},
+    {"kkt_tol": 0.0}, {"kkt_tol": float("nan")}, {"kkt_tol": "1e-6"}, {"iteration_limit": 0},
+    {"iteration_limit": 2.5},
     {"trace": "all"}, {"kkt": "sparse"}, {"kkt_tol": -1.0}, {"sample_every": 0},
     {"snapshot_every": -1}, {"time_limit": 0}, {"callback": 3}, {"size_limit": True},
     {"alpha0": np.zeros(3)},
@@ -332,9 +333,9 @@ def test_options_recorded_and_global_cvxopt_options_untouched(rng):
     X, y = blobs(rng, n=20)
     prob = binary_classification(X, y, kernel=LinearKernel(), C=1.0)
     before = dict(cvxopt.solvers.options)
-    r = qp.solve_qp(prob, tol=1e-8)
+    r = qp.solve_qp(prob, interior_point_tol=1e-8)
     assert dict(cvxopt.solvers.options) == before
-    for key in ("tol", "max_iter", "size_limit", "force", "trace", "kkt", "kkt_tol",
+    for key in ("kkt_tol", "iteration_limit", "size_limit", "force", "trace", "kkt", "kkt_tol",
                 "sample_every", "snapshot_every", "time_limit", "alpha0", "callback"):
         assert key in r.options
     cvx = r.options["cvxopt_options"]

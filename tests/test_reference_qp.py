@@ -23,7 +23,7 @@ from solver.errors import ConvergenceWarning, ProblemMismatchError
 from solver.kernels import LinearKernel, PolynomialKernel, RBFKernel
 from solver.model import Standardiser
 from solver.problem import binary_classification
-from solver.qp import DEFAULT_KKT_TOL, DEFAULT_TOL, solve_qp
+from solver.qp import DEFAULT_INTERIOR_POINT_TOL, DEFAULT_KKT_TOL, solve_qp
 from solver.run import RunRecord
 
 smo = pytest.importorskip("solver.smo")
@@ -84,7 +84,7 @@ def _record(X, labels, kernel, C, method, **opts) -> RunRecord:
 def test_smo_and_qp_agree_on_bundled_datasets(dataset, kernel_name):
     X, labels = DATASETS[dataset]()
     for C in (0.1, 10.0):
-        a = _record(X, labels, KERNELS[kernel_name](), C, "smo", tol=SMO_TIGHT)
+        a = _record(X, labels, KERNELS[kernel_name](), C, "smo", kkt_tol=SMO_TIGHT)
         b = _record(X, labels, KERNELS[kernel_name](), C, "qp")
         assert a.result.success and b.result.success
         comp = compare_runs(a, b)
@@ -111,7 +111,7 @@ def test_smo_and_qp_agree_on_random_problems(seed, n, d, kernel, logC):
     labels = np.where(X[:, 0] + rng.normal(size=n) > 0, 1, -1)
     labels[:2] = [1, -1]  # both classes present
     C = float(10.0**logC)
-    a = _record(X, labels, kernel, C, "smo", tol=SMO_TIGHT)
+    a = _record(X, labels, kernel, C, "smo", kkt_tol=SMO_TIGHT)
     b = _record(X, labels, kernel, C, "qp")
     assert a.result.success and b.result.success
     comp = compare_runs(a, b)
@@ -149,15 +149,16 @@ def test_qp_matches_scikit_learn_svc_on_breast_cancer(kernel, gamma, C):
 @pytest.mark.parametrize("kernel_name", ["linear", "rbf", "poly"])
 def test_qp_meets_kkt_to_cvxopt_tolerance(dataset, kernel_name):
     # cvxopt's own stopping test (residuals ≤ feastol, gap ≤ abstol or relative gap ≤ reltol,
-    # all = tol) holds at the returned iterate, and the shared certificate confirms KKT.
+    # all = kkt_tol) holds at the returned iterate, and the shared certificate confirms KKT.
     X, labels = DATASETS[dataset]()
     rec = _record(X, labels, KERNELS[kernel_name](), 1.0, "qp")
     r = rec.result
     assert r.success
     stats = r.extra["backend_stats"]
-    assert stats["primal_infeasibility"] <= DEFAULT_TOL
-    assert stats["dual_infeasibility"] <= DEFAULT_TOL
-    assert stats["gap"] <= DEFAULT_TOL or stats["relative_gap"] <= DEFAULT_TOL
+    assert stats["primal_infeasibility"] <= DEFAULT_INTERIOR_POINT_TOL
+    assert stats["dual_infeasibility"] <= DEFAULT_INTERIOR_POINT_TOL
+    assert (stats["gap"] <= DEFAULT_INTERIOR_POINT_TOL
+            or stats["relative_gap"] <= DEFAULT_INTERIOR_POINT_TOL)
     c = r.certificate
     assert c.meets_tol and c.max_violation <= DEFAULT_KKT_TOL
     assert c.bound_violation == 0.0 and c.equality_residual <= 1e-10
@@ -192,7 +193,7 @@ def test_fisher_iris_setosa_versicolor_maximum_margin_hyperplane():
     X, labels = _pair(load_iris, 0, 1)
     C = 1e6
     recs = {}
-    for method, opts in (("smo", {"tol": 1e-10}), ("qp", {})):
+    for method, opts in (("smo", {"kkt_tol": 1e-10}), ("qp", {})):
         prob = binary_classification(X, labels, kernel=LinearKernel(), C=C)
         res = smo.solve_smo(prob, **opts) if method == "smo" else solve_qp(prob, **opts)
         assert res.success
@@ -223,7 +224,7 @@ def test_fisher_iris_setosa_versicolor_maximum_margin_hyperplane():
 @pytest.fixture(scope="module")
 def cancer_runs():
     X, labels = load_breast_cancer(return_X_y=True)
-    a = _record(X, labels, RBFKernel(), 1.0, "smo", tol=SMO_TIGHT)
+    a = _record(X, labels, RBFKernel(), 1.0, "smo", kkt_tol=SMO_TIGHT)
     b = _record(X, labels, RBFKernel(), 1.0, "qp")
     return X, labels, a, b
 

@@ -34,7 +34,7 @@ def test_two_points_hard_margin_closed_form():
     x1, x2 = np.array([1.0, 2.0]), np.array([3.0, -1.0])
     X = np.vstack([x1, x2])
     prob = binary_classification(X, [1, -1], kernel=make_kernel("linear"), C=1e6)
-    r = solve_smo(prob, tol=1e-12)
+    r = solve_smo(prob, kkt_tol=1e-12)
     assert r.success
     expect = 2.0 / np.sum((x1 - x2) ** 2)
     np.testing.assert_allclose(r.alpha, [expect, expect], rtol=1e-12)
@@ -54,7 +54,7 @@ def test_three_points_worked_example():
     # w = (1, 1), b = −1, and w = Σ αᵢyᵢxᵢ with Σ αᵢyᵢ = 0 gives α = (1, 1/2, 1/2).
     X = np.array([[0.0, 0.0], [2.0, 0.0], [0.0, 2.0]])
     prob = binary_classification(X, [-1, 1, 1], kernel=make_kernel("linear"), C=1e6)
-    r = solve_smo(prob, tol=1e-12)
+    r = solve_smo(prob, kkt_tol=1e-12)
     assert r.success
     np.testing.assert_allclose(r.alpha, [1.0, 0.5, 0.5], atol=1e-12)
     assert r.bias == pytest.approx(-1.0, abs=1e-12)
@@ -72,7 +72,7 @@ def test_xor_polynomial_degree_two():
     lab = np.array([1, -1, -1, 1])
     poly = binary_classification(X, lab, kernel=make_kernel("poly", gamma=1.0, offset=1.0,
                                                             degree=2), C=1e6)
-    r = solve_smo(poly, tol=1e-12)
+    r = solve_smo(poly, kkt_tol=1e-12)
     assert r.success
     np.testing.assert_allclose(r.alpha, np.full(4, 0.125), atol=1e-12)
     assert r.bias == pytest.approx(0.0, abs=1e-12)
@@ -80,7 +80,7 @@ def test_xor_polynomial_degree_two():
     np.testing.assert_allclose(f, X[:, 0] * X[:, 1], atol=1e-12)
     assert np.all(np.sign(f) == poly.y)
     lin = binary_classification(X, lab, kernel=make_kernel("linear"), C=1.0)
-    rl = solve_smo(lin, tol=1e-12)
+    rl = solve_smo(lin, kkt_tol=1e-12)
     assert rl.success
     assert np.sum(np.sign(_values(lin, rl)) == lin.y) < 4
 
@@ -124,14 +124,14 @@ def _kernels(d: int) -> dict[str, tuple[dict, dict]]:
 @pytest.mark.slow
 @pytest.mark.parametrize("dataset", sorted(DATASETS))
 def test_agreement_with_scikit_learn_svc(dataset):
-    # scikit-learn's SVC (a reference implementation of the same dual) at tol 1e-5: equal
+    # scikit-learn's SVC (a reference implementation of the same dual) at kkt_tol 1e-5: equal
     # dual objective to 1e-6 relative and equal predictions except where |f| < 1e-3.
     X, lab = DATASETS[dataset]()
     for kname, (ours, theirs) in _kernels(X.shape[1]).items():
         for C in (1.0, 10.0):
             kern = make_kernel(ours["name"], **{k: v for k, v in ours.items() if k != "name"})
             prob = binary_classification(X, lab, kernel=kern, C=C)
-            r = solve_smo(prob, tol=1e-5)
+            r = solve_smo(prob, kkt_tol=1e-5)
             assert r.success, (dataset, kname, C, r.message)
             svc = SVC(C=C, tol=1e-5, **theirs).fit(X, lab)
             a_svc = np.zeros(prob.n)
@@ -171,8 +171,8 @@ def test_second_order_needs_fewer_iterations(C):
 @pytest.mark.parametrize("C", [1.0, 100.0])
 def test_shrinking_on_and_off_reach_the_same_certificate(C):
     prob = _benchmark_problem(1500, C)
-    on = solve_smo(prob, shrinking=True, tol=1e-4)
-    off = solve_smo(prob, shrinking=False, tol=1e-4)
+    on = solve_smo(prob, shrinking=True, kkt_tol=1e-4)
+    off = solve_smo(prob, shrinking=False, kkt_tol=1e-4)
     assert on.success and off.success
     assert on.extra["shrinks"] > 0 and on.extra["reconstructions"] > 0
     for r in (on, off):
@@ -188,7 +188,7 @@ def test_replay_is_bitwise_at_every_snapshot_with_shrinking_and_row_cache():
     prob = _benchmark_problem(1200, 10.0)
     with warnings.catch_warnings():
         warnings.simplefilter("error")
-        r = solve_smo(prob, snapshot_every=250, kernel_memory_mb=1.0, cache_mb=2.0)
+        r = solve_smo(prob, snapshot_every=250, kernel_memory_mb=1.0, row_cache_mb=2.0)
     assert r.success and r.extra["kernel_mode"] == "column_cache" and r.extra["shrinks"] > 0
     tr = r.trace
     assert tr.snapshots.shape[0] >= 4

@@ -50,7 +50,7 @@ def smo_loaded(tmp_path_factory):
     rng = np.random.default_rng(77)
     ds = _dataset(rng, n=120)
     store = RunStore(tmp_path_factory.mktemp("replay"))
-    return _smo_run(ds, store=store, tol=1e-8, snapshot_every=25), ds, store
+    return _smo_run(ds, store=store, kkt_tol=1e-8, snapshot_every=25), ds, store
 
 
 # ----------------------------------------------------------------------------- replay
@@ -84,7 +84,7 @@ def test_replayed_certificate_recomputes_the_gradient(smo_loaded) -> None:
     rec, _, _ = smo_loaded
     k = int(rec.result.trace.snapshot_iterations[2]) + 7
     st = replay(rec, k)
-    ref = certify(rec.problem, st.alpha, tol=rec.result.certificate.tol)
+    ref = certify(rec.problem, st.alpha, kkt_tol=rec.result.certificate.kkt_tol)
     assert st.certificate.max_violation == ref.max_violation
     assert st.certificate.dual_objective == ref.dual_objective
     # the objective the solver tracked incrementally agrees with the recomputed one
@@ -177,7 +177,7 @@ def test_reproduce_from_a_data_file(tmp_path, rng) -> None:
             fh.write(",".join(repr(v) for v in row) + f",{lab}\n")
     from_file = load_table(path, label="decision")
     store = RunStore(tmp_path / "s")
-    rec = _smo_run(from_file, store=store, tol=1e-6)
+    rec = _smo_run(from_file, store=store, kkt_tol=1e-6)
     rp = reproduce(rec, load_table(path, label="decision"))
     assert rp.bitwise
     # an edited data file is refused, naming the fingerprint
@@ -199,8 +199,8 @@ def test_reproduce_warm_start_and_weights(tmp_path, rng) -> None:
     sw = np.linspace(0.5, 1.5, 60)
     weighted = binary_classification(std.transform(ds.X), ds.labels, kernel=RBFKernel(), C=2.0,
                                      class_weight={"reject": 2.0}, sample_weight=sw)
-    a0 = solve_smo(weighted, tol=1e-1).alpha  # a rough, feasible warm start
-    rec = _smo_run(ds, C=2.0, store=store, tol=1e-7, alpha0=a0,
+    a0 = solve_smo(weighted, kkt_tol=1e-1).alpha  # a rough, feasible warm start
+    rec = _smo_run(ds, C=2.0, store=store, kkt_tol=1e-7, alpha0=a0,
                    class_weight={"reject": 2.0}, sample_weight=sw)
     assert rec.result.options["warm_start"] is True
     rp = reproduce(rec, ds)
@@ -211,13 +211,13 @@ def test_reproduce_warm_start_and_weights(tmp_path, rng) -> None:
 
 def test_reproduce_reports_a_difference_within_and_beyond_tolerance(smo_loaded) -> None:
     rec, ds, _ = smo_loaded
-    looser = reproduce(rec, ds, options={"tol": 1e-3})
+    looser = reproduce(rec, ds, options={"kkt_tol": 1e-3})
     assert not looser.bitwise and looser.agreement in ("within_tolerance", "different")
     assert looser.max_abs_difference > 0
     assert any("overridden" in n for n in looser.notes)
-    wide = reproduce(rec, ds, options={"tol": 1e-3}, tolerance=1e6)
+    wide = reproduce(rec, ds, options={"kkt_tol": 1e-3}, tolerance=1e6)
     assert wide.agreement == "within_tolerance" and wide.within_tolerance
-    tight = reproduce(rec, ds, options={"tol": 1e-3}, tolerance=0.0)
+    tight = reproduce(rec, ds, options={"kkt_tol": 1e-3}, tolerance=0.0)
     assert tight.agreement == "different" and not tight.within_tolerance
 
 

@@ -71,7 +71,7 @@ def work(tmp_path_factory: pytest.TempPathFactory) -> dict:
     hold = _write_csv(root / "hold.csv", X[160:], lab[160:], names)
     store = root / "store"
     pair = _train(train, store, solver="both", holdout=str(hold), C=10.0)
-    limited = _train(train, store, solver="smo", max_iter=5)
+    limited = _train(train, store, solver="smo", iteration_limit=5)
     return {"root": root, "train": train, "store": store, "pair": pair, "limited": limited,
             "names": names}
 
@@ -195,7 +195,7 @@ def test_many_bounded_and_indefinite_kernel_flags(work: dict) -> None:
     assert "many_bounded" in codes
     # tanh(x·z − 1) has K(x, x) < 0 for |x| < 1, so the Gram matrix cannot be PSD
     sig = _train(work["train"], store, solver="smo", kernel="sigmoid", gamma=1.0, offset=-1.0,
-                 max_iter=2000)
+                 iteration_limit=2000)
     assert sig[0].attachments["audit"]["psd"] is False  # precondition from the real audit
     content = build_report_content(sig)
     flag = next(f for f in content.flags if f.code == "indefinite_kernel")

@@ -31,7 +31,7 @@ def problem(rng):
 
 
 def test_converges_and_certificate_matches(problem):
-    r = solve_smo(problem, tol=1e-4)
+    r = solve_smo(problem, kkt_tol=1e-4)
     assert r.status == Status.CONVERGED and r.success
     assert r.certificate.max_violation <= 1e-4
     assert r.bias == r.certificate.bias
@@ -44,7 +44,7 @@ def test_converges_and_certificate_matches(problem):
 
 
 def test_trace_columns_and_replay(problem):
-    r = solve_smo(problem, tol=1e-4, snapshot_every=7)
+    r = solve_smo(problem, kkt_tol=1e-4, snapshot_every=7)
     tr = r.trace
     assert tr.level == "full" and tr.n_rows == r.iterations
     assert np.array_equal(tr.columns["iteration"], np.arange(1, r.iterations + 1))
@@ -67,8 +67,8 @@ def test_trace_columns_and_replay(problem):
 
 
 def test_deterministic(problem):
-    a = solve_smo(problem, tol=1e-5)
-    b = solve_smo(problem, tol=1e-5)
+    a = solve_smo(problem, kkt_tol=1e-5)
+    b = solve_smo(problem, kkt_tol=1e-5)
     assert np.array_equal(a.alpha, b.alpha)
     for name in a.trace.columns:
         assert np.array_equal(a.trace.columns[name], b.trace.columns[name])
@@ -76,7 +76,7 @@ def test_deterministic(problem):
 
 def test_iteration_limit_warns(problem):
     with pytest.warns(ConvergenceWarning, match="iteration limit"):
-        r = solve_smo(problem, tol=1e-8, max_iter=5)
+        r = solve_smo(problem, kkt_tol=1e-8, iteration_limit=5)
     assert r.status == Status.ITERATION_LIMIT and not r.success
     assert r.iterations == 5 and r.trace.n_rows == 5
 
@@ -89,20 +89,20 @@ def test_callback_stops(problem):
         return True
 
     with pytest.warns(ConvergenceWarning):
-        r = solve_smo(problem, tol=1e-9, callback=cb, callback_every=3)
+        r = solve_smo(problem, kkt_tol=1e-9, callback=cb, callback_every=3)
     assert r.status == Status.STOPPED_BY_CALLBACK and r.iterations == 3
-    assert set(seen[0]) == {"iteration", "violation", "tol", "active", "objective"}
+    assert set(seen[0]) == {"iteration", "violation", "kkt_tol", "active", "objective"}
 
 
 def test_warm_start_from_solution(problem):
-    r = solve_smo(problem, tol=1e-4)
-    r2 = solve_smo(problem, tol=1e-4, alpha0=r.alpha)
+    r = solve_smo(problem, kkt_tol=1e-4)
+    r2 = solve_smo(problem, kkt_tol=1e-4, alpha0=r.alpha)
     assert r2.success and r2.iterations <= 2
 
 
 @pytest.mark.parametrize(
     "kw",
-    [dict(tol=0), dict(tol=float("nan")), dict(max_iter=0), dict(selection="third"),
+    [dict(kkt_tol=0), dict(kkt_tol=float("nan")), dict(iteration_limit=0), dict(selection="third"),
      dict(trace="some"), dict(sample_every=0), dict(kernel_dtype="float16"),
      dict(callback=3), dict(time_limit=-1.0), dict(shrinking="yes")],
 )
@@ -124,9 +124,9 @@ def test_infeasible_warm_start(problem):
 
 
 def test_sampled_and_off_trace_levels(problem):
-    full = solve_smo(problem, tol=1e-5)
-    samp = solve_smo(problem, tol=1e-5, trace="sampled", sample_every=10)
-    off = solve_smo(problem, tol=1e-5, trace="off")
+    full = solve_smo(problem, kkt_tol=1e-5)
+    samp = solve_smo(problem, kkt_tol=1e-5, trace="sampled", sample_every=10)
+    off = solve_smo(problem, kkt_tol=1e-5, trace="off")
     assert np.array_equal(full.alpha, samp.alpha) and np.array_equal(full.alpha, off.alpha)
     it = samp.trace.columns["iteration"]
     ev_its = set(samp.trace.events["iteration"].tolist())
@@ -146,9 +146,9 @@ def test_time_limit(rng):
     X, lab = _blobs(rng, n=1500, d=5, shift=0.3)
     prob = binary_classification(X, lab, kernel=make_kernel("rbf", gamma=0.5), C=100.0)
     with pytest.warns(ConvergenceWarning, match="iteration limit"):
-        solve_smo(prob, max_iter=1, trace="off")  # compiles first: the budget is the solve's
+        solve_smo(prob, iteration_limit=1, trace="off")  # compiles first: the budget is the solve's
     with pytest.warns(ConvergenceWarning, match="wall-clock"):
-        r = solve_smo(prob, tol=1e-12, time_limit=0.05, trace="off")
+        r = solve_smo(prob, kkt_tol=1e-12, time_limit=0.05, trace="off")
     assert r.status == Status.TIME_LIMIT and r.seconds < 5.0
     assert r.certificate.max_violation > 1e-12
 
@@ -174,11 +174,11 @@ def test_time_limit_is_kept_while_shrinking_returns_every_1000_iterations(rng, m
     X, lab = _blobs(rng, n=4000, d=5, shift=0.3)
     prob = binary_classification(X, lab, kernel=make_kernel("rbf", gamma=0.5), C=100.0)
     with pytest.warns(ConvergenceWarning, match="iteration limit"):
-        free = solve_smo(prob, tol=1e-12, max_iter=3000, threads=1, trace="off")
+        free = solve_smo(prob, kkt_tol=1e-12, iteration_limit=3000, threads=1, trace="off")
     assert free.iterations == 3000  # without a budget the run goes on past 1000
     monkeypatch.setattr(smo_module, "time", _JumpingClock())
     with pytest.warns(ConvergenceWarning, match="wall-clock"):
-        r = solve_smo(prob, tol=1e-12, time_limit=2.5, threads=1, trace="off")
+        r = solve_smo(prob, kkt_tol=1e-12, time_limit=2.5, threads=1, trace="off")
     assert r.status == Status.TIME_LIMIT
     assert r.iterations == 1000  # the first return of the loop
 
@@ -188,7 +188,7 @@ def test_stall_window(rng):
     X, lab = _blobs(rng, n=60, d=2, shift=0.5)
     prob = binary_classification(X, lab, kernel=make_kernel("rbf", gamma=1.0), C=10.0)
     with pytest.warns(ConvergenceWarning, match="did not decrease"):
-        r = solve_smo(prob, tol=1e-300, stall_window=50, trace="off")
+        r = solve_smo(prob, kkt_tol=1e-300, stall_window=50, trace="off")
     assert r.status == Status.STALLED
     assert r.certificate.max_violation <= 1e-6  # it got as close as rounding allows
 
@@ -200,7 +200,7 @@ def test_curvature_fix_recorded_for_duplicate_points(rng):
     X = np.vstack([X, X[:5]])
     lab = np.concatenate([lab, -lab[:5]])
     prob = binary_classification(X, lab, kernel=make_kernel("rbf", gamma=0.5), C=1.0)
-    r = solve_smo(prob, tol=1e-6)
+    r = solve_smo(prob, kkt_tol=1e-6)
     assert r.success and r.certificate.max_violation <= 1e-6
     kinds = r.trace.events["kind"]
     assert r.extra["curvature_fixes"] >= 1
@@ -212,7 +212,7 @@ def test_indefinite_sigmoid_kernel_converges(rng):
     X, lab = _blobs(rng, n=80, d=3)
     prob = binary_classification(X, lab, kernel=make_kernel("sigmoid", gamma=0.5, offset=-1.0),
                                  C=1.0)
-    r = solve_smo(prob, tol=1e-4)
+    r = solve_smo(prob, kkt_tol=1e-4)
     assert r.status in (Status.CONVERGED, Status.STALLED)
     if r.success:
         assert r.certificate.max_violation <= 1e-4
@@ -231,8 +231,8 @@ def test_numerical_error_status(rng):
 
 
 def test_kernel_modes_give_identical_runs(problem):
-    full = solve_smo(problem, tol=1e-5)
-    cached = solve_smo(problem, tol=1e-5, kernel_memory_mb=0.01, cache_mb=0.02)
+    full = solve_smo(problem, kkt_tol=1e-5)
+    cached = solve_smo(problem, kkt_tol=1e-5, kernel_memory_mb=0.01, row_cache_mb=0.02)
     assert full.extra["kernel_mode"] == "full_gram"
     assert cached.extra["kernel_mode"] == "column_cache"
     assert cached.extra["cache_misses"] > 0
@@ -245,14 +245,14 @@ def test_python_and_precomputed_kernels(problem, memory):
     from solver.kernels import CallableKernel, PrecomputedKernel
     from solver.problem import DualProblem, index_features
 
-    ref = solve_smo(problem, tol=1e-6)
+    ref = solve_smo(problem, kkt_tol=1e-6)
     func = CallableKernel(func=lambda A, B: make_kernel("rbf", gamma=0.5).block(A, B))
     gram = make_kernel("rbf", gamma=0.5).block(problem.X, problem.X)
     pre = PrecomputedKernel(gram_matrix=gram)
     for kern, X in ((func, problem.X), (pre, index_features(problem.n))):
         prob = DualProblem(X=X, y=problem.y, p=problem.p, lower=problem.lower,
                            upper=problem.upper, delta=0.0, kernel=kern, kind="t", info={})
-        r = solve_smo(prob, tol=1e-6, kernel_memory_mb=memory, cache_mb=0.02)
+        r = solve_smo(prob, kkt_tol=1e-6, kernel_memory_mb=memory, row_cache_mb=0.02)
         assert r.success
         assert r.certificate.dual_objective == pytest.approx(ref.certificate.dual_objective,
                                                             rel=1e-9)
@@ -270,7 +270,7 @@ def test_general_dual_with_lower_bounds_and_delta(rng):
     up = lo + rng.uniform(0.5, 2.0, n)
     prob = DualProblem(X=X, y=y, p=rng.normal(size=n), lower=lo, upper=up, delta=0.7,
                        kernel=make_kernel("rbf", gamma=0.3), kind="general", info={})
-    r = solve_smo(prob, tol=1e-8)
+    r = solve_smo(prob, kkt_tol=1e-8)
     assert r.success and r.certificate.max_violation <= 1e-8
     assert np.all(r.alpha >= lo) and np.all(r.alpha <= up)
     assert abs(y @ r.alpha - 0.7) <= 1e-10
@@ -283,7 +283,7 @@ def test_leave_one_out_warm_start(problem):
     from solver.problem import DualProblem
     from solver.smo import repair_start
 
-    full = solve_smo(problem, tol=1e-6)
+    full = solve_smo(problem, kkt_tol=1e-6)
     k = int(np.flatnonzero(full.alpha > 0)[0])
     up = problem.upper.copy()
     up[k] = 0.0
@@ -293,8 +293,8 @@ def test_leave_one_out_warm_start(problem):
         solve_smo(loo, alpha0=full.alpha)
     start = repair_start(loo, full.alpha)
     assert start[k] == 0.0 and abs(loo.y @ start) <= 1e-12
-    warm = solve_smo(loo, tol=1e-6, alpha0=start)
-    cold = solve_smo(loo, tol=1e-6)
+    warm = solve_smo(loo, kkt_tol=1e-6, alpha0=start)
+    cold = solve_smo(loo, kkt_tol=1e-6)
     assert warm.success and warm.alpha[k] == 0.0
     assert warm.options["warm_start"] is True
     assert warm.iterations < cold.iterations
@@ -306,8 +306,8 @@ def test_float32_kernel_storage_keeps_certificate(rng):
     X, lab = _blobs(rng, n=400, d=4, shift=0.5)
     for C in (1.0, 1000.0):
         prob = binary_classification(X, lab, kernel=make_kernel("rbf", gamma=0.2), C=C)
-        r32 = solve_smo(prob, tol=1e-4, kernel_dtype="float32")
-        r64 = solve_smo(prob, tol=1e-4)
+        r32 = solve_smo(prob, kkt_tol=1e-4, kernel_dtype="float32")
+        r64 = solve_smo(prob, kkt_tol=1e-4)
         assert r32.success and r32.options["kernel_dtype"] == "float32"
         # certificate computed from the exact float64 gradient
         exact = problem_violation(prob, r32.alpha)
@@ -322,20 +322,21 @@ def test_float32_kernel_storage_keeps_certificate(rng):
 def problem_violation(prob, alpha) -> float:
     from solver.certificate import certify
 
-    return certify(prob, alpha, tol=1.0).max_violation
+    return certify(prob, alpha, kkt_tol=1.0).max_violation
 
 
 def test_options_resolved_as_plain_data(problem):
     import json
 
     r = solve_smo(problem)
-    expected = {"tol", "max_iter", "time_limit", "selection", "shrinking", "trace",
+    expected = {"kkt_tol", "iteration_limit", "time_limit", "selection", "shrinking", "trace",
                 "sample_every", "snapshot_every", "kernel_memory_mb", "kernel_dtype",
-                "cache_mb", "warm_start", "callback_every", "stall_window", "tau", "threads"}
+                "row_cache_mb", "warm_start", "callback_every", "stall_window", "curvature_floor",
+                "threads"}
     assert expected <= set(r.options)
     json.dumps(dict(r.options))
     json.dumps({k: v for k, v in r.extra.items()})
-    assert r.options["max_iter"] == max(10_000_000, 100 * problem.n)
+    assert r.options["iteration_limit"] == max(10_000_000, 100 * problem.n)
     assert r.solver == "smo" and r.message.startswith("optimality test met")
 
 
@@ -344,7 +345,7 @@ def test_callback_stop_iteration(problem):
         raise StopIteration
 
     with pytest.warns(ConvergenceWarning, match="callback"):
-        r = solve_smo(problem, tol=1e-12, callback=cb, callback_every=2)
+        r = solve_smo(problem, kkt_tol=1e-12, callback=cb, callback_every=2)
     assert r.status == Status.STOPPED_BY_CALLBACK and r.iterations == 2
     # the certificate is still that of the returned α
     assert r.certificate.max_violation > 1e-12
@@ -353,5 +354,5 @@ def test_callback_stop_iteration(problem):
 def test_registry_dispatch(problem):
     from solver.solvers import solve
 
-    r = solve(problem, method="smo", tol=1e-4)
+    r = solve(problem, method="smo", kkt_tol=1e-4)
     assert r.solver == "smo" and r.success

@@ -143,7 +143,7 @@ def _tiny_problem():
 
 def test_tiny_solve_runs(rng):
     # the full loop, also stepped through as Python under NUMBA_DISABLE_JIT=1
-    r = solve_smo(_tiny_problem(), tol=1e-6, snapshot_every=3)
+    r = solve_smo(_tiny_problem(), kkt_tol=1e-6, snapshot_every=3)
     assert r.success and r.certificate.max_violation <= 1e-6
 
 
@@ -152,7 +152,7 @@ import json, sys
 sys.path.insert(0, {root!r})
 from tests.test_smo_kernels import _tiny_problem
 from solver.smo import solve_smo
-r = solve_smo(_tiny_problem(), tol=1e-8, shrinking=True)
+r = solve_smo(_tiny_problem(), kkt_tol=1e-8, shrinking=True)
 print(json.dumps({{"alpha": r.alpha.tolist(), "i": r.trace.columns["i"].tolist(),
                   "j": r.trace.columns["j"].tolist(), "it": r.iterations,
                   "obj": r.trace.columns["objective"].tolist()}}))
@@ -165,7 +165,7 @@ def test_compiled_matches_pure_python():
     out = subprocess.run([sys.executable, "-c", _CHILD.format(root=ROOT)], env=env,
                          capture_output=True, text=True, check=True, cwd=ROOT)
     py = json.loads(out.stdout.strip().splitlines()[-1])
-    r = solve_smo(_tiny_problem(), tol=1e-8, shrinking=True)
+    r = solve_smo(_tiny_problem(), kkt_tol=1e-8, shrinking=True)
     assert py["it"] == r.iterations
     assert py["i"] == r.trace.columns["i"].tolist() and py["j"] == r.trace.columns["j"].tolist()
     # bit for bit: the compiled code uses no fused multiply-adds or reassociation
@@ -187,7 +187,7 @@ def test_repeated_calls_do_not_recompile():
         lab = np.where(rng.random(n) < 0.5, 1, -1)
         p = binary_classification(X, lab, kernel=kern, C=3.0)
         solve_smo(p, trace="sampled")
-        solve_smo(p, kernel_memory_mb=1e-6, cache_mb=1e-6, shrinking=False,
+        solve_smo(p, kernel_memory_mb=1e-6, row_cache_mb=1e-6, shrinking=False,
                   selection="first_order", trace="off")
     for name, c in counts.items():
         assert len(getattr(K, name).signatures) == c, name

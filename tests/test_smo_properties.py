@@ -61,10 +61,11 @@ def _replay_all(trace, n):
 
 
 @SETTINGS
-@given(prob=duals(), tol=st.sampled_from([1e-2, 1e-4, 1e-8]),
+@given(prob=duals(), kkt_tol=st.sampled_from([1e-2, 1e-4, 1e-8]),
        selection=st.sampled_from(["second_order", "first_order"]), shrinking=st.booleans())
-def test_iterates_feasible_objective_monotone_certificate(prob, tol, selection, shrinking):
-    r = solve_smo(prob, tol=tol, selection=selection, shrinking=shrinking, max_iter=20000,
+def test_iterates_feasible_objective_monotone_certificate(prob, kkt_tol, selection, shrinking):
+    r = solve_smo(prob, kkt_tol=kkt_tol, selection=selection, shrinking=shrinking,
+                  iteration_limit=20000,
                   snapshot_every=7)
     tr = r.trace
     lo, up, y = prob.lower, prob.upper, prob.y
@@ -86,7 +87,7 @@ def test_iterates_feasible_objective_monotone_certificate(prob, tol, selection, 
         exact = prob.objective(r.alpha)
         assert abs(objs[-1] - exact) <= 1e-9 * max(1.0, abs(exact))
     if r.success:
-        assert r.certificate.max_violation <= tol
+        assert r.certificate.max_violation <= kkt_tol
         assert r.certificate.bound_violation == 0.0
     assert np.array_equal(tr.snapshots[-1], r.alpha)
 
@@ -94,8 +95,9 @@ def test_iterates_feasible_objective_monotone_certificate(prob, tol, selection, 
 @SETTINGS
 @given(prob=duals())
 def test_deterministic_and_mode_independent(prob):
-    a = solve_smo(prob, tol=1e-6, max_iter=20000)
-    b = solve_smo(prob, tol=1e-6, max_iter=20000, kernel_memory_mb=1e-6, cache_mb=1e-6)
+    a = solve_smo(prob, kkt_tol=1e-6, iteration_limit=20000)
+    b = solve_smo(prob, kkt_tol=1e-6, iteration_limit=20000, kernel_memory_mb=1e-6,
+                  row_cache_mb=1e-6)
     assert a.extra["kernel_mode"] == "full_gram" and b.extra["kernel_mode"] == "column_cache"
     assert np.array_equal(a.alpha, b.alpha)
     for name in ("i", "j", "alpha_i", "alpha_j", "objective"):

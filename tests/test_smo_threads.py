@@ -69,8 +69,8 @@ CASES = {
 def test_two_threads_give_bitwise_the_run_of_one(case) -> None:
     pkw, skw = CASES[case]
     prob = _problem(5000, **pkw)
-    one = solve_smo(prob, tol=1e-3, threads=1, **skw)
-    two = solve_smo(prob, tol=1e-3, threads=2, **skw)
+    one = solve_smo(prob, kkt_tol=1e-3, threads=1, **skw)
+    two = solve_smo(prob, kkt_tol=1e-3, threads=2, **skw)
     assert one.options["threads"] == 1 and two.options["threads"] == 2
     assert one.extra["helper_jobs"] == 0
     # passes and rows were really split; the helper did > 1000 parts, unless the machine was
@@ -83,9 +83,9 @@ def test_two_threads_give_bitwise_the_run_of_one(case) -> None:
 @needs_two
 def test_warm_start_with_two_threads_matches_one() -> None:
     prob = _problem(5000, kernel="rbf", C=5.0, gamma=0.1)
-    start = solve_smo(prob, tol=1e-1, threads=1).alpha
-    one = solve_smo(prob, tol=1e-3, threads=1, alpha0=start)
-    two = solve_smo(prob, tol=1e-3, threads=2, alpha0=start)
+    start = solve_smo(prob, kkt_tol=1e-1, threads=1).alpha
+    one = solve_smo(prob, kkt_tol=1e-3, threads=1, alpha0=start)
+    two = solve_smo(prob, kkt_tol=1e-3, threads=2, alpha0=start)
     _assert_same_run(one, two)
 
 
@@ -97,12 +97,12 @@ def _helpers() -> list[threading.Thread]:
 @pytest.mark.parametrize("how", ["iteration_limit", "callback", "time_limit", "converged"])
 def test_helper_thread_ends_with_every_run(how) -> None:
     prob = _problem(5000, kernel="rbf", C=10.0, gamma=0.1)
-    kw = {"iteration_limit": dict(max_iter=700),
+    kw = {"iteration_limit": dict(iteration_limit=700),
           "callback": dict(callback=lambda info: True, callback_every=300),
           "time_limit": dict(time_limit=1e-3),
           "converged": {}}[how]
     with pytest.warns(ConvergenceWarning) if how != "converged" else nullcontext():
-        res = solve_smo(prob, tol=1e-3, threads=2, kernel_memory_mb=1.0, **kw)
+        res = solve_smo(prob, kkt_tol=1e-3, threads=2, kernel_memory_mb=1.0, **kw)
     assert res.extra["helper_jobs"] + res.extra["helper_taken"] > 0  # a helper served
     assert _helpers() == []
     assert res.status.label == {"iteration_limit": "iteration_limit",
@@ -220,7 +220,7 @@ def test_run_without_a_helper_thread_is_bitwise_the_same(monkeypatch) -> None:
     them in a call sends the (absent) helper away for the rest of it: still the one-thread
     run."""
     prob = _problem(5000, kernel="rbf", C=10.0, gamma=0.1)
-    one = solve_smo(prob, tol=1e-3, threads=1, kernel_memory_mb=1.0)
+    one = solve_smo(prob, kkt_tol=1e-3, threads=1, kernel_memory_mb=1.0)
     calls: list[tuple[int, int, int]] = []
 
     def absent(self):
@@ -238,7 +238,7 @@ def test_run_without_a_helper_thread_is_bitwise_the_same(monkeypatch) -> None:
 
     monkeypatch.setattr(smo._Engine, "_start_helper", absent)
     monkeypatch.setattr(smo._Engine, "_run_loop", counted)
-    alone = solve_smo(prob, tol=1e-3, threads=1, kernel_memory_mb=1.0)
+    alone = solve_smo(prob, kkt_tol=1e-3, threads=1, kernel_memory_mb=1.0)
     _assert_same_run(one, alone)
     assert any(away for _, _, away in calls)
     assert all(t == posted - 1 for posted, t, _ in calls if posted)  # all but the exit
@@ -264,7 +264,7 @@ class _BusyClock:
 @needs_two
 def test_a_helper_without_a_core_is_paused_for_doubling_spans(monkeypatch) -> None:
     prob = _problem(5000, kernel="rbf", C=100.0, gamma=0.1)
-    one = solve_smo(prob, tol=1e-3, threads=1, kernel_memory_mb=1.0)
+    one = solve_smo(prob, kkt_tol=1e-3, threads=1, kernel_memory_mb=1.0)
     started: list[int] = []
     start = smo._Engine._start_helper
 
@@ -276,7 +276,7 @@ def test_a_helper_without_a_core_is_paused_for_doubling_spans(monkeypatch) -> No
 
     monkeypatch.setattr(smo._Engine, "_start_helper", logged)
     monkeypatch.setattr(smo, "time", _BusyClock())
-    busy = solve_smo(prob, tol=1e-3, threads=2, kernel_memory_mb=1.0)
+    busy = solve_smo(prob, kkt_tol=1e-3, threads=2, kernel_memory_mb=1.0)
     _assert_same_run(one, busy)
     assert busy.extra["helper_pauses"] == len(started) >= 3
     gaps = np.diff(started)

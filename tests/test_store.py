@@ -41,7 +41,7 @@ def _smo_record(rng: np.random.Generator, n: int = 60, trace: str = "full") -> R
     std = Standardiser.fit(X)
     prob = binary_classification(std.transform(X), lab, kernel=PolynomialKernel(degree=2,
                                                                                  offset=1.0), C=3.0)
-    res = solve_smo(prob, tol=1e-6, trace=trace, snapshot_every=20)
+    res = solve_smo(prob, kkt_tol=1e-6, trace=trace, snapshot_every=20)
     return RunRecord(problem=prob, result=res, data={"fingerprint": "x" * 64}, standardiser=std,
                      attachments={"command": {"argv": ["kktrace", "train", "a.csv"],
                                               "text": "kktrace train a.csv"}})
@@ -466,3 +466,49 @@ def test_temp_folders_are_ignored_and_cleaned(tmp_path) -> None:
     assert removed == [dead.name] and live.exists()
     assert store.clean_temp(max_age_seconds=-1) == [live.name]
     assert store.temp_folders() == []
+
+
+def _as_version_1(manifest: dict, qp: bool) -> dict:
+    """The manifest as format version 1 wrote it: the option and certificate names before
+    the version-2 renaming (tol, max_iter, cache_mb, tau)."""
+    old = json.loads(json.dumps(manifest))
+    old["format_version"] = 1
+    back = {"kkt_tol": "tol", "iteration_limit": "max_iter", "row_cache_mb": "cache_mb",
+            "curvature_floor": "tau"}
+    if qp:
+        back = {"interior_point_tol": "tol", "iteration_limit": "max_iter"}
+    old["solver"]["options"] = {back.get(k, k): v for k, v in old["solver"]["options"].items()}
+    old["certificate"] = {("tol" if k == "kkt_tol" else k): v
+                          for k, v in old["certificate"].items()}
+    return old
+
+
+@pytest.mark.parametrize("method", ["smo", "qp"])
+def test_format_version_1_manifests_are_still_read(tmp_path, rng, method) -> None:
+    from solver.solvers import solve
+    from solver.store.codec import decode_record
+
+    X = rng.normal(size=(40, 3))
+    prob = binary_classification(X, np.where(X[:, 0] > 0, 1, -1), C=1.0, kernel=LinearKernel())
+    rec = RunRecord(problem=prob, result=solve(prob, method=method, trace="full"),
+                    data={"fingerprint": "x" * 64}, standardiser=Standardiser.fit(X))
+    store = RunStore(tmp_path)
+    rid = store.save(rec)
+    folder = store.run_dir(rid)
+    manifest = json.loads((folder / "manifest.json").read_text())
+    assert manifest["format_version"] == FORMAT_VERSION == 2
+    blobs = {p.name: p.read_bytes() for p in folder.iterdir() if p.is_file()}
+    old = _as_version_1(manifest, qp=method == "qp")
+    assert "tol" in old["certificate"] and "kkt_tol" not in old["certificate"]
+    new, v1 = decode_record(manifest, blobs), decode_record(old, blobs)
+    assert v1.result.options == new.result.options
+    assert v1.result.certificate.kkt_tol == new.result.certificate.kkt_tol
+    assert same_bits(v1.result.alpha, new.result.alpha)
+    if method == "qp":
+        assert "interior_point_tol" in v1.result.options and "kkt_tol" in v1.result.options
+    else:
+        assert {"kkt_tol", "iteration_limit", "row_cache_mb", "curvature_floor"} <= set(
+            v1.result.options)
+    old["format_version"] = 3
+    with pytest.raises(IntegrityError, match="format_version 3 is not supported"):
+        decode_record(old, blobs)

@@ -81,11 +81,12 @@ def synthetic_record(
                   event_kinds=EVENT_KINDS, snapshot_iterations=np.asarray(snap_its, np.int64),
                   snapshots=np.vstack(snaps), sample_every=1 if level == "full" else 10,
                   snapshot_every=snapshot_every)
-    cert = certify(problem, alpha, tol=1e-3)
+    cert = certify(problem, alpha, kkt_tol=1e-3)
     result = SolveResult(
         solver="smo", status=Status.ITERATION_LIMIT, message="stopped at the iteration limit",
         alpha=alpha.copy(), bias=cert.bias, iterations=rows, certificate=cert, seconds=0.125,
-        options={"tol": 1e-3, "max_iter": rows, "selection": "second_order", "shrinking": True,
+        options={"kkt_tol": 1e-3, "iteration_limit": rows, "selection": "second_order",
+                 "shrinking": True,
                  "trace": level, "time_limit": None, "weights": np.array([1.0, 2.0]),
                  "tiny": 5e-324},
         trace=trace,

@@ -65,9 +65,9 @@ class LeaveOneOut:
     ``refit_max_change`` / ``refit_mean_change`` max / mean |f₋ᵢ(xⱼ) − f(xⱼ)| over training
     rows j ≠ i, ``refit_flips`` how many of those predictions change sign, ``refit_rounds``
     solver calls and ``refit_working_set`` final working-set size of each refit.
-    ``near_boundary_rows`` rows with |f₋ᵢ(xᵢ)| ≤ tol: their leave-one-out sign is within
+    ``near_boundary_rows`` rows with |f₋ᵢ(xᵢ)| ≤ kkt_tol: their leave-one-out sign is within
     the solver tolerance, so another solution meeting the same tolerance may classify
-    them the other way (tighten ``tol`` to settle them).
+    them the other way (tighten ``kkt_tol`` to settle them).
     ``non_converged_rows`` refits that did not meet the tolerance
     (their values are used but flagged).  ``reference_seconds`` is the time of one cold
     refit (fastest of three probes for ``support_refits``, median for ``brute_force``);
@@ -101,7 +101,7 @@ class LeaveOneOut:
     seconds: float
     reference_seconds: float
     estimated_brute_force_seconds: float
-    tol: float
+    kkt_tol: float
     solver_options: Mapping[str, Any] = field(default_factory=dict)
 
     @property
@@ -138,7 +138,7 @@ class LeaveOneOut:
             "seconds": self.seconds, "reference_seconds": self.reference_seconds,
             "estimated_brute_force_seconds": self.estimated_brute_force_seconds,
             "estimated_seconds_saved": self.estimated_seconds_saved,
-            "speedup": self.speedup, "tol": self.tol,
+            "speedup": self.speedup, "kkt_tol": self.kkt_tol,
         }
 
     def to_columns(self) -> dict[str, np.ndarray]:
@@ -227,7 +227,7 @@ def leave_one_out(
         warm-started from it where needed) or ``"brute_force"`` (SMO on every problem
         without one row, from the solver's default start).
     solver_options : keyword options for :func:`solver.smo.solve_smo` on each refit
-        (default: the full solution's tolerance ``tol`` and ``trace="off"``); ``tol`` is
+        (default: the full solution's tolerance ``kkt_tol`` and ``trace="off"``); ``kkt_tol`` is
         also the stopping test every refit, path or solver, must meet.
     progress : called as ``progress(done, total)`` after each refit.
     shared_gram_mb : when the n × n Gram matrix fits this many MiB it is computed once;
@@ -251,7 +251,8 @@ def leave_one_out(
             f"leave-one-out needs a converged solution; the solver stopped with status "
             f"{result.status.label!r} ({result.message})"
         )
-    opts = {"tol": float(result.certificate.tol), "trace": "off", **dict(solver_options or {})}
+    opts = {"kkt_tol": float(result.certificate.kkt_tol), "trace": "off",
+            **dict(solver_options or {})}
     if "alpha0" in opts:
         raise InvalidInputError("solver_options must not set alpha0: leave-one-out sets it")
     t_start = time.perf_counter()
@@ -334,10 +335,10 @@ def leave_one_out(
         refit_seconds=secs, refit_max_change=max_change, refit_mean_change=mean_change,
         refit_flips=flips, refit_rounds=rounds, refit_working_set=wsize,
         non_converged_rows=bad.astype(np.int64),
-        near_boundary_rows=np.flatnonzero(np.abs(loo_values) <= float(opts["tol"])),
+        near_boundary_rows=np.flatnonzero(np.abs(loo_values) <= float(opts["kkt_tol"])),
         seconds=seconds,
         reference_seconds=reference, estimated_brute_force_seconds=brute,
-        tol=float(opts["tol"]), solver_options=dict(opts),
+        kkt_tol=float(opts["kkt_tol"]), solver_options=dict(opts),
     )
 
 

@@ -16,7 +16,7 @@ count as movable).  Two refits are offered:
   vectors, every point whose training margin is below 1 + :data:`WORKING_MARGIN`, every
   point the warm start made non-zero and every point whose KKT condition it violates.
   Points outside it keep α = 0.  The answer is certified on the *whole* dropped problem
-  with :func:`solver.certificate.certify` (maximal violation ≤ tol, the solver's own
+  with :func:`solver.certificate.certify` (maximal violation ≤ kkt_tol, the solver's own
   stopping test); points outside the working set that violate their KKT condition are
   added and the refit continues from where it stopped — the same idea as shrinking in
   decomposition methods (common practice), so the result is a converged
@@ -158,7 +158,7 @@ class Refitter:
         self.problem = problem
         self.solve = solve
         self.options = dict(options)
-        self.tol = float(self.options["tol"])
+        self.kkt_tol = float(self.options["kkt_tol"])
         self.gram: np.ndarray | None = None
         self.shared: PrecomputedKernel | None = None
         n = problem.n
@@ -245,7 +245,7 @@ class Refitter:
                             upper=P.upper[keep], delta=P.delta, kernel=P.kernel, kind=P.kind,
                             info=P.info)
         change = self._change(keep, a[keep], i)
-        cert = certify(whole, a[keep], tol=self.tol,
+        cert = certify(whole, a[keep], kkt_tol=self.kkt_tol,
                        gradient=(P.y * (self.base + change) + P.p)[keep])
         if cert.meets_tol:  # the decremental start alone is a converged solution
             return Refit(keep=keep, alpha=a[keep], bias=float(cert.bias), change=change,
@@ -253,7 +253,7 @@ class Refitter:
                          max_violation=float(cert.max_violation), path_events=events)
         inside = (alpha > P.lower) | (a > P.lower) | (margin < 1.0 + WORKING_MARGIN)
         inside[i] = False
-        inside[keep[(cert.kkt_residual > 0.5 * cert.tol)]] = True
+        inside[keep[(cert.kkt_residual > 0.5 * cert.kkt_tol)]] = True
         iterations, rounds, fallback = 0, 0, False
         while True:
             rounds += 1
@@ -270,14 +270,14 @@ class Refitter:
                 status, bias = res.status.label, float(res.bias)
                 viol = float(res.certificate.max_violation)
                 break
-            cert = certify(whole, a[keep], tol=self.tol,
+            cert = certify(whole, a[keep], kkt_tol=self.kkt_tol,
                            gradient=(P.y * (self.base + change) + P.p)[keep])
             viol, bias = float(cert.max_violation), float(cert.bias)
             if cert.meets_tol:
                 status = Status.CONVERGED.label
                 break
             # outside points whose KKT condition fails join the working set
-            bad = keep[(cert.kkt_residual > 0.5 * cert.tol) & ~inside[keep]]
+            bad = keep[(cert.kkt_residual > 0.5 * cert.kkt_tol) & ~inside[keep]]
             inside[bad] = True
             fallback = bad.size == 0
         return Refit(keep=keep, alpha=a[keep], bias=bias, change=change, status=status,

@@ -69,13 +69,13 @@ class PointTable:
     The three trace columns need a trace at level ``"full"`` with working-set columns
     (SMO); otherwise all three are −1 and :attr:`trace_level` is None.
 
-    Attributes besides ``columns``: ``bias`` b, ``tol`` the certificate tolerance,
+    Attributes besides ``columns``: ``bias`` b, ``kkt_tol`` the certificate tolerance,
     ``status`` the solver status label, ``trace_level`` ``"full"`` or None.
     """
 
     columns: Mapping[str, np.ndarray]
     bias: float = float("nan")
-    tol: float = float("nan")
+    kkt_tol: float = float("nan")
     status: str = ""
     trace_level: str | None = None
 
@@ -167,7 +167,7 @@ class PointTable:
         for c in COLUMNS:
             v = cols[c]
             arrays[c] = pa.array(v.tolist() if v.dtype.kind in "OU" else v)
-        meta = {"bias": self.bias, "tol": self.tol, "status": self.status,
+        meta = {"bias": self.bias, "kkt_tol": self.kkt_tol, "status": self.status,
                 "trace_level": self.trace_level, "categories": CATEGORIES}
         table = pa.table(arrays).replace_schema_metadata(
             {"kktrace": json.dumps(meta, ensure_ascii=False)}
@@ -251,7 +251,7 @@ def point_table(problem: DualProblem, result: SolveResult) -> PointTable:
     neg, pos = problem.labels  # type: ignore[misc]
     label = np.array([neg, pos])[(y > 0).astype(np.intp)]
     reasons = np.array(
-        [_reason(str(category[k]), alpha[k], up[k], margin[k], resid[k], cert.tol)
+        [_reason(str(category[k]), alpha[k], up[k], margin[k], resid[k], cert.kkt_tol)
          for k in range(problem.n)],
         dtype=str,
     )
@@ -270,18 +270,18 @@ def point_table(problem: DualProblem, result: SolveResult) -> PointTable:
         "last_change_iteration": last_change,
         "times_selected": selected,
     }
-    return PointTable(columns=cols, bias=float(result.bias), tol=float(cert.tol),
+    return PointTable(columns=cols, bias=float(result.bias), kkt_tol=float(cert.kkt_tol),
                       status=result.status.label, trace_level=level)
 
 
-def _reason(category: str, a: float, u: float, m: float, resid: float, tol: float) -> str:
+def _reason(category: str, a: float, u: float, m: float, resid: float, kkt_tol: float) -> str:
     mtxt = f"{m:.4g}"
     if category == "non_support":
-        where = "exactly on the margin" if abs(m - 1.0) <= tol else "outside the margin"
+        where = "exactly on the margin" if abs(m - 1.0) <= kkt_tol else "outside the margin"
         text = (f"Not a support vector: its multiplier is 0 and its margin y·f(x) = {mtxt} "
                 f"is at least 1 ({where}, correct side), so it does not enter the model "
                 f"and removing it would not change the model.")
-        if m < 1.0 - tol:
+        if m < 1.0 - kkt_tol:
             text = (f"Not a support vector: its multiplier is 0, but its margin y·f(x) = {mtxt} "
                     f"is below 1, so it would need a positive multiplier at the optimum.")
     elif category == "margin_support":
@@ -300,8 +300,8 @@ def _reason(category: str, a: float, u: float, m: float, resid: float, tol: floa
         text = (f"Bounded support vector on the margin: its multiplier is at its bound {u:.4g} "
                 f"while y·f(x) = {mtxt} is not below 1; at the optimum this means it sits "
                 f"exactly on the margin with zero slack (a degenerate case).")
-    if resid > tol:
-        text += (f" Its KKT residual {resid:.3g} exceeds the tolerance {tol:.3g}: "
+    if resid > kkt_tol:
+        text += (f" Its KKT residual {resid:.3g} exceeds the tolerance {kkt_tol:.3g}: "
                  f"the solver has not settled this point.")
     return text
 

@@ -58,7 +58,7 @@ def _trace_figures(rec: RunRecord, label: str, categories: np.ndarray | None) ->
     facts["event_counts"] = ev_counts
     level_note = (f"trace level {trace.level!r}" + (f", every {trace.sample_every}th iteration"
                                                       if trace.level == "sampled" else ""))
-    tol = float(res.certificate.tol)
+    kkt_tol = float(res.certificate.kkt_tol)
 
     if "violation" in cols:
         vx, vy = minmax_downsample(x, np.asarray(cols["violation"], dtype=np.float64), PLOT_POINTS)
@@ -67,11 +67,12 @@ def _trace_figures(rec: RunRecord, label: str, categories: np.ndarray | None) ->
             key="violation", kind="violation",
             title=f"{label}: maximal KKT violation per iteration",
             caption=("Maximal violation m(α) − M(α) before each step (log scale) against the "
-                     f"tolerance {_fmt_num(tol)} (dashed); the ring marks the final certificate. "
+                     f"tolerance {_fmt_num(kkt_tol)} (dashed); the ring marks the final "
+                     "certificate. "
                      f"Event marks: {_event_text(ev_counts)}. {trace.n_rows} recorded rows "
                      f"({level_note}), drawn as {vx.size} points keeping each bucket's min "
                      "and max."),
-            data={"x": vx, "y": vy, "tol": tol, "final_x": float(res.iterations),
+            data={"x": vx, "y": vy, "kkt_tol": kkt_tol, "final_x": float(res.iterations),
                   "final_y": float(res.certificate.max_violation), "events": ev_draw},
         ))
     final = float(res.certificate.dual_objective)

@@ -33,8 +33,8 @@ def _run_flags(rec: RunRecord, label: str, term: Mapping[str, Any], audit: Mappi
     elif not term.get("meets_tol", True):
         flags.append(Flag("tolerance_not_met", "stop",
                           f"{label} reports convergence but its certificate's maximal violation "
-                          f"{_fmt_num(term['max_violation'])} exceeds tol "
-                          f"{_fmt_num(term['tol'])}.", label))
+                          f"{_fmt_num(term['max_violation'])} exceeds kkt_tol "
+                          f"{_fmt_num(term['kkt_tol'])}.", label))
     if audit:
         ind = _audit_indefinite(audit)
         eig = next((audit[k] for k in _EIG_KEYS if k in audit), None)
@@ -134,9 +134,10 @@ def _comparison(comp: Any) -> tuple[dict[str, Any] | None, list[Flag]]:
         for k in ("passed", "passed_loose"):
             row[k] = None if row[k] is None else bool(row[k])
         rows.append(row)
-    for name, tol in tols.items():
+    for name, kkt_tol in tols.items():
         if not any(r["name"] == str(name) for r in rows):
-            rows.append({"name": str(name), "value": None, "rule": None, "tolerance": _plain(tol),
+            rows.append({"name": str(name), "value": None, "rule": None,
+                         "tolerance": _plain(kkt_tol),
                          "loose_tolerance": _plain(loose.get(name)),
                          "passed": (str(name) not in failed) if "failed" in d else None,
                          "passed_loose": None, "waived": None})

@@ -164,14 +164,14 @@ def _audit_verdict(audit: Mapping[str, Any] | None, rec: RunRecord) -> str:
         return f"No kernel audit attached; the {rec.problem.kernel.name} kernel is {promise}."
     ind = _audit_indefinite(audit)
     eig = next((audit[k] for k in _EIG_KEYS if k in audit), None)
-    tol = audit.get("psd_tol")
+    kkt_tol = audit.get("psd_tol")
     scope = audit.get("psd_scope")
     word = {True: "INDEFINITE", False: "positive semi-definite", None: "not stated"}[ind]
     text = f"PSD verdict: {word}"
     if eig is not None:
         text += f"; smallest eigenvalue {_fmt_num(eig)}"
-        if tol is not None:
-            text += f" (tolerance −{_fmt_num(tol)})"
+        if kkt_tol is not None:
+            text += f" (tolerance −{_fmt_num(kkt_tol)})"
     if scope:
         text += f"; checked on {str(scope).replace('_', ' ')}"
     return text + "."

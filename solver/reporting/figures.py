@@ -209,9 +209,9 @@ def _draw_violation(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
     x = np.asarray(d["x"], dtype=np.float64)
     pos = y > 0
     ax.plot(x[pos], y[pos], color=_c("tide"), linewidth=0.8, label="maximal violation")
-    ax.axhline(d["tol"], color=_c("rust"), linestyle=(0, (5, 3)), linewidth=1.0,
-               label=f"tol = {d['tol']:.3g}")
-    fy = d["final_y"] if d["final_y"] > 0 else (y[pos].min() if pos.any() else d["tol"]) * 0.5
+    ax.axhline(d["kkt_tol"], color=_c("rust"), linestyle=(0, (5, 3)), linewidth=1.0,
+               label=f"kkt_tol = {d['kkt_tol']:.3g}")
+    fy = d["final_y"] if d["final_y"] > 0 else (y[pos].min() if pos.any() else d["kkt_tol"]) * 0.5
     ax.plot([d["final_x"]], [fy], marker="o", markersize=6, markerfacecolor="none",
             markeredgecolor=_c("ink"), linestyle="none", label="final certificate")
     _log_y(ax)

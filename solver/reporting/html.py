@@ -144,8 +144,8 @@ def _banner(c: ReportContent) -> str:
             f'<div class="state {cls}"><p class="stateword">{esc(r.label)} · {esc(r.solver)} · '
             f"<strong>{word}</strong></p><p>status <code>{esc(t.get('status'))}</code> after "
             f"{_num_html(t.get('iterations'))} iterations — {esc(t.get('message'))}</p>"
-            f"<p>maximal violation {_num_html(t.get('max_violation'))} against tol "
-            f"{_num_html(t.get('tol'))}; duality gap {_num_html(t.get('duality_gap'))} "
+            f"<p>maximal violation {_num_html(t.get('max_violation'))} against kkt_tol "
+            f"{_num_html(t.get('kkt_tol'))}; duality gap {_num_html(t.get('duality_gap'))} "
             f"(relative {_num_html(t.get('relative_gap'))})</p></div>")
     if c.comparison:
         v = c.comparison["verdict"]
@@ -192,8 +192,9 @@ def _termination_rows(t: Mapping[str, Any]) -> list[tuple[str, Any]]:
     rows = [
         ("status", t.get("status")), ("message", t.get("message")),
         ("iterations", t.get("iterations")), ("solve time (s)", t.get("seconds")),
-        ("tolerance (tol)", t.get("tol")), ("final maximal violation", t.get("max_violation")),
-        ("violation within tol", meets),
+        ("tolerance (kkt_tol)", t.get("kkt_tol")), ("final maximal violation",
+                                                    t.get("max_violation")),
+        ("violation within kkt_tol", meets),
         ("m(α) (max over I_up)", t.get("m_up")), ("M(α) (min over I_low)", t.get("M_low")),
         ("dual objective (minimised)", t.get("dual_objective")),
         ("primal objective", t.get("primal_objective")),

@@ -128,7 +128,7 @@ def _cover(c: ReportContent) -> list[PdfPage]:
         L.para(f"{r.label} ({r.solver}, run id {r.run_id or 'not stored'}): "
                f"{'CONVERGED' if ok else 'NOT CONVERGED'} — status {t.get('status')} after "
                f"{fmt(t.get('iterations'))} iterations.", "p" if ok else "ps")
-        L.kv([("final maximal violation", t.get("max_violation")), ("tol", t.get("tol")),
+        L.kv([("final maximal violation", t.get("max_violation")), ("kkt_tol", t.get("kkt_tol")),
               ("dual objective", t.get("dual_objective")),
               ("primal objective", t.get("primal_objective")),
               ("duality gap", t.get("duality_gap")), ("relative gap", t.get("relative_gap")),

@@ -306,6 +306,37 @@ def _table_dtypes(spec: dict[str, str], fname: str, path: str) -> dict[str, str]
     return out
 
 
+#: version-1 option names → version-2 names (the QP solver's ``tol`` was cvxopt's own)
+_V1_OPTIONS = {"max_iter": "iteration_limit", "cache_mb": "row_cache_mb", "tau": "curvature_floor"}
+
+
+def upgrade_v1(manifest: dict[str, Any]) -> dict[str, Any]:
+    """A version-1 manifest with its option and certificate names in version-2 form.
+
+    Only names change: ``tol`` → ``kkt_tol`` (SMO) or ``interior_point_tol`` (QP, where it
+    was cvxopt's stopping tolerance), ``max_iter`` → ``iteration_limit``, ``cache_mb`` →
+    ``row_cache_mb``, ``tau`` → ``curvature_floor``; the certificate's ``tol`` → ``kkt_tol``.
+    The stored bytes (and so every digest) are untouched: this is a view for decoding.
+    """
+    m = dict(manifest)
+    s = m.get("solver")
+    if isinstance(s, dict) and isinstance(s.get("options"), dict):
+        s = dict(s)
+        qp = s.get("name") == "qp"
+        opts = {}
+        for key, value in s["options"].items():
+            if key == "tol":
+                key = "interior_point_tol" if qp else "kkt_tol"
+            opts[_V1_OPTIONS.get(key, key)] = value
+        s["options"] = opts
+        m["solver"] = s
+    c = m.get("certificate")
+    if isinstance(c, dict) and "tol" in c and "kkt_tol" not in c:
+        c = {("kkt_tol" if k == "tol" else k): v for k, v in c.items()}
+        m["certificate"] = c
+    return m
+
+
 def decode_record(manifest: Any, blobs: Mapping[str, bytes]) -> RunRecord:
     """Rebuild a :class:`RunRecord` from a parsed manifest and the bytes of its files."""
     m = manifest
@@ -314,9 +345,12 @@ def decode_record(manifest: Any, blobs: Mapping[str, bytes]) -> RunRecord:
     if get(m, "format", str, M, "") != FORMAT_NAME:
         raise IntegrityError(f"{M}: field format must be {FORMAT_NAME!r}")
     ver = get(m, "format_version", int, M, "")
-    if ver != FORMAT_VERSION:
+    if ver not in fmt.READABLE_VERSIONS:
         raise IntegrityError(
-            f"{M}: format_version {ver} is not supported (this is {FORMAT_VERSION})")
+            f"{M}: format_version {ver} is not supported (this reads "
+            f"{', '.join(map(str, fmt.READABLE_VERSIONS))})")
+    if ver == 1:
+        m = upgrade_v1(m)
     run_id = fmt.check_run_id_integrity(get(m, "run_id", str, M, ""), M)
     created = get(m, "created", str, M, "")
     parent = get(m, "parent", dict, M, "", optional=True)
@@ -371,7 +405,7 @@ def decode_record(manifest: Any, blobs: Mapping[str, bytes]) -> RunRecord:
     c = get(m, "certificate", dict, M, "")
     try:
         certificate = Certificate(
-            tol=number(c, "tol", M, "certificate"),
+            kkt_tol=number(c, "kkt_tol", M, "certificate"),
             max_violation=number(c, "max_violation", M, "certificate"),
             m_up=number(c, "m_up", M, "certificate"), M_low=number(c, "M_low", M, "certificate"),
             bias=number(c, "bias", M, "certificate"),

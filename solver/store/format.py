@@ -44,7 +44,10 @@ __all__ = [
 ]
 
 FORMAT_NAME = "kktrace-run"
-FORMAT_VERSION = 1
+FORMAT_VERSION = 2
+#: versions this code reads; version 1 used the option names ``tol``, ``max_iter``,
+#: ``cache_mb``, ``tau`` and the certificate field ``tol`` (renamed in version 2).
+READABLE_VERSIONS = (1, 2)
 
 #: ``YYYYMMDDTHHMMSSffffffZ-`` + 12 lower-case hex digits (48 random bits).
 RUN_ID_PATTERN = re.compile(r"[0-9]{8}T[0-9]{12}Z-[0-9a-f]{12}")

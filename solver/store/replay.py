@@ -138,7 +138,7 @@ def replay(record: RunRecord, iteration: int, *, base: int | None = None) -> Rep
         applied = hi - lo
     problem = record.problem
     cert0 = record.result.certificate
-    cert = certify(problem, alpha, tol=cert0.tol, bound_tol=cert0.bound_tol)
+    cert = certify(problem, alpha, kkt_tol=cert0.kkt_tol, bound_tol=cert0.bound_tol)
     model = None
     if problem.labels is not None:
         partial = replace(record.result, alpha=alpha, bias=cert.bias, certificate=cert,

@@ -29,7 +29,7 @@ __all__ = ["Reproduction", "reproduce", "DEFAULT_ALPHA_RTOL"]
 #: Default α tolerance, relative to the largest upper bound (α is in units of C).
 DEFAULT_ALPHA_RTOL = 1e-6
 #: Recorded figures that are results, not options (never passed back to a solver).
-_NOT_OPTIONS = {"warm_start", "tau"}
+_NOT_OPTIONS = {"warm_start", "curvature_floor"}
 
 
 @dataclass(frozen=True, eq=False)
@@ -192,7 +192,7 @@ def reproduce(
     result = solve(problem, **opts)
 
     a_new, a_old = np.asarray(result.alpha), np.asarray(res0.alpha)
-    tol = (DEFAULT_ALPHA_RTOL * float(np.max(stored.upper)) if tolerance is None
+    kkt_tol = (DEFAULT_ALPHA_RTOL * float(np.max(stored.upper)) if tolerance is None
            else float(tolerance))
     if a_new.shape != a_old.shape:
         diff = float("inf")
@@ -200,7 +200,7 @@ def reproduce(
         diff = float(np.max(np.abs(a_new - a_old))) if a_new.size else 0.0
     if _same_bits(a_new, a_old):
         agreement = "bitwise"
-    elif diff <= tol:
+    elif diff <= kkt_tol:
         agreement = "within_tolerance"
     else:
         agreement = "different"
@@ -210,7 +210,7 @@ def reproduce(
                                                             "agreement": agreement,
                                                             "max_abs_difference": diff}})
     return Reproduction(
-        run_id=record.run_id, agreement=agreement, max_abs_difference=diff, tolerance=tol,
+        run_id=record.run_id, agreement=agreement, max_abs_difference=diff, tolerance=kkt_tol,
         problem_identical=identical, iterations=(int(res0.iterations), int(result.iterations)),
         status=(res0.status.label, result.status.label), fingerprint=fp, options=opts,
         dropped_options=tuple(dropped), result=result, record=new_record, notes=notes,

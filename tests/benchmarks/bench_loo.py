@@ -14,7 +14,7 @@ the speed-ups (target ≥ 5× against brute force), and whether the answers agre
 Timings are wall-clock on a shared machine: the two methods run in interleaved pairs
 (``--repeat``) and the median pair ratio is reported.
 
-Run: ``python tests/benchmarks/bench_loo.py [--C 1.0] [--tol 1e-3] [--repeat 3] [--skip-plain]``
+Run: ``python tests/benchmarks/bench_loo.py [--C 1.0] [--kkt-tol 1e-3] [--repeat 3] [--skip-plain]``
 """
 
 from __future__ import annotations
@@ -38,7 +38,7 @@ from solver.smo import solve_smo
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--C", type=float, default=1.0)
-    ap.add_argument("--tol", type=float, default=1e-3)
+    ap.add_argument("--kkt-tol", type=float, default=1e-3)
     ap.add_argument("--skip-plain", action="store_true", help="skip the plain-loop baseline")
     ap.add_argument("--repeat", type=int, default=3,
                     help="interleaved runs per method; the median pair ratio is reported")
@@ -47,14 +47,14 @@ def main() -> None:
     X, t = load_breast_cancer(return_X_y=True)
     Z = Standardiser.fit(X).transform(X)
     prob = binary_classification(Z, t, kernel=RBFKernel(), C=args.C)
-    solve_smo(prob, tol=args.tol, trace="off")  # compile / load the numba cache
+    solve_smo(prob, kkt_tol=args.kkt_tol, trace="off")  # compile / load the numba cache
     small = binary_classification(Z[:80], t[:80], kernel=RBFKernel(), C=args.C)
-    leave_one_out(small, solve_smo(small, tol=args.tol, trace="off"))  # same for the path
+    leave_one_out(small, solve_smo(small, kkt_tol=args.kkt_tol, trace="off"))  # same for the path
     t0 = time.perf_counter()
-    res = solve_smo(prob, tol=args.tol, trace="off")
+    res = solve_smo(prob, kkt_tol=args.kkt_tol, trace="off")
     full = time.perf_counter() - t0
     print(f"breast cancer: n = {prob.n}, d = {prob.X.shape[1]}, gamma = {prob.kernel.gamma:.4g}"
-          f" (median heuristic), C = {args.C:g}, tol = {args.tol:g}")
+          f" (median heuristic), C = {args.C:g}, kkt_tol = {args.kkt_tol:g}")
     print(f"full fit: {res.status.label}, {res.iterations} iterations, {full * 1e3:.1f} ms, "
           f"{res.certificate.n_support} support vectors "
           f"({res.certificate.n_free} free, {res.certificate.n_bounded} bounded)")
@@ -92,7 +92,7 @@ def main() -> None:
             warnings.simplefilter("ignore", ConvergenceWarning)
             for i in range(prob.n):
                 sub, _ = drop_row(prob, i)
-                r = solve_smo(sub, tol=args.tol, trace="off")
+                r = solve_smo(sub, kkt_tol=args.kkt_tol, trace="off")
                 f_i = prob.kernel.block(prob.X[i], sub.X)[0] @ (r.alpha * sub.y) + r.bias
                 plain_wrong[i] = (f_i > 0) != (prob.y[i] > 0)
         plain = time.perf_counter() - t0

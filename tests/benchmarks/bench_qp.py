@@ -43,7 +43,7 @@ def main(argv: list[str] | None = None) -> int:
     ap.add_argument("--seed", type=int, default=0)
     args = ap.parse_args(argv)
     print(f"python {platform.python_version()}, numpy {np.__version__}, "
-          f"{os.cpu_count()} cpus; RBF kernel (median-heuristic gamma), C = 1, tol = default")
+          f"{os.cpu_count()} cpus; RBF kernel (median-heuristic gamma), C = 1, kkt_tol = default")
     head = (f"{'n':>6} {'structured s':>13} {'generic s':>10} {'ratio':>6} {'iters s/g':>10} "
             f"{'|Δ objective|':>14} {'status s/g':>22}")
     print(head)

@@ -42,12 +42,12 @@ def main(argv: list[str] | None = None) -> int:
     X = g.normal(size=(args.n, 5))
     y = np.where(X[:, 0] + 1.5 * g.normal(size=args.n) > 0, "yes", "no")
     std = Standardiser.fit(X)
-    # heavily overlapping classes, a huge C and a tiny tol: SMO runs into its iteration limit
+    # heavily overlapping classes, a huge C and a tiny kkt_tol: SMO runs into its iteration limit
     problem = binary_classification(std.transform(X), y, kernel=RBFKernel(gamma=0.5), C=1e5)
     t0 = time.perf_counter()
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        result = solve_smo(problem, tol=1e-12, max_iter=args.iterations)
+        result = solve_smo(problem, kkt_tol=1e-12, iteration_limit=args.iterations)
     t_solve = time.perf_counter() - t0
     print(f"solve: {result.iterations} iterations, status {result.status.label}, "
           f"{result.trace.n_rows} trace rows, {t_solve:.2f} s")

@@ -2,7 +2,7 @@
 
 Not a unit test: it prints figures.  Problem (issue 3): scikit-learn's
 ``make_classification(n_samples=n, n_features=20, n_informative=10, flip_y=0.05,
-random_state=0)``, standardised, RBF kernel with gamma = 0.05, tol = 1e-3, C ∈ {1, 100},
+random_state=0)``, standardised, RBF kernel with gamma = 0.05, kkt_tol = 1e-3, C ∈ {1, 100},
 n ∈ {2000, 5000, 10000, 20000}.  SVC is given ``cache_size=2000`` (MB) so that its kernel
 cache can hold most of the columns it needs; both solvers use shrinking.
 
@@ -107,7 +107,7 @@ def child(args: argparse.Namespace) -> None:
         out["load_seconds"] = time.perf_counter() - t0
         prob = binary_classification(X, lab, kernel=RBFKernel(gamma=GAMMA), C=args.C)
         base_mb = _peak_mb()
-        options = dict(tol=TOL, trace=args.trace, selection=args.selection)
+        options = dict(kkt_tol=TOL, trace=args.trace, selection=args.selection)
         if args.time_limit:
             options["time_limit"] = args.time_limit
         if args.kernel_memory_mb:
@@ -212,7 +212,7 @@ def main(argv: list[str] | None = None) -> None:
     import numba
     import sklearn
 
-    print(f"kktrace SMO benchmark: RBF gamma={GAMMA}, tol={TOL}; "
+    print(f"kktrace SMO benchmark: RBF gamma={GAMMA}, kkt_tol={TOL}; "
           f"scikit-learn {sklearn.__version__} "
           f"SVC with cache_size={SVC_CACHE_MB} MB; numba {numba.__version__}; "
           f"{os.cpu_count()} CPUs; load average {os.getloadavg()[0]:.1f} at start")

@@ -50,9 +50,10 @@ def main() -> None:
     problem, std = hard_problem(args.n)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore", ConvergenceWarning)
-        solve_smo(problem, tol=1e-3, max_iter=10)  # compile the numba loop outside the timing
+        solve_smo(problem, kkt_tol=1e-3,
+                  iteration_limit=10)  # compile the numba loop outside the timing
         t0 = time.perf_counter()
-        result = solve_smo(problem, tol=1e-12, max_iter=args.iterations, trace="full")
+        result = solve_smo(problem, kkt_tol=1e-12, iteration_limit=args.iterations, trace="full")
     solve_s = time.perf_counter() - t0
     rows = result.trace.n_rows
     print(f"problem: n={problem.n}, d={problem.X.shape[1]}, rbf gamma=0.02, C=1e4, 30% label noise")

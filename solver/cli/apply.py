@@ -1,0 +1,68 @@
+"""``kktrace apply``: decision values and labels of a stored model for new data."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from pathlib import Path
+from typing import Any
+
+from ._shared import (
+    EXIT_OK,
+    add_command,
+    emit_json,
+)
+
+_APPLY_EXAMPLES = """examples:
+  kktrace apply RUN_ID new_batches.csv
+  kktrace apply RUN_ID new_batches.csv --out outputs.csv --json"""
+
+
+def cmd_apply(args: argparse.Namespace) -> int:
+    import solver
+
+    sc = solver.apply(args.run, args.data, store=args.store, label=args.label)
+    if args.out:
+        _write_outputs(sc, Path(args.out))
+    if args.json:
+        emit_json(sc.to_dict(), sys.stdout)
+        return EXIT_OK
+    n = len(sc.values)
+    print(f"applied run {args.run} to {n} rows of {sc.source or 'the data'} ")
+    if sc.confusion is not None:
+        c = sc.confusion
+        print(f"  accuracy {c['accuracy']:.3f}, balanced accuracy {c['balanced_accuracy']:.3f}")
+        neg, pos = c["labels"]
+        m = c["matrix"]
+        print(f"  true {neg}: predicted {neg} {m[0][0]}, predicted {pos} {m[0][1]}")
+        print(f"  true {pos}: predicted {neg} {m[1][0]}, predicted {pos} {m[1][1]}")
+    if args.out:
+        print(f"  decision values and labels written to {args.out}")
+    else:
+        print("row  decision_value  label")
+        for i, (v, lab) in enumerate(zip(sc.values.tolist(), sc.labels.tolist(), strict=True)):
+            print(f"{i:<4d} {v:+.6f}       {lab}")
+    return EXIT_OK
+
+
+def _write_outputs(sc: Any, path: Path) -> None:
+    import csv
+
+    with path.open("w", newline="", encoding="utf-8") as fh:
+        w = csv.writer(fh, lineterminator="\n")
+        w.writerow(["row", "decision_value", "label"])
+        for i, (v, lab) in enumerate(zip(sc.values.tolist(), sc.labels.tolist(), strict=True)):
+            w.writerow([i, repr(float(v)), lab])
+
+
+
+def register(sub: Any) -> None:
+    """Add this module's commands to the sub-command table."""
+    p = add_command(sub, "apply", "decision values and labels for new data", _APPLY_EXAMPLES)
+    p.add_argument("run", metavar="RUN_ID")
+    p.add_argument("data", metavar="DATAFILE")
+    p.add_argument("--label", metavar="COLUMN", default=None,
+                   help="label column, if the data have one (default: the run's, if present)")
+    p.add_argument("--out", metavar="FILE", default=None, help="write row, value, label as CSV")
+    p.set_defaults(func=cmd_apply)
+

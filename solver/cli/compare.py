@@ -1,0 +1,66 @@
+"""``kktrace compare``: the solver-agreement verdict for two runs."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from typing import Any
+
+from ._shared import (
+    EXIT_OK,
+    add_command,
+    emit_json,
+    num,
+    print_rows,
+    to_dict,
+)
+
+_COMPARE_EXAMPLES = """examples:
+  kktrace compare SMO_RUN_ID QP_RUN_ID
+  kktrace compare RUN_A RUN_B --holdout new_batches.csv --json"""
+
+
+def cmd_compare(args: argparse.Namespace) -> int:
+    import solver
+
+    comp = solver.compare(args.run_a, args.run_b, store=args.store, holdout=args.holdout,
+                          allow_mismatch=args.allow_mismatch)
+    d = to_dict(comp)
+    if args.json:
+        emit_json(d, sys.stdout)
+        return EXIT_OK
+    print(f"run A {args.run_a}\nrun B {args.run_b}")
+    print(f"verdict: {d.get('verdict')}")
+    if d.get("verdict_text"):
+        print(f"  {d['verdict_text']}")
+    measures = d.get("measures") or {}
+    if measures:
+        rows = [["measure", "value", "strict", "loose", "result"]]
+        for name, m in measures.items():
+            rule = m.get("rule", "")
+            result = ("pass" if m.get("passed") else
+                      "within loose" if m.get("passed_loose") else "FAIL")
+            rows.append([name, num(m.get("value"), ".4g"), f"{rule} {num(m.get('tolerance'))}",
+                         f"{rule} {num(m.get('loose_tolerance'))}", result])
+        print_rows(rows)
+    for run in d.get("runs") or []:
+        print("  " + ", ".join(f"{k} {num(v, '.4g') if isinstance(v, float) else v}"
+                               for k, v in run.items()))
+    for note in list(d.get("mismatches") or []) + list(d.get("notes") or []):
+        print(f"note: {note}")
+    return EXIT_OK
+
+
+
+def register(sub: Any) -> None:
+    """Add this module's commands to the sub-command table."""
+    p = add_command(sub, "compare", "solver-agreement verdict for two runs of the same problem",
+            _COMPARE_EXAMPLES)
+    p.add_argument("run_a", metavar="RUN_A")
+    p.add_argument("run_b", metavar="RUN_B")
+    p.add_argument("--holdout", metavar="FILE", default=None,
+                   help="also compare decision values on this data")
+    p.add_argument("--allow-mismatch", action="store_true",
+                   help="compare runs of different problems (the verdict says so)")
+    p.set_defaults(func=cmd_compare)
+

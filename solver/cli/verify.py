@@ -1,0 +1,67 @@
+"""``kktrace verify``: integrity and reproduction of a stored run."""
+
+from __future__ import annotations
+
+import argparse
+import sys
+from typing import Any
+
+from ._shared import (
+    EXIT_ERROR,
+    EXIT_OK,
+    add_command,
+    emit_json,
+    num,
+    to_dict,
+)
+
+_VERIFY_EXAMPLES = """examples:
+  kktrace verify RUN_ID
+  kktrace verify RUN_ID --rerun batches.csv"""
+
+
+def cmd_verify(args: argparse.Namespace) -> int:
+    import solver
+
+    res = solver.verify(args.run, store=args.store, rerun=args.rerun, keep_rerun=args.keep)
+    integ = to_dict(res.integrity)
+    repro = None if res.reproduction is None else to_dict(res.reproduction)
+    if args.json:
+        emit_json({"run_id": args.run, "ok": res.ok, "integrity": integ,
+                    "reproduction": repro, "rerun_run_id": res.rerun_run_id}, sys.stdout)
+    else:
+        if res.integrity.ok:
+            chain = integ.get("chain") or [args.run]
+            print(f"run {args.run}: files intact ({integ.get('files_checked', '?')} digests "
+                  f"match; chain of {len(chain)} run(s) checked)")
+        else:
+            print(f"run {args.run}: INTEGRITY CHECK FAILED")
+            for p in integ.get("problems") or ():
+                print(f"  - {p}")
+        if repro is not None:
+            print(f"re-run: alpha {repro.get('agreement')} (max |difference| "
+                  f"{num(repro.get('max_abs_difference'), '.3g')}, tolerance "
+                  f"{num(repro.get('tolerance'), '.3g')}); iterations "
+                  f"{repro.get('iterations')}, status {repro.get('status')}")
+            for note in repro.get("notes") or ():
+                print(f"  note: {note}")
+        if res.rerun_run_id:
+            print(f"re-run stored as run {res.rerun_run_id}")
+    if not res.ok:
+        print(f"kktrace: error: run {args.run} failed verification", file=sys.stderr)
+        return EXIT_ERROR
+    return EXIT_OK
+
+
+
+def register(sub: Any) -> None:
+    """Add this module's commands to the sub-command table."""
+    p = add_command(sub, "verify", "check a run's files and, with --rerun, reproduce it",
+                    _VERIFY_EXAMPLES)
+    p.add_argument("run", metavar="RUN_ID")
+    p.add_argument("--rerun", metavar="DATAFILE", default=None,
+                   help="re-run from this training data (must match the fingerprint)")
+    p.add_argument("--keep", action="store_true",
+                   help="store the re-run as a new run derived from RUN_ID")
+    p.set_defaults(func=cmd_verify)
+
