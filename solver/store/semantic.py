@@ -162,7 +162,7 @@ def manifest_field_problems(m: Mapping[str, Any]) -> list[str]:
     if t is not None:
         enum(t.get("level"), _TRACE_LEVELS, "trace.level")
     for where, v, lo in (("solver.seconds", s.get("seconds"), 0.0),
-                         ("certificate.tol", c.get("tol"), 0.0),
+                         ("certificate.kkt_tol", c.get("kkt_tol", c.get("tol")), 0.0),
                          ("problem.info.C", info.get("C"), 0.0)):
         f = _num(v)
         if f is None or not math.isfinite(f) or f < lo or (where != "solver.seconds" and f == 0):
@@ -226,7 +226,8 @@ def semantic_problems(
     except Exception as exc:  # a kernel that cannot be evaluated (callable): say so
         ck.problems.append(f"solution.npz: the certificate cannot be recomputed ({exc})")
         return ck.problems
-    cert = certify(problem, alpha, tol=stored.tol, gradient=G, bound_tol=stored.bound_tol)
+    cert = certify(problem, alpha, kkt_tol=stored.kkt_tol, gradient=G,
+                   bound_tol=stored.bound_tol)
     gtol = GRAD_RTOL * (1.0 + float(np.max(np.abs(G))) if n else 1.0)
     scale = 1.0 + abs(cert.dual_objective) + (abs(cert.primal_objective)
                                               if math.isfinite(cert.primal_objective) else 0.0)
@@ -263,9 +264,9 @@ def semantic_problems(
     # SMO stops on the maximal violation itself; the QP challenger stops on cvxopt's own
     # criteria, so its certificate may miss tol while it is "converged"
     if (result.solver == "smo" and status == Status.CONVERGED
-            and not cert.max_violation <= cert.tol + gtol):
+            and not cert.max_violation <= cert.kkt_tol + gtol):
         ck.problems.append(f"{_M}: solver.status says converged, but the recomputed maximal "
-                           f"violation {cert.max_violation!r} exceeds tol {cert.tol!r}")
+                           f"violation {cert.max_violation!r} exceeds kkt_tol {cert.kkt_tol!r}")
     ms = m.get("solver") if isinstance(m.get("solver"), dict) else {}
     # both solvers report the certificate's bias (solver/smo.py, solver/qp.py)
     ck.close(f"{_M}: solver.bias", ms.get("bias"), cert.bias, gtol)
