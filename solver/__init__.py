@@ -38,6 +38,11 @@ _EXPORTS: dict[str, str] = {
     "report": "api",
     "export_explanation": "api",
     "open_store": "api",
+    # model exchange (solver.exchange)
+    "export_onnx": "exchange.workflow",
+    "ExportOutcome": "exchange.workflow",
+    "challenge": "exchange.workflow",
+    "ChallengeOutcome": "exchange.workflow",
     # demo
     "run_demo": "demo",
     "DemoOutcome": "demo",
