@@ -38,6 +38,10 @@ _EXPORTS: dict[str, str] = {
     "report": "api",
     "export_explanation": "api",
     "open_store": "api",
+    "check_output_path": "api",
+    "store_listing": "api",
+    "clean_store": "api",
+    "new_signing_keys": "api",
     # model exchange (solver.exchange)
     "export_onnx": "exchange.workflow",
     "ExportOutcome": "exchange.workflow",
@@ -75,6 +79,7 @@ _EXPORTS: dict[str, str] = {
     "ProblemMismatchError": "errors",
     "ConvergenceWarning": "errors",
     "DataWarning": "errors",
+    "StoreWarning": "errors",
 }
 
 __all__ = ["__version__", *_EXPORTS]
