@@ -42,6 +42,11 @@ _EXPORTS: dict[str, str] = {
     "store_listing": "api",
     "clean_store": "api",
     "new_signing_keys": "api",
+    # model exchange (solver.exchange)
+    "export_onnx": "exchange.workflow",
+    "ExportOutcome": "exchange.workflow",
+    "challenge": "exchange.workflow",
+    "ChallengeOutcome": "exchange.workflow",
     # demo
     "run_demo": "demo",
     "DemoOutcome": "demo",
