@@ -137,12 +137,25 @@ def decode_parent(manifest: Mapping[str, Any], blobs: Mapping[str, bytes]) -> Pa
     )
 
 
-def verify_parent(store: RunStore, run_id: str) -> Verification:
-    """Check a parent folder and every member it names (see the module docstring)."""
-    problems, manifest, digest, checked = check_folder(store.root / run_id, run_id)
-    recorded = store._catalog.digest(run_id)
+def verify_parent(store: RunStore, run_id: str, *, trusted: Any = None) -> Verification:
+    """Check a parent folder and every member it names (see the module docstring).
+
+    The parent folder gets the folder checks, the catalog and audit-log digest checks and
+    the signature check of a run; each member gets :meth:`RunStore.verify`."""
+    from .catalog import CATALOG_FILE, CatalogUnavailable
+
+    d = store.root / run_id
+    problems, manifest, digest, checked = check_folder(d, run_id)
+    notes: list[str] = []
+    try:
+        recorded = store._catalog.read_digest(run_id)
+    except CatalogUnavailable as exc:
+        recorded = None
+        notes.append(f"catalog not consulted ({CATALOG_FILE} {exc})")
     if recorded and digest and recorded != digest:
         problems.append(f"{MANIFEST}: digest differs from the one the catalog recorded at save")
+    signer, is_trusted = store._signature(d, digest, trusted, problems, notes)
+    store._audit_checks(run_id, manifest, digest, problems)
     chain = [run_id]
     members = manifest.get("members") if isinstance(manifest, dict) else None
     if not isinstance(members, list) or not members:
@@ -170,9 +183,10 @@ def verify_parent(store: RunStore, run_id: str) -> Verification:
         if mdigest != m["manifest_sha256"]:
             problems.append(f"{who}: manifest.json differs from the digest recorded by the "
                             f"parent {run_id}")
-        v = store.verify(mid)
+        v = store.verify(mid, trusted=trusted)
         problems += [f"{who}: {p}" for p in v.problems]
         checked += v.files_checked
     return Verification(ok=not problems, run_id=run_id, problems=problems,
                         files_checked=checked, parent_id=None, parent_chain_ok=not problems,
-                        chain=chain, manifest_sha256=digest)
+                        chain=chain, manifest_sha256=digest, signer=signer,
+                        trusted=is_trusted, notes=notes)
