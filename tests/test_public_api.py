@@ -35,7 +35,6 @@ def test_all_is_sorted_into_known_names_without_duplicates():
 
 #: commands whose public function has another name
 _COMMAND_FUNCTIONS = {"demo": "run_demo", "export": "export_onnx", "keys": "new_signing_keys",
-                      "clean": "clean_store", "keys": "new_signing_keys",
                       "clean": "clean_store"}
 
 
