@@ -22,7 +22,11 @@ _TRAIN_EXAMPLES = """examples:
   kktrace train batches.csv --label lab_decision --kernel rbf --C 10 --solver both \\
       --holdout batches_holdout.csv
   kktrace train scores.parquet --label outcome --kernel poly --degree 2 --offset 1 --json
-  kktrace train X.npz --label y --kernel linear --kkt-tol 1e-5 --store audit-traces"""
+  kktrace train X.npz --label y --kernel linear --kkt-tol 1e-5 --store audit-traces
+  kktrace train batches.csv --task regression --target coating_thickness_um --epsilon 0.5 \
+      --C 10 --solver both
+  kktrace train released.csv --task one-class --nu 0.05 --holdout new_batches.csv \
+      --outlier-column known_unusual"""
 
 _DEMO_EXAMPLES = """examples:
   kktrace demo
@@ -51,6 +55,30 @@ def _run_block(s: Mapping[str, Any], role: str) -> list[str]:
         f"  support       {s['n_support']} of {s['n_rows']} points "
         f"({s['n_free']} on the margin, {s['n_bounded']} at the bound), bias {num(s['bias'])}",
     ]
+    if s.get("task") == "regression":
+        lines.append(f"  task          ε-regression, ε = {num(s.get('epsilon'))}; training RMSE "
+                     f"{num(s.get('training_rmse'), '.4g')}, inside or on the tube "
+                     f"{num(s.get('training_tube_coverage'), '.3f')}")
+    elif s.get("task") == "one-class":
+        nuc = s.get("nu_property") or {}
+        lines.append(f"  task          one-class, ν = {num(s.get('nu'))}; outlier share "
+                     f"{num(nuc.get('outlier_share'), '.4f')} <= ν <= support share "
+                     f"{num(nuc.get('support_share'), '.4f')}: "
+                     + ("holds" if nuc.get("holds") else "DOES NOT HOLD"))
+    hold = s.get("holdout") or {}
+    if "rmse" in hold:
+        r2 = hold.get("r2")
+        lines.append(f"  held-out      RMSE {num(hold['rmse'], '.4g')}, "
+                     f"MAE {num(hold['mae'], '.4g')}, "
+                     f"R² {num(r2, '.4f') if r2 is not None else 'n/a'}, tube coverage "
+                     f"{num(hold['tube_coverage'], '.3f')}")
+    elif "share_flagged" in hold:
+        text = f"  held-out      flagged {hold['n_flagged']} of {hold['n']}"
+        conf = hold.get("confusion")
+        if conf:
+            text += (f"; known outliers flagged {conf['flagged_known']}, missed "
+                     f"{conf['missed']}, false alarms {conf['flagged_unknown']}")
+        lines.append(text)
     if "holdout_accuracy" in s:
         lines.append(
             f"  held-out      accuracy {num(s['holdout_accuracy'], '.3f')}, balanced accuracy "
@@ -71,7 +99,8 @@ def cmd_train(args: argparse.Namespace) -> int:
         iteration_limit=args.iteration_limit, solver=args.solver, standardise=not
         args.no_standardise,
         holdout=args.holdout, store=args.store, trace=args.trace, quiet=True,
-        progress=progress(args),
+        progress=progress(args), task=args.task, target=args.target, epsilon=args.epsilon,
+        nu=args.nu, outlier_column=args.outlier_column,
     )
     if args.json:
         emit_json(outcome.summary(), sys.stdout)
@@ -128,7 +157,21 @@ def register(sub: Any) -> None:
     """Add ``train`` and ``demo`` to the sub-command table."""
     p = add_command(sub, "train", "train on a data file and store the run(s)", _TRAIN_EXAMPLES)
     p.add_argument("data", metavar="DATAFILE", help="CSV (header row), Parquet, .npy or .npz")
-    p.add_argument("--label", metavar="COLUMN", required=True, help="label column (two values)")
+    p.add_argument("--task", choices=("classification", "regression", "one-class"),
+                   default="classification",
+                   help="classification (default; --label), regression (--target, --epsilon) "
+                   "or one-class (--nu)")
+    p.add_argument("--label", metavar="COLUMN", default=None,
+                   help="label column (two values; classification)")
+    p.add_argument("--target", metavar="COLUMN", default=None,
+                   help="numeric target column (regression)")
+    p.add_argument("--epsilon", type=float_arg, default=0.1,
+                   help="half-width of the ε-tube in target units, >= 0 (regression; default 0.1)")
+    p.add_argument("--nu", type=float_arg, default=0.5,
+                   help="ν in (0, 1]: bound on the outlier share (one-class; default 0.5)")
+    p.add_argument("--outlier-column", metavar="COLUMN", default=None,
+                   help="column of known outliers (1/0, yes/no): set aside in training, used "
+                   "for the held-out confusion (one-class)")
     p.add_argument("--kernel", choices=("linear", "poly", "rbf", "sigmoid"), default="rbf",
                    help="kernel (default rbf)")
     p.add_argument("--gamma", type=float_arg, default=None,

@@ -223,6 +223,14 @@ class KindLeaveOneOut:
         """True when every refit converged."""
         return all(s in (Status.CONVERGED.label, "not_needed") for s in self.statuses)
 
+    def summary(self) -> dict[str, Any]:
+        """Plain data without the per-row lists (for printing)."""
+        return {"kind": self.kind, "n_refits": int(self.refitted.sum()),
+                "all_converged": self.all_converged, "iterations": self.iterations,
+                **dict(self.measures), "bias_from_free": self.bias_from_free,
+                "exactness": "non-support rows need no refit (removing them changes nothing); "
+                             "support-vector rows refitted"}
+
     def to_dict(self) -> dict[str, Any]:
         """Plain data (the per-row values as lists)."""
         return {"kind": self.kind, "values": self.values.tolist(),
