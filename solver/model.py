@@ -97,9 +97,12 @@ class Model:
 
     def classify(self, X: np.ndarray, *, standardised: bool = False) -> np.ndarray:
         """Label values for rows of ``X``: positive label where f(x) > 0, else negative."""
+        return self.classify_values(self.values(X, standardised=standardised))
+
+    def classify_values(self, f: np.ndarray) -> np.ndarray:
+        """Label values for decision values ``f``: positive where f > 0, else negative."""
         if self.labels is None:
             raise InvalidInputError("this model has no class labels (regression or one-class)")
-        f = self.values(X, standardised=standardised)
         neg, pos = self.labels
         return np.where(f > 0, np.asarray(pos, dtype=object), np.asarray(neg, dtype=object))
 

@@ -20,6 +20,7 @@ import numpy as np
 import pytest
 
 onnx = pytest.importorskip("onnx")
+pytest.importorskip("onnx.reference")
 ort = pytest.importorskip("onnxruntime")
 
 from solver.errors import InvalidInputError  # noqa: E402
@@ -303,3 +304,77 @@ def test_unsupported_operators_are_named(tmp_path):
                 tmp_path / "d.csv")
     with pytest.raises(InvalidInputError, match="unsupported operator.*ai.onnx:Relu"):
         challenge(path, data, label="label", C=1.0, store=tmp_path / "s")
+
+
+# --------------------------------------------------------------------------- other kinds
+
+
+def test_regression_and_one_class_exports_match_both_evaluators():
+    """ε-regression on bundled diabetes (standardised target) and one-class on bundled
+    breast-cancer features: the ``SVMRegressor`` output equals kktrace's f within float32
+    drift (ONNX Operators-ml.md; onnxruntime and onnx.reference)."""
+    from sklearn.datasets import load_diabetes
+
+    from solver.problem import one_class, regression
+
+    X, t = load_diabetes(return_X_y=True)
+    std = Standardiser.fit(X)
+    for name, params in KERNELS[:3]:
+        prob = regression(std.transform(X), (t - t.mean()) / t.std(),
+                          kernel=make_kernel(name, **params), C=1.0, epsilon=0.1)
+        rec = RunRecord(problem=prob, result=solve(prob, method="smo", kkt_tol=1e-4),
+                        data={}, standardiser=std)
+        check = check_onnx(rec, build_onnx(rec))
+        assert check.passed, (name, check.evaluators)
+        for ev in ("onnxruntime", "onnx_reference"):
+            assert check.evaluators[ev]["training"]["max_rel_diff"] <= 1e-4
+    Xb, _ = _bc()
+    std = Standardiser.fit(Xb)
+    for nu in (0.05, 0.5):
+        prob = one_class(std.transform(Xb), kernel=make_kernel("rbf", gamma=0.03), nu=nu)
+        rec = RunRecord(problem=prob, result=solve(prob, method="smo", kkt_tol=1e-4),
+                        data={}, standardiser=std)
+        data = build_onnx(rec)
+        check = check_onnx(rec, data)
+        assert check.passed
+        assert check.evaluators["onnxruntime"]["training"]["label_changes_away_from_boundary"] \
+            == 0
+        names = [n.op_type for n in onnx.load_from_string(data).graph.node]
+        assert names == ["Scaler", "SVMRegressor", "Sign"]
+
+
+def test_one_vs_one_layout_reproduces_every_pair_and_the_vote():
+    """Three wine classes (bundled wine, Forina et al.): pairs solved separately, laid out as
+    the standard's one-vs-one coefficients; onnxruntime's pairwise scores equal each pair's
+    f and its label equals the first-maximum vote (ONNX Operators-ml.md, SVMClassifier)."""
+    from sklearn.datasets import load_wine
+
+    from solver.exchange.export import pairwise_expansion, vote
+    from solver.exchange.onnx_codec import classifier_graph
+
+    X, y = load_wine(return_X_y=True)
+    std = Standardiser.fit(X)
+    Z = std.transform(X)
+    labels = ("barolo", "grignolino", "barbera")
+    kern = make_kernel("rbf", gamma=0.05)
+    pairs, values = [], []
+    for i in range(3):
+        for j in range(i + 1, 3):
+            rows = np.flatnonzero((y == i) | (y == j))
+            lab = np.where(y[rows] == i, labels[i], labels[j])
+            prob = binary_classification(Z[rows], lab, kernel=kern, C=1.0,
+                                         positive_label=labels[i])
+            m = model_from_solution(prob, solve(prob, method="smo", kkt_tol=1e-5), std)
+            pairs.append((i, j, rows[m.support_rows], m.coefficients, m.bias))
+            values.append(m.values(X))
+    F = np.column_stack(values)
+    model = classifier_graph(pairwise_expansion(labels, y, Z, pairs, kern, std.centre,
+                                                std.scale))
+    onnx.checker.check_model(model, full_check=True)
+    for run in (ort.InferenceSession(model.SerializeToString(),
+                                     providers=["CPUExecutionProvider"]).run,
+                onnx.reference.ReferenceEvaluator(model).run):
+        label, scores = run(None, {"features": X.astype(np.float32)})
+        assert np.max(np.abs(scores - F)) <= 1e-4 * max(1.0, np.max(np.abs(F)))
+        clear = np.min(np.abs(F), axis=1) >= NEAR_ZERO
+        assert np.array_equal(np.asarray(label)[clear], np.array(labels)[vote(F, 3)][clear])

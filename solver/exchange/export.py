@@ -25,8 +25,15 @@ import numpy as np
 
 from ..errors import InvalidInputError
 from ..model import model_from_solution
+from ..problem import ONE_CLASS_KIND, REGRESSION_KIND
 from ..run import RunRecord
-from .onnx_codec import INPUT_NAME, PairwiseExpansion, classifier_graph
+from .onnx_codec import (
+    INPUT_NAME,
+    KernelExpansion,
+    PairwiseExpansion,
+    classifier_graph,
+    regressor_graph,
+)
 
 __all__ = ["ExportCheck", "ExportOutcome", "EXPORT_MAPPINGS", "build_onnx", "check_onnx",
            "export_run", "NEAR_ZERO"]
@@ -41,13 +48,15 @@ RELATIVE_DRIFT_LIMIT = 1e-4
 class Mapping2Onnx:
     """How one problem kind is expressed in ONNX.
 
-    build(record) → ONNX model; values(outputs) → kktrace's decision values (m,) from the
-    evaluator's outputs; labels(outputs) → predicted labels (m,) or None (no classes).
+    build(record, doc, integer_labels) → ONNX model; values(outputs) → kktrace's decision
+    values (m,) from an evaluator's outputs; labels(outputs) → the evaluator's predicted
+    classes (m,) as text, or None; ours(model, f) → kktrace's predicted classes as text.
     """
 
-    build: Callable[[RunRecord, str], Any]
+    build: Callable[..., Any]
     values: Callable[[list[np.ndarray]], np.ndarray]
     labels: Callable[[list[np.ndarray]], np.ndarray | None]
+    ours: Callable[[Any, np.ndarray], np.ndarray]
 
 
 def _binary_model(rec: RunRecord, doc: str, integer_labels: bool | None = None) -> Any:
@@ -70,10 +79,46 @@ def _binary_values(out: list[np.ndarray]) -> np.ndarray:
     return np.asarray(out[1], dtype=np.float64)[:, 0]
 
 
+def _expansion(rec: RunRecord) -> KernelExpansion:
+    m = model_from_solution(rec.problem, rec.result, rec.standardiser)
+    return KernelExpansion(points=m.support_points, coefficients=m.coefficients, bias=m.bias,
+                           kernel=m.kernel, centre=m.standardiser.centre,
+                           scale=m.standardiser.scale)
+
+
+def _regression_model(rec: RunRecord, doc: str, integer_labels: bool | None = None) -> Any:
+    return regressor_graph(_expansion(rec), doc=doc)
+
+
+def _one_class_model(rec: RunRecord, doc: str, integer_labels: bool | None = None) -> Any:
+    # f(x) = Σ αᵢK(xᵢ, x) − ρ: the bias −ρ is the regressor's rho; Sign gives the flag
+    return regressor_graph(_expansion(rec), doc=doc, flag=True)
+
+
+def _first_column(out: list[np.ndarray]) -> np.ndarray:
+    return np.asarray(out[0], dtype=np.float64)[:, 0]
+
+
+def _text(a: Any) -> np.ndarray:
+    return np.asarray([str(v) for v in np.asarray(a).tolist()])
+
+
+def _inlier_text(f: np.ndarray) -> np.ndarray:
+    return np.where(np.asarray(f) >= 0, "inlier", "outlier")
+
+
 EXPORT_MAPPINGS: dict[str, Mapping2Onnx] = {
     "binary_classification": Mapping2Onnx(
-        build=_binary_model, values=_binary_values,
-        labels=lambda out: np.asarray(out[0])),
+        build=_binary_model, values=_binary_values, labels=lambda out: _text(out[0]),
+        ours=lambda model, f: _text(model.classify_values(f))),
+    REGRESSION_KIND: Mapping2Onnx(
+        build=_regression_model, values=_first_column, labels=lambda out: None,
+        ours=lambda model, f: np.asarray([], dtype=str)),
+    # the flag output is Sign(f): 0 on the boundary counts as inlier, as kktrace's f ≥ 0
+    ONE_CLASS_KIND: Mapping2Onnx(
+        build=_one_class_model, values=_first_column,
+        labels=lambda out: _inlier_text(np.asarray(out[1], dtype=np.float64)[:, 0]),
+        ours=lambda model, f: _inlier_text(f)),
 }
 
 
@@ -132,8 +177,7 @@ def _compare(name: str, ours: np.ndarray, theirs: np.ndarray, our_labels: np.nda
         "finite": bool(np.all(np.isfinite(theirs))),
     }
     if our_labels is not None and their_labels is not None:
-        changed = np.asarray([str(a) != str(b) for a, b in zip(our_labels, their_labels,
-                                                               strict=True)])
+        changed = np.asarray(our_labels) != np.asarray(their_labels)
         near = np.abs(ours) < NEAR_ZERO
         out.update(label_changes=int(changed.sum()),
                    label_change_share=float(changed.mean()) if changed.size else 0.0,
@@ -160,23 +204,27 @@ def check_onnx(rec: RunRecord, data: bytes,
     session = ort.InferenceSession(data, providers=["CPUExecutionProvider"])
     # the reference evaluator (onnx 1.x) cannot give string labels for two classes; it runs
     # a copy with the labels written as 0 … k−1 and is compared on decision values only
-    ref_model = onnx.load_from_string(data)
+    ref_model = relabelled = onnx.load_from_string(data)
     if any(a.name == "classlabels_strings" for n in ref_model.graph.node for a in n.attribute):
-        ref_model = mapping.build(rec, "", integer_labels=True)  # type: ignore[call-arg]
+        ref_model = relabelled = mapping.build(rec, "", integer_labels=True)
+    else:
+        relabelled = None
     reference = ReferenceEvaluator(ref_model)
     evaluators: dict[str, dict[str, Any]] = {"onnxruntime": {}, "onnx_reference": {}}
     passed = True
     for name, X in sets.items():
         ours = model.values(X)
-        our_labels = model.classify(X)
+        our_labels = mapping.ours(model, ours)
         x32 = np.ascontiguousarray(X, dtype=np.float32)
         out_rt = session.run(None, {INPUT_NAME: x32})
         out_ref = reference.run(None, {INPUT_NAME: x32})
+        # the reference copy of a string-labelled classifier carries 0 … k−1, not the labels
+        ref_labelled = ref_model is not relabelled
         for ev, out, labelled in (("onnxruntime", out_rt, True), ("onnx_reference", out_ref,
-                                                                  False)):
+                                                                  ref_labelled)):
             theirs = mapping.values(out)
             lab = mapping.labels(out) if labelled else None
-            facts = _compare(name, ours, theirs, our_labels if labelled else None, lab)
+            facts = _compare(name, ours, theirs, our_labels if lab is not None else None, lab)
             evaluators[ev][name] = facts
             passed &= facts["finite"] and facts["max_rel_diff"] <= RELATIVE_DRIFT_LIMIT
             passed &= facts.get("label_changes_away_from_boundary", 0) == 0
@@ -231,3 +279,59 @@ def export_run(rec: RunRecord, to: str | Path, *, store: Any,
                                                                "file": path.name})})
     checked = store.save(child, parent=rec.run_id)
     return ExportOutcome(path=path, check=check, run_id=str(rec.run_id), checked_run_id=checked)
+
+
+def pairwise_expansion(
+    labels: tuple[Any, ...], row_class: np.ndarray, points: np.ndarray,
+    pairs: list[tuple[int, int, np.ndarray, np.ndarray, float]], kernel: Any,
+    centre: np.ndarray, scale: np.ndarray,
+) -> PairwiseExpansion:
+    """The standard's one-vs-one layout from k(k−1)/2 binary expansions.
+
+    labels : the k classes in order; row_class (n,) class index of every training row;
+    points (n, d) standardised training rows; pairs : for each pair (i, j), i < j, in the
+    standard's order (0,1), (0,2), …: (i, j, rows, coefficients, bias) with ``rows`` the
+    training rows of the pair's support vectors and the expansion oriented so that
+    f_ij > 0 is a vote for class i.  A row that is a support vector in some of its pairs
+    only gets coefficient 0 in the others.
+    """
+    k = len(labels)
+    used = np.zeros(row_class.shape[0], dtype=bool)
+    for _, _, rows, _, _ in pairs:
+        used[np.asarray(rows, dtype=np.int64)] = True
+    order = np.concatenate([np.flatnonzero(used & (row_class == c)) for c in range(k)])
+    column = np.full(row_class.shape[0], -1, dtype=np.int64)
+    column[order] = np.arange(order.size)
+    coef = np.zeros((k - 1, order.size))
+    biases = []
+    expected = [(i, j) for i in range(k) for j in range(i + 1, k)]
+    if [(i, j) for i, j, *_ in pairs] != expected:
+        raise InvalidInputError("pairs must come in the order (0,1), (0,2), …, (1,2), …")
+    for i, j, rows, a, b in pairs:
+        rows = np.asarray(rows, dtype=np.int64)
+        a = np.asarray(a, dtype=np.float64)
+        ci = row_class[rows] == i
+        cj = row_class[rows] == j
+        if not np.all(ci | cj):
+            raise InvalidInputError(f"pair ({i}, {j}) lists a row of another class")
+        coef[j - 1, column[rows[ci]]] = a[ci]
+        coef[i, column[rows[cj]]] = a[cj]
+        biases.append(float(b))
+    per_class = tuple(int(np.sum(row_class[order] == c)) for c in range(k))
+    return PairwiseExpansion(points=points[order], per_class=per_class, coefficients=coef,
+                             biases=np.asarray(biases), labels=tuple(labels), kernel=kernel,
+                             centre=np.asarray(centre), scale=np.asarray(scale))
+
+
+def vote(pair_values: np.ndarray, k: int) -> np.ndarray:
+    """Class index by one-vs-one votes: pair (i, j) votes i when f_ij > 0, else j; the
+    first class with the most votes wins (the standard's rule, ONNX Operators-ml.md)."""
+    votes = np.zeros((pair_values.shape[0], k), dtype=np.int64)
+    p = 0
+    for i in range(k):
+        for j in range(i + 1, k):
+            win = pair_values[:, p] > 0
+            votes[win, i] += 1
+            votes[~win, j] += 1
+            p += 1
+    return np.argmax(votes, axis=1)
