@@ -93,6 +93,10 @@ def _run_block(s: Mapping[str, Any], role: str) -> list[str]:
 def cmd_train(args: argparse.Namespace) -> int:
     import solver
 
+    if args.task == "classification" and args.label is None:
+        args.train_parser.error("--label COLUMN is required for classification "
+                                "(or choose --task regression / one-class)")
+
     outcome = solver.train(
         args.data, label=args.label, kernel=args.kernel, gamma=args.gamma,
         degree=args.degree, offset=args.offset, C=args.C, kkt_tol=args.kkt_tol,
@@ -194,7 +198,7 @@ def register(sub: Any) -> None:
                    help="trace level (default full)")
     p.add_argument("--no-standardise", action="store_true",
                    help="use the features as given (default: standardise to mean 0, sd 1)")
-    p.set_defaults(func=cmd_train)
+    p.set_defaults(func=cmd_train, train_parser=p)
 
     p = add_command(sub, "demo", "run the full audit on invented tablet-coating QC data",
                     _DEMO_EXAMPLES)
