@@ -34,7 +34,8 @@ def test_all_is_sorted_into_known_names_without_duplicates():
 
 
 #: commands whose public function has another name
-_COMMAND_FUNCTIONS = {"demo": "run_demo", "export": "export_onnx"}
+_COMMAND_FUNCTIONS = {"demo": "run_demo", "export": "export_onnx", "keys": "new_signing_keys",
+                      "clean": "clean_store"}
 
 
 def test_workflow_names_are_the_cli_subcommands():

@@ -30,6 +30,7 @@ CAUTION = ("kktrace gives evidence about the optimisation, not a validation sign
 def cmd_export(args: argparse.Namespace) -> int:
     import solver
 
+    solver.check_output_path(args.to, store=args.store, what="--to")
     out = solver.export_onnx(args.run, args.to, store=args.store, holdout=args.holdout)
     if args.json:
         emit_json(out.to_dict(), sys.stdout)

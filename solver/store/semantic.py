@@ -51,7 +51,6 @@ _BLOCK_ROWS = 2048
 
 _ISO = re.compile(r"[0-9]{4}-[0-9]{2}-[0-9]{2}T[0-9]{2}:[0-9]{2}:[0-9]{2}\.[0-9]{6}Z")
 _SOLVERS = ("smo", "qp")
-_KINDS = ("binary_classification", "epsilon_regression", "one_class")
 _KERNELS = ("linear", "poly", "rbf", "sigmoid", "precomputed", "callable")
 _GAMMA_SOURCES = ("given", "median_heuristic")
 _BIAS_FROM = ("free_support_vectors", "interval_midpoint")
@@ -140,9 +139,14 @@ def manifest_field_problems(m: Mapping[str, Any]) -> list[str]:
         if value not in allowed:
             out.append(f"{_M}: field {where} {value!r} is not one of {', '.join(allowed)}")
 
-    enum(s.get("name"), _SOLVERS, "solver.name")
+    from ..solvers import SOLVERS
+
+    enum(s.get("name"), tuple(sorted(set(_SOLVERS) | set(SOLVERS))), "solver.name")
     enum(s.get("status"), tuple(st.label for st in Status), "solver.status")
-    enum(p.get("kind"), _KINDS, "problem.kind")
+    # problem kinds: any lower-case identifier (classification is checked in depth below;
+    # other duals carry their own arrays)
+    if not (isinstance(p.get("kind"), str) and re.fullmatch(r"[a-z][a-z0-9_]{0,63}", p["kind"])):
+        out.append(f"{_M}: field problem.kind {p.get('kind')!r} is not a problem kind name")
     enum(k.get("name"), _KERNELS, "problem.kernel.name")
     params = k.get("params") if isinstance(k.get("params"), dict) else {}
     if "gamma_source" in params:
