@@ -64,6 +64,10 @@ __all__ = [
     "apply",
     "report",
     "export_explanation",
+    "check_output_path",
+    "store_listing",
+    "clean_store",
+    "new_signing_keys",
 ]
 
 
@@ -213,12 +217,14 @@ def replay(run: str | RunRecord, iteration: int, *, store: Any = None) -> Any:
 
 @dataclass(frozen=True, eq=False)
 class VerifyOutcome:
-    """Result of :func:`verify`: integrity of the stored files and, optionally, a re-run.
+    """Result of :func:`verify`: integrity of the stored run and, optionally, a re-run.
 
-    ``integrity`` is the store's :class:`~solver.store.Verification` (``ok``, ``problems``);
-    ``reproduction`` the re-run's :class:`~solver.store.Reproduction` (None without
-    ``rerun``); ``rerun_run_id`` the id of the stored re-run (with ``keep_rerun``).
-    ``ok`` is True only when the files are intact and any re-run reproduced α bitwise or
+    ``integrity`` is the store's :class:`~solver.store.Verification` (``ok``, ``problems``,
+    ``signer``, ``trusted``, ``notes``); ``reproduction`` the re-run's
+    :class:`~solver.store.Reproduction` (None without ``rerun``); ``rerun_run_id`` the id
+    of the stored re-run (with ``keep_rerun``); ``audit_note`` why no ``run_verified``
+    entry was appended to the store's audit log (None when it was).
+    ``ok`` is True only when the run is intact and any re-run reproduced α bitwise or
     within the reproduction tolerance.
     """
 
@@ -226,6 +232,7 @@ class VerifyOutcome:
     integrity: Any
     reproduction: Any | None
     rerun_run_id: str | None = None
+    audit_note: str | None = None
 
     @property
     def ok(self) -> bool:
@@ -236,32 +243,83 @@ class VerifyOutcome:
         return ok
 
 
+def _trusted_keys(trusted: Any) -> list[Any] | None:
+    from .store.signing import PublicKey, load_public_key
+
+    if trusted is None:
+        return None
+    items = [trusted] if isinstance(trusted, (str, Path, PublicKey)) else list(trusted)
+    keys = [k if isinstance(k, PublicKey) else load_public_key(k) for k in items]
+    return keys or None
+
+
 def verify(
     run: str, *, store: Any = None, rerun: Dataset | str | Path | None = None,
-    keep_rerun: bool = False,
+    keep_rerun: bool = False, trusted: Any = None,
 ) -> VerifyOutcome:
-    """Check a stored run's files (digests, chain to its parent) and optionally re-run it.
+    """Check a stored run and optionally re-run it.
 
+    The run is checked byte for byte against its manifest, against itself (certificate
+    recomputed from α, model rebuilt, trace replayed, manifest fields; see
+    :mod:`solver.store.semantic`), against the catalog and the audit log where they
+    hold its digest, and along its parent chain.  ``trusted`` (public-key file(s) from
+    :func:`new_signing_keys`) requires a valid signature by one of those keys.
     ``rerun`` is the training data (file or Dataset); it must match the stored
     fingerprint.  With ``keep_rerun`` the re-run is saved as a new run whose parent is
-    ``run``.
+    ``run``.  A ``run_verified`` (and ``run_rerun``) entry is appended to the store's
+    audit log when the store is writable; nothing is written on a read-only store.
     """
-    from .store import reproduce
+    from .store import auditlog, reproduce
 
     st = open_store(store)
-    integrity = st.verify(run)
+    keys = _trusted_keys(trusted)
+    integrity = st.verify(run, trusted=keys)
     reproduction = None
     new_id = None
-    if rerun is not None:
-        if not integrity.ok:
-            return VerifyOutcome(run_id=run, integrity=integrity, reproduction=None)
-        rec = st.load(run)
+    if rerun is not None and integrity.ok:
+        rec = st.load(run, trusted=keys)
         ds = _load_data(rerun, rec.data.get("label_name"), "re-run data")
         reproduction = reproduce(rec, ds)
         if keep_rerun:
             new_id = st.save(reproduction.record, parent=run)
+    note = None
+    if st.root.is_dir():
+        note = auditlog.append(st.root, "run_verified", run, {
+            "ok": bool(integrity.ok), "problems": len(integrity.problems),
+            "trusted": bool(integrity.trusted), "signer": integrity.signer})
+        if reproduction is not None:
+            note = auditlog.append(st.root, "run_rerun", run, {
+                "agreement": str(getattr(reproduction, "agreement", "")),
+                "new_run_id": new_id}) or note
     return VerifyOutcome(run_id=run, integrity=integrity, reproduction=reproduction,
-                         rerun_run_id=new_id)
+                         rerun_run_id=new_id, audit_note=note)
+
+
+def check_output_path(path: str | Path, *, store: Any = None, what: str = "--out") -> Path:
+    """``path`` made absolute, or :class:`~solver.errors.InvalidInputError` when it lies
+    inside a run folder (of ``store`` or any folder recognisable as a run) or names the
+    store's catalog or audit-log files.  Every command's output option goes through this."""
+    return open_store(store).check_output_path(path, what)
+
+
+def store_listing(*, store: Any = None, **filters: Any) -> Any:
+    """Runs matching ``filters`` plus the store's leftovers (:class:`~solver.store.Listing`):
+    ``.tmp-*`` folders of writers that may have been killed, SMO runs whose requested QP
+    challenger was never saved, and whether the catalog was current.  Never writes."""
+    return open_store(store).listing(**{k: v for k, v in filters.items() if v is not None})
+
+
+def clean_store(*, store: Any = None) -> list[str]:
+    """Remove the ``.tmp-*`` folders whose writing process no longer runs (this host);
+    returns their names.  Runs are never touched."""
+    return open_store(store).clean_temp()
+
+
+def new_signing_keys(name: str, directory: str | Path) -> tuple[Path, Path]:
+    """Write an Ed25519 key pair ``NAME.private.pem`` (mode 0600) / ``NAME.public.pem``."""
+    from .store.signing import new_key_pair
+
+    return new_key_pair(name, directory)
 
 
 @dataclass(frozen=True, eq=False)
@@ -379,8 +437,28 @@ def report(
 
             comparison = compare_runs(recs[0], recs[1])
     out = Path(out_dir) if out_dir is not None else Path(st.root) / "reports" / str(recs[0].run_id)
-    return write_report(recs, out, formats=tuple(formats), comparison=comparison, notes=notes,
-                        stem=stem)
+    st.check_output_path(out, "report folder")
+    paths = write_report(recs, out, formats=tuple(formats), comparison=comparison, notes=notes,
+                         stem=stem)
+    _log_report(st, recs, paths)
+    return paths
+
+
+def _log_report(st: Any, recs: Sequence[RunRecord], paths: Mapping[str, Path]) -> None:
+    import hashlib
+
+    from .store import auditlog
+
+    if not st.root.is_dir():
+        return
+    files = {}
+    for k, p in paths.items():
+        try:
+            files[k] = {"path": str(p), "sha256": hashlib.sha256(Path(p).read_bytes()).hexdigest()}
+        except OSError:
+            files[k] = {"path": str(p), "sha256": None}
+    auditlog.append(st.root, "report_written", recs[0].run_id,
+                    {"runs": [r.run_id for r in recs], "files": files})
 
 
 def export_explanation(
@@ -391,9 +469,10 @@ def export_explanation(
     for fmt in formats:
         if fmt not in ("csv", "parquet"):
             raise InvalidInputError(f"unknown table format {fmt!r}; choose csv or parquet")
+    out = check_output_path(out_dir, store=store if not isinstance(run, RunRecord) else store,
+                            what="explanation folder")
     rec = load_run(run, store=store)
     table = explain(rec)
-    out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     stem = f"points-{rec.run_id or 'unsaved'}"
     paths: dict[str, Path] = {}

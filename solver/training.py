@@ -26,7 +26,7 @@ from ._workflow import (
     open_store,
 )
 from .data import Dataset
-from .errors import ConvergenceWarning, DataWarning, InvalidInputError
+from .errors import ConvergenceWarning, DataWarning, InvalidInputError, StoreWarning
 from .kernels import make_kernel
 from .model import Model, Standardiser, model_from_solution
 from .plaindata import to_plain
@@ -321,9 +321,10 @@ def train(
             holdout=holdout, store=run_store, trace=trace, explain=explain, progress=progress,
         )
     for w in wlist:
-        if issubclass(w.category, (ConvergenceWarning, DataWarning)):
+        if issubclass(w.category, (ConvergenceWarning, DataWarning, StoreWarning)):
             caught.append(str(w.message))
-        if not quiet or not issubclass(w.category, (ConvergenceWarning, DataWarning)):
+        if not quiet or not issubclass(w.category,
+                                       (ConvergenceWarning, DataWarning, StoreWarning)):
             warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
     seen: list[str] = []
     for m in [*outcome.warnings, *caught]:

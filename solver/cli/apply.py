@@ -21,6 +21,8 @@ _APPLY_EXAMPLES = """examples:
 def cmd_apply(args: argparse.Namespace) -> int:
     import solver
 
+    if args.out:
+        solver.check_output_path(args.out, store=args.store)
     sc = solver.apply(args.run, args.data, store=args.store, label=args.label)
     if args.out:
         _write_outputs(sc, Path(args.out))

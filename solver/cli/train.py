@@ -70,8 +70,8 @@ def cmd_train(args: argparse.Namespace) -> int:
         degree=args.degree, offset=args.offset, C=args.C, kkt_tol=args.kkt_tol,
         iteration_limit=args.iteration_limit, solver=args.solver, standardise=not
         args.no_standardise,
-        holdout=args.holdout, store=args.store, trace=args.trace, quiet=True,
-        progress=progress(args),
+        holdout=args.holdout, store=solver.open_store(args.store, signing_key=args.sign),
+        trace=args.trace, quiet=True, progress=progress(args),
     )
     if args.json:
         emit_json(outcome.summary(), sys.stdout)
@@ -151,6 +151,9 @@ def register(sub: Any) -> None:
                    help="trace level (default full)")
     p.add_argument("--no-standardise", action="store_true",
                    help="use the features as given (default: standardise to mean 0, sd 1)")
+    p.add_argument("--sign", metavar="PRIVATE_KEY", default=None,
+                   help="sign each run's manifest digest with this Ed25519 key "
+                   "(NAME.private.pem from 'kktrace keys new'; default $KKTRACE_SIGNING_KEY)")
     p.set_defaults(func=cmd_train)
 
     p = add_command(sub, "demo", "run the full audit on invented tablet-coating QC data",
