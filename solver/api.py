@@ -108,7 +108,7 @@ def compare(
     a, b = load_run(run_a, store=store), load_run(run_b, store=store)
     hX = None
     if holdout is not None:
-        hold = _load_data(holdout, a.data.get("label_name"), "held-out data")
+        hold = _load_data(holdout, _split_column(a.data), "held-out data")
         hX = _align(hold, a.data.get("feature_names") or [], "held-out data")
     return compare_runs(a, b, holdout_X=hX, tolerances=tolerances, allow_mismatch=allow_mismatch)
 
@@ -167,6 +167,10 @@ def explain(
 
     rec = load_run(run, store=store)
     if points is None:
+        if rec.problem.labels is None:
+            from .explanation import kind_point_table
+
+            return kind_point_table(rec.problem, rec.result)
         return point_table(rec.problem, rec.result)
     names = list(rec.data.get("feature_names") or [])
     if isinstance(points, (str, Path)):
@@ -193,6 +197,14 @@ def leave_one_out(
     from .explanation import leave_one_out as _loo
 
     rec = load_run(run, store=store)
+    if rec.problem.labels is None:  # ε-regression / one-class: KindLeaveOneOut
+        from .explanation import kind_leave_one_out
+
+        if not rec.result.success:
+            raise InvalidInputError(f"run {rec.run_id} did not converge "
+                                    f"({rec.result.status.label}); leave-one-out needs a "
+                                    "converged run")
+        return kind_leave_one_out(rec.problem, rec.result)
     if progress is None:
         return _loo(rec.problem, rec.result)
 
@@ -278,7 +290,7 @@ def verify(
     new_id = None
     if rerun is not None and integrity.ok:
         rec = st.load(run, trusted=keys)
-        ds = _load_data(rerun, rec.data.get("label_name"), "re-run data")
+        ds = _load_data(rerun, _split_column(rec.data), "re-run data")
         reproduction = reproduce(rec, ds)
         if keep_rerun:
             new_id = st.save(reproduction.record, parent=run)
@@ -326,7 +338,9 @@ def new_signing_keys(name: str, directory: str | Path) -> tuple[Path, Path]:
 class ModelOutput:
     """Decision values and labels of a run's model on new data.
 
-    values : (m,) decision values f(x); labels : (m,) predicted label values;
+    values : (m,) decision values f(x) (ε-regression: the predictions; one-class: the signed
+    scores); labels : (m,) predicted label values (one-class: ``inlier`` / ``outlier``;
+    regression: None);
     truth : (m,) given labels or None; confusion : confusion matrix and accuracies when
     the data carried the label column, else None; fingerprint : of the scored data.
     """
@@ -338,11 +352,13 @@ class ModelOutput:
     confusion: Mapping[str, Any] | None
     fingerprint: str
     source: str | None
+    kind: str = "binary_classification"
 
     def to_dict(self) -> dict[str, Any]:
         """Plain data (lists)."""
         return {
             "run_id": self.run_id,
+            "kind": self.kind,
             "n": int(self.values.shape[0]),
             "fingerprint": self.fingerprint,
             "source": self.source,
@@ -387,6 +403,8 @@ def apply(
     """
     rec = load_run(run, store=store)
     names = list(rec.data.get("feature_names") or [])
+    if rec.problem.labels is None:
+        return _apply_kind(rec, data, names, label)
     if isinstance(data, (str, Path)) and label is None:
         lab = rec.data.get("label_name")
         label = lab if _has_column(Path(data), lab) else None
@@ -398,6 +416,37 @@ def apply(
     conf = None if ds.labels is None else _confusion(ds.labels, pred, model.labels)
     return ModelOutput(run_id=rec.run_id, values=values, labels=pred, truth=ds.labels,
                   confusion=conf, fingerprint=_fingerprint(ds), source=ds.source)
+
+
+def _split_column(data: Mapping[str, Any]) -> str | None:
+    """The column a run's training file had split off: label, target or known outliers."""
+    return data.get("label_name") or data.get("target_name") or data.get("outlier_column")
+
+
+def _apply_kind(rec: RunRecord, data: Any, names: list[str], label: str | None) -> ModelOutput:
+    """ε-regression (values = predictions, no labels) or one-class (values = signed scores,
+    labels ``inlier`` / ``outlier``); with the target or known-outlier column present the
+    held-out facts go into ``confusion`` (regression: RMSE, MAE, R², tube coverage)."""
+    from .measures import novelty_measures, regression_measures
+    from .problem import REGRESSION_KIND
+    from .training_kinds import known_outliers, numeric_column
+
+    col = label or rec.data.get("target_name") or rec.data.get("known_outlier_column")
+    if isinstance(data, (str, Path)) and col is not None and not _has_column(Path(data), col):
+        col = None
+    ds = _load_data(data, col, "data the model is applied to")
+    X = _align(ds, names, "data the model is applied to")
+    values = model_from_solution(rec.problem, rec.result, rec.standardiser).values(X)
+    if rec.problem.kind == REGRESSION_KIND:
+        labels = np.full(values.shape[0], None, dtype=object)
+        facts = None if ds.labels is None else regression_measures(
+            numeric_column(ds, "target"), values, epsilon=float(rec.problem.info["epsilon"]))
+    else:
+        labels = np.where(values >= 0, "inlier", "outlier").astype(object)
+        facts = novelty_measures(values, None if ds.labels is None else known_outliers(ds))
+    return ModelOutput(run_id=rec.run_id, values=values, labels=labels, truth=ds.labels,
+                       confusion=facts, fingerprint=_fingerprint(ds), source=ds.source,
+                       kind=rec.problem.kind)
 
 
 def _stored_comparison(second: RunRecord, first: RunRecord) -> Any | None:

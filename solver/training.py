@@ -219,7 +219,7 @@ def _run_summary(record: RunRecord, run_id: str, run_dir: Path) -> dict[str, Any
         "C": record.problem.info.get("C"),
     }
     hold = record.attachments.get("holdout")
-    if hold:
+    if hold and "accuracy" in hold:
         s["holdout_accuracy"] = hold["accuracy"]
         s["holdout_balanced_accuracy"] = hold["balanced_accuracy"]
     return s
@@ -276,9 +276,20 @@ def train(
     weight_column: str | None = None,
     max_classes: int | None = None,
     parallel: str = "auto",
+    task: str = "classification",
+    target: str | None = None,
+    epsilon: float = 0.1,
+    nu: float = 0.5,
+    outlier_column: str | None = None,
 ) -> TrainOutcome:
-    """Train a kernel SVM (two classes, or one-vs-one over three or more), audit it and
-    save the run(s) to the store.
+    """Train a kernel SVM (two classes, one-vs-one over three or more classes, ε-regression
+    or one-class), audit it and save the run(s) to the store.
+
+    ``task="regression"`` fits ε-regression to the numeric ``target`` column with tube
+    half-width ``epsilon`` (target units); ``task="one-class"`` fits a one-class model with
+    ``nu`` in (0, 1] and no label, optionally setting aside ``outlier_column`` (known
+    outliers, not fitted on; used for the held-out confusion).  See
+    :mod:`solver.training_kinds`.
 
     Parameters
     ----------
@@ -340,7 +351,14 @@ def train(
                                  or iteration_limit < 1):
         raise InvalidInputError(
             f"iteration_limit must be a positive integer, got {iteration_limit!r}")
-    if isinstance(data, (str, Path)) and label is None:
+    if task != "classification":
+        from .training_kinds import kind_of_task
+
+        kind_of_task(task)
+    elif target is not None or outlier_column is not None:
+        raise InvalidInputError("--target and --outlier-column belong to the regression and "
+                                "one-class tasks; name the task with --task")
+    elif isinstance(data, (str, Path)) and label is None:
         raise InvalidInputError("name the label column of the training file (--label COLUMN)")
     if max_classes is not None and (isinstance(max_classes, bool)
                                     or not isinstance(max_classes, int) or max_classes < 3):
@@ -356,6 +374,8 @@ def train(
             holdout=holdout, store=run_store, trace=trace, explain=explain, progress=progress,
             class_weight=class_weight, weight_column=weight_column, max_classes=max_classes,
             parallel=parallel,
+            kinds={"task": task, "target": target, "epsilon": epsilon, "nu": nu,
+                   "outlier_column": outlier_column},
         )
     for w in wlist:
         if issubclass(w.category, (ConvergenceWarning, DataWarning, StoreWarning)):
@@ -533,7 +553,13 @@ def _train(
     weight_column: str | None = None,
     max_classes: int | None = None,
     parallel: str = "auto",
+    kinds: dict[str, Any] | None = None,
 ) -> TrainOutcome:
+    if kinds and kinds["task"] != "classification":
+        return _train_kind(data, label=label, kernel=kernel, gamma=gamma, degree=degree,
+                           offset=offset, C=C, kkt_tol=kkt_tol, iteration_limit=iteration_limit,
+                           solver=solver, standardise=standardise, holdout=holdout, store=store,
+                           trace=trace, explain=explain, progress=progress, **kinds)
     from .distributed import run_jobs
     from .tasks import classification_task
     from .tasks._labels import class_order
@@ -733,3 +759,37 @@ def _flat_summary(summary: Mapping[str, Any]) -> dict[str, Any]:
         if k in summary:
             out[k] = summary[k]
     return out
+
+
+def _train_kind(data: Any, *, label: str | None, kernel: str, gamma: float | None, degree: int,
+                offset: float, C: float, kkt_tol: float, iteration_limit: int | None,
+                solver: str, standardise: bool, holdout: Any, store: RunStore, trace: str,
+                explain: bool, progress: ProgressFn | None, task: str, target: str | None,
+                epsilon: float, nu: float, outlier_column: str | None) -> TrainOutcome:
+    """ε-regression and one-class fits (:mod:`solver.training_kinds`) as a TrainOutcome."""
+    from .training_kinds import kind_summary, train_kind
+
+    kern = _make_kernel(kernel, gamma, degree, offset)
+    opts = {"kernel": kernel, "gamma": gamma, "degree": degree if kernel == "poly" else None,
+            "offset": offset if kernel in ("poly", "sigmoid") else None, "C": C,
+            "kkt_tol": kkt_tol, "iteration_limit": iteration_limit, "standardise": standardise}
+    if task == "one-class":
+        opts.pop("C")  # the one-class bounds come from ν
+    got = train_kind(data, task=task, target=target, label=label, outlier_column=outlier_column,
+                     epsilon=epsilon, nu=nu, kern=kern, C=C, kkt_tol=kkt_tol,
+                     iteration_limit=iteration_limit, solver=solver, standardise=standardise,
+                     holdout=holdout, store=store, trace=trace, explain=explain,
+                     progress=progress, opts=opts)
+    ids, saved, comparison = got["ids"], got["records"], got["comparison"]
+    summaries = tuple(
+        {**_run_summary(rec, rid, store.run_dir(rid)), **kind_summary(rec)}
+        for rec, rid in zip(saved, ids, strict=True))
+    if comparison is not None:
+        summaries[1]["verdict"] = str(comparison.verdict)
+    notes = list(got["notes"])
+    for s in summaries:
+        if not s["converged"]:
+            notes.append(f"{s['solver']} run {s['run_id']} did not converge: {s['message']}")
+    return TrainOutcome(run_ids=tuple(ids), records=tuple(saved), summaries=summaries,
+                        comparison=comparison, challenger_skipped=got["skipped"],
+                        store=Path(store.root), warnings=tuple(notes))

@@ -25,7 +25,11 @@ _TRAIN_EXAMPLES = """examples:
   kktrace train X.npz --label y --kernel linear --kkt-tol 1e-5 --store audit-traces
   kktrace train grades.csv --label grade --class-weight balanced --solver both
   kktrace train batches.csv --label outcome --weight-column batch_weight \\
-      --class-weight release=1,rework=2,reject=4"""
+      --class-weight release=1,rework=2,reject=4
+  kktrace train batches.csv --task regression --target coating_thickness_um --epsilon 0.5 \
+      --C 10 --solver both
+  kktrace train released.csv --task one-class --nu 0.05 --holdout new_batches.csv \
+      --outlier-column known_unusual"""
 
 _DEMO_EXAMPLES = """examples:
   kktrace demo
@@ -54,6 +58,30 @@ def _run_block(s: Mapping[str, Any], role: str) -> list[str]:
         f"  support       {s['n_support']} of {s['n_rows']} points "
         f"({s['n_free']} on the margin, {s['n_bounded']} at the bound), bias {num(s['bias'])}",
     ]
+    if s.get("task") == "regression":
+        lines.append(f"  task          ε-regression, ε = {num(s.get('epsilon'))}; training RMSE "
+                     f"{num(s.get('training_rmse'), '.4g')}, inside or on the tube "
+                     f"{num(s.get('training_tube_coverage'), '.3f')}")
+    elif s.get("task") == "one-class":
+        nuc = s.get("nu_property") or {}
+        lines.append(f"  task          one-class, ν = {num(s.get('nu'))}; outlier share "
+                     f"{num(nuc.get('outlier_share'), '.4f')} <= ν <= support share "
+                     f"{num(nuc.get('support_share'), '.4f')}: "
+                     + ("holds" if nuc.get("holds") else "DOES NOT HOLD"))
+    hold = s.get("holdout") or {}
+    if "rmse" in hold:
+        r2 = hold.get("r2")
+        lines.append(f"  held-out      RMSE {num(hold['rmse'], '.4g')}, "
+                     f"MAE {num(hold['mae'], '.4g')}, "
+                     f"R² {num(r2, '.4f') if r2 is not None else 'n/a'}, tube coverage "
+                     f"{num(hold['tube_coverage'], '.3f')}")
+    elif "share_flagged" in hold:
+        text = f"  held-out      flagged {hold['n_flagged']} of {hold['n']}"
+        conf = hold.get("confusion")
+        if conf:
+            text += (f"; known outliers flagged {conf['flagged_known']}, missed "
+                     f"{conf['missed']}, false alarms {conf['flagged_unknown']}")
+        lines.append(text)
     if "holdout_accuracy" in s:
         lines.append(
             f"  held-out      accuracy {num(s['holdout_accuracy'], '.3f')}, balanced accuracy "
@@ -118,6 +146,10 @@ def _print_parent(outcome: Any) -> None:
 def cmd_train(args: argparse.Namespace) -> int:
     import solver
 
+    if args.task == "classification" and args.label is None:
+        args.train_parser.error("--label COLUMN is required for classification "
+                                "(or choose --task regression / one-class)")
+
     outcome = solver.train(
         args.data, label=args.label, kernel=args.kernel, gamma=args.gamma,
         degree=args.degree, offset=args.offset, C=args.C, kkt_tol=args.kkt_tol,
@@ -126,7 +158,9 @@ def cmd_train(args: argparse.Namespace) -> int:
         holdout=args.holdout, store=solver.open_store(args.store, signing_key=args.sign),
         trace=args.trace, quiet=True, progress=progress(args), class_weight=args.class_weight,
         weight_column=args.weight_column, max_classes=args.max_classes,
-        parallel=args.parallel,
+        parallel=args.parallel, task=args.task,
+        target=args.target, epsilon=args.epsilon, nu=args.nu,
+        outlier_column=args.outlier_column,
     )
     if args.json:
         emit_json(outcome.summary(), sys.stdout)
@@ -185,9 +219,22 @@ def register(sub: Any) -> None:
     """Add ``train`` and ``demo`` to the sub-command table."""
     p = add_command(sub, "train", "train on a data file and store the run(s)", _TRAIN_EXAMPLES)
     p.add_argument("data", metavar="DATAFILE", help="CSV (header row), Parquet, .npy or .npz")
-    p.add_argument("--label", metavar="COLUMN", required=True,
-                   help="label column: two values, or three or more for one-vs-one "
-                   "(one run per pair of classes, tied together by a parent record)")
+    p.add_argument("--task", choices=("classification", "regression", "one-class"),
+                   default="classification",
+                   help="classification (default; --label), regression (--target, --epsilon) "
+                   "or one-class (--nu)")
+    p.add_argument("--label", metavar="COLUMN", default=None,
+                   help="label column (classification): two values, or three or more for "
+                   "one-vs-one (one run per pair of classes, tied together by a parent record)")
+    p.add_argument("--target", metavar="COLUMN", default=None,
+                   help="numeric target column (regression)")
+    p.add_argument("--epsilon", type=float_arg, default=0.1,
+                   help="half-width of the ε-tube in target units, >= 0 (regression; default 0.1)")
+    p.add_argument("--nu", type=float_arg, default=0.5,
+                   help="ν in (0, 1]: bound on the outlier share (one-class; default 0.5)")
+    p.add_argument("--outlier-column", metavar="COLUMN", default=None,
+                   help="column of known outliers (1/0, yes/no): set aside in training, used "
+                   "for the held-out confusion (one-class)")
     p.add_argument("--kernel", choices=("linear", "poly", "rbf", "sigmoid"), default="rbf",
                    help="kernel (default rbf)")
     p.add_argument("--gamma", type=float_arg, default=None,
@@ -226,7 +273,7 @@ def register(sub: Any) -> None:
     p.add_argument("--sign", metavar="PRIVATE_KEY", default=None,
                    help="sign each run's manifest digest with this Ed25519 key "
                    "(NAME.private.pem from 'kktrace keys new'; default $KKTRACE_SIGNING_KEY)")
-    p.set_defaults(func=cmd_train)
+    p.set_defaults(func=cmd_train, train_parser=p)
 
     p = add_command(sub, "demo", "run the full audit on invented tablet-coating QC data",
                     _DEMO_EXAMPLES)

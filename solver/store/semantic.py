@@ -165,9 +165,12 @@ def manifest_field_problems(m: Mapping[str, Any]) -> list[str]:
     enum(c.get("bias_from"), _BIAS_FROM, "certificate.bias_from")
     if t is not None:
         enum(t.get("level"), _TRACE_LEVELS, "trace.level")
-    for where, v, lo in (("solver.seconds", s.get("seconds"), 0.0),
-                         ("certificate.kkt_tol", c.get("kkt_tol", c.get("tol")), 0.0),
-                         ("problem.info.C", info.get("C"), 0.0)):
+    positive = [("solver.seconds", s.get("seconds"), 0.0),
+                ("certificate.kkt_tol", c.get("kkt_tol", c.get("tol")), 0.0)]
+    # a one-class problem has no C: its bounds come from ν (problem.info.nu)
+    positive.append(("problem.info.nu", info.get("nu"), 0.0) if p.get("kind") == "one_class"
+                    else ("problem.info.C", info.get("C"), 0.0))
+    for where, v, lo in positive:
         f = _num(v)
         if f is None or not math.isfinite(f) or f < lo or (where != "solver.seconds" and f == 0):
             out.append(f"{_M}: field {where} {v!r} must be a finite number "
@@ -288,8 +291,10 @@ def _problem_arrays(record: RunRecord, ck: _Checker) -> None:
     info = problem.info or {}
     data = record.data or {}
     n = problem.n
-    if data.get("n_rows") is not None and data.get("n_rows") != n:
-        ck.problems.append(f"{_M}: data.n_rows {data.get('n_rows')!r} differs from problem.n {n}")
+    m_rows = int(problem.X.shape[0])  # data rows (ε-regression has two variables per row)
+    if data.get("n_rows") is not None and data.get("n_rows") != m_rows:
+        ck.problems.append(f"{_M}: data.n_rows {data.get('n_rows')!r} differs from the "
+                           f"problem's {m_rows} data rows")
     names = data.get("feature_names")
     d_raw = record.standardiser.centre.shape[0] if record.standardiser is not None else None
     if isinstance(names, list) and d_raw is not None and len(names) != d_raw:
