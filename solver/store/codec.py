@@ -309,7 +309,7 @@ def _table_dtypes(spec: dict[str, str], fname: str, path: str) -> dict[str, str]
     return out
 
 
-#: version-1 option names → version-2 names (the QP solver's ``tol`` was cvxopt's own)
+#: version-1 option names (read from old manifests only; never written) → version-2 names
 _V1_OPTIONS = {"max_iter": "iteration_limit", "cache_mb": "row_cache_mb", "tau": "curvature_floor"}
 
 

@@ -169,6 +169,40 @@ class RunStore:
 
     # ------------------------------------------------------------------ save
 
+    def _write_folder(self, run_id: str, files: Mapping[str, bytes],
+                      manifest: dict[str, Any], parent_id: str | None) -> tuple[bytes, str, Any]:
+        """Write a run (or parent) folder atomically: files, manifest, digest, signature,
+        the audit entry, then one rename.  Returns (manifest bytes, manifest digest, the
+        audit log's note or None)."""
+        manifest["files"] = {name: {"sha256": sha256_hex(b), "bytes": len(b)}
+                             for name, b in files.items()}
+        mbytes = dump_json(manifest)
+        mdigest = sha256_hex(mbytes)
+        self.root.mkdir(parents=True, exist_ok=True)
+        tmp = self.root / f"{TEMP_PREFIX}{run_id}-{os.getpid()}"
+        tmp.mkdir()
+        try:
+            for name, data in files.items():
+                _write_durable(tmp / name, data)
+            _write_durable(tmp / MANIFEST, mbytes)
+            _write_durable(tmp / MANIFEST_DIGEST, digest_file_bytes(mdigest))
+            if self.signer is not None:
+                from .signing import signature_file
+
+                _write_durable(tmp / SIGNATURE, signature_file(
+                    self.signer[0], self.signer[1], mdigest, utc_stamp()))
+            _fsync_dir(tmp)
+            # logged just before the rename, so a run folder never lacks its entry (an entry
+            # whose folder never appeared is a save that did not complete)
+            note = auditlog.append(self.root, "run_created", run_id, {
+                "manifest_sha256": mdigest, "parent": parent_id,
+                "signer": None if self.signer is None else self.signer[1]})
+            os.rename(tmp, self.root / run_id)
+        except BaseException:
+            shutil.rmtree(tmp, ignore_errors=True)
+            raise
+        return mbytes, mdigest, note
+
     def save(self, record: RunRecord, *, parent: str | None = None) -> str:
         """Store ``record`` as a new run and return its run id (always a new run, even for a
         record that was loaded from a store).
@@ -199,35 +233,7 @@ class RunStore:
         run_id = new_run_id(now)
         files, manifest = encode_record(record, run_id=run_id, created=utc_stamp(now),
                                         parent=parent_m)
-        manifest["files"] = {name: {"sha256": sha256_hex(b), "bytes": len(b)}
-                             for name, b in files.items()}
-        mbytes = dump_json(manifest)
-        mdigest = sha256_hex(mbytes)
-
-        self.root.mkdir(parents=True, exist_ok=True)
-        tmp = self.root / f"{TEMP_PREFIX}{run_id}-{os.getpid()}"
-        final = self.root / run_id
-        tmp.mkdir()
-        try:
-            for name, data in files.items():
-                _write_durable(tmp / name, data)
-            _write_durable(tmp / MANIFEST, mbytes)
-            _write_durable(tmp / MANIFEST_DIGEST, digest_file_bytes(mdigest))
-            if self.signer is not None:
-                from .signing import signature_file
-
-                _write_durable(tmp / SIGNATURE, signature_file(
-                    self.signer[0], self.signer[1], mdigest, utc_stamp()))
-            _fsync_dir(tmp)
-            # logged just before the rename, so a run folder never lacks its entry (an entry
-            # whose folder never appeared is a save that did not complete)
-            note = auditlog.append(self.root, "run_created", run_id, {
-                "manifest_sha256": mdigest, "parent": parent_id,
-                "signer": None if self.signer is None else self.signer[1]})
-            os.rename(tmp, final)
-        except BaseException:
-            shutil.rmtree(tmp, ignore_errors=True)
-            raise
+        mbytes, mdigest, note = self._write_folder(run_id, files, manifest, parent_id)
         try:  # make the rename itself durable; the run is complete and visible either way
             _fsync_dir(self.root)
         except OSError as exc:
@@ -693,31 +699,7 @@ class RunStore:
         run_id = new_run_id(now)
         files, manifest = encode_parent(record, run_id=run_id, created=utc_stamp(now),
                                         digests=digests)
-        manifest["files"] = {name: {"sha256": sha256_hex(b), "bytes": len(b)}
-                             for name, b in files.items()}
-        mbytes = dump_json(manifest)
-        mdigest = sha256_hex(mbytes)
-        self.root.mkdir(parents=True, exist_ok=True)
-        tmp = self.root / f"{TEMP_PREFIX}{run_id}-{os.getpid()}"
-        tmp.mkdir()
-        try:
-            for name, data in files.items():
-                _write_durable(tmp / name, data)
-            _write_durable(tmp / MANIFEST, mbytes)
-            _write_durable(tmp / MANIFEST_DIGEST, digest_file_bytes(mdigest))
-            if self.signer is not None:
-                from .signing import signature_file
-
-                _write_durable(tmp / SIGNATURE, signature_file(
-                    self.signer[0], self.signer[1], mdigest, utc_stamp()))
-            _fsync_dir(tmp)
-            note = auditlog.append(self.root, "run_created", run_id, {
-                "manifest_sha256": mdigest, "parent": None,
-                "signer": None if self.signer is None else self.signer[1]})
-            os.rename(tmp, self.root / run_id)
-        except BaseException:
-            shutil.rmtree(tmp, ignore_errors=True)
-            raise
+        mbytes, mdigest, note = self._write_folder(run_id, files, manifest, None)
         try:
             _fsync_dir(self.root)
         except OSError as exc:
