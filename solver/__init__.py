@@ -38,6 +38,15 @@ _EXPORTS: dict[str, str] = {
     "report": "api",
     "export_explanation": "api",
     "open_store": "api",
+    "check_output_path": "api",
+    "store_listing": "api",
+    "clean_store": "api",
+    "new_signing_keys": "api",
+    # model exchange (solver.exchange)
+    "export_onnx": "exchange.workflow",
+    "ExportOutcome": "exchange.workflow",
+    "challenge": "exchange.workflow",
+    "ChallengeOutcome": "exchange.workflow",
     # demo
     "run_demo": "demo",
     "DemoOutcome": "demo",
@@ -51,6 +60,11 @@ _EXPORTS: dict[str, str] = {
     # building blocks
     "make_kernel": "kernels",
     "binary_classification": "problem",
+    "regression": "problem",
+    "one_class": "problem",
+    "regression_measures": "measures",
+    "novelty_measures": "measures",
+    "nu_property": "measures",
     "DualProblem": "problem",
     "solve": "solvers",
     "SolveResult": "result",
@@ -60,6 +74,9 @@ _EXPORTS: dict[str, str] = {
     "Model": "model",
     "model_from_solution": "model",
     "RunRecord": "run",
+    "ParentRecord": "run",
+    "Member": "run",
+    "get_task": "tasks",
     "RunStore": "store",
     "Status": "status",
     "to_plain": "plaindata",
@@ -70,6 +87,7 @@ _EXPORTS: dict[str, str] = {
     "ProblemMismatchError": "errors",
     "ConvergenceWarning": "errors",
     "DataWarning": "errors",
+    "StoreWarning": "errors",
 }
 
 __all__ = ["__version__", *_EXPORTS]

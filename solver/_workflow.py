@@ -31,10 +31,11 @@ KERNEL_CHOICES = ("linear", "poly", "rbf", "sigmoid")
 ProgressFn = Callable[[str, Mapping[str, Any]], None]
 
 
-def open_store(store: Any = None) -> RunStore:
+def open_store(store: Any = None, *, signing_key: str | Path | None = None) -> RunStore:
     """The :class:`~solver.store.RunStore` for ``store``: a store, a directory, or None.
 
-    None means ``$KKTRACE_STORE`` if set, else ``./traces``.
+    None means ``$KKTRACE_STORE`` if set, else ``./traces``.  ``signing_key`` (a private
+    key file; default ``$KKTRACE_SIGNING_KEY``) makes every save sign its manifest digest.
     """
     from .store import RunStore
 
@@ -45,7 +46,7 @@ def open_store(store: Any = None) -> RunStore:
     root = Path(store)
     if root.exists() and not root.is_dir():
         raise InvalidInputError(f"store {str(root)!r} exists but is not a directory")
-    return RunStore(root)
+    return RunStore(root, signing_key=signing_key)
 
 
 def _load_data(data: Dataset | str | Path, label: str | None, what: str) -> Dataset:

@@ -256,7 +256,7 @@ def problem_differences(problem_a: DualProblem, problem_b: DualProblem,
     ca, cb = problem_a.info.get("C"), problem_b.info.get("C")
     if ca != cb:
         out.append(f"C: {ca!r} vs {cb!r}")
-    for key in ("class_weight", "labels"):
+    for key in ("class_weight", "labels", "epsilon", "nu"):
         va, vb = problem_a.info.get(key), problem_b.info.get(key)
         if va != vb:
             out.append(f"{key.replace('_', ' ')}: {va!r} vs {vb!r}")
@@ -266,7 +266,8 @@ def problem_differences(problem_a: DualProblem, problem_b: DualProblem,
                        ("lower bounds", problem_a.lower, problem_b.lower),
                        ("upper bounds (C times weights)", problem_a.upper, problem_b.upper),
                        ("linear term p", problem_a.p, problem_b.p),
-                       ("training rows X", problem_a.X, problem_b.X)):
+                       ("training rows X", problem_a.X, problem_b.X),
+                       ("data row of each variable", problem_a.data_rows, problem_b.data_rows)):
         d = _array_difference(name, a, b)
         if d:
             out.append(d)
@@ -534,9 +535,6 @@ def compare_runs(
                 raise InvalidInputError(
                     f"run {label} uses a precomputed kernel: held-out rows need their own "
                     "kernel values and cannot be scored")
-            if rec.problem.labels is None:
-                raise InvalidInputError(
-                    f"run {label}: held-out decision values need a classification problem")
         hv = (_holdout_values(a.problem, a.result, a.standardiser, X),
               _holdout_values(b.problem, b.result, b.standardiser, X))
     return compare_results(a.problem, a.result, b.problem, b.result, holdout_values=hv,

@@ -64,6 +64,10 @@ __all__ = [
     "apply",
     "report",
     "export_explanation",
+    "check_output_path",
+    "store_listing",
+    "clean_store",
+    "new_signing_keys",
 ]
 
 
@@ -104,7 +108,7 @@ def compare(
     a, b = load_run(run_a, store=store), load_run(run_b, store=store)
     hX = None
     if holdout is not None:
-        hold = _load_data(holdout, a.data.get("label_name"), "held-out data")
+        hold = _load_data(holdout, _split_column(a.data), "held-out data")
         hX = _align(hold, a.data.get("feature_names") or [], "held-out data")
     return compare_runs(a, b, holdout_X=hX, tolerances=tolerances, allow_mismatch=allow_mismatch)
 
@@ -163,6 +167,10 @@ def explain(
 
     rec = load_run(run, store=store)
     if points is None:
+        if rec.problem.labels is None:
+            from .explanation import kind_point_table
+
+            return kind_point_table(rec.problem, rec.result)
         return point_table(rec.problem, rec.result)
     names = list(rec.data.get("feature_names") or [])
     if isinstance(points, (str, Path)):
@@ -189,6 +197,14 @@ def leave_one_out(
     from .explanation import leave_one_out as _loo
 
     rec = load_run(run, store=store)
+    if rec.problem.labels is None:  # ε-regression / one-class: KindLeaveOneOut
+        from .explanation import kind_leave_one_out
+
+        if not rec.result.success:
+            raise InvalidInputError(f"run {rec.run_id} did not converge "
+                                    f"({rec.result.status.label}); leave-one-out needs a "
+                                    "converged run")
+        return kind_leave_one_out(rec.problem, rec.result)
     if progress is None:
         return _loo(rec.problem, rec.result)
 
@@ -213,14 +229,16 @@ def replay(run: str | RunRecord, iteration: int, *, store: Any = None) -> Any:
 
 @dataclass(frozen=True, eq=False)
 class VerifyOutcome:
-    """Result of :func:`verify`: integrity of the stored files and, optionally, a re-run.
+    """Result of :func:`verify`: integrity of the stored run and, optionally, a re-run.
 
-    ``integrity`` is the store's :class:`~solver.store.Verification` (``ok``, ``problems``);
-    ``reproduction`` the re-run's :class:`~solver.store.Reproduction` (None without
-    ``rerun``); ``rerun_run_id`` the id of the stored re-run (with ``keep_rerun``).
-    ``calibration`` the re-fitted probability calibration compared with the stored one
-    (runs trained with probabilities, with ``rerun``).
-    ``ok`` is True only when the files are intact, any re-run reproduced α bitwise or
+    ``integrity`` is the store's :class:`~solver.store.Verification` (``ok``, ``problems``,
+    ``signer``, ``trusted``, ``notes``); ``reproduction`` the re-run's
+    :class:`~solver.store.Reproduction` (None without ``rerun``); ``rerun_run_id`` the id
+    of the stored re-run (with ``keep_rerun``); ``audit_note`` why no ``run_verified``
+    entry was appended to the store's audit log (None when it was); ``calibration`` the
+    re-fitted probability calibration compared with the stored one (runs trained with
+    probabilities, with ``rerun``).
+    ``ok`` is True only when the run is intact, any re-run reproduced α bitwise or
     within the reproduction tolerance, and any calibration reproduced bitwise.
     """
 
@@ -228,6 +246,7 @@ class VerifyOutcome:
     integrity: Any
     reproduction: Any | None
     rerun_run_id: str | None = None
+    audit_note: str | None = None
     calibration: Mapping[str, Any] | None = None
 
     @property
@@ -241,28 +260,43 @@ class VerifyOutcome:
         return ok
 
 
+def _trusted_keys(trusted: Any) -> list[Any] | None:
+    from .store.signing import PublicKey, load_public_key
+
+    if trusted is None:
+        return None
+    items = [trusted] if isinstance(trusted, (str, Path, PublicKey)) else list(trusted)
+    keys = [k if isinstance(k, PublicKey) else load_public_key(k) for k in items]
+    return keys or None
+
+
 def verify(
     run: str, *, store: Any = None, rerun: Dataset | str | Path | None = None,
-    keep_rerun: bool = False,
+    keep_rerun: bool = False, trusted: Any = None,
 ) -> VerifyOutcome:
-    """Check a stored run's files (digests, chain to its parent) and optionally re-run it.
+    """Check a stored run and optionally re-run it.
 
+    The run is checked byte for byte against its manifest, against itself (certificate
+    recomputed from α, model rebuilt, trace replayed, manifest fields; see
+    :mod:`solver.store.semantic`), against the catalog and the audit log where they
+    hold its digest, and along its parent chain.  ``trusted`` (public-key file(s) from
+    :func:`new_signing_keys`) requires a valid signature by one of those keys.
     ``rerun`` is the training data (file or Dataset); it must match the stored
     fingerprint.  With ``keep_rerun`` the re-run is saved as a new run whose parent is
-    ``run``.
+    ``run``.  A ``run_verified`` (and ``run_rerun``) entry is appended to the store's
+    audit log when the store is writable; nothing is written on a read-only store.
     """
-    from .store import reproduce
+    from .store import auditlog, reproduce
 
     st = open_store(store)
-    integrity = st.verify(run)
+    keys = _trusted_keys(trusted)
+    integrity = st.verify(run, trusted=keys)
     reproduction = None
     new_id = None
     calibration = None
-    if rerun is not None:
-        if not integrity.ok:
-            return VerifyOutcome(run_id=run, integrity=integrity, reproduction=None)
-        rec = st.load(run)
-        ds = _load_data(rerun, rec.data.get("label_name"), "re-run data")
+    if rerun is not None and integrity.ok:
+        rec = st.load(run, trusted=keys)
+        ds = _load_data(rerun, _split_column(rec.data), "re-run data")
         reproduction = reproduce(rec, ds)
         if keep_rerun:
             new_id = st.save(reproduction.record, parent=run)
@@ -270,15 +304,53 @@ def verify(
             from .calibration.reproduce import recalibrate
 
             calibration = recalibrate(rec.attachments["calibration"], reproduction.record.problem)
+    note = None
+    if st.root.is_dir():
+        note = auditlog.append(st.root, "run_verified", run, {
+            "ok": bool(integrity.ok), "problems": len(integrity.problems),
+            "trusted": bool(integrity.trusted), "signer": integrity.signer})
+        if reproduction is not None:
+            note = auditlog.append(st.root, "run_rerun", run, {
+                "agreement": str(getattr(reproduction, "agreement", "")),
+                "new_run_id": new_id}) or note
     return VerifyOutcome(run_id=run, integrity=integrity, reproduction=reproduction,
-                         rerun_run_id=new_id, calibration=calibration)
+                         rerun_run_id=new_id, audit_note=note, calibration=calibration)
+
+
+def check_output_path(path: str | Path, *, store: Any = None, what: str = "--out") -> Path:
+    """``path`` made absolute, or :class:`~solver.errors.InvalidInputError` when it lies
+    inside a run folder (of ``store`` or any folder recognisable as a run) or names the
+    store's catalog or audit-log files.  Every command's output option goes through this."""
+    return open_store(store).check_output_path(path, what)
+
+
+def store_listing(*, store: Any = None, **filters: Any) -> Any:
+    """Runs matching ``filters`` plus the store's leftovers (:class:`~solver.store.Listing`):
+    ``.tmp-*`` folders of writers that may have been killed, SMO runs whose requested QP
+    challenger was never saved, and whether the catalog was current.  Never writes."""
+    return open_store(store).listing(**{k: v for k, v in filters.items() if v is not None})
+
+
+def clean_store(*, store: Any = None) -> list[str]:
+    """Remove the ``.tmp-*`` folders whose writing process no longer runs (this host);
+    returns their names.  Runs are never touched."""
+    return open_store(store).clean_temp()
+
+
+def new_signing_keys(name: str, directory: str | Path) -> tuple[Path, Path]:
+    """Write an Ed25519 key pair ``NAME.private.pem`` (mode 0600) / ``NAME.public.pem``."""
+    from .store.signing import new_key_pair
+
+    return new_key_pair(name, directory)
 
 
 @dataclass(frozen=True, eq=False)
 class ModelOutput:
     """Decision values and labels of a run's model on new data.
 
-    values : (m,) decision values f(x); labels : (m,) predicted label values;
+    values : (m,) decision values f(x) (ε-regression: the predictions; one-class: the signed
+    scores); labels : (m,) predicted label values (one-class: ``inlier`` / ``outlier``;
+    regression: None);
     truth : (m,) given labels or None; confusion : confusion matrix and accuracies when
     the data carried the label column, else None; fingerprint : of the scored data.
     probabilities : (m, k) class probabilities (columns in ``probability_labels`` order)
@@ -293,6 +365,7 @@ class ModelOutput:
     confusion: Mapping[str, Any] | None
     fingerprint: str
     source: str | None
+    kind: str = "binary_classification"
     probabilities: np.ndarray | None = None
     probability_labels: tuple[Any, ...] | None = None
     probability_disagreements: int | None = None
@@ -301,6 +374,7 @@ class ModelOutput:
         """Plain data (lists)."""
         out = {
             "run_id": self.run_id,
+            "kind": self.kind,
             "n": int(self.values.shape[0]),
             "fingerprint": self.fingerprint,
             "source": self.source,
@@ -353,6 +427,8 @@ def apply(
     """
     rec = load_run(run, store=store)
     names = list(rec.data.get("feature_names") or [])
+    if rec.problem.labels is None:
+        return _apply_kind(rec, data, names, label)
     if isinstance(data, (str, Path)) and label is None:
         lab = rec.data.get("label_name")
         label = lab if _has_column(Path(data), lab) else None
@@ -374,6 +450,37 @@ def apply(
                        confusion=conf, fingerprint=_fingerprint(ds), source=ds.source,
                        probabilities=probs, probability_labels=plabels,
                        probability_disagreements=disagree)
+
+
+def _split_column(data: Mapping[str, Any]) -> str | None:
+    """The column a run's training file had split off: label, target or known outliers."""
+    return data.get("label_name") or data.get("target_name") or data.get("outlier_column")
+
+
+def _apply_kind(rec: RunRecord, data: Any, names: list[str], label: str | None) -> ModelOutput:
+    """ε-regression (values = predictions, no labels) or one-class (values = signed scores,
+    labels ``inlier`` / ``outlier``); with the target or known-outlier column present the
+    held-out facts go into ``confusion`` (regression: RMSE, MAE, R², tube coverage)."""
+    from .measures import novelty_measures, regression_measures
+    from .problem import REGRESSION_KIND
+    from .training_kinds import known_outliers, numeric_column
+
+    col = label or rec.data.get("target_name") or rec.data.get("known_outlier_column")
+    if isinstance(data, (str, Path)) and col is not None and not _has_column(Path(data), col):
+        col = None
+    ds = _load_data(data, col, "data the model is applied to")
+    X = _align(ds, names, "data the model is applied to")
+    values = model_from_solution(rec.problem, rec.result, rec.standardiser).values(X)
+    if rec.problem.kind == REGRESSION_KIND:
+        labels = np.full(values.shape[0], None, dtype=object)
+        facts = None if ds.labels is None else regression_measures(
+            numeric_column(ds, "target"), values, epsilon=float(rec.problem.info["epsilon"]))
+    else:
+        labels = np.where(values >= 0, "inlier", "outlier").astype(object)
+        facts = novelty_measures(values, None if ds.labels is None else known_outliers(ds))
+    return ModelOutput(run_id=rec.run_id, values=values, labels=labels, truth=ds.labels,
+                       confusion=facts, fingerprint=_fingerprint(ds), source=ds.source,
+                       kind=rec.problem.kind)
 
 
 def _stored_comparison(second: RunRecord, first: RunRecord) -> Any | None:
@@ -413,8 +520,28 @@ def report(
 
             comparison = compare_runs(recs[0], recs[1])
     out = Path(out_dir) if out_dir is not None else Path(st.root) / "reports" / str(recs[0].run_id)
-    return write_report(recs, out, formats=tuple(formats), comparison=comparison, notes=notes,
-                        stem=stem)
+    st.check_output_path(out, "report folder")
+    paths = write_report(recs, out, formats=tuple(formats), comparison=comparison, notes=notes,
+                         stem=stem)
+    _log_report(st, recs, paths)
+    return paths
+
+
+def _log_report(st: Any, recs: Sequence[RunRecord], paths: Mapping[str, Path]) -> None:
+    import hashlib
+
+    from .store import auditlog
+
+    if not st.root.is_dir():
+        return
+    files = {}
+    for k, p in paths.items():
+        try:
+            files[k] = {"path": str(p), "sha256": hashlib.sha256(Path(p).read_bytes()).hexdigest()}
+        except OSError:
+            files[k] = {"path": str(p), "sha256": None}
+    auditlog.append(st.root, "report_written", recs[0].run_id,
+                    {"runs": [r.run_id for r in recs], "files": files})
 
 
 def export_explanation(
@@ -425,9 +552,10 @@ def export_explanation(
     for fmt in formats:
         if fmt not in ("csv", "parquet"):
             raise InvalidInputError(f"unknown table format {fmt!r}; choose csv or parquet")
+    out = check_output_path(out_dir, store=store if not isinstance(run, RunRecord) else store,
+                            what="explanation folder")
     rec = load_run(run, store=store)
     table = explain(rec)
-    out = Path(out_dir)
     out.mkdir(parents=True, exist_ok=True)
     stem = f"points-{rec.run_id or 'unsaved'}"
     paths: dict[str, Path] = {}

@@ -31,3 +31,11 @@ class DataWarning(UserWarning):
 
     Examples: conflicting duplicates, constant or unscaled features.
     """
+
+
+class StoreWarning(UserWarning):
+    """A run was saved, but a side record was not brought up to date.
+
+    Examples: the catalog was locked or unwritable (it is then stale until the next save
+    indexes the folder), the audit log could not be appended to.
+    """

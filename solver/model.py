@@ -1,4 +1,4 @@
-"""The trained classifier: support vectors, coefficients, bias, kernel, standardiser, labels."""
+"""The trained model: support vectors, coefficients, bias, kernel, standardiser, labels."""
 
 from __future__ import annotations
 
@@ -65,10 +65,14 @@ class Standardiser:
 
 @dataclass(frozen=True, eq=False)
 class Model:
-    """f(x) = Σ_s coef_s K(sv_s, standardise(x)) + bias; label = positive where f(x) > 0.
+    """f(x) = Σ_s coef_s K(sv_s, standardise(x)) + bias.
 
-    ``support_rows`` (k,) are training row numbers of the support vectors,
-    ``support_points`` (k, d) their standardised features, ``coefficients`` (k,) αᵢyᵢ.
+    Classification: label = positive where f(x) > 0.  ε-regression: f(x) is the prediction.
+    One-class: f(x) is the signed score, inlier where f(x) ≥ 0 (``labels`` is None for both).
+    ``support_rows`` (k,) are training (data) row numbers of the support vectors,
+    ``support_points`` (k, d) their standardised features, ``coefficients`` (k,) the sum of
+    αᵢyᵢ over the variables reading that row (αᵢyᵢ for classification, α⁺ᵢ − α⁻ᵢ for
+    ε-regression, αᵢ for one-class).
     """
 
     support_rows: np.ndarray
@@ -77,7 +81,7 @@ class Model:
     bias: float
     kernel: Kernel
     standardiser: Standardiser
-    labels: tuple[Hashable, Hashable]
+    labels: tuple[Hashable, Hashable] | None
 
     def values(
         self, X: np.ndarray, *, standardised: bool = False, block_rows: int = 4096
@@ -93,7 +97,12 @@ class Model:
 
     def classify(self, X: np.ndarray, *, standardised: bool = False) -> np.ndarray:
         """Label values for rows of ``X``: positive label where f(x) > 0, else negative."""
-        f = self.values(X, standardised=standardised)
+        return self.classify_values(self.values(X, standardised=standardised))
+
+    def classify_values(self, f: np.ndarray) -> np.ndarray:
+        """Label values for decision values ``f``: positive where f > 0, else negative."""
+        if self.labels is None:
+            raise InvalidInputError("this model has no class labels (regression or one-class)")
         neg, pos = self.labels
         return np.where(f > 0, np.asarray(pos, dtype=object), np.asarray(neg, dtype=object))
 
@@ -101,15 +110,27 @@ class Model:
 def model_from_solution(
     problem: DualProblem, result: SolveResult, standardiser: Standardiser | None = None
 ) -> Model:
-    """Model from a solved classification problem (support vectors: α above its lower bound)."""
-    if problem.labels is None:
-        raise InvalidInputError(f"problem kind {problem.kind!r} has no label mapping")
+    """Model from a solved problem (support vectors: α above its lower bound).
+
+    Variables that read the same data row (ε-regression's α⁺ᵢ and α⁻ᵢ) are summed into one
+    coefficient for that row.
+    """
     c = result.certificate
-    rows = np.flatnonzero(~c.at_lower)
+    if problem.rows is None:
+        rows = np.flatnonzero(~c.at_lower)
+        coef = (result.alpha[rows] * problem.y[rows]).copy()
+    else:
+        m = problem.X.shape[0]
+        sv = ~np.asarray(c.at_lower, dtype=bool)
+        dr = problem.data_rows
+        rows = np.flatnonzero(np.bincount(dr[sv], minlength=m) > 0)
+        per_row = np.zeros(m)
+        np.add.at(per_row, dr[sv], (result.alpha * problem.y)[sv])
+        coef = per_row[rows]
     return Model(
         support_rows=rows,
         support_points=problem.X[rows].copy(),
-        coefficients=(result.alpha[rows] * problem.y[rows]).copy(),
+        coefficients=coef,
         bias=float(result.bias),
         kernel=problem.kernel,
         standardiser=standardiser or Standardiser.identity(problem.X.shape[1]),

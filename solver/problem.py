@@ -26,7 +26,12 @@ import numpy as np
 from .errors import InvalidInputError
 from .kernels import Kernel, PrecomputedKernel
 
-__all__ = ["DualProblem", "binary_classification", "index_features", "serial_dot"]
+__all__ = ["DualProblem", "binary_classification", "regression", "one_class", "index_features",
+           "serial_dot", "REGRESSION_KIND", "ONE_CLASS_KIND"]
+
+#: ``DualProblem.kind`` of the problems built by :func:`regression` and :func:`one_class`.
+REGRESSION_KIND = "epsilon_regression"
+ONE_CLASS_KIND = "one_class"
 
 
 def serial_dot(a: np.ndarray, b: np.ndarray) -> float:
@@ -67,6 +72,11 @@ class DualProblem:
     kernel : the kernel, with every default parameter already resolved.
     kind : problem type, e.g. ``"binary_classification"``.
     info : plain-data description of how the problem was built (C, weights, label mapping).
+    rows : optional (n,) int64 index map: variable i is evaluated on data row ``X[rows[i]]``,
+        so a problem with several variables per data row (ε-regression has two) holds its
+        data once.  ``None`` means variable i reads row i; then ``X`` has n rows, otherwise
+        ``X`` has any number m ≥ 1 of rows and every entry of ``rows`` is in [0, m).
+        Every kernel access (kernel and Q blocks, the diagonal, :meth:`features`) honours it.
     """
 
     X: np.ndarray
@@ -78,6 +88,7 @@ class DualProblem:
     kernel: Kernel
     kind: str
     info: Mapping[str, Any]
+    rows: np.ndarray | None = None
 
     def __post_init__(self) -> None:
         X = np.array(self.X, dtype=np.float64, order="C")  # private copy, frozen below
@@ -86,6 +97,22 @@ class DualProblem:
         X.setflags(write=False)
         object.__setattr__(self, "X", X)
         n = X.shape[0]
+        if self.rows is not None:
+            try:
+                r = np.array(self.rows).reshape(-1)
+            except (TypeError, ValueError):
+                raise InvalidInputError("rows must be integer row indices") from None
+            if r.size < 1 or r.dtype.kind not in "iu":
+                raise InvalidInputError("rows must be a non-empty array of integer row indices")
+            r = r.astype(np.int64)
+            bad = np.flatnonzero((r < 0) | (r >= n))
+            if bad.size:
+                raise InvalidInputError(
+                    f"rows entry {int(bad[0])} (0-based) is {int(r[bad[0]])}, outside the "
+                    f"{n} data rows")
+            r.setflags(write=False)
+            object.__setattr__(self, "rows", r)
+            n = int(r.size)
         for name in ("y", "p", "lower", "upper"):
             object.__setattr__(self, name, _vec(getattr(self, name), n, name))
         if not np.all(np.abs(self.y) == 1.0):
@@ -101,12 +128,23 @@ class DualProblem:
 
     @property
     def n(self) -> int:
-        """Number of training points (dual variables)."""
-        return int(self.X.shape[0])
+        """Number of dual variables (training points for classification)."""
+        return int(self.X.shape[0] if self.rows is None else self.rows.shape[0])
+
+    @property
+    def data_rows(self) -> np.ndarray:
+        """(n,) data row of each variable (``arange(n)`` when there is no index map)."""
+        return np.arange(self.n, dtype=np.int64) if self.rows is None else self.rows
+
+    def features(self, idx: np.ndarray | slice | None = None) -> np.ndarray:
+        """Feature rows of variables ``idx`` (all when None), through the index map."""
+        if self.rows is None:
+            return self.X if idx is None else self.X[idx]
+        return self.X[self.rows if idx is None else self.rows[idx]]
 
     def kernel_block(self, rows: np.ndarray | slice, cols: np.ndarray | slice) -> np.ndarray:
-        """K(X[rows], X[cols]), shape ``(len(rows), len(cols))``."""
-        return self.kernel.block(self.X[rows], self.X[cols])
+        """K(x_rows, x_cols) for variables ``rows``, ``cols``; shape (len(rows), len(cols))."""
+        return self.kernel.block(self.features(rows), self.features(cols))
 
     def q_block(self, rows: np.ndarray | slice, cols: np.ndarray | slice) -> np.ndarray:
         """Q[rows, cols] = y_r y_c K(x_r, x_c)."""
@@ -116,17 +154,28 @@ class DualProblem:
         return K
 
     def kernel_diag(self) -> np.ndarray:
-        """K(x_i, x_i) for every training point, shape ``(n,)`` (equals diag Q)."""
-        return self.kernel.diag(self.X)
+        """K(x_i, x_i) for every variable, shape ``(n,)`` (equals diag Q)."""
+        d = self.kernel.diag(self.X)
+        return d if self.rows is None else d[self.rows]
 
     def q_times(self, v: np.ndarray, *, block_rows: int = 2048) -> np.ndarray:
-        """Q v computed in row blocks of ``block_rows`` (memory O(block_rows · n))."""
+        """Q v computed in row blocks of ``block_rows`` over the columns where v ≠ 0.
+
+        (Q v)_i = y_i Σ_{j ∈ S} K(x_i, x_j) y_j v_j with S = {j : v_j ≠ 0}: for a dual
+        solution v = α this is K[:, S]·(αy)_S, the support vectors only, so the cost is
+        O(n·|S|·d) rather than O(n²·d).  Chosen over the solver's final gradient because it
+        is exact for any v and independent of the solver's own bookkeeping (a stale or
+        shrunk gradient cannot leak into the evidence).  Memory O(block_rows · |S|).
+        """
         v = np.asarray(v, dtype=np.float64)
-        out = np.empty(self.n)
-        yv = self.y * v
+        out = np.zeros(self.n)
+        cols = np.flatnonzero(v)
+        if cols.size == 0:
+            return out
+        yv = (self.y * v)[cols]
         for s in range(0, self.n, block_rows):
             e = min(self.n, s + block_rows)
-            out[s:e] = self.y[s:e] * (self.kernel_block(slice(s, e), slice(None)) @ yv)
+            out[s:e] = self.y[s:e] * (self.kernel_block(slice(s, e), cols) @ yv)
         return out
 
     def gradient(self, alpha: np.ndarray) -> np.ndarray:
@@ -169,6 +218,7 @@ class DualProblem:
         return {
             "kind": self.kind,
             "n": self.n,
+            **({"n_data_rows": int(self.X.shape[0])} if self.rows is not None else {}),
             "n_features": int(self.X.shape[1]),
             "delta": self.delta,
             "kernel": self.kernel.describe(),
@@ -194,6 +244,33 @@ def _is_number(v: Any) -> bool:
 def _plain(v: Hashable) -> Any:
     """Label as JSON-friendly plain data (numpy scalars → Python scalars)."""
     return v.item() if isinstance(v, np.generic) else v
+
+
+def _sample_weights(sample_weight: Any, n: int) -> np.ndarray:
+    """Validated (n,) positive finite sample weights."""
+    try:
+        sw = np.asarray(sample_weight, dtype=np.float64).reshape(-1)
+    except (TypeError, ValueError):
+        raise InvalidInputError("sample weights must be numbers") from None
+    if sw.shape != (n,):
+        raise InvalidInputError(f"sample weights must have {n} entries, got {sw.size}")
+    bad = np.flatnonzero(~(np.isfinite(sw) & (sw > 0)))
+    if bad.size:
+        raise InvalidInputError(
+            f"sample weight at row index {int(bad[0])} (0-based) must be finite and > 0, "
+            f"got {float(sw[bad[0]])!r}"
+        )
+    return sw
+
+
+def _features(X: Any) -> np.ndarray:
+    try:
+        X = np.ascontiguousarray(X, dtype=np.float64)
+    except (TypeError, ValueError):
+        raise InvalidInputError("X must be numeric") from None
+    if X.ndim != 2 or X.shape[0] < 1:
+        raise InvalidInputError(f"X must be 2-D (rows, features), got shape {X.shape}")
+    return X
 
 
 def binary_classification(
@@ -255,19 +332,7 @@ def binary_classification(
                 )
             upper[labels == lab] *= float(w)
     if sample_weight is not None:
-        try:
-            sw = np.asarray(sample_weight, dtype=np.float64).reshape(-1)
-        except (TypeError, ValueError):
-            raise InvalidInputError("sample weights must be numbers") from None
-        if sw.shape != (n,):
-            raise InvalidInputError(f"sample weights must have {n} entries, got {sw.size}")
-        bad = np.flatnonzero(~(np.isfinite(sw) & (sw > 0)))
-        if bad.size:
-            raise InvalidInputError(
-                f"sample weight at row index {int(bad[0])} (0-based) must be finite and > 0, "
-                f"got {float(sw[bad[0]])!r}"
-            )
-        upper *= sw
+        upper *= _sample_weights(sample_weight, n)
     if not isinstance(kernel, PrecomputedKernel):
         kernel = kernel.with_defaults(X)
     info = {
@@ -282,4 +347,143 @@ def binary_classification(
     return DualProblem(
         X=X, y=y, p=-np.ones(n), lower=np.zeros(n), upper=upper, delta=0.0,
         kernel=kernel, kind="binary_classification", info=info,
+    )
+
+
+def _positive(value: Any, name: str, *, allow_zero: bool = False) -> float:
+    ok = _is_number(value) and math.isfinite(float(value))
+    if not ok or float(value) < 0 or (float(value) == 0 and not allow_zero):
+        rel = ">= 0" if allow_zero else "> 0"
+        raise InvalidInputError(f"{name} must be a finite number {rel}, got {value!r}")
+    return float(value)
+
+
+def regression(
+    X: np.ndarray,
+    target: Sequence[float] | np.ndarray,
+    *,
+    kernel: Kernel,
+    C: float = 1.0,
+    epsilon: float = 0.1,
+    sample_weight: np.ndarray | None = None,
+) -> DualProblem:
+    """ε-support-vector regression dual in the 2n-variable form.
+
+    Variables 0..n−1 are α⁺ (y = +1, p = ε − t), variables n..2n−1 are α⁻ (y = −1,
+    p = ε + t); both read data row i mod n through the index map ``rows``, so ``X`` is held
+    once.  Δ = 0 and 0 ≤ α ≤ C·wᵢ.  Then Q = [[K, −K], [−K, K]] and the model is
+    f(x) = Σᵢ (α⁺ᵢ − α⁻ᵢ) K(xᵢ, x) + b.
+
+    Parameters
+    ----------
+    X : (n, d) feature rows.
+    target : (n,) finite numeric target t, not constant.
+    kernel : kernel; unset parameters (e.g. gamma) are resolved from ``X`` and recorded.
+    C : penalty, > 0.
+    epsilon : half-width of the insensitive tube, ≥ 0 (target units).
+    sample_weight : optional (n,) positive factors scaling C per point (both variables).
+
+    Notes
+    -----
+    The dual (Vapnik 1995; Smola & Schölkopf 2004, Stat. Comput. 14, eq. 10; Schölkopf &
+    Smola 2002, ch. 9) is
+
+        min ½ (α⁺ − α⁻)ᵀK(α⁺ − α⁻) + ε eᵀ(α⁺ + α⁻) − tᵀ(α⁺ − α⁻)
+        s.t. eᵀ(α⁺ − α⁻) = 0,  0 ≤ α⁺, α⁻ ≤ C·w.
+
+    Its primal is min ½‖w‖² + Σ Cwᵢ (ξᵢ + ξᵢ*) subject to tᵢ − f(xᵢ) ≤ ε + ξᵢ,
+    f(xᵢ) − tᵢ ≤ ε + ξᵢ*, ξ, ξ* ≥ 0; the certificate evaluates it from the gradient.
+    ν-regression needs a second equality constraint (eᵀ(α⁺ + α⁻) = C·ν·n), which the
+    general form here does not carry; it is not built.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from solver.kernels import LinearKernel
+    >>> prob = regression(np.array([[0.0], [1.0], [2.0]]), [1.0, 3.0, 5.0],
+    ...                   kernel=LinearKernel(), C=100.0, epsilon=0.0)
+    >>> prob.n, prob.X.shape[0]
+    (6, 3)
+    """
+    X = _features(X)
+    n = X.shape[0]
+    try:
+        t = np.array(target, dtype=np.float64).reshape(-1)
+    except (TypeError, ValueError):
+        raise InvalidInputError("the target must be numeric") from None
+    if t.shape != (n,):
+        raise InvalidInputError(f"the target must have {n} entries (one per row of X), "
+                                f"got {t.size}")
+    bad = np.flatnonzero(~np.isfinite(t))
+    if bad.size:
+        raise InvalidInputError(f"the target has a non-finite value at row index {int(bad[0])} "
+                                "(0-based)")
+    if n > 1 and np.all(t == t[0]):
+        raise InvalidInputError(f"the target is constant ({float(t[0])!r} on every row): "
+                                "there is nothing to regress")
+    C = _positive(C, "C")
+    epsilon = _positive(epsilon, "epsilon", allow_zero=True)
+    upper = np.full(n, C)
+    if sample_weight is not None:
+        upper *= _sample_weights(sample_weight, n)
+    if not isinstance(kernel, PrecomputedKernel):
+        kernel = kernel.with_defaults(X)
+    info = {
+        "C": C, "epsilon": epsilon, "sample_weight": sample_weight is not None,
+        "variables": "alpha_plus (rows 0..n-1), alpha_minus (rows n..2n-1)",
+        "target": {"mean": float(t.mean()), "std": float(t.std()), "min": float(t.min()),
+                   "max": float(t.max())},
+    }
+    rows = np.concatenate([np.arange(n), np.arange(n)]).astype(np.int64)
+    return DualProblem(
+        X=X, y=np.concatenate([np.ones(n), -np.ones(n)]),
+        p=np.concatenate([epsilon - t, epsilon + t]), lower=np.zeros(2 * n),
+        upper=np.concatenate([upper, upper]), delta=0.0, kernel=kernel,
+        kind=REGRESSION_KIND, info=info, rows=rows,
+    )
+
+
+def one_class(X: np.ndarray, *, kernel: Kernel, nu: float = 0.5) -> DualProblem:
+    """One-class (novelty) dual of Schölkopf et al. (2001), scaled so that 0 ≤ α ≤ 1.
+
+    Q = K, p = 0, y = e, Δ = ν·n, 0 ≤ αᵢ ≤ 1.  This is the paper's problem (Δ = 1,
+    0 ≤ α ≤ 1/(νn)) multiplied through by νn: α = νn·α_paper, the objective by (νn)², and
+    the decision value f(x) = Σ αᵢK(xᵢ, x) − ρ by νn, so ρ_paper = ρ/(νn) and the sign of
+    f (inlier where f ≥ 0) is the same.  With bounds of 1 the stopping tolerance means
+    what it means for classification with C = 1.  The bias b of the certificate is −ρ.
+
+    Parameters
+    ----------
+    X : (n, d) feature rows of the reference (released) batches.
+    kernel : kernel; unset parameters are resolved from ``X`` and recorded.
+    nu : ν in (0, 1]: an upper bound on the share of training outliers and a lower bound
+        on the share of support vectors (Schölkopf et al. 2001, Proposition 4).
+
+    Notes
+    -----
+    Dual: min ½αᵀKα s.t. eᵀα = νn, 0 ≤ α ≤ 1.  Primal (same scaling):
+    min ½‖w‖² + Σ ξᵢ − νn·ρ s.t. ⟨w, φ(xᵢ)⟩ ≥ ρ − ξᵢ, ξ ≥ 0 (Schölkopf, Platt, Shawe-Taylor,
+    Smola & Williamson 2001, Neural Computation 13, eq. 3, times νn).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from solver.kernels import RBFKernel
+    >>> prob = one_class(np.array([[0.0], [1.0], [2.0], [3.0]]), kernel=RBFKernel(gamma=1.0),
+    ...                  nu=0.5)
+    >>> prob.delta, float(prob.upper.max())
+    (2.0, 1.0)
+    """
+    X = _features(X)
+    n = X.shape[0]
+    if not (_is_number(nu) and math.isfinite(float(nu)) and 0.0 < float(nu) <= 1.0):
+        raise InvalidInputError(f"nu must be a number in (0, 1], got {nu!r}")
+    nu = float(nu)
+    if not isinstance(kernel, PrecomputedKernel):
+        kernel = kernel.with_defaults(X)
+    info = {"nu": nu, "scaling": "alpha = nu*n*alpha_paper, rho = nu*n*rho_paper",
+            "scale": nu * n}
+    return DualProblem(
+        X=X, y=np.ones(n), p=np.zeros(n), lower=np.zeros(n), upper=np.ones(n),
+        delta=nu * n, kernel=kernel, kind=ONE_CLASS_KIND, info=info,
     )

@@ -315,7 +315,7 @@ class _Engine:
         gram_mb = n * n * itemsize / 2**20
         # data for kernel rows: features as (d, n) columns
         if code != _k.KERNEL_EXTERNAL:
-            self.XK = np.array(problem.X.T, order="C")  # own writable copy: one compiled type
+            self.XK = np.array(problem.features().T, order="C")  # own copy, columns by variable
         else:
             self.XK = np.zeros((0, n))
         self.sq = np.zeros(n)
@@ -323,7 +323,7 @@ class _Engine:
         self.acc = np.zeros(_k.ROW_CHUNK)
         self.ibuf = np.zeros(max(_k.ROW_CHUNK, _k.CHUNK), dtype=np.int64)
         if self.precomputed:
-            idx = problem.X[:, 0].astype(np.int64)
+            idx = problem.features()[:, 0].astype(np.int64)
             self.mode = 0
             self.gram = np.array(kern.gram_matrix[np.ix_(idx, idx)], dtype=dtype, order="C")
             self.rowslot = np.arange(n, dtype=np.int64)
@@ -381,7 +381,7 @@ class _Engine:
         elif self.precomputed:
             diag = np.diagonal(self.gram).astype(np.float64)
         else:
-            diag = np.asarray(kern.diag(problem.X), dtype=np.float64)
+            diag = np.asarray(problem.kernel_diag(), dtype=np.float64)
         self.diag = diag.astype(dtype).astype(np.float64)
         # gradient in the form F = −(Kβ + q)
         self.F = -self.q.copy()
@@ -492,10 +492,10 @@ class _Engine:
                 self.fstate[_k.FS_GAMMA], self.fstate[_k.FS_OFFSET],
                 int(self.istate[_k.IS_DEGREE]), self.acc, self.ibuf)
             return
-        X = self.problem.X
+        P = self.problem
         for o in rows[self.rowslot[rows] < 0]:
             k = int(self.istate[_k.IS_POOL_USED])
-            self.gram[k] = self.problem.kernel.block(X[o:o + 1], X)[0]
+            self.gram[k] = P.kernel_block(slice(o, o + 1), slice(None))[0]
             self.rowslot[o] = k
             self.istate[_k.IS_POOL_USED] = k + 1
             self.external_rows += 1
@@ -512,21 +512,19 @@ class _Engine:
             _k.gram_times(self.gram, self.rowslot, src,
                           np.ascontiguousarray(coef, dtype=np.float64), targets, out)
             return out
-        X = self.problem.X
         for s in range(0, targets.size, 1024):
             t = targets[s:s + 1024]
-            out[s:s + 1024] = self.problem.kernel.block(X[t], X[src]) @ coef
+            out[s:s + 1024] = self.problem.kernel_block(t, src) @ coef
         return out
 
     def supply_row(self) -> None:
         """Evaluate the row an external (Python) kernel was asked for."""
         o = int(self.istate[_k.IS_NEED_ORIG])
-        X = self.problem.X
         if self.mode == 0:
             self._ensure_rows(np.array([o], dtype=np.int64))
         else:
             a = self.active
-            self.ext_row[:a] = self.problem.kernel.block(X[o:o + 1], X[self.perm[:a]])[0]
+            self.ext_row[:a] = self.problem.kernel_block(slice(o, o + 1), self.perm[:a])[0]
             self.istate[_k.IS_EXT_ORIG] = o
             self.external_rows += 1
 
@@ -971,7 +969,7 @@ def _exact_gradient(problem: DualProblem, alpha: np.ndarray) -> np.ndarray:
             blk = problem.kernel_block(slice(s, s + 1024), sv)
             out[s:s + 1024] = blk @ yb[sv]
         return problem.y * out + problem.p
-    XK = np.array(problem.X.T, order="C")
+    XK = np.array(problem.features().T, order="C")
     sq = np.zeros(problem.n)
     _k.self_dots(XK, sq)
     F = np.zeros(problem.n)

@@ -20,6 +20,7 @@ class Status(enum.IntEnum):
     NUMERICAL_ERROR = 4
     SINGULAR_KKT = 5
     STOPPED_BY_CALLBACK = 6
+    NOT_OPTIMAL = 7
 
     @property
     def label(self) -> str:
@@ -43,6 +44,7 @@ MESSAGES: dict[Status, str] = {
     Status.NUMERICAL_ERROR: "stopped on a non-finite or inconsistent intermediate value",
     Status.SINGULAR_KKT: "the interior-point Newton system became singular",
     Status.STOPPED_BY_CALLBACK: "stopped on request of a progress callback",
+    Status.NOT_OPTIMAL: "a supplied (external) solution that does not meet the optimality test",
 }
 
 

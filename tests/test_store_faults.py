@@ -169,3 +169,105 @@ def test_eight_concurrent_writers_lose_nothing(tmp_path) -> None:
         v = store.verify(rid)
         assert v.ok, v.problems
     assert store.temp_folders() == []
+
+
+ZYGOTE = r"""
+import contextlib, io, os, sys, time
+sys.path[:0] = [{root!r}]
+os.environ["KKTRACE_THREADS"] = "1"
+import solver.cli
+data, store, scratch = sys.argv[1], sys.argv[2], sys.argv[3]
+argv = ["train", data, "--label", "y", "--solver", "both", "--quiet", "--store"]
+with contextlib.redirect_stdout(io.StringIO()):
+    solver.cli.main(argv + [scratch])  # compile and load everything once, before any fork
+print("ready", flush=True)
+for line in sys.stdin:
+    cmd = line.split()
+    if cmd[0] == "go":
+        t0 = time.monotonic()
+        pid = os.fork()
+        if pid == 0:
+            devnull = os.open(os.devnull, os.O_WRONLY)
+            os.dup2(devnull, 1)
+            os.dup2(devnull, 2)
+            os._exit(solver.cli.main(argv + [store]))
+        print(pid, flush=True)
+    elif cmd[0] == "wait":
+        _, status = os.waitpid(int(cmd[1]), 0)
+        sig = os.WTERMSIG(status) if os.WIFSIGNALED(status) else 0
+        print(sig, time.monotonic() - t0, flush=True)
+"""
+
+
+def _small_csv(path: Path, rng: np.random.Generator, n: int = 120) -> Path:
+    X = rng.normal(size=(n, 3))
+    y = np.where(X[:, 0] + 0.5 * X[:, 1] + 0.3 * rng.normal(size=n) > 0, "pass", "fail")
+    lines = ["a,b,c,y"] + [f"{r[0]:.6f},{r[1]:.6f},{r[2]:.6f},{lab}" for r, lab in zip(X, y,
+                                                                                    strict=True)]
+    path.write_text("\n".join(lines) + "\n")
+    return path
+
+
+def test_sigkilled_train_both_leaves_verifiable_runs_and_cleanable_temps(tmp_path) -> None:
+    """>= 50 SIGKILLs at seeded random moments of ``kktrace train --solver both``.
+
+    A warmed-up parent forks one ``train`` per round (so every round is the same few
+    tenths of a second of work); the kill lands at a uniform fraction 0 … 1.2 of the
+    measured duration of an unkilled round.  Afterwards every listed run verifies (digests
+    and the run against itself), every SMO run either has its QP challenger or is listed
+    as missing it, the audit log's chain is intact, and ``clean`` leaves no ``.tmp-*``.
+    """
+    import signal
+
+    from solver.store.auditlog import check_log
+
+    rng = np.random.default_rng(20261202)
+    data = _small_csv(tmp_path / "batches.csv", rng)
+    store = tmp_path / "store"
+    z = subprocess.Popen([sys.executable, "-c", ZYGOTE.format(root=ROOT), str(data), str(store),
+                          str(tmp_path / "scratch")], stdin=subprocess.PIPE,
+                         stdout=subprocess.PIPE, text=True)
+
+    def ask(line: str) -> str:
+        z.stdin.write(line + "\n")
+        z.stdin.flush()
+        return z.stdout.readline().strip()
+
+    try:
+        assert z.stdout.readline().strip() == "ready"
+        took = []
+        for _ in range(3):  # unkilled rounds: how long one train takes here, now
+            pid = ask("go")
+            sig, secs = ask(f"wait {pid}").split()
+            assert sig == "0"
+            took.append(float(secs))
+        span = float(np.median(took))
+        kills = rounds = 0
+        while kills < 50:
+            rounds += 1
+            assert rounds < 200, f"only {kills} kills landed in {rounds} rounds"
+            pid = ask("go")
+            time.sleep(float(rng.uniform(0.0, 1.2)) * span)
+            os.kill(int(pid), signal.SIGKILL)
+            sig, _ = ask(f"wait {pid}").split()
+            kills += sig == str(int(signal.SIGKILL))
+    finally:
+        z.stdin.close()
+        z.wait(timeout=60)
+    st = RunStore(store)
+    listing = st.listing()
+    ids = [r["run_id"] for r in listing.rows]
+    assert len(ids) >= 6  # unkilled rounds and late kills saved complete runs
+    for rid in ids:
+        v = st.verify(rid)
+        assert v.ok, (rid, v.problems)
+    qp_parents = {r["parent_id"] for r in listing.rows if r["solver"] == "qp"}
+    missing = {m["run_id"] for m in listing.missing_challengers}
+    for r in listing.rows:
+        if r["solver"] == "smo":
+            assert (r["run_id"] in qp_parents) != (r["run_id"] in missing), r["run_id"]
+    assert check_log(store)[0] == []
+    assert all(not t["writer_running"] for t in listing.temp_folders)
+    st.clean_temp()
+    assert st.temp_folders() == []
+    assert [r["run_id"] for r in st.runs()] == ids

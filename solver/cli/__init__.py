@@ -23,7 +23,8 @@ from ._shared import (
 )
 
 #: command modules, in the order their commands are listed by ``kktrace --help``
-COMMAND_MODULES = ("train", "inspect", "compare", "explain", "verify", "apply", "report")
+COMMAND_MODULES = ("train", "inspect", "compare", "explain", "verify", "apply", "report",
+                   "exchange", "upkeep")
 
 
 def build_parser() -> argparse.ArgumentParser:

@@ -21,6 +21,8 @@ _APPLY_EXAMPLES = """examples:
 def cmd_apply(args: argparse.Namespace) -> int:
     import solver
 
+    if args.out:
+        solver.check_output_path(args.out, store=args.store)
     sc = solver.apply(args.run, args.data, store=args.store, label=args.label,
                       probabilities=args.probabilities)
     if args.out:
@@ -30,6 +32,8 @@ def cmd_apply(args: argparse.Namespace) -> int:
         return EXIT_OK
     n = len(sc.values)
     print(f"applied run {args.run} to {n} rows of {sc.source or 'the data'} ")
+    if sc.kind != "binary_classification":
+        return _print_kind(sc, args)
     if sc.confusion is not None:
         c = sc.confusion
         print(f"  accuracy {c['accuracy']:.3f}, balanced accuracy {c['balanced_accuracy']:.3f}")
@@ -60,11 +64,47 @@ def _prob_column(label: Any) -> str:
     return f"probability_{label}"
 
 
+def _print_kind(sc: Any, args: argparse.Namespace) -> int:
+    f = sc.confusion
+    if sc.kind == "epsilon_regression":
+        if f is not None:
+            r2 = "n/a" if f["r2"] is None else f"{f['r2']:.4f}"
+            print(f"  RMSE {f['rmse']:.4g}, MAE {f['mae']:.4g}, R² {r2}, inside the ε-tube "
+                  f"(ε = {f['epsilon']:g}) {f['tube_coverage']:.3f}")
+        rows = [f"{i:<4d} {v:+.6f}" for i, v in enumerate(sc.values.tolist())]
+        head = "row  prediction"
+    else:
+        print(f"  flagged {f['n_flagged']} of {f['n']} as outliers ({f['rule']})")
+        if f.get("confusion"):
+            c = f["confusion"]
+            print(f"  known outliers: flagged {c['flagged_known']}, missed {c['missed']}; "
+                  f"others: false alarms {c['flagged_unknown']}, passed {c['passed']}")
+        rows = [f"{i:<4d} {v:+.6f}  {lab}"
+                for i, (v, lab) in enumerate(zip(sc.values.tolist(), sc.labels.tolist(),
+                                                 strict=True))]
+        head = "row  score      flag"
+    if args.out:
+        print(f"  outputs written to {args.out}")
+    else:
+        print("\n".join([head, *rows]))
+    return EXIT_OK
+
+
 def _write_outputs(sc: Any, path: Path) -> None:
     import csv
 
     with path.open("w", newline="", encoding="utf-8") as fh:
         w = csv.writer(fh, lineterminator="\n")
+        if sc.kind == "epsilon_regression":
+            w.writerow(["row", "prediction"])
+            for i, v in enumerate(sc.values.tolist()):
+                w.writerow([i, repr(float(v))])
+            return
+        if sc.kind == "one_class":
+            w.writerow(["row", "score", "inlier"])
+            for i, v in enumerate(sc.values.tolist()):
+                w.writerow([i, repr(float(v)), int(v >= 0)])
+            return
         probs = sc.probabilities
         heads = [] if probs is None else [_prob_column(lab) for lab in sc.probability_labels]
         w.writerow(["row", "decision_value", "label", *heads])

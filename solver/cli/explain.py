@@ -53,7 +53,7 @@ def cmd_explain(args: argparse.Namespace) -> int:
         raise solver.InvalidInputError("give either --point or --query, not both")
     if args.leave_one_out:
         loo = solver.leave_one_out(args.run, store=args.store, progress=progress(args))
-        d = to_dict(loo)
+        d = loo.summary() if hasattr(loo, "summary") else to_dict(loo)
         if args.json:
             emit_json(d, sys.stdout)
         else:

@@ -29,7 +29,8 @@ def cmd_runs(args: argparse.Namespace) -> int:
 
     filters = {"status": args.status, "solver": args.solver, "kernel": args.kernel,
                "fingerprint": args.fingerprint}
-    rows = solver.runs(store=args.store, **filters)
+    listing = solver.store_listing(store=args.store, **filters)
+    rows = listing.rows
     if args.limit is not None:
         rows = rows[-args.limit:] if args.limit > 0 else []
     if args.json:
@@ -38,6 +39,7 @@ def cmd_runs(args: argparse.Namespace) -> int:
     if not rows:
         print("no runs match" if any(v is not None for v in filters.values())
               else "the store holds no runs yet")
+        _print_leftovers(listing)
         return EXIT_OK
     cols = [c for c in ("run_id", "created", "solver", "status", "iterations", "n",
                         "kernel", "C", "max_violation", "duality_gap", "parent_id")
@@ -47,7 +49,22 @@ def cmd_runs(args: argparse.Namespace) -> int:
     print("  ".join(c.ljust(w) for c, w in zip(cols, widths, strict=True)))
     for t in table:
         print("  ".join(v.ljust(w) for v, w in zip(t, widths, strict=True)))
+    _print_leftovers(listing)
     return EXIT_OK
+
+
+def _print_leftovers(listing: Any) -> None:
+    """Catalog state, temporary folders and runs missing their requested challenger."""
+    if listing.catalog_note:
+        print(f"note: {listing.catalog_note}")
+    for t in listing.temp_folders:
+        who = f"writer pid {t['pid']}" if t["pid"] else "writer unknown"
+        state = ("still running (a save in progress)" if t["writer_running"] else
+                 "no longer running: left by a killed writer; 'kktrace clean' removes it")
+        print(f"leftover: temporary folder {t['folder']} ({who} {state})")
+    for m in listing.missing_challengers:
+        print(f"incomplete: SMO run {m['run_id']} was trained with --solver both, but its QP "
+              "challenger run was never saved (the writer stopped between the two saves)")
 
 
 def cmd_replay(args: argparse.Namespace) -> int:

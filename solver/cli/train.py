@@ -22,7 +22,14 @@ _TRAIN_EXAMPLES = """examples:
   kktrace train batches.csv --label lab_decision --kernel rbf --C 10 --solver both \\
       --holdout batches_holdout.csv
   kktrace train scores.parquet --label outcome --kernel poly --degree 2 --offset 1 --json
-  kktrace train X.npz --label y --kernel linear --kkt-tol 1e-5 --store audit-traces"""
+  kktrace train X.npz --label y --kernel linear --kkt-tol 1e-5 --store audit-traces
+  kktrace train grades.csv --label grade --class-weight balanced --solver both
+  kktrace train batches.csv --label outcome --weight-column batch_weight \\
+      --class-weight release=1,rework=2,reject=4
+  kktrace train batches.csv --task regression --target coating_thickness_um --epsilon 0.5 \
+      --C 10 --solver both
+  kktrace train released.csv --task one-class --nu 0.05 --holdout new_batches.csv \
+      --outlier-column known_unusual"""
 
 _DEMO_EXAMPLES = """examples:
   kktrace demo
@@ -51,6 +58,30 @@ def _run_block(s: Mapping[str, Any], role: str) -> list[str]:
         f"  support       {s['n_support']} of {s['n_rows']} points "
         f"({s['n_free']} on the margin, {s['n_bounded']} at the bound), bias {num(s['bias'])}",
     ]
+    if s.get("task") == "regression":
+        lines.append(f"  task          ε-regression, ε = {num(s.get('epsilon'))}; training RMSE "
+                     f"{num(s.get('training_rmse'), '.4g')}, inside or on the tube "
+                     f"{num(s.get('training_tube_coverage'), '.3f')}")
+    elif s.get("task") == "one-class":
+        nuc = s.get("nu_property") or {}
+        lines.append(f"  task          one-class, ν = {num(s.get('nu'))}; outlier share "
+                     f"{num(nuc.get('outlier_share'), '.4f')} <= ν <= support share "
+                     f"{num(nuc.get('support_share'), '.4f')}: "
+                     + ("holds" if nuc.get("holds") else "DOES NOT HOLD"))
+    hold = s.get("holdout") or {}
+    if "rmse" in hold:
+        r2 = hold.get("r2")
+        lines.append(f"  held-out      RMSE {num(hold['rmse'], '.4g')}, "
+                     f"MAE {num(hold['mae'], '.4g')}, "
+                     f"R² {num(r2, '.4f') if r2 is not None else 'n/a'}, tube coverage "
+                     f"{num(hold['tube_coverage'], '.3f')}")
+    elif "share_flagged" in hold:
+        text = f"  held-out      flagged {hold['n_flagged']} of {hold['n']}"
+        conf = hold.get("confusion")
+        if conf:
+            text += (f"; known outliers flagged {conf['flagged_known']}, missed "
+                     f"{conf['missed']}, false alarms {conf['flagged_unknown']}")
+        lines.append(text)
     if "holdout_accuracy" in s:
         lines.append(
             f"  held-out      accuracy {num(s['holdout_accuracy'], '.3f')}, balanced accuracy "
@@ -71,20 +102,80 @@ def _run_block(s: Mapping[str, Any], role: str) -> list[str]:
     return lines
 
 
+def class_weight_arg(text: str) -> str | dict[str, float]:
+    """``balanced`` or ``LABEL=W,LABEL=W`` (weights parsed later, errors name the label)."""
+    text = text.strip()
+    if text == "balanced":
+        return text
+    out: dict[str, Any] = {}
+    for part in text.split(","):
+        label, sep, w = part.partition("=")
+        if not sep or not label.strip():
+            raise argparse.ArgumentTypeError(
+                f"{part!r} is not LABEL=W (use e.g. 'pass=1,rework=2.5' or 'balanced')")
+        out[label.strip()] = w.strip()
+    return out
+
+
+def _pair_line(s: Mapping[str, Any]) -> str:
+    state = "converged" if s.get("converged") else f"NOT CONVERGED ({s['status']})"
+    key = " vs ".join(s.get("key") or [])
+    verdict = f", agreement {s['verdict']}" if s.get("verdict") else ""
+    return (f"  {key:24s} {s['solver']:3s} {s['run_id']}  {state}, {s['iterations']} it, "
+            f"violation {num(s['max_violation'], '.2e')}, gap {num(s['duality_gap'], '.2e')}"
+            f"{verdict}")
+
+
+def _print_parent(outcome: Any) -> None:
+    s = outcome.summaries[0]
+    info = outcome.parent.info
+    state = "converged" if s.get("converged") else f"NOT CONVERGED (worst status {s['status']})"
+    ex = info.get("execution") or {}
+    out = [
+        f"multi-class parent {s['run_id']}  [one-vs-one, {s['pairs']} pairs]  {state}",
+        f"  classes       {', '.join(info['classes'])}",
+        f"  pairs ran     {ex.get('mode', 'sequential')} ({ex.get('reason', 'one pair')})",
+        f"  slowest pair  {' vs '.join(s['slowest_pair']['key'] or [])}: "
+        f"{s['slowest_pair']['iterations']} iterations",
+        f"  worst verdict {s.get('worst_verdict') or 'n/a (no challenger)'}",
+        f"  violation     largest {num(s['max_violation'], '.3e')} "
+        f"(kkt_tol {num(s['kkt_tol'], '.1e')})",
+    ]
+    if "holdout_accuracy" in s:
+        out.append(f"  held-out      accuracy {num(s['holdout_accuracy'], '.3f')}, balanced "
+                   f"accuracy {num(s['holdout_balanced_accuracy'], '.3f')}")
+    out.append("  pair runs:")
+    out += [_pair_line(m) for m in outcome.members]
+    out.append(f"  stored in     {s['run_dir']}")
+    for w in outcome.warnings:
+        out.append(f"warning: {w}")
+    print("\n".join(out))
+
+
 def cmd_train(args: argparse.Namespace) -> int:
     import solver
+
+    if args.task == "classification" and args.label is None:
+        args.train_parser.error("--label COLUMN is required for classification "
+                                "(or choose --task regression / one-class)")
 
     outcome = solver.train(
         args.data, label=args.label, kernel=args.kernel, gamma=args.gamma,
         degree=args.degree, offset=args.offset, C=args.C, kkt_tol=args.kkt_tol,
         iteration_limit=args.iteration_limit, solver=args.solver, standardise=not
         args.no_standardise,
-        holdout=args.holdout, store=args.store, trace=args.trace, quiet=True,
-        progress=progress(args), probabilities=args.probabilities,
+        holdout=args.holdout, store=solver.open_store(args.store, signing_key=args.sign),
+        trace=args.trace, quiet=True, progress=progress(args), class_weight=args.class_weight,
+        weight_column=args.weight_column, max_classes=args.max_classes,
+        parallel=args.parallel, task=args.task,
+        target=args.target, epsilon=args.epsilon, nu=args.nu,
+        outlier_column=args.outlier_column, probabilities=args.probabilities,
         calibration_folds=args.calibration_folds, calibration_seed=args.calibration_seed,
     )
     if args.json:
         emit_json(outcome.summary(), sys.stdout)
+    elif outcome.parent is not None:
+        _print_parent(outcome)
     else:
         _print_outcome(outcome)
     return EXIT_OK if outcome.converged else EXIT_NOT_CONVERGED
@@ -138,7 +229,22 @@ def register(sub: Any) -> None:
     """Add ``train`` and ``demo`` to the sub-command table."""
     p = add_command(sub, "train", "train on a data file and store the run(s)", _TRAIN_EXAMPLES)
     p.add_argument("data", metavar="DATAFILE", help="CSV (header row), Parquet, .npy or .npz")
-    p.add_argument("--label", metavar="COLUMN", required=True, help="label column (two values)")
+    p.add_argument("--task", choices=("classification", "regression", "one-class"),
+                   default="classification",
+                   help="classification (default; --label), regression (--target, --epsilon) "
+                   "or one-class (--nu)")
+    p.add_argument("--label", metavar="COLUMN", default=None,
+                   help="label column (classification): two values, or three or more for "
+                   "one-vs-one (one run per pair of classes, tied together by a parent record)")
+    p.add_argument("--target", metavar="COLUMN", default=None,
+                   help="numeric target column (regression)")
+    p.add_argument("--epsilon", type=float_arg, default=0.1,
+                   help="half-width of the ε-tube in target units, >= 0 (regression; default 0.1)")
+    p.add_argument("--nu", type=float_arg, default=0.5,
+                   help="ν in (0, 1]: bound on the outlier share (one-class; default 0.5)")
+    p.add_argument("--outlier-column", metavar="COLUMN", default=None,
+                   help="column of known outliers (1/0, yes/no): set aside in training, used "
+                   "for the held-out confusion (one-class)")
     p.add_argument("--kernel", choices=("linear", "poly", "rbf", "sigmoid"), default="rbf",
                    help="kernel (default rbf)")
     p.add_argument("--gamma", type=float_arg, default=None,
@@ -159,6 +265,19 @@ def register(sub: Any) -> None:
                    help="held-out labelled data, scored and recorded with the run")
     p.add_argument("--trace", choices=("full", "sampled", "off"), default="full",
                    help="trace level (default full)")
+    p.add_argument("--class-weight", metavar="LABEL=W,...", type=class_weight_arg,
+                   default=None,
+                   help="scale C per class: LABEL=W pairs, or 'balanced' for "
+                   "w_c = n / (k * n_c) (n rows, k classes, n_c rows of class c); "
+                   "bounds become u_i = C * w_class * w_row")
+    p.add_argument("--weight-column", metavar="COLUMN", default=None,
+                   help="column of per-row weights > 0 scaling C per row (not a feature)")
+    p.add_argument("--max-classes", type=positive_int, default=None,
+                   help="refuse a label column with more classes than this (default 30)")
+    p.add_argument("--parallel", metavar="WHERE", default="auto",
+                   help="where one-vs-one pairs run: auto (a Dask LocalCluster when the "
+                   "work is large enough, else in this process), sequential, local, or a "
+                   "Dask scheduler address tcp://HOST:PORT (default auto)")
     p.add_argument("--no-standardise", action="store_true",
                    help="use the features as given (default: standardise to mean 0, sd 1)")
     p.add_argument("--probabilities", action="store_true",
@@ -168,7 +287,10 @@ def register(sub: Any) -> None:
                    help="stratified folds of that cross-validation (default 5)")
     p.add_argument("--calibration-seed", type=int, default=0,
                    help="seed of the fold assignment (default 0; recorded with the run)")
-    p.set_defaults(func=cmd_train)
+    p.add_argument("--sign", metavar="PRIVATE_KEY", default=None,
+                   help="sign each run's manifest digest with this Ed25519 key "
+                   "(NAME.private.pem from 'kktrace keys new'; default $KKTRACE_SIGNING_KEY)")
+    p.set_defaults(func=cmd_train, train_parser=p)
 
     p = add_command(sub, "demo", "run the full audit on invented tablet-coating QC data",
                     _DEMO_EXAMPLES)

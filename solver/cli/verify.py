@@ -17,28 +17,43 @@ from ._shared import (
 
 _VERIFY_EXAMPLES = """examples:
   kktrace verify RUN_ID
-  kktrace verify RUN_ID --rerun batches.csv"""
+  kktrace verify RUN_ID --trusted keys/qa-lead.public.pem
+  kktrace verify RUN_ID --rerun batches.csv
+
+verify checks the run's files against their digests (no links; sizes before hashing),
+then the run against itself: the certificate recomputed from the stored alpha, problem
+arrays and kernel, the model rebuilt from solution.npz, the trace replayed to its last
+row, the manifest fields against the format.  --trusted requires a signature by that key.
+The result is evidence about the stored optimisation, not a validation sign-off."""
 
 
 def cmd_verify(args: argparse.Namespace) -> int:
     import solver
 
-    res = solver.verify(args.run, store=args.store, rerun=args.rerun, keep_rerun=args.keep)
+    res = solver.verify(args.run, store=args.store, rerun=args.rerun, keep_rerun=args.keep,
+                        trusted=args.trusted or None)
     integ = to_dict(res.integrity)
     repro = None if res.reproduction is None else to_dict(res.reproduction)
     if args.json:
         emit_json({"run_id": args.run, "ok": res.ok, "integrity": integ,
-                    "reproduction": repro, "rerun_run_id": res.rerun_run_id,
-                    "calibration": res.calibration}, sys.stdout)
+                   "reproduction": repro, "rerun_run_id": res.rerun_run_id,
+                   "audit_note": res.audit_note, "calibration": res.calibration}, sys.stdout)
     else:
         if res.integrity.ok:
             chain = integ.get("chain") or [args.run]
             print(f"run {args.run}: files intact ({integ.get('files_checked', '?')} digests "
-                  f"match; chain of {len(chain)} run(s) checked)")
+                  "match) and consistent with themselves (certificate recomputed, model "
+                  f"rebuilt, trace replayed); chain of {len(chain)} run(s) checked")
+            if res.integrity.trusted:
+                print(f"  signed by {res.integrity.signer}: a trusted key")
         else:
             print(f"run {args.run}: INTEGRITY CHECK FAILED")
             for p in integ.get("problems") or ():
                 print(f"  - {p}")
+        for note in integ.get("notes") or ():
+            print(f"  note: {note}")
+        if res.audit_note:
+            print(f"  note: {res.audit_note}")
         if repro is not None:
             print(f"re-run: alpha {repro.get('agreement')} (max |difference| "
                   f"{num(repro.get('max_abs_difference'), '.3g')}, tolerance "
@@ -70,5 +85,8 @@ def register(sub: Any) -> None:
                    help="re-run from this training data (must match the fingerprint)")
     p.add_argument("--keep", action="store_true",
                    help="store the re-run as a new run derived from RUN_ID")
+    p.add_argument("--trusted", metavar="PUBKEY", action="append", default=None,
+                   help="require a signature by this public key (NAME.public.pem from "
+                   "'kktrace keys new'); may be given more than once")
     p.set_defaults(func=cmd_verify)
 

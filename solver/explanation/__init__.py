@@ -10,12 +10,22 @@
   leave-one-out error from refits of the support vectors only (decremental path from the
   full solution, SMO where the path's answer does not meet the stopping test).
 * :func:`sensitivity` — per support vector, how the training decision values move without it.
+* :func:`kind_point_table`, :func:`kind_leave_one_out` — the same for ε-regression (inside /
+  on the edge of / outside the tube) and one-class (interior / boundary / outside) fits.
 """
 
 from __future__ import annotations
 
 from ._breakdown import Breakdown, breakdown
 from ._feature_space import MAX_MONOMIALS, FeatureSpaceView, feature_space
+from ._kinds import (
+    ONE_CLASS_CATEGORIES,
+    REGRESSION_CATEGORIES,
+    KindLeaveOneOut,
+    KindTable,
+    kind_leave_one_out,
+    kind_point_table,
+)
 from ._loo import LOO_METHODS, LeaveOneOut, Sensitivity, leave_one_out, sensitivity
 from ._table import CATEGORIES, COLUMNS, PointTable, point_table
 
@@ -23,6 +33,12 @@ __all__ = [
     "CATEGORIES",
     "COLUMNS",
     "LOO_METHODS",
+    "ONE_CLASS_CATEGORIES",
+    "REGRESSION_CATEGORIES",
+    "KindLeaveOneOut",
+    "KindTable",
+    "kind_leave_one_out",
+    "kind_point_table",
     "MAX_MONOMIALS",
     "Breakdown",
     "FeatureSpaceView",

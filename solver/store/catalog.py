@@ -21,11 +21,16 @@ from typing import Any
 
 from ..errors import InvalidInputError
 
-__all__ = ["CATALOG_FILE", "COLUMNS", "SCHEMA_VERSION", "Catalog", "row_from_manifest"]
+__all__ = ["CATALOG_FILE", "COLUMNS", "SCHEMA_VERSION", "Catalog", "CatalogUnavailable",
+           "row_from_manifest", "query_rows"]
 
 CATALOG_FILE = "catalog.sqlite"
 SCHEMA_VERSION = 1
-BUSY_TIMEOUT_S = 60.0
+#: longest wait of a writer (a save) for the catalog's write lock; after it the run is
+#: stored anyway and the catalog reported stale (indexed by the next save)
+BUSY_TIMEOUT_S = 10.0
+#: longest wait of a reader for a locked catalog before listing from the folders instead
+READ_WAIT_S = 2.0
 
 #: (column, SQLite type) of table ``runs``.
 COLUMNS: tuple[tuple[str, str], ...] = (
@@ -144,6 +149,61 @@ def row_from_manifest(
     }
 
 
+class CatalogUnavailable(Exception):
+    """The catalog cannot be read (absent, locked, damaged, not a file); the message says why."""
+
+
+def _where(filters: Mapping[str, Any]) -> tuple[str, list[Any]] | None:
+    """SQL WHERE clause and arguments for :meth:`Catalog.query` filters (None: no row can match)."""
+    where, args = [], []
+    for key, value in filters.items():
+        if key in ("since", "until"):
+            if not isinstance(value, str):
+                raise InvalidInputError(f"runs(): {key} must be an ISO time string")
+            where.append('"created" >= ?' if key == "since" else '"created" <= ?')
+            args.append(value)
+            continue
+        col = ALIASES.get(key, key)
+        if col not in _NAMES:
+            raise InvalidInputError(
+                f"runs(): unknown filter {key!r}; use one of "
+                f"{', '.join(sorted(set(_NAMES) | set(ALIASES) | {'since', 'until'}))}"
+            )
+        if isinstance(value, bool):
+            value = int(value)
+        if isinstance(value, (list, tuple, set, frozenset)):
+            vals = list(value)
+            if not vals:
+                return None
+            where.append(f'"{col}" IN ({", ".join("?" for _ in vals)})')
+            args += vals
+        elif value is None:
+            where.append(f'"{col}" IS NULL')
+        else:
+            where.append(f'"{col}" = ?')
+            args.append(value)
+    return (" WHERE " + " AND ".join(where) if where else ""), args
+
+
+def query_rows(rows: Iterable[Mapping[str, Any]], filters: Mapping[str, Any]) -> list[dict]:
+    """Filter and order catalog-shaped rows in memory (same rules as :meth:`Catalog.query`)."""
+    w = _where(filters)
+    if w is None:
+        return []
+    con = sqlite3.connect(":memory:")
+    con.row_factory = sqlite3.Row
+    try:
+        cols = ", ".join(f'"{c}" {t}' for c, t in COLUMNS)
+        con.execute(f"CREATE TABLE runs ({cols})")
+        sql = (f"INSERT OR REPLACE INTO runs ({', '.join(chr(34) + c + chr(34) for c in _NAMES)})"
+               f" VALUES ({', '.join('?' for _ in _NAMES)})")
+        con.executemany(sql, [tuple(r.get(c) for c in _NAMES) for r in rows])
+        return [dict(r) for r in con.execute(
+            f"SELECT * FROM runs{w[0]} ORDER BY created, run_id", w[1])]
+    finally:
+        con.close()
+
+
 class Catalog:
     """SQLite catalog file ``<root>/catalog.sqlite``; one short-lived connection per call."""
 
@@ -257,6 +317,67 @@ class Catalog:
         finally:
             con.close()
 
+    def _open_ro(self) -> sqlite3.Connection:
+        """A read-only connection (never creates, converts or writes anything)."""
+        import urllib.parse
+
+        try:
+            st = os.stat(self.path)
+        except FileNotFoundError:
+            raise CatalogUnavailable("no catalog file") from None
+        except OSError as exc:
+            raise CatalogUnavailable(f"cannot be opened ({exc.strerror})") from None
+        import stat as _stat
+
+        if not _stat.S_ISREG(st.st_mode):
+            raise CatalogUnavailable("is not a regular file")
+        base = "file:" + urllib.parse.quote(str(self.path))
+        last: Exception | None = None
+        # ?mode=ro needs the -shm file of a WAL database; a read-only folder without one
+        # is opened as immutable (the WAL is then not read, the folders fill the gap)
+        for suffix in ("?mode=ro", "?mode=ro&immutable=1"):
+            con = None
+            try:
+                con = sqlite3.connect(base + suffix, uri=True, timeout=READ_WAIT_S,
+                                      isolation_level=None)
+                con.row_factory = sqlite3.Row
+                con.execute(f"PRAGMA busy_timeout = {int(READ_WAIT_S * 1000)}")
+                ver = con.execute("SELECT value FROM meta WHERE key='schema_version'").fetchone()
+                if ver is None or ver[0] != str(SCHEMA_VERSION):
+                    con.close()
+                    raise CatalogUnavailable("is of another schema version")
+                return con
+            except sqlite3.Error as exc:
+                last = exc
+                if con is not None:
+                    con.close()
+                if "locked" in str(exc) or "not a database" in str(exc):
+                    break
+        raise CatalogUnavailable(f"cannot be read ({last})")
+
+    def read_rows(self) -> dict[str, dict[str, Any]]:
+        """Every row, run_id → row, read without writing; raises :class:`CatalogUnavailable`."""
+        con = self._open_ro()
+        try:
+            return {r["run_id"]: dict(r) for r in con.execute("SELECT * FROM runs")}
+        except sqlite3.Error as exc:
+            raise CatalogUnavailable(f"cannot be read ({exc})") from None
+        finally:
+            con.close()
+
+    def read_digest(self, run_id: str) -> str | None:
+        """The recorded manifest digest of ``run_id``, read without writing; raises
+        :class:`CatalogUnavailable`."""
+        con = self._open_ro()
+        try:
+            row = con.execute("SELECT manifest_sha256 FROM runs WHERE run_id = ?",
+                              (run_id,)).fetchone()
+            return None if row is None else row[0]
+        except sqlite3.Error as exc:
+            raise CatalogUnavailable(f"cannot be read ({exc})") from None
+        finally:
+            con.close()
+
     def digests(self) -> dict[str, str | None]:
         """run_id → recorded manifest digest, for every row."""
         if not self.path.exists():
@@ -286,39 +407,12 @@ class Catalog:
         value, or to any of a list/tuple of values; ``since`` / ``until`` bound ``created``
         (ISO strings, inclusive).
         """
-        where, args = [], []
-        for key, value in filters.items():
-            if key in ("since", "until"):
-                if not isinstance(value, str):
-                    raise InvalidInputError(f"runs(): {key} must be an ISO time string")
-                where.append('"created" >= ?' if key == "since" else '"created" <= ?')
-                args.append(value)
-                continue
-            col = ALIASES.get(key, key)
-            if col not in _NAMES:
-                raise InvalidInputError(
-                    f"runs(): unknown filter {key!r}; use one of "
-                    f"{', '.join(sorted(set(_NAMES) | set(ALIASES) | {'since', 'until'}))}"
-                )
-            if isinstance(value, bool):
-                value = int(value)
-            if isinstance(value, (list, tuple, set, frozenset)):
-                vals = list(value)
-                if not vals:
-                    return []
-                where.append(f'"{col}" IN ({", ".join("?" for _ in vals)})')
-                args += vals
-            elif value is None:
-                where.append(f'"{col}" IS NULL')
-            else:
-                where.append(f'"{col}" = ?')
-                args.append(value)
-        sql = "SELECT * FROM runs"
-        if where:
-            sql += " WHERE " + " AND ".join(where)
-        sql += " ORDER BY created, run_id"
+        w = _where(filters)
+        if w is None:
+            return []
+        sql = f"SELECT * FROM runs{w[0]} ORDER BY created, run_id"
         con = self._connect()
         try:
-            return [dict(r) for r in con.execute(sql, args)]
+            return [dict(r) for r in con.execute(sql, w[1])]
         finally:
             con.close()

@@ -164,6 +164,8 @@ def encode_record(
         raise InvalidInputError(f"result.alpha must be float64, got {solution['alpha'].dtype}")
     if isinstance(problem.kernel, PrecomputedKernel):
         solution["gram"] = problem.kernel.gram_matrix
+    if problem.rows is not None:  # index map: variable i reads data row rows[i]
+        solution["rows"] = np.asarray(problem.rows, dtype=np.int64)
     files["solution.npz"] = write_npz(solution)
 
     trace_m = None
@@ -241,6 +243,7 @@ def encode_record(
         },
         "problem": {
             "kind": str(problem.kind), "n": n, "n_features": int(problem.X.shape[1]),
+            **({"n_data_rows": int(problem.X.shape[0])} if problem.rows is not None else {}),
             "delta": to_plain(problem.delta, None, "problem.delta"),
             "kernel": to_plain(problem.kernel.describe(), None, "problem.kernel"),
             "info": to_plain(dict(problem.info), arrays, "problem.info"),
@@ -306,7 +309,7 @@ def _table_dtypes(spec: dict[str, str], fname: str, path: str) -> dict[str, str]
     return out
 
 
-#: version-1 option names → version-2 names (the QP solver's ``tol`` was cvxopt's own)
+#: version-1 option names (read from old manifests only; never written) → version-2 names
 _V1_OPTIONS = {"max_iter": "iteration_limit", "cache_mb": "row_cache_mb", "tau": "curvature_floor"}
 
 
@@ -378,8 +381,10 @@ def decode_record(manifest: Any, blobs: Mapping[str, bytes]) -> RunRecord:
     p = get(m, "problem", dict, M, "")
     n = get(p, "n", int, M, "problem")
     d = get(p, "n_features", int, M, "problem")
+    n_data = get(p, "n_data_rows", int, M, "problem") if "n_data_rows" in p else None
     sol_spec: dict[str, tuple[str, tuple[int | None, ...]]] = {
-        "alpha": ("f", (n,)), "X": ("f", (n, d)), "y": ("f", (n,)), "p": ("f", (n,)),
+        "alpha": ("f", (n,)), "X": ("f", (n if n_data is None else n_data, d)),
+        "y": ("f", (n,)), "p": ("f", (n,)),
         "lower": ("f", (n,)), "upper": ("f", (n,)), "kkt_residual": ("f", (n,)),
         "at_lower": ("b", (n,)), "at_upper": ("b", (n,)),
         "standardiser_centre": ("f", (None,)), "standardiser_scale": ("f", (None,)),
@@ -388,6 +393,8 @@ def decode_record(manifest: Any, blobs: Mapping[str, bytes]) -> RunRecord:
     kname = get(kdesc, "name", str, M, "problem.kernel")
     if kname == "precomputed":
         sol_spec["gram"] = ("f", (None, None))
+    if n_data is not None:
+        sol_spec["rows"] = ("i", (n,))
     sol = read_npz(blob("solution.npz"), "solution.npz", sol_spec)
     kernel = _decode_kernel(kdesc, kname, sol.get("gram"))
     info = from_plain(get(p, "info", dict, M, "problem"), arrays, f"{M}: problem.info")
@@ -395,7 +402,7 @@ def decode_record(manifest: Any, blobs: Mapping[str, bytes]) -> RunRecord:
         problem = DualProblem(
             X=sol["X"], y=sol["y"], p=sol["p"], lower=sol["lower"], upper=sol["upper"],
             delta=number(p, "delta", M, "problem"), kernel=kernel,
-            kind=get(p, "kind", str, M, "problem"), info=info,
+            kind=get(p, "kind", str, M, "problem"), info=info, rows=sol.get("rows"),
         )
         standardiser = Standardiser(centre=sol["standardiser_centre"],
                                     scale=sol["standardiser_scale"])

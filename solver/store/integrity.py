@@ -2,8 +2,11 @@
 
 from __future__ import annotations
 
+import errno
 import hashlib
+import os
 import re
+import stat
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -21,6 +24,9 @@ __all__ = [
     "parse_digest_file",
     "check_folder",
     "check_file_entries",
+    "read_regular",
+    "SIGNATURE",
+    "MAX_MANIFEST_BYTES",
 ]
 
 MANIFEST = "manifest.json"
@@ -43,6 +49,10 @@ class Verification:
         recorded and verifies (True for a root run).
     chain : run ids checked, this run first, then parent, grandparent, ...
     manifest_sha256 : SHA-256 of this run's manifest.json bytes as found (None if absent).
+    signer : who signed the manifest digest (``"NAME (key sha256 …)"``), None if unsigned.
+    trusted : True when the signature was checked against a trusted public key and holds.
+    notes : findings that are not failures (catalog not consulted, signature not checked
+        against a trusted key, ...).
     """
 
     ok: bool
@@ -53,6 +63,9 @@ class Verification:
     parent_chain_ok: bool = True
     chain: list[str] = field(default_factory=list)
     manifest_sha256: str | None = None
+    signer: str | None = None
+    trusted: bool = False
+    notes: list[str] = field(default_factory=list)
 
 
 def sha256_hex(data: bytes) -> str:
@@ -101,28 +114,95 @@ def check_file_entries(files: Any) -> list[str]:
     return out
 
 
+#: a manifest larger than this is refused before it is read (bounded memory)
+MAX_MANIFEST_BYTES = 64 << 20
+SIGNATURE = "manifest.sig"
+
+
+def read_regular(path: Path, *, limit: int | None = None, expect: int | None = None
+                 ) -> tuple[bytes | None, str | None]:
+    """Bytes of a regular file, opened without following a symbolic link.
+
+    Returns (bytes, None), or (None, reason) when the path is a link, not a regular file,
+    has more than one hard link, is larger than ``limit`` or differs in size from
+    ``expect`` (sizes are compared before anything is read).
+    """
+    try:
+        fd = os.open(path, os.O_RDONLY | getattr(os, "O_NOFOLLOW", 0))
+    except OSError as exc:
+        if exc.errno == errno.ELOOP:
+            return None, "is a symbolic link (a run file must be a regular file in the folder)"
+        if exc.errno == errno.ENOENT:
+            return None, "missing"
+        return None, f"cannot be read ({exc.strerror})"
+    try:
+        st = os.fstat(fd)
+        if not stat.S_ISREG(st.st_mode):
+            return None, "is not a regular file"
+        if st.st_nlink != 1:
+            return None, (f"has {st.st_nlink} hard links (a run file must have exactly one, "
+                          "so it cannot be changed through another name)")
+        if expect is not None and st.st_size != expect:
+            return None, f"content changed (size {st.st_size} vs recorded {expect}; not hashed)"
+        if limit is not None and st.st_size > limit:
+            return None, f"is {st.st_size} bytes, above the limit of {limit}"
+        chunks = []
+        while True:
+            chunk = os.read(fd, 1 << 20)
+            if not chunk:
+                break
+            chunks.append(chunk)
+        return b"".join(chunks), None
+    finally:
+        os.close(fd)
+
+
 def check_folder(
-    run_dir: Path, run_id: str
+    run_dir: Path, run_id: str, blobs: dict[str, bytes] | None = None
 ) -> tuple[list[str], dict[str, Any] | None, str | None, int]:
     """Check one run folder against its own manifest.
 
     Returns (problems, parsed manifest or None, actual manifest digest or None,
     number of files whose digest was compared).  Never raises for a damaged folder.
+    The folder itself and every file in it must be real (no symbolic links, one hard
+    link each); sizes are compared before hashing.  When ``blobs`` is a dict, the bytes
+    of every listed file that matched its digest are put into it (so they are decoded
+    exactly as checked).
     """
     problems: list[str] = []
-    if not run_dir.is_dir():
+    try:
+        st = os.lstat(run_dir)
+    except OSError:
         return [f"run folder {run_id} is missing"], None, None, 0
-    entries = {p.name: p for p in run_dir.iterdir()}
+    if stat.S_ISLNK(st.st_mode):
+        try:
+            target = os.readlink(run_dir)
+        except OSError:
+            target = "?"
+        return [f"run folder {run_id} is a symbolic link (to {target}); a run must be a real "
+                "folder inside the store"], None, None, 0
+    if not stat.S_ISDIR(st.st_mode):
+        return [f"run folder {run_id} is missing (a file of that name is there)"], None, None, 0
+    try:
+        entries = {e.name: e for e in os.scandir(run_dir)}
+    except OSError as exc:
+        return [f"run folder {run_id} cannot be listed ({exc.strerror})"], None, None, 0
     manifest_bytes = None
     actual = None
-    if MANIFEST in entries and entries[MANIFEST].is_file():
-        manifest_bytes = entries[MANIFEST].read_bytes()
-        actual = sha256_hex(manifest_bytes)
+    if MANIFEST in entries:
+        manifest_bytes, why = read_regular(run_dir / MANIFEST, limit=MAX_MANIFEST_BYTES)
+        if manifest_bytes is None:
+            problems.append(f"{MANIFEST}: {why}")
+        else:
+            actual = sha256_hex(manifest_bytes)
     else:
         problems.append(f"{MANIFEST}: missing")
-    if MANIFEST_DIGEST in entries and entries[MANIFEST_DIGEST].is_file():
-        recorded = parse_digest_file(entries[MANIFEST_DIGEST].read_bytes())
-        if recorded is None:
+    if MANIFEST_DIGEST in entries:
+        dbytes, why = read_regular(run_dir / MANIFEST_DIGEST, limit=4096)
+        recorded = None if dbytes is None else parse_digest_file(dbytes)
+        if dbytes is None:
+            problems.append(f"{MANIFEST_DIGEST}: {why}")
+        elif recorded is None:
             problems.append(f"{MANIFEST_DIGEST}: malformed (expected '<64 hex>  {MANIFEST}')")
         elif actual is not None and recorded != actual:
             problems.append(
@@ -151,19 +231,27 @@ def check_folder(
         if not entry_problems:
             files = manifest["files"]
         for name, entry in files.items():
-            path = entries.get(name)
-            if path is None or not path.is_file():
+            if name not in entries:
                 problems.append(f"{name}: missing")
                 continue
-            digest, size = file_sha256(path)
+            data, why = read_regular(run_dir / name, expect=entry["bytes"])
+            if data is None:
+                problems.append(f"{name}: {why}")
+                continue
             checked += 1
-            if size != entry["bytes"] or digest != entry["sha256"]:
-                problems.append(f"{name}: content changed (size {size} vs recorded "
+            if sha256_hex(data) != entry["sha256"]:
+                problems.append(f"{name}: content changed (size {len(data)} vs recorded "
                                 f"{entry['bytes']}; sha256 mismatch)")
-    known = {MANIFEST, MANIFEST_DIGEST, *files}
+            elif blobs is not None:
+                blobs[name] = data
+    known = {MANIFEST, MANIFEST_DIGEST, SIGNATURE, *files}
     for name in sorted(entries):
+        if name == SIGNATURE:
+            if entries[name].is_symlink() or not entries[name].is_file(follow_symlinks=False):
+                problems.append(f"{SIGNATURE}: is not a regular file")
+            continue
         if name not in known:
-            what = "folder" if entries[name].is_dir() else "file"
+            what = "folder" if entries[name].is_dir(follow_symlinks=False) else "file"
             if manifest is None and name not in (MANIFEST, MANIFEST_DIGEST):
                 problems.append(f"{name}: cannot be checked (manifest unreadable)")
             else:

@@ -89,6 +89,8 @@ def _same_bits(a: np.ndarray, b: np.ndarray) -> bool:
 def _rebuild_problem(record: RunRecord, dataset: Dataset, notes: list[str]) -> tuple[DualProblem,
                                                                                       Standardiser]:
     stored = record.problem
+    if stored.kind in ("epsilon_regression", "one_class"):
+        return _rebuild_kind(record, dataset, notes)
     if stored.kind != "binary_classification":
         raise InvalidInputError(
             f"reproduce rebuilds binary classification runs from data; this run is {stored.kind!r}")
@@ -114,6 +116,34 @@ def _rebuild_problem(record: RunRecord, dataset: Dataset, notes: list[str]) -> t
         ratio = stored.upper / problem.upper
         if not np.all(np.isfinite(ratio) & (ratio > 0)):
             raise InvalidInputError("the stored upper bounds do not fit this data's C and weights")
+        problem = replace(problem, upper=stored.upper.copy(),
+                          info={**problem.info, "sample_weight": True})
+        notes.append("sample weights taken from the stored upper bounds")
+    return problem, std
+
+
+def _rebuild_kind(record: RunRecord, dataset: Dataset,
+                  notes: list[str]) -> tuple[DualProblem, Standardiser]:
+    """ε-regression (target from the split-off column) or one-class problem from data."""
+    from ..problem import one_class, regression
+
+    stored = record.problem
+    std0 = record.standardiser
+    identity = bool(np.all(std0.centre == 0.0) and np.all(std0.scale == 1.0))
+    std = Standardiser.identity(dataset.n_features) if identity else Standardiser.fit(dataset.X)
+    if not (_same_bits(std.centre, std0.centre) and _same_bits(std.scale, std0.scale)):
+        notes.append("the refitted standardiser differs from the stored one")
+    Z = std.transform(dataset.X)
+    info = stored.info
+    if stored.kind == "one_class":
+        return one_class(Z, kernel=stored.kernel, nu=float(info["nu"])), std
+    if dataset.labels is None:
+        raise InvalidInputError(f"data {dataset.source or '(arrays)'} have no target column")
+    from ..training_kinds import numeric_column
+
+    problem = regression(Z, numeric_column(dataset, "target"), kernel=stored.kernel,
+                         C=float(info["C"]), epsilon=float(info["epsilon"]))
+    if info.get("sample_weight"):
         problem = replace(problem, upper=stored.upper.copy(),
                           info={**problem.info, "sample_weight": True})
         notes.append("sample weights taken from the stored upper bounds")

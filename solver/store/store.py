@@ -18,30 +18,44 @@ from __future__ import annotations
 import os
 import shutil
 import sqlite3
+import stat
 import time
 import warnings
 from collections.abc import Mapping
+from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
 from typing import Any
 
-from ..errors import IntegrityError, InvalidInputError
+from ..errors import IntegrityError, InvalidInputError, StoreWarning
 from ..model import Model
-from ..run import RunRecord
-from .catalog import CATALOG_FILE, Catalog, row_from_manifest
+from ..run import ParentRecord, RunRecord
+from . import auditlog
+from .catalog import (
+    BUSY_TIMEOUT_S,
+    CATALOG_FILE,
+    Catalog,
+    CatalogUnavailable,
+    query_rows,
+    row_from_manifest,
+)
 from .codec import decode_model, decode_record, encode_record
 from .format import check_run_id, dump_json, is_run_id, new_run_id, parse_json, read_npz, utc_stamp
 from .integrity import (
     MANIFEST,
     MANIFEST_DIGEST,
+    SIGNATURE,
     Verification,
     check_folder,
     digest_file_bytes,
     parse_digest_file,
+    read_regular,
     sha256_hex,
 )
+from .parents import is_parent_manifest
+from .semantic import manifest_field_problems, semantic_problems
 
-__all__ = ["RunStore", "ENV_VAR", "DEFAULT_DIR", "TEMP_PREFIX"]
+__all__ = ["RunStore", "Listing", "ENV_VAR", "DEFAULT_DIR", "TEMP_PREFIX"]
 
 ENV_VAR = "KKTRACE_STORE"
 DEFAULT_DIR = "traces"
@@ -69,6 +83,37 @@ def _fsync_dir(path: Path) -> None:
         os.close(fd)
 
 
+def _missing_challengers(rows: list[dict[str, Any]]) -> list[dict[str, Any]]:
+    """SMO runs trained with ``--solver both`` whose QP challenger run was never saved
+    (the writer was killed between the two saves).  The request is read from the run's
+    recorded command; a challenger skipped for size is recorded and not reported."""
+    children = {r.get("parent_id") for r in rows if r.get("solver") == "qp"}
+    out = []
+    for r in rows:
+        if r.get("solver") != "smo" or r["run_id"] in children:
+            continue
+        cmd = r.get("command") or ""
+        if "--solver both" in cmd or "solver='both'" in cmd:
+            out.append({"run_id": r["run_id"], "created": r.get("created")})
+    return out
+
+
+@dataclass(frozen=True)
+class Listing:
+    """What :meth:`RunStore.listing` found.
+
+    rows : catalog-shaped rows of the matching runs, oldest first.
+    catalog_note : why the catalog was not (fully) used, or None when it was current.
+    temp_folders : ``.tmp-*`` folders: ``folder``, ``pid``, ``writer_running``, ``age_seconds``.
+    missing_challengers : SMO runs whose requested QP challenger was never saved.
+    """
+
+    rows: list[dict[str, Any]]
+    catalog_note: str | None = None
+    temp_folders: list[dict[str, Any]] = field(default_factory=list)
+    missing_challengers: list[dict[str, Any]] = field(default_factory=list)
+
+
 def _pid_alive(pid: int) -> bool:
     try:
         os.kill(pid, 0)
@@ -88,11 +133,18 @@ class RunStore:
         folder is created by the first :meth:`save`.
     """
 
-    def __init__(self, root: str | Path | None = None) -> None:
+    def __init__(self, root: str | Path | None = None, *,
+                 signing_key: str | Path | None = None) -> None:
         if root is None:
             root = os.environ.get(ENV_VAR) or DEFAULT_DIR
         self.root = Path(root).expanduser().absolute()
         self._catalog = Catalog(self.root)
+        from .signing import SIGNING_KEY_ENV, load_private_key
+
+        if signing_key is None:
+            signing_key = os.environ.get(SIGNING_KEY_ENV) or None
+        #: (Ed25519 private key, signer name) every save signs with, or None
+        self.signer = None if signing_key is None else load_private_key(signing_key)
 
     def __repr__(self) -> str:
         return f"RunStore({str(self.root)!r})"
@@ -105,7 +157,7 @@ class RunStore:
 
     def _existing(self, run_id: str) -> Path:
         d = self.run_dir(run_id)
-        if not d.is_dir():
+        if not os.path.lexists(d):
             raise InvalidInputError(f"no run {run_id} in store {self.root}")
         return d
 
@@ -116,6 +168,40 @@ class RunStore:
         return sorted(e.name for e in os.scandir(self.root) if is_run_id(e.name) and e.is_dir())
 
     # ------------------------------------------------------------------ save
+
+    def _write_folder(self, run_id: str, files: Mapping[str, bytes],
+                      manifest: dict[str, Any], parent_id: str | None) -> tuple[bytes, str, Any]:
+        """Write a run (or parent) folder atomically: files, manifest, digest, signature,
+        the audit entry, then one rename.  Returns (manifest bytes, manifest digest, the
+        audit log's note or None)."""
+        manifest["files"] = {name: {"sha256": sha256_hex(b), "bytes": len(b)}
+                             for name, b in files.items()}
+        mbytes = dump_json(manifest)
+        mdigest = sha256_hex(mbytes)
+        self.root.mkdir(parents=True, exist_ok=True)
+        tmp = self.root / f"{TEMP_PREFIX}{run_id}-{os.getpid()}"
+        tmp.mkdir()
+        try:
+            for name, data in files.items():
+                _write_durable(tmp / name, data)
+            _write_durable(tmp / MANIFEST, mbytes)
+            _write_durable(tmp / MANIFEST_DIGEST, digest_file_bytes(mdigest))
+            if self.signer is not None:
+                from .signing import signature_file
+
+                _write_durable(tmp / SIGNATURE, signature_file(
+                    self.signer[0], self.signer[1], mdigest, utc_stamp()))
+            _fsync_dir(tmp)
+            # logged just before the rename, so a run folder never lacks its entry (an entry
+            # whose folder never appeared is a save that did not complete)
+            note = auditlog.append(self.root, "run_created", run_id, {
+                "manifest_sha256": mdigest, "parent": parent_id,
+                "signer": None if self.signer is None else self.signer[1]})
+            os.rename(tmp, self.root / run_id)
+        except BaseException:
+            shutil.rmtree(tmp, ignore_errors=True)
+            raise
+        return mbytes, mdigest, note
 
     def save(self, record: RunRecord, *, parent: str | None = None) -> str:
         """Store ``record`` as a new run and return its run id (always a new run, even for a
@@ -147,37 +233,33 @@ class RunStore:
         run_id = new_run_id(now)
         files, manifest = encode_record(record, run_id=run_id, created=utc_stamp(now),
                                         parent=parent_m)
-        manifest["files"] = {name: {"sha256": sha256_hex(b), "bytes": len(b)}
-                             for name, b in files.items()}
-        mbytes = dump_json(manifest)
-        mdigest = sha256_hex(mbytes)
-
-        self.root.mkdir(parents=True, exist_ok=True)
-        tmp = self.root / f"{TEMP_PREFIX}{run_id}-{os.getpid()}"
-        final = self.root / run_id
-        tmp.mkdir()
-        try:
-            for name, data in files.items():
-                _write_durable(tmp / name, data)
-            _write_durable(tmp / MANIFEST, mbytes)
-            _write_durable(tmp / MANIFEST_DIGEST, digest_file_bytes(mdigest))
-            _fsync_dir(tmp)
-            os.rename(tmp, final)
-        except BaseException:
-            shutil.rmtree(tmp, ignore_errors=True)
-            raise
+        mbytes, mdigest, note = self._write_folder(run_id, files, manifest, parent_id)
         try:  # make the rename itself durable; the run is complete and visible either way
             _fsync_dir(self.root)
         except OSError as exc:
             warnings.warn(f"run {run_id} saved, but syncing the store folder failed ({exc}); "
                           "the run may be lost if the machine crashes now", stacklevel=2)
         total = len(mbytes) + 65 + len(MANIFEST) + 1 + sum(len(b) for b in files.values())
+        if note:
+            warnings.warn(f"run {run_id} saved; {note}", StoreWarning, stacklevel=2)
         try:
             self._catalog.upsert([row_from_manifest(manifest, mdigest, total)])
-        except sqlite3.Error as exc:  # the run is stored; runs() will index it later
-            warnings.warn(f"run {run_id} saved but the catalog was not updated ({exc}); "
-                          "it is indexed on the next listing", stacklevel=2)
+            self._index_missing()
+        except sqlite3.Error as exc:  # the run is stored; the next save indexes it
+            warnings.warn(f"run {run_id} saved, but the catalog was not updated within "
+                          f"{BUSY_TIMEOUT_S:g} s ({exc}): the catalog is stale until a later save "
+                          "indexes the folder; listings read the folders meanwhile",
+                          StoreWarning, stacklevel=2)
         return run_id
+
+    def _index_missing(self) -> None:
+        """Writer-side reconcile: index folders the catalog lacks, drop rows of gone folders."""
+        known = set(self._catalog.digests())  # read before listing (see module docstring)
+        present = set(self.run_ids())
+        if present - known:
+            self._catalog.upsert(self._row(r) for r in sorted(present - known))
+        if known - present:
+            self._catalog.delete(sorted(known - present))
 
     # ------------------------------------------------------------------ load
 
@@ -208,6 +290,99 @@ class RunStore:
             blobs[name] = data
         return blobs
 
+    def _inspect(
+        self, run_id: str, trusted: Any = None
+    ) -> tuple[Verification, RunRecord | None, dict[str, bytes]]:
+        """Every check of :meth:`verify`; also the decoded record (None when any check
+        failed) and the bytes that were checked (decoded from exactly these)."""
+        check_run_id(run_id)
+        d = self.root / run_id
+        blobs: dict[str, bytes] = {}
+        problems, manifest, digest, checked = check_folder(d, run_id, blobs)
+        notes: list[str] = []
+        record = None
+        if manifest is not None:
+            problems += manifest_field_problems(manifest)
+        if not problems and manifest is not None:
+            record = self._semantic(manifest, blobs, problems)
+        try:
+            recorded = self._catalog.read_digest(run_id)
+        except CatalogUnavailable as exc:
+            recorded = None
+            notes.append(f"catalog not consulted ({CATALOG_FILE} {exc})")
+        if recorded and digest and recorded != digest:
+            problems.append(f"{MANIFEST}: digest differs from the one the catalog recorded at save")
+        signer, is_trusted = self._signature(d, digest, trusted, problems, notes)
+        self._audit_checks(run_id, manifest, digest, problems)
+        chain = [run_id]
+        parent_ok = True
+        parent_id = None
+        parent = manifest.get("parent") if isinstance(manifest, dict) else None
+        if isinstance(parent, dict):
+            parent_id = parent.get("run_id")
+            parent_ok = self._check_chain(parent, chain, problems)
+        elif parent is not None:
+            problems.append(f"{MANIFEST}: field parent must be an object or null")
+            parent_ok = False
+        v = Verification(ok=not problems, run_id=run_id, problems=problems,
+                         files_checked=checked, parent_id=parent_id,
+                         parent_chain_ok=parent_ok, chain=chain, manifest_sha256=digest,
+                         signer=signer, trusted=is_trusted, notes=notes)
+        return v, (record if v.ok else None), blobs
+
+    @staticmethod
+    def _semantic(manifest: dict[str, Any], blobs: Mapping[str, bytes],
+                  problems: list[str]) -> RunRecord | None:
+        try:
+            record = decode_record(manifest, blobs)
+        except IntegrityError as exc:
+            problems.append(str(exc))
+            return None
+        mj = ma = None
+        if "model.json" in blobs and "model.npz" in blobs:
+            try:
+                mj = parse_json(blobs["model.json"], "model.json")
+                ma = read_npz(blobs["model.npz"], "model.npz")
+                if not isinstance(mj, dict):
+                    raise IntegrityError("model.json: not a JSON object")
+            except IntegrityError as exc:
+                problems.append(str(exc))
+                return record
+        problems += semantic_problems(record, mj, ma)
+        return record
+
+    def _signature(self, d: Path, digest: str | None, trusted: Any, problems: list[str],
+                   notes: list[str]) -> tuple[str | None, bool]:
+        from .signing import check_signature
+
+        sig = None
+        path = d / SIGNATURE
+        if os.path.lexists(path):
+            sig, why = read_regular(path, limit=1 << 16)
+            if sig is None:
+                problems.append(f"{SIGNATURE}: {why}")
+        if sig is None and not trusted:
+            return None, False
+        sp, sn, signer, ok = check_signature(sig, digest, list(trusted or ()))
+        problems += sp
+        notes += sn
+        return signer, ok
+
+    def _audit_checks(self, run_id: str, manifest: Any, digest: str | None,
+                      problems: list[str]) -> None:
+        lp, by_run, first = auditlog.check_log(self.root)
+        problems += lp
+        created = manifest.get("created") if isinstance(manifest, dict) else None
+        if lp or first is None or not isinstance(created, str) or created <= first:
+            return
+        mine = [e for e in by_run.get(run_id, []) if e["event"] == "run_created"]
+        if not mine:
+            problems.append(f"{auditlog.LOG_FILE}: holds no run_created entry for run {run_id}, "
+                            f"though the log began before it ({first}): entries were removed")
+        elif digest and all(e["details"].get("manifest_sha256") != digest for e in mine):
+            problems.append(f"{MANIFEST}: digest differs from the one the audit log recorded "
+                            "when the run was created")
+
     def _checked_dir(self, run_id: str, verify: bool) -> Path:
         """The run's folder; with ``verify``, IntegrityError listing every finding first."""
         d = self._existing(run_id)
@@ -217,20 +392,26 @@ class RunStore:
                 raise IntegrityError(f"run {run_id} failed verification: " + "; ".join(v.problems))
         return d
 
-    def load(self, run_id: str, *, verify: bool = True) -> RunRecord:
+    def load(self, run_id: str, *, verify: bool = True, trusted: Any = None) -> RunRecord:
         """The stored run as a :class:`RunRecord` (``manifest`` filled in).
 
-        With ``verify`` (default) the folder and its parent chain are checked first and
-        the bytes actually decoded are checked against their digests; any finding
-        raises :class:`IntegrityError` listing every problem.  Without it, malformed
-        files still raise :class:`IntegrityError` naming the file and field.
+        With ``verify`` (default) every check of :meth:`verify` runs first (digests, links,
+        the run against itself, the parent chain; the signature with ``trusted`` public
+        keys) and the record is decoded from exactly the bytes that were checked; any
+        finding raises :class:`IntegrityError` listing every problem.  Without it,
+        malformed files still raise :class:`IntegrityError` naming the file and field.
         """
-        d = self._checked_dir(run_id, verify)
-        manifest, mbytes = self._read_manifest(d, run_id)
+        if self.is_parent(run_id):
+            raise InvalidInputError(
+                f"{run_id} is a parent record over member runs; load it with load_parent")
         if verify:
-            recorded = parse_digest_file((d / MANIFEST_DIGEST).read_bytes())
-            if recorded != sha256_hex(mbytes):
-                raise IntegrityError("manifest.json: changed while loading")
+            self._existing(run_id)
+            v, record, _ = self._inspect(run_id, trusted)
+            if not v.ok or record is None:
+                raise IntegrityError(f"run {run_id} failed verification: " + "; ".join(v.problems))
+            return record
+        d = self._existing(run_id)
+        manifest, mbytes = self._read_manifest(d, run_id)
         record = decode_record(manifest, self._blobs(d, manifest, verify))
         if record.run_id != run_id:
             raise IntegrityError(
@@ -245,7 +426,11 @@ class RunStore:
         A run whose solver did not converge raises :class:`InvalidInputError` unless
         ``require_converged`` is False.
         """
-        d = self._checked_dir(run_id, verify)
+        d = self._existing(run_id)
+        if verify:
+            v, _, blobs = self._inspect(run_id)
+            if not v.ok:
+                raise IntegrityError(f"run {run_id} failed verification: " + "; ".join(v.problems))
         manifest, _ = self._read_manifest(d, run_id)
         if manifest.get("model") is None:
             raise InvalidInputError(f"run {run_id} holds no classification model")
@@ -257,7 +442,9 @@ class RunStore:
         if not isinstance(files, dict):
             raise IntegrityError("manifest.json: field files must be an object")
         wanted = ("model.json", "model.npz", "solution.npz")
-        blobs = self._blobs(d, {"files": {k: v for k, v in files.items() if k in wanted}}, verify)
+        if not verify:
+            blobs = self._blobs(d, {"files": {k: v for k, v in files.items() if k in wanted}},
+                                False)
         if not all(k in blobs for k in wanted):
             raise IntegrityError(f"run {run_id}: model.json, model.npz or solution.npz not listed")
         gram = None
@@ -267,26 +454,21 @@ class RunStore:
 
     # ------------------------------------------------------------------ verify
 
-    def verify(self, run_id: str) -> Verification:
-        """Check a run folder byte for byte against its manifest, and its parent chain."""
+    def verify(self, run_id: str, *, trusted: Any = None) -> Verification:
+        """Check a run: its files byte for byte against its manifest (no links, sizes
+        first), the run against itself (certificate recomputed, model rebuilt, trace
+        replayed, manifest fields; see :mod:`solver.store.semantic`), the catalog's and the
+        audit log's record of its digest, its signature (required, and by one of the
+        ``trusted`` public keys, when they are given) and its parent chain.
+
+        For a parent record: the parent folder, then every member it names
+        (:mod:`solver.store.parents`)."""
         check_run_id(run_id)
-        problems, manifest, digest, checked = check_folder(self.root / run_id, run_id)
-        recorded = self._catalog.digest(run_id)
-        if recorded and digest and recorded != digest:
-            problems.append(f"{MANIFEST}: digest differs from the one the catalog recorded at save")
-        chain = [run_id]
-        parent_ok = True
-        parent_id = None
-        parent = manifest.get("parent") if isinstance(manifest, dict) else None
-        if isinstance(parent, dict):
-            parent_id = parent.get("run_id")
-            parent_ok = self._check_chain(parent, chain, problems)
-        elif parent is not None:
-            problems.append(f"{MANIFEST}: field parent must be an object or null")
-            parent_ok = False
-        return Verification(ok=not problems, run_id=run_id, problems=problems,
-                            files_checked=checked, parent_id=parent_id,
-                            parent_chain_ok=parent_ok, chain=chain, manifest_sha256=digest)
+        if self.is_parent(run_id):
+            from .parents import verify_parent
+
+            return verify_parent(self, run_id, trusted=trusted)
+        return self._inspect(run_id, trusted)[0]
 
     def _check_chain(
         self, parent: Mapping[str, Any], chain: list[str], problems: list[str]
@@ -337,20 +519,37 @@ class RunStore:
         row["run_id"] = run_id
         return row
 
-    def _reconcile(self) -> None:
-        if not self.root.is_dir():
-            return
-        known = set(self._catalog.digests())  # read before listing: see module docstring
-        present = set(self.run_ids())
-        new = present - known
-        if new:
-            self._catalog.upsert(self._row(r) for r in sorted(new))
-        gone = known - present
-        if gone:
-            self._catalog.delete(sorted(gone))
+    def listing(self, **filters: Any) -> Listing:
+        """Rows of every run matching ``filters`` plus the store's leftovers; never writes.
+
+        Rows come from the catalog (opened read-only, waiting at most
+        :data:`~solver.store.catalog.READ_WAIT_S` s for a lock) and, for run folders it
+        lacks or when it cannot be read, from the folders' manifests.
+        """
+        note = None
+        try:
+            cat = self._catalog.read_rows()  # read before listing: see module docstring
+        except CatalogUnavailable as exc:
+            cat = {}
+            if self.catalog_path.exists() or os.path.islink(self.catalog_path):
+                note = f"catalog not used ({CATALOG_FILE} {exc}); runs listed from their folders"
+        present = self.run_ids()
+        rows = [cat[r] if r in cat else self._row(r) for r in present]
+        lacking = [r for r in present if r not in cat]
+        gone = sorted(set(cat) - set(present))
+        if note is None and (lacking or gone) and cat:
+            note = (f"catalog is stale: {len(lacking)} run folder(s) not indexed, {len(gone)} "
+                    "row(s) without a folder (listed from the folders; the next save re-indexes)")
+        elif note is None and lacking and self.catalog_path.exists():
+            note = "catalog is empty or stale; runs listed from their folders"
+        matched = query_rows(rows, filters)
+        temps = [self._temp_info(p) for p in self.temp_folders()]
+        return Listing(rows=matched, catalog_note=note, temp_folders=temps,
+                       missing_challengers=_missing_challengers(rows))
 
     def runs(self, **filters: Any) -> list[dict[str, Any]]:
-        """Catalog rows (oldest first) matching ``filters``, after reconciling with the folders.
+        """Catalog rows (oldest first) matching ``filters``; folders the catalog lacks are
+        listed from their manifests.  Never writes (see :meth:`listing`).
 
         Filters are column names (``solver="smo"``, ``status="converged"``,
         ``kernel="rbf"``, ``fingerprint=...``, ``parent=...``, ``converged=True``, ...),
@@ -358,8 +557,7 @@ class RunStore:
         """
         if not self.root.is_dir():
             return self._check_filters_only(filters)
-        self._reconcile()
-        return self._catalog.query(filters)
+        return self.listing(**filters).rows
 
     def _check_filters_only(self, filters: Mapping[str, Any]) -> list[dict[str, Any]]:
         from .catalog import ALIASES, COLUMNS
@@ -376,37 +574,160 @@ class RunStore:
         if not self.root.is_dir():
             return 0
         self._catalog.replace_all(self._row(r) for r in ids)
+        auditlog.append(self.root, "catalog_rebuilt", None, {"runs": len(ids)})
         return len(ids)
 
     # ------------------------------------------------------------------ maintenance
 
     def temp_folders(self) -> list[Path]:
-        """Temporary folders of saves in progress or interrupted by a crash."""
+        """Temporary folders of saves in progress or interrupted by a crash (real folders
+        only: a symbolic link named like one is never followed)."""
         if not self.root.is_dir():
             return []
-        return sorted(p for p in self.root.iterdir()
-                      if p.name.startswith(TEMP_PREFIX) and p.is_dir())
+        return sorted(Path(e.path) for e in os.scandir(self.root)
+                      if e.name.startswith(TEMP_PREFIX) and e.is_dir(follow_symlinks=False))
 
-    def clean_temp(self, *, max_age_seconds: float = 6 * 3600.0) -> list[str]:
-        """Delete temporary folders whose writing process has ended (same host) or that are
-        older than ``max_age_seconds``; returns the names removed.  Never touches runs."""
+    @staticmethod
+    def _temp_info(p: Path) -> dict[str, Any]:
+        try:
+            pid = int(p.name.rsplit("-", 1)[1])
+        except (IndexError, ValueError):
+            pid = -1
+        alive = pid > 0 and _pid_alive(pid)
+        try:
+            age = time.time() - p.lstat().st_mtime
+        except OSError:
+            age = None
+        return {"folder": p.name, "pid": pid if pid > 0 else None, "writer_running": alive,
+                "age_seconds": age}
+
+    def clean_temp(self, *, max_age_seconds: float | None = None) -> list[str]:
+        """Delete temporary folders whose writing process no longer runs (same host);
+        returns the names removed.  Never touches runs, never follows a link.
+
+        ``max_age_seconds`` (default None: off) also removes folders older than that whose
+        process id is alive, for a pid reused by another program; use it only when no
+        save can still be running that long.
+        """
         removed = []
-        now = time.time()
         for p in self.temp_folders():
-            try:
-                pid = int(p.name.rsplit("-", 1)[1])
-            except (IndexError, ValueError):
-                pid = -1
-            try:
-                age = now - p.stat().st_mtime
-            except OSError:
+            info = self._temp_info(p)
+            pid = info["pid"] or -1
+            age = info["age_seconds"]
+            if age is None:
                 continue
-            if pid == os.getpid() and age < max_age_seconds:
+            old = max_age_seconds is not None and age > max_age_seconds
+            if pid == os.getpid() and not old:
                 continue
-            if pid <= 0 or not _pid_alive(pid) or age > max_age_seconds:
+            if pid <= 0 or not info["writer_running"] or old:
+                st = os.lstat(p)
+                if not stat.S_ISDIR(st.st_mode):  # replaced by a link meanwhile
+                    continue
                 shutil.rmtree(p, ignore_errors=True)
-                removed.append(p.name)
+                if not os.path.lexists(p):
+                    removed.append(p.name)
+                    auditlog.append(self.root, "temp_removed", None,
+                                    {"folder": p.name, "pid": info["pid"]})
         return removed
+
+    # ------------------------------------------------------------------ output paths
+
+    def check_output_path(self, path: str | Path, what: str = "--out") -> Path:
+        """``path`` as an absolute path, or :class:`InvalidInputError` when writing there
+        could damage a run: inside a run folder or a temporary folder (of this store or,
+        recognised by its manifest pair, of any store), or the catalog / audit-log files."""
+        p = Path(path).expanduser().absolute()
+        root = self.root.resolve()
+        for cand in (p, p.resolve()):
+            for a in (cand, *cand.parents):
+                name = a.name
+                if a.parent == root or a.parent == self.root:
+                    if is_run_id(name):
+                        raise InvalidInputError(f"{what} {str(path)!r} is inside run {name} of "
+                                                f"store {self.root}; write outside the run folders")
+                    if name.startswith(TEMP_PREFIX):
+                        raise InvalidInputError(f"{what} {str(path)!r} is inside the temporary "
+                                                f"folder {name} of store {self.root}")
+                    if name.startswith(CATALOG_FILE) or name.startswith(auditlog.LOG_FILE):
+                        raise InvalidInputError(f"{what} {str(path)!r} would overwrite the store's "
+                                                f"{name}; choose another file")
+                if is_run_id(name) and (a / MANIFEST).is_file() and (a / MANIFEST_DIGEST).is_file():
+                    raise InvalidInputError(f"{what} {str(path)!r} is inside run {name} "
+                                            f"({a}); write outside the run folders")
+        return p
+
+    def leftovers(self) -> Listing:
+        """The store's leftovers only (same as :meth:`listing` with its rows)."""
+        return self.listing()
+
+    # ------------------------------------------------------------------ parents
+
+    def is_parent(self, run_id: str) -> bool:
+        """True when the folder ``run_id`` holds a parent record (its manifest says so)."""
+        d = self.run_dir(run_id)
+        if os.path.islink(d / MANIFEST):
+            return False
+        try:
+            manifest = parse_json((d / MANIFEST).read_bytes(), MANIFEST)
+        except (OSError, IntegrityError):
+            return False
+        return is_parent_manifest(manifest)
+
+    def save_parent(self, record: ParentRecord) -> str:
+        """Store a parent record over member runs already in this store; returns its id.
+
+        The SHA-256 of every member's ``manifest.json`` is recorded (a member whose
+        manifest does not match its ``manifest.sha256`` is refused).  Atomic, signed and
+        logged like :meth:`save`.
+        """
+        from .parents import encode_parent
+
+        digests: dict[str, str] = {}
+        for m in record.members if isinstance(record, ParentRecord) else ():
+            mdir = self._existing(m.run_id)
+            try:
+                mb = (mdir / MANIFEST).read_bytes()
+                rec = parse_digest_file((mdir / MANIFEST_DIGEST).read_bytes())
+            except OSError as exc:
+                raise IntegrityError(f"member run {m.run_id}: cannot read its manifest "
+                                     f"({exc})") from None
+            if rec != sha256_hex(mb):
+                raise IntegrityError(f"member run {m.run_id}: manifest.json does not match "
+                                     "manifest.sha256")
+            digests[m.run_id] = sha256_hex(mb)
+        now = datetime.now(timezone.utc)
+        run_id = new_run_id(now)
+        files, manifest = encode_parent(record, run_id=run_id, created=utc_stamp(now),
+                                        digests=digests)
+        mbytes, mdigest, note = self._write_folder(run_id, files, manifest, None)
+        try:
+            _fsync_dir(self.root)
+        except OSError as exc:
+            warnings.warn(f"parent {run_id} saved, but syncing the store folder failed ({exc})",
+                          StoreWarning, stacklevel=2)
+        if note:
+            warnings.warn(f"parent {run_id} saved; {note}", StoreWarning, stacklevel=2)
+        total = len(mbytes) + 65 + len(MANIFEST) + 1 + sum(len(b) for b in files.values())
+        try:
+            self._catalog.upsert([row_from_manifest(manifest, mdigest, total)])
+        except sqlite3.Error as exc:
+            warnings.warn(f"parent {run_id} saved but the catalog was not updated ({exc})",
+                          StoreWarning, stacklevel=2)
+        return run_id
+
+    def load_parent(self, run_id: str, *, verify: bool = True) -> ParentRecord:
+        """The stored parent record (with ``verify``: it and every member verified first)."""
+        from .parents import decode_parent
+
+        d = self._existing(run_id)
+        if verify:
+            v = self.verify(run_id)
+            if not v.ok:
+                raise IntegrityError(f"run {run_id} failed verification: " + "; ".join(v.problems))
+        manifest, _ = self._read_manifest(d, run_id)
+        if not is_parent_manifest(manifest):
+            raise InvalidInputError(f"run {run_id} is not a parent record")
+        return decode_parent(manifest, self._blobs(d, manifest, verify))
 
     @property
     def catalog_path(self) -> Path:

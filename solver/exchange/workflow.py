@@ -1,0 +1,54 @@
+"""Public workflow functions of model exchange (re-exported as ``solver.export_onnx`` and
+``solver.challenge``), with the same names as the ``kktrace export`` / ``challenge`` commands."""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from .._workflow import _align, _load_data, open_store
+from ..data import Dataset
+from .challenge import ChallengeOutcome
+from .challenge import challenge as _challenge
+from .export import ExportOutcome, export_run
+
+__all__ = ["export_onnx", "challenge", "ExportOutcome", "ChallengeOutcome"]
+
+
+def export_onnx(
+    run: Any, to: str | Path, *, store: Any = None,
+    holdout: Dataset | str | Path | None = None,
+) -> ExportOutcome:
+    """Export a stored run's model to the ONNX file ``to`` and check it.
+
+    The file holds a ``Scaler`` (the run's standardiser) and the standard's SVM operator
+    for the run's problem kind.  onnxruntime and the ``onnx`` reference evaluator run it on
+    the training rows (and ``holdout`` rows, if given); the largest decision-value
+    difference (float32 drift) and the share of changed predicted classes are returned and
+    stored as the attachment ``onnx_export`` of a run derived from ``run``.
+    """
+    from ..api import load_run
+
+    st = open_store(store)
+    rec = load_run(run, store=st)
+    hX = None
+    if holdout is not None:
+        names = list(rec.data.get("feature_names") or [])
+        hX = np.asarray(_align(_load_data(holdout, None, "held-out data"), names,
+                               "held-out data"), dtype=np.float64)
+    return export_run(rec, to, store=st, holdout=hX)
+
+
+def challenge(
+    model: str | Path, data: Dataset | str | Path, *, label: str | None, C: float | None,
+    kkt_tol: float = 1e-3, standardise: bool = True, store: Any = None,
+    challenger: bool = True,
+) -> ChallengeOutcome:
+    """Challenge a model trained elsewhere (ONNX file or open JSON table) on its training
+    data: the external solution's certificate, fresh SMO and QP solves of the same problem,
+    and the agreement verdict of the external solution against both (see
+    :mod:`solver.exchange.challenge`)."""
+    return _challenge(model, data, label=label, C=C, kkt_tol=kkt_tol, standardise=standardise,
+                      store=store, challenger=challenger)

@@ -1,0 +1,159 @@
+"""The task protocol: what a kind of learning problem supplies to the workflow.
+
+A *task* (binary classification, one-vs-one multi-class, regression, one-class, ...) says
+how its member problem(s) are built from a dataset, how its members' decision values turn
+into a prediction, which held-out measures it reports, its explanation vocabulary, its
+report section and (later) its export mapping.  Commands and the report look the task up
+(:func:`solver.tasks.get_task`, :func:`solver.tasks.task_of_manifest`) and ask it; they never
+branch on the problem kind themselves.
+
+A task that fits a single problem stores one run (``parent_record = False``); a task that
+fits several stores every member as a complete run and ties them together with a parent
+record (``parent_record = True``, see ``traces/README.md`` section 17).
+
+Adding a task
+-------------
+Subclass :class:`Task`, fill the class attributes, implement :meth:`Task.members`,
+:meth:`Task.predict` and :meth:`Task.held_out` (and :meth:`Task.report_section` when the
+report needs a section of its own), and register ``"name": "module:attribute"`` in
+:data:`solver.tasks.TASKS`.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Hashable, Mapping, Sequence
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from ..errors import InvalidInputError
+from ..problem import DualProblem
+
+__all__ = ["Task", "MemberSpec", "Prediction", "WeightSpec"]
+
+
+@dataclass(frozen=True, eq=False)
+class WeightSpec:
+    """Weights asked for by the user, before they are resolved against the labels.
+
+    class_weight : ``None``, ``"balanced"`` or a mapping label (as text) → factor > 0.
+    sample_weight : (n,) per-row factors > 0 (already validated, one per training row)
+        or None.
+    weight_column : name of the column the per-row factors came from (recorded) or None.
+    """
+
+    class_weight: str | Mapping[str, float] | None = None
+    sample_weight: np.ndarray | None = None
+    weight_column: str | None = None
+
+
+@dataclass(frozen=True, eq=False)
+class MemberSpec:
+    """One member problem of a task, as handed to the solver stage.
+
+    role : what the member is to its parent (``"model"`` for a single-problem task,
+        ``"pair"`` for one-vs-one).
+    key : the member's key within the parent (``None`` for a single-problem task; for a
+        pair the two class labels as text, first class first).
+    rows : (m,) indices of the dataset rows the member trains on, ascending.
+    labels : (m,) label values of those rows.
+    build : keyword arguments the member problem is built from (everything except X,
+        which the fit stage standardises itself): ``positive_label``, ``class_weight``,
+        ``sample_weight``.
+    """
+
+    role: str
+    key: tuple[str, ...] | None
+    rows: np.ndarray
+    labels: np.ndarray
+    build: Mapping[str, Any] = field(default_factory=dict)
+
+
+@dataclass(frozen=True, eq=False)
+class Prediction:
+    """A task's prediction for m query rows.
+
+    labels : (m,) predicted label values.
+    values : (m, q) every member's decision value (q = number of members).
+    member_keys : the q member keys, in column order.
+    votes : (m, k) vote counts per class (classification with several members) or None.
+    classes : the k class labels in vote-column order, or None.
+    tie : (m,) bool, True where the highest vote count was shared, or None.
+    """
+
+    labels: np.ndarray
+    values: np.ndarray
+    member_keys: tuple[Any, ...]
+    votes: np.ndarray | None = None
+    classes: tuple[Hashable, ...] | None = None
+    tie: np.ndarray | None = None
+
+
+class Task:
+    """Base class of every task; see the module docstring.
+
+    Class attributes
+    ----------------
+    name : registry name (``"binary"``, ``"multiclass"``, ...); stored in the manifest.
+    problem_kinds : member problem kinds (``DualProblem.kind``) this task builds.
+    parent_record : True when a fit stores a parent record over its member runs.
+    categories : the explanation vocabulary: category names the per-point table uses.
+    measures : names of the held-out measures :meth:`held_out` returns.
+    """
+
+    name: str = ""
+    problem_kinds: tuple[str, ...] = ()
+    parent_record: bool = False
+    categories: tuple[str, ...] = ()
+    measures: tuple[str, ...] = ()
+
+    # ---------------------------------------------------------------- building
+
+    def members(
+        self, labels: np.ndarray, *, weights: WeightSpec | None = None,
+        options: Mapping[str, Any] | None = None,
+    ) -> list[MemberSpec]:
+        """The member problems for a dataset with these (n,) ``labels``.
+
+        Raises :class:`~solver.errors.InvalidInputError` (one line) for labels the task
+        cannot use.
+        """
+        raise NotImplementedError
+
+    def build_problem(
+        self, X: np.ndarray, member: MemberSpec, *, kernel: Any, C: float
+    ) -> DualProblem:
+        """The dual problem of ``member`` on its (standardised) rows ``X`` (m, d)."""
+        raise NotImplementedError
+
+    def describe(self, members: Sequence[MemberSpec]) -> dict[str, Any]:
+        """Plain data recorded in a parent manifest's ``info`` (classes, rules, ...)."""
+        return {}
+
+    # ---------------------------------------------------------------- using a fit
+
+    def predict(self, models: Sequence[Any], X: np.ndarray,
+                info: Mapping[str, Any] | None = None) -> Prediction:
+        """Prediction for raw query rows ``X`` (m, d) from the members' models (member
+        order) and the parent's ``info``."""
+        raise NotImplementedError
+
+    def held_out(self, prediction: Prediction, truth: np.ndarray,
+                 classes: Sequence[Any]) -> dict[str, Any]:
+        """Held-out measures (plain data) of ``prediction`` against the true labels
+        (``classes``: the training classes in task order; an unseen label is an error)."""
+        raise NotImplementedError
+
+    # ---------------------------------------------------------------- presenting
+
+    def report_section(self, parent: Any, members: Sequence[Any]) -> dict[str, Any] | None:
+        """Plain-data content of the task's own report section (None: no section)."""
+        return None
+
+    def export_mapping(self, parent: Any, members: Sequence[Any]) -> dict[str, Any]:
+        """How the fitted members map onto an exchange format (filled in by the export work)."""
+        raise InvalidInputError(f"task {self.name!r} has no export mapping yet")
+
+    def __repr__(self) -> str:
+        return f"<task {self.name}>"
