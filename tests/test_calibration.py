@@ -163,8 +163,10 @@ def test_coupling_hand_worked_three_classes():
     # hand-worked: r01 = 0.6, r02 = 0.7, r12 = 0.6 (r_ji = 1 - r_ij).
     # Q = [[r10²+r20², -r10 r01, -r20 r02], [., r01²+r21², -r21 r12], [., ., r02²+r12²]]
     #   = [[0.25, -0.24, -0.21], [-0.24, 0.52, -0.24], [-0.21, -0.24, 0.85]].
-    # Q p = b e with Σp = 1; eliminating b by hand gives p ∝ (0.4752, 0.3195, 0.2052)
-    # (cofactor sums of Q), i.e. p = (0.47519..., 0.31947..., 0.20534...).
+    # Q p = b e with Σp = 1 gives p ∝ Q⁻¹e = adj(Q) e / det Q. Worked by hand in exact
+    # fractions (units of 1/2500): adj(Q) = [[961, 636, 417], [636, 421, 276],
+    # [417, 276, 181]], row sums (2014, 1333, 874), so p = (2014, 1333, 874) / 4221
+    # = (0.477138..., 0.315802..., 0.207060...).
     R = np.array([[0.0, 0.6, 0.7], [0.4, 0.0, 0.6], [0.3, 0.4, 0.0]])
     Q = np.array([[0.25, -0.24, -0.21], [-0.24, 0.52, -0.24], [-0.21, -0.24, 0.85]])
     from solver.calibration import coupling_matrix
@@ -174,7 +176,7 @@ def test_coupling_hand_worked_three_classes():
     expected = adj / adj.sum()
     p = couple_pairwise(R)
     assert np.allclose(p, expected, atol=1e-12)
-    assert np.allclose(p, [0.4752, 0.3195, 0.2052], atol=5e-4)
+    assert np.allclose(p, np.array([2014, 1333, 874]) / 4221, atol=1e-12)
     assert p[0] > p[1] > p[2]
 
 
@@ -186,7 +188,7 @@ def test_coupling_equals_brute_force_constrained_least_squares():
             U = rng.uniform(0.02, 0.98, (k, k))
             R = np.triu(U, 1) + np.tril(1 - U.T, -1)
 
-            def obj(p, R=R):
+            def obj(p, R=R, k=k):
                 return sum((R[j, i] * p[i] - R[i, j] * p[j]) ** 2
                            for i in range(k) for j in range(k) if i != j)
 
