@@ -80,6 +80,7 @@ _EXPORTS: dict[str, str] = {
     "RunStore": "store",
     "Status": "status",
     "to_plain": "plaindata",
+    "vocabulary": "_vocabulary_module",
     # errors and warnings
     "KktraceError": "errors",
     "InvalidInputError": "errors",
@@ -97,6 +98,10 @@ def __getattr__(name: str) -> Any:
     module = _EXPORTS.get(name)
     if module is None:
         raise AttributeError(f"module 'solver' has no attribute {name!r}")
+    if module == "_vocabulary_module":  # the vocabulary module itself
+        value = import_module(".vocabulary", __name__)
+        globals()[name] = value
+        return value
     value = getattr(import_module(f".{module}", __name__), name)
     globals()[name] = value  # cache: later look-ups skip this function
     return value

@@ -71,31 +71,48 @@ def _influential(rec: RunRecord, sel: np.ndarray | None) -> tuple[Table | None, 
             "Explanation attachment not available: reasons, margins and slacks are not shown.")
 
 
-def _loo(rec: RunRecord, label: str) -> tuple[Table | None, FigureData | None, str]:
-    """Leave-one-out scalars as a table and, with per-point values, a figure."""
+def _loo(
+    rec: RunRecord, label: str
+) -> tuple[Table | None, FigureData | None, str, dict[str, Any]]:
+    """Leave-one-out scalars as a table (label, value, meaning) and, with per-point
+    values, a figure.  Reads the ``leave_one_out`` attachment: the run's own or, as
+    :func:`solver.api.report` passes it, that of a child record (``kept_as``)."""
+    from ..vocabulary import LEAVE_ONE_OUT, meaning
+    from ..vocabulary import label as term_label
+
     raw = rec.attachments.get("leave_one_out") if rec.attachments else None
     if raw is None:
-        return None, None, "Leave-one-out figures not available for this run."
+        return None, None, ("Leave-one-out figures not available for this run: run "
+                            "kktrace explain RUN_ID --leave-one-out to compute and store "
+                            "them."), {}
     loo: dict[str, Any] = dict(_as_mapping(raw) or {})
     to_columns = getattr(raw, "to_columns", None)
     if callable(to_columns):
         loo.update(to_columns())
+    per_point = loo.pop("per_point", None)
+    if isinstance(per_point, Mapping):
+        loo.update(per_point)
     if not loo:
-        return None, None, "Leave-one-out figures not available for this run."
+        return None, None, "Leave-one-out figures not available for this run.", {}
     arrays = {str(k): np.asarray(v) for k, v in loo.items()
               if isinstance(v, (np.ndarray, list, tuple)) and np.asarray(v).ndim == 1
               and np.asarray(v).size > 20}
-    scalars = [(str(k), _plain(v)) for k, v in loo.items()
-               if str(k) not in arrays and not isinstance(v, Mapping)]
-    table = Table(columns=("measure", "value"), rows=tuple(scalars),
-                  note="Leave-one-out figures for this run.") if scalars else None
+    facts = {str(k): _plain(v) for k, v in loo.items()
+             if str(k) not in arrays and not isinstance(v, Mapping) and v is not None}
+    scalars = [(term_label(k, LEAVE_ONE_OUT), v, meaning(k, LEAVE_ONE_OUT))
+               for k, v in facts.items() if k not in ("kept_as", "kept_digest")]
+    kept = loo.get("kept_as")
+    where = (f"Stored in child record {kept} (manifest SHA-256 {loo.get('kept_digest')}), "
+             "verified when this report was written." if kept
+             else "Attached to this run.")
+    table = Table(columns=("measure", "value", "meaning"), rows=tuple(scalars),
+                  note=f"Leave-one-out figures for this run. {where}") if scalars else None
     fig = None
     values = arrays.get("loo_value", arrays.get("loo_values"))
-    if values is not None and values.dtype.kind in "fiu":
+    if values is not None and values.dtype.kind in "fiu" and "loo_wrong" in arrays:
         p = rec.problem
         rows = arrays.get("row_id", np.arange(values.size)).astype(np.float64)
-        wrong = arrays.get("loo_wrong")
-        wrong = (np.zeros(values.size, bool) if wrong is None else wrong.astype(bool))
+        wrong = arrays["loo_wrong"].astype(bool)
         y = p.y if p.n == values.size else np.ones(values.size)
         fig = FigureData(
             key="loo", kind="loo", title=f"{label}: leave-one-out decision values",
@@ -105,7 +122,7 @@ def _loo(rec: RunRecord, label: str) -> tuple[Table | None, FigureData | None, s
             data={"x": rows, "y": y * values.astype(np.float64), "wrong": wrong,
                   "xlabel": "training row (0-based)"},
         )
-    return table, fig, ""
+    return table, fig, "", facts
 
 
 # --------------------------------------------------------------------------- held-out, map

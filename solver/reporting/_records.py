@@ -92,6 +92,9 @@ class RunContent:
     flags: tuple[Flag, ...]
     series: Mapping[str, Mapping[str, list[float]]] = field(default_factory=dict)
     data_facts: Mapping[str, Any] = field(default_factory=dict)
+    #: leave-one-out scalars by key (:data:`solver.vocabulary.LEAVE_ONE_OUT`), with
+    #: ``kept_as`` / ``kept_digest`` when they come from a child record; {} when absent
+    loo_facts: Mapping[str, Any] = field(default_factory=dict)
 
 
 @dataclass(frozen=True, eq=False)

@@ -81,7 +81,7 @@ def _run_content(rec: RunRecord, label: str, holdout: Mapping | None) -> RunCont
         sel = (np.bincount(np.asarray(tr.columns["i"], np.int64), minlength=rec.problem.n)
                + np.bincount(np.asarray(tr.columns["j"], np.int64), minlength=rec.problem.n))
     infl, infl_note = _influential(rec, sel)
-    loo_table, loo_fig, loo_note = _loo(rec, label)
+    loo_table, loo_fig, loo_note, loo_facts = _loo(rec, label)
     hold = _as_mapping(holdout) if holdout is not None else _as_mapping(att.get("holdout"))
     confusion = _confusion(hold, rec.problem.labels) if hold else None
     try:
@@ -112,7 +112,7 @@ def _run_content(rec: RunRecord, label: str, holdout: Mapping | None) -> RunCont
         influential=infl, influential_note=infl_note, loo=loo_table, loo_figure=loo_fig,
         loo_note=loo_note, holdout={k: _plain(v) for k, v in hold.items()} if hold else None,
         confusion=confusion, decision_map=dmap, decision_note=dnote, flags=tuple(flags),
-        series=series, data_facts=data_facts,
+        series=series, data_facts=data_facts, loo_facts=loo_facts,
     )
 
 

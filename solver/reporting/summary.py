@@ -55,6 +55,7 @@ def _run(r: RunContent) -> dict[str, Any]:
                         {"columns": list(r.influential.columns),
                          "rows": [list(row) for row in r.influential.rows]}),
         "holdout": None if r.holdout is None else dict(r.holdout),
+        "leave_one_out": None if not r.loo_facts else dict(r.loo_facts),
         "series": {k: dict(v) for k, v in r.series.items()},
         "figures": [{"key": f.key, "title": f.title, "caption": f.caption}
                     for f in (*r.figures, *(x for x in (r.decision_map, r.loo_figure) if x))],

@@ -1,0 +1,109 @@
+"""Issue 13 (items 5, 6, 8, 9, 10, 20): the report ties itself to the stored evidence.
+
+End-to-end through the ``kktrace`` command on a small invented two-feature data set:
+leave-one-out figures are kept as a child record and shown by the report; one
+vocabulary for the per-point table; placeholders and ranking; manifest digests and the
+verification done while writing; the PDF's pages checked as rendered.
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+import os
+import subprocess
+import sys
+import warnings
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from solver import api
+from solver.store import RunStore
+
+
+def kk(*args: object, cwd: Path | None = None) -> subprocess.CompletedProcess:
+    """Run ``kktrace ARGS`` in a fresh interpreter."""
+    env = {k: v for k, v in os.environ.items() if k != "KKTRACE_STORE"}
+    return subprocess.run([sys.executable, "-m", "solver.cli", *map(str, args)],
+                          capture_output=True, text=True, cwd=cwd, env=env, timeout=300)
+
+
+def _csv(path: Path, n: int, seed: int) -> Path:
+    g = np.random.default_rng(seed)
+    X = g.normal(size=(n, 2))
+    r2 = X[:, 0] ** 2 + X[:, 1] ** 2 + 0.5 * g.normal(size=n)
+    lab = np.where(r2 > 1.3, "reject", "release")
+    with open(path, "w", newline="", encoding="utf-8") as fh:
+        w = csv.writer(fh)
+        w.writerow(["coating_um", "hardness_n", "outcome"])
+        for row, y in zip(X, lab, strict=True):
+            w.writerow([f"{row[0]:.5f}", f"{row[1]:.5f}", y])
+    return path
+
+
+@pytest.fixture(scope="module")
+def work(tmp_path_factory: pytest.TempPathFactory) -> dict:
+    root = tmp_path_factory.mktemp("evidence")
+    train = _csv(root / "train.csv", 120, 3)
+    store = root / "store"
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        out = api.train(str(train), label="outcome", store=str(store), solver="both", C=1.0)
+    return {"root": root, "store": store, "smo": out.run_ids[0], "qp": out.run_ids[1]}
+
+
+# --------------------------------------------------------------------------- item 5
+
+
+def test_leave_one_out_is_kept_as_a_verified_child_record_and_reported(work: dict) -> None:
+    """Item 5: ``explain --leave-one-out`` stores its figures (child record, digests and
+    parent link) and the report of the run shows them, by label and meaning."""
+    st = RunStore(work["store"])
+    before = set(st.run_ids())
+    out = kk("explain", work["smo"], "--store", work["store"], "--leave-one-out")
+    assert out.returncode == 0, out.stderr
+    (child,) = set(st.run_ids()) - before
+    assert f"stored as child record {child}" in out.stdout
+    assert "leave-one-out errors" in out.stdout and "xi_alpha" not in out.stdout
+    rec = st.load(child)  # verified on load, parent link included
+    assert rec.parent_id == work["smo"] and "leave_one_out" in rec.attachments
+    assert st.verify(child).chain == [child, work["smo"]]
+    loo = api.leave_one_out(work["smo"], store=work["store"])
+    rep = kk("report", work["smo"], "--store", work["store"], "--out", work["root"] / "r5",
+             "--format", "json,html")
+    assert rep.returncode == 0, rep.stderr
+    summary = json.loads((work["root"] / "r5" / "report.json").read_text(encoding="utf-8"))
+    facts = summary["runs"][0]["leave_one_out"]
+    assert facts["errors"] == loo.errors and facts["kept_as"] == child
+    assert facts["support_vector_bound"] == pytest.approx(loo.support_vector_bound)
+    html = (work["root"] / "r5" / "report.html").read_text(encoding="utf-8")
+    assert "Leave-one-out figures not available" not in html
+    assert f"child record {child}" in html and "slack bound (ξα-estimate)" in html
+    # a changed attachment is refused: the report does not print unverified figures
+    path = st.run_dir(child) / "leave_one_out.json"
+    path.write_text(path.read_text(encoding="utf-8").replace('"errors": ', '"errors": 1'),
+                    encoding="utf-8")
+    bad = kk("report", work["smo"], "--store", work["store"], "--out", work["root"] / "r5b",
+             "--format", "json")
+    assert bad.returncode != 0 and "Traceback" not in bad.stderr
+    assert "leave_one_out.json" in bad.stderr
+    assert not (work["root"] / "r5b").exists()
+    import shutil
+
+    shutil.rmtree(st.run_dir(child))
+    st.rebuild_catalog()
+
+
+def test_every_leave_one_out_key_has_a_label_and_a_meaning(work: dict) -> None:
+    """Item 5: the stored keys are our own readable names, each explained in words."""
+    from solver.vocabulary import LEAVE_ONE_OUT
+
+    loo = api.leave_one_out(work["smo"], store=work["store"])
+    keys = set(api.loo_attachment(loo)) - {"per_point"}
+    assert keys <= set(LEAVE_ONE_OUT), keys - set(LEAVE_ONE_OUT)
+    assert not {k for k in keys if k.startswith("xi_") or k == "reference_seconds"}
+    for k in keys:
+        assert LEAVE_ONE_OUT[k].label != k or " " not in k
+        assert len(LEAVE_ONE_OUT[k].meaning) > 8
