@@ -17,7 +17,7 @@ from dataclasses import dataclass
 from typing import Any
 
 __all__ = ["Term", "POINT_COLUMNS", "LEAVE_ONE_OUT", "FIELDS", "TERMS", "label", "meaning",
-           "labels", "not_traced", "rank_points", "RANKING_RULE"]
+           "labels", "heading", "not_traced", "rank_points", "RANKING_RULE", "TRACE_COLUMNS"]
 
 
 @dataclass(frozen=True)
@@ -132,6 +132,13 @@ def label(key: str, section: Mapping[str, Term] | None = None) -> str:
     terms = section if section is not None else TERMS
     term = terms.get(key) or TERMS.get(key)
     return term.label if term is not None else str(key).replace("_", " ")
+
+
+def heading(key: str) -> str:
+    """Table heading of a column: its :data:`TERMS` label; other headings (a table's own
+    words such as ``classified pass``, which may hold user labels) unchanged."""
+    term = TERMS.get(key)
+    return term.label if term is not None else str(key)
 
 
 def meaning(key: str, section: Mapping[str, Term] | None = None) -> str:

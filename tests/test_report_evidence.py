@@ -107,3 +107,82 @@ def test_every_leave_one_out_key_has_a_label_and_a_meaning(work: dict) -> None:
     for k in keys:
         assert LEAVE_ONE_OUT[k].label != k or " " not in k
         assert len(LEAVE_ONE_OUT[k].meaning) > 8
+
+
+# --------------------------------------------------------------------------- items 8, 9
+
+
+@pytest.fixture(scope="module")
+def written(work: dict) -> dict:
+    out = work["root"] / "r8"
+    paths = api.report([work["smo"], work["qp"]], store=work["store"], out_dir=out)
+    summary = json.loads(paths["json"].read_text(encoding="utf-8"))
+    return {"paths": paths, "summary": summary,
+            "html": paths["html"].read_text(encoding="utf-8")}
+
+
+def _pdf_text(path: Path, *extra: str) -> str:
+    return subprocess.run(["pdftotext", *extra, str(path), "-"], capture_output=True,
+                          text=True, check=True).stdout
+
+
+def test_untraced_columns_say_why_instead_of_minus_one(work: dict, written: dict) -> None:
+    """Item 8: the interior-point run's trace columns read "n/a (interior-point solver)"
+    in the CLI, HTML and PDF (null in the JSON, with what null means), never −1."""
+    smo, qp = (r["influential"] for r in written["summary"]["runs"])
+    traced = ("times_selected", "first_nonzero_iteration", "last_change_iteration")
+    for key in traced:
+        k = qp["columns"].index(key)
+        assert all(row[k] is None for row in qp["rows"])
+        k = smo["columns"].index(key)
+        assert all(isinstance(row[k], int) and row[k] >= 0 for row in smo["rows"])
+    assert qp["null_means"] == "n/a (interior-point solver)" and smo["null_means"] is None
+    assert written["html"].count("n/a (interior-point solver)") >= 3 * len(qp["rows"])
+    pdf = _pdf_text(written["paths"]["pdf"], "-layout")
+    assert pdf.count("n/a (interior-point solver)") >= 3 * len(qp["rows"])
+    out = kk("explain", work["qp"], "--store", work["store"])
+    assert out.returncode == 0, out.stderr
+    body = out.stdout.splitlines()[1:]
+    # three trace columns per row (a −1 may still appear as a decision value f(x) = −1)
+    assert all(ln.count("n/a (interior-point solver)") == 3 for ln in body)
+
+
+def test_points_table_ranks_by_a_stated_key_and_both_runs_agree(written: dict) -> None:
+    """Item 8: ranked by y·f(x), then KKT residual, then row — stated beside the table —
+    so the SMO and QP runs list the same rows in the same order (no unstated tie-break
+    among the many points at α = C)."""
+    smo, qp = (r["influential"] for r in written["summary"]["runs"])
+    rows = [[row[t["columns"].index("row_id")] for row in t["rows"]] for t in (smo, qp)]
+    assert rows[0] == rows[1] and len(rows[0]) == 15
+    m = [row[smo["columns"].index("margin")] for row in smo["rows"]]
+    assert m == sorted(m)
+    ratio = [row[smo["columns"].index("alpha_ratio")] for row in smo["rows"]]
+    assert sum(r == pytest.approx(1.0) for r in ratio) >= 10  # many ties at α = C here
+    assert "ordered as follows: support vectors ordered by y·f(x)" in smo["order"]
+    assert "then by KKT residual" in written["html"]
+
+
+def test_one_label_per_column_in_cli_html_pdf_and_one_key_in_json(work: dict,
+                                                                   written: dict) -> None:
+    """Item 9: the per-point table has one heading per column, from solver.vocabulary,
+    in the CLI, HTML and PDF; the JSON uses the keys; no key is shown as a heading."""
+    import re
+
+    from solver.vocabulary import POINT_COLUMNS
+
+    cols = written["summary"]["runs"][0]["influential"]["columns"]
+    assert set(cols) <= set(POINT_COLUMNS) and all(" " not in c for c in cols)
+    want = [POINT_COLUMNS[c].label for c in cols if c != "reason"]
+    heads = re.findall(r'<table class="grid points">.*?<thead><tr>(.*?)</tr>',
+                       written["html"], re.S)[0]
+    import html as _html
+
+    assert [_html.unescape(h) for h in re.findall(r'<th scope="col">(.*?)</th>', heads)] == want
+    pdf = _pdf_text(written["paths"]["pdf"])
+    for lab in want:
+        assert lab in pdf
+    cli = kk("explain", work["smo"], "--store", work["store"]).stdout.splitlines()[0]
+    for key in ("row_id", "alpha_ratio", "times_selected", "kkt_residual",
+                "first_nonzero_iteration"):
+        assert key not in cli and key not in heads and key not in pdf
+        assert POINT_COLUMNS[key].label in cli

@@ -75,7 +75,9 @@ def cmd_explain(args: argparse.Namespace) -> int:
         if args.json:
             emit_json(cols, sys.stdout)
         elif not args.out:
-            _print_columns(cols)
+            traced = getattr(res, "trace_level", "full") is not None
+            _print_columns(cols, None if traced else solver.vocabulary.not_traced(
+                getattr(res, "solver", None), None))
         return EXIT_OK
     d = to_dict(res)
     if args.json:
@@ -85,10 +87,21 @@ def cmd_explain(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-def _print_columns(cols: Mapping[str, list[Any]]) -> None:
+def _print_columns(cols: Mapping[str, list[Any]], placeholder: str | None) -> None:
+    """The per-point table with the vocabulary's labels; untraced columns say why."""
+    import solver
+
+    voc = solver.vocabulary
     names = [c for c in cols if c != "reason"] + (["reason"] if "reason" in cols else [])
     n = len(next(iter(cols.values()), []))
-    rows = [names] + [[cell(cols[c][i]) for c in names] for i in range(n)]
+
+    def show(c: str, v: Any) -> str:
+        if placeholder is not None and c in voc.TRACE_COLUMNS:
+            return placeholder
+        return cell(v)
+
+    rows = [list(voc.labels(names, voc.POINT_COLUMNS))]
+    rows += [[show(c, cols[c][i]) for c in names] for i in range(n)]
     print_rows(rows, indent="")
 
 

@@ -44,6 +44,8 @@ class Table:
     columns: tuple[str, ...]
     rows: tuple[tuple[Any, ...], ...]
     note: str = ""
+    #: what the renderers print for a None cell ("" → the usual dash); the JSON keeps null
+    blank: str = ""
 
 
 @dataclass(frozen=True, eq=False)

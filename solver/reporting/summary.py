@@ -53,7 +53,8 @@ def _run(r: RunContent) -> dict[str, Any]:
         "categories_source": r.categories_source,
         "influential": (None if r.influential is None else
                         {"columns": list(r.influential.columns),
-                         "rows": [list(row) for row in r.influential.rows]}),
+                         "rows": [list(row) for row in r.influential.rows],
+                         "order": r.influential.note, "null_means": r.influential.blank or None}),
         "holdout": None if r.holdout is None else dict(r.holdout),
         "leave_one_out": None if not r.loo_facts else dict(r.loo_facts),
         "series": {k: dict(v) for k, v in r.series.items()},
