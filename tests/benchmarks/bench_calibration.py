@@ -14,13 +14,14 @@ features; scikit-learn's ``gamma="scale"`` on standardised data, from memory), C
 5 stratified folds.  kktrace's SMO stops at KKT tolerance 1e-3, scikit-learn's SVC at its
 default tol 1e-3.
 
-Prints, per dataset and split seed: rows, classes, Brier score (mean over rows of the sum
-over classes of (p − [true class])²; for two classes twice the binary Brier score) and
-log-loss of both, their ratio kktrace / reference, accuracy of the most probable class, and
-the number of held-out rows where kktrace's most probable class differs from the class its
-decision values choose.
+Prints, per dataset and split seed: rows, classes, Brier score (two classes: mean of
+(P(positive) − y)²; several: mean over rows of the sum over classes of (p − [true class])²,
+Brier 1950) and log-loss of both, their ratio kktrace / reference, accuracy of the most
+probable class, and the number of held-out rows where kktrace's most probable class differs
+from the class its decision values choose.
 
-Run: ``python tests/benchmarks/bench_calibration.py [--seeds 0 1 2] [--datasets breast_cancer wine digits]``
+Run: ``python tests/benchmarks/bench_calibration.py [--seeds 0 1 2]
+[--datasets breast_cancer wine digits]``
 """
 
 from __future__ import annotations
@@ -39,7 +40,7 @@ from sklearn.preprocessing import StandardScaler
 from sklearn.svm import SVC
 
 import solver
-from solver.calibration import multiclass_evidence, parent_calibration
+from solver.calibration import calibration_evidence, multiclass_evidence, parent_calibration
 from solver.data import from_arrays
 from solver.model import model_from_solution
 from solver.tasks import get_task
@@ -106,8 +107,13 @@ def main() -> None:
                 t2 = time.perf_counter()
             R = R[:, [rclasses.index(c) for c in classes]]
             truth = np.array([classes.index(str(v)) for v in yte], dtype=np.int64)
-            ek = multiclass_evidence(P, truth, voted)
-            er = multiclass_evidence(R, truth, np.argmax(R, axis=1))
+            if len(classes) == 2:  # the usual binary Brier score, mean (P(positive) - y)^2
+                pos = truth == 1
+                ek = calibration_evidence(P[:, 1], pos, np.where(voted == 1, 1.0, -1.0))
+                er = calibration_evidence(R[:, 1], pos, R[:, 1] - 0.5)
+            else:
+                ek = multiclass_evidence(P, truth, voted)
+                er = multiclass_evidence(R, truth, np.argmax(R, axis=1))
             acc_k = float(np.mean(np.argmax(P, axis=1) == truth))
             acc_r = float(np.mean(np.argmax(R, axis=1) == truth))
             print(f"{name:<14}{seed:>5}{len(yte):>6}{len(classes):>4}  "
@@ -117,7 +123,8 @@ def main() -> None:
                   f"{ek['log_loss'] / er['log_loss']:>7.2f}  "
                   f"{acc_k:>7.3f}{acc_r:>8.3f}{ek['disagreements']:>9d}"
                   f"{t1 - t0:>7.1f}{t2 - t1:>7.1f}")
-    print("Brier: mean over rows of sum over classes of (p - [true class])^2; log-loss: "
+    print("Brier: two classes mean (P(positive) - y)^2, else mean over rows of sum over "
+          "classes of (p - [true class])^2; log-loss: "
           "-mean log p(true class); disagree: held-out rows where kktrace's most probable "
           "class differs from its decision-value class.")
 
