@@ -92,6 +92,8 @@ class RunContent:
     flags: tuple[Flag, ...]
     series: Mapping[str, Mapping[str, list[float]]] = field(default_factory=dict)
     data_facts: Mapping[str, Any] = field(default_factory=dict)
+    #: probability calibration section (:mod:`._calibration`), None without probabilities
+    calibration: Any = None
 
 
 @dataclass(frozen=True, eq=False)
