@@ -124,7 +124,7 @@ def _cover(c: ReportContent) -> list[PdfPage]:
     L.heading("Outcome")
     for r in c.runs:
         t = r.termination
-        ok = bool(t.get("converged")) and bool(t.get("meets_tol", True))
+        ok = bool(t.get("converged"))  # the status rule: solver.status.decide
         L.para(f"{r.label} ({r.solver}, run id {r.run_id or 'not stored'}): "
                f"{'CONVERGED' if ok else 'NOT CONVERGED'} — status {t.get('status')} after "
                f"{fmt(t.get('iterations'))} iterations.", "p" if ok else "ps")
