@@ -137,7 +137,7 @@ def _banner(c: ReportContent) -> str:
     rows = []
     for r in c.runs:
         t = r.termination
-        ok = bool(t.get("converged")) and bool(t.get("meets_tol", True))
+        ok = bool(t.get("converged"))  # the status rule: solver.status.decide
         word = "CONVERGED" if ok else "NOT CONVERGED"
         cls = "ok" if ok else "bad"
         rows.append(
@@ -300,6 +300,19 @@ def _run_section(doc: _Doc, r: RunContent, k: int) -> None:
     if r.calibration is not None:
         h3("Probability calibration", "calibration")
         _calibration_html(doc, r.calibration)
+    if r.task_section is not None:
+        ts = r.task_section
+        h3(ts.title, "task")
+        if ts.intro:
+            doc.add(f"<p>{esc(ts.intro)}</p>")
+        doc.kv(ts.facts)
+        for t in ts.tables:
+            doc.table(t, cls="grid")
+        for fd in ts.figures:
+            doc.figure(fd)
+    elif r.task_note:
+        h3("Task section", "task")
+        doc.missing(r.task_note)
     h3("Decision map", "map")
     if r.decision_map is not None:
         doc.figure(r.decision_map)
