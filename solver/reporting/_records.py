@@ -15,7 +15,8 @@ import numpy as np
 
 from ..status import Status
 
-__all__ = ["CAUTION", "SEVERITIES", "Flag", "Table", "FigureData", "RunContent", "ReportContent"]
+__all__ = ["CAUTION", "SEVERITIES", "Flag", "Table", "FigureData", "TaskSection", "RunContent",
+           "ReportContent"]
 
 #: The standing caution printed on every report (HTML, PDF and JSON).
 CAUTION = (
@@ -60,6 +61,20 @@ class FigureData:
 
 
 @dataclass(frozen=True, eq=False)
+class TaskSection:
+    """The section a run's task adds (regression fit, one-class boundary, ...): ``task`` is
+    its registry name; facts, tables, figures and flags as the task supplied them."""
+
+    task: str
+    title: str
+    intro: str
+    facts: tuple[tuple[str, Any], ...]
+    tables: tuple[Table, ...]
+    figures: tuple[FigureData, ...]
+    flags: tuple[Flag, ...] = ()
+
+
+@dataclass(frozen=True, eq=False)
 class RunContent:
     """Everything shown about one run.  ``label`` is the short name used across the report."""
 
@@ -97,6 +112,10 @@ class RunContent:
     #: leave-one-out scalars by key (:data:`solver.vocabulary.LEAVE_ONE_OUT`), with
     #: ``kept_as`` / ``kept_digest`` when they come from a child record; {} when absent
     loo_facts: Mapping[str, Any] = field(default_factory=dict)
+    #: probability calibration section (:mod:`._calibration`), None without probabilities
+    calibration: Any = None
+    task_section: TaskSection | None = None
+    task_note: str = ""
 
 
 @dataclass(frozen=True, eq=False)
