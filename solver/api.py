@@ -117,6 +117,19 @@ def compare(
     """
     from .agreement import compare_runs
 
+    pa, pb = _parent_runs(run_a, store), _parent_runs(run_b, store)
+    if pa is not None or pb is not None:
+        from .parent_workflow import compare_parents
+
+        if pa is None or pb is None:
+            raise InvalidInputError("compare a multi-class model with another multi-class "
+                                    "model (pair by pair), or one pair's run with another run")
+        hX = None
+        if holdout is not None:
+            hold = _load_data(holdout, pa.parent.data.get("label_name"), "held-out data")
+            hX = _align(hold, pa.parent.data.get("feature_names") or [], "held-out data")
+        return compare_parents(pa, pb, holdout_X=hX, tolerances=tolerances,
+                               allow_mismatch=allow_mismatch)
     a, b = load_run(run_a, store=store), load_run(run_b, store=store)
     hX = None
     if holdout is not None:
@@ -242,12 +255,26 @@ def leave_one_out(
         progress("done", {"task": "leave_one_out"})
 
 
-def replay(run: str | RunRecord, iteration: int, *, store: Any = None) -> Any:
-    """State of a run at a recorded ``iteration`` (α, certificate figures, decision function)."""
+def replay(run: str | RunRecord, iteration: int, *, store: Any = None,
+           pair: str | Sequence[str] | None = None) -> Any:
+    """State of a run at a recorded ``iteration`` (α, certificate figures, decision function).
+
+    For a multi-class parent ``pair`` (``"a,b"``) names the pair run to rebuild."""
     from .store import replay as _replay
 
     if isinstance(iteration, bool) or not isinstance(iteration, int) or iteration < 0:
         raise InvalidInputError(f"iteration must be a non-negative integer, got {iteration!r}")
+    pr = _parent_runs(run, store)
+    if pr is not None:
+        from .parent_workflow import member_name, pair_key
+
+        if pair is None:
+            raise InvalidInputError(
+                f"run {run} is a multi-class model over {len(pr.keys)} pair runs; name the "
+                f"pair to rebuild with --pair (one of {', '.join(map(member_name, pr.keys))})")
+        return _replay(pr.member(pair_key(pair)), iteration)
+    if pair is not None:
+        raise InvalidInputError(f"--pair applies to multi-class models; run {run} is one run")
     rec = load_run(run, store=store)
     return _replay(rec, iteration)
 
@@ -285,6 +312,37 @@ class VerifyOutcome:
         return ok
 
 
+@dataclass(frozen=True, eq=False)
+class _ParentReproduction:
+    """The re-run of every pair of a multi-class parent: ``pairs`` (key, Reproduction)."""
+
+    pairs: tuple[tuple[tuple[str, ...], Any], ...]
+
+    @property
+    def within_tolerance(self) -> bool:
+        """True when every pair reproduced."""
+        return all(bool(r.within_tolerance) for _, r in self.pairs)
+
+    @property
+    def agreement(self) -> str:
+        """The worst pair's agreement (``bitwise`` only when every pair is bitwise)."""
+        found = [str(r.agreement) for _, r in self.pairs]
+        for a in ("different", "within_tolerance"):
+            if a in found:
+                return a
+        return found[0] if len(set(found)) == 1 else ", ".join(sorted(set(found)))
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain data: every pair's reproduction."""
+        from .reporting._records import _plain as plain
+
+        out = [{"pair": list(key), **{k: plain(getattr(r, k)) for k in (
+            "run_id", "agreement", "max_abs_difference", "tolerance", "problem_identical",
+            "iterations", "status")}} for key, r in self.pairs]
+        return {"agreement": self.agreement, "within_tolerance": self.within_tolerance,
+                "pairs": out}
+
+
 def _trusted_keys(trusted: Any) -> list[Any] | None:
     from .store.signing import PublicKey, load_public_key
 
@@ -319,7 +377,16 @@ def verify(
     reproduction = None
     new_id = None
     calibration = None
-    if rerun is not None and integrity.ok:
+    if rerun is not None and integrity.ok and st.is_parent(run):
+        from .parent_workflow import load_parent_runs, rerun_parent
+
+        if keep_rerun:
+            raise InvalidInputError("--keep stores one re-run; a multi-class model's pairs are "
+                                    "re-run and compared without storing them")
+
+        reproduction = _ParentReproduction(tuple(rerun_parent(
+            load_parent_runs(st, run, trusted=keys), rerun)))
+    elif rerun is not None and integrity.ok:
         rec = st.load(run, trusted=keys)
         ds = _load_data(rerun, _split_column(rec.data), "re-run data")
         reproduction = reproduce(rec, ds)
