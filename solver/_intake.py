@@ -7,6 +7,7 @@ messages; see the row-number convention in :mod:`solver.data`.
 from __future__ import annotations
 
 import math
+import re
 from collections.abc import Callable, Sequence
 from typing import Any
 
@@ -27,12 +28,110 @@ def where_index(i: int) -> str:
     return f"row {i + 1} (index {i})"
 
 
+#: The numeral rule (README "Numbers in data files"): ASCII decimal numbers only — an
+#: optional sign, digits with an optional decimal point, an optional exponent.
+NUMERAL = re.compile(r"[+-]?(?:[0-9]+(?:\.[0-9]*)?|\.[0-9]+)(?:[eE][+-]?[0-9]+)?")
+#: Spellings of NaN / infinity that are read (and then refused as feature values).
+NONFINITE = re.compile(r"[+-]?(?:nan|inf|infinity)", re.IGNORECASE)
+_DECIMAL_COMMA = re.compile(r"[+-]?[0-9]*,[0-9]+(?:[eE][+-]?[0-9]+)?")
+_HEX = re.compile(r"[+-]?0[xX][0-9a-fA-F_]+")
+_MISSING_MARKERS = frozenset({"na", "n/a", "n.a.", "null", "none", "missing", "#n/a", "?",
+                              "-", "--", "."})
+
+
 def parse_number(text: str) -> float | None:
-    """float value of a numeric text cell, None when it is not a number."""
-    try:
-        return float(text)
-    except (TypeError, ValueError):
+    """float value of a numeric text cell under the numeral rule, None when it is not one.
+
+    NaN / infinity spellings give NaN / ±inf; a numeral beyond the float64 range (e.g.
+    ``1e400``) gives None (see :func:`numeral_problem`)."""
+    if not isinstance(text, str):
         return None
+    s = text.strip()
+    if NUMERAL.fullmatch(s):
+        x = float(s)
+        return x if math.isfinite(x) else None
+    if NONFINITE.fullmatch(s):
+        return float(s)
+    return None
+
+
+def numeral_problem(text: str) -> str:
+    """Why ``text`` is not read as a number (the words of the one-line error)."""
+    s = text.strip()
+    if not s:
+        return "empty cell (missing values are not allowed; fill or remove the row)"
+    if NUMERAL.fullmatch(s):
+        return (f"{s!r} is beyond the range of 64-bit floating-point numbers "
+                "(largest magnitude about 1.8e308)")
+    if _DECIMAL_COMMA.fullmatch(s):
+        return (f"{s!r} has a decimal comma (or a thousands separator); kktrace reads "
+                f"decimal points only and no digit grouping (write {s.replace(',', '.')!r} "
+                "or the plain digits, e.g. export the file with '.' as the decimal separator)")
+    if _HEX.fullmatch(s):
+        return f"{s!r} is a hexadecimal numeral; kktrace reads decimal numbers only"
+    if "_" in s and NUMERAL.fullmatch(s.replace("_", "")):
+        return (f"{s!r} has digit-group separators ('_'); write the digits without them")
+    if any(ch.isdigit() and not ("0" <= ch <= "9") for ch in s):
+        return (f"{s!r} has non-ASCII digits; kktrace reads ASCII decimal numbers only "
+                "(0-9)")
+    if s.lower() in _MISSING_MARKERS:
+        return (f"{s!r} looks like a missing-value marker (missing values are not allowed; "
+                "fill or remove the row)")
+    return f"{s!r} is not a number"
+
+
+#: Hint added to "not a number" errors: how to leave a column out.
+LEAVE_OUT = ("if this column is not a feature, leave it out with --ignore COLUMN "
+             "(Python: ignore_columns=)")
+
+
+def _cell_value(v: Any) -> tuple[float | None, str | None]:
+    """(value, None) for a readable cell, else (None, the text to diagnose)."""
+    if v is None:
+        return None, ""
+    if isinstance(v, bytes):
+        v = v.decode("utf-8", "replace")
+    if isinstance(v, (bool, np.bool_, int, float, np.integer, np.floating)):
+        return float(v), None
+    if isinstance(v, str):
+        x = parse_number(v)
+        return (x, None) if x is not None else (None, v)
+    return None, str(v)
+
+
+def numeric_block(
+    cells: Any, names: Sequence[str], where: Where, prefix: str,
+    order: Sequence[int] | None = None,
+) -> np.ndarray:
+    """Feature cells (n, k) as float64; the error names the first bad cell in file order.
+
+    ``order`` gives each column's position in the file (default: as given), so "first"
+    means the smallest (row, file column).  The message also counts the bad cells.
+    """
+    arr = np.asarray(cells, dtype=object)
+    n, k = arr.shape
+    out = np.empty((n, k), dtype=np.float64)
+    bad: list[tuple[int, int, int, str]] = []
+    for j in range(k):
+        pos = j if order is None else int(order[j])
+        for i, v in enumerate(arr[:, j].tolist()):
+            x, text = _cell_value(v)
+            if text is None:
+                out[i, j] = x
+            else:
+                bad.append((i, pos, j, text))
+    if bad:
+        i, _pos, j, text = min(bad)
+        empty = sum(1 for b in bad if not b[3].strip())
+        other = len(bad) - empty
+        counts = ", ".join(p for p in (f"{empty} empty" if empty else "",
+                                       f"{other} not readable as numbers" if other else "") if p)
+        hint = "" if not text.strip() else f"; {LEAVE_OUT}"
+        raise InvalidInputError(
+            f"{prefix}{where(i)}, column {names[j]!r}: {numeral_problem(text)} (first of "
+            f"{len(bad)} unreadable feature cell(s) in file order: {counts}){hint}"
+        )
+    return out
 
 
 def numeric_column(values: Any, column: str, where: Where, prefix: str) -> np.ndarray:
@@ -46,29 +145,13 @@ def numeric_column(values: Any, column: str, where: Where, prefix: str) -> np.nd
         raise InvalidInputError(
             f"{prefix}column {column!r} has type {arr.dtype}, not numbers"
         )
-    out = np.empty(arr.shape[0], dtype=np.float64)
-    for i, v in enumerate(arr.tolist()):
-        if v is None or (isinstance(v, str) and not v.strip()):
-            raise InvalidInputError(
-                f"{prefix}{where(i)}, column {column!r}: empty cell (missing values are not "
-                "allowed; fill or remove the row)"
-            )
-        if isinstance(v, bytes):
-            v = v.decode("utf-8", "replace")
-        if isinstance(v, (bool, np.bool_)):
-            out[i] = float(v)
-            continue
-        if isinstance(v, (int, float, np.integer, np.floating)):
-            out[i] = float(v)
-            continue
-        x = parse_number(v) if isinstance(v, str) else None
-        if x is None:
-            raise InvalidInputError(
-                f"{prefix}{where(i)}, column {column!r}: {v!r} is not a number (if this column "
-                "is not a feature, leave it out with feature_columns)"
-            )
-        out[i] = x
-    return out
+    return numeric_block(arr.reshape(-1, 1), [column], where, prefix)[:, 0]
+
+
+def column_reads_fast(cells: Sequence[str]) -> bool:
+    """True when every text cell is a plain ASCII numeral (no diagnosis needed)."""
+    match = NUMERAL.fullmatch
+    return all(match(c.strip()) for c in cells)
 
 
 def check_finite(X: np.ndarray, names: Sequence[str], where: Where, prefix: str) -> None:
@@ -79,6 +162,22 @@ def check_finite(X: np.ndarray, names: Sequence[str], where: Where, prefix: str)
         raise InvalidInputError(
             f"{prefix}{where(r)}, column {names[c]!r}: {what} ({int(bad.sum())} non-finite "
             "value(s) in all); every feature value must be a finite number"
+        )
+
+
+def check_spread(X: np.ndarray, names: Sequence[str], where: Where, prefix: str) -> None:
+    """Refuse a column whose mean or standard deviation overflows float64 (naming it).
+
+    Standardising such a column would divide by infinity and make it 0 in every row."""
+    with np.errstate(over="ignore", invalid="ignore"):
+        ok = np.isfinite(X.mean(axis=0)) & np.isfinite(X.std(axis=0))
+    if not np.all(ok):
+        j = int(np.flatnonzero(~ok)[0])
+        i = int(np.argmax(np.abs(X[:, j])))
+        raise InvalidInputError(
+            f"{prefix}column {names[j]!r}: values up to {X[i, j]:.3g} ({where(i)}) are so large "
+            "that the column's mean or standard deviation overflows 64-bit floating point; "
+            "rescale the column (e.g. to other units) before training"
         )
 
 
@@ -104,11 +203,13 @@ def canonical_labels(values: Any, where: Where, prefix: str, label_name: str) ->
     if arr.dtype.kind in "iu":
         return arr.astype(np.int64)
     items = arr.tolist()
-    for i, v in enumerate(items):
-        if is_missing(v):
-            raise InvalidInputError(
-                f"{prefix}{where(i)}, {what}: label is missing ({v!r}); every row needs a label"
-            )
+    missing = [i for i, v in enumerate(items) if is_missing(v)]
+    if missing:
+        i = missing[0]
+        raise InvalidInputError(
+            f"{prefix}{where(i)}, {what}: label is missing ({items[i]!r}; the first of "
+            f"{len(missing)} row(s) without a label); every row needs a label"
+        )
     numbers: list[float | int] = []
     for v in items:
         if isinstance(v, bytes):
@@ -121,6 +222,8 @@ def canonical_labels(values: Any, where: Where, prefix: str, label_name: str) ->
             numbers.append(float(v))
         elif isinstance(v, str):
             s = v.strip()
+            if not (NUMERAL.fullmatch(s) or NONFINITE.fullmatch(s)):
+                break  # text labels (the numeral rule also applies to labels)
             try:
                 numbers.append(int(s))  # exact for long integers
             except ValueError:
@@ -169,6 +272,32 @@ def check_names(
 
 
 def select_columns(
+    available: Sequence[str], label: str | None, feature_columns: Sequence[str] | None,
+    prefix: str, ignore_columns: Sequence[str] | None = None,
+) -> list[str]:
+    """Feature column names: ``feature_columns`` (default all but the label) less
+    ``ignore_columns``; every name given must be a column of the file."""
+    chosen = _chosen_columns(available, label, feature_columns, prefix)
+    if ignore_columns:
+        if isinstance(ignore_columns, str):
+            raise InvalidInputError(
+                f"{prefix}ignore_columns must be a sequence of column names, not one string")
+        ignore = [str(c) for c in ignore_columns]
+        missing = [c for c in ignore if c not in available]
+        if missing:
+            raise InvalidInputError(
+                f"{prefix}cannot ignore column(s) {', '.join(map(repr, missing))}: not in the "
+                f"file (available columns: {', '.join(repr(c) for c in available)})")
+        if label is not None and label in ignore:
+            raise InvalidInputError(
+                f"{prefix}column {label!r} is the label column and cannot be ignored")
+        chosen = [c for c in chosen if c not in ignore]
+        if not chosen:
+            raise InvalidInputError(f"{prefix}every feature column is ignored")
+    return chosen
+
+
+def _chosen_columns(
     available: Sequence[str], label: str | None, feature_columns: Sequence[str] | None,
     prefix: str,
 ) -> list[str]:

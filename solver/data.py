@@ -61,7 +61,10 @@ from ._intake import (
     canonical_labels,
     check_finite,
     check_names,
+    check_spread,
+    column_reads_fast,
     intake_warnings,
+    numeric_block,
     numeric_column,
     select_columns,
     where_index,
@@ -212,6 +215,7 @@ def fingerprint(dataset: Dataset) -> str:
 def _build(
     X: np.ndarray, labels: Any, names: Sequence[str], label_name: str | None,
     source: str | None, where: Where, prefix: str, min_classes: int, stacklevel: int = 5,
+    notes: Sequence[str] = (),
 ) -> Dataset:
     """Shared final validation, warnings and construction.
 
@@ -224,6 +228,7 @@ def _build(
     if d == 0:
         raise InvalidInputError(f"{prefix}no feature columns")
     check_finite(X, names, where, prefix)
+    check_spread(X, names, where, prefix)
     lab = None
     if labels is not None:
         lab = canonical_labels(labels, where, prefix, label_name or "")
@@ -235,7 +240,7 @@ def _build(
                 f"{prefix}{what} has {len(classes)} distinct value(s) ({found} in all {n} rows); "
                 f"at least {min_classes} classes are needed"
             )
-    found_warnings = intake_warnings(X, lab, names, where, prefix)
+    found_warnings = [*notes, *intake_warnings(X, lab, names, where, prefix)]
     for w in found_warnings:
         warnings.warn(w, DataWarning, stacklevel=stacklevel)
     return Dataset(
@@ -313,6 +318,8 @@ def load_table(
     label: str | None,
     feature_columns: Sequence[str] | None = None,
     min_classes: int = 2,
+    ignore_columns: Sequence[str] | None = None,
+    delimiter: str | None = None,
 ) -> Dataset:
     """Load and validate a table from ``.csv``, ``.parquet``/``.pq``, ``.npy`` or ``.npz``.
 
@@ -323,6 +330,8 @@ def load_table(
     feature_columns : names of the feature columns, in the order wanted; default every
         column except the label.
     min_classes : fewest distinct labels accepted (2 for training data).
+    ignore_columns : columns left out of the features (e.g. an ID column); each must exist.
+    delimiter : CSV field delimiter; default detected (see :func:`_sniff_delimiter`).
 
     Raises
     ------
@@ -346,18 +355,73 @@ def load_table(
         raise InvalidInputError(f"{prefix}not a regular file")
     if label is not None and not isinstance(label, str):
         raise InvalidInputError(f"{prefix}label must be a column name (text) or None")
-    reader = {".csv": _read_csv, ".parquet": _read_parquet, ".pq": _read_parquet,
+    _check_delimiter(delimiter, prefix)
+    if delimiter is not None and suffix != ".csv":
+        raise InvalidInputError(f"{prefix}a delimiter applies to CSV files only")
+    if suffix == ".csv":
+        return _read_csv(p, prefix, label, feature_columns, min_classes, ignore_columns,
+                         delimiter)
+    reader = {".parquet": _read_parquet, ".pq": _read_parquet,
               ".npy": _read_npy, ".npz": _read_npz}[suffix]
-    return reader(p, prefix, label, feature_columns, min_classes)
+    return reader(p, prefix, label, feature_columns, min_classes, ignore_columns)
+
+
+#: Delimiters the CSV reader detects, with their names in messages.
+DELIMITERS = {",": "comma", ";": "semicolon", "\t": "tab", "|": "vertical bar"}
+#: Records of the file's start used to detect the delimiter.
+SNIFF_RECORDS = 20
+_SNIFF_CHARS = 1 << 16
+
+
+def _sniff_delimiter(p: Path) -> str:
+    """The delimiter of a CSV file: the first of ``DELIMITERS`` under which the header has
+    more than one field and the next records (up to :data:`SNIFF_RECORDS`) have as many;
+    a comma when none qualifies (the errors then say what the file looks like)."""
+    import io
+
+    with open(p, encoding="utf-8-sig", newline="") as fh:
+        sample = fh.read(_SNIFF_CHARS)
+        truncated = bool(fh.read(1))
+    if truncated:  # the last line may be cut: leave it out
+        sample = sample[: max(sample.rfind("\n"), 0)]
+    for delim in DELIMITERS:
+        try:
+            recs = [r for r in csv.reader(io.StringIO(sample), delimiter=delim, strict=True)
+                    if r and not (len(r) == 1 and not r[0].strip())][: SNIFF_RECORDS + 1]
+        except csv.Error:
+            continue
+        if recs and len(recs[0]) > 1 and all(len(r) == len(recs[0]) for r in recs):
+            return delim
+    return ","
+
+
+def _looks_like(header: Sequence[str], delimiter: str) -> str:
+    """Hint for a header read as one field although it holds another delimiter."""
+    if len(header) != 1:
+        return ""
+    for d, name in DELIMITERS.items():
+        if d != delimiter and d in header[0]:
+            return f"; this looks {name}-separated: use --delimiter {d!r}"
+    return ""
+
+
+def _check_delimiter(delimiter: str | None, prefix: str) -> None:
+    if delimiter is not None and (not isinstance(delimiter, str) or len(delimiter) != 1
+                                  or delimiter in "\"\r\n" or delimiter.isalnum()):
+        raise InvalidInputError(
+            f"{prefix}delimiter must be one character such as ',' ';' or a tab, "
+            f"got {delimiter!r}")
 
 
 def _read_csv(
     p: Path, prefix: str, label: str | None, feature_columns: Sequence[str] | None,
-    min_classes: int,
+    min_classes: int, ignore_columns: Sequence[str] | None = None,
+    delimiter: str | None = None,
 ) -> Dataset:
     try:
+        delim = delimiter if delimiter is not None else _sniff_delimiter(p)
         with open(p, encoding="utf-8-sig", newline="") as fh:
-            reader = csv.reader(fh, strict=True)
+            reader = csv.reader(fh, delimiter=delim, strict=True)
             header: list[str] | None = None
             rows: list[list[str]] = []
             lines: list[int] = []
@@ -367,6 +431,10 @@ def _read_csv(
                 if header is None:
                     header = [c.strip() for c in rec]
                     width = len(header)
+                    hint = _looks_like(header, delim)
+                    if hint:
+                        raise InvalidInputError(
+                            f"{prefix}the header has one column {header[0]!r}{hint}")
                     continue
                 if len(rec) != width:
                     raise InvalidInputError(
@@ -386,56 +454,98 @@ def _read_csv(
         raise InvalidInputError(
             f"{prefix}the file is empty (a header row of column names is needed)"
         )
+    notes: list[str] = []
+    if len(header) > 1 and not header[-1] and all(not r[-1].strip() for r in rows):
+        # a spreadsheet export's trailing delimiter: an unnamed column empty in every row
+        header = header[:-1]
+        rows = [r[:-1] for r in rows]
+        notes.append(f"{prefix}the last column has no name and is empty in every row "
+                     "(a trailing delimiter); it was left out")
     check_names(header, prefix)
-    chosen = select_columns(header, label, feature_columns, prefix)
+    chosen = select_columns(header, label, feature_columns, prefix, ignore_columns)
     if not rows:
         raise InvalidInputError(f"{prefix}the file has a header but no data rows")
 
     def where(i: int) -> str:
         return f"row {i + 1} (line {lines[i]})"
 
-    cells = np.array(rows, dtype=object) if rows else np.empty((0, len(header)), dtype=object)
     col = {c: k for k, c in enumerate(header)}
     X = np.empty((len(rows), len(chosen)), dtype=np.float64)
+    slow: list[int] = []
     for j, c in enumerate(chosen):
-        raw = cells[:, col[c]]
-        try:  # fast path; the slow path below finds the offending cell
-            X[:, j] = raw.astype(str).astype(np.float64)
-        except ValueError:
-            X[:, j] = numeric_column(raw, c, where, prefix)
-    labels = None if label is None else cells[:, col[label]]
-    return _build(X, labels, chosen, label, str(p), where, prefix, min_classes, stacklevel=4)
+        raw = [r[col[c]] for r in rows]
+        if column_reads_fast(raw):
+            X[:, j] = np.array(raw, dtype=str).astype(np.float64)
+            if np.all(np.isfinite(X[:, j])):
+                continue  # else a numeral beyond the float64 range: diagnosed below
+        slow.append(j)
+    if slow:  # the first bad cell in file order, and how many there are
+        cells = np.array([[r[col[chosen[j]]] for j in slow] for r in rows], dtype=object)
+        X[:, slow] = numeric_block(cells, [chosen[j] for j in slow], where, prefix,
+                                   order=[col[chosen[j]] for j in slow])
+    labels = None if label is None else np.array([r[col[label]] for r in rows], dtype=object)
+    return _build(X, labels, chosen, label, str(p), where, prefix, min_classes, stacklevel=4,
+                  notes=notes)
+
+
+#: A compressed file (``.npz`` archive, Parquet file) may inflate to at most this many
+#: bytes in all, or to :data:`INFLATE_RATIO` times its size on disk if that is more.
+INFLATE_FLOOR = 256 * 2**20
+INFLATE_RATIO = 50
+
+
+def _inflate_limit(p: Path) -> int:
+    return max(INFLATE_FLOOR, INFLATE_RATIO * p.stat().st_size)
+
+
+def _inflate_refusal(prefix: str, size: int, p: Path, what: str) -> InvalidInputError:
+    return InvalidInputError(
+        f"{prefix}{what} would inflate to {size:,} bytes, more than kktrace's limit of "
+        f"{_inflate_limit(p):,} bytes (the larger of {INFLATE_FLOOR // 2**20} MiB and "
+        f"{INFLATE_RATIO} times the file's size); store the data uncompressed")
 
 
 def _read_parquet(
     p: Path, prefix: str, label: str | None, feature_columns: Sequence[str] | None,
-    min_classes: int,
+    min_classes: int, ignore_columns: Sequence[str] | None = None,
 ) -> Dataset:
     import pyarrow as pa
     import pyarrow.parquet as pq
 
     try:
-        pf = pq.ParquetFile(p)
+        # page checksums are verified where the writer stored them (a flipped byte is caught)
+        pf = pq.ParquetFile(p, page_checksum_verification=True)
         names = [str(c) for c in pf.schema_arrow.names]
         check_names(names, prefix)  # before reading: duplicates make column lookup ambiguous
-        table = pf.read(use_threads=False)  # see solver.store.format.read_table
+        chosen = select_columns(names, label, feature_columns, prefix, ignore_columns)
+        wanted = [*chosen, *([label] if label is not None else [])]
+        meta = pf.metadata
+        index = {meta.schema.column(k).path: k for k in range(meta.num_columns)}
+        inflated = sum(meta.row_group(g).column(index[c]).total_uncompressed_size
+                       for g in range(meta.num_row_groups) for c in wanted if c in index)
+        if inflated > _inflate_limit(p):
+            raise _inflate_refusal(prefix, inflated, p, "the columns read")
+        table = pf.read(columns=wanted, use_threads=False)  # see store.format.read_table
     except (pa.ArrowException, OSError, ValueError) as exc:
         if isinstance(exc, InvalidInputError):
             raise
         raise InvalidInputError(f"{prefix}cannot read as Parquet: {exc}") from None
-    chosen = select_columns(names, label, feature_columns, prefix)
     if table.num_rows == 0:
         raise InvalidInputError(f"{prefix}the table has no data rows")
+    nulls = [(int(np.flatnonzero(table.column(c).is_null().to_numpy(zero_copy_only=False))[0]),
+              names.index(c), c, table.column(c).null_count)
+             for c in chosen if table.column(c).null_count]
+    if nulls:
+        i, _pos, c, _k = min(nulls)
+        raise InvalidInputError(
+            f"{prefix}{where_index(i)}, column {c!r}: missing value (null), the first of "
+            f"{sum(k for *_, k in nulls)} missing feature value(s) in file order; "
+            "fill or remove the rows"
+        )
     X = np.empty((table.num_rows, len(chosen)), dtype=np.float64)
     for j, c in enumerate(chosen):
         column = table.column(c)
         t = column.type
-        if column.null_count:
-            i = int(np.flatnonzero(column.is_null().to_numpy(zero_copy_only=False))[0])
-            raise InvalidInputError(
-                f"{prefix}{where_index(i)}, column {c!r}: missing value (null); "
-                "fill or remove the row"
-            )
         if pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_boolean(t):
             X[:, j] = column.to_numpy().astype(np.float64)
         elif pa.types.is_decimal(t) or pa.types.is_string(t) or pa.types.is_large_string(t):
@@ -460,37 +570,100 @@ def _numpy_error(exc: Exception, prefix: str) -> InvalidInputError:
     return InvalidInputError(f"{prefix}cannot read as NumPy data: {exc}")
 
 
-def _load_numpy(p: Path, prefix: str) -> Any:
-    # np.load treats anything without the .npy / zip magic bytes as a pickle: check first
+#: dtype kinds read from .npy / .npz files (numbers, booleans and text; never objects).
+_NPY_KINDS = "biufUS"
+
+
+def _read_npy_stream(fh: Any, size: int, prefix: str, what: str) -> np.ndarray:
+    """One array in ``.npy`` format from ``fh`` holding ``size`` bytes in all.
+
+    The header is checked against ``size`` before anything is allocated, so a header
+    declaring a huge shape costs nothing; object arrays (pickles) are refused.
+    """
+    try:
+        version = np.lib.format.read_magic(fh)
+        if version == (1, 0):
+            shape, fortran, dtype = np.lib.format.read_array_header_1_0(fh)
+        elif version in ((2, 0), (3, 0)):
+            shape, fortran, dtype = np.lib.format.read_array_header_2_0(fh)
+        else:
+            raise ValueError(f"unsupported .npy format version {version}")
+        offset = fh.tell()
+    except (ValueError, SyntaxError, TypeError, EOFError, OSError) as exc:
+        raise InvalidInputError(f"{prefix}{what} is not in .npy format ({exc})") from None
+    if dtype.hasobject or dtype.kind not in _NPY_KINDS:
+        raise _numpy_error(ValueError("pickle" if dtype.hasobject else
+                                      f"dtype {dtype} is not numbers or text"), prefix)
+    count = 1
+    for k in shape:
+        count *= int(k)
+    need = count * dtype.itemsize
+    if need != size - offset:
+        raise InvalidInputError(
+            f"{prefix}{what}: its header declares shape {tuple(shape)} of {dtype} "
+            f"({need:,} bytes) but {max(size - offset, 0):,} data bytes follow; the file is "
+            "truncated or corrupt")
+    raw = fh.read(need)
+    if len(raw) != need:
+        raise InvalidInputError(f"{prefix}{what} is truncated ({len(raw):,} of {need:,} bytes)")
+    arr = np.frombuffer(raw, dtype=dtype).reshape(shape, order="F" if fortran else "C")
+    return np.array(arr, order="C")
+
+
+def _load_numpy(p: Path, prefix: str, members: Sequence[str] | None = None) -> Any:
+    """A ``.npy`` file's array, or the wanted members of a ``.npz`` archive as a dict.
+
+    No pickle is ever loaded; ``.npz`` members are inflated only after their declared
+    sizes pass the limit (:data:`INFLATE_FLOOR`, :data:`INFLATE_RATIO`).
+    """
     with open(p, "rb") as fh:
         head = fh.read(6)
-    if p.suffix.lower() == ".npy" and head != b"\x93NUMPY":
-        if head[:4] == b"PK\x03\x04":
-            raise InvalidInputError(f"{prefix}the file is a .npz archive; give it the .npz suffix")
-        raise InvalidInputError(f"{prefix}cannot read as NumPy data: no .npy header")
-    if p.suffix.lower() == ".npz" and head[:4] != b"PK\x03\x04":
+    if p.suffix.lower() == ".npy":
+        if head != b"\x93NUMPY":
+            if head[:4] == b"PK\x03\x04":
+                raise InvalidInputError(
+                    f"{prefix}the file is a .npz archive; give it the .npz suffix")
+            raise InvalidInputError(f"{prefix}cannot read as NumPy data: no .npy header")
+        with open(p, "rb") as fh:
+            return _read_npy_stream(fh, p.stat().st_size, prefix, "the file")
+    if head[:4] != b"PK\x03\x04":
         raise InvalidInputError(f"{prefix}cannot read as NumPy data: not a .npz (zip) archive")
     try:
-        return np.load(p, allow_pickle=False)
-    except ValueError as exc:
-        raise _numpy_error(exc, prefix) from None
-    except (OSError, EOFError, zipfile.BadZipFile) as exc:
+        with zipfile.ZipFile(p) as zf:
+            infos = {i.filename[:-4]: i for i in zf.infolist() if i.filename.endswith(".npy")}
+            odd = [i.filename for i in zf.infolist() if not i.filename.endswith(".npy")]
+            if odd:
+                raise InvalidInputError(
+                    f"{prefix}member {odd[0]!r} is not a .npy array; a .npz archive holds "
+                    ".npy arrays only")
+            keys = list(infos) if members is None else [k for k in members if k in infos]
+            total = sum(infos[k].file_size for k in keys)
+            if total > _inflate_limit(p):
+                raise _inflate_refusal(prefix, total, p, "the archive's arrays")
+            out = {"__files__": list(infos)}
+            for k in keys:
+                with zf.open(infos[k]) as fh:
+                    out[k] = _read_npy_stream(fh, infos[k].file_size, prefix,
+                                              f"member {k!r}")
+            return out
+    except (OSError, EOFError, zipfile.BadZipFile, zipfile.LargeZipFile, ValueError,
+            NotImplementedError) as exc:
+        if isinstance(exc, InvalidInputError):
+            raise
         raise InvalidInputError(f"{prefix}cannot read as NumPy data: {exc}") from None
 
 
 def _read_npy(
     p: Path, prefix: str, label: str | None, feature_columns: Sequence[str] | None,
-    min_classes: int,
+    min_classes: int, ignore_columns: Sequence[str] | None = None,
 ) -> Dataset:
     arr = _load_numpy(p, prefix)
-    if not isinstance(arr, np.ndarray):
-        raise InvalidInputError(f"{prefix}expected one array")
     if arr.ndim != 2:
         raise InvalidInputError(
             f"{prefix}expected a 2-D array (rows, columns), got shape {arr.shape}"
         )
     names = _default_names(arr.shape[1])
-    chosen = select_columns(names, label, feature_columns, prefix)
+    chosen = select_columns(names, label, feature_columns, prefix, ignore_columns)
     if arr.shape[0] == 0:
         raise InvalidInputError(f"{prefix}the array has no data rows")
     idx = [int(c[3:]) - 1 for c in chosen]
@@ -519,49 +692,42 @@ def _text_entry(v: np.ndarray, what: str, prefix: str) -> list[str]:
 
 def _read_npz(
     p: Path, prefix: str, label: str | None, feature_columns: Sequence[str] | None,
-    min_classes: int,
+    min_classes: int, ignore_columns: Sequence[str] | None = None,
 ) -> Dataset:
-    archive = _load_numpy(p, prefix)
-    if not isinstance(archive, np.lib.npyio.NpzFile):
-        raise InvalidInputError(f"{prefix}expected a .npz archive of arrays")
-    try:
-        with archive:
-            keys = list(archive.files)
-            if "X" not in keys:
-                raise InvalidInputError(
-                    f"{prefix}no array named 'X'; the archive holds {', '.join(keys) or 'nothing'}"
-                )
-            X = archive["X"]
-            names = (_text_entry(archive["feature_names"], "feature_names", prefix)
-                     if "feature_names" in keys else None)
-            label_keys = [k for k in ("y", "labels") if k in keys]
-            if len(label_keys) > 1:
-                raise InvalidInputError(f"{prefix}holds both 'y' and 'labels'; keep one")
-            label_key = label_keys[0] if label_keys else None
-            stored_name = None
-            if "label_name" in keys:
-                entry = _text_entry(archive["label_name"], "label_name", prefix)
-                if len(entry) != 1:
-                    raise InvalidInputError(f"{prefix}'label_name' must hold one name")
-                stored_name = entry[0]
-            labels = None
-            if label is not None:
-                if label_key is None:
-                    raise InvalidInputError(
-                        f"{prefix}no label array ('y' or 'labels'); the archive holds "
-                        f"{', '.join(keys)}"
-                    )
-                expected = stored_name or label_key
-                if label != expected:
-                    raise InvalidInputError(
-                        f"{prefix}no label column {label!r}; the archive's labels are named "
-                        f"{expected!r}"
-                    )
-                labels = archive[label_key]
-    except (OSError, EOFError, zipfile.BadZipFile, ValueError) as exc:
-        if isinstance(exc, InvalidInputError):
-            raise
-        raise _numpy_error(exc, prefix) from None
+    archive = _load_numpy(p, prefix, members=("X", "feature_names", "label_name", "y",
+                                               "labels"))
+    keys = archive["__files__"]
+    if "X" not in keys:
+        raise InvalidInputError(
+            f"{prefix}no array named 'X'; the archive holds {', '.join(keys) or 'nothing'}"
+        )
+    X = archive["X"]
+    names = (_text_entry(archive["feature_names"], "feature_names", prefix)
+             if "feature_names" in keys else None)
+    label_keys = [k for k in ("y", "labels") if k in keys]
+    if len(label_keys) > 1:
+        raise InvalidInputError(f"{prefix}holds both 'y' and 'labels'; keep one")
+    label_key = label_keys[0] if label_keys else None
+    stored_name = None
+    if "label_name" in keys:
+        entry = _text_entry(archive["label_name"], "label_name", prefix)
+        if len(entry) != 1:
+            raise InvalidInputError(f"{prefix}'label_name' must hold one name")
+        stored_name = entry[0]
+    labels = None
+    if label is not None:
+        if label_key is None:
+            raise InvalidInputError(
+                f"{prefix}no label array ('y' or 'labels'); the archive holds "
+                f"{', '.join(keys)}"
+            )
+        expected = stored_name or label_key
+        if label != expected:
+            raise InvalidInputError(
+                f"{prefix}no label column {label!r}; the archive's labels are named "
+                f"{expected!r}"
+            )
+        labels = archive[label_key]
     if X.ndim != 2:
         raise InvalidInputError(f"{prefix}array 'X' must be 2-D (rows, features), got {X.shape}")
     all_names = _default_names(X.shape[1]) if names is None else names
@@ -572,7 +738,7 @@ def _read_npz(
     check_names(all_names, prefix)
     if label is not None and label in all_names:
         raise InvalidInputError(f"{prefix}label name {label!r} is also a feature name")
-    chosen = select_columns(all_names, None, feature_columns, prefix)
+    chosen = select_columns(all_names, None, feature_columns, prefix, ignore_columns)
     if labels is not None and (labels.ndim != 1 or labels.shape[0] != X.shape[0]):
         raise InvalidInputError(
             f"{prefix}label array {label_key!r} has shape {labels.shape} but 'X' has "

@@ -27,8 +27,14 @@ class Standardiser:
     def fit(cls, X: np.ndarray) -> Standardiser:
         """Fit to the columns of ``X`` (n, d): mean and population standard deviation."""
         X = np.asarray(X, dtype=np.float64)
-        sd = X.std(axis=0)
-        return cls(centre=X.mean(axis=0), scale=np.where(sd > 0, sd, 1.0))
+        with np.errstate(over="ignore", invalid="ignore"):
+            centre, sd = X.mean(axis=0), X.std(axis=0)
+        bad = np.flatnonzero(~(np.isfinite(centre) & np.isfinite(sd)))
+        if bad.size:  # dividing by an infinite scale would zero the column
+            raise InvalidInputError(
+                f"feature column {int(bad[0]) + 1} (1-based): its mean or standard deviation "
+                "overflows 64-bit floating point; rescale the column before standardising")
+        return cls(centre=centre, scale=np.where(sd > 0, sd, 1.0))
 
     @classmethod
     def identity(cls, d: int) -> Standardiser:

@@ -45,7 +45,7 @@ from .certificate import certify
 from .errors import ConvergenceWarning, InvalidInputError
 from .problem import DualProblem
 from .result import TRACE_LEVELS, SolveResult, Trace
-from .status import Status, status_message
+from .status import Status, settle
 
 __all__ = ["solve_qp", "KKT_METHODS", "DEFAULT_INTERIOR_POINT_TOL", "DEFAULT_KKT_TOL",
            "DEFAULT_SIZE_LIMIT"]
@@ -448,7 +448,8 @@ def solve_qp(
     Notes
     -----
     If cvxopt reports ``optimal`` but the shared certificate's maximal violation exceeds
-    ``kkt_tol``, the status stays CONVERGED (cvxopt's test was met), the message says so and a
+    ``kkt_tol``, the status is CERTIFICATE_NOT_MET (the one status rule,
+    :func:`solver.status.decide`); the message keeps cvxopt's word and a
     :class:`ConvergenceWarning` is issued.
 
     Examples
@@ -562,12 +563,8 @@ def solve_qp(
     alpha, snap = _snap(problem, x, s, z, kappa)
     cert = certify(problem, alpha, kkt_tol=kkt_tol, gradient=_qx(Qc, alpha) + problem.p)
     detail_text = f"cvxopt status {raw_status!r}" + (f": {detail}" if detail else "")
-    message = status_message(status, detail_text)
-    if status == Status.CONVERGED and not cert.meets_tol:
-        message += (f"; note: shared certificate maximal violation {cert.max_violation:.3g} "
-                    f"exceeds kkt_tol {kkt_tol:g}")
-        warnings.warn(f"qp solver: {message}", ConvergenceWarning, stacklevel=2)
-    elif status != Status.CONVERGED:
+    status, message = settle(status, detail_text, cert.max_violation, cert.kkt_tol)
+    if status != Status.CONVERGED:
         warnings.warn(f"qp solver: {message}", ConvergenceWarning, stacklevel=2)
 
     cols: dict[str, np.ndarray] = {"iteration": np.asarray(rec.rows["iteration"], dtype=np.int64)}

@@ -421,7 +421,10 @@ def train(
             warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
     seen: list[str] = []
     for m in [*outcome.warnings, *caught]:
-        if m not in seen:
+        # a solver's own warning ("qp solver: MESSAGE") repeats a run's note ("... did not
+        # converge: MESSAGE"): say it once
+        tail = m.split(": ", 1)[-1]
+        if m not in seen and not any(s != m and s.endswith(tail) for s in seen):
             seen.append(m)
     return replace(outcome, warnings=tuple(seen))
 
@@ -774,8 +777,8 @@ class _NoPrediction:
         self.labels = labels
 
 
-_STATUS_ORDER = ("converged", "stopped_by_callback", "time_limit", "iteration_limit",
-                 "stalled", "singular_kkt", "numerical_error")
+_STATUS_ORDER = ("converged", "certificate_not_met", "stopped_by_callback", "time_limit",
+                 "iteration_limit", "stalled", "singular_kkt", "numerical_error")
 _VERDICT_ORDER = ("agree", "agree_within_tolerances", "disagree")
 
 

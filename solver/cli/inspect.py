@@ -111,6 +111,9 @@ def cmd_replay(args: argparse.Namespace) -> int:
         "deltas_applied": state.deltas_applied,
         "certificate": cert,
         "recorded": dict(state.recorded) if state.recorded is not None else None,
+        "run_status": state.run_status.label if state.run_status is not None else None,
+        "run_converged": state.run_status == solver.Status.CONVERGED,
+        "run_message": state.run_message,
     }
     if args.json:
         d["alpha"] = state.alpha.tolist()
@@ -120,6 +123,7 @@ def cmd_replay(args: argparse.Namespace) -> int:
                                            f"(run {state.run_id}) of {args.run}")
     print(f"{'' if args.pair else 'run '}{who} rebuilt at iteration {state.iteration} "
           f"(snapshot {state.base_iteration} + {state.deltas_applied} recorded steps)")
+    print(f"  run status    {d['run_status']} (of the whole run: {d['run_message']})")
     print(f"  violation     {num(cert['max_violation'], '.3e')}  "
           f"(kkt_tol {num(cert['kkt_tol'], '.1e')})")
     print(f"  objectives    dual {num(cert['dual_objective'], '.8g')}, "

@@ -15,7 +15,8 @@ import numpy as np
 
 from ..status import Status
 
-__all__ = ["CAUTION", "SEVERITIES", "Flag", "Table", "FigureData", "RunContent", "ReportContent"]
+__all__ = ["CAUTION", "SEVERITIES", "Flag", "Table", "FigureData", "TaskSection", "RunContent",
+           "ReportContent"]
 
 #: The standing caution printed on every report (HTML, PDF and JSON).
 CAUTION = (
@@ -58,6 +59,20 @@ class FigureData:
 
 
 @dataclass(frozen=True, eq=False)
+class TaskSection:
+    """The section a run's task adds (regression fit, one-class boundary, ...): ``task`` is
+    its registry name; facts, tables, figures and flags as the task supplied them."""
+
+    task: str
+    title: str
+    intro: str
+    facts: tuple[tuple[str, Any], ...]
+    tables: tuple[Table, ...]
+    figures: tuple[FigureData, ...]
+    flags: tuple[Flag, ...] = ()
+
+
+@dataclass(frozen=True, eq=False)
 class RunContent:
     """Everything shown about one run.  ``label`` is the short name used across the report."""
 
@@ -92,6 +107,8 @@ class RunContent:
     flags: tuple[Flag, ...]
     series: Mapping[str, Mapping[str, list[float]]] = field(default_factory=dict)
     data_facts: Mapping[str, Any] = field(default_factory=dict)
+    task_section: TaskSection | None = None
+    task_note: str = ""
 
 
 @dataclass(frozen=True, eq=False)

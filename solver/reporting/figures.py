@@ -402,6 +402,105 @@ def _draw_loo(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
     _legend_above(ax, ax.get_legend_handles_labels()[0])
 
 
+#: Markers of the task sections' row categories (matched on the display words' start).
+_TASK_MARKS = (("inside", "muted", "o", True, 5.0), ("interior", "muted", "o", True, 5.0),
+               ("on the", "pine", "D", True, 16.0), ("outside", "mustard", "s", False, 20.0))
+
+
+def _task_mark(cat: str) -> tuple[str, str, bool, float]:
+    for start, colour, marker, filled, size in _TASK_MARKS:
+        if cat.startswith(start):
+            return colour, marker, filled, size
+    return "heather", "^", True, 14.0
+
+
+def _scatter_by_category(ax: Any, x: np.ndarray, y: np.ndarray, cats: np.ndarray) -> None:
+    order = sorted(set(cats.tolist()), key=lambda c: _task_mark(c)[3])
+    for cat in order:
+        sel = cats == cat
+        colour, marker, filled, size = _task_mark(cat)
+        ax.scatter(x[sel], y[sel], s=size, marker=marker, zorder=3,
+                   facecolors=_c(colour) if filled else "none", edgecolors=_c(colour),
+                   linewidths=0.7, label=f"{plain_text(cat, 40)} ({int(sel.sum())})")
+
+
+def _legend_two(ax: Any) -> None:
+    """Legend in two columns above the axes (long category words)."""
+    handles = ax.get_legend_handles_labels()[0]
+    if handles:
+        ax.legend(handles=handles, loc="lower left", bbox_to_anchor=(0.0, 1.01), ncol=2,
+                  borderaxespad=0.0, columnspacing=1.2)
+
+
+def _draw_fit_tube(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
+    ax = _axes(fig, top=0.8)
+    t, f = np.asarray(d["actual"], np.float64), np.asarray(d["fitted"], np.float64)
+    eps = float(d["epsilon"])
+    lo = float(min(t.min(), f.min())) - eps
+    hi = float(max(t.max(), f.max())) + eps
+    line = np.array([lo, hi])
+    ax.fill_between(line, line - eps, line + eps, color=_c("tint_neg"), linewidth=0, zorder=1)
+    ax.plot(line, line, color=_c("ink"), linewidth=0.8, zorder=2)
+    for s in (-1.0, 1.0):
+        ax.plot(line, line + s * eps, color=_c("tide"), linewidth=0.7, linestyle=(0, (1, 2)),
+                zorder=2)
+    _scatter_by_category(ax, t, f, np.asarray(d["category"]).astype(str))
+    ax.set_xlim(lo, hi)
+    ax.set_ylim(lo, hi)
+    ax.set_xlabel(plain_text(d.get("xlabel", "actual")))
+    ax.set_ylabel(plain_text(d.get("ylabel", "fitted")))
+    _legend_two(ax)
+
+
+def _draw_residuals(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
+    ax = _axes(fig, top=0.8)
+    f, r = np.asarray(d["fitted"], np.float64), np.asarray(d["residual"], np.float64)
+    eps = float(d["epsilon"])
+    ax.axhspan(-eps, eps, color=_c("tint_neg"), linewidth=0, zorder=1)
+    ax.axhline(0.0, color=_c("ink"), linewidth=0.7, zorder=2)
+    for s in (-1.0, 1.0):
+        ax.axhline(s * eps, color=_c("tide"), linewidth=0.7, linestyle=(0, (1, 2)), zorder=2)
+    _scatter_by_category(ax, f, r, np.asarray(d["category"]).astype(str))
+    ax.set_xlabel(plain_text(d.get("xlabel", "fitted")))
+    ax.set_ylabel(plain_text(d.get("ylabel", "residual")))
+    _legend_two(ax)
+
+
+def _draw_score_distribution(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
+    ax = _axes(fig, top=0.8)
+    g = np.asarray(d["expansion"], np.float64)
+    cats = np.asarray(d["category"]).astype(str)
+    rho = float(d["rho"])
+    lo, hi = float(min(g.min(), rho)), float(max(g.max(), rho))
+    span = hi - lo if hi > lo else max(abs(hi), 1.0)
+    edges = np.linspace(lo - 0.02 * span, hi + 0.02 * span, 41)
+    groups = sorted(set(cats.tolist()), key=lambda c: _task_mark(c)[3])
+    ax.hist([g[cats == c] for c in groups], bins=edges, stacked=True,
+            color=[_c(_task_mark(c)[0]) for c in groups],
+            label=[f"{plain_text(c, 40)} ({int(np.sum(cats == c))})" for c in groups])
+    ax.axvline(rho, color=_c("rust"), linewidth=1.1, linestyle=(0, (5, 3)),
+               label=f"ρ = {rho:.4g}")
+    ax.yaxis.set_major_formatter(FuncFormatter(_count))
+    ax.set_xlabel("g(x) = Σ αⱼ K(xⱼ, x)")
+    ax.set_ylabel("training rows")
+    _legend_two(ax)
+
+
+def _draw_nu_shares(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
+    ax = _axes(fig, left=0.3)
+    names = ["outlier share", "ν", "support-vector share"]
+    vals = [float(d["outlier_share"]), float(d["nu"]), float(d["support_share"])]
+    colours = [_c("rust"), _c("ink"), _c("tide")]
+    ax.barh(names, vals, color=colours, height=0.55)
+    ax.axvline(float(d["nu"]), color=_c("ink"), linewidth=0.7, linestyle=(0, (1, 2)))
+    for k, v in enumerate(vals):
+        ax.text(v, k, f"  {v:.4g}", va="center", ha="left", fontsize=7.0)
+    ax.set_xlim(0.0, max(1.0, max(vals) * 1.15))
+    ax.invert_yaxis()
+    ax.set_xlabel("share of training rows" + ("" if d.get("holds") else
+                                                "  (ν-property does NOT hold)"))
+
+
 _DRAW = {
     "violation": (_draw_violation, FIG_SIZE),
     "objective": (_draw_objective, FIG_SIZE_TALL),
@@ -411,6 +510,10 @@ _DRAW = {
     "selection": (_draw_selection, FIG_SIZE),
     "regions": (_draw_regions, MAP_SIZE),
     "loo": (_draw_loo, FIG_SIZE),
+    "fit_tube": (_draw_fit_tube, MAP_SIZE),
+    "residuals": (_draw_residuals, FIG_SIZE_TALL),
+    "score_distribution": (_draw_score_distribution, FIG_SIZE_TALL),
+    "nu_shares": (_draw_nu_shares, FIG_SIZE),
 }
 
 

@@ -137,7 +137,7 @@ def _banner(c: ReportContent) -> str:
     rows = []
     for r in c.runs:
         t = r.termination
-        ok = bool(t.get("converged")) and bool(t.get("meets_tol", True))
+        ok = bool(t.get("converged"))  # the status rule: solver.status.decide
         word = "CONVERGED" if ok else "NOT CONVERGED"
         cls = "ok" if ok else "bad"
         rows.append(
@@ -297,6 +297,19 @@ def _run_section(doc: _Doc, r: RunContent, k: int) -> None:
             doc.table(r.confusion, cls="grid confusion")
     else:
         doc.missing("Held-out outcomes not available: no held-out data were scored with this run.")
+    if r.task_section is not None:
+        ts = r.task_section
+        h3(ts.title, "task")
+        if ts.intro:
+            doc.add(f"<p>{esc(ts.intro)}</p>")
+        doc.kv(ts.facts)
+        for t in ts.tables:
+            doc.table(t, cls="grid")
+        for fd in ts.figures:
+            doc.figure(fd)
+    elif r.task_note:
+        h3("Task section", "task")
+        doc.missing(r.task_note)
     h3("Decision map", "map")
     if r.decision_map is not None:
         doc.figure(r.decision_map)

@@ -124,7 +124,7 @@ def _cover(c: ReportContent) -> list[PdfPage]:
     L.heading("Outcome")
     for r in c.runs:
         t = r.termination
-        ok = bool(t.get("converged")) and bool(t.get("meets_tol", True))
+        ok = bool(t.get("converged"))  # the status rule: solver.status.decide
         L.para(f"{r.label} ({r.solver}, run id {r.run_id or 'not stored'}): "
                f"{'CONVERGED' if ok else 'NOT CONVERGED'} — status {t.get('status')} after "
                f"{fmt(t.get('iterations'))} iterations.", "p" if ok else "ps")
@@ -219,6 +219,17 @@ def _run_support(r: RunContent) -> list[PdfPage]:
     else:
         L.para("Held-out outcomes not available: no held-out data were scored with this run.",
                "i")
+    if r.task_section is not None:
+        ts = r.task_section
+        L.heading(ts.title)
+        if ts.intro:
+            L.para(ts.intro)
+        L.kv(ts.facts)
+        for t in ts.tables:
+            L.table(t)
+    elif r.task_note:
+        L.heading("Task section")
+        L.para(r.task_note, "i")
     if r.decision_map is None:
         L.heading("Decision map")
         L.para(r.decision_note, "i")
@@ -255,6 +266,11 @@ def plan_pages(content: ReportContent) -> list[PdfPage]:
             pages.append(PdfPage(heading=f"Path to the solution — {r.label}",
                                  figures=tuple(figs[k:k + FIGS_PER_PAGE])))
         pages += _run_support(r)
+        if r.task_section is not None and r.task_section.figures:
+            tf = list(r.task_section.figures)
+            for k in range(0, len(tf), FIGS_PER_PAGE):
+                pages.append(PdfPage(heading=f"{r.task_section.title} — {r.label}",
+                                     figures=tuple(tf[k:k + FIGS_PER_PAGE])))
         extra = [f for f in (r.decision_map, r.loo_figure) if f is not None]
         if extra:
             pages.append(PdfPage(heading=f"Decision map and leave-one-out — {r.label}",

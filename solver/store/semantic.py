@@ -268,10 +268,9 @@ def semantic_problems(
         ck.problems.append(f"solution.npz: kkt_residual[{i}] is {float(stored.kkt_residual[i])!r}, "
                            f"recomputed {float(cert.kkt_residual[i])!r} (tolerance {gtol:.3g})")
     status = result.status
-    # SMO stops on the maximal violation itself; the QP challenger stops on cvxopt's own
-    # criteria, so its certificate may miss tol while it is "converged"
-    if (result.solver == "smo" and status == Status.CONVERGED
-            and not cert.max_violation <= cert.kkt_tol + gtol):
+    # the status rule (solver.status.decide): "converged" needs the certificate within kkt_tol,
+    # whatever the backend said
+    if status == Status.CONVERGED and not cert.max_violation <= cert.kkt_tol + gtol:
         ck.problems.append(f"{_M}: solver.status says converged, but the recomputed maximal "
                            f"violation {cert.max_violation!r} exceeds kkt_tol {cert.kkt_tol!r}")
     ms = m.get("solver") if isinstance(m.get("solver"), dict) else {}

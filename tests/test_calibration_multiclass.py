@@ -1,0 +1,111 @@
+"""Multi-class probabilities: every pair's sigmoid, combined by pairwise coupling (Wu, Lin &
+Weng 2004, method 2), and the multi-class calibration evidence."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+
+import solver
+from solver.calibration import (
+    Calibration,
+    couple_pairwise,
+    multiclass_evidence,
+    pair_calibration,
+    parent_calibration,
+)
+from solver.data import from_arrays
+from solver.errors import InvalidInputError
+from solver.model import model_from_solution
+from solver.tasks import get_task
+
+
+@pytest.fixture(scope="module")
+def iris_fit(tmp_path_factory):
+    # Fisher's iris (scikit-learn's bundled copy; citation from memory), 3 classes
+    from sklearn.datasets import load_iris
+
+    X, y = load_iris(return_X_y=True)
+    names = np.array(["setosa", "versicolor", "virginica"])[y]
+    rng = np.random.default_rng(0)
+    order = rng.permutation(len(y))
+    tr, te = order[:110], order[110:]
+    ds = from_arrays(X[tr], names[tr], feature_names=["sl", "sw", "pl", "pw"],
+                     label_name="species")
+    out = solver.train(ds, probabilities=True, calibration_seed=2, kkt_tol=1e-4,
+                       store=tmp_path_factory.mktemp("store"), trace="off", explain=False,
+                       parallel="sequential")
+    return out, X[te], names[te]
+
+
+def _predict(out, X):
+    models = [model_from_solution(r.problem, r.result, r.standardiser) for r in out.records]
+    return get_task(out.parent.task).predict(models, X, out.parent.info)
+
+
+def test_pair_sigmoids_are_coupled_with_the_right_orientation(iris_fit):
+    out, X, truth = iris_fit
+    pc = parent_calibration(out.parent, out.records)
+    assert [str(c) for c in pc.classes] == ["setosa", "versicolor", "virginica"]
+    assert pc.pairs == ((0, 1), (0, 2), (1, 2))
+    pred = _predict(out, X)
+    R = pc.pairwise(pred.values)
+    for p, rec in enumerate(out.records):
+        # each pair's positive label is the later class: r_ij = P(earlier class) = column 0
+        cal = Calibration.from_attachment(rec.attachments["calibration"])
+        assert cal.labels["positive"] == pc.classes[pc.pairs[p][1]]
+        assert np.allclose(R[:, p], np.clip(cal.probabilities(pred.values[:, p])[:, 0],
+                                            1e-7, 1 - 1e-7), rtol=0, atol=1e-15)
+    P = pc.probabilities(pred.values)
+    for r in range(P.shape[0]):  # row by row the same as the coupling of its own matrix
+        M = np.zeros((3, 3))
+        iu = np.triu_indices(3, 1)
+        M[iu] = R[r]
+        M[iu[1], iu[0]] = 1 - R[r]
+        assert np.allclose(P[r], couple_pairwise(M), atol=1e-15)
+    assert np.max(np.abs(P.sum(axis=1) - 1)) <= 1e-12
+    assert np.all((P > 0) & (P < 1))
+    # iris is nearly separable: the most probable class is right on almost every row
+    top = np.array(pc.classes)[np.argmax(P, axis=1)]
+    assert np.mean(top == truth) >= 0.9
+    table = pc.pair_table()
+    assert [t["pair"] for t in table] == [["setosa", "versicolor"], ["setosa", "virginica"],
+                                         ["versicolor", "virginica"]]
+    assert all(t["A"] < 0 and t["seed"] == 2 and t["n_folds"] == 5 for t in table)
+
+
+def test_pairs_without_a_sigmoid_are_named(iris_fit):
+    out, _, _ = iris_fit
+    atts = [r.attachments["calibration"] for r in out.records]
+    keys = [m.key for m in out.parent.members]
+    classes = out.parent.info["class_values"]
+    with pytest.raises(InvalidInputError, match="pair 'setosa' vs 'virginica' has no fitted"):
+        pair_calibration(classes, keys, [atts[0], None, atts[2]])
+    failed = {**atts[2], "status": "degenerate_values", "message": "fit failed: test"}
+    with pytest.raises(InvalidInputError,
+                       match="pair 'versicolor' vs 'virginica' gives no probabilities"):
+        pair_calibration(classes, keys, [atts[0], atts[1], failed])
+    with pytest.raises(InvalidInputError, match="need the pairs"):
+        pair_calibration(classes, keys[::-1], atts[::-1])
+
+
+def test_multiclass_evidence_against_reference_metrics():
+    from sklearn.metrics import brier_score_loss, log_loss  # reference library
+
+    rng = np.random.default_rng(4)
+    P = rng.dirichlet(np.ones(4), 300)
+    truth = rng.integers(0, 4, 300)
+    voted = np.argmax(P + rng.normal(0, 0.05, P.shape), axis=1)
+    ev = multiclass_evidence(P, truth, voted)
+    # scikit-learn's multi-class Brier score is the sum-over-classes form (Brier 1950)
+    assert ev["brier_score"] == pytest.approx(brier_score_loss(truth, P, labels=range(4)))
+    assert ev["log_loss"] == pytest.approx(log_loss(truth, P, labels=range(4)))
+    assert sum(b["rows"] for b in ev["bins"]) == 300
+    assert ev["disagreements"] == int(np.sum(np.argmax(P, axis=1) != voted)) > 0
+    top = P.max(axis=1)
+    hit = np.argmax(P, axis=1) == truth
+    ece = sum(np.sum(s) / 300 * abs(hit[s].mean() - top[s].mean())
+              for s in (np.minimum((top * 10).astype(int), 9) == b for b in range(10)) if s.any())
+    assert ev["expected_calibration_error"] == pytest.approx(ece)
+    with pytest.raises(InvalidInputError):
+        multiclass_evidence(P, truth + 4, voted)
