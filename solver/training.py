@@ -744,6 +744,15 @@ def _train(
                      ties=int(np.sum(pred.tie)),
                      min_abs_value=float(np.min(np.abs(pred.values))) if hX.shape[0] else None)
         attachments["holdout"] = facts
+    if probabilities:
+        from .calibration.multiclass import parent_attachment
+
+        pair_refs = [(m, r) for m, r in zip(member_refs, saved, strict=True) if m.role == "pair"]
+        held = {} if hold is None else {"values": pred.values, "truth": hold.labels.tolist(),
+                                        "voted": pred.labels.tolist(), "source": hold.source}
+        attachments["calibration"] = parent_attachment(
+            info["class_values"], [m.key for m, _ in pair_refs],
+            [r.attachments.get("calibration") for _, r in pair_refs], **held)
     summary = _parent_summary(member_summaries, ds, kernel, C, kkt_tol, task.name,
                               attachments.get("holdout"))
     parent = ParentRecord(task=task.name, members=tuple(member_refs), info=info,

@@ -16,6 +16,7 @@ import numpy as np
 
 from ..run import RunRecord
 from ..status import Status
+from ._calibration import calibration_content
 from ._convergence import _trace_figures
 from ._flags import AGREE_VERDICTS, LOOSE_VERDICTS, _comparison, _run_flags
 from ._points import _categories, _confusion, _decision_map, _influential, _loo
@@ -117,6 +118,7 @@ def _run_content(rec: RunRecord, label: str, holdout: Mapping | None) -> RunCont
         loo_note=loo_note, holdout={k: _plain(v) for k, v in hold.items()} if hold else None,
         confusion=confusion, decision_map=dmap, decision_note=dnote, flags=tuple(flags),
         series=series, data_facts=data_facts, task_section=section, task_note=section_note,
+        calibration=calibration_content(_as_mapping(att.get("calibration")), label),
     )
 
 
