@@ -32,7 +32,9 @@ def iris_fit(tmp_path_factory):
     tr, te = order[:110], order[110:]
     ds = from_arrays(X[tr], names[tr], feature_names=["sl", "sw", "pl", "pw"],
                      label_name="species")
-    out = solver.train(ds, probabilities=True, calibration_seed=2, kkt_tol=1e-4,
+    hold = from_arrays(X[te], names[te], feature_names=["sl", "sw", "pl", "pw"],
+                       label_name="species")
+    out = solver.train(ds, probabilities=True, calibration_seed=2, kkt_tol=1e-4, holdout=hold,
                        store=tmp_path_factory.mktemp("store"), trace="off", explain=False,
                        parallel="sequential")
     return out, X[te], names[te]
@@ -109,3 +111,24 @@ def test_multiclass_evidence_against_reference_metrics():
     assert ev["expected_calibration_error"] == pytest.approx(ece)
     with pytest.raises(InvalidInputError):
         multiclass_evidence(P, truth + 4, voted)
+
+
+def test_parent_record_stores_every_pair_sigmoid_and_held_out_evidence(iris_fit):
+    out, X, truth = iris_fit
+    att = out.parent.attachments["calibration"]
+    assert att["status"] == "fitted" and "method 2 of Wu, Lin & Weng" in att["coupling"]
+    for row, rec in zip(att["pairs"], out.records, strict=True):
+        own = rec.attachments["calibration"]
+        assert (row["A"], row["B"], row["seed"]) == (own["A"], own["B"], 2)
+        assert row["pair"] == [str(v) for v in rec.problem.info["labels"].values()]
+    pc = parent_calibration(out.parent, out.records)
+    pred = _predict(out, X)
+    classes = [str(c) for c in pc.classes]
+    ev = multiclass_evidence(pc.probabilities(pred.values),
+                             np.array([classes.index(v) for v in truth]),
+                             np.array([classes.index(str(v)) for v in pred.labels]))
+    held = att["holdout"]
+    assert held["rows"] == len(truth) == 40
+    assert held["brier_score"] == pytest.approx(ev["brier_score"], rel=1e-12)
+    assert held["log_loss"] == pytest.approx(ev["log_loss"], rel=1e-12)
+    assert held["disagreements"] == ev["disagreements"]

@@ -16,7 +16,8 @@ import numpy as np
 from ..status import Status
 from ..vocabulary import CAUTION
 
-__all__ = ["CAUTION", "SEVERITIES", "Flag", "Table", "FigureData", "RunContent", "ReportContent"]
+__all__ = ["CAUTION", "SEVERITIES", "Flag", "Table", "FigureData", "TaskSection", "RunContent",
+           "ReportContent"]
 
 #: Severity order used for sorting flags: "stop" (result not usable as is), "caution", "note".
 SEVERITIES = ("stop", "caution", "note")
@@ -50,6 +51,20 @@ class FigureData:
     title: str
     caption: str
     data: Mapping[str, Any]
+
+
+@dataclass(frozen=True, eq=False)
+class TaskSection:
+    """The section a run's task adds (regression fit, one-class boundary, ...): ``task`` is
+    its registry name; facts, tables, figures and flags as the task supplied them."""
+
+    task: str
+    title: str
+    intro: str
+    facts: tuple[tuple[str, Any], ...]
+    tables: tuple[Table, ...]
+    figures: tuple[FigureData, ...]
+    flags: tuple[Flag, ...] = ()
 
 
 @dataclass(frozen=True, eq=False)
@@ -87,6 +102,10 @@ class RunContent:
     flags: tuple[Flag, ...]
     series: Mapping[str, Mapping[str, list[float]]] = field(default_factory=dict)
     data_facts: Mapping[str, Any] = field(default_factory=dict)
+    #: probability calibration section (:mod:`._calibration`), None without probabilities
+    calibration: Any = None
+    task_section: TaskSection | None = None
+    task_note: str = ""
 
 
 @dataclass(frozen=True, eq=False)

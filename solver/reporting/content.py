@@ -16,6 +16,7 @@ import numpy as np
 
 from ..run import RunRecord
 from ..status import Status
+from ._calibration import calibration_content
 from ._convergence import _trace_figures
 from ._flags import AGREE_VERDICTS, LOOSE_VERDICTS, _comparison, _run_flags
 from ._points import _categories, _confusion, _decision_map, _influential, _loo
@@ -39,6 +40,7 @@ from ._records import (
     _scalar_items,
     _status_of,
 )
+from ._task import _task_section
 
 __all__ = [
     "AGREE_VERDICTS",
@@ -90,6 +92,9 @@ def _run_content(rec: RunRecord, label: str, holdout: Mapping | None) -> RunCont
     except Exception as exc:  # noqa: BLE001 - a map failure must not lose the report
         dmap, dnote = None, f"Decision map not available: {type(exc).__name__}: {exc}"
     flags = _run_flags(rec, label, term, audit, facts)
+    section, section_note = _task_section(rec, label)
+    if section is not None:
+        flags += list(section.flags)
     cmd_text, cmd_py, cmd_note = _command_parts(att.get("command"))
     uniq, counts = np.unique(cats, return_counts=True)
     data_facts = {
@@ -113,7 +118,8 @@ def _run_content(rec: RunRecord, label: str, holdout: Mapping | None) -> RunCont
         influential=infl, influential_note=infl_note, loo=loo_table, loo_figure=loo_fig,
         loo_note=loo_note, holdout={k: _plain(v) for k, v in hold.items()} if hold else None,
         confusion=confusion, decision_map=dmap, decision_note=dnote, flags=tuple(flags),
-        series=series, data_facts=data_facts,
+        series=series, data_facts=data_facts, task_section=section, task_note=section_note,
+        calibration=calibration_content(_as_mapping(att.get("calibration")), label),
     )
 
 

@@ -300,12 +300,42 @@ def _run_section(doc: _Doc, r: RunContent, k: int) -> None:
             doc.table(r.confusion, cls="grid confusion")
     else:
         doc.missing("Held-out outcomes not available: no held-out data were scored with this run.")
+    if r.calibration is not None:
+        h3("Probability calibration", "calibration")
+        _calibration_html(doc, r.calibration)
+    if r.task_section is not None:
+        ts = r.task_section
+        h3(ts.title, "task")
+        if ts.intro:
+            doc.add(f"<p>{esc(ts.intro)}</p>")
+        doc.kv(ts.facts)
+        for t in ts.tables:
+            doc.table(t, cls="grid")
+        for fd in ts.figures:
+            doc.figure(fd)
+    elif r.task_note:
+        h3("Task section", "task")
+        doc.missing(r.task_note)
     h3("Decision map", "map")
     if r.decision_map is not None:
         doc.figure(r.decision_map)
     else:
         doc.missing(r.decision_note)
     doc.add("</section>")
+
+
+def _calibration_html(doc: _Doc, cal: Any) -> None:
+    """The probability section (:class:`._calibration.CalibrationContent`)."""
+    for note in cal.notes:
+        doc.add(f'<p class="quiet">{esc(note)}</p>')
+    if cal.facts:
+        doc.kv(cal.facts)
+    if cal.bins is not None:
+        doc.table(cal.bins, cls="grid narrow")
+    for fd in cal.figures:
+        doc.figure(fd)
+    if cal.folds is not None:
+        doc.table(cal.folds, cls="grid narrow")
 
 
 def _challenger(doc: _Doc, c: ReportContent) -> None:

@@ -219,10 +219,42 @@ def _run_support(r: RunContent) -> list[PdfPage]:
     else:
         L.para("Held-out outcomes not available: no held-out data were scored with this run.",
                "i")
+    if r.task_section is not None:
+        ts = r.task_section
+        L.heading(ts.title)
+        if ts.intro:
+            L.para(ts.intro)
+        L.kv(ts.facts)
+        for t in ts.tables:
+            L.table(t)
+    elif r.task_note:
+        L.heading("Task section")
+        L.para(r.task_note, "i")
     if r.decision_map is None:
         L.heading("Decision map")
         L.para(r.decision_note, "i")
     return _paginate(f"Record of {r.label}: support vectors and outcomes", L)
+
+
+def _run_calibration(r: RunContent) -> list[PdfPage]:
+    """Text and figure pages of the probability section (none without probabilities)."""
+    cal = r.calibration
+    if cal is None:
+        return []
+    L = _Lines()
+    L.heading("Probability calibration")
+    for note in cal.notes:
+        L.para(note, "i")
+    L.kv(cal.facts)
+    if cal.bins is not None:
+        L.table(cal.bins)
+    if cal.folds is not None:
+        L.table(cal.folds)
+    pages = _paginate(f"Record of {r.label}: probability calibration", L)
+    if cal.figures:
+        pages.append(PdfPage(heading=f"Probability calibration — {r.label}",
+                             figures=tuple(cal.figures)))
+    return pages
 
 
 def _challenger(c: ReportContent) -> list[PdfPage]:
@@ -255,6 +287,12 @@ def plan_pages(content: ReportContent) -> list[PdfPage]:
             pages.append(PdfPage(heading=f"Path to the solution — {r.label}",
                                  figures=tuple(figs[k:k + FIGS_PER_PAGE])))
         pages += _run_support(r)
+        pages += _run_calibration(r)
+        if r.task_section is not None and r.task_section.figures:
+            tf = list(r.task_section.figures)
+            for k in range(0, len(tf), FIGS_PER_PAGE):
+                pages.append(PdfPage(heading=f"{r.task_section.title} — {r.label}",
+                                     figures=tuple(tf[k:k + FIGS_PER_PAGE])))
         extra = [f for f in (r.decision_map, r.loo_figure) if f is not None]
         if extra:
             pages.append(PdfPage(heading=f"Decision map and leave-one-out — {r.label}",

@@ -175,6 +175,31 @@ class MultiClassTask(Task):
                  classes: Sequence[Any]) -> dict[str, Any]:
         return confusion_k(truth, prediction.labels, classes)
 
+    def export_mapping(self, parent: Any, members: Sequence[Any]) -> Any:
+        """The ONNX export subject of a one-vs-one parent (:mod:`solver.exchange.subjects`).
+
+        members : the pair runs in pair order.  The check rows are the training rows of
+        every class, read back in raw units from the first pair that holds the class
+        (class 0 and 1 from pair (0, 1), class j ≥ 2 from pair (0, j)).
+        """
+        from ..exchange.subjects import one_vs_one_subject
+
+        info = dict(parent.info)
+        pairs = _pairs(len(info["class_values"]))
+        if len(members) != len(pairs):
+            raise InvalidInputError(f"parent {parent.run_id}: {len(pairs)} pairs expected, "
+                                    f"{len(members)} pair runs found")
+        blocks = []
+        for (i, j), rec in zip(pairs, members, strict=True):
+            raw = rec.problem.X * rec.standardiser.scale + rec.standardiser.centre
+            positive = rec.problem.y > 0  # the later class j
+            if i == 0:
+                blocks += [raw[~positive]] if j == 1 else []
+                blocks.append(raw[positive])
+        return one_vs_one_subject(
+            parent, members, pairs=pairs, training=np.vstack(blocks),
+            predict=lambda models, X: self.predict(models, X, info))
+
 
 def confusion_k(truth: np.ndarray, pred: np.ndarray, classes: Sequence[Any]) -> dict[str, Any]:
     """k × k confusion matrix (rows: true class, columns: predicted; class order),
