@@ -1,13 +1,27 @@
-"""One vocabulary for the tables every output shows: a key, one display label and one meaning.
+"""One vocabulary: one display label, one definition and one owner per shared quantity.
 
-The key is the column / field name in JSON, CSV, Parquet and the store; the label is
-what the CLI, HTML and PDF print as the heading; the meaning is the sentence the
-report's glossary and ``traces/README.md`` give.  Renderers never print a key itself:
-they ask :func:`label` (an unknown key is turned into words, never shown raw).
+Every output that names one of these quantities (CLI, HTML, PDF, JSON, format spec) uses
+the label and the definition from :data:`TERMS`, so one word never means two things.  The
+owner says whose figure it is: ``"certificate"`` (kktrace's shared certificate,
+:mod:`solver.certificate`, recomputed from α), ``"run"`` (the run as a whole),
+``"smo"`` (the SMO loop's own figure, recorded in its trace) or ``"cvxopt"`` (the
+interior-point library's own figure, recorded in the QP trace).
 
-Sections: :data:`POINT_COLUMNS` (the per-point table of ``explain`` and the report),
-:data:`LEAVE_ONE_OUT` (``explain --leave-one-out`` and the report) and :data:`FIELDS`
-(other fields shown as name / value rows in the report).
+Two pairs are easily confused and are kept apart here:
+
+* the certificate's **maximal violation** after iteration k and the SMO trace row's
+  **violation before the step** k (the loop's own figure at the start of iteration k, i.e.
+  the state after iteration k − 1, from its maintained gradient);
+* the SVM **dual objective** D = ½αᵀQα + pᵀα, which cvxopt minimises as *its* primal
+  problem: the QP trace's ``primal_objective`` column is cvxopt's name for D at its
+  interior iterate, and its ``dual_objective`` column is cvxopt's Lagrange lower bound
+  on D, not kktrace's dual objective.
+
+Tables have their own sections, with the same :class:`Term` records: :data:`POINT_COLUMNS`
+(the per-point table of ``explain`` and the report), :data:`LEAVE_ONE_OUT` (``explain
+--leave-one-out`` and the report) and :data:`FIELDS` (other name / value rows of the
+report).  The key is the JSON / CSV / Parquet / store name; renderers print the label
+(:func:`label`, :func:`heading`), never the key itself.
 """
 
 from __future__ import annotations
@@ -16,25 +30,137 @@ from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 from typing import Any
 
-__all__ = ["Term", "POINT_COLUMNS", "LEAVE_ONE_OUT", "FIELDS", "TERMS", "label", "meaning",
-           "labels", "heading", "not_traced", "rank_points", "RANKING_RULE", "TRACE_COLUMNS"]
+__all__ = ["CAUTION", "Term", "TERMS", "caution_line", "term", "trace_term", "timing_text",
+           "POINT_COLUMNS", "LEAVE_ONE_OUT", "FIELDS", "label", "meaning", "labels", "heading",
+           "not_traced", "rank_points", "RANKING_RULE", "TRACE_COLUMNS"]
+
+#: The standing caution, printed by every output that presents evidence (report, demo,
+#: export, challenge) in these words.
+CAUTION = (
+    "kktrace gives evidence about the optimisation, not a validation sign-off; decisions on use "
+    "rest with the accountable model owner and validator under local regulation."
+)
 
 
 @dataclass(frozen=True)
 class Term:
-    """One quantity: ``key`` (machine name), ``label`` (display heading), ``meaning``."""
+    """A display label, its definition (with units) and whose figure it is."""
 
-    key: str
     label: str
-    meaning: str
+    definition: str
+    owner: str
 
 
-def _terms(*rows: tuple[str, str, str]) -> dict[str, Term]:
-    return {k: Term(k, lab, m) for k, lab, m in rows}
+TERMS: dict[str, Term] = {
+    # the shared certificate (recomputed from α; the same for every solver)
+    "max_violation": Term(
+        "maximal violation", "m(α) − M(α) of the shared certificate at α, gradient Qα + p "
+        "recomputed (gradient units; Keerthi et al. 2001)", "certificate"),
+    "kkt_tol": Term(
+        "kkt_tol", "tolerance on the certificate's maximal violation; the run is converged "
+        "only when the maximal violation is within it", "run"),
+    "dual_objective": Term(
+        "dual objective D (minimised)", "D = ½αᵀQα + pᵀα of the SVM dual problem", "certificate"),
+    "primal_objective": Term(
+        "primal objective P", "½αᵀQα + Σ uᵢ·max(0, −(Gᵢ + b yᵢ)) + Δ·b (slack from the hinge "
+        "term)", "certificate"),
+    "duality_gap": Term("duality gap P + D", "P + D ≥ 0, bounds the suboptimality of both",
+                        "certificate"),
+    "relative_gap": Term("relative gap", "(P + D) / max(|P|, |D|)", "certificate"),
+    "n_free": Term("free", "support vectors strictly inside the box, l < α < u (they sit on "
+                   "the margin, |f(x)| = 1)", "certificate"),
+    "n_bounded": Term("at the bound", "support vectors with α = u (on or inside the margin)",
+                      "certificate"),
+    "bias": Term("bias b", "b of f(x) = Σ αᵢyᵢK(xᵢ, x) + b, from the certificate",
+                 "certificate"),
+    # timing of the solve call (solver.result.SolveResult.timing)
+    "solve_seconds": Term("solve", "wall-clock seconds of the iterations themselves", "run"),
+    "compile_seconds": Term(
+        "compile", "wall-clock seconds compiling (or loading from the on-disk cache) the "
+        "numba code, paid once per process; 0 for a solver without compiled code", "run"),
+    "setup_seconds": Term(
+        "set-up", "wall-clock seconds before the first iteration (kernel storage; for the "
+        "QP solver loading cvxopt and building Q)", "run"),
+    "total_seconds": Term("whole call", "wall-clock seconds of the whole solve call, "
+                          "including the final certificate", "run"),
+    "interior_point_tol": Term(
+        "interior-point tolerance", "cvxopt's own stopping tolerance (abstol = reltol = "
+        "feastol); not kkt_tol", "cvxopt"),
+}
+
+#: trace-row columns per solver: (solver, column) → term
+_TRACE: dict[tuple[str, str], Term] = {
+    ("smo", "violation"): Term(
+        "violation before the step", "the SMO loop's own m(α) − M(α) at the start of "
+        "iteration k (from its maintained gradient), i.e. of the state after iteration "
+        "k − 1; the certificate's maximal violation is of the state after iteration k",
+        "smo"),
+    ("smo", "objective"): Term("dual objective after the step", "D after iteration k, "
+                               "updated by the loop", "smo"),
+    ("smo", "step"): Term("step", "change of αᵢ in iteration k", "smo"),
+    ("smo", "active"): Term("active set", "variables not shrunk away", "smo"),
+    ("qp", "primal_objective"): Term(
+        "cvxopt primal objective (= D at its interior iterate)", "cvxopt's primal objective "
+        "½xᵀQx + pᵀx at its interior iterate x, before kktrace moves the answer onto the "
+        "active bounds; it is kktrace's dual objective D of that iterate", "cvxopt"),
+    ("qp", "dual_objective"): Term(
+        "cvxopt dual objective (lower bound on D)", "cvxopt's Lagrange dual objective, a "
+        "lower bound on the minimum of D; not kktrace's dual objective", "cvxopt"),
+    ("qp", "gap"): Term("cvxopt gap sᵀz", "cvxopt's own complementarity gap at its iterate; "
+                        "not the certificate's duality gap", "cvxopt"),
+    ("qp", "relative_gap"): Term("cvxopt relative gap", "cvxopt's own relative gap at its "
+                                 "iterate; not the certificate's relative gap", "cvxopt"),
+    ("qp", "primal_residual"): Term("cvxopt primal residual", "cvxopt's own primal "
+                                    "infeasibility at its iterate", "cvxopt"),
+    ("qp", "dual_residual"): Term("cvxopt dual residual", "cvxopt's own dual infeasibility "
+                                  "at its iterate", "cvxopt"),
+    ("qp", "step"): Term("cvxopt step length", "interior-point step length", "cvxopt"),
+    ("qp", "n_at_lower"): Term("held at 0", "points whose slack to α = 0 is below its "
+                               "multiplier at the iterate", "cvxopt"),
+    ("qp", "n_at_upper"): Term("held at u", "points whose slack to α = u is below its "
+                               "multiplier at the iterate", "cvxopt"),
+}
+
+
+def term(key: str) -> Term:
+    """The :class:`Term` of a shared quantity (a key of :data:`TERMS`)."""
+    return TERMS[key]
+
+
+def trace_term(solver: str, column: str) -> Term:
+    """The :class:`Term` of a trace-row column of ``solver``; columns without an entry are
+    labelled by their own name and owned by that solver."""
+    return _TRACE.get((solver, column), Term(column, column, solver))
+
+
+def timing_text(timing: Mapping[str, float | None]) -> str:
+    """One line for :attr:`solver.result.SolveResult.timing`, e.g.
+    ``"solve 0.48 s, compile 60.91 s, set-up 0.01 s (whole call 61.40 s)"``."""
+    parts = []
+    for key in ("solve_seconds", "compile_seconds", "setup_seconds"):
+        v = timing.get(key)
+        parts.append(f"{TERMS[key].label} " + ("not recorded" if v is None else f"{v:.2f} s"))
+    total = timing.get("total_seconds")
+    tail = f" (whole call {total:.2f} s)" if total is not None else ""
+    return ", ".join(parts) + tail
+
+
+def caution_line(*, prefix: bool = True) -> str:
+    """The standing caution as one terminal line, ``"caution: " + CAUTION`` (without the
+    ``"caution: "`` prefix when ``prefix`` is False, e.g. for a JSON field)."""
+    return f"caution: {CAUTION}" if prefix else CAUTION
+
+
+# --------------------------------------------------------------------------- tables
+
+
+def _terms(owner: str, *rows: tuple[str, str, str]) -> dict[str, Term]:
+    return {k: Term(lab, m, owner) for k, lab, m in rows}
 
 
 #: Per-point table (binary classification, ε-regression, one-class), in export order.
 POINT_COLUMNS: dict[str, Term] = _terms(
+    "explanation",
     ("row_id", "row", "training row, counted from 0 in file order"),
     ("label", "label", "the point's label as given in the data"),
     ("alpha", "α", "the point's Lagrange multiplier αᵢ at the solution"),
@@ -62,6 +188,7 @@ POINT_COLUMNS: dict[str, Term] = _terms(
 
 #: ``explain --leave-one-out`` (binary classification), in output order.
 LEAVE_ONE_OUT: dict[str, Term] = _terms(
+    "leave_one_out",
     ("method", "method", "support_refits: only support vectors are refitted (the others "
      "cannot change); brute_force: every row refitted"),
     ("n", "training points", "number of training points n"),
@@ -110,42 +237,43 @@ LEAVE_ONE_OUT: dict[str, Term] = _terms(
 
 #: Other fields shown as name / value rows in the report (provenance, environment, audit).
 FIELDS: dict[str, Term] = _terms(
+    "run",
     ("n_rows", "training rows", "rows of the training data"),
     ("n_features", "features", "number of features"),
     ("psd_scope", "positive-semidefinite check covers", "which kernel matrix was checked"),
     ("python_implementation", "Python implementation", "the Python interpreter"),
     ("min_abs_value", "smallest absolute value", "smallest |value|"),
-    ("kkt_tol", "KKT tolerance", "stopping tolerance on the maximal violation"),
-    ("max_violation", "final maximal violation", "m(α) − M(α) at the solution"),
     ("manifest_sha256", "manifest SHA-256", "SHA-256 of the run's manifest.json"),
     ("run_id", "run id", "the run's folder name in the store"),
 )
 
-#: Every term by key (point columns first, then leave-one-out, then other fields).
-TERMS: dict[str, Term] = {**FIELDS, **LEAVE_ONE_OUT, **POINT_COLUMNS}
+#: Every displayed key: the shared quantities (:data:`TERMS`) first, then the per-point
+#: columns, the leave-one-out figures and the other report fields.
+_ALL: dict[str, Term] = {**FIELDS, **LEAVE_ONE_OUT, **POINT_COLUMNS, **TERMS}
 
 
 def label(key: str, section: Mapping[str, Term] | None = None) -> str:
     """Display label of ``key`` (from ``section`` when given, else :data:`TERMS`).
 
     An unknown key is spelled as words (``first_key`` → ``first key``): never shown raw."""
-    terms = section if section is not None else TERMS
-    term = terms.get(key) or TERMS.get(key)
-    return term.label if term is not None else str(key).replace("_", " ")
+    terms = section if section is not None else _ALL
+    found = terms.get(key) or _ALL.get(key)
+    return found.label if found is not None else str(key).replace("_", " ")
 
 
 def heading(key: str) -> str:
-    """Table heading of a column: its :data:`TERMS` label; other headings (a table's own
-    words such as ``classified pass``, which may hold user labels) unchanged."""
-    term = TERMS.get(key)
-    return term.label if term is not None else str(key)
+    """Table heading of a column: its label (per-point columns, then :data:`TERMS`);
+    other headings (a table's own words such as ``classified pass``, which may hold user
+    labels) unchanged."""
+    found = POINT_COLUMNS.get(key) or TERMS.get(key)
+    return found.label if found is not None else str(key)
 
 
 def meaning(key: str, section: Mapping[str, Term] | None = None) -> str:
     """The meaning of ``key`` in one phrase ('' when the vocabulary does not hold it)."""
-    terms = section if section is not None else TERMS
-    term = terms.get(key) or TERMS.get(key)
-    return term.meaning if term is not None else ""
+    terms = section if section is not None else _ALL
+    found = terms.get(key) or _ALL.get(key)
+    return found.definition if found is not None else ""
 
 
 def labels(keys: Iterable[str], section: Mapping[str, Term] | None = None) -> tuple[str, ...]:
