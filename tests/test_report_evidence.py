@@ -106,7 +106,7 @@ def test_every_leave_one_out_key_has_a_label_and_a_meaning(work: dict) -> None:
     assert not {k for k in keys if k.startswith("xi_") or k == "reference_seconds"}
     for k in keys:
         assert LEAVE_ONE_OUT[k].label != k or " " not in k
-        assert len(LEAVE_ONE_OUT[k].meaning) > 8
+        assert len(LEAVE_ONE_OUT[k].definition) > 8
 
 
 # --------------------------------------------------------------------------- items 8, 9
