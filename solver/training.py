@@ -728,7 +728,12 @@ def _train(
         "label_name": ds.label_name, "source": ds.source, "warnings": list(ds.warnings),
         "n_rows": int(ds.X.shape[0]), **extra,
     }
-    attachments: dict[str, Any] = {}
+    # which training row is in which pair (explain of the parent reads it)
+    cls_text = [str(c) for c in classes]
+    attachments: dict[str, Any] = {"training_rows": {
+        "class_index": [cls_text.index(str(v)) for v in ds.labels.tolist()],
+        "rule": "class_index[r] is training row r's position in info.classes; a pair "
+                "(a, b) trains on the rows of classes a and b in row order"}}
     if hold is not None:
         models = [model_from_solution(r.problem, r.result, r.standardiser)
                   for r, m in zip(saved, member_refs, strict=True) if m.role == "pair"]
