@@ -79,6 +79,7 @@ def _run_content(rec: RunRecord, label: str, holdout: Mapping | None) -> RunCont
         "converged": status == Status.CONVERGED,
         "iterations": int(res.iterations),
         "seconds": float(res.seconds),
+        **res.timing,
         **{k: _plain(v) for k, v in cd.items()},
     }
     ident, env = _identity(rec, label)
