@@ -113,8 +113,8 @@ def apply_parent(pr: ParentRuns, data: Any, label: str | None,
     :class:`solver.api.ModelOutput`.
 
     With ``probabilities`` every pair's fitted sigmoid gives r_ij = P(class i | i or j, x)
-    and pairwise coupling (:func:`solver.calibration.coupling.couple_pairwise_rows`) the
-    class probabilities."""
+    and pairwise coupling the class probabilities
+    (:class:`solver.calibration.multiclass.PairwiseCalibration`)."""
     info = dict(pr.parent.info)
     names = list(pr.parent.data.get("feature_names") or [])
     ds = _load_data(data, label, "data the model is applied to")
@@ -126,12 +126,11 @@ def apply_parent(pr: ParentRuns, data: Any, label: str | None,
         measures["ties"] = int(np.sum(pred.tie)) if pred.tie is not None else 0
     probs = disagree = None
     if probabilities:
-        from .calibration.coupling import couple_pairwise_rows
-        from .calibration.reproduce import run_calibration
+        from .calibration.multiclass import pair_calibration
 
-        r = np.column_stack([run_calibration(rec).probabilities(pred.values[:, q])[:, 0]
-                             for q, rec in enumerate(pr.primary)])
-        probs = couple_pairwise_rows(r, len(info["class_values"]))
+        pc = pair_calibration(info["class_values"], pr.keys,
+                              [(rec.attachments or {}).get("calibration") for rec in pr.primary])
+        probs = pc.probabilities(pred.values)
         cv = np.empty(len(info["class_values"]), dtype=object)
         cv[:] = list(info["class_values"])
         disagree = int(np.sum(cv[np.argmax(probs, axis=1)] != pred.labels))
