@@ -106,6 +106,11 @@ class RunContent:
     calibration: Any = None
     task_section: TaskSection | None = None
     task_note: str = ""
+    #: the run's diagnosis (:mod:`solver.diagnosis`): findings table (severity, code,
+    #: finding, action) and its statement plus unchecked codes; None when it failed
+    diagnosis: Table | None = None
+    diagnosis_note: str = ""
+    diagnosis_skipped: Mapping[str, str] = field(default_factory=dict)
 
 
 @dataclass(frozen=True, eq=False)

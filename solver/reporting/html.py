@@ -316,6 +316,12 @@ def _run_section(doc: _Doc, r: RunContent, k: int) -> None:
     elif r.task_note:
         h3("Task section", "task")
         doc.missing(r.task_note)
+    h3("Diagnosis", "diagnosis")
+    doc.add(f"<p>{esc(r.diagnosis_note)}</p>")
+    if r.diagnosis is not None:
+        doc.table(r.diagnosis, cls="grid")
+    for code, why in r.diagnosis_skipped.items():
+        doc.missing(f"Not checked: {code} — {why}")
     h3("Decision map", "map")
     if r.decision_map is not None:
         doc.figure(r.decision_map)

@@ -63,6 +63,11 @@ def _run(r: RunContent) -> dict[str, Any]:
                               *(r.task_section.figures if r.task_section else ()),
                               *(r.calibration.figures if r.calibration is not None else ()))],
         "task_section": _task_section(r),
+        "diagnosis": {"statement": r.diagnosis_note,
+                      "findings": [] if r.diagnosis is None else [
+                          dict(zip(("severity", "code", "summary", "action"), row, strict=True))
+                          for row in r.diagnosis.rows],
+                      "skipped": dict(r.diagnosis_skipped)},
         "flags": [{"code": f.code, "severity": f.severity, "message": f.message}
                   for f in r.flags],
     }
