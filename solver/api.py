@@ -621,12 +621,18 @@ def report(
     formats: Sequence[str] = ("html", "pdf", "json"),
     notes: str | None = None,
     stem: str = "report",
+    pair: str | Sequence[str] | None = None,
 ) -> dict[str, Path]:
     """Write the audit report for one run (or a run and its challenger) and return the paths.
 
     With two runs the comparison stored with the challenger is used when the second run
     derives from the first; otherwise the two runs are compared afresh.  ``out_dir``
     defaults to ``<store>/reports/<first run id>``.
+
+    For a multi-class model (a parent id) the report has the task's multi-class section
+    (every pair's convergence, the confusion matrix) and the full pages of one pair and
+    its challenger: ``pair`` (``"a,b"``), by default the worst pair (not converged first,
+    then the worst verdict, then the most iterations).
     """
     from .reporting import write_report
 
@@ -634,6 +640,11 @@ def report(
     ids = [run_ids] if isinstance(run_ids, (str, RunRecord)) else list(run_ids)
     if not 1 <= len(ids) <= 2:
         raise InvalidInputError(f"a report covers one run or two runs, got {len(ids)}")
+    pr = _parent_runs(ids[0], st) if len(ids) == 1 else None
+    if pr is not None:
+        return _parent_report(st, pr, out_dir, formats, notes, stem, pair)
+    if pair is not None:
+        raise InvalidInputError("--pair applies to the report of a multi-class model")
     recs = [load_run(r, store=st) for r in ids]
     comparison = None
     if len(recs) == 2:
@@ -650,7 +661,42 @@ def report(
     return paths
 
 
-def _log_report(st: Any, recs: Sequence[RunRecord], paths: Mapping[str, Path]) -> None:
+def _parent_report(st: Any, pr: Any, out_dir: Any, formats: Sequence[str], notes: str | None,
+                   stem: str, pair: Any) -> dict[str, Path]:
+    """The report of a multi-class parent (see :func:`report`)."""
+    from .parent_workflow import pair_key
+    from .reporting import write_report
+
+    if pair is not None:
+        key = pair_key(pair)
+        pr.member(key)  # names the pairs when there is no such pair
+    else:
+        verdicts = ("agree", "agree_within_tolerances", "disagree")
+
+        def badness(k: tuple[str, ...]) -> tuple[int, int, int]:
+            rec = pr.member(k)
+            ch = pr.challengers.get(k)
+            comp = (ch.attachments or {}).get("comparison") if ch is not None else None
+            v = str(comp.get("verdict")) if comp else "agree"
+            return (int(not rec.result.success),
+                    verdicts.index(v) if v in verdicts else len(verdicts),
+                    int(rec.result.iterations))
+
+        key = max(pr.keys, key=badness)
+    recs = [pr.member(key)] + ([pr.challengers[key]] if key in pr.challengers else [])
+    comparison = _stored_comparison(recs[1], recs[0]) if len(recs) == 2 else None
+    members = [pr.member(tuple(m.key or ())) if not m.role.endswith("_challenger")
+               else pr.challengers[tuple(m.key or ())] for m in pr.parent.members]
+    rid = str(pr.parent.run_id)
+    out = Path(out_dir) if out_dir is not None else Path(st.root) / "reports" / rid
+    st.check_output_path(out, "report folder")
+    paths = write_report(recs, out, formats=tuple(formats), comparison=comparison, notes=notes,
+                         stem=stem, parent=pr.parent, parent_members=members)
+    _log_report(st, [pr.parent, *recs], paths)
+    return paths
+
+
+def _log_report(st: Any, recs: Sequence[Any], paths: Mapping[str, Path]) -> None:
     import hashlib
 
     from .store import auditlog
