@@ -42,6 +42,9 @@ _EXPORTS: dict[str, str] = {
     "store_listing": "api",
     "clean_store": "api",
     "new_signing_keys": "api",
+    # studies (solver.studies)
+    "study": "studies",
+    "StudyOutcome": "studies",
     # model exchange (solver.exchange)
     "export_onnx": "exchange.workflow",
     "ExportOutcome": "exchange.workflow",
