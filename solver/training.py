@@ -217,6 +217,7 @@ def _run_summary(record: RunRecord, run_id: str, run_dir: Path) -> dict[str, Any
         "n_bounded": int(c.n_bounded),
         "bias": float(r.bias),
         "seconds": float(r.seconds),
+        **r.timing,
         "run_dir": str(run_dir),
         "n_rows": int(record.problem.n),
         "kernel": record.problem.kernel.describe(),
@@ -728,7 +729,12 @@ def _train(
         "label_name": ds.label_name, "source": ds.source, "warnings": list(ds.warnings),
         "n_rows": int(ds.X.shape[0]), **extra,
     }
-    attachments: dict[str, Any] = {}
+    # which training row is in which pair (explain of the parent reads it)
+    cls_text = [str(c) for c in classes]
+    attachments: dict[str, Any] = {"training_rows": {
+        "class_index": [cls_text.index(str(v)) for v in ds.labels.tolist()],
+        "rule": "class_index[r] is training row r's position in info.classes; a pair "
+                "(a, b) trains on the rows of classes a and b in row order"}}
     if hold is not None:
         models = [model_from_solution(r.problem, r.result, r.standardiser)
                   for r, m in zip(saved, member_refs, strict=True) if m.role == "pair"]
