@@ -439,8 +439,14 @@ def verify(
             raise InvalidInputError("--keep stores one re-run; a multi-class model's pairs are "
                                     "re-run and compared without storing them")
 
-        reproduction = _ParentReproduction(tuple(rerun_parent(
-            load_parent_runs(st, run, trusted=keys), rerun)))
+        from .calibration.reproduce import recalibrate_pairs
+
+        pr = load_parent_runs(st, run, trusted=keys)
+        reps = rerun_parent(pr, rerun)
+        reproduction = _ParentReproduction(tuple(reps))
+        calibration = recalibrate_pairs([
+            (key, (rec.attachments or {}).get("calibration"), rep.record.problem)
+            for (key, rep), rec in zip(reps, pr.primary, strict=True)])
     elif rerun is not None and integrity.ok:
         rec = st.load(run, trusted=keys)
         ds = _load_data(rerun, _split_column(rec.data), "re-run data")

@@ -3,6 +3,8 @@ Weng 2004, method 2), and the multi-class calibration evidence."""
 
 from __future__ import annotations
 
+import os
+
 import numpy as np
 import pytest
 
@@ -20,18 +22,22 @@ from solver.model import model_from_solution
 from solver.tasks import get_task
 
 
-@pytest.fixture(scope="module")
-def iris_fit(tmp_path_factory):
+def _iris_split():
     # Fisher's iris (scikit-learn's bundled copy; citation from memory), 3 classes
     from sklearn.datasets import load_iris
 
     X, y = load_iris(return_X_y=True)
     names = np.array(["setosa", "versicolor", "virginica"])[y]
-    rng = np.random.default_rng(0)
-    order = rng.permutation(len(y))
+    order = np.random.default_rng(0).permutation(len(y))
     tr, te = order[:110], order[110:]
     ds = from_arrays(X[tr], names[tr], feature_names=["sl", "sw", "pl", "pw"],
                      label_name="species")
+    return ds, X, names, te
+
+
+@pytest.fixture(scope="module")
+def iris_fit(tmp_path_factory):
+    ds, X, names, te = _iris_split()
     hold = from_arrays(X[te], names[te], feature_names=["sl", "sw", "pl", "pw"],
                        label_name="species")
     out = solver.train(ds, probabilities=True, calibration_seed=2, kkt_tol=1e-4, holdout=hold,
@@ -154,3 +160,85 @@ def test_saturated_pair_values_still_give_probabilities(iris_fit):
     P = pc.probabilities(V)
     assert np.max(np.abs(P.sum(axis=1) - 1)) <= 1e-12 and np.all((P > 0) & (P < 1))
     assert np.argmax(P[0]) == 2 and np.argmax(P[1]) == 0
+
+
+def test_verify_rerun_reproduces_every_pair_calibration_bitwise(iris_fit):
+    out, _, _ = iris_fit
+    res = solver.verify(out.parent.run_id, store=out.store, rerun=_iris_split()[0])
+    cal = res.calibration
+    assert cal["agreement"] == "bitwise" and res.ok
+    assert [r["pair"] for r in cal["pairs"]] == [list(m.key) for m in out.parent.members]
+    assert all(r["identical"]["cv_values"] and r["identical"]["A"] for r in cal["pairs"])
+    assert cal["seed"] == 2 and cal["max_cv_value_difference"] == 0.0
+
+
+def test_parent_report_shows_the_multiclass_probability_evidence(iris_fit, tmp_path):
+    import json
+
+    out, _, _ = iris_fit
+    paths = solver.report(out.parent.run_id, store=out.store, out_dir=tmp_path / "r",
+                          formats=("json", "html", "pdf"))
+    d = json.loads(paths["json"].read_text())
+    (sec,) = [r["task_section"] for r in d["runs"] if r.get("task_section")]
+    held = out.parent.attachments["calibration"]["holdout"]
+    facts = sec["facts"]
+    assert facts["Brier score (multi-class)"] == held["brier_score"]
+    assert facts["log-loss"] == held["log_loss"]
+    assert facts["rows where the most probable class differs from the voted class"] == \
+        held["disagreements"]
+    assert "method 2 of Wu, Lin & Weng" in facts["probability method"]
+    pair_table = next(t for t in sec["tables"] if t["columns"][:2] == ["pair", "positive"])
+    assert [r[3] for r in pair_table["rows"]] == [p["A"] for p in
+                                                  out.parent.attachments["calibration"]["pairs"]]
+    bins = next(t for t in sec["tables"] if t["columns"][0] == "top-probability bin")
+    assert sum(r[1] for r in bins["rows"]) == 40
+    assert any("Reliability of the top class probability" in f["title"]
+               for f in d["runs"][0]["figures"])
+    # the pair shown in full keeps its own binary calibration section
+    assert d["runs"][0]["calibration"]["facts"]["fold seed"] == 2
+    assert "Reliability of the top class probability" in paths["html"].read_text()
+
+
+def test_cli_multiclass_probabilities_end_to_end(tmp_path):
+    import csv
+    import json
+    import subprocess
+    import sys
+
+    ds, X, names, te = _iris_split()
+    train, hold = tmp_path / "train.csv", tmp_path / "hold.csv"
+    for path, rows in ((train, np.setdiff1d(np.arange(150), te)), (hold, te)):
+        with path.open("w", newline="") as fh:
+            w = csv.writer(fh)
+            w.writerow(["sl", "sw", "pl", "pw", "species"])
+            w.writerows([*map(repr, X[i].tolist()), names[i]] for i in rows)
+    env = {**os.environ, "PYTHONPATH": os.getcwd(), "KKTRACE_THREADS": "1"}
+
+    def cli(*args):
+        return subprocess.run([sys.executable, "-m", "solver.cli", *args, "--store",
+                               str(tmp_path / "st")], capture_output=True, text=True, env=env,
+                              timeout=600)
+
+    r = cli("train", str(train), "--label", "species", "--probabilities", "--holdout",
+            str(hold), "--calibration-seed", "7", "--parallel", "sequential", "--json")
+    assert r.returncode == 0, r.stderr
+    rid = json.loads(r.stdout)["run_id"]
+    out = tmp_path / "out.csv"
+    r = cli("apply", rid, str(hold), "--probabilities", "--out", str(out))
+    assert r.returncode == 0, r.stderr
+    rows = list(csv.DictReader(out.open()))
+    cols = ["probability_setosa", "probability_versicolor", "probability_virginica"]
+    assert set(cols) <= set(rows[0]) and len(rows) == 40
+    P = np.array([[float(row[c]) for c in cols] for row in rows])
+    assert np.max(np.abs(P.sum(axis=1) - 1)) <= 1e-12 and np.all((P > 0) & (P < 1))
+    r = cli("verify", rid, "--rerun", str(train))
+    assert r.returncode == 0, r.stdout + r.stderr
+    assert "probability calibration of every pair bitwise (5 folds, seed 7)" in r.stdout
+    r = cli("train", str(train), "--label", "species", "--parallel", "sequential", "--json")
+    plain = json.loads(r.stdout)["run_id"]
+    r = cli("apply", plain, str(hold), "--probabilities")
+    assert r.returncode == 1 and "Traceback" not in r.stderr
+    assert "pair 'setosa' vs 'versicolor' has no fitted sigmoid" in r.stderr
+    r = cli("train", str(train), "--label", "species", "--probabilities",
+            "--calibration-folds", "40")
+    assert r.returncode == 1 and "calibration folds" in r.stderr and "class '" in r.stderr
