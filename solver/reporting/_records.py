@@ -40,6 +40,8 @@ class Table:
     columns: tuple[str, ...]
     rows: tuple[tuple[Any, ...], ...]
     note: str = ""
+    #: what the renderers print for a None cell ("" → the usual dash); the JSON keeps null
+    blank: str = ""
 
 
 @dataclass(frozen=True, eq=False)
@@ -102,10 +104,18 @@ class RunContent:
     flags: tuple[Flag, ...]
     series: Mapping[str, Mapping[str, list[float]]] = field(default_factory=dict)
     data_facts: Mapping[str, Any] = field(default_factory=dict)
+    #: leave-one-out scalars by key (:data:`solver.vocabulary.LEAVE_ONE_OUT`), with
+    #: ``kept_as`` / ``kept_digest`` when they come from a child record; {} when absent
+    loo_facts: Mapping[str, Any] = field(default_factory=dict)
     #: probability calibration section (:mod:`._calibration`), None without probabilities
     calibration: Any = None
     task_section: TaskSection | None = None
     task_note: str = ""
+    #: the run's diagnosis (:mod:`solver.diagnosis`): findings table (severity, code,
+    #: finding, action) and its statement plus unchecked codes; None when it failed
+    diagnosis: Table | None = None
+    diagnosis_note: str = ""
+    diagnosis_skipped: Mapping[str, str] = field(default_factory=dict)
 
 
 @dataclass(frozen=True, eq=False)
