@@ -396,7 +396,17 @@ def solve_qp(
     *,
     interior_point_tol: float = DEFAULT_INTERIOR_POINT_TOL,
     tighten: int = DEFAULT_TIGHTEN,
-    **options: Any,
+    iteration_limit: int = 100,
+    size_limit: int = DEFAULT_SIZE_LIMIT,
+    force: bool = False,
+    trace: str = "full",
+    kkt: str = "structured",
+    kkt_tol: float = DEFAULT_KKT_TOL,
+    sample_every: int = 1,
+    snapshot_every: int = 1,
+    time_limit: float | None = None,
+    alpha0: np.ndarray | None = None,
+    callback: Callable[[Mapping[str, Any]], Any] | None = None,
 ) -> SolveResult:
     """Solve the dual with cvxopt's interior-point QP method (:func:`_solve_once`), tightening
     cvxopt's own tolerance while it stops short of the shared certificate.
@@ -407,8 +417,8 @@ def solve_qp(
     ``interior_point_tol / 100`` (not below 1e-13), at most ``tighten`` times.  The last
     attempt is returned; ``extra["attempts"]`` lists every attempt (interior-point
     tolerance, iterations, maximal violation, status) and ``extra["interior_point_tol_used"]``
-    the last tolerance; timing and ``seconds`` cover every attempt.  ``options`` are those of
-    :func:`_solve_once`.
+    the last tolerance; timing and ``seconds`` cover every attempt.  The other options are
+    those of :func:`_solve_once`, documented there.
 
     Examples
     --------
@@ -423,6 +433,10 @@ def solve_qp(
     if isinstance(tighten, bool) or not isinstance(tighten, int) or tighten < 0:
         raise InvalidInputError(f"option tighten must be an integer >= 0, got {tighten!r}")
     started = time.perf_counter()
+    options = dict(iteration_limit=iteration_limit, size_limit=size_limit, force=force,
+                   trace=trace, kkt=kkt, kkt_tol=kkt_tol, sample_every=sample_every,
+                   snapshot_every=snapshot_every, time_limit=time_limit, alpha0=alpha0,
+                   callback=callback)
     tol, attempts, parts = float(interior_point_tol), [], [0.0, 0.0]
     while True:
         last = len(attempts) == tighten or tol / 100 < TIGHTEST_INTERIOR_POINT_TOL
