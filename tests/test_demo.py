@@ -144,7 +144,7 @@ def test_task_tables_are_seeded_and_written_as_documented(tmp_path):
 
     reg = load_table(files["regression"][0], label=demo.PROCESS_TARGET)
     assert reg.feature_names == demo.PROCESS_COLUMNS and reg.X.shape == (demo.N_PROCESS_TRAIN, 4)
-    released = load_table(files["one-class"][0])
+    released = load_table(files["one-class"][0], label=None)
     train, hold = demo.tablet_coating_tables()
     n_rel = int(np.sum(train[demo.DEMO_LABEL] == "release"))
     assert released.feature_names == demo.DEMO_COLUMNS and released.X.shape == (n_rel, 4)
