@@ -42,6 +42,15 @@ _EXPORTS: dict[str, str] = {
     "store_listing": "api",
     "clean_store": "api",
     "new_signing_keys": "api",
+    # convergence on hard problems (solver.resolve, solver.diagnosis, solver.hard)
+    "diagnose": "resolve",
+    "what_if": "resolve",
+    "WhatIf": "resolve",
+    "parse_change": "resolve",
+    "resume": "resolve",
+    "ResumeOutcome": "resolve",
+    "Diagnosis": "diagnosis",
+    "hard_problem": "hard",
     # model exchange (solver.exchange)
     "export_onnx": "exchange.workflow",
     "ExportOutcome": "exchange.workflow",

@@ -728,7 +728,12 @@ def _train(
         "label_name": ds.label_name, "source": ds.source, "warnings": list(ds.warnings),
         "n_rows": int(ds.X.shape[0]), **extra,
     }
-    attachments: dict[str, Any] = {}
+    # which training row is in which pair (explain of the parent reads it)
+    cls_text = [str(c) for c in classes]
+    attachments: dict[str, Any] = {"training_rows": {
+        "class_index": [cls_text.index(str(v)) for v in ds.labels.tolist()],
+        "rule": "class_index[r] is training row r's position in info.classes; a pair "
+                "(a, b) trains on the rows of classes a and b in row order"}}
     if hold is not None:
         models = [model_from_solution(r.problem, r.result, r.standardiser)
                   for r, m in zip(saved, member_refs, strict=True) if m.role == "pair"]
@@ -739,6 +744,15 @@ def _train(
                      ties=int(np.sum(pred.tie)),
                      min_abs_value=float(np.min(np.abs(pred.values))) if hX.shape[0] else None)
         attachments["holdout"] = facts
+    if probabilities:
+        from .calibration.multiclass import parent_attachment
+
+        pair_refs = [(m, r) for m, r in zip(member_refs, saved, strict=True) if m.role == "pair"]
+        held = {} if hold is None else {"values": pred.values, "truth": hold.labels.tolist(),
+                                        "voted": pred.labels.tolist(), "source": hold.source}
+        attachments["calibration"] = parent_attachment(
+            info["class_values"], [m.key for m, _ in pair_refs],
+            [r.attachments.get("calibration") for _, r in pair_refs], **held)
     summary = _parent_summary(member_summaries, ds, kernel, C, kkt_tol, task.name,
                               attachments.get("holdout"))
     parent = ParentRecord(task=task.name, members=tuple(member_refs), info=info,

@@ -22,12 +22,13 @@ from typing import Any
 import numpy as np
 
 from ..errors import InvalidInputError
+from ..plaindata import to_plain
 from .coupling import couple_pairwise_rows
 from .crossval import Calibration
 from .platt import sigmoid_probability
 
 __all__ = ["PAIR_CLIP", "COUPLING_METHOD", "PairwiseCalibration", "pair_calibration",
-           "parent_calibration"]
+           "parent_calibration", "parent_attachment"]
 
 #: Pairwise probabilities are kept inside [PAIR_CLIP, 1 − PAIR_CLIP] before coupling.
 PAIR_CLIP = 1e-7
@@ -127,3 +128,47 @@ def parent_calibration(parent: Any, members: Sequence[Any]) -> PairwiseCalibrati
     classes = list(parent.info.get("class_values") or parent.info.get("classes") or [])
     return pair_calibration(classes, [ref.key for ref, _ in pairs],
                             [(rec.attachments or {}).get("calibration") for _, rec in pairs])
+
+
+def parent_attachment(classes: Sequence[Any], keys: Sequence[Sequence[Any]],
+                      attachments: Sequence[Mapping[str, Any] | None],
+                      values: np.ndarray | None = None, truth: Sequence[Any] | None = None,
+                      voted: Sequence[Any] | None = None, *,
+                      source: str | None = None) -> dict[str, Any]:
+    """The parent record's ``calibration`` attachment (plain data): the coupling method,
+    every pair's sigmoid (A, B, status, folds, seed) and, with held-out pair values
+    ``values`` (m, q), true labels ``truth`` and voted labels ``voted``, the multi-class
+    evidence on those rows (:func:`~solver.calibration.evidence.multiclass_evidence`)."""
+    from .evidence import multiclass_evidence
+
+    pairs = []
+    for key, att in zip(keys, attachments, strict=True):
+        row: dict[str, Any] = {"pair": [str(v) for v in key], "positive": str(key[1])}
+        if att is None:
+            row.update(status="missing", message="no calibration stored with this pair")
+        else:
+            row.update({k: att.get(k) for k in ("status", "message", "A", "B", "n_folds",
+                                                 "seed")})
+            sig = att.get("sigmoid") or {}
+            row.update(newton_steps=sig.get("newton_steps"),
+                       gradient_norm=sig.get("gradient_norm"))
+        pairs.append(row)
+    out: dict[str, Any] = {"method": "pairwise_coupling", "coupling": COUPLING_METHOD,
+                           "classes": [str(c) for c in classes], "pairs": pairs,
+                           "holdout": None}
+    try:
+        pc = pair_calibration(classes, keys, attachments)
+    except InvalidInputError as exc:
+        out.update(status="failed", message=str(exc))
+        return to_plain(out, nonfinite_as_none=True)
+    out.update(status="fitted", message="every pair's sigmoid fitted; class probabilities by "
+                                        "pairwise coupling")
+    if values is not None and truth is not None and voted is not None and len(truth):
+        names = [str(c) for c in classes]
+        t = np.array([names.index(str(v)) for v in truth], dtype=np.int64)
+        v = np.array([names.index(str(x)) for x in voted], dtype=np.int64)
+        ev = multiclass_evidence(pc.probabilities(values), t, v)
+        out["holdout"] = {**ev, "disagreement_rows": ev["disagreement_rows"].tolist(),
+                          "source": source}
+    # parent attachments hold JSON values only: no arrays, empty bins' means as null
+    return to_plain(out, nonfinite_as_none=True)

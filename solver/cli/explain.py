@@ -27,7 +27,12 @@ _EXPLAIN_EXAMPLES = """examples:
   kktrace explain RUN_ID --point "coating_thickness_um=92,dissolution_30min_pct=88,\\
 hardness_n=120,moisture_pct=2.4"
   kktrace explain RUN_ID --query new_batches.csv --top 3 --json
-  kktrace explain RUN_ID --leave-one-out"""
+  kktrace explain RUN_ID --leave-one-out
+
+For a multi-class model (a parent over one-vs-one pairs) the table has one row per
+training point with its category and multiplier in every pair it took part in, and
+"support vector in m of its k-1 pairs"; --point / --query break a query down per pair
+and show the vote."""
 
 
 def _parse_point_text(text: str) -> dict[str, str]:
@@ -78,12 +83,36 @@ def cmd_explain(args: argparse.Namespace) -> int:
         elif not args.out:
             _print_columns(cols)
         return EXIT_OK
-    d = to_dict(res)
+    d = res.to_dict() if hasattr(res, "to_dict") else to_dict(res)
     if args.json:
         emit_json(d, sys.stdout)
+    elif d.get("record") == "parent":
+        _print_parent_breakdown(d, args.run)
     else:
         _print_breakdown(d, args.run)
     return EXIT_OK
+
+
+def _print_parent_breakdown(d: Mapping[str, Any], run: str) -> None:
+    """A multi-class parent: per query, the vote, then every pair's breakdown."""
+    print(f"multi-class model {run}: {len(d['pairs'])} pairs vote ({d['vote_rule']}; "
+          f"{d['tie_rule']})")
+    for q, lab in enumerate(d["labels"]):
+        votes = ", ".join(f"{c} {v}" for c, v in zip(d["classes"], d["votes"][q], strict=True))
+        tie = "  (tied: the first class in the class order wins)" if d["tie"][q] else ""
+        print(f"query {q}: class {lab}  [votes {votes}]{tie}")
+        for p in d["pairs"]:
+            val = p["values"][q]
+            print(f"  pair {' vs '.join(p['pair'])}: f(x) = {val:+.6g} → votes "
+                  f"{p['votes_for'][q]}  (bias {num(p['bias'])}, {p['n_support']} support "
+                  "vectors)")
+            rows = p.get("top_rows_parent") or p["top_rows"]
+            for r, c, sh in zip(rows[q], p["top_contributions"][q], p["top_shares"][q],
+                                strict=True):
+                print(f"      training row {int(r):>6d}  {c:+.6g}  ({sh:.1%} of the "
+                      "absolute total)")
+            print(f"      all other support vectors  {p['remainder'][q]:+.6g}  "
+                  f"({p['remainder_share'][q]:.1%})")
 
 
 def _print_columns(cols: Mapping[str, list[Any]]) -> None:

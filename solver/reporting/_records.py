@@ -107,6 +107,8 @@ class RunContent:
     flags: tuple[Flag, ...]
     series: Mapping[str, Mapping[str, list[float]]] = field(default_factory=dict)
     data_facts: Mapping[str, Any] = field(default_factory=dict)
+    #: probability calibration section (:mod:`._calibration`), None without probabilities
+    calibration: Any = None
     task_section: TaskSection | None = None
     task_note: str = ""
 

@@ -14,7 +14,7 @@ from typing import Any
 from ..run import RunRecord
 from ._records import FigureData, Flag, Table, TaskSection, _plain
 
-__all__ = ["_task_section"]
+__all__ = ["_task_section", "_parent_section"]
 
 
 def _table(raw: Mapping[str, Any]) -> Table:
@@ -39,6 +39,27 @@ def _task_section(rec: RunRecord, label: str) -> tuple[TaskSection | None, str]:
                       f"{type(exc).__name__}: {exc}")
     if raw is None:
         return None, ""
+    return _section_from_raw(task, raw, label), ""
+
+
+def _parent_section(parent: Any, members: list[RunRecord], label: str
+                    ) -> tuple[TaskSection | None, str]:
+    """(section, note) of a parent record (a multi-class model): asked of the parent's
+    task with the parent and its member runs (member order)."""
+    from ..tasks import get_task
+
+    task = get_task(parent.task)
+    try:
+        raw = task.report_section(parent, members)
+    except Exception as exc:  # noqa: BLE001 - a section failure must not lose the report
+        return None, (f"The {task.name} section is not available: "
+                      f"{type(exc).__name__}: {exc}")
+    if raw is None:
+        return None, ""
+    return _section_from_raw(task, raw, label), ""
+
+
+def _section_from_raw(task: Any, raw: Mapping[str, Any], label: str) -> TaskSection:
     figures = tuple(
         FigureData(key=f"task_{f['key']}", kind=str(f["kind"]), title=f"{label}: {f['title']}",
                    caption=str(f["caption"]), data=f["data"])
@@ -49,4 +70,4 @@ def _task_section(rec: RunRecord, label: str) -> tuple[TaskSection | None, str]:
         task=task.name, title=str(raw["title"]), intro=str(raw.get("intro", "")),
         facts=tuple((str(k), _plain(v)) for k, v in raw.get("facts", ())),
         tables=tuple(_table(t) for t in raw.get("tables", ())), figures=figures,
-        flags=flags), ""
+        flags=flags)

@@ -16,6 +16,7 @@ import numpy as np
 
 from ..run import RunRecord
 from ..status import Status
+from ._calibration import calibration_content
 from ._convergence import _trace_figures
 from ._flags import AGREE_VERDICTS, LOOSE_VERDICTS, _comparison, _run_flags
 from ._points import _categories, _confusion, _decision_map, _influential, _loo
@@ -39,7 +40,7 @@ from ._records import (
     _scalar_items,
     _status_of,
 )
-from ._task import _task_section
+from ._task import _parent_section, _task_section
 
 __all__ = [
     "AGREE_VERDICTS",
@@ -117,6 +118,7 @@ def _run_content(rec: RunRecord, label: str, holdout: Mapping | None) -> RunCont
         loo_note=loo_note, holdout={k: _plain(v) for k, v in hold.items()} if hold else None,
         confusion=confusion, decision_map=dmap, decision_note=dnote, flags=tuple(flags),
         series=series, data_facts=data_facts, task_section=section, task_note=section_note,
+        calibration=calibration_content(_as_mapping(att.get("calibration")), label),
     )
 
 
@@ -128,8 +130,14 @@ def build_report_content(
     notes: str | None = None,
     title: str | None = None,
     generated: str | None = None,
+    parent: Any = None,
+    parent_members: Sequence[RunRecord] = (),
 ) -> ReportContent:
     """Collect the report for ``runs`` (one or more stored runs) as plain data.
+
+    parent, parent_members : a parent record (multi-class model) and all its member runs
+        in member order; its task's section goes on the first run's pages (the runs are
+        then the pair shown in full and its challenger).
 
     comparison : a :class:`solver.agreement.Comparison` or its ``to_dict()``; default the first
         ``"comparison"`` attachment found on the runs.
@@ -151,6 +159,15 @@ def build_report_content(
     for k, rec in enumerate(runs):
         label = f"run {letters[k]}" if k < len(letters) else f"run {k + 1}"
         contents.append(_run_content(rec, label, holdout if k == 0 else None))
+    if parent is not None:
+        import dataclasses
+
+        sec, sec_note = _parent_section(parent, list(parent_members), contents[0].label)
+        first = contents[0]
+        contents[0] = dataclasses.replace(
+            first, task_section=sec if sec is not None else first.task_section,
+            task_note=sec_note or first.task_note,
+            flags=tuple(first.flags) + (tuple(sec.flags) if sec is not None else ()))
     comp_src = comparison
     if comp_src is None:
         comp_src = next((r.attachments.get("comparison") for r in runs
@@ -160,6 +177,9 @@ def build_report_content(
                                  "was compared with this one.")
     flags = [f for rc in contents for f in rc.flags] + comp_flags
     flags.sort(key=lambda f: SEVERITIES.index(f.severity))
+    if title is None and parent is not None:
+        title = (f"Convergence and audit record — multi-class model {parent.run_id} "
+                 f"(pair run {runs[0].run_id} in full)")
     if title is None:
         first = runs[0].run_id or "unsaved run"
         more = f" and {len(runs) - 1} further run(s)" if len(runs) > 1 else ""

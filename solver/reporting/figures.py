@@ -402,6 +402,58 @@ def _draw_loo(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
     _legend_above(ax, ax.get_legend_handles_labels()[0])
 
 
+def _draw_reliability(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
+    """Reliability diagram: observed share against mean probability per bin, and below it
+    the rows in each bin."""
+    gs = fig.add_gridspec(2, 1, height_ratios=[1.0, 0.38], hspace=0.1, **_margins(fig))
+    ax = fig.add_subplot(gs[0])
+    bars = fig.add_subplot(gs[1], sharex=ax)
+    ax.tick_params(labelbottom=False)
+    ax.plot([0, 1], [0, 1], color=_c("muted"), linewidth=0.7, linestyle=(0, (4, 2)),
+            label="perfect calibration")
+    ax.plot(d["mean"], d["observed"], color=_c("tide"), marker="o", markersize=4,
+            label="bins with rows")
+    for x, y, n in zip(d["mean"], d["observed"], d["occupied_rows"], strict=True):
+        ax.annotate(f"{n}", (x, y), textcoords="offset points", xytext=(4, -9), fontsize=6,
+                    color=_c("muted"))
+    ax.set_xlim(0, 1)
+    ax.set_ylim(-0.02, 1.02)
+    ax.set_ylabel(plain_text(f"share {d['positive']}", 30))
+    _legend_above(ax, ax.get_legend_handles_labels()[0])
+    low, high = np.asarray(d["low"]), np.asarray(d["high"])
+    bars.bar(low, d["rows"], width=high - low, align="edge", color=_c("tint_neg"),
+             edgecolor=_c("tide"), linewidth=0.5)
+    bars.set_ylabel("rows")
+    bars.yaxis.set_major_formatter(FuncFormatter(_count))
+    bars.set_xlabel(plain_text(f"predicted P({d['positive']})", 40))
+
+
+def _draw_sigmoid(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
+    """The fitted sigmoid over the decision values, the rows as ticks by class, and the
+    band between f = 0 and the sigmoid's midpoint."""
+    ax = _axes(fig)
+    f = np.asarray(d["values"], dtype=np.float64)
+    pos = np.asarray(d["positive"], dtype=bool)
+    c = d["crossover"]
+    if c is not None and np.isfinite(c):
+        ax.axvspan(min(0.0, c), max(0.0, c), color=_c("tint_pos"), linewidth=0,
+                   label="class by f and by P differ")
+    ax.axvline(0.0, color=_c("ink"), linewidth=0.6)
+    ax.axhline(0.5, color=_c("muted"), linewidth=0.5, linestyle=(0, (1, 2)))
+    ax.plot(d["grid"], d["p"], color=_c("tide"), linewidth=1.2, label="fitted sigmoid")
+    ax.plot(f[pos], np.full(int(pos.sum()), 1.03), linestyle="none", marker="|",
+            markersize=5, color=_c("rust"), alpha=0.6,
+            label=plain_text(f"rows of {d['positive_label']}", 30))
+    ax.plot(f[~pos], np.full(int((~pos).sum()), -0.03), linestyle="none", marker="|",
+            markersize=5, color=_c("tide"), alpha=0.6,
+            label=plain_text(f"rows of {d['negative_label']}", 30))
+    ax.set_ylim(-0.08, 1.08)
+    ax.set_xlabel("decision value f(x)")
+    ax.set_ylabel(plain_text(f"P({d['positive_label']} | f)", 30))
+    ax.xaxis.set_major_formatter(FuncFormatter(_num))
+    _legend_above(ax, ax.get_legend_handles_labels()[0])
+
+
 #: Markers of the task sections' row categories (matched on the display words' start).
 _TASK_MARKS = (("inside", "muted", "o", True, 5.0), ("interior", "muted", "o", True, 5.0),
                ("on the", "pine", "D", True, 16.0), ("outside", "mustard", "s", False, 20.0))
@@ -510,6 +562,8 @@ _DRAW = {
     "selection": (_draw_selection, FIG_SIZE),
     "regions": (_draw_regions, MAP_SIZE),
     "loo": (_draw_loo, FIG_SIZE),
+    "reliability": (_draw_reliability, FIG_SIZE_TALL),
+    "sigmoid": (_draw_sigmoid, FIG_SIZE),
     "fit_tube": (_draw_fit_tube, MAP_SIZE),
     "residuals": (_draw_residuals, FIG_SIZE_TALL),
     "score_distribution": (_draw_score_distribution, FIG_SIZE_TALL),

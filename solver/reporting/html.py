@@ -297,6 +297,9 @@ def _run_section(doc: _Doc, r: RunContent, k: int) -> None:
             doc.table(r.confusion, cls="grid confusion")
     else:
         doc.missing("Held-out outcomes not available: no held-out data were scored with this run.")
+    if r.calibration is not None:
+        h3("Probability calibration", "calibration")
+        _calibration_html(doc, r.calibration)
     if r.task_section is not None:
         ts = r.task_section
         h3(ts.title, "task")
@@ -316,6 +319,20 @@ def _run_section(doc: _Doc, r: RunContent, k: int) -> None:
     else:
         doc.missing(r.decision_note)
     doc.add("</section>")
+
+
+def _calibration_html(doc: _Doc, cal: Any) -> None:
+    """The probability section (:class:`._calibration.CalibrationContent`)."""
+    for note in cal.notes:
+        doc.add(f'<p class="quiet">{esc(note)}</p>')
+    if cal.facts:
+        doc.kv(cal.facts)
+    if cal.bins is not None:
+        doc.table(cal.bins, cls="grid narrow")
+    for fd in cal.figures:
+        doc.figure(fd)
+    if cal.folds is not None:
+        doc.table(cal.folds, cls="grid narrow")
 
 
 def _challenger(doc: _Doc, c: ReportContent) -> None:

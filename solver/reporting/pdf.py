@@ -236,6 +236,27 @@ def _run_support(r: RunContent) -> list[PdfPage]:
     return _paginate(f"Record of {r.label}: support vectors and outcomes", L)
 
 
+def _run_calibration(r: RunContent) -> list[PdfPage]:
+    """Text and figure pages of the probability section (none without probabilities)."""
+    cal = r.calibration
+    if cal is None:
+        return []
+    L = _Lines()
+    L.heading("Probability calibration")
+    for note in cal.notes:
+        L.para(note, "i")
+    L.kv(cal.facts)
+    if cal.bins is not None:
+        L.table(cal.bins)
+    if cal.folds is not None:
+        L.table(cal.folds)
+    pages = _paginate(f"Record of {r.label}: probability calibration", L)
+    if cal.figures:
+        pages.append(PdfPage(heading=f"Probability calibration — {r.label}",
+                             figures=tuple(cal.figures)))
+    return pages
+
+
 def _challenger(c: ReportContent) -> list[PdfPage]:
     L = _Lines()
     comp = c.comparison
@@ -266,6 +287,7 @@ def plan_pages(content: ReportContent) -> list[PdfPage]:
             pages.append(PdfPage(heading=f"Path to the solution — {r.label}",
                                  figures=tuple(figs[k:k + FIGS_PER_PAGE])))
         pages += _run_support(r)
+        pages += _run_calibration(r)
         if r.task_section is not None and r.task_section.figures:
             tf = list(r.task_section.figures)
             for k in range(0, len(tf), FIGS_PER_PAGE):

@@ -55,10 +55,12 @@ def _run(r: RunContent) -> dict[str, Any]:
                         {"columns": list(r.influential.columns),
                          "rows": [list(row) for row in r.influential.rows]}),
         "holdout": None if r.holdout is None else dict(r.holdout),
+        "calibration": None if r.calibration is None else r.calibration.to_dict(),
         "series": {k: dict(v) for k, v in r.series.items()},
         "figures": [{"key": f.key, "title": f.title, "caption": f.caption}
                     for f in (*r.figures, *(x for x in (r.decision_map, r.loo_figure) if x),
-                              *(r.task_section.figures if r.task_section else ()))],
+                              *(r.task_section.figures if r.task_section else ()),
+                              *(r.calibration.figures if r.calibration is not None else ()))],
         "task_section": _task_section(r),
         "flags": [{"code": f.code, "severity": f.severity, "message": f.message}
                   for f in r.flags],
