@@ -15,7 +15,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -32,6 +32,7 @@ from ._workflow import (
     _fingerprint,
     _load_data,
     _plain,
+    _stored_holdout,
     open_store,
 )
 from .data import Dataset
@@ -112,8 +113,10 @@ def compare(
     """Solver-agreement :class:`~solver.agreement.Comparison` of two runs.
 
     ``holdout`` (data file or Dataset, label column optional) adds decision-value agreement
-    on held-out rows.  Runs of different problems raise
-    :class:`~solver.errors.ProblemMismatchError` unless ``allow_mismatch``.
+    on held-out rows; without it the held-out rows stored with run A (else run B) at
+    training are used, and a note says which, or that none are stored and how to add them.
+    Runs of different problems raise :class:`~solver.errors.ProblemMismatchError` unless
+    ``allow_mismatch``.
     """
     from .agreement import compare_runs
 
@@ -131,11 +134,15 @@ def compare(
         return compare_parents(pa, pb, holdout_X=hX, tolerances=tolerances,
                                allow_mismatch=allow_mismatch)
     a, b = load_run(run_a, store=store), load_run(run_b, store=store)
-    hX = None
+    hX, note = None, None
     if holdout is not None:
         hold = _load_data(holdout, _split_column(a.data), "held-out data")
         hX = _align(hold, a.data.get("feature_names") or [], "held-out data")
-    return compare_runs(a, b, holdout_X=hX, tolerances=tolerances, allow_mismatch=allow_mismatch)
+    else:
+        hX, note = _stored_holdout(a, b)
+    comp = compare_runs(a, b, holdout_X=hX, tolerances=tolerances,
+                        allow_mismatch=allow_mismatch)
+    return comp if note is None else replace(comp, notes=(*comp.notes, note))
 
 
 def _parse_point(point: Mapping[str, float] | Sequence[float] | np.ndarray,
