@@ -17,6 +17,11 @@ column                     unit    meaning
 ``lab_decision``           —       ``release`` or ``reject`` (the label)
 =========================  ======  ============================================
 
+A second file grades the same batches three ways in ``coating_grade``: ``release`` as
+above, ``rework`` for a batch just outside the window (or inside it but up to 4.2 %
+moist) with its hardness in range — it could be re-coated or re-dried — and ``reject``
+for the rest.  The demo trains it one-vs-one, so that a multi-class report is there too.
+
 The (invented) laboratory releases a batch when its *true* thickness and dissolution lie
 inside a curved, banana-shaped window (thicker coats dissolve more slowly, and the
 acceptable dissolution band bends with thickness), its moisture is at most 3.6 % and its
@@ -41,6 +46,9 @@ __all__ = [
     "DEMO_COLUMNS",
     "DEMO_LABEL",
     "DEMO_SETTINGS",
+    "GRADE_LABEL",
+    "tablet_coating_grade_tables",
+    "write_grade_data",
     "DemoOutcome",
     "tablet_coating_tables",
     "write_table",
@@ -54,6 +62,9 @@ DEMO_SEED = 20240611
 #: Feature columns, then the label column, in file order.
 DEMO_COLUMNS = ("coating_thickness_um", "dissolution_30min_pct", "hardness_n", "moisture_pct")
 DEMO_LABEL = "lab_decision"
+#: Label column of the three-way grade file (multi-class demo): release / rework / reject.
+GRADE_LABEL = "coating_grade"
+GRADE_FILE, GRADE_HOLDOUT_FILE = "tablet_coating_grades.csv", "tablet_coating_grades_holdout.csv"
 #: Rows in the training and held-out files.
 N_TRAIN, N_HOLDOUT = 360, 120
 #: Decimal places each column is recorded with (instrument resolution).
@@ -64,8 +75,10 @@ DEMO_SETTINGS: Mapping[str, Any] = {"kernel": "rbf", "C": 10.0, "kkt_tol": 1e-5}
 TRAIN_FILE, HOLDOUT_FILE = "tablet_coating.csv", "tablet_coating_holdout.csv"
 
 
-def _batches(rng: np.random.Generator, n: int) -> dict[str, np.ndarray]:
-    """``n`` invented batches: recorded features and the lab's decision."""
+def _batches(rng: np.random.Generator, n: int, *, grades: bool = False
+             ) -> dict[str, np.ndarray]:
+    """``n`` invented batches: recorded features and the lab's decision (with ``grades``:
+    the three-way grade :data:`GRADE_LABEL` instead, from the same draws)."""
     thick = np.clip(rng.normal(86.0, 13.0, n), 45.0, 135.0)
     hard = np.clip(rng.normal(118.0, 16.0, n), 60.0, 180.0)
     # thicker coats and harder cores dissolve more slowly
@@ -84,7 +97,17 @@ def _batches(rng: np.random.Generator, n: int) -> dict[str, np.ndarray]:
         "moisture_pct": np.maximum(0.05, moist + rng.normal(0.0, 0.12, n)),
     }
     out = {k: np.round(v, _DECIMALS[k]) for k, v in recorded.items()}
-    out[DEMO_LABEL] = np.where(release, "release", "reject")
+    if not grades:
+        out[DEMO_LABEL] = np.where(release, "release", "reject")
+        return out
+    # the invented grading: a batch just outside the window (radius ≤ 1.45), or inside
+    # it but slightly too moist (≤ 4.2 %), can be re-coated or re-dried: rework; hardness
+    # out of range, or further out, is scrapped: reject
+    radius = np.sqrt(((thick - 86.0) / 24.0) ** 2 + ((diss - centre) / 8.5) ** 2)
+    hard_ok = (hard >= 85.0) & (hard <= 160.0)
+    rework = ~release & hard_ok & (((radius <= 1.45) & (moist <= 3.6))
+                                   | ((radius <= 1.0) & (moist <= 4.2)))
+    out[GRADE_LABEL] = np.where(release, "release", np.where(rework, "rework", "reject"))
     return out
 
 
@@ -103,8 +126,20 @@ def tablet_coating_tables(
     return train, holdout
 
 
+def tablet_coating_grade_tables(
+    *, seed: int = DEMO_SEED, n_train: int = N_TRAIN, n_holdout: int = N_HOLDOUT
+) -> tuple[dict[str, np.ndarray], dict[str, np.ndarray]]:
+    """The same invented batches as :func:`tablet_coating_tables` (same seed, same
+    feature values) graded three ways in :data:`GRADE_LABEL`: ``release`` (as there),
+    ``rework`` (just outside the window, or a little too moist) or ``reject``."""
+    rng = np.random.default_rng(seed)
+    both = _batches(rng, n_train + n_holdout, grades=True)
+    return ({k: v[:n_train] for k, v in both.items()},
+            {k: v[n_train:] for k, v in both.items()})
+
+
 def _fmt(column: str, value: Any) -> str:
-    if column == DEMO_LABEL:
+    if column in (DEMO_LABEL, GRADE_LABEL):
         return str(value)
     return f"{float(value):.{_DECIMALS[column]}f}"
 
@@ -112,8 +147,9 @@ def _fmt(column: str, value: Any) -> str:
 def write_table(table: Mapping[str, np.ndarray], path: str | Path) -> Path:
     """Write a demo table as CSV (header row; fixed decimals so output is byte-stable)."""
     path = Path(path)
-    cols = [*DEMO_COLUMNS, DEMO_LABEL]
-    n = len(table[DEMO_LABEL])
+    label = DEMO_LABEL if DEMO_LABEL in table else GRADE_LABEL
+    cols = [*DEMO_COLUMNS, label]
+    n = len(table[label])
     with path.open("w", newline="", encoding="utf-8") as fh:
         w = csv.writer(fh, lineterminator="\n")
         w.writerow(cols)
@@ -131,6 +167,15 @@ def write_demo_data(directory: str | Path, *, seed: int = DEMO_SEED) -> tuple[Pa
             write_table(holdout, directory / HOLDOUT_FILE))
 
 
+def write_grade_data(directory: str | Path, *, seed: int = DEMO_SEED) -> tuple[Path, Path]:
+    """Write the three-way grade files (multi-class demo) into ``directory``."""
+    directory = Path(directory)
+    directory.mkdir(parents=True, exist_ok=True)
+    train, holdout = tablet_coating_grade_tables(seed=seed)
+    return (write_table(train, directory / GRADE_FILE),
+            write_table(holdout, directory / GRADE_HOLDOUT_FILE))
+
+
 def shipped_data() -> tuple[Path, Path]:
     """Paths of the demo CSVs shipped inside the package (training, held-out)."""
     base = resources.files("solver") / "data"
@@ -144,7 +189,10 @@ class DemoOutcome:
     store : store root; data_files : (training CSV, held-out CSV) written for the demo;
     train : the :class:`solver.api.TrainOutcome`; reports : format → path of the audit
     report; explanation_files : per-point tables exported for the primary run;
-    seconds : wall-clock time of the whole demo.
+    seconds : wall-clock time of the whole demo.  grades : the multi-class
+    :class:`~solver.api.TrainOutcome` on the three-way grade file (release / rework /
+    reject: a parent over three pair runs), grade_files : its (training, held-out) CSVs,
+    grade_reports : format → path of its report (the multi-class section included).
     """
 
     store: Path
@@ -153,6 +201,9 @@ class DemoOutcome:
     reports: Mapping[str, Path]
     explanation_files: Mapping[str, Path]
     seconds: float
+    grades: Any = None
+    grade_files: tuple[Path, Path] | None = None
+    grade_reports: Mapping[str, Path] | None = None
 
 
 def run_demo(
@@ -165,7 +216,10 @@ def run_demo(
 
     Generates the data into ``<store>/demo-data/``, trains SMO with the QP challenger
     (held-out file scored), exports the primary run's per-point table (CSV and Parquet)
-    and writes the audit report (HTML, PDF, JSON) into ``<store>/reports/``.
+    and writes the audit report (HTML, PDF, JSON) into ``<store>/reports/``.  Then the
+    same batches graded three ways (release / rework / reject) are trained one-vs-one
+    (a multi-class parent over three pair runs, each with its challenger) and reported
+    with the multi-class section.
     ``store`` is a directory, a :class:`~solver.store.RunStore` or None (``$KKTRACE_STORE``
     or ``./traces``).
     """
@@ -188,7 +242,20 @@ def run_demo(
         list(outcome.run_ids), store=run_store, out_dir=out_dir, stem="tablet-coating-audit",
         notes="Demo run on invented tablet-coating QC data (not a real product or process).",
     )
+    # the second demo run: the same batches graded release / rework / reject, one-vs-one
+    grade_csv, grade_hold = write_grade_data(root / "demo-data")
+    grades = api.train(
+        grade_csv, label=GRADE_LABEL, solver="both", holdout=grade_hold, store=run_store,
+        quiet=quiet, progress=progress, **DEMO_SETTINGS,
+    )
+    grade_reports = api.report(
+        grades.run_id, store=run_store, out_dir=root / "reports" / f"demo-{grades.run_id}",
+        stem="tablet-coating-grades-audit",
+        notes="Demo multi-class run on invented tablet-coating QC data (release / rework / "
+              "reject; not a real product or process).",
+    )
     return DemoOutcome(
         store=root, data_files=(train_csv, holdout_csv), train=outcome, reports=reports,
         explanation_files=explanation_files, seconds=time.perf_counter() - t0,
+        grades=grades, grade_files=(grade_csv, grade_hold), grade_reports=grade_reports,
     )

@@ -209,6 +209,10 @@ def cmd_demo(args: argparse.Namespace) -> int:
             "runs": tr.summary(),
             "reports": {k: str(v) for k, v in res.reports.items()},
             "explanations": {k: str(v) for k, v in res.explanation_files.items()},
+            "multiclass": None if res.grades is None else {
+                "data_files": [str(p) for p in res.grade_files],
+                "model": res.grades.summary(),
+                "reports": {k: str(v) for k, v in res.grade_reports.items()}},
             "seconds": res.seconds,
         }, sys.stdout)
     else:
@@ -220,8 +224,16 @@ def cmd_demo(args: argparse.Namespace) -> int:
         print("audit report:")
         for k, v in res.reports.items():
             print(f"  {k:7s} {v}")
+        if res.grades is not None:
+            print(f"\nmulti-class: the same batches graded release / rework / reject "
+                  f"(invented): {res.grade_files[0]}")
+            _print_parent(res.grades)
+            print("multi-class audit report:")
+            for k, v in res.grade_reports.items():
+                print(f"  {k:7s} {v}")
         print(f"demo finished in {res.seconds:.1f} s; store: {res.store}")
-    return EXIT_OK if tr.converged else EXIT_NOT_CONVERGED
+    ok = tr.converged and (res.grades is None or res.grades.converged)
+    return EXIT_OK if ok else EXIT_NOT_CONVERGED
 
 
 
