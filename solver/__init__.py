@@ -89,6 +89,12 @@ _EXPORTS: dict[str, str] = {
     "RunStore": "store",
     "Status": "status",
     "to_plain": "plaindata",
+    # one vocabulary (labels, definitions, whose figure)
+    "Term": "vocabulary",
+    "term": "vocabulary",
+    "trace_term": "vocabulary",
+    "timing_text": "vocabulary",
+    "caution_line": "vocabulary",
     # errors and warnings
     "KktraceError": "errors",
     "InvalidInputError": "errors",

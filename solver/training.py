@@ -217,6 +217,7 @@ def _run_summary(record: RunRecord, run_id: str, run_dir: Path) -> dict[str, Any
         "n_bounded": int(c.n_bounded),
         "bias": float(r.bias),
         "seconds": float(r.seconds),
+        **r.timing,
         "run_dir": str(run_dir),
         "n_rows": int(record.problem.n),
         "kernel": record.problem.kernel.describe(),

@@ -180,3 +180,24 @@ def test_diagnosing_never_executes_stored_content(tmp_path, monkeypatch):
     d = solver.diagnose(run, store=store)
     assert "conflicting_duplicates" in d.codes
     assert not marker.exists()
+
+
+def test_report_has_a_diagnosis_section_in_every_format():
+    import jsonschema
+
+    from solver.reporting import build_report_content, render_report
+    from solver.reporting.summary import load_schema, summary_dict
+
+    hp = hard_problem("overlap_large_c", 150)
+    rec = RunRecord(problem=hp.problem, result=_solve(hp.problem, iteration_limit=5000,
+                                                      trace="off"),
+                    data=hp.data, standardiser=hp.standardiser)
+    content = build_report_content([rec])
+    doc = summary_dict(content)
+    jsonschema.validate(doc, load_schema(), cls=jsonschema.Draft202012Validator)
+    diag = doc["runs"][0]["diagnosis"]
+    assert "penalty_large" in [f["code"] for f in diag["findings"]]
+    assert "stall" in diag["skipped"]
+    html = render_report(content, "html").decode()
+    assert "Diagnosis" in html and "penalty_large" in html and "Not checked: stall" in html
+    assert render_report(content, "pdf").startswith(b"%PDF")

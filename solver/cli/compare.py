@@ -48,9 +48,11 @@ def cmd_compare(args: argparse.Namespace) -> int:
             rows.append([name, num(m.get("value"), ".4g"), f"{rule} {num(m.get('tolerance'))}",
                          f"{rule} {num(m.get('loose_tolerance'))}", result])
         print_rows(rows)
+    timing = ("solve_seconds", "compile_seconds", "setup_seconds", "total_seconds")
     for run in d.get("runs") or []:
         print("  " + ", ".join(f"{k} {num(v, '.4g') if isinstance(v, float) else v}"
-                               for k, v in run.items()))
+                               for k, v in run.items() if k not in timing))
+        print(f"    time {solver.timing_text(run)}")
     for note in list(d.get("mismatches") or []) + list(d.get("notes") or []):
         print(f"note: {note}")
     return EXIT_OK

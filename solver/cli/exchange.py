@@ -23,9 +23,6 @@ _CHALLENGE_EXAMPLES = """examples:
   kktrace challenge vendor_model.onnx --data batches.csv --label lab_decision --C 10
   kktrace challenge model.json --data batches.csv --label lab_decision --C 1 --no-standardise"""
 
-CAUTION = ("kktrace gives evidence about the optimisation, not a validation sign-off; decisions "
-           "rest with the accountable model owner and validator under local regulation.")
-
 
 def cmd_export(args: argparse.Namespace) -> int:
     import solver

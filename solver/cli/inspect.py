@@ -114,6 +114,7 @@ def cmd_replay(args: argparse.Namespace) -> int:
         "run_status": state.run_status.label if state.run_status is not None else None,
         "run_converged": state.run_status == solver.Status.CONVERGED,
         "run_message": state.run_message,
+        "run_timing": dict(state.run_timing or {}),
     }
     if args.json:
         d["alpha"] = state.alpha.tolist()
@@ -124,6 +125,7 @@ def cmd_replay(args: argparse.Namespace) -> int:
     print(f"{'' if args.pair else 'run '}{who} rebuilt at iteration {state.iteration} "
           f"(snapshot {state.base_iteration} + {state.deltas_applied} recorded steps)")
     print(f"  run status    {d['run_status']} (of the whole run: {d['run_message']})")
+    print(f"  run time      {solver.timing_text(d['run_timing'])}")
     print(f"  violation     {num(cert['max_violation'], '.3e')}  "
           f"(kkt_tol {num(cert['kkt_tol'], '.1e')})")
     print(f"  objectives    dual {num(cert['dual_objective'], '.8g')}, "

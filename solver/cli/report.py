@@ -30,6 +30,7 @@ def cmd_report(args: argparse.Namespace) -> int:
         print(f"report for run(s) {', '.join(args.runs)} written:")
         for k, v in paths.items():
             print(f"  {k:5s} {v}")
+        print(solver.caution_line())
     return EXIT_OK
 
 

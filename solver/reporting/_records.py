@@ -14,15 +14,10 @@ from typing import Any
 import numpy as np
 
 from ..status import Status
+from ..vocabulary import CAUTION
 
 __all__ = ["CAUTION", "SEVERITIES", "Flag", "Table", "FigureData", "TaskSection", "RunContent",
            "ReportContent"]
-
-#: The standing caution printed on every report (HTML, PDF and JSON).
-CAUTION = (
-    "kktrace gives evidence about the optimisation, not a validation sign-off; decisions on use "
-    "rest with the accountable model owner and validator under local regulation."
-)
 
 #: Severity order used for sorting flags: "stop" (result not usable as is), "caution", "note".
 SEVERITIES = ("stop", "caution", "note")
@@ -111,6 +106,11 @@ class RunContent:
     calibration: Any = None
     task_section: TaskSection | None = None
     task_note: str = ""
+    #: the run's diagnosis (:mod:`solver.diagnosis`): findings table (severity, code,
+    #: finding, action) and its statement plus unchecked codes; None when it failed
+    diagnosis: Table | None = None
+    diagnosis_note: str = ""
+    diagnosis_skipped: Mapping[str, str] = field(default_factory=dict)
 
 
 @dataclass(frozen=True, eq=False)

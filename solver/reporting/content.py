@@ -55,6 +55,19 @@ __all__ = [
 ]
 
 
+def _diagnosis(rec: RunRecord) -> tuple[Table | None, str, dict[str, str]]:
+    """The diagnosis table of one run (findings with codes, severities and actions)."""
+    from ..diagnosis import diagnose
+
+    try:
+        d = diagnose(rec)
+    except Exception as exc:  # noqa: BLE001 - a failed check must not lose the report
+        return None, f"Diagnosis not available: {type(exc).__name__}: {exc}", {}
+    rows = tuple((f.severity, f.code, f.summary, f.action) for f in d.findings)
+    table = Table(("severity", "code", "finding", "suggested action"), rows) if rows else None
+    return table, d.statement(), dict(d.skipped)
+
+
 def _run_content(rec: RunRecord, label: str, holdout: Mapping | None) -> RunContent:
     res = rec.result
     cert = res.certificate
@@ -66,6 +79,7 @@ def _run_content(rec: RunRecord, label: str, holdout: Mapping | None) -> RunCont
         "converged": status == Status.CONVERGED,
         "iterations": int(res.iterations),
         "seconds": float(res.seconds),
+        **res.timing,
         **{k: _plain(v) for k, v in cd.items()},
     }
     ident, env = _identity(rec, label)
@@ -94,6 +108,7 @@ def _run_content(rec: RunRecord, label: str, holdout: Mapping | None) -> RunCont
     section, section_note = _task_section(rec, label)
     if section is not None:
         flags += list(section.flags)
+    diag, diag_note, diag_skipped = _diagnosis(rec)
     cmd_text, cmd_py, cmd_note = _command_parts(att.get("command"))
     uniq, counts = np.unique(cats, return_counts=True)
     data_facts = {
@@ -119,6 +134,7 @@ def _run_content(rec: RunRecord, label: str, holdout: Mapping | None) -> RunCont
         confusion=confusion, decision_map=dmap, decision_note=dnote, flags=tuple(flags),
         series=series, data_facts=data_facts, task_section=section, task_note=section_note,
         calibration=calibration_content(_as_mapping(att.get("calibration")), label),
+        diagnosis=diag, diagnosis_note=diag_note, diagnosis_skipped=diag_skipped,
     )
 
 

@@ -166,7 +166,8 @@ def _keyfigs(c: ReportContent) -> str:
                 ("primal objective", t.get("primal_objective")),
                 ("duality gap", t.get("duality_gap")),
                 ("support vectors", t.get("n_support")), ("at upper bound", t.get("n_bounded")),
-                ("free", t.get("n_free")), ("solve time (s)", t.get("seconds"))]
+                ("free", t.get("n_free")), ("solve time (s)", t.get("solve_seconds")),
+                ("compile time (s)", t.get("compile_seconds"))]
         items = "".join(f"<div><dt>{esc(k)}</dt><dd>{_num_html(v)}</dd></div>" for k, v in figs)
         cells.append(f'<div class="keyrun"><p class="keylabel">{esc(r.label)}</p>'
                      f'<dl class="keyfigs">{items}</dl></div>')
@@ -191,7 +192,9 @@ def _termination_rows(t: Mapping[str, Any]) -> list[tuple[str, Any]]:
     meets = t.get("meets_tol")
     rows = [
         ("status", t.get("status")), ("message", t.get("message")),
-        ("iterations", t.get("iterations")), ("solve time (s)", t.get("seconds")),
+        ("iterations", t.get("iterations")), ("solve time (s)", t.get("solve_seconds")),
+        ("compile time (s)", t.get("compile_seconds")), ("set-up time (s)", t.get("setup_seconds")),
+        ("whole solver call (s)", t.get("seconds")),
         ("tolerance (kkt_tol)", t.get("kkt_tol")), ("final maximal violation",
                                                     t.get("max_violation")),
         ("violation within kkt_tol", meets),
@@ -313,6 +316,12 @@ def _run_section(doc: _Doc, r: RunContent, k: int) -> None:
     elif r.task_note:
         h3("Task section", "task")
         doc.missing(r.task_note)
+    h3("Diagnosis", "diagnosis")
+    doc.add(f"<p>{esc(r.diagnosis_note)}</p>")
+    if r.diagnosis is not None:
+        doc.table(r.diagnosis, cls="grid")
+    for code, why in r.diagnosis_skipped.items():
+        doc.missing(f"Not checked: {code} — {why}")
     h3("Decision map", "map")
     if r.decision_map is not None:
         doc.figure(r.decision_map)

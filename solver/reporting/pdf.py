@@ -230,6 +230,12 @@ def _run_support(r: RunContent) -> list[PdfPage]:
     elif r.task_note:
         L.heading("Task section")
         L.para(r.task_note, "i")
+    L.heading("Diagnosis")
+    L.para(r.diagnosis_note)
+    if r.diagnosis is not None:
+        L.table(r.diagnosis)
+    for code, why in r.diagnosis_skipped.items():
+        L.para(f"Not checked: {code} — {why}", "i")
     if r.decision_map is None:
         L.heading("Decision map")
         L.para(r.decision_note, "i")

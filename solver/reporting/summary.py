@@ -20,7 +20,8 @@ SCHEMA_ID = "kktrace-report-summary"
 SCHEMA_VERSION = 1
 
 _TERMINATION_KEYS = (
-    "status", "message", "converged", "iterations", "seconds", "kkt_tol", "max_violation",
+    "status", "message", "converged", "iterations", "seconds", "solve_seconds",
+    "compile_seconds", "setup_seconds", "total_seconds", "kkt_tol", "max_violation",
     "meets_tol", "m_up", "M_low", "dual_objective", "primal_objective", "duality_gap",
     "relative_gap", "bias", "bias_from", "bound_violation", "equality_residual",
     "max_kkt_residual",
@@ -62,6 +63,11 @@ def _run(r: RunContent) -> dict[str, Any]:
                               *(r.task_section.figures if r.task_section else ()),
                               *(r.calibration.figures if r.calibration is not None else ()))],
         "task_section": _task_section(r),
+        "diagnosis": {"statement": r.diagnosis_note,
+                      "findings": [] if r.diagnosis is None else [
+                          dict(zip(("severity", "code", "summary", "action"), row, strict=True))
+                          for row in r.diagnosis.rows],
+                      "skipped": dict(r.diagnosis_skipped)},
         "flags": [{"code": f.code, "severity": f.severity, "message": f.message}
                   for f in r.flags],
     }
