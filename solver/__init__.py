@@ -95,6 +95,7 @@ _EXPORTS: dict[str, str] = {
     "trace_term": "vocabulary",
     "timing_text": "vocabulary",
     "caution_line": "vocabulary",
+    "vocabulary": "_vocabulary_module",
     # errors and warnings
     "KktraceError": "errors",
     "InvalidInputError": "errors",
@@ -112,6 +113,10 @@ def __getattr__(name: str) -> Any:
     module = _EXPORTS.get(name)
     if module is None:
         raise AttributeError(f"module 'solver' has no attribute {name!r}")
+    if module == "_vocabulary_module":  # the vocabulary module itself
+        value = import_module(".vocabulary", __name__)
+        globals()[name] = value
+        return value
     value = getattr(import_module(f".{module}", __name__), name)
     globals()[name] = value  # cache: later look-ups skip this function
     return value

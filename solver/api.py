@@ -226,15 +226,24 @@ def _query_rows(points: Any, data: Mapping[str, Any]) -> np.ndarray:
 
 
 def leave_one_out(
-    run: str | RunRecord, *, store: Any = None, progress: ProgressFn | None = None
+    run: str | RunRecord, *, store: Any = None, progress: ProgressFn | None = None,
+    keep: bool = False,
 ) -> Any:
     """Exact leave-one-out error (support-vector refits) with the Vapnik and Joachims bounds.
 
-    Returns :class:`~solver.explanation.LeaveOneOut`; needs a converged run.
+    Returns :class:`~solver.explanation.LeaveOneOut` (ε-regression / one-class:
+    :class:`~solver.explanation.KindLeaveOneOut`); needs a converged run.  With ``keep``
+    the figures are stored as the attachment ``leave_one_out`` of a child record of the
+    run (the run's parts plus the attachment, parent link with the run's manifest
+    digest, so it is verified with the run on every load); its id is ``kept_as``.
     """
+    import dataclasses
+
     from .explanation import leave_one_out as _loo
 
     rec = load_run(run, store=store)
+    if keep and rec.run_id is None:
+        raise InvalidInputError("leave-one-out figures can be kept only for a stored run")
     if rec.problem.labels is None:  # ε-regression / one-class: KindLeaveOneOut
         from .explanation import kind_leave_one_out
 
@@ -242,17 +251,63 @@ def leave_one_out(
             raise InvalidInputError(f"run {rec.run_id} did not converge "
                                     f"({rec.result.status.label}); leave-one-out needs a "
                                     "converged run")
-        return kind_leave_one_out(rec.problem, rec.result)
-    if progress is None:
-        return _loo(rec.problem, rec.result)
+        loo = kind_leave_one_out(rec.problem, rec.result)
+    elif progress is None:
+        loo = _loo(rec.problem, rec.result)
+    else:
+        def cb(done: int, total: int) -> None:
+            progress("leave_one_out", {"done": done, "total": total})
 
-    def cb(done: int, total: int) -> None:
-        progress("leave_one_out", {"done": done, "total": total})
+        try:
+            loo = _loo(rec.problem, rec.result, progress=cb)
+        finally:
+            progress("done", {"task": "leave_one_out"})
+    if keep:
+        child = dataclasses.replace(
+            rec, attachments={**rec.attachments, LOO_ATTACHMENT: loo_attachment(loo)})
+        loo = dataclasses.replace(loo, kept_as=open_store(store).save(child, parent=rec.run_id))
+    return loo
 
-    try:
-        return _loo(rec.problem, rec.result, progress=cb)
-    finally:
-        progress("done", {"task": "leave_one_out"})
+
+#: Attachment name of stored leave-one-out figures.
+LOO_ATTACHMENT = "leave_one_out"
+
+
+def loo_attachment(loo: Any) -> dict[str, Any]:
+    """Plain data of a leave-one-out result as stored: its scalars (the keys of
+    :data:`solver.vocabulary.LEAVE_ONE_OUT`) and ``per_point`` (equal-length arrays:
+    ``row_id``, ``loo_value`` the left-out decision value / prediction / score,
+    ``refitted``, and for classification ``loo_wrong``)."""
+    if hasattr(loo, "to_columns"):
+        scalars, per_point = loo.to_dict(), loo.to_columns()
+    else:
+        scalars = loo.summary()
+        per_point = {"row_id": np.arange(loo.values.size, dtype=np.int64),
+                     "loo_value": np.asarray(loo.values, np.float64),
+                     "refitted": np.asarray(loo.refitted, bool)}
+    scalars.pop("kept_as", None)
+    return {**scalars, "per_point": per_point}
+
+
+def kept_leave_one_out(st: Any, rec: RunRecord) -> tuple[Any, str, str] | None:
+    """The newest child record of ``rec`` holding leave-one-out figures, loaded with
+    verification: (attachment, child run id, child manifest SHA-256), or None."""
+    if rec.run_id is None:
+        return None
+    rows = sorted(st.runs(parent=rec.run_id), key=lambda r: str(r.get("created") or ""),
+                  reverse=True)
+    for row in rows:
+        cid = row.get("run_id")
+        if not cid or not (st.run_dir(cid) / f"{LOO_ATTACHMENT}.json").exists():
+            continue
+        child = st.load(cid)  # verified: digests, the child against itself, the parent link
+        att = child.attachments.get(LOO_ATTACHMENT)
+        if att is not None:
+            import hashlib
+
+            digest = hashlib.sha256((st.run_dir(cid) / "manifest.json").read_bytes()).hexdigest()
+            return att, cid, digest
+    return None
 
 
 def replay(run: str | RunRecord, iteration: int, *, store: Any = None,
@@ -384,8 +439,14 @@ def verify(
             raise InvalidInputError("--keep stores one re-run; a multi-class model's pairs are "
                                     "re-run and compared without storing them")
 
-        reproduction = _ParentReproduction(tuple(rerun_parent(
-            load_parent_runs(st, run, trusted=keys), rerun)))
+        from .calibration.reproduce import recalibrate_pairs
+
+        pr = load_parent_runs(st, run, trusted=keys)
+        reps = rerun_parent(pr, rerun)
+        reproduction = _ParentReproduction(tuple(reps))
+        calibration = recalibrate_pairs([
+            (key, (rec.attachments or {}).get("calibration"), rep.record.problem)
+            for (key, rep), rec in zip(reps, pr.primary, strict=True)])
     elif rerun is not None and integrity.ok:
         rec = st.load(run, trusted=keys)
         ds = _load_data(rerun, _split_column(rec.data), "re-run data")
@@ -639,7 +700,7 @@ def report(
         return _parent_report(st, pr, out_dir, formats, notes, stem, pair)
     if pair is not None:
         raise InvalidInputError("--pair applies to the report of a multi-class model")
-    recs = [load_run(r, store=st) for r in ids]
+    recs = [_with_kept_leave_one_out(st, load_run(r, store=st)) for r in ids]
     comparison = None
     if len(recs) == 2:
         comparison = _stored_comparison(recs[1], recs[0])
@@ -653,6 +714,21 @@ def report(
                          stem=stem)
     _log_report(st, recs, paths)
     return paths
+
+
+def _with_kept_leave_one_out(st: Any, rec: RunRecord) -> RunRecord:
+    """``rec`` with the leave-one-out figures of its newest child record that holds them
+    (see :func:`leave_one_out` with ``keep``), marked with that record's id and digest."""
+    import dataclasses
+
+    if rec.attachments.get(LOO_ATTACHMENT) is not None:
+        return rec
+    kept = kept_leave_one_out(st, rec)
+    if kept is None:
+        return rec
+    att, cid, digest = kept
+    value = {**dict(att), "kept_as": cid, "kept_digest": digest}
+    return dataclasses.replace(rec, attachments={**rec.attachments, LOO_ATTACHMENT: value})
 
 
 def _parent_report(st: Any, pr: Any, out_dir: Any, formats: Sequence[str], notes: str | None,

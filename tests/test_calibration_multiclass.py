@@ -20,18 +20,22 @@ from solver.model import model_from_solution
 from solver.tasks import get_task
 
 
-@pytest.fixture(scope="module")
-def iris_fit(tmp_path_factory):
+def _iris_split():
     # Fisher's iris (scikit-learn's bundled copy; citation from memory), 3 classes
     from sklearn.datasets import load_iris
 
     X, y = load_iris(return_X_y=True)
     names = np.array(["setosa", "versicolor", "virginica"])[y]
-    rng = np.random.default_rng(0)
-    order = rng.permutation(len(y))
+    order = np.random.default_rng(0).permutation(len(y))
     tr, te = order[:110], order[110:]
     ds = from_arrays(X[tr], names[tr], feature_names=["sl", "sw", "pl", "pw"],
                      label_name="species")
+    return ds, X, names, te
+
+
+@pytest.fixture(scope="module")
+def iris_fit(tmp_path_factory):
+    ds, X, names, te = _iris_split()
     hold = from_arrays(X[te], names[te], feature_names=["sl", "sw", "pl", "pw"],
                        label_name="species")
     out = solver.train(ds, probabilities=True, calibration_seed=2, kkt_tol=1e-4, holdout=hold,
@@ -154,3 +158,40 @@ def test_saturated_pair_values_still_give_probabilities(iris_fit):
     P = pc.probabilities(V)
     assert np.max(np.abs(P.sum(axis=1) - 1)) <= 1e-12 and np.all((P > 0) & (P < 1))
     assert np.argmax(P[0]) == 2 and np.argmax(P[1]) == 0
+
+
+def test_verify_rerun_reproduces_every_pair_calibration_bitwise(iris_fit):
+    out, _, _ = iris_fit
+    res = solver.verify(out.parent.run_id, store=out.store, rerun=_iris_split()[0])
+    cal = res.calibration
+    assert cal["agreement"] == "bitwise" and res.ok
+    assert [r["pair"] for r in cal["pairs"]] == [list(m.key) for m in out.parent.members]
+    assert all(r["identical"]["cv_values"] and r["identical"]["A"] for r in cal["pairs"])
+    assert cal["seed"] == 2 and cal["max_cv_value_difference"] == 0.0
+
+
+def test_parent_report_shows_the_multiclass_probability_evidence(iris_fit, tmp_path):
+    import json
+
+    out, _, _ = iris_fit
+    paths = solver.report(out.parent.run_id, store=out.store, out_dir=tmp_path / "r",
+                          formats=("json", "html", "pdf"))
+    d = json.loads(paths["json"].read_text())
+    (sec,) = [r["task_section"] for r in d["runs"] if r.get("task_section")]
+    held = out.parent.attachments["calibration"]["holdout"]
+    facts = sec["facts"]
+    assert facts["Brier score (multi-class)"] == held["brier_score"]
+    assert facts["log-loss"] == held["log_loss"]
+    assert facts["rows where the most probable class differs from the voted class"] == \
+        held["disagreements"]
+    assert "method 2 of Wu, Lin & Weng" in facts["probability method"]
+    pair_table = next(t for t in sec["tables"] if t["columns"][:2] == ["pair", "positive"])
+    assert [r[3] for r in pair_table["rows"]] == [p["A"] for p in
+                                                  out.parent.attachments["calibration"]["pairs"]]
+    bins = next(t for t in sec["tables"] if t["columns"][0] == "top-probability bin")
+    assert sum(r[1] for r in bins["rows"]) == 40
+    assert any("Reliability of the top class probability" in f["title"]
+               for f in d["runs"][0]["figures"])
+    # the pair shown in full keeps its own binary calibration section
+    assert d["runs"][0]["calibration"]["facts"]["fold seed"] == 2
+    assert "Reliability of the top class probability" in paths["html"].read_text()

@@ -3,9 +3,12 @@
 from __future__ import annotations
 
 import warnings
+from pathlib import Path
 
 import numpy as np
 import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 from sklearn.datasets import load_breast_cancer
 
 from solver.audit import audit_kernel
@@ -163,3 +166,41 @@ def test_drift_is_found_when_the_stored_certificate_is_stale():
     f = next(f for f in d.findings if f.code == "numerical_drift")
     assert f.evidence["gradient_difference_lower_bound"] == pytest.approx(0.5, rel=1e-6)
     assert "numerical_drift" not in diagnose(rec).codes
+
+
+@settings(derandomize=True, max_examples=60, deadline=None,
+          suppress_health_check=[HealthCheck.too_slow])
+@given(st.integers(3, 400), st.integers(1, 5), st.integers(0, 2**31 - 1))
+def test_phases_partition_the_run_for_any_series(rows, step, seed):
+    """Property: the phases are contiguous, in order, and cover iterations 1..last exactly
+    (sampled traces too: rows every ``step`` iterations)."""
+    g = np.random.default_rng(seed)
+    it = np.arange(1, rows + 1) * step
+    viol = np.exp(g.normal(size=rows).cumsum() * 0.3)
+    obj = -np.abs(g.normal(size=rows)).cumsum()
+    ph, _, _ = _series.phases(it, viol, obj, kkt_tol=1e-3)
+    assert ph and ph[0].first == 1 and ph[-1].last == it[-1]
+    assert [p.name for p in ph] == sorted((p.name for p in ph),
+                                         key=["fast_decrease", "plateau", "final_tail"].index)
+    for a, b in zip(ph, ph[1:], strict=False):
+        assert b.first == a.last + 1
+    assert sum(p.iterations for p in ph) == it[-1]
+
+
+def test_cli_diagnose_of_a_trained_trace_off_run(tmp_path, capsys):
+    from solver.cli import main
+
+    store = tmp_path / "s"
+    data = Path(__file__).resolve().parents[1] / "solver" / "data" / "tablet_coating.csv"
+    assert main(["train", str(data), "--label", "lab_decision",
+                 "--C", "1000", "--iteration-limit", "200", "--trace", "off", "--store",
+                 str(store), "--quiet", "--json"]) == 3
+    import json
+
+    run = json.loads(capsys.readouterr().out)["run_id"]
+    assert main(["diagnose", run, "--store", str(store), "--json"]) == 0
+    d = json.loads(capsys.readouterr().out)
+    assert d["trace_level"] == "off" and d["phases"] == []
+    assert {"stall", "cycling", "long_plateau", "objective_increase"} == set(d["skipped"])
+    assert d["findings"][0]["code"] == "not_converged"
+    assert "not a validation sign-off" in d["caution"]

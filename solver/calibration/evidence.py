@@ -4,13 +4,15 @@ expected calibration error, and the rows where probability and decision value di
 from __future__ import annotations
 
 import math
+from collections.abc import Mapping
 from typing import Any
 
 import numpy as np
 
 from ..errors import InvalidInputError
 
-__all__ = ["calibration_evidence", "multiclass_evidence", "N_BINS", "LOG_CLIP"]
+__all__ = ["calibration_evidence", "multiclass_evidence", "multiclass_report_part", "N_BINS",
+           "LOG_CLIP"]
 
 #: Reliability bins: equal width over [0, 1] of P(positive), ten bins (common practice).
 N_BINS = 10
@@ -145,3 +147,58 @@ def multiclass_evidence(P: np.ndarray, truth: np.ndarray, voted: np.ndarray, *,
             "log_loss": f"-mean of log P(true class), P clipped below at {LOG_CLIP:g}",
         },
     }
+
+
+def multiclass_report_part(att: Mapping[str, Any] | None) -> dict[str, Any] | None:
+    """Plain-data facts, tables and figures about a multi-class model's probabilities, from
+    its parent's ``calibration`` attachment (None without one), for the task's report
+    section: the coupling method, every pair's sigmoid, and on held-out rows the Brier
+    score, log-loss, ECE with its binning, the top-class reliability bins and figure, and
+    the rows whose most probable class differs from the voted class."""
+    if not att:
+        return None
+    facts: list[tuple[str, Any]] = [
+        ("probabilities", att.get("status")), ("probability message", att.get("message")),
+        ("probability method", att.get("coupling"))]
+    pairs = att.get("pairs") or []
+    tables = [{"columns": ["pair", "positive", "sigmoid status", "A", "B", "folds", "seed",
+                           "Newton steps", "gradient norm"],
+               "rows": [(" vs ".join(p["pair"]), p["positive"], p.get("status"), p.get("A"),
+                         p.get("B"), p.get("n_folds"), p.get("seed"), p.get("newton_steps"),
+                         p.get("gradient_norm")) for p in pairs],
+               "note": "Every pair's Platt sigmoid P(positive | f) = 1 / (1 + exp(A f + B)), "
+                       "fitted on that pair's cross-validated decision values."}]
+    figures: list[dict[str, Any]] = []
+    ev = att.get("holdout")
+    if not ev:
+        facts.append(("probability evidence", "not available: no held-out data were scored; "
+                      "each pair's page gives its evidence on cross-validated values"))
+        return {"facts": facts, "tables": tables, "figures": figures}
+    facts += [("probability evidence on", f"held-out rows ({ev.get('source') or 'given data'})"),
+              ("rows", ev["rows"]), ("Brier score (multi-class)", ev["brier_score"]),
+              ("log-loss", ev["log_loss"]),
+              ("expected calibration error (top class)", ev["expected_calibration_error"]),
+              ("binning", ev["binning"]),
+              ("rows where the most probable class differs from the voted class",
+               ev["disagreements"]),
+              ("why they can differ", ev["disagreement_note"])]
+    bins = ev["bins"]
+    tables.append({"columns": ["top-probability bin", "rows", "mean top probability",
+                               "share most probable = true"],
+                   "rows": [(f"{b['low']:.1f}–{b['high']:.1f}", b["rows"],
+                             b["mean_probability"], b["observed_frequency"]) for b in bins],
+                   "note": f"Reliability bins: {ev['binning']}."})
+    occupied = [b for b in bins if b["rows"]]
+    figures.append({
+        "key": "probability_reliability", "kind": "reliability",
+        "title": "Reliability of the top class probability",
+        "caption": (f"Share of held-out rows whose most probable class is the true class "
+                    f"against the mean top probability in each bin ({ev['binning']}); the "
+                    "diagonal is perfect calibration; the bars give the rows in each bin."),
+        "data": {"low": [b["low"] for b in bins], "high": [b["high"] for b in bins],
+                 "rows": [b["rows"] for b in bins],
+                 "mean": [b["mean_probability"] for b in occupied],
+                 "observed": [b["observed_frequency"] for b in occupied],
+                 "occupied_rows": [b["rows"] for b in occupied],
+                 "ylabel": "share correct", "xlabel": "top class probability"}})
+    return {"facts": facts, "tables": tables, "figures": figures}

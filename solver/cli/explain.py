@@ -13,7 +13,6 @@ from ._shared import (
     add_command,
     cell,
     emit_json,
-    kv_lines,
     num,
     positive_int,
     print_rows,
@@ -57,13 +56,13 @@ def cmd_explain(args: argparse.Namespace) -> int:
     if args.point is not None and args.query is not None:
         raise solver.InvalidInputError("give either --point or --query, not both")
     if args.leave_one_out:
-        loo = solver.leave_one_out(args.run, store=args.store, progress=progress(args))
+        loo = solver.leave_one_out(args.run, store=args.store, progress=progress(args),
+                                   keep=not args.no_keep)
         d = loo.summary() if hasattr(loo, "summary") else to_dict(loo)
         if args.json:
             emit_json(d, sys.stdout)
         else:
-            print(f"leave-one-out for run {args.run}:")
-            print("\n".join(kv_lines(d)))
+            _print_loo(d, args.run)
         return EXIT_OK
     points: Any = None
     if args.point is not None:
@@ -81,7 +80,9 @@ def cmd_explain(args: argparse.Namespace) -> int:
         if args.json:
             emit_json(cols, sys.stdout)
         elif not args.out:
-            _print_columns(cols)
+            traced = getattr(res, "trace_level", "full") is not None
+            _print_columns(cols, None if traced else solver.vocabulary.not_traced(
+                getattr(res, "solver", None), None))
         return EXIT_OK
     d = res.to_dict() if hasattr(res, "to_dict") else to_dict(res)
     if args.json:
@@ -115,11 +116,43 @@ def _print_parent_breakdown(d: Mapping[str, Any], run: str) -> None:
                   f"({p['remainder_share'][q]:.1%})")
 
 
-def _print_columns(cols: Mapping[str, list[Any]]) -> None:
+def _print_columns(cols: Mapping[str, list[Any]], placeholder: str | None) -> None:
+    """The per-point table with the vocabulary's labels; untraced columns say why."""
+    import solver
+
+    voc = solver.vocabulary
     names = [c for c in cols if c != "reason"] + (["reason"] if "reason" in cols else [])
     n = len(next(iter(cols.values()), []))
-    rows = [names] + [[cell(cols[c][i]) for c in names] for i in range(n)]
+
+    def show(c: str, v: Any) -> str:
+        if placeholder is not None and c in voc.TRACE_COLUMNS:
+            return placeholder
+        return cell(v)
+
+    rows = [list(voc.labels(names, voc.POINT_COLUMNS))]
+    rows += [[show(c, cols[c][i]) for c in names] for i in range(n)]
     print_rows(rows, indent="")
+
+
+def _print_loo(d: Mapping[str, Any], run: str) -> None:
+    import solver
+
+    voc = solver.vocabulary
+    print(f"leave-one-out for run {run}:")
+    rows = []
+    for k, v in d.items():
+        if k == "kept_as" or isinstance(v, Mapping):
+            continue
+        if isinstance(v, (list, tuple)):
+            shown = f"[{len(v)} rows]" if len(v) > 8 else (", ".join(map(str, v)) or "none")
+        else:
+            shown = cell(v)
+        rows.append([voc.label(k, voc.LEAVE_ONE_OUT), shown, voc.meaning(k, voc.LEAVE_ONE_OUT)])
+    print_rows(rows, indent="  ")
+    if d.get("kept_as"):
+        print(f"stored as child record {d['kept_as']} of run {run} (the report shows it)")
+    else:
+        print("not stored (--no-keep)")
 
 
 def _print_breakdown(d: Mapping[str, Any], run: str) -> None:
@@ -155,6 +188,9 @@ def register(sub: Any) -> None:
     p.add_argument("--out", metavar="DIR", default=None,
                    help="write the per-point table as CSV and Parquet into DIR")
     p.add_argument("--leave-one-out", action="store_true",
-                   help="exact leave-one-out error and its bounds")
+                   help="exact leave-one-out error and its bounds, stored with the run "
+                        "as a child record")
+    p.add_argument("--no-keep", action="store_true",
+                   help="with --leave-one-out: print the figures without storing them")
     p.set_defaults(func=cmd_explain)
 

@@ -70,7 +70,13 @@ def cmd_verify(args: argparse.Namespace) -> int:
             for note in repro.get("notes") or ():
                 print(f"  note: {note}")
         cal = res.calibration
-        if cal is not None:
+        if cal is not None and "pairs" in cal:
+            print(f"re-run: probability calibration of every pair {cal['agreement']} "
+                  f"({cal['n_folds']} folds, seed {cal['seed']})")
+            for r in cal["pairs"]:
+                print(f"  pair {' vs '.join(r['pair'])}: {r['agreement']} (A "
+                      f"{num(r['A'][1], '.10g')}, B {num(r['B'][1], '.10g')})")
+        elif cal is not None:
             print(f"re-run: probability calibration {cal['agreement']} ({cal['n_folds']} folds, "
                   f"seed {cal['seed']}; A {num(cal['A'][0], '.10g')} vs "
                   f"{num(cal['A'][1], '.10g')}, B {num(cal['B'][0], '.10g')} vs "

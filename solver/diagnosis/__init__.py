@@ -131,7 +131,8 @@ def diagnose(record: RunRecord) -> Diagnosis:
         why = ("the run was stored without trace rows (trace level off)" if tr is not None
                else "the run has no trace")
         if tr is not None and tr.n_rows > 0:
-            why = f"the {tr.solver} trace has no per-iteration violation column"
+            why = (f"the {tr.solver} trace has no per-iteration violation column (these "
+                   "checks read SMO traces)")
         for code, (_, need) in FINDING_CODES.items():
             if need in ("trace", "full"):
                 skipped[code] = f"needs the trace: {why}"

@@ -40,6 +40,8 @@ class Table:
     columns: tuple[str, ...]
     rows: tuple[tuple[Any, ...], ...]
     note: str = ""
+    #: what the renderers print for a None cell ("" → the usual dash); the JSON keeps null
+    blank: str = ""
 
 
 @dataclass(frozen=True, eq=False)
@@ -102,6 +104,9 @@ class RunContent:
     flags: tuple[Flag, ...]
     series: Mapping[str, Mapping[str, list[float]]] = field(default_factory=dict)
     data_facts: Mapping[str, Any] = field(default_factory=dict)
+    #: leave-one-out scalars by key (:data:`solver.vocabulary.LEAVE_ONE_OUT`), with
+    #: ``kept_as`` / ``kept_digest`` when they come from a child record; {} when absent
+    loo_facts: Mapping[str, Any] = field(default_factory=dict)
     #: probability calibration section (:mod:`._calibration`), None without probabilities
     calibration: Any = None
     task_section: TaskSection | None = None

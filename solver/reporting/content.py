@@ -97,7 +97,7 @@ def _run_content(rec: RunRecord, label: str, holdout: Mapping | None) -> RunCont
         sel = (np.bincount(np.asarray(tr.columns["i"], np.int64), minlength=rec.problem.n)
                + np.bincount(np.asarray(tr.columns["j"], np.int64), minlength=rec.problem.n))
     infl, infl_note = _influential(rec, sel)
-    loo_table, loo_fig, loo_note = _loo(rec, label)
+    loo_table, loo_fig, loo_note, loo_facts = _loo(rec, label)
     hold = _as_mapping(holdout) if holdout is not None else _as_mapping(att.get("holdout"))
     confusion = _confusion(hold, rec.problem.labels) if hold else None
     try:
@@ -135,6 +135,7 @@ def _run_content(rec: RunRecord, label: str, holdout: Mapping | None) -> RunCont
         series=series, data_facts=data_facts, task_section=section, task_note=section_note,
         calibration=calibration_content(_as_mapping(att.get("calibration")), label),
         diagnosis=diag, diagnosis_note=diag_note, diagnosis_skipped=diag_skipped,
+        loo_facts=loo_facts,
     )
 
 

@@ -418,14 +418,14 @@ def _draw_reliability(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
                     color=_c("muted"))
     ax.set_xlim(0, 1)
     ax.set_ylim(-0.02, 1.02)
-    ax.set_ylabel(plain_text(f"share {d['positive']}", 30))
+    ax.set_ylabel(plain_text(d.get("ylabel") or f"share {d['positive']}", 30))
     _legend_above(ax, ax.get_legend_handles_labels()[0])
     low, high = np.asarray(d["low"]), np.asarray(d["high"])
     bars.bar(low, d["rows"], width=high - low, align="edge", color=_c("tint_neg"),
              edgecolor=_c("tide"), linewidth=0.5)
     bars.set_ylabel("rows")
     bars.yaxis.set_major_formatter(FuncFormatter(_count))
-    bars.set_xlabel(plain_text(f"predicted P({d['positive']})", 40))
+    bars.set_xlabel(plain_text(d.get("xlabel") or f"predicted P({d['positive']})", 40))
 
 
 def _draw_sigmoid(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:

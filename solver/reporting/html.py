@@ -14,6 +14,7 @@ from collections.abc import Mapping, Sequence
 from importlib import resources
 from typing import Any
 
+from ..vocabulary import heading
 from .content import AGREE_VERDICTS, LOOSE_VERDICTS, Flag, ReportContent, RunContent, Table
 from .figures import figure_svg
 
@@ -23,11 +24,6 @@ _CSP = ("default-src 'none'; style-src 'unsafe-inline'; img-src data:; base-uri 
         "form-action 'none'")
 #: Held-out keys shown as the confusion table rather than as plain values.
 HOLDOUT_TABLE_KEYS = ("confusion_matrix", "confusion", "matrix", "labels")
-#: Short column headings for the per-point table.
-_HEADS = {"row_id": "row", "alpha": "α", "alpha_ratio": "α / u", "margin": "y·f(x)",
-          "kkt_residual": "KKT residual", "times_selected": "selected",
-          "first_nonzero_iteration": "first α > 0", "last_change_iteration": "last change",
-          "decision_value": "f(x)"}
 _POWER = re.compile(r"×10\^(-?[0-9]+)")
 _SEVERITY_MARK = {"stop": "■", "caution": "▲", "note": "●"}
 _SEVERITY_WORD = {"stop": "stop", "caution": "caution", "note": "note"}
@@ -94,10 +90,11 @@ class _Doc:
         """Render ``t``; a column named ``detail`` becomes a full-width line under each row."""
         d = t.columns.index(detail) if detail in t.columns else None
         cols = [c for k, c in enumerate(t.columns) if k != d]
-        head = "".join(f'<th scope="col">{esc(_HEADS.get(c, c))}</th>' for c in cols)
+        head = "".join(f'<th scope="col">{esc(heading(c))}</th>' for c in cols)
         body = []
         for row in t.rows:
-            cells = "".join(f'<td class="{_cell_class(v)}">{_num_html(v)}</td>'
+            cells = "".join(f'<td class="{_cell_class(v)}">'
+                            f'{esc(t.blank) if v is None and t.blank else _num_html(v)}</td>'
                             for k, v in enumerate(row) if k != d)
             if d is None:
                 body.append(f"<tr>{cells}</tr>")

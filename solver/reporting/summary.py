@@ -54,8 +54,10 @@ def _run(r: RunContent) -> dict[str, Any]:
         "categories_source": r.categories_source,
         "influential": (None if r.influential is None else
                         {"columns": list(r.influential.columns),
-                         "rows": [list(row) for row in r.influential.rows]}),
+                         "rows": [list(row) for row in r.influential.rows],
+                         "order": r.influential.note, "null_means": r.influential.blank or None}),
         "holdout": None if r.holdout is None else dict(r.holdout),
+        "leave_one_out": None if not r.loo_facts else dict(r.loo_facts),
         "calibration": None if r.calibration is None else r.calibration.to_dict(),
         "series": {k: dict(v) for k, v in r.series.items()},
         "figures": [{"key": f.key, "title": f.title, "caption": f.caption}

@@ -256,13 +256,21 @@ class MultiClassTask(Task):
                                    f"{hold['balanced_accuracy']:.4f}"})
             facts += [("held-out accuracy", hold["accuracy"]),
                       ("held-out balanced accuracy", hold["balanced_accuracy"])]
+        figures: list[dict[str, Any]] = []
+        from ..calibration.evidence import multiclass_report_part
+
+        probs = multiclass_report_part((parent.attachments or {}).get("calibration"))
+        if probs is not None:  # trained with probabilities: coupling, pair sigmoids, evidence
+            facts += probs["facts"]
+            tables += probs["tables"]
+            figures += probs["figures"]
         return {
             "title": f"One-vs-one model over {len(info['classes'])} classes",
             "intro": (f"Multi-class model {parent.run_id}: {len(rows)} pair runs, each a "
                       "complete binary run on the rows of its two classes, tied together by "
                       "this parent record (verify checks every pair). The pages below show "
                       "one pair in full; the table lists every pair."),
-            "facts": facts, "tables": tables, "figures": [], "flags": flags,
+            "facts": facts, "tables": tables, "figures": figures, "flags": flags,
         }
 
     def export_mapping(self, parent: Any, members: Sequence[Any]) -> Any:
