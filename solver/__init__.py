@@ -42,6 +42,9 @@ _EXPORTS: dict[str, str] = {
     "store_listing": "api",
     "clean_store": "api",
     "new_signing_keys": "api",
+    # studies (solver.studies)
+    "study": "studies",
+    "StudyOutcome": "studies",
     # convergence on hard problems (solver.resolve, solver.diagnosis, solver.hard)
     "diagnose": "resolve",
     "what_if": "resolve",

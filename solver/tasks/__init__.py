@@ -31,6 +31,7 @@ TASKS: dict[str, str] = {
     "multiclass": "solver.tasks.multiclass:TASK",
     "regression": "solver.tasks.regression:TASK",
     "one-class": "solver.tasks.one_class:TASK",
+    "study": "solver.studies.task:TASK",
 }
 
 
