@@ -213,11 +213,12 @@ def cmd_demo(args: argparse.Namespace) -> int:
             "runs": tr.summary(),
             "reports": {k: str(v) for k, v in res.reports.items()},
             "explanations": {k: str(v) for k, v in res.explanation_files.items()},
-            "multiclass": None if res.grades is None else {
-                "data_files": [str(p) for p in res.grade_files],
-                "model": res.grades.summary(),
-                "reports": {k: str(v) for k, v in res.grade_reports.items()}},
             "seconds": res.seconds,
+            "parts": {name: {"title": part.title,
+                             "data_files": [str(f) for f in part.data_files],
+                             "runs": part.train.summary(),
+                             "reports": {k: str(v) for k, v in part.reports.items()}}
+                      for name, part in res.parts.items()},
             "caution": solver.caution_line(prefix=False),
         }, sys.stdout)
     else:
@@ -229,16 +230,19 @@ def cmd_demo(args: argparse.Namespace) -> int:
         print("audit report:")
         for k, v in res.reports.items():
             print(f"  {k:7s} {v}")
-        if res.grades is not None:
-            print(f"\nmulti-class: the same batches graded release / rework / reject "
-                  f"(invented): {res.grade_files[0]}")
-            _print_parent(res.grades)
-            print("multi-class audit report:")
-            for k, v in res.grade_reports.items():
+        for part in res.parts.values():
+            print(f"\n{part.title}")
+            print(f"data (invented): {part.data_files[0]}  (held out: {part.data_files[1]})")
+            if part.train.parent is not None:
+                _print_parent(part.train)
+            else:
+                _print_outcome(part.train)
+            print("audit report:")
+            for k, v in part.reports.items():
                 print(f"  {k:7s} {v}")
         print(f"demo finished in {res.seconds:.1f} s; store: {res.store}")
         print(solver.caution_line())
-    ok = tr.converged and (res.grades is None or res.grades.converged)
+    ok = tr.converged and all(part.train.converged for part in res.parts.values())
     return EXIT_OK if ok else EXIT_NOT_CONVERGED
 
 
