@@ -63,15 +63,15 @@ def overlay_series(records: Sequence[RunRecord], labels: Sequence[str] | None = 
         it = np.asarray(cols["iteration"], dtype=np.float64)
         if "violation" in cols:
             v = np.minimum.accumulate(np.asarray(cols["violation"], dtype=np.float64))
-            measure, obj = "best maximal violation so far", np.asarray(cols["objective"])
+            measure, values = "best maximal violation so far", np.asarray(cols["objective"])
         else:
             v = np.asarray(cols.get("relative_gap", np.full(it.size, np.nan)), np.float64)
-            measure, obj = "relative gap (interior point)", np.asarray(cols["primal_objective"])
+            measure, values = "relative gap (interior point)", np.asarray(cols["primal_objective"])
         extra = res.extra or {}
         loop = float(extra.get("solve_seconds", res.seconds))
         setup = float(extra.get("setup_seconds", 0.0) or 0.0)
         rate = loop / max(int(res.iterations), 1)
-        gap = (np.asarray(obj, dtype=np.float64) - best) / scale
+        gap = (np.asarray(values, dtype=np.float64) - best) / scale
         runs.append({"label": label, "run_id": rec.run_id, "solver": res.solver,
                      "status": res.status.label, "measure": measure,
                      "iterations": it[k].tolist(), "seconds": (setup + it[k] * rate).tolist(),
