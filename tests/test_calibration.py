@@ -342,3 +342,26 @@ def test_cv_fits_carry_the_sample_weights():
     plain = calibrate(binary_classification(Z, y, kernel=kernel, C=1.0), seed=4, kkt_tol=1e-5)
     assert np.array_equal(plain.folds, cal.folds)  # same folds, so only the weights differ
     assert not np.allclose(plain.cv_values, cal.cv_values)
+
+
+def test_degenerate_fit_end_to_end_is_reported_not_made_up(tmp_path):
+    # 50 vs 10 rows of pure noise with a tiny C: every cross-validated value has the
+    # majority's sign, so there is nothing to fit a sigmoid to
+    import solver
+    from solver.data import from_arrays
+    from solver.reporting import build_report_content
+
+    rng = np.random.default_rng(0)
+    ds = from_arrays(rng.normal(size=(60, 3)), np.array(["ok"] * 50 + ["bad"] * 10),
+                     feature_names=["a", "b", "c"], label_name="q")
+    out = solver.train(ds, C=0.01, probabilities=True, store=tmp_path, trace="off",
+                       explain=False)
+    att = out.records[0].attachments["calibration"]
+    assert att["status"] == "degenerate_values"
+    assert att["A"] is None or np.isnan(att["A"])
+    assert any("this run gives no probabilities" in w for w in out.warnings)
+    with pytest.raises(InvalidInputError, match="gives no probabilities: its sigmoid fit "
+                                                "failed \\(degenerate_values\\)"):
+        solver.apply(out.run_ids[0], ds, store=tmp_path, probabilities=True)
+    cal = build_report_content([out.records[0]]).runs[0].calibration
+    assert cal.evidence is None and any("No probabilities" in n for n in cal.notes)

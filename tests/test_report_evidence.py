@@ -247,3 +247,33 @@ def test_in_memory_records_say_they_were_not_verified(work: dict) -> None:
     rc = build_report_content([rec]).runs[0]
     assert rc.evidence_facts["verified"] is None
     assert "not done" in dict(rc.evidence)["verification while writing"]
+
+
+# --------------------------------------------------------------------------- item 6
+
+
+def test_demo_settings_do_not_flag_themselves(work: dict) -> None:
+    """Item 6: the demo's own fit (invented tablet-coating data, DEMO_SETTINGS) raises no
+    "C may be too small" flag, though most of its support vectors sit at C: the revised
+    rule (stated with BOUNDED_SHARE) counts only correctly classified points held at C
+    inside the margin; a far too small C is still flagged."""
+    from solver.demo import DEMO_LABEL, DEMO_SETTINGS, shipped_data
+    from solver.reporting import build_report_content
+
+    train, _ = shipped_data()
+    st = RunStore(work["store"])
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        demo = api.train(str(train), label=DEMO_LABEL, store=str(work["store"]), solver="smo",
+                         **DEMO_SETTINGS)
+        small = api.train(str(train), label=DEMO_LABEL, store=str(work["store"]), solver="smo",
+                          kernel="rbf", C=0.05, kkt_tol=1e-5)
+    rec = st.load(demo.run_ids[0])
+    cert = rec.result.certificate
+    assert cert.n_bounded / cert.n_support >= 0.5  # the old rule fired here (69 of 103)
+    content = build_report_content([rec])
+    assert "many_bounded" not in {f.code for f in content.flags}
+    flagged = build_report_content([st.load(small.run_ids[0])]).flags
+    msg = next(f.message for f in flagged if f.code == "many_bounded")
+    assert "correctly classified points held at the upper bound C inside the margin" in msg
+    assert "our heuristic" in msg
