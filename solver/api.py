@@ -15,7 +15,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -32,6 +32,7 @@ from ._workflow import (
     _fingerprint,
     _load_data,
     _plain,
+    _stored_holdout,
     open_store,
 )
 from .data import Dataset
@@ -112,8 +113,10 @@ def compare(
     """Solver-agreement :class:`~solver.agreement.Comparison` of two runs.
 
     ``holdout`` (data file or Dataset, label column optional) adds decision-value agreement
-    on held-out rows.  Runs of different problems raise
-    :class:`~solver.errors.ProblemMismatchError` unless ``allow_mismatch``.
+    on held-out rows; without it the held-out rows stored with run A (else run B) at
+    training are used, and a note says which, or that none are stored and how to add them.
+    Runs of different problems raise :class:`~solver.errors.ProblemMismatchError` unless
+    ``allow_mismatch``.
     """
     from .agreement import compare_runs
 
@@ -131,11 +134,15 @@ def compare(
         return compare_parents(pa, pb, holdout_X=hX, tolerances=tolerances,
                                allow_mismatch=allow_mismatch)
     a, b = load_run(run_a, store=store), load_run(run_b, store=store)
-    hX = None
+    hX, note = None, None
     if holdout is not None:
         hold = _load_data(holdout, _split_column(a.data), "held-out data")
         hX = _align(hold, a.data.get("feature_names") or [], "held-out data")
-    return compare_runs(a, b, holdout_X=hX, tolerances=tolerances, allow_mismatch=allow_mismatch)
+    else:
+        hX, note = _stored_holdout(a, b)
+    comp = compare_runs(a, b, holdout_X=hX, tolerances=tolerances,
+                        allow_mismatch=allow_mismatch)
+    return comp if note is None else replace(comp, notes=(*comp.notes, note))
 
 
 def _parse_point(point: Mapping[str, float] | Sequence[float] | np.ndarray,
@@ -700,7 +707,8 @@ def report(
         return _parent_report(st, pr, out_dir, formats, notes, stem, pair)
     if pair is not None:
         raise InvalidInputError("--pair applies to the report of a multi-class model")
-    recs = [_with_kept_leave_one_out(st, load_run(r, store=st)) for r in ids]
+    loaded = [_load_with_evidence(st, r) for r in ids]
+    recs = [_with_kept_leave_one_out(st, rec) for rec, _ in loaded]
     comparison = None
     if len(recs) == 2:
         comparison = _stored_comparison(recs[1], recs[0])
@@ -711,9 +719,25 @@ def report(
     out = Path(out_dir) if out_dir is not None else Path(st.root) / "reports" / str(recs[0].run_id)
     st.check_output_path(out, "report folder")
     paths = write_report(recs, out, formats=tuple(formats), comparison=comparison, notes=notes,
-                         stem=stem)
+                         stem=stem, evidence=[ev for _, ev in loaded])
     _log_report(st, recs, paths)
     return paths
+
+
+def _load_with_evidence(st: Any, run: str | RunRecord) -> tuple[RunRecord, dict[str, Any] | None]:
+    """A run for the report and what its verification found while the report is written
+    (None for a record passed in memory: nothing on disk to check)."""
+    if isinstance(run, RunRecord):
+        return run, None
+    if not isinstance(run, str) or not run:
+        raise InvalidInputError(f"a run id must be a non-empty string, got {run!r}")
+    from .store.format import utc_stamp
+
+    rec, v = st.load_verified(run)
+    return rec, {"manifest_sha256": v.manifest_sha256, "verified": bool(v.ok),
+                 "checked_at": utc_stamp(), "files_checked": int(v.files_checked),
+                 "parent_chain": list(v.chain), "signer": v.signer, "trusted": bool(v.trusted),
+                 "problems": list(v.problems), "notes": list(v.notes)}
 
 
 def _with_kept_leave_one_out(st: Any, rec: RunRecord) -> RunRecord:

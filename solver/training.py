@@ -16,12 +16,14 @@ from typing import TYPE_CHECKING, Any
 import numpy as np
 
 from ._workflow import (
+    HOLDOUT_ROWS,
     KERNEL_CHOICES,
     SOLVER_CHOICES,
     ProgressFn,
     _align,
     _confusion,
     _fingerprint,
+    _holdout_rows,
     _load_data,
     open_store,
 )
@@ -551,6 +553,7 @@ def _fit_member(job: _MemberJob, progress: ProgressFn | None = None) -> _MemberF
         model = model_from_solution(problem, result, std)
         if job.hold is not None and job.hold.X.shape[0] > 0:
             attachments["holdout"] = _holdout_facts(model, job.hold, ds.feature_names)
+            attachments[HOLDOUT_ROWS] = _holdout_rows(job.hold, ds.feature_names)
         if method == "smo" and skipped:
             attachments["challenger"] = {"ran": False, "reason": skipped}
         if job.probabilities and not records:

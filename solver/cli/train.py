@@ -212,7 +212,10 @@ def cmd_demo(args: argparse.Namespace) -> int:
         for part in res.parts.values():
             print(f"\n{part.title}")
             print(f"data (invented): {part.data_files[0]}  (held out: {part.data_files[1]})")
-            _print_outcome(part.train)
+            if part.train.parent is not None:
+                _print_parent(part.train)
+            else:
+                _print_outcome(part.train)
             print("audit report:")
             for k, v in part.reports.items():
                 print(f"  {k:7s} {v}")

@@ -39,6 +39,11 @@ class RegressionTask(Task):
     categories = tuple(REGRESSION_CATEGORIES)
     measures = ("rmse", "mae", "r2", "tube_coverage", "max_abs_residual")
 
+    def decision_rule(self, record: Any) -> list[tuple[str, str]]:
+        """f(x) itself is the prediction (no sign rule, no labels)."""
+        return [("decision value", "f(x) = Σ (α⁺ᵢ − α⁻ᵢ)K(xᵢ, x) + b on the standardised "
+                 "features"), ("prediction", "f(x) itself, in the target's units")]
+
     def report_section(self, parent: Any, members: Sequence[Any]) -> dict[str, Any] | None:
         """Fit, residual and support-vector facts of one stored ε-regression run."""
         from ..explanation import kind_point_table
