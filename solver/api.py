@@ -707,7 +707,8 @@ def report(
         return _parent_report(st, pr, out_dir, formats, notes, stem, pair)
     if pair is not None:
         raise InvalidInputError("--pair applies to the report of a multi-class model")
-    recs = [_with_kept_leave_one_out(st, load_run(r, store=st)) for r in ids]
+    loaded = [_load_with_evidence(st, r) for r in ids]
+    recs = [_with_kept_leave_one_out(st, rec) for rec, _ in loaded]
     comparison = None
     if len(recs) == 2:
         comparison = _stored_comparison(recs[1], recs[0])
@@ -718,9 +719,25 @@ def report(
     out = Path(out_dir) if out_dir is not None else Path(st.root) / "reports" / str(recs[0].run_id)
     st.check_output_path(out, "report folder")
     paths = write_report(recs, out, formats=tuple(formats), comparison=comparison, notes=notes,
-                         stem=stem)
+                         stem=stem, evidence=[ev for _, ev in loaded])
     _log_report(st, recs, paths)
     return paths
+
+
+def _load_with_evidence(st: Any, run: str | RunRecord) -> tuple[RunRecord, dict[str, Any] | None]:
+    """A run for the report and what its verification found while the report is written
+    (None for a record passed in memory: nothing on disk to check)."""
+    if isinstance(run, RunRecord):
+        return run, None
+    if not isinstance(run, str) or not run:
+        raise InvalidInputError(f"a run id must be a non-empty string, got {run!r}")
+    from .store.format import utc_stamp
+
+    rec, v = st.load_verified(run)
+    return rec, {"manifest_sha256": v.manifest_sha256, "verified": bool(v.ok),
+                 "checked_at": utc_stamp(), "files_checked": int(v.files_checked),
+                 "parent_chain": list(v.chain), "signer": v.signer, "trusted": bool(v.trusted),
+                 "problems": list(v.problems), "notes": list(v.notes)}
 
 
 def _with_kept_leave_one_out(st: Any, rec: RunRecord) -> RunRecord:
