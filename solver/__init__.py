@@ -52,6 +52,7 @@ _EXPORTS: dict[str, str] = {
     "parse_change": "resolve",
     "resume": "resolve",
     "ResumeOutcome": "resolve",
+    "overlay": "resolve",
     "Diagnosis": "diagnosis",
     "hard_problem": "hard",
     # model exchange (solver.exchange)
@@ -89,6 +90,7 @@ _EXPORTS: dict[str, str] = {
     "ParentRecord": "run",
     "Member": "run",
     "get_task": "tasks",
+    "task_for_kind": "tasks",
     "RunStore": "store",
     "Status": "status",
     "to_plain": "plaindata",

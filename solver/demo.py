@@ -17,6 +17,11 @@ column                     unit    meaning
 ``lab_decision``           —       ``release`` or ``reject`` (the label)
 =========================  ======  ============================================
 
+A further file grades the same batches three ways in ``coating_grade``: ``release`` as
+above, ``rework`` for a batch just outside the window (or inside it but up to 4.2 %
+moist) with its hardness in range — it could be re-coated or re-dried — and ``reject``
+for the rest.  The demo trains it one-vs-one, so that a multi-class report is there too.
+
 The (invented) laboratory releases a batch when its *true* thickness and dissolution lie
 inside a curved, banana-shaped window (thicker coats dissolve more slowly, and the
 acceptable dissolution band bends with thickness), its moisture is at most 3.6 % and its
@@ -59,6 +64,8 @@ __all__ = [
     "DemoPart",
     "coating_process_tables",
     "write_task_data",
+    "GRADE_LABEL",
+    "tablet_coating_grade_tables",
     "tablet_coating_tables",
     "write_table",
     "write_demo_data",
@@ -71,6 +78,9 @@ DEMO_SEED = 20240611
 #: Feature columns, then the label column, in file order.
 DEMO_COLUMNS = ("coating_thickness_um", "dissolution_30min_pct", "hardness_n", "moisture_pct")
 DEMO_LABEL = "lab_decision"
+#: Label column of the three-way grade files (multi-class part): release / rework / reject.
+GRADE_LABEL = "coating_grade"
+GRADE_FILE, GRADE_HOLDOUT_FILE = "tablet_coating_grades.csv", "tablet_coating_grades_holdout.csv"
 #: Rows in the training and held-out files.
 N_TRAIN, N_HOLDOUT = 360, 120
 #: Decimal places each column is recorded with (instrument resolution).
@@ -102,8 +112,10 @@ RELEASED_FILE, NEW_BATCHES_FILE = "released_batches.csv", "new_batches.csv"
 UNUSUAL_COLUMN = "unusual"
 
 
-def _batches(rng: np.random.Generator, n: int) -> dict[str, np.ndarray]:
-    """``n`` invented batches: recorded features and the lab's decision."""
+def _batches(rng: np.random.Generator, n: int, *, grades: bool = False
+             ) -> dict[str, np.ndarray]:
+    """``n`` invented batches: recorded features and the lab's decision (with ``grades``:
+    the three-way grade :data:`GRADE_LABEL` instead, from the same draws)."""
     thick = np.clip(rng.normal(86.0, 13.0, n), 45.0, 135.0)
     hard = np.clip(rng.normal(118.0, 16.0, n), 60.0, 180.0)
     # thicker coats and harder cores dissolve more slowly
@@ -122,7 +134,17 @@ def _batches(rng: np.random.Generator, n: int) -> dict[str, np.ndarray]:
         "moisture_pct": np.maximum(0.05, moist + rng.normal(0.0, 0.12, n)),
     }
     out = {k: np.round(v, _DECIMALS[k]) for k, v in recorded.items()}
-    out[DEMO_LABEL] = np.where(release, "release", "reject")
+    if not grades:
+        out[DEMO_LABEL] = np.where(release, "release", "reject")
+        return out
+    # the invented grading: a batch just outside the window (radius ≤ 1.45), or inside
+    # it but slightly too moist (≤ 4.2 %), can be re-coated or re-dried: rework; hardness
+    # out of range, or further out, is scrapped: reject
+    radius = np.sqrt(((thick - 86.0) / 24.0) ** 2 + ((diss - centre) / 8.5) ** 2)
+    hard_ok = (hard >= 85.0) & (hard <= 160.0)
+    rework = ~release & hard_ok & (((radius <= 1.45) & (moist <= 3.6))
+                                   | ((radius <= 1.0) & (moist <= 4.2)))
+    out[GRADE_LABEL] = np.where(release, "release", np.where(rework, "rework", "reject"))
     return out
 
 
@@ -180,8 +202,24 @@ def _write_columns(table: Mapping[str, np.ndarray], path: Path,
     return path
 
 
+def tablet_coating_grade_tables(
+    *, seed: int = DEMO_SEED, n_train: int = N_TRAIN, n_holdout: int = N_HOLDOUT
+) -> tuple[dict[str, np.ndarray], dict[str, np.ndarray]]:
+    """The same invented batches as :func:`tablet_coating_tables` (same seed, same
+    feature values) graded three ways in :data:`GRADE_LABEL`: ``release`` (as there),
+    ``rework`` (just outside the window, or a little too moist) or ``reject``."""
+    rng = np.random.default_rng(seed)
+    both = _batches(rng, n_train + n_holdout, grades=True)
+    return ({k: v[:n_train] for k, v in both.items()},
+            {k: v[n_train:] for k, v in both.items()})
+
+
 def write_task_data(directory: str | Path) -> dict[str, tuple[Path, Path]]:
-    """Write the regression and one-class demo files; task name → (training, held-out).
+    """Write the multi-class, regression and one-class demo files; task name →
+    (training, held-out).
+
+    ``multiclass``: the tablet-coating batches graded release / rework / reject
+    (:func:`tablet_coating_grade_tables`);
 
     ``regression``: the coating-process tables; ``one-class``: the released batches of the
     tablet-coating training table (features only) and its held-out batches with the
@@ -194,7 +232,10 @@ def write_task_data(directory: str | Path) -> dict[str, tuple[Path, Path]]:
     released = train[DEMO_LABEL] == "release"
     new = {c: hold[c] for c in DEMO_COLUMNS}
     new[UNUSUAL_COLUMN] = np.where(hold[DEMO_LABEL] == "reject", "yes", "no")
+    g_train, g_hold = tablet_coating_grade_tables()
     return {
+        "multiclass": (_write_columns(g_train, directory / GRADE_FILE, _DECIMALS),
+                       _write_columns(g_hold, directory / GRADE_HOLDOUT_FILE, _DECIMALS)),
         "regression": (_write_columns(p_train, directory / PROCESS_FILE, _PROCESS_DECIMALS),
                        _write_columns(p_hold, directory / PROCESS_HOLDOUT_FILE,
                                       _PROCESS_DECIMALS)),
@@ -273,10 +314,13 @@ class DemoPart:
 
 def _task_parts(api: Any, run_store: Any, root: Path, quiet: bool,
                 progress: Any) -> dict[str, DemoPart]:
-    """Train and report the regression (coating thickness) and one-class (unusual
-    batches) parts of the demo."""
+    """Train and report the multi-class (release / rework / reject, one-vs-one),
+    regression (coating thickness) and one-class (unusual batches) parts of the demo."""
     files = write_task_data(root / "demo-data")
     plan = {
+        "multiclass": ("multi-class: the same batches graded release / rework / reject, "
+                       "one-vs-one", dict(label=GRADE_LABEL, **DEMO_SETTINGS),
+                       "tablet-coating-grades-audit"),
         "regression": ("ε-regression: coating thickness predicted from the pan settings",
                        dict(task="regression", target=PROCESS_TARGET, **REGRESSION_SETTINGS),
                        "coating-thickness-regression"),
@@ -311,7 +355,9 @@ def run_demo(
     Generates the data into ``<store>/demo-data/``, trains SMO with the QP challenger
     (held-out file scored), exports the primary run's per-point table (CSV and Parquet)
     and writes the audit report (HTML, PDF, JSON) into ``<store>/reports/``; then the
-    further parts (:attr:`DemoOutcome.parts`): ε-regression of the coating thickness and a
+    further parts (:attr:`DemoOutcome.parts`): the same batches graded release / rework /
+    reject and trained one-vs-one (a multi-class parent over three pair runs, its report
+    with the multi-class section), ε-regression of the coating thickness and a
     one-class model of the released batches, each with its challenger and its report.
     ``store`` is a directory, a :class:`~solver.store.RunStore` or None (``$KKTRACE_STORE``
     or ``./traces``).

@@ -102,7 +102,18 @@ def test_demo_command_json_lists_runs_explanations_and_reports(tmp_path, capsys)
     # the further parts: ε-regression of the coating thickness and the one-class model of
     # released batches, each with its challenger, stored, verified and reported
     parts = out["parts"]
-    assert set(parts) == {"regression", "one-class"}
+    assert set(parts) == {"multiclass", "regression", "one-class"}
+    # the multi-class part: the same batches graded release / rework / reject, one-vs-one
+    mc = parts.pop("multiclass")
+    model = mc["runs"]
+    assert model["record"] == "parent" and model["pairs"] == 3 and model["converged"]
+    assert model["verdict"] in ("agree", "agree_within_tolerances")
+    assert store.verify(model["run_id"]).ok
+    mc_summary = json.loads(Path(mc["reports"]["json"]).read_text(encoding="utf-8"))
+    sections = [r["task_section"] for r in mc_summary["runs"] if r.get("task_section")]
+    assert sections and sections[0]["task"] == "multiclass"
+    assert len(sections[0]["tables"][0]["rows"]) == 3  # one row per pair
+    assert Path(mc["reports"]["html"]).is_file() and Path(mc["reports"]["pdf"]).is_file()
     for name, part in parts.items():
         runs = part["runs"]
         assert runs["converged"], (name, runs)
@@ -152,3 +163,14 @@ def test_task_tables_are_seeded_and_written_as_documented(tmp_path):
     assert new.X.shape == (demo.N_HOLDOUT, 4)
     np.testing.assert_array_equal(np.asarray(new.labels) == "yes",
                                   hold[demo.DEMO_LABEL] == "reject")
+
+
+def test_grade_tables_share_the_batches_and_have_three_grades():
+    """The multi-class demo file: the same feature values and releases, three grades."""
+    a, a_hold = demo.tablet_coating_tables()
+    g, g_hold = demo.tablet_coating_grade_tables()
+    for c in demo.DEMO_COLUMNS:
+        assert np.array_equal(a[c], g[c]) and np.array_equal(a_hold[c], g_hold[c])
+    assert np.array_equal(a[demo.DEMO_LABEL] == "release", g[demo.GRADE_LABEL] == "release")
+    values, counts = np.unique(g[demo.GRADE_LABEL], return_counts=True)
+    assert values.tolist() == ["reject", "release", "rework"] and counts.min() >= 50
