@@ -78,7 +78,13 @@ def load_run(run: str | RunRecord, *, store: Any = None) -> RunRecord:
         return run
     if not isinstance(run, str) or not run:
         raise InvalidInputError(f"a run id must be a non-empty string, got {run!r}")
-    return open_store(store).load(run)
+    st = open_store(store)
+    if st.is_parent(run):
+        raise InvalidInputError(
+            f"run {run} is a multi-class model over pair runs; this step works on one pair: "
+            "name it with --pair A,B (Python: pair='A,B') or give the pair's run id "
+            "(kktrace runs lists them under the model)")
+    return st.load(run)
 
 
 def _parent_runs(run: Any, store: Any) -> Any:
@@ -234,7 +240,7 @@ def _query_rows(points: Any, data: Mapping[str, Any]) -> np.ndarray:
 
 def leave_one_out(
     run: str | RunRecord, *, store: Any = None, progress: ProgressFn | None = None,
-    keep: bool = False,
+    keep: bool = False, pair: str | Sequence[str] | None = None,
 ) -> Any:
     """Exact leave-one-out error (support-vector refits) with the Vapnik and Joachims bounds.
 
@@ -242,13 +248,22 @@ def leave_one_out(
     :class:`~solver.explanation.KindLeaveOneOut`); needs a converged run.  With ``keep``
     the figures are stored as the attachment ``leave_one_out`` of a child record of the
     run (the run's parts plus the attachment, parent link with the run's manifest
-    digest, so it is verified with the run on every load); its id is ``kept_as``.
+    digest, so it is verified with the run on every load); its id is ``kept_as``.  For a
+    multi-class model ``pair`` (``"a,b"``) names the pair run.
     """
     import dataclasses
 
     from .explanation import leave_one_out as _loo
 
-    rec = load_run(run, store=store)
+    pr = _parent_runs(run, store) if pair is not None else None
+    if pair is not None and pr is None:
+        raise InvalidInputError(f"--pair applies to multi-class models; run {run} is one run")
+    if pr is not None:
+        from .parent_workflow import pair_key
+
+        rec = pr.member(pair_key(pair))
+    else:
+        rec = load_run(run, store=store)
     if keep and rec.run_id is None:
         raise InvalidInputError("leave-one-out figures can be kept only for a stored run")
     if rec.problem.labels is None:  # ε-regression / one-class: KindLeaveOneOut

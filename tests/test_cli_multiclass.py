@@ -153,6 +153,12 @@ def test_replay_names_the_pair_and_verify_reruns_every_pair(model) -> None:
               "--store", model["store"])
     assert proc.returncode == 0, proc.stderr
     assert proc.stdout.startswith("pair rework vs scrap (run ")
+    proc = kk("explain", model["pid"], "--leave-one-out", "--no-keep", "--store",
+              model["store"])
+    assert proc.returncode == 1 and "--pair" in proc.stderr
+    loo = ok_json(kk("explain", model["pid"], "--leave-one-out", "--no-keep", "--pair",
+                     "pass,scrap", "--store", model["store"], "--json"))
+    assert loo["n"] == 40  # the rows of pass and scrap
     d = ok_json(kk("verify", model["pid"], "--store", model["store"], "--rerun",
                    model["train"], "--json"))
     assert d["ok"] and d["reproduction"]["agreement"] == "bitwise"
