@@ -314,3 +314,27 @@ def test_unreachable_scheduler_is_one_line_within_the_timeout_and_writes_nothing
     assert "nothing was written" in line[0]
     assert took < 3 + 25  # the stated timeout plus interpreter and import start-up
     assert not (tmp_path / "st").exists() or not any((tmp_path / "st").iterdir())
+
+
+def test_study_report_has_both_maps_the_rule_the_failures_and_the_cautions(tmp_path):
+    ds = _demo(150)
+    # an iteration limit of 40 makes the large-C fits stop early: listed and mapped
+    out = study(ds, C=[0.3, 30.0], gamma=[0.1, 1.0], folds=3, iteration_limit=40,
+                scheduler="sequential", store=tmp_path / "st")
+    assert out.not_converged
+    paths = solver.study_report(out.study_id, store=tmp_path / "st", out_dir=tmp_path / "rep")
+    text = paths["html"].read_text(encoding="utf-8")
+    assert "<svg" in text and "convergence-difficulty map" in text
+    assert "one-standard-error rule" in text and "7.10" in text
+    assert out.choice["one_se"] in text
+    for r in out.not_converged:
+        assert r["run_id"] in text
+    assert "not a validation sign-off" in text
+    data = json.loads(paths["json"].read_text(encoding="utf-8"))
+    assert len(data["not_converged"]) == len(out.not_converged)
+    assert any("did not converge" in n for n in data["difficulty_notes"])
+    m = data["maps"]
+    assert len(m["maps"]["mean_iterations"]) == 2 and len(m["maps"]["mean_iterations"][0]) == 2
+    assert paths["pdf"].read_bytes()[:5] == b"%PDF-"
+    with pytest.raises(InvalidInputError, match="formats"):
+        solver.study_report(out.study_id, store=tmp_path / "st", formats=["docx"])

@@ -67,6 +67,10 @@ def cmd_study(args: argparse.Namespace) -> int:
     finally:
         ticker.close()
     s = out.summary()
+    paths = {}
+    if args.report is not None:
+        paths = solver.study_report(out.study_id, store=args.store, out_dir=args.report)
+        s["report"] = {k: str(v) for k, v in paths.items()}
     code = EXIT_OK if not out.not_converged else EXIT_NOT_CONVERGED
     if args.json:
         emit_json(s, sys.stdout)
@@ -98,6 +102,8 @@ def cmd_study(args: argparse.Namespace) -> int:
         print(f"note: {w}")
     if out.table_path is not None:
         print(f"results table: {out.table_path}")
+    for fmt, path in paths.items():
+        print(f"report {fmt}: {path}")
     print(f"caution: {s['caution']}")
     return code
 
@@ -134,4 +140,6 @@ def register(sub: Any) -> None:
                    help="seconds to wait for --scheduler before giving up (default 10)")
     p.add_argument("--table", metavar="FILE", default=None,
                    help="also write the results table to this Parquet file")
+    p.add_argument("--report", metavar="DIR", default=None,
+                   help="also write the study report (HTML, PDF, JSON) to this folder")
     p.set_defaults(func=cmd_study)
