@@ -355,7 +355,7 @@ def test_stability_evidence_for_the_chosen_cell(tmp_path):
         assert v["support_jaccard"] == 1.0 and v["flips_held_out"] == 0
         assert v["max_drift_train"] <= 1e-2
     # bootstrap resamples change the training set: their support vectors differ
-    assert s["by_kind"]["bootstrap"]["min_support_jaccard"] < 1.0
+    assert s["by_kind"]["bootstrap"]["lowest_sv_jaccard"] < 1.0
     assert s["noise_levels"] == [0.01, 0.05]
     st = solver.RunStore(tmp_path / "st")
     parent = st.load_parent(out.study_id)

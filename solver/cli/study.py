@@ -102,7 +102,7 @@ def cmd_study(args: argparse.Namespace) -> int:
         print(f"stability of {st['cell']}: {st['permutation_verdict']}")
         for k, v in st["by_kind"].items():
             print(f"  {k:<12} {v['refits']} refits, min support-vector Jaccard "
-                  f"{v['min_support_jaccard']:.3f}, max drift {num(v['max_drift_train'])} "
+                  f"{v['lowest_sv_jaccard']:.3f}, max drift {num(v['max_drift_train'])} "
                   f"(train) {num(v['max_drift_held_out'])} (held out), flips "
                   f"{v['max_flips_held_out']}, bias spread {num(v['bias_spread'])}")
     for r in out.not_converged:

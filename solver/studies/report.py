@@ -205,7 +205,7 @@ def _html(c: Mapping[str, Any], svg: str) -> str:
     stab = ""
     if st:
         krows = "".join(
-            f"<tr><td>{e(k)}</td><td>{v['refits']}</td><td>{v['min_support_jaccard']:.3f}</td>"
+            f"<tr><td>{e(k)}</td><td>{v['refits']}</td><td>{v['lowest_sv_jaccard']:.3f}</td>"
             f"<td>{v['max_drift_train']:.3g}</td><td>{v['max_drift_held_out']:.3g}</td>"
             f"<td>{v['max_flips_held_out']}</td><td>{v['bias_spread']:.3g}</td></tr>"
             for k, v in st["by_kind"].items())
@@ -301,7 +301,7 @@ def _text_page(c: Mapping[str, Any]) -> Any:
                ["", f"stability of {c['stability']['cell']}: "
                 + c["stability"]["permutation_verdict"],
                 *[f"  {k}: {v['refits']} refits, min SV Jaccard "
-                  f"{v['min_support_jaccard']:.3f}, max drift train "
+                  f"{v['lowest_sv_jaccard']:.3f}, max drift train "
                   f"{v['max_drift_train']:.3g}, held out {v['max_drift_held_out']:.3g}, "
                   f"bias spread {v['bias_spread']:.3g}"
                   for k, v in c["stability"]["by_kind"].items()]]),

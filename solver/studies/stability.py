@@ -177,7 +177,7 @@ def summarise(fits: Sequence[VariantFit], run_ids: Sequence[str]) -> dict[str, A
             continue
         biases = [b0] + [v["bias"] for v in vs]
         kinds[kind] = {
-            "refits": len(vs), "min_support_jaccard": min(v["support_jaccard"] for v in vs),
+            "refits": len(vs), "lowest_sv_jaccard": min(v["support_jaccard"] for v in vs),
             "max_drift_train": max(v["max_drift_train"] for v in vs),
             "max_drift_held_out": max(v["max_drift_held_out"] for v in vs),
             "max_flips_held_out": max(v["flips_held_out"] for v in vs),
