@@ -211,6 +211,22 @@ def test_bad_row_weight_names_the_row(tmp_path, weight, message) -> None:
               "--store", tmp_path / "store")
     assert proc.returncode == 1 and message in proc.stderr, proc.stderr
     assert len(proc.stderr.strip().splitlines()) == 1
+    store = tmp_path / "store"
+    assert not store.exists() or not any(p.name[0].isdigit() for p in store.iterdir())
+
+
+def test_weight_column_that_is_the_label_is_refused(tmp_path) -> None:
+    path = tmp_path / "w.csv"
+    with path.open("w", newline="") as fh:
+        w = csv.writer(fh)
+        w.writerow(["x", "grade"])
+        for k in range(6):
+            w.writerow([k, "abc"[k % 3]])
+    proc = kk("train", path, "--label", "grade", "--weight-column", "grade",
+              "--store", tmp_path / "store")
+    assert proc.returncode == 1, proc.stderr
+    assert "weight column 'grade' is also the label column" in proc.stderr
+    assert len(proc.stderr.strip().splitlines()) == 1
 
 
 def test_verify_of_the_parent_names_the_damaged_or_missing_pair(model, tmp_path) -> None:
