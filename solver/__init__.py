@@ -90,6 +90,7 @@ _EXPORTS: dict[str, str] = {
     "ParentRecord": "run",
     "Member": "run",
     "get_task": "tasks",
+    "task_for_kind": "tasks",
     "RunStore": "store",
     "Status": "status",
     "to_plain": "plaindata",

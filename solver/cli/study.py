@@ -85,6 +85,13 @@ def cmd_study(args: argparse.Namespace) -> int:
     ch = out.choice
     print(f"best cell by mean {ch['score']}: {ch['best']} ({num(ch['best_mean'], '.4f')})")
     print(f"chosen cell: {ch['one_se']} ({num(ch['one_se_mean'], '.4f')}) by the {ch['rule']}")
+    wc = out.warm_check
+    if wc is not None:
+        same = "all the same" if wc["all_same_certificate"] else "NOT all the same"
+        print(f"warm starts: {wc['warm_iterations']} iterations against "
+              f"{wc['cold_iterations']} cold on the same {len(wc['cells'])} cells (fold 0), "
+              f"ratio {num(wc['ratio_cold_to_warm'], '.3g')}; certificates {same} "
+              f"(dual objectives within {num(wc['objective_tolerance'])} relative)")
     for r in out.not_converged:
         print(f"NOT CONVERGED: {r['cell']} fold {r['fold']} run {r['run_id']} ({r['status']})")
     for w in out.warnings:

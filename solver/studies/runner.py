@@ -52,6 +52,8 @@ class StudyOutcome:
     reused : fits found already stored and verified (not refitted).
     fitted : fits made by this call.  execution : where the fits ran.
     not_converged : rows of fits that did not converge.  table_path : Parquet file or None.
+    warm_check : with warm starts, the iterations of warm fits against the same cells
+        started cold (fold 0) and whether their certificates agree; else None.
     """
 
     study_id: str
@@ -65,6 +67,7 @@ class StudyOutcome:
     store: Path
     table_path: Path | None = None
     warnings: tuple[str, ...] = field(default=())
+    warm_check: dict[str, Any] | None = None
 
     @property
     def not_converged(self) -> list[dict[str, Any]]:
@@ -82,6 +85,7 @@ class StudyOutcome:
             "store": str(self.store),
             "table": None if self.table_path is None else str(self.table_path),
             "warnings": list(self.warnings),
+            "warm_start_check": self.warm_check,
             "caution": CAUTION,
         }
 
@@ -278,20 +282,31 @@ def _study(
             jobs.append(FitJob(task=task.name, fold=k, cells=tuple(g), keys=keys,
                                warm=bool(warm_start), options=opts, command=command,
                                extra_data={"study_fold": k}))
+    # warm starts: the same cells started cold on a sample (the first fold of every chain)
+    checks: list[FitJob] = []
+    if warm_start:
+        for (k, _, _), cells in chains.items():
+            if k != 0:
+                continue
+            for c in cells[1:]:
+                checks.append(FitJob(task=task.name, fold=k, cells=(c,),
+                                     keys=(fit_key(base, c, k, False),), warm=False,
+                                     options=opts, command=command,
+                                     extra_data={"study_fold": k}))
     train_fps = [_fingerprint(_subset(ds, np.flatnonzero(fold_of != k)))
                  for k in range(int(folds))]
     known = _existing(run_store, train_fps)
     notes: list[str] = [f"data: {w}" for w in ds.warnings]
     stored: dict[str, tuple[str, RunRecord]] = {}
-    for key in {k for j in jobs for k in j.keys}:
+    for key in {k for j in [*jobs, *checks] for k in j.keys}:
         if key in known:
             try:
                 stored[key] = (known[key], run_store.load(known[key], verify=True))
             except Exception as exc:  # noqa: BLE001 - a damaged earlier fit is fitted again
                 notes.append(f"run {known[key]} was not reused ({exc}); fitted again")
     reused = len(stored)
-    todo = [j for j in jobs if not all(k in stored for k in j.keys)]
-    total = len(grid.cells()) * int(folds)
+    todo = [j for j in [*jobs, *checks] if not all(k in stored for k in j.keys)]
+    total = len(grid.cells()) * int(folds) + len(checks)
     t0 = time.monotonic()
     state = {"done": reused, "fitted": 0}
 
@@ -335,26 +350,80 @@ def _study(
     members = [p[1] for p in pairs]
     cells = aggregate(rows)
     choice = choose(cells, score_name)
+    warm_check = None
+    if checks:
+        warm_check, check_members = _warm_check(checks, jobs, stored, opts)
+        members += check_members
     for r in rows:
         if not r["converged"]:
             notes.append(f"fit {r['cell']} fold {r['fold']} (run {r['run_id']}) did not "
                          f"converge: {r['status']}")
     parent = _parent(task.name, grid, ds, fold_of, folds, seed, opts, warm_start, execution,
-                     rows, cells, choice, members, command)
+                     rows, cells, choice, members, command, warm_check)
     sid = run_store.save_parent(parent)
     if out_table is not None:
         write_parquet(rows, cells, out_table)
     return StudyOutcome(study_id=sid, grid=grid, rows=tuple(rows), cells=tuple(cells),
                         choice=choice, reused=reused, fitted=state["fitted"],
                         execution=execution, store=Path(run_store.root),
-                        table_path=out_table, warnings=tuple(notes))
+                        table_path=out_table, warnings=tuple(notes), warm_check=warm_check)
+
+
+#: warm and cold fits of a cell agree when both meet the certificate and their dual
+#: objectives differ by at most this much relative to max(1, |objective|)
+WARM_OBJECTIVE_TOL = 1e-3
+
+
+def _warm_check(checks: Sequence[FitJob], jobs: Sequence[FitJob],
+                stored: Mapping[str, tuple[str, RunRecord]], opts: Mapping[str, Any]
+                ) -> tuple[dict[str, Any], list[Member]]:
+    """Iterations of warm-started fits against the same cells started cold, and whether
+    both give the same certificate (see :data:`WARM_OBJECTIVE_TOL`)."""
+    warm_of = {}
+    for j in jobs:
+        for c, key in zip(j.cells, j.keys, strict=True):
+            warm_of[(j.fold, c)] = stored[key]
+    cells, members = [], []
+    for j in checks:
+        c = j.cells[0]
+        crid, cold = stored[j.keys[0]]
+        wrid, warm = warm_of[(j.fold, c)]
+        members.append(Member(run_id=crid, role="cold_check", key=(c.label, f"fold={j.fold}")))
+        dw = float(warm.result.certificate.dual_objective)
+        dc = float(cold.result.certificate.dual_objective)
+        rel = abs(dw - dc) / max(1.0, abs(dc))
+        hw, hc = warm.attachments["holdout"], cold.attachments["holdout"]
+        cells.append({
+            "cell": c.label, "fold": j.fold, "warm_run_id": wrid, "cold_run_id": crid,
+            "warm_iterations": int(warm.result.iterations),
+            "cold_iterations": int(cold.result.iterations),
+            "both_converged": bool(warm.result.success and cold.result.success),
+            "dual_objective_relative_difference": rel,
+            "accuracy_difference": abs(float(hw["accuracy"]) - float(hc["accuracy"])),
+            "same_certificate": bool(warm.result.success and cold.result.success
+                                     and rel <= WARM_OBJECTIVE_TOL),
+        })
+    w = sum(x["warm_iterations"] for x in cells)
+    cd = sum(x["cold_iterations"] for x in cells)
+    # the first C of every sampled chain starts cold either way: counted in both path totals
+    first = sum(int(stored[j.keys[0]][1].result.iterations) for j in jobs
+                if j.fold == 0 and j.warm)
+    return {"sample": "every cell but the first C of each gamma/degree chain, fold 0",
+            "cells": cells, "warm_iterations": w, "cold_iterations": cd,
+            "ratio_cold_to_warm": cd / w if w else None,
+            "first_cell_iterations": first,
+            "path_ratio_cold_to_warm": (cd + first) / (w + first) if w + first else None,
+            "all_same_certificate": all(x["same_certificate"] for x in cells),
+            "objective_tolerance": WARM_OBJECTIVE_TOL, "kkt_tol": float(opts["kkt_tol"]),
+            "rule": "same certificate: both fits converged (violation <= kkt_tol) and their "
+            "dual objectives differ by <= 1e-3 relative to max(1, |objective|)"}, members
 
 
 def _parent(task: str, grid: Grid, ds: Any, fold_of: np.ndarray, k: int, seed: int,
             opts: Mapping[str, Any], warm: bool, execution: Mapping[str, Any],
             rows: Sequence[Mapping[str, Any]], cells: Sequence[Mapping[str, Any]],
-            choice: Mapping[str, Any], members: Sequence[Member], command: Any
-            ) -> ParentRecord:
+            choice: Mapping[str, Any], members: Sequence[Member], command: Any,
+            warm_check: Mapping[str, Any] | None = None) -> ParentRecord:
     import io
 
     import pyarrow as pa  # noqa: F401 - the table is written with pyarrow
@@ -395,7 +464,8 @@ def _parent(task: str, grid: Grid, ds: Any, fold_of: np.ndarray, k: int, seed: i
             "n_rows": int(ds.X.shape[0])}
     attachments = {
         "folds": {"fold": [int(v) for v in fold_of.tolist()], "k": int(k), "seed": int(seed)},
-        "results": {"fits": list(rows), "cells": list(cells), "choice": dict(choice)},
+        "results": {"fits": list(rows), "cells": list(cells), "choice": dict(choice),
+                    "warm_start_check": None if warm_check is None else dict(warm_check)},
         "results_table": buf.getvalue(),
     }
     return ParentRecord(task="study", members=tuple(members), info=info, data=data,
