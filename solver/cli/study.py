@@ -61,6 +61,7 @@ def cmd_study(args: argparse.Namespace) -> int:
             degree=args.degree, offset=args.offset, folds=args.folds, seed=args.seed,
             kkt_tol=args.kkt_tol, iteration_limit=args.iteration_limit, trace=args.trace,
             standardise=not args.no_standardise, warm_start=args.warm_start,
+            stability=args.stability,
             scheduler=args.scheduler, workers=args.workers,
             connect_timeout=args.connect_timeout, store=args.store, table=args.table,
             progress=ticker)
@@ -96,6 +97,14 @@ def cmd_study(args: argparse.Namespace) -> int:
               f"{wc['cold_iterations']} cold on the same {len(wc['cells'])} cells (fold 0), "
               f"ratio {num(wc['ratio_cold_to_warm'], '.3g')}; certificates {same} "
               f"(dual objectives within {num(wc['objective_tolerance'])} relative)")
+    st = out.stability
+    if st is not None:
+        print(f"stability of {st['cell']}: {st['permutation_verdict']}")
+        for k, v in st["by_kind"].items():
+            print(f"  {k:<12} {v['refits']} refits, min support-vector Jaccard "
+                  f"{v['lowest_sv_jaccard']:.3f}, max drift {num(v['max_drift_train'])} "
+                  f"(train) {num(v['max_drift_held_out'])} (held out), flips "
+                  f"{v['max_flips_held_out']}, bias spread {num(v['bias_spread'])}")
     for r in out.not_converged:
         print(f"NOT CONVERGED: {r['cell']} fold {r['fold']} run {r['run_id']} ({r['status']})")
     for w in out.warnings:
@@ -131,6 +140,9 @@ def register(sub: Any) -> None:
     p.add_argument("--no-standardise", action="store_true", help="do not standardise")
     p.add_argument("--warm-start", action="store_true",
                    help="start each C from the previous C's solution (same fold and gamma)")
+    p.add_argument("--stability", action="store_true",
+                   help="also refit the chosen cell under row-order permutations, bootstrap "
+                   "resamples and feature noise")
     p.add_argument("--scheduler", metavar="ADDRESS", default=None,
                    help="Dask scheduler address (default $KKTRACE_SCHEDULER, else a local "
                    "cluster); 'sequential' runs in this process")

@@ -175,6 +175,7 @@ def _content(parent: Any) -> dict[str, Any]:
         "warm_start_check": res.get("warm_start_check"),
         "not_converged": not_conv, "difficulty_notes": difficulty_notes(res),
         "maps": study_maps(res), "members": len(parent.members), "cautions": list(CAUTIONS),
+        "stability": parent.attachments.get("stability"),
     }
 
 
@@ -200,6 +201,20 @@ def _html(c: Mapping[str, Any], svg: str) -> str:
         f"{w['ratio_cold_to_warm']:.2f}; whole path {w['path_ratio_cold_to_warm']:.2f}. "
         f"Certificates {'all the same' if w['all_same_certificate'] else 'NOT all the same'}"
         f" ({e(w['rule'])}).</p>")
+    st = c.get("stability")
+    stab = ""
+    if st:
+        krows = "".join(
+            f"<tr><td>{e(k)}</td><td>{v['refits']}</td><td>{v['lowest_sv_jaccard']:.3f}</td>"
+            f"<td>{v['max_drift_train']:.3g}</td><td>{v['max_drift_held_out']:.3g}</td>"
+            f"<td>{v['max_flips_held_out']}</td><td>{v['bias_spread']:.3g}</td></tr>"
+            for k, v in st["by_kind"].items())
+        stab = (f"<h2>Stability of {e(st['cell'])}</h2><p>{e(st['permutation_verdict'])} "
+                f"(rule: {e(st['same_optimum_rule'])}).  Held out: {e(st['held_out'])}; "
+                f"noise levels {e(str(st['noise_levels']))} of each feature's sd.</p>"
+                "<table><tr><th>refits</th><th>n</th><th>min SV Jaccard</th><th>max drift "
+                "(train)</th><th>max drift (held out)</th><th>max flips (held out)</th>"
+                f"<th>bias spread</th></tr>{krows}</table>")
     return f"""<!doctype html>
 <html lang="en"><head><meta charset="utf-8"><title>kktrace study {e(str(c['study_id']))}</title>
 <style>body{{font-family:"DejaVu Sans",sans-serif;background:{PALETTE['paper']};
@@ -219,6 +234,7 @@ rows, fingerprint <code>{e(c['data']['fingerprint'][:16])}</code>...).</p>
 <h2>Score map and convergence-difficulty map</h2>{svg}
 <h2>Where the optimisation was hard</h2><ul>{notes}</ul>
 <h2>Fits that did not converge</h2><ul>{nc}</ul>{warm}
+{stab}
 <h2>Cells</h2><table><tr><th>cell</th><th>mean accuracy</th><th>std error</th>
 <th>mean iterations</th><th>not converged</th><th>bounded share</th></tr>{rows}</table>
 <h2>Cautions</h2><ul class="caution">{cautions}</ul>
@@ -281,6 +297,14 @@ def _text_page(c: Mapping[str, Any]) -> Any:
              "", "fits that did not converge:",
              *([f"  {r['cell']} fold {r['fold']}: {r['status']} (run {r['run_id']})"
                 for r in c["not_converged"]] or ["  none"]),
+             *([] if not c.get("stability") else
+               ["", f"stability of {c['stability']['cell']}: "
+                + c["stability"]["permutation_verdict"],
+                *[f"  {k}: {v['refits']} refits, min SV Jaccard "
+                  f"{v['lowest_sv_jaccard']:.3f}, max drift train "
+                  f"{v['max_drift_train']:.3g}, held out {v['max_drift_held_out']:.3g}, "
+                  f"bias spread {v['bias_spread']:.3g}"
+                  for k, v in c["stability"]["by_kind"].items()]]),
              "", "cautions:", *[f"  {n}" for n in c["cautions"]]]
     with style():
         fig = Figure(figsize=(8.27, 11.69))
