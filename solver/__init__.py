@@ -45,6 +45,7 @@ _EXPORTS: dict[str, str] = {
     # studies (solver.studies)
     "study": "studies",
     "StudyOutcome": "studies",
+    "study_report": "studies",
     # convergence on hard problems (solver.resolve, solver.diagnosis, solver.hard)
     "diagnose": "resolve",
     "what_if": "resolve",

@@ -661,9 +661,7 @@ def _apply_kind(rec: RunRecord, data: Any, names: list[str], label: str | None) 
     """ε-regression (values = predictions, no labels) or one-class (values = signed scores,
     labels ``inlier`` / ``outlier``); with the target or known-outlier column present the
     held-out facts go into ``confusion`` (regression: RMSE, MAE, R², tube coverage)."""
-    from .measures import novelty_measures, regression_measures
-    from .problem import REGRESSION_KIND
-    from .training_kinds import known_outliers, numeric_column
+    from .tasks import task_for_kind
 
     col = label or rec.data.get("target_name") or rec.data.get("known_outlier_column")
     if isinstance(data, (str, Path)) and col is not None and not _has_column(Path(data), col):
@@ -671,13 +669,7 @@ def _apply_kind(rec: RunRecord, data: Any, names: list[str], label: str | None) 
     ds = _load_data(data, col, "data the model is applied to")
     X = _align(ds, names, "data the model is applied to")
     values = model_from_solution(rec.problem, rec.result, rec.standardiser).values(X)
-    if rec.problem.kind == REGRESSION_KIND:
-        labels = np.full(values.shape[0], None, dtype=object)
-        facts = None if ds.labels is None else regression_measures(
-            numeric_column(ds, "target"), values, epsilon=float(rec.problem.info["epsilon"]))
-    else:
-        labels = np.where(values >= 0, "inlier", "outlier").astype(object)
-        facts = novelty_measures(values, None if ds.labels is None else known_outliers(ds))
+    labels, facts = task_for_kind(rec.problem.kind).applied(rec.problem, values, ds)
     return ModelOutput(run_id=rec.run_id, values=values, labels=labels, truth=ds.labels,
                        confusion=facts, fingerprint=_fingerprint(ds), source=ds.source,
                        kind=rec.problem.kind)

@@ -29,7 +29,7 @@ from ._workflow import (
 )
 from .data import Dataset
 from .errors import InvalidInputError
-from .measures import novelty_measures, nu_property, regression_measures
+from .measures import nu_property, regression_measures
 from .model import Model, Standardiser, model_from_solution
 from .plaindata import to_plain
 from .problem import ONE_CLASS_KIND, REGRESSION_KIND, DualProblem, one_class, regression
@@ -131,14 +131,16 @@ def _load_training(data: Any, task: str, target: str | None, label: str | None,
     return ds, None
 
 
-def _held_out(kind: str, model: Model, hold: Dataset, names: list[str], epsilon: float,
-              has_column: bool) -> dict[str, Any]:
+def _held_out(problem: DualProblem, model: Model, hold: Dataset,
+              names: list[str]) -> dict[str, Any]:
+    """The task's held-out facts (:meth:`solver.tasks.Task.applied`) with the data's identity."""
+    from .tasks import task_for_kind
+
     X = _align(hold, names, "held-out data")
-    f = model.values(X)
-    if kind == REGRESSION_KIND:
-        facts = regression_measures(numeric_column(hold, "target"), f, epsilon=epsilon)
-    else:
-        facts = novelty_measures(f, known_outliers(hold) if has_column else None)
+    _, facts = task_for_kind(problem.kind).applied(problem, model.values(X), hold)
+    if facts is None:  # pragma: no cover - the held-out target is required before solving
+        raise InvalidInputError("held-out data need the target column to be scored")
+    facts = dict(facts)
     facts.update(fingerprint=_fingerprint(hold), source=hold.source)
     return facts
 
@@ -232,8 +234,7 @@ def train_kind(
             att["training_fit"] = regression_measures(t, table.columns["prediction"],
                                                       epsilon=epsilon)
         if hold is not None:
-            att["holdout"] = _held_out(kind, model, hold, list(ds.feature_names), epsilon,
-                                       hold.labels is not None)
+            att["holdout"] = _held_out(problem, model, hold, list(ds.feature_names))
             att[HOLDOUT_ROWS] = _holdout_rows(hold, ds.feature_names)
         if method == "smo" and skipped:
             att["challenger"] = {"ran": False, "reason": skipped}

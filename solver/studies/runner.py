@@ -52,6 +52,7 @@ class StudyOutcome:
     reused : fits found already stored and verified (not refitted).
     fitted : fits made by this call.  execution : where the fits ran.
     not_converged : rows of fits that did not converge.  table_path : Parquet file or None.
+    stability : with ``stability=True``, the stability evidence of the chosen cell.
     warm_check : with warm starts, the iterations of warm fits against the same cells
         started cold (fold 0) and whether their certificates agree; else None.
     """
@@ -68,6 +69,7 @@ class StudyOutcome:
     table_path: Path | None = None
     warnings: tuple[str, ...] = field(default=())
     warm_check: dict[str, Any] | None = None
+    stability: dict[str, Any] | None = None
 
     @property
     def not_converged(self) -> list[dict[str, Any]]:
@@ -86,6 +88,7 @@ class StudyOutcome:
             "table": None if self.table_path is None else str(self.table_path),
             "warnings": list(self.warnings),
             "warm_start_check": self.warm_check,
+            "stability": self.stability,
             "caution": CAUTION,
         }
 
@@ -173,11 +176,20 @@ def _versions() -> dict[str, str]:
     return out
 
 
-def study(data: Any, **options: Any) -> StudyOutcome:
+def study(
+    data: Any, *, label: str | None = None, kernel: str = "rbf",
+    C: Sequence[float] | str = (0.1, 1.0, 10.0), gamma: Sequence[float] | str | None = None,
+    degree: Sequence[int] | str | None = None, offset: float = 0.0, folds: int = 5,
+    seed: int = 0, kkt_tol: float = 1e-3, iteration_limit: int | None = None,
+    trace: str = "sampled", standardise: bool = True, warm_start: bool = False,
+    stability: bool = False, scheduler: str | None = None, workers: int | None = None,
+    connect_timeout: float = CONNECT_TIMEOUT_S, store: Any = None,
+    table: str | Path | None = None, progress: StudyProgress | None = None,
+) -> StudyOutcome:
     """Cross-validate a grid of C × γ (× degree) and store every fit and the study.
 
-    Keyword options as :func:`_study` (data and solver warnings are kept out of the
-    warnings machinery and recorded in ``outcome.warnings``, as :func:`solver.train` does).
+    Data and solver warnings are kept out of the warnings machinery and recorded in
+    ``outcome.warnings``, as :func:`solver.train` does.
 
     Parameters
     ----------
@@ -190,6 +202,8 @@ def study(data: Any, **options: Any) -> StudyOutcome:
         trace level defaults to ``sampled`` (see :mod:`solver.studies.runner`).
     warm_start : within a fold, γ and degree, start each C from the previous C's α scaled
         into the new box (:mod:`solver.studies.fits`).
+    stability : also refit the chosen cell under row-order permutations, bootstrap
+        resamples and feature noise (:mod:`solver.studies.stability`; in this process).
     scheduler : ``"local"`` (a LocalCluster, default), ``"sequential"`` (this process) or a
         Dask scheduler address; None reads ``$KKTRACE_SCHEDULER``, else ``"local"``.
     workers : worker processes of the LocalCluster (default: one per core).
@@ -207,6 +221,12 @@ def study(data: Any, **options: Any) -> StudyOutcome:
     from ..errors import ConvergenceWarning, DataWarning, StoreWarning
 
     kinds = (ConvergenceWarning, DataWarning, StoreWarning)
+    options = dict(label=label, kernel=kernel, C=C, gamma=gamma, degree=degree, offset=offset,
+                   folds=folds, seed=seed, kkt_tol=kkt_tol, iteration_limit=iteration_limit,
+                   trace=trace, standardise=standardise, warm_start=warm_start,
+                   stability=stability, scheduler=scheduler, workers=workers,
+                   connect_timeout=connect_timeout, store=store, table=table,
+                   progress=progress)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         out = _study(data, **options)
@@ -226,7 +246,7 @@ def _study(
     degree: Sequence[int] | str | None = None, offset: float = 0.0, folds: int = 5,
     seed: int = 0, kkt_tol: float = 1e-3, iteration_limit: int | None = None,
     trace: str = "sampled", standardise: bool = True, warm_start: bool = False,
-    scheduler: str | None = None, workers: int | None = None,
+    stability: bool = False, scheduler: str | None = None, workers: int | None = None,
     connect_timeout: float = CONNECT_TIMEOUT_S, store: Any = None,
     table: str | Path | None = None, progress: StudyProgress | None = None,
 ) -> StudyOutcome:
@@ -308,7 +328,7 @@ def _study(
     todo = [j for j in [*jobs, *checks] if not all(k in stored for k in j.keys)]
     total = len(grid.cells()) * int(folds) + len(checks)
     t0 = time.monotonic()
-    state = {"done": reused, "fitted": 0}
+    state: dict[str, Any] = {"done": reused, "fitted": 0}
 
     def on_done(_: int, outputs: list[Any]) -> None:
         for o in outputs:
@@ -319,8 +339,11 @@ def _study(
             state["done"] += 1
             state["fitted"] += 1
         if progress is not None:
-            el = time.monotonic() - t0
-            rate = el / state["fitted"] if state["fitted"] else None
+            now = time.monotonic()
+            el = now - t0
+            state.setdefault("first", now)  # the rate is measured after cluster start-up
+            rate = ((now - state["first"]) / (state["fitted"] - 1)
+                    if state["fitted"] > 1 else None)
             left = None if rate is None else rate * (total - state["done"])
             fails = sum(not r.result.success for _, r in stored.values())
             progress(state["done"], total, fails, el, left)
@@ -354,19 +377,47 @@ def _study(
     if checks:
         warm_check, check_members = _warm_check(checks, jobs, stored, opts)
         members += check_members
+    stab = None
+    if stability:
+        stab, stab_members = _stability(ds, fold_of, choice, cells, task.name, opts, seed,
+                                        command, run_store)
+        members += stab_members
+        if not stab["permutations_same_optimum"]:
+            notes.append(stab["permutation_verdict"])
     for r in rows:
         if not r["converged"]:
             notes.append(f"fit {r['cell']} fold {r['fold']} (run {r['run_id']}) did not "
                          f"converge: {r['status']}")
     parent = _parent(task.name, grid, ds, fold_of, folds, seed, opts, warm_start, execution,
-                     rows, cells, choice, members, command, warm_check)
+                     rows, cells, choice, members, command, warm_check, stab)
     sid = run_store.save_parent(parent)
     if out_table is not None:
         write_parquet(rows, cells, out_table)
     return StudyOutcome(study_id=sid, grid=grid, rows=tuple(rows), cells=tuple(cells),
                         choice=choice, reused=reused, fitted=state["fitted"],
                         execution=execution, store=Path(run_store.root),
-                        table_path=out_table, warnings=tuple(notes), warm_check=warm_check)
+                        table_path=out_table, warnings=tuple(notes), warm_check=warm_check,
+                        stability=stab)
+
+
+def _stability(ds: Any, fold_of: np.ndarray, choice: Mapping[str, Any],
+               cells: Sequence[Mapping[str, Any]], task: str, opts: Mapping[str, Any],
+               seed: int, command: Any, store: Any) -> tuple[dict[str, Any], list[Member]]:
+    """Refit the chosen cell's variants in this process, store them, summarise."""
+    from .grid import Cell
+    from .stability import fit_variant, stability_jobs, summarise
+
+    c = next(x for x in cells if x["cell"] == choice["one_se"])
+    cell = Cell(c["C"], c["gamma"], c["degree"])
+    fits, ids, members = [], [], []
+    for job in stability_jobs(cell, task, opts, int(seed), command=command):
+        f = fit_variant(StudyData(ds, fold_of), job)
+        rid = store.save(f.record)
+        fits.append(f)
+        ids.append(rid)
+        members.append(Member(run_id=rid, role=f"stability_{job.kind}",
+                              key=(cell.label, f"{job.kind}={job.index}")))
+    return summarise(fits, ids), members
 
 
 #: warm and cold fits of a cell agree when both meet the certificate and their dual
@@ -423,7 +474,8 @@ def _parent(task: str, grid: Grid, ds: Any, fold_of: np.ndarray, k: int, seed: i
             opts: Mapping[str, Any], warm: bool, execution: Mapping[str, Any],
             rows: Sequence[Mapping[str, Any]], cells: Sequence[Mapping[str, Any]],
             choice: Mapping[str, Any], members: Sequence[Member], command: Any,
-            warm_check: Mapping[str, Any] | None = None) -> ParentRecord:
+            warm_check: Mapping[str, Any] | None = None,
+            stab: Mapping[str, Any] | None = None) -> ParentRecord:
     import io
 
     import pyarrow as pa  # noqa: F401 - the table is written with pyarrow
@@ -468,5 +520,7 @@ def _parent(task: str, grid: Grid, ds: Any, fold_of: np.ndarray, k: int, seed: i
                     "warm_start_check": None if warm_check is None else dict(warm_check)},
         "results_table": buf.getvalue(),
     }
+    if stab is not None:
+        attachments["stability"] = dict(stab)
     return ParentRecord(task="study", members=tuple(members), info=info, data=data,
                         summary=summary, attachments=attachments, command=command)

@@ -167,6 +167,14 @@ class Task:
         (``apply``); [] adds none."""
         return []
 
+    def applied(self, problem: DualProblem, values: np.ndarray,
+                data: Any) -> tuple[np.ndarray, dict[str, Any] | None]:
+        """(labels, held-out facts) of a single-run model of this task applied to rows whose
+        (m,) decision ``values`` are given; ``data`` is the loaded
+        :class:`~solver.data.Dataset` (its split-off column, if any, in ``labels``).  Used by
+        ``apply`` and ``train --holdout`` for tasks without class labels."""
+        raise InvalidInputError(f"task {self.name!r} applies through its class labels")
+
     def output_columns(self, values: np.ndarray,
                        labels: np.ndarray) -> dict[str, list[Any]] | None:
         """Columns (name → values per row) ``apply`` shows and ``apply --out`` writes after

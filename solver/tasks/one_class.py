@@ -146,6 +146,18 @@ class OneClassTask(Task):
                        f"others: false alarms {c['flagged_unknown']}, passed {c['passed']}")
         return out
 
+    def applied(self, problem: Any, values: np.ndarray,
+                data: Any) -> tuple[np.ndarray, dict[str, Any] | None]:
+        """``inlier`` / ``outlier`` per row; share flagged, and the confusion when the rows
+        carry the known-outlier column."""
+        from ..measures import novelty_measures
+        from ..training_kinds import known_outliers
+
+        v = np.asarray(values, np.float64)
+        labels = np.where(v >= 0, "inlier", "outlier").astype(object)
+        return labels, novelty_measures(v, None if data.labels is None
+                                        else known_outliers(data))
+
     def output_columns(self, values: np.ndarray,
                        labels: np.ndarray) -> dict[str, list[Any]] | None:
         v = np.asarray(values, np.float64)

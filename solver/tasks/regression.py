@@ -122,6 +122,18 @@ class RegressionTask(Task):
     def applied_lines(self, facts: Mapping[str, Any] | None) -> list[str]:
         return [] if not facts else [_held_out_text(facts)]
 
+    def applied(self, problem: Any, values: np.ndarray,
+                data: Any) -> tuple[np.ndarray, dict[str, Any] | None]:
+        """No labels; RMSE, MAE, R², tube coverage when the rows carry the target column."""
+        from ..measures import regression_measures
+        from ..training_kinds import numeric_column
+
+        labels = np.full(np.asarray(values).shape[0], None, dtype=object)
+        if data.labels is None:
+            return labels, None
+        return labels, regression_measures(numeric_column(data, "target"), values,
+                                           epsilon=float(problem.info["epsilon"]))
+
     def output_columns(self, values: np.ndarray,
                        labels: np.ndarray) -> dict[str, list[Any]] | None:
         return {"prediction": [float(v) for v in np.asarray(values, np.float64)]}
