@@ -377,3 +377,14 @@ def test_no_raw_key_is_shown_as_a_label_and_json_keys_have_one_style(written: di
     spaced = [k for k in keys(written["summary"]) if " " in k.rsplit(".", 1)[-1]]
     assert spaced == [], spaced[:5]
     assert "tolerance −" not in written["html"]  # the tolerance is positive; the bound is −tol
+
+
+def test_runs_json_and_report_json_agree_on_types(work: dict, written: dict) -> None:
+    """Item 9: ``runs --json`` gives ``converged`` as a boolean, like the report's JSON."""
+    out = kk("runs", "--store", work["store"], "--json")
+    assert out.returncode == 0, out.stderr
+    rows = {r["run_id"]: r for r in json.loads(out.stdout)}
+    for run in written["summary"]["runs"]:
+        mine = rows[run["run_id"]]
+        assert mine["converged"] is run["termination"]["converged"] is True
+        assert mine["status"] == run["termination"]["status"]
