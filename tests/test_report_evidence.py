@@ -388,3 +388,31 @@ def test_runs_json_and_report_json_agree_on_types(work: dict, written: dict) -> 
         mine = rows[run["run_id"]]
         assert mine["converged"] is run["termination"]["converged"] is True
         assert mine["status"] == run["termination"]["status"]
+
+
+def test_pdf_has_the_htmls_section_and_figure_numbers_and_no_near_empty_page(
+        written: dict) -> None:
+    """Item 10: the PDF numbers its sections and figures as the HTML does; no page is
+    near empty; figure legends name categories in words, not by their codes."""
+    import html as _html
+    import re
+
+    page_texts = _pdf_text(written["paths"]["pdf"]).split("\f")[:-1]
+    flat = "\n".join(page_texts)
+    sections = re.findall(r'<span class="subno">([0-9.]+)</span>([^<]*)</h3>', written["html"])
+    assert len(sections) >= 20
+    for num, title in sections:
+        assert re.search(rf"(^|and ){re.escape(num)} +{re.escape(_html.unescape(title))}",
+                         flat, re.M), (num, title)
+    figs = re.findall(r'class="figno">Figure ([0-9]+)</span> <span class="figtitle">([^<]*)\.<',
+                      written["html"])
+    assert len(figs) >= 8
+    for num, title in figs:
+        assert f"Figure {num}. {_html.unescape(title)}" in flat, (num, title)
+    for k, text in enumerate(page_texts, start=1):
+        lines = [ln for ln in text.splitlines() if ln.strip()]
+        assert len(lines) >= 12, f"page {k} is near empty: {lines}"
+    svg = " ".join(re.findall(r"<svg.*?</svg>", written["html"], re.S))
+    assert "at bound, in margin" in svg and "not a support vector" in svg
+    for code in ("bounded_inside_margin", "margin_support", "non_support"):
+        assert code not in svg, code
