@@ -53,7 +53,7 @@ class _Lines:
 
     def heading(self, text: str) -> None:
         num = self.numbers.get(text)
-        self.items += [("gap", ""), ("h", f"{num}  {text}" if num else text)]
+        self.items += [("gap", ""), ("h", f"{num} {text}" if num else text)]
 
     def para(self, text: str, style_: str = "p") -> None:
         width = SANS_CHARS if style_ in ("p", "i") else CHARS
@@ -252,7 +252,7 @@ def _run_text(r: RunContent, k: int = 1) -> list[PdfPage]:
     L.kv(_termination_rows(r.termination))
     for note in r.figure_notes:
         L.para(note, "i")
-    return _paginate(f"{k}  Record of {r.label}: provenance, set-up, certificate", L)
+    return _paginate(f"{k} Record of {r.label}: provenance, set-up, certificate", L)
 
 
 def _run_support(r: RunContent, k: int = 1) -> list[PdfPage]:
@@ -302,7 +302,7 @@ def _run_support(r: RunContent, k: int = 1) -> list[PdfPage]:
     if r.decision_map is None:
         L.heading("Decision map")
         L.para(r.decision_note, "i")
-    return _paginate(f"{k}  Record of {r.label}: support vectors and outcomes", L)
+    return _paginate(f"{k} Record of {r.label}: support vectors and outcomes", L)
 
 
 def _run_calibration(r: RunContent, k: int = 1) -> list[PdfPage]:
@@ -341,7 +341,7 @@ def _challenger(c: ReportContent) -> list[PdfPage]:
         L.heading("Notes from the preparer")
         for para in c.notes.splitlines() or [""]:
             L.para(para)
-    return _paginate(f"{len(c.runs) + 1}  Challenger cross-check", L)
+    return _paginate(f"{len(c.runs) + 1} Challenger cross-check", L)
 
 
 def plan_pages(content: ReportContent) -> list[PdfPage]:
@@ -361,14 +361,14 @@ def plan_pages(content: ReportContent) -> list[PdfPage]:
                 "Path to the solution" if any(f is c for c in conv)
                 else "Decision map" if f is r.decision_map else "Points carrying the solution"
                 for f in chunk))
-            head = " and ".join(f"{numbers[t]}  {t}" for t in titles)
+            head = " and ".join(f"{numbers[t]} {t}" for t in titles)
             pages.append(PdfPage(heading=f"{head} — {r.label}", figures=chunk))
         pages += _run_support(r, k)
         pages += _run_calibration(r, k)
         if r.task_section is not None and r.task_section.figures:
             tf = list(r.task_section.figures)
             for i in range(0, len(tf), FIGS_PER_PAGE):
-                pages.append(PdfPage(heading=f"{numbers[r.task_section.title]}  "
+                pages.append(PdfPage(heading=f"{numbers[r.task_section.title]} "
                                      f"{r.task_section.title} — {r.label}",
                                      figures=tuple(tf[i:i + FIGS_PER_PAGE])))
     if content.overlay is not None:
