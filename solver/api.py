@@ -24,10 +24,11 @@ import numpy as np
 from ._workflow import (
     DEFAULT_STORE,
     KERNEL_CHOICES,
+    NO_CHOICE,
     SOLVER_CHOICES,
     STORE_ENV,
+    Columns,
     ProgressFn,
-    _align,
     _confusion,
     _fingerprint,
     _load_data,
@@ -96,11 +97,17 @@ def compare(
     holdout: Dataset | str | Path | None = None,
     tolerances: Mapping[str, float] | None = None,
     allow_mismatch: bool = False,
+    feature_columns: Sequence[str] | None = None,
+    ignore_columns: Sequence[str] | None = None,
+    delimiter: str | None = None,
 ) -> Any:
     """Solver-agreement :class:`~solver.agreement.Comparison` of two runs.
 
     ``holdout`` (data file or Dataset, label column optional) adds decision-value agreement
-    on held-out rows.  Runs of different problems raise
+    on held-out rows; its columns are matched to the run's features by name
+    (``feature_columns`` / ``ignore_columns`` / ``delimiter`` as for :func:`train`; other
+    columns are ignored with a :class:`~solver.errors.DataWarning` naming them).  Runs of
+    different problems raise
     :class:`~solver.errors.ProblemMismatchError` unless ``allow_mismatch``.
     """
     from .agreement import compare_runs
@@ -108,8 +115,13 @@ def compare(
     a, b = load_run(run_a, store=store), load_run(run_b, store=store)
     hX = None
     if holdout is not None:
-        hold = _load_data(holdout, _split_column(a.data), "held-out data")
-        hX = _align(hold, a.data.get("feature_names") or [], "held-out data")
+        cols = Columns.of(feature_columns, ignore_columns, delimiter)
+        lab = _split_column(a.data)
+        if isinstance(holdout, (str, Path)) and not _has_column(Path(holdout), lab, cols):
+            lab = None
+        hold = _load_data(holdout, lab, "held-out data", cols,
+                          names=a.data.get("feature_names") or [])
+        hX = hold.X
     return compare_runs(a, b, holdout_X=hX, tolerances=tolerances, allow_mismatch=allow_mismatch)
 
 
@@ -154,6 +166,9 @@ def explain(
     store: Any = None,
     points: Mapping[str, float] | Sequence[float] | np.ndarray | Dataset | str | Path | None = None,
     top: int = 5,
+    feature_columns: Sequence[str] | None = None,
+    ignore_columns: Sequence[str] | None = None,
+    delimiter: str | None = None,
 ) -> Any:
     """Explain a run.
 
@@ -161,7 +176,8 @@ def explain(
     data (category and reason for every point).  With ``points`` (a mapping feature →
     value, an (m, d) array in raw units, a Dataset or a data file): the decision
     :class:`~solver.explanation.Breakdown` of each query into its ``top`` contributing support
-    vectors and the remainder.
+    vectors and the remainder.  A query file's columns are matched to the run's features
+    by name (``feature_columns`` / ``ignore_columns`` / ``delimiter`` as for :func:`train`).
     """
     from .explanation import breakdown, point_table
 
@@ -174,11 +190,13 @@ def explain(
         return point_table(rec.problem, rec.result)
     names = list(rec.data.get("feature_names") or [])
     if isinstance(points, (str, Path)):
-        lab = rec.data.get("label_name")
-        q = _load_data(points, lab if _has_column(Path(points), lab) else None, "query data")
-        X = _align(q, names, "query data")
+        cols = Columns.of(feature_columns, ignore_columns, delimiter)
+        lab = _split_column(rec.data)
+        lab = lab if _has_column(Path(points), lab, cols) else None
+        X = _load_data(points, lab, "query data", cols, names=names).X
     elif isinstance(points, Dataset):
-        X = _align(points, names, "query data")
+        X = _load_data(points, None, "query data",
+                       Columns.of(feature_columns, ignore_columns), names=names).X
     else:
         X = _parse_point(points, names)
     model = model_from_solution(rec.problem, rec.result, rec.standardiser)
@@ -389,33 +407,21 @@ class ModelOutput:
         return out
 
 
-def _has_column(path: Path, column: str | None) -> bool:
+def _has_column(path: Path, column: str | None, columns: Columns = NO_CHOICE) -> bool:
     """Whether a data file has a column ``column`` (header peek; no data parsed)."""
-    if column is None or not path.is_file():
+    from .data import SUPPORTED_SUFFIXES, column_names
+
+    if column is None or not path.is_file() or path.suffix.lower() not in SUPPORTED_SUFFIXES:
         return False
-    suffix = path.suffix.lower()
-    try:
-        if suffix == ".csv":
-            import csv
-
-            with path.open(newline="", encoding="utf-8-sig") as fh:
-                header = next(csv.reader(fh), [])
-            return column in [h.strip() for h in header]
-        if suffix in (".parquet", ".pq"):
-            import pyarrow.parquet as pq
-
-            return column in pq.read_schema(path).names
-        if suffix == ".npz":
-            with np.load(path, allow_pickle=False) as z:
-                return column in z.files
-    except (OSError, UnicodeDecodeError, ValueError) as exc:
-        raise InvalidInputError(f"cannot read {str(path)!r}: {exc}") from None
-    return False
+    return column in column_names(path, delimiter=columns.delimiter)
 
 
 def apply(
     run: str | RunRecord, data: Dataset | str | Path, *, store: Any = None,
     label: str | None = None, probabilities: bool = False,
+    feature_columns: Sequence[str] | None = None,
+    ignore_columns: Sequence[str] | None = None,
+    delimiter: str | None = None,
 ) -> ModelOutput:
     """Decision values and predicted labels of a stored run's model on ``data``.
 
@@ -423,17 +429,20 @@ def apply(
     has it) the confusion matrix, accuracy and balanced accuracy are included.  With
     ``probabilities`` the run's fitted sigmoid gives P(class | x) for every class (an
     :class:`InvalidInputError` says how to get one when the run has none, or why its fit
-    failed).
+    failed).  The run's features are read by name; the file's other columns are ignored
+    (a :class:`~solver.errors.DataWarning` names them); ``feature_columns`` /
+    ``ignore_columns`` / ``delimiter`` as for :func:`train`.
     """
     rec = load_run(run, store=store)
     names = list(rec.data.get("feature_names") or [])
+    cols = Columns.of(feature_columns, ignore_columns, delimiter)
     if rec.problem.labels is None:
-        return _apply_kind(rec, data, names, label)
+        return _apply_kind(rec, data, names, label, cols)
     if isinstance(data, (str, Path)) and label is None:
         lab = rec.data.get("label_name")
-        label = lab if _has_column(Path(data), lab) else None
-    ds = _load_data(data, label, "data the model is applied to")
-    X = _align(ds, names, "data the model is applied to")
+        label = lab if _has_column(Path(data), lab, cols) else None
+    ds = _load_data(data, label, "data the model is applied to", cols, names=names)
+    X = ds.X
     model = model_from_solution(rec.problem, rec.result, rec.standardiser)
     values = model.values(X)
     pred = model.classify(X)
@@ -457,7 +466,8 @@ def _split_column(data: Mapping[str, Any]) -> str | None:
     return data.get("label_name") or data.get("target_name") or data.get("outlier_column")
 
 
-def _apply_kind(rec: RunRecord, data: Any, names: list[str], label: str | None) -> ModelOutput:
+def _apply_kind(rec: RunRecord, data: Any, names: list[str], label: str | None,
+                cols: Columns = NO_CHOICE) -> ModelOutput:
     """ε-regression (values = predictions, no labels) or one-class (values = signed scores,
     labels ``inlier`` / ``outlier``); with the target or known-outlier column present the
     held-out facts go into ``confusion`` (regression: RMSE, MAE, R², tube coverage)."""
@@ -466,10 +476,11 @@ def _apply_kind(rec: RunRecord, data: Any, names: list[str], label: str | None) 
     from .training_kinds import known_outliers, numeric_column
 
     col = label or rec.data.get("target_name") or rec.data.get("known_outlier_column")
-    if isinstance(data, (str, Path)) and col is not None and not _has_column(Path(data), col):
+    if isinstance(data, (str, Path)) and col is not None and not _has_column(Path(data), col,
+                                                                              cols):
         col = None
-    ds = _load_data(data, col, "data the model is applied to")
-    X = _align(ds, names, "data the model is applied to")
+    ds = _load_data(data, col, "data the model is applied to", cols, names=names)
+    X = ds.X
     values = model_from_solution(rec.problem, rec.result, rec.standardiser).values(X)
     if rec.problem.kind == REGRESSION_KIND:
         labels = np.full(values.shape[0], None, dtype=object)

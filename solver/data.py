@@ -41,6 +41,7 @@ they are text (``str``, surrounding spaces removed; booleans become ``"True"`` /
 
 from __future__ import annotations
 
+import contextvars
 import csv
 import functools
 import hashlib
@@ -74,6 +75,7 @@ from .errors import DataWarning, InvalidInputError
 __all__ = [
     "Dataset",
     "load_table",
+    "column_names",
     "from_arrays",
     "fingerprint",
     "FINGERPRINT_VERSION",
@@ -240,7 +242,8 @@ def _build(
                 f"{prefix}{what} has {len(classes)} distinct value(s) ({found} in all {n} rows); "
                 f"at least {min_classes} classes are needed"
             )
-    found_warnings = [*notes, *intake_warnings(X, lab, names, where, prefix)]
+    found_warnings = [*notes, *(intake_warnings(X, lab, names, where, prefix)
+                                if _WARN.get() else [])]
     for w in found_warnings:
         warnings.warn(w, DataWarning, stacklevel=stacklevel)
     return Dataset(
@@ -320,6 +323,7 @@ def load_table(
     min_classes: int = 2,
     ignore_columns: Sequence[str] | None = None,
     delimiter: str | None = None,
+    warn: bool = True,
 ) -> Dataset:
     """Load and validate a table from ``.csv``, ``.parquet``/``.pq``, ``.npy`` or ``.npz``.
 
@@ -332,6 +336,8 @@ def load_table(
     min_classes : fewest distinct labels accepted (2 for training data).
     ignore_columns : columns left out of the features (e.g. an ID column); each must exist.
     delimiter : CSV field delimiter; default detected (see :func:`_sniff_delimiter`).
+    warn : look for the intake warnings (conflicting duplicates, constant or unscaled
+        features); False for data a trained model is applied to.
 
     Raises
     ------
@@ -358,12 +364,64 @@ def load_table(
     _check_delimiter(delimiter, prefix)
     if delimiter is not None and suffix != ".csv":
         raise InvalidInputError(f"{prefix}a delimiter applies to CSV files only")
-    if suffix == ".csv":
-        return _read_csv(p, prefix, label, feature_columns, min_classes, ignore_columns,
-                         delimiter)
-    reader = {".parquet": _read_parquet, ".pq": _read_parquet,
-              ".npy": _read_npy, ".npz": _read_npz}[suffix]
-    return reader(p, prefix, label, feature_columns, min_classes, ignore_columns)
+    token = _WARN.set(bool(warn))
+    try:
+        if suffix == ".csv":
+            return _read_csv(p, prefix, label, feature_columns, min_classes, ignore_columns,
+                             delimiter)
+        reader = {".parquet": _read_parquet, ".pq": _read_parquet,
+                  ".npy": _read_npy, ".npz": _read_npz}[suffix]
+        return reader(p, prefix, label, feature_columns, min_classes, ignore_columns)
+    finally:
+        _WARN.reset(token)
+
+
+def column_names(path: str | Path, *, delimiter: str | None = None) -> list[str]:
+    """The column names of a data file (for ``.npz`` / ``.npy`` the feature names and the
+    label array's name), read without parsing the values of a CSV or Parquet file."""
+    p = Path(path)
+    prefix = f"{p}: "
+    suffix = p.suffix.lower()
+    _check_delimiter(delimiter, prefix)
+    try:
+        if suffix == ".csv":
+            delim = delimiter if delimiter is not None else _sniff_delimiter(p)
+            with open(p, encoding="utf-8-sig", newline="") as fh:
+                for rec in csv.reader(fh, delimiter=delim, strict=True):
+                    if rec and not (len(rec) == 1 and not rec[0].strip()):
+                        names = [c.strip() for c in rec]
+                        return names[:-1] if len(names) > 1 and not names[-1] else names
+            return []
+        if suffix in (".parquet", ".pq"):
+            import pyarrow.parquet as pq
+
+            return [str(c) for c in pq.read_schema(p).names]
+    except (OSError, UnicodeDecodeError, csv.Error, ValueError) as exc:
+        if isinstance(exc, InvalidInputError):
+            raise
+        raise InvalidInputError(f"{prefix}cannot read the column names: {exc}") from None
+    if suffix == ".npy":
+        arr = _load_numpy(p, prefix)
+        return _default_names(arr.shape[1]) if arr.ndim == 2 else []
+    if suffix == ".npz":
+        archive = _load_numpy(p, prefix, members=("X", "feature_names", "label_name"))
+        keys = archive["__files__"]
+        if "feature_names" in keys:
+            names = _text_entry(archive["feature_names"], "feature_names", prefix)
+        elif "X" in keys and archive["X"].ndim == 2:
+            names = _default_names(archive["X"].shape[1])
+        else:
+            names = []
+        if "label_name" in keys:
+            names += _text_entry(archive["label_name"], "label_name", prefix)[:1]
+        else:
+            names += [k for k in ("y", "labels") if k in keys]
+        return names
+    return []
+
+
+_WARN: contextvars.ContextVar[bool] = contextvars.ContextVar("kktrace_intake_warn",
+                                                             default=True)
 
 
 #: Delimiters the CSV reader detects, with their names in messages.

@@ -15,9 +15,12 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
+from ._intake import SCALE_ADVICE, SCALE_WARNING
 from ._workflow import (
     KERNEL_CHOICES,
+    NO_CHOICE,
     SOLVER_CHOICES,
+    Columns,
     ProgressFn,
     _align,
     _confusion,
@@ -102,10 +105,18 @@ def _qp_limit() -> int:
 
 
 def _command(
-    data: Any, label: str | None, opts: Mapping[str, Any], holdout: Any
+    data: Any, label: str | None, opts: Mapping[str, Any], holdout: Any,
+    columns: Columns = NO_CHOICE,
 ) -> dict[str, Any]:
-    """The CLI command and Python call that reproduce a training run."""
-    py_args = ", ".join(f"{k}={v!r}" for k, v in opts.items() if v is not None)
+    """The CLI command and Python call that reproduce a training run (held-out file,
+    column choice and delimiter included)."""
+    py_opts = {**opts, "feature_columns": None if columns.features is None else
+               list(columns.features), "ignore_columns": None if columns.ignore is None else
+               list(columns.ignore), "delimiter": columns.delimiter}
+    py_args = ", ".join(f"{k}={v!r}" for k, v in py_opts.items() if v is not None)
+    if holdout is not None:
+        py_args += (f", holdout={str(holdout)!r}" if isinstance(holdout, (str, Path))
+                    else ", holdout=held_out")
     if isinstance(data, (str, Path)):
         argv = ["kktrace", "train", str(data)]
         if label is not None:
@@ -122,6 +133,11 @@ def _command(
             argv.append("--probabilities")
         if holdout is not None and isinstance(holdout, (str, Path)):
             argv += ["--holdout", str(holdout)]
+        for flag, names in (("--features", columns.features), ("--ignore", columns.ignore)):
+            if names is not None:
+                argv += [flag, ",".join(names)]
+        if columns.delimiter is not None:
+            argv += ["--delimiter", columns.delimiter]
         py = f"solver.train({str(data)!r}, label={label!r}, {py_args})"
         return {"argv": argv, "text": shlex.join(argv), "python": py}
     return {
@@ -308,6 +324,9 @@ def train(
     probabilities: bool = False,
     calibration_folds: int = 5,
     calibration_seed: int = 0,
+    feature_columns: Sequence[str] | None = None,
+    ignore_columns: Sequence[str] | None = None,
+    delimiter: str | None = None,
 ) -> TrainOutcome:
     """Train a kernel SVM (two classes, one-vs-one over three or more classes, ε-regression
     or one-class), audit it and save the run(s) to the store.
@@ -352,6 +371,11 @@ def train(
         primary run (attachment ``"calibration"``; see :mod:`solver.calibration`); with
         three or more classes every pair run gets its own sigmoid, combined at apply time
         by pairwise coupling.
+    feature_columns, ignore_columns : the training file's feature columns (default every
+        column but the label / target / known-outlier and weight columns) and columns left
+        out (an ID column, say); held-out files are read by the run's feature names, their
+        other columns ignored with a warning naming them.
+    delimiter : CSV delimiter of the data files (default detected).
     calibration_folds, calibration_seed : the stratified folds of that cross-validation
         (recorded with the run, so a re-run reproduces the probabilities bitwise).
 
@@ -410,6 +434,7 @@ def train(
             parallel=parallel,
             probabilities=bool(probabilities), calibration_folds=calibration_folds,
             calibration_seed=calibration_seed,
+            columns=Columns.of(feature_columns, ignore_columns, delimiter),
             kinds={"task": task, "target": target, "epsilon": epsilon, "nu": nu,
                    "outlier_column": outlier_column},
         )
@@ -421,9 +446,22 @@ def train(
             warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
     seen: list[str] = []
     for m in [*outcome.warnings, *caught]:
-        if m not in seen:
+        m = _for_settings(m, standardise)
+        if m is not None and m not in seen and f"data: {m}" not in seen:
             seen.append(m)
     return replace(outcome, warnings=tuple(seen))
+
+
+def _for_settings(message: str, standardise: bool) -> str | None:
+    """A warning as it applies to this run: the intake's feature-scale warning is dropped
+    when the run standardises (the default) and says so when it does not."""
+    if SCALE_WARNING not in message:
+        return message
+    if standardise:
+        return None
+    return message.replace(SCALE_ADVICE, "; this run does not standardise them "
+                           "(--no-standardise): unscaled features slow SMO and let the "
+                           "widest column dominate the kernel")
 
 
 def _weights(ds: Dataset, class_weight: Any, weight_column: str | None
@@ -600,6 +638,7 @@ def _train(
     calibration_folds: int = 5,
     calibration_seed: int = 0,
     kinds: dict[str, Any] | None = None,
+    columns: Columns = NO_CHOICE,
 ) -> TrainOutcome:
     if kinds and kinds["task"] != "classification":
         if probabilities:
@@ -609,12 +648,16 @@ def _train(
         return _train_kind(data, label=label, kernel=kernel, gamma=gamma, degree=degree,
                            offset=offset, C=C, kkt_tol=kkt_tol, iteration_limit=iteration_limit,
                            solver=solver, standardise=standardise, holdout=holdout, store=store,
-                           trace=trace, explain=explain, progress=progress, **kinds)
+                           trace=trace, explain=explain, progress=progress,
+                           columns=columns, **kinds)
     from .distributed import run_jobs
     from .tasks import classification_task
     from .tasks._labels import class_order
 
-    ds0 = _load_data(data, label, "training data")
+    if weight_column is not None and columns.features is not None and \
+            weight_column not in columns.features:
+        columns = replace(columns, features=(*columns.features, weight_column))
+    ds0 = _load_data(data, label, "training data", columns)
     if ds0.labels is None:
         raise InvalidInputError("training data have no label column")
     ds, weights = _weights(ds0, class_weight, weight_column)
@@ -627,10 +670,10 @@ def _train(
         _check_calibration_folds(ds.labels, calibration_folds, calibration_seed)
     hold = None
     if holdout is not None:
-        hold = _drop_column(_load_data(holdout, ds.label_name, "held-out data"), weight_column)
+        hold = _load_data(holdout, ds.label_name, "held-out data",
+                          replace(columns, features=None), names=ds.feature_names)
         if hold.labels is None:
             raise InvalidInputError("held-out data need the label column to be scored")
-        _align(hold, ds.feature_names, "held-out data")  # fail before solving
         if task.parent_record:
             task.held_out(_NoPrediction(hold.labels), hold.labels, classes)  # unseen labels
     opts = {"kernel": kernel, "gamma": gamma, "degree": degree if kernel == "poly" else None,
@@ -645,7 +688,7 @@ def _train(
                                     ",".join(f"{k}={v}" for k, v in class_weight.items()))
     if weight_column is not None:
         cmd_opts["weight_column"] = weight_column
-    command = _command(data, label, {**cmd_opts, "solver": solver}, holdout)
+    command = _command(data, label, {**cmd_opts, "solver": solver}, holdout, columns)
     extra: dict[str, Any] = {}
     if weights.weight_column is not None:
         extra["weight_column"] = weights.weight_column
@@ -840,7 +883,8 @@ def _train_kind(data: Any, *, label: str | None, kernel: str, gamma: float | Non
                 offset: float, C: float, kkt_tol: float, iteration_limit: int | None,
                 solver: str, standardise: bool, holdout: Any, store: RunStore, trace: str,
                 explain: bool, progress: ProgressFn | None, task: str, target: str | None,
-                epsilon: float, nu: float, outlier_column: str | None) -> TrainOutcome:
+                epsilon: float, nu: float, outlier_column: str | None,
+                columns: Columns = NO_CHOICE) -> TrainOutcome:
     """ε-regression and one-class fits (:mod:`solver.training_kinds`) as a TrainOutcome."""
     from .training_kinds import kind_summary, train_kind
 
@@ -854,7 +898,7 @@ def _train_kind(data: Any, *, label: str | None, kernel: str, gamma: float | Non
                      epsilon=epsilon, nu=nu, kern=kern, C=C, kkt_tol=kkt_tol,
                      iteration_limit=iteration_limit, solver=solver, standardise=standardise,
                      holdout=holdout, store=store, trace=trace, explain=explain,
-                     progress=progress, opts=opts)
+                     progress=progress, opts=opts, columns=columns)
     ids, saved, comparison = got["ids"], got["records"], got["comparison"]
     summaries = tuple(
         {**_run_summary(rec, rid, store.run_dir(rid)), **kind_summary(rec)}

@@ -9,7 +9,9 @@ from typing import Any
 
 from ._shared import (
     EXIT_OK,
+    add_column_options,
     add_command,
+    column_kwargs,
     emit_json,
 )
 
@@ -24,7 +26,7 @@ def cmd_apply(args: argparse.Namespace) -> int:
     if args.out:
         solver.check_output_path(args.out, store=args.store)
     sc = solver.apply(args.run, args.data, store=args.store, label=args.label,
-                      probabilities=args.probabilities)
+                      probabilities=args.probabilities, **column_kwargs(args))
     if args.out:
         _write_outputs(sc, Path(args.out))
     if args.json:
@@ -126,5 +128,6 @@ def register(sub: Any) -> None:
     p.add_argument("--probabilities", action="store_true",
                    help="add P(class | x) for every class from the run's fitted sigmoid "
                    "(the run must be trained with --probabilities)")
+    add_column_options(p, "DATAFILE")
     p.set_defaults(func=cmd_apply)
 

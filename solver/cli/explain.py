@@ -10,8 +10,10 @@ from typing import Any
 
 from ._shared import (
     EXIT_OK,
+    add_column_options,
     add_command,
     cell,
+    column_kwargs,
     emit_json,
     kv_lines,
     num,
@@ -65,7 +67,11 @@ def cmd_explain(args: argparse.Namespace) -> int:
         points = _parse_point_text(args.point)
     elif args.query is not None:
         points = args.query
-    res = solver.explain(args.run, store=args.store, points=points, top=args.top)
+    kw = column_kwargs(args) if args.query is not None else {}
+    if args.query is None and any(kw_v is not None for kw_v in column_kwargs(args).values()):
+        raise solver.InvalidInputError("--features, --ignore and --delimiter apply to the "
+                                       "--query file")
+    res = solver.explain(args.run, store=args.store, points=points, top=args.top, **kw)
     if points is None:
         cols = {k: list(v) for k, v in res.to_columns().items()}
         if args.out:
@@ -127,5 +133,6 @@ def register(sub: Any) -> None:
                    help="write the per-point table as CSV and Parquet into DIR")
     p.add_argument("--leave-one-out", action="store_true",
                    help="exact leave-one-out error and its bounds")
+    add_column_options(p, "the --query file")
     p.set_defaults(func=cmd_explain)
 

@@ -10,7 +10,9 @@ from typing import Any
 from ._shared import (
     EXIT_NOT_CONVERGED,
     EXIT_OK,
+    add_column_options,
     add_command,
+    column_kwargs,
     emit_json,
     float_arg,
     num,
@@ -171,6 +173,7 @@ def cmd_train(args: argparse.Namespace) -> int:
         target=args.target, epsilon=args.epsilon, nu=args.nu,
         outlier_column=args.outlier_column, probabilities=args.probabilities,
         calibration_folds=args.calibration_folds, calibration_seed=args.calibration_seed,
+        **column_kwargs(args),
     )
     if args.json:
         emit_json(outcome.summary(), sys.stdout)
@@ -290,6 +293,7 @@ def register(sub: Any) -> None:
     p.add_argument("--sign", metavar="PRIVATE_KEY", default=None,
                    help="sign each run's manifest digest with this Ed25519 key "
                    "(NAME.private.pem from 'kktrace keys new'; default $KKTRACE_SIGNING_KEY)")
+    add_column_options(p, "DATAFILE and --holdout")
     p.set_defaults(func=cmd_train, train_parser=p)
 
     p = add_command(sub, "demo", "run the full audit on invented tablet-coating QC data",
