@@ -390,6 +390,10 @@ def column_names(path: str | Path, *, delimiter: str | None = None) -> list[str]
                 for rec in csv.reader(fh, delimiter=delim, strict=True):
                     if rec and not (len(rec) == 1 and not rec[0].strip()):
                         names = [c.strip() for c in rec]
+                        hint = _looks_like(names, delim)
+                        if hint:
+                            raise InvalidInputError(
+                                f"{prefix}the header has one column {names[0]!r}{hint}")
                         return names[:-1] if len(names) > 1 and not names[-1] else names
             return []
         if suffix in (".parquet", ".pq"):
