@@ -183,6 +183,39 @@ def _align(query: Dataset, names: Sequence[str], what: str) -> np.ndarray:
     return query.X[:, [qn.index(c) for c in names]]
 
 
+def check_known_labels(ds: Dataset, classes: Sequence[Any], what: str) -> None:
+    """Refuse labels of ``ds`` that are not among the run's ``classes`` (matched by text),
+    naming the file, the column and the first such row (1-based data row)."""
+    if ds.labels is None:
+        return
+    known = {str(c) for c in classes}
+    text = [str(v) for v in ds.labels.tolist()]
+    bad = [i for i, v in enumerate(text) if v not in known]
+    if bad:
+        unseen = list(dict.fromkeys(text[i] for i in bad))
+        where = f"{ds.source}: " if ds.source else ""
+        raise InvalidInputError(
+            f"{where}label column {ds.label_name!r} of the {what} has value(s) "
+            f"{', '.join(map(repr, unseen[:5]))} that the run was not trained on (first at "
+            f"row {bad[0] + 1}, {len(bad)} row(s) in all; training labels: "
+            f"{', '.join(repr(str(c)) for c in classes)})")
+
+
+def check_finite_values(values: np.ndarray, ds: Dataset, what: str) -> None:
+    """Refuse decision values that are not finite (e.g. features near ±1e308 with an RBF
+    kernel), naming the file, the first such row and that row's largest feature."""
+    bad = np.flatnonzero(~np.isfinite(values))
+    if bad.size:
+        i = int(bad[0])
+        j = int(np.argmax(np.abs(ds.X[i])))
+        where = f"{ds.source}: " if ds.source else ""
+        raise InvalidInputError(
+            f"{where}row {i + 1}, column {ds.feature_names[j]!r}: the decision value is not "
+            f"finite ({float(values[i])!r}): the value {ds.X[i, j]:.6g} is too large for the "
+            f"model's kernel arithmetic ({bad.size} row(s) of the {what} in all); no labels "
+            "were assigned")
+
+
 def _plain(v: Any) -> Any:
     if isinstance(v, np.generic):
         return v.item()

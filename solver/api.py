@@ -33,6 +33,8 @@ from ._workflow import (
     _fingerprint,
     _load_data,
     _plain,
+    check_finite_values,
+    check_known_labels,
     open_store,
 )
 from .data import Dataset
@@ -193,16 +195,19 @@ def explain(
         cols = Columns.of(feature_columns, ignore_columns, delimiter)
         lab = _split_column(rec.data)
         lab = lab if _has_column(Path(points), lab, cols) else None
-        X = _load_data(points, lab, "query data", cols, names=names).X
+        qds = _load_data(points, lab, "query data", cols, names=names)
     elif isinstance(points, Dataset):
-        X = _load_data(points, None, "query data",
-                       Columns.of(feature_columns, ignore_columns), names=names).X
+        qds = _load_data(points, None, "query data",
+                         Columns.of(feature_columns, ignore_columns), names=names)
     else:
-        X = _parse_point(points, names)
+        qds = Dataset(X=_parse_point(points, names), labels=None, feature_names=tuple(names))
     model = model_from_solution(rec.problem, rec.result, rec.standardiser)
     if isinstance(top, bool) or not isinstance(top, int) or top < 1:
         raise InvalidInputError(f"top must be a positive integer, got {top!r}")
-    return breakdown(model, X, top=top)
+    with np.errstate(all="ignore"):
+        res = breakdown(model, qds.X, top=top)
+    check_finite_values(res.values, qds, "query data")
+    return res
 
 
 def leave_one_out(
@@ -444,7 +449,10 @@ def apply(
     ds = _load_data(data, label, "data the model is applied to", cols, names=names)
     X = ds.X
     model = model_from_solution(rec.problem, rec.result, rec.standardiser)
-    values = model.values(X)
+    check_known_labels(ds, model.labels, "data the model is applied to")
+    with np.errstate(all="ignore"):
+        values = model.values(X)
+    check_finite_values(values, ds, "data the model is applied to")
     pred = model.classify(X)
     conf = None if ds.labels is None else _confusion(ds.labels, pred, model.labels)
     probs = plabels = disagree = None
@@ -481,7 +489,9 @@ def _apply_kind(rec: RunRecord, data: Any, names: list[str], label: str | None,
         col = None
     ds = _load_data(data, col, "data the model is applied to", cols, names=names)
     X = ds.X
-    values = model_from_solution(rec.problem, rec.result, rec.standardiser).values(X)
+    with np.errstate(all="ignore"):
+        values = model_from_solution(rec.problem, rec.result, rec.standardiser).values(X)
+    check_finite_values(values, ds, "data the model is applied to")
     if rec.problem.kind == REGRESSION_KIND:
         labels = np.full(values.shape[0], None, dtype=object)
         facts = None if ds.labels is None else regression_measures(

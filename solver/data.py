@@ -230,7 +230,8 @@ def _build(
     if d == 0:
         raise InvalidInputError(f"{prefix}no feature columns")
     check_finite(X, names, where, prefix)
-    check_spread(X, names, where, prefix)
+    if _WARN.get():  # data to train on (data a model is applied to are standardised by it)
+        check_spread(X, names, where, prefix)
     lab = None
     if labels is not None:
         lab = canonical_labels(labels, where, prefix, label_name or "")
@@ -336,8 +337,9 @@ def load_table(
     min_classes : fewest distinct labels accepted (2 for training data).
     ignore_columns : columns left out of the features (e.g. an ID column); each must exist.
     delimiter : CSV field delimiter; default detected (see :func:`_sniff_delimiter`).
-    warn : look for the intake warnings (conflicting duplicates, constant or unscaled
-        features); False for data a trained model is applied to.
+    warn : data to train on: look for the intake warnings (conflicting duplicates,
+        constant or unscaled features) and refuse a column whose spread overflows; False
+        for data a trained model is applied to.
 
     Raises
     ------

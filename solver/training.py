@@ -26,6 +26,7 @@ from ._workflow import (
     _confusion,
     _fingerprint,
     _load_data,
+    check_known_labels,
     open_store,
 )
 from .data import Dataset
@@ -126,7 +127,8 @@ def _command(
                 continue
             if k.startswith("calibration_") and not opts.get("probabilities"):
                 continue
-            argv += ["--" + k.replace("_", "-"), str(v)]
+            argv += ["--positive" if k == "positive_label" else "--" + k.replace("_", "-"),
+                     str(v)]
         if not opts.get("standardise", True):
             argv.append("--no-standardise")
         if opts.get("probabilities"):
@@ -238,6 +240,9 @@ def _run_summary(record: RunRecord, run_id: str, run_dir: Path) -> dict[str, Any
         "kernel": record.problem.kernel.describe(),
         "C": record.problem.info.get("C"),
     }
+    labels = record.problem.info.get("labels")
+    if isinstance(labels, Mapping) and "positive" in labels:
+        s["labels"] = {"negative": labels["negative"], "positive": labels["positive"]}
     cal = record.attachments.get("calibration")
     if cal:
         s["calibration"] = {k: cal.get(k) for k in ("status", "message", "A", "B", "n_folds",
@@ -327,6 +332,7 @@ def train(
     feature_columns: Sequence[str] | None = None,
     ignore_columns: Sequence[str] | None = None,
     delimiter: str | None = None,
+    positive_label: Any = None,
 ) -> TrainOutcome:
     """Train a kernel SVM (two classes, one-vs-one over three or more classes, ε-regression
     or one-class), audit it and save the run(s) to the store.
@@ -376,6 +382,9 @@ def train(
         out (an ID column, say); held-out files are read by the run's feature names, their
         other columns ignored with a warning naming them.
     delimiter : CSV delimiter of the data files (default detected).
+    positive_label : the label value (or its text) that f(x) > 0 predicts, two classes
+        only; default the later of the two sorted labels.  The mapping is recorded
+        (problem info ``labels``) and printed by ``train`` and the report.
     calibration_folds, calibration_seed : the stratified folds of that cross-validation
         (recorded with the run, so a re-run reproduces the probabilities bitwise).
 
@@ -435,6 +444,7 @@ def train(
             probabilities=bool(probabilities), calibration_folds=calibration_folds,
             calibration_seed=calibration_seed,
             columns=Columns.of(feature_columns, ignore_columns, delimiter),
+            positive_label=positive_label,
             kinds={"task": task, "target": target, "epsilon": epsilon, "nu": nu,
                    "outlier_column": outlier_column},
         )
@@ -639,8 +649,12 @@ def _train(
     calibration_seed: int = 0,
     kinds: dict[str, Any] | None = None,
     columns: Columns = NO_CHOICE,
+    positive_label: Any = None,
 ) -> TrainOutcome:
     if kinds and kinds["task"] != "classification":
+        if positive_label is not None:
+            raise InvalidInputError(f"--positive belongs to two-class classification; "
+                                    f"{kinds['task']} runs have no labels")
         if probabilities:
             raise InvalidInputError(
                 f"--probabilities needs a classification task (two or more classes); "
@@ -666,6 +680,8 @@ def _train(
     task = classification_task(len(classes))
     members = task.members(ds.labels, weights=weights,
                            options={"max_classes": max_classes, "label_name": ds.label_name})
+    if positive_label is not None:
+        members = _with_positive(members, positive_label, classes, ds, task.parent_record)
     if probabilities:
         _check_calibration_folds(ds.labels, calibration_folds, calibration_seed)
     hold = None
@@ -674,6 +690,7 @@ def _train(
                           replace(columns, features=None), names=ds.feature_names)
         if hold.labels is None:
             raise InvalidInputError("held-out data need the label column to be scored")
+        check_known_labels(hold, classes, "held-out data")
         if task.parent_record:
             task.held_out(_NoPrediction(hold.labels), hold.labels, classes)  # unseen labels
     opts = {"kernel": kernel, "gamma": gamma, "degree": degree if kernel == "poly" else None,
@@ -688,6 +705,8 @@ def _train(
                                     ",".join(f"{k}={v}" for k, v in class_weight.items()))
     if weight_column is not None:
         cmd_opts["weight_column"] = weight_column
+    if positive_label is not None:
+        cmd_opts["positive_label"] = str(positive_label)
     command = _command(data, label, {**cmd_opts, "solver": solver}, holdout, columns)
     extra: dict[str, Any] = {}
     if weights.weight_column is not None:
@@ -793,6 +812,23 @@ def _train(
         warnings=tuple(notes), task=task.name, members=tuple(member_summaries),
         parent=replace(parent, run_id=pid),
     )
+
+
+def _with_positive(members: list[MemberSpec], positive: Any, classes: Sequence[Any],
+                   ds: Dataset, parent: bool) -> list[MemberSpec]:
+    """The binary member with its positive label chosen by value or by text."""
+    where = f"{ds.source}: " if ds.source else ""
+    if parent:
+        raise InvalidInputError(
+            f"{where}--positive applies to two classes; label column {ds.label_name!r} has "
+            f"{len(classes)}, and each one-vs-one pair's positive label is its later class")
+    match = [c for c in classes if c == positive or str(c) == str(positive)]
+    if not match:
+        raise InvalidInputError(
+            f"{where}label column {ds.label_name!r} has no value {str(positive)!r} for "
+            f"--positive (its values: {', '.join(repr(str(c)) for c in classes)})")
+    (m,) = members
+    return [replace(m, build={**m.build, "positive_label": match[0]})]
 
 
 def _check_calibration_folds(labels: np.ndarray, n_folds: int, seed: int) -> None:

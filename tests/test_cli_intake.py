@@ -6,6 +6,7 @@ from __future__ import annotations
 
 import json
 import os
+import re
 import subprocess
 import sys
 from pathlib import Path
@@ -159,3 +160,102 @@ def test_semicolon_training_file_is_detected(files):
     assert proc.returncode == 0, proc.stderr
     rid = json.loads(proc.stdout)["run_id"]
     assert solver.load_run(rid, store=files["store"]).data["feature_names"] == ["a", "b", "c"]
+
+
+def test_train_prints_the_label_mapping_and_positive_chooses_it(files):
+    # before: no mapping printed; pass/fail mapped alphabetically with no way to choose
+    proc = kk("train", files["train"], "--label", "outcome", "--ignore", "batch_id",
+              "--kernel", "linear", "--store", files["store"])
+    assert proc.returncode == 0, proc.stderr
+    assert ("  labels        f(x) > 0 predicts 'pass' (positive), f(x) <= 0 predicts 'fail' "
+            "(negative)") in proc.stdout.splitlines()
+    proc = kk("train", files["train"], "--label", "outcome", "--ignore", "batch_id",
+              "--kernel", "linear", "--positive", "fail", "--store", files["store"], "--json")
+    assert proc.returncode == 0, proc.stderr
+    out = json.loads(proc.stdout)
+    assert out["labels"] == {"negative": "pass", "positive": "fail"}
+    rec = solver.load_run(out["run_id"], store=files["store"])
+    assert rec.problem.info["labels"] == {"negative": "pass", "positive": "fail"}
+    assert "--positive" in rec.attachments["command"]["argv"]
+    assert "positive_label='fail'" in rec.attachments["command"]["python"]
+    # the same data with the other positive label: every decision value changes sign
+    base = solver.apply(files["ids"][0], files["hold"], store=files["store"],
+                        ignore_columns=["batch_id"])
+    flipped = solver.apply(out["run_id"], files["hold"], store=files["store"],
+                           ignore_columns=["batch_id"])
+    np.testing.assert_allclose(flipped.values, -base.values, rtol=1e-6, atol=1e-6)
+    assert flipped.labels.tolist() == base.labels.tolist()
+    proc = kk("train", files["train"], "--label", "outcome", "--ignore", "batch_id",
+              "--positive", "maybe", "--store", files["store"])
+    assert proc.returncode == 1
+    assert "train.csv: label column 'outcome' has no value 'maybe' for --positive" in proc.stderr
+
+
+def test_explain_point_prints_the_label_of_the_side(files):
+    # before: "f(x) = +3.05 (positive side)" without the label; rows 0-based without a word
+    proc = kk("explain", files["ids"][0], "--store", files["store"], "--point",
+              "a=2000,b=1,c=0", "--top", "1")
+    assert proc.returncode == 0, proc.stderr
+    lines = proc.stdout.splitlines()
+    assert lines[1].startswith("query 1: f(x) = +") and lines[1].endswith(
+        "(label 'pass': positive side)"), lines[1]
+    assert " (index " in lines[2] and lines[2].lstrip().startswith("training row")
+    row, index = re.match(r"\s*training row\s+(\d+) \(index (\d+)\)", lines[2]).groups()
+    assert int(row) == int(index) + 1
+
+
+def test_unseen_labels_name_the_file_and_column(files):
+    d = files["dir"]
+    odd = d / "odd_labels.csv"
+    odd.write_text("a,b,c,outcome\n1,2,3,pass\n1,2,3,maybe\n4,5,6,unknown\n")
+    # before: "held-out labels 'maybe' were not seen in training", no file, no column
+    proc = kk("apply", files["ids"][0], odd, "--store", files["store"])
+    assert proc.returncode == 1
+    assert proc.stderr.startswith(f"kktrace: error: {odd}: label column 'outcome'")
+    assert "'maybe', 'unknown'" in proc.stderr and "first at row 2" in proc.stderr
+    before = {p.name for p in files["store"].iterdir()}
+    proc = kk("train", files["train"], "--label", "outcome", "--ignore", "batch_id",
+              "--holdout", odd, "--store", files["store"])
+    assert proc.returncode == 1 and f"{odd}: label column 'outcome'" in proc.stderr
+    assert {p.name for p in files["store"].iterdir()} == before  # refused before solving
+
+
+def test_apply_refuses_non_finite_decision_values(files):
+    # before: a row at ±1e308 printed nan and was given a label
+    d = files["dir"]
+    far = d / "far.csv"
+    far.write_text("a,b,c\n1,0,0.5\n1,0,1e308\n")
+    proc = kk("apply", files["ids"][0], far, "--store", files["store"])
+    assert proc.returncode == 1
+    assert proc.stderr.startswith(f"kktrace: error: {far}: row 2, column 'c': the decision "
+                                  "value is not finite")
+    assert len(proc.stderr.splitlines()) == 1
+    proc = kk("explain", files["ids"][0], "--store", files["store"], "--query", far)
+    assert proc.returncode == 1 and "row 2, column 'c'" in proc.stderr
+
+
+def test_report_states_the_label_mapping(files, tmp_path):
+    # before: only the raw problem-info mapping {'negative': ..., 'positive': ...}
+    paths = solver.report(files["ids"][0], store=files["store"], out_dir=tmp_path / "rep",
+                          formats=("json", "html"))
+    text = Path(paths["json"]).read_text(encoding="utf-8")
+    want = "f(x) > 0 predicts 'pass' (positive), f(x) <= 0 predicts 'fail' (negative)"
+    assert want in text
+    assert want.replace("'", "&#x27;") in Path(paths["html"]).read_text(encoding="utf-8") or \
+        want in Path(paths["html"]).read_text(encoding="utf-8")
+
+
+def test_apply_rows_follow_the_one_row_convention(files, tmp_path):
+    # before: apply counted rows from 0 while errors count data rows from 1
+    out = tmp_path / "outputs.csv"
+    proc = kk("apply", files["ids"][0], files["query"], "--store", files["store"], "--ignore",
+              "batch_id", "--out", out)
+    assert proc.returncode == 0, proc.stderr
+    rows = out.read_text().splitlines()
+    assert rows[0].startswith("row,") and [r.split(",")[0] for r in rows[1:]] == \
+        ["1", "2", "3", "4", "5"]
+    proc = kk("apply", files["ids"][0], files["query"], "--store", files["store"], "--ignore",
+              "batch_id")
+    table = proc.stdout.splitlines()
+    head = table.index("row  decision_value  label")
+    assert table[head + 1].split()[0] == "1" and len(table) == head + 6

@@ -56,8 +56,8 @@ def cmd_apply(args: argparse.Namespace) -> int:
         heads = "" if probs is None else "  " + "  ".join(
             _prob_column(lab) for lab in sc.probability_labels)
         print("row  decision_value  label" + heads)
-        for i, (v, lab) in enumerate(zip(sc.values.tolist(), sc.labels.tolist(), strict=True)):
-            extra = "" if probs is None else "  " + "  ".join(f"{q:.6f}" for q in probs[i])
+        for i, (v, lab) in enumerate(zip(sc.values.tolist(), sc.labels.tolist(), strict=True), 1):
+            extra = "" if probs is None else "  " + "  ".join(f"{q:.6f}" for q in probs[i - 1])
             print(f"{i:<4d} {v:+.6f}       {lab}{extra}")
     return EXIT_OK
 
@@ -73,7 +73,7 @@ def _print_kind(sc: Any, args: argparse.Namespace) -> int:
             r2 = "n/a" if f["r2"] is None else f"{f['r2']:.4f}"
             print(f"  RMSE {f['rmse']:.4g}, MAE {f['mae']:.4g}, R² {r2}, inside the ε-tube "
                   f"(ε = {f['epsilon']:g}) {f['tube_coverage']:.3f}")
-        rows = [f"{i:<4d} {v:+.6f}" for i, v in enumerate(sc.values.tolist())]
+        rows = [f"{i:<4d} {v:+.6f}" for i, v in enumerate(sc.values.tolist(), 1)]
         head = "row  prediction"
     else:
         print(f"  flagged {f['n_flagged']} of {f['n']} as outliers ({f['rule']})")
@@ -83,7 +83,7 @@ def _print_kind(sc: Any, args: argparse.Namespace) -> int:
                   f"others: false alarms {c['flagged_unknown']}, passed {c['passed']}")
         rows = [f"{i:<4d} {v:+.6f}  {lab}"
                 for i, (v, lab) in enumerate(zip(sc.values.tolist(), sc.labels.tolist(),
-                                                 strict=True))]
+                                                 strict=True), 1)]
         head = "row  score      flag"
     if args.out:
         print(f"  outputs written to {args.out}")
@@ -99,19 +99,19 @@ def _write_outputs(sc: Any, path: Path) -> None:
         w = csv.writer(fh, lineterminator="\n")
         if sc.kind == "epsilon_regression":
             w.writerow(["row", "prediction"])
-            for i, v in enumerate(sc.values.tolist()):
+            for i, v in enumerate(sc.values.tolist(), 1):
                 w.writerow([i, repr(float(v))])
             return
         if sc.kind == "one_class":
             w.writerow(["row", "score", "inlier"])
-            for i, v in enumerate(sc.values.tolist()):
+            for i, v in enumerate(sc.values.tolist(), 1):
                 w.writerow([i, repr(float(v)), int(v >= 0)])
             return
         probs = sc.probabilities
         heads = [] if probs is None else [_prob_column(lab) for lab in sc.probability_labels]
         w.writerow(["row", "decision_value", "label", *heads])
-        for i, (v, lab) in enumerate(zip(sc.values.tolist(), sc.labels.tolist(), strict=True)):
-            extra = [] if probs is None else [repr(float(q)) for q in probs[i]]
+        for i, (v, lab) in enumerate(zip(sc.values.tolist(), sc.labels.tolist(), strict=True), 1):
+            extra = [] if probs is None else [repr(float(q)) for q in probs[i - 1]]
             w.writerow([i, repr(float(v)), lab, *extra])
 
 
@@ -124,7 +124,8 @@ def register(sub: Any) -> None:
     p.add_argument("--label", metavar="COLUMN", default=None,
                    help="label column, if the data have one (default: the run's, if present)")
     p.add_argument("--out", metavar="FILE", default=None,
-                   help="write row, value, label (and probability_<label> columns) as CSV")
+                   help="write row (the 1-based data row, as in error messages), value, label "
+                   "(and probability_<label> columns) as CSV")
     p.add_argument("--probabilities", action="store_true",
                    help="add P(class | x) for every class from the run's fitted sigmoid "
                    "(the run must be trained with --probabilities)")

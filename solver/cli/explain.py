@@ -108,11 +108,16 @@ def _print_breakdown(d: Mapping[str, Any], run: str) -> None:
     shares = np.atleast_2d(d["top_shares"])
     print(f"decision values of run {run}: f(x) = sum of support-vector terms + bias "
           f"(bias {num(d['bias'])}, {d['n_support']} support vectors)")
+    labels = d.get("labels")
     for q in range(values.shape[0]):
         side = "positive" if values[q] > 0 else "negative"
-        print(f"query {q}: f(x) = {values[q]:+.6g}  ({side} side)")
+        if labels:
+            lab = labels[1] if values[q] > 0 else labels[0]
+            side = f"label {str(lab)!r}: {side} side"
+        print(f"query {q + 1}: f(x) = {values[q]:+.6g}  ({side})")
         for r, c, sh in zip(rows[q], contrib[q], shares[q], strict=True):
-            print(f"  training row {int(r):>6d}  {c:+.6g}  ({sh:.1%} of the absolute total)")
+            print(f"  training row {int(r) + 1:>6d} (index {int(r)})  {c:+.6g}  "
+                  f"({sh:.1%} of the absolute total)")
         rem = np.atleast_1d(d["remainder"])[q]
         rem_share = np.atleast_1d(d["remainder_share"])[q]
         print(f"  all other support vectors  {rem:+.6g}  ({rem_share:.1%})")

@@ -70,6 +70,10 @@ def _run_block(s: Mapping[str, Any], role: str) -> list[str]:
                      f"{num(nuc.get('outlier_share'), '.4f')} <= ν <= support share "
                      f"{num(nuc.get('support_share'), '.4f')}: "
                      + ("holds" if nuc.get("holds") else "DOES NOT HOLD"))
+    labels = s.get("labels")
+    if labels:
+        lines.append(f"  labels        f(x) > 0 predicts {str(labels['positive'])!r} (positive), "
+                     f"f(x) <= 0 predicts {str(labels['negative'])!r} (negative)")
     hold = s.get("holdout") or {}
     if "rmse" in hold:
         r2 = hold.get("r2")
@@ -173,7 +177,7 @@ def cmd_train(args: argparse.Namespace) -> int:
         target=args.target, epsilon=args.epsilon, nu=args.nu,
         outlier_column=args.outlier_column, probabilities=args.probabilities,
         calibration_folds=args.calibration_folds, calibration_seed=args.calibration_seed,
-        **column_kwargs(args),
+        positive_label=args.positive, **column_kwargs(args),
     )
     if args.json:
         emit_json(outcome.summary(), sys.stdout)
@@ -273,6 +277,9 @@ def register(sub: Any) -> None:
                    help="scale C per class: LABEL=W pairs, or 'balanced' for "
                    "w_c = n / (k * n_c) (n rows, k classes, n_c rows of class c); "
                    "bounds become u_i = C * w_class * w_row")
+    p.add_argument("--positive", metavar="LABEL", default=None,
+                   help="the label that f(x) > 0 predicts (two classes; default the later "
+                   "of the two sorted labels)")
     p.add_argument("--weight-column", metavar="COLUMN", default=None,
                    help="column of per-row weights > 0 scaling C per row (not a feature)")
     p.add_argument("--max-classes", type=positive_int, default=None,
