@@ -4,6 +4,7 @@ mapping and --positive, and the reproduction record."""
 
 from __future__ import annotations
 
+import html
 import json
 import os
 import re
@@ -179,11 +180,12 @@ def test_train_prints_the_label_mapping_and_positive_chooses_it(files):
     assert "--positive" in rec.attachments["command"]["argv"]
     assert "positive_label='fail'" in rec.attachments["command"]["python"]
     # the same data with the other positive label: every decision value changes sign
+    # (up to the two SMO runs' stopping tolerance, kkt_tol 1e-3: paths may differ on ties)
     base = solver.apply(files["ids"][0], files["hold"], store=files["store"],
                         ignore_columns=["batch_id"])
     flipped = solver.apply(out["run_id"], files["hold"], store=files["store"],
                            ignore_columns=["batch_id"])
-    np.testing.assert_allclose(flipped.values, -base.values, rtol=1e-6, atol=1e-6)
+    np.testing.assert_allclose(flipped.values, -base.values, rtol=0, atol=1e-2)
     assert flipped.labels.tolist() == base.labels.tolist()
     proc = kk("train", files["train"], "--label", "outcome", "--ignore", "batch_id",
               "--positive", "maybe", "--store", files["store"])
@@ -241,8 +243,7 @@ def test_report_states_the_label_mapping(files, tmp_path):
     text = Path(paths["json"]).read_text(encoding="utf-8")
     want = "f(x) > 0 predicts 'pass' (positive), f(x) <= 0 predicts 'fail' (negative)"
     assert want in text
-    assert want.replace("'", "&#x27;") in Path(paths["html"]).read_text(encoding="utf-8") or \
-        want in Path(paths["html"]).read_text(encoding="utf-8")
+    assert want in html.unescape(Path(paths["html"]).read_text(encoding="utf-8"))
 
 
 def test_apply_rows_follow_the_one_row_convention(files, tmp_path):
