@@ -42,6 +42,18 @@ _EXPORTS: dict[str, str] = {
     "store_listing": "api",
     "clean_store": "api",
     "new_signing_keys": "api",
+    # studies (solver.studies)
+    "study": "studies",
+    "StudyOutcome": "studies",
+    # convergence on hard problems (solver.resolve, solver.diagnosis, solver.hard)
+    "diagnose": "resolve",
+    "what_if": "resolve",
+    "WhatIf": "resolve",
+    "parse_change": "resolve",
+    "resume": "resolve",
+    "ResumeOutcome": "resolve",
+    "Diagnosis": "diagnosis",
+    "hard_problem": "hard",
     # model exchange (solver.exchange)
     "export_onnx": "exchange.workflow",
     "ExportOutcome": "exchange.workflow",
@@ -80,6 +92,13 @@ _EXPORTS: dict[str, str] = {
     "RunStore": "store",
     "Status": "status",
     "to_plain": "plaindata",
+    # one vocabulary (labels, definitions, whose figure)
+    "Term": "vocabulary",
+    "term": "vocabulary",
+    "trace_term": "vocabulary",
+    "timing_text": "vocabulary",
+    "caution_line": "vocabulary",
+    "vocabulary": "_vocabulary_module",
     # errors and warnings
     "KktraceError": "errors",
     "InvalidInputError": "errors",
@@ -97,6 +116,10 @@ def __getattr__(name: str) -> Any:
     module = _EXPORTS.get(name)
     if module is None:
         raise AttributeError(f"module 'solver' has no attribute {name!r}")
+    if module == "_vocabulary_module":  # the vocabulary module itself
+        value = import_module(".vocabulary", __name__)
+        globals()[name] = value
+        return value
     value = getattr(import_module(f".{module}", __name__), name)
     globals()[name] = value  # cache: later look-ups skip this function
     return value

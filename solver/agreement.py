@@ -306,9 +306,10 @@ def _run_facts(label: str, problem: DualProblem, result: SolveResult, objective:
         "dual_objective": float(objective),
         "certificate_dual_objective": float(c.dual_objective),
         "duality_gap": float(c.duality_gap), "relative_gap": float(c.relative_gap),
-        "max_violation": float(c.max_violation), "certificate_tol": float(c.kkt_tol),
+        "max_violation": float(c.max_violation), "kkt_tol": float(c.kkt_tol),
         "bias": float(result.bias), "bound_violation": bound, "equality_residual": eq,
         "fingerprint": None if data is None else data.get("fingerprint"),
+        **result.timing,
     }
 
 
@@ -469,10 +470,10 @@ def compare_results(
     for r in runs:
         if r["status"] != Status.CONVERGED.label:
             notes.append(f"run {r['label']} ({r['solver']}) did not converge: {r['status']}")
-        elif verdict != "agree" and r["certificate_tol"] > tol.decision_max_diff:
+        elif verdict != "agree" and r["kkt_tol"] > tol.decision_max_diff:
             notes.append(
                 f"run {r['label']} ({r['solver']}) was solved only to maximal violation "
-                f"<= {r['certificate_tol']:g}; differences of that order are expected, so "
+                f"<= {r['kkt_tol']:g}; differences of that order are expected, so "
                 "re-solve it with a tighter kkt_tol to tell solver tolerance from disagreement")
     return Comparison(
         verdict=verdict, verdict_text=text, measures=measures, failed=failed, failures=failures,

@@ -15,7 +15,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Mapping, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
@@ -83,6 +83,18 @@ def load_run(run: str | RunRecord, *, store: Any = None) -> RunRecord:
     return open_store(store).load(run)
 
 
+def _parent_runs(run: Any, store: Any) -> Any:
+    """The loaded parent record and members when ``run`` is a parent's id, else None."""
+    if not isinstance(run, str) or not run:
+        return None
+    st = open_store(store)
+    if not st.is_parent(run):
+        return None
+    from .parent_workflow import load_parent_runs
+
+    return load_parent_runs(st, run)
+
+
 def runs(*, store: Any = None, **filters: Any) -> list[dict[str, Any]]:
     """Catalog rows (one dict per run, key figures) matching ``filters`` (e.g. ``status=``)."""
     return list(open_store(store).runs(**{k: v for k, v in filters.items() if v is not None}))
@@ -114,17 +126,30 @@ def compare(
     """
     from .agreement import compare_runs
 
+    pa, pb = _parent_runs(run_a, store), _parent_runs(run_b, store)
+    if pa is not None or pb is not None:
+        from .parent_workflow import compare_parents
+
+        if pa is None or pb is None:
+            raise InvalidInputError("compare a multi-class model with another multi-class "
+                                    "model (pair by pair), or one pair's run with another run")
+        hX = None if holdout is None else _holdout_rows(
+            holdout, pa.parent.data, Columns.of(feature_columns, ignore_columns, delimiter))
+        return compare_parents(pa, pb, holdout_X=hX, tolerances=tolerances,
+                               allow_mismatch=allow_mismatch)
     a, b = load_run(run_a, store=store), load_run(run_b, store=store)
-    hX = None
-    if holdout is not None:
-        cols = Columns.of(feature_columns, ignore_columns, delimiter)
-        lab = _split_column(a.data)
-        if isinstance(holdout, (str, Path)) and not _has_column(Path(holdout), lab, cols):
-            lab = None
-        hold = _load_data(holdout, lab, "held-out data", cols,
-                          names=a.data.get("feature_names") or [])
-        hX = hold.X
+    hX = None if holdout is None else _holdout_rows(
+        holdout, a.data, Columns.of(feature_columns, ignore_columns, delimiter))
     return compare_runs(a, b, holdout_X=hX, tolerances=tolerances, allow_mismatch=allow_mismatch)
+
+
+def _holdout_rows(holdout: Any, data: Mapping[str, Any], cols: Columns) -> np.ndarray:
+    """Held-out rows (m, d) in the run's feature order, label column optional."""
+    lab = _split_column(data)
+    if isinstance(holdout, (str, Path)) and not _has_column(Path(holdout), lab, cols):
+        lab = None
+    return _load_data(holdout, lab, "held-out data", cols,
+                      names=data.get("feature_names") or []).X
 
 
 def _parse_point(point: Mapping[str, float] | Sequence[float] | np.ndarray,
@@ -183,6 +208,16 @@ def explain(
     """
     from .explanation import breakdown, point_table
 
+    pr = _parent_runs(run, store)
+    if pr is not None:
+        from .parent_workflow import explain_parent, explain_parent_points
+
+        if points is None:
+            return explain_parent(pr)
+        if isinstance(top, bool) or not isinstance(top, int) or top < 1:
+            raise InvalidInputError(f"top must be a positive integer, got {top!r}")
+        cols = Columns.of(feature_columns, ignore_columns, delimiter)
+        return explain_parent_points(pr, _query_rows(points, pr.parent.data, cols).X, top)
     rec = load_run(run, store=store)
     if points is None:
         if rec.problem.labels is None:
@@ -190,17 +225,8 @@ def explain(
 
             return kind_point_table(rec.problem, rec.result)
         return point_table(rec.problem, rec.result)
-    names = list(rec.data.get("feature_names") or [])
-    if isinstance(points, (str, Path)):
-        cols = Columns.of(feature_columns, ignore_columns, delimiter)
-        lab = _split_column(rec.data)
-        lab = lab if _has_column(Path(points), lab, cols) else None
-        qds = _load_data(points, lab, "query data", cols, names=names)
-    elif isinstance(points, Dataset):
-        qds = _load_data(points, None, "query data",
-                         Columns.of(feature_columns, ignore_columns), names=names)
-    else:
-        qds = Dataset(X=_parse_point(points, names), labels=None, feature_names=tuple(names))
+    cols = Columns.of(feature_columns, ignore_columns, delimiter)
+    qds = _query_rows(points, rec.data, cols)
     model = model_from_solution(rec.problem, rec.result, rec.standardiser)
     if isinstance(top, bool) or not isinstance(top, int) or top < 1:
         raise InvalidInputError(f"top must be a positive integer, got {top!r}")
@@ -210,16 +236,40 @@ def explain(
     return res
 
 
+def _query_rows(points: Any, data: Mapping[str, Any], cols: Columns = NO_CHOICE
+                ) -> Dataset:
+    """Query rows (m, d) in raw units, as a Dataset with the run's feature names, from a
+    mapping, an array, a Dataset or a file (matched to the run's features by name)."""
+    names = list(data.get("feature_names") or [])
+    if isinstance(points, (str, Path)):
+        lab = _split_column(data)
+        lab = lab if _has_column(Path(points), lab, cols) else None
+        return _load_data(points, lab, "query data", cols, names=names)
+    if isinstance(points, Dataset):
+        return _load_data(points, None, "query data", replace(cols, delimiter=None),
+                          names=names)
+    return Dataset(X=_parse_point(points, names), labels=None, feature_names=tuple(names))
+
+
 def leave_one_out(
-    run: str | RunRecord, *, store: Any = None, progress: ProgressFn | None = None
+    run: str | RunRecord, *, store: Any = None, progress: ProgressFn | None = None,
+    keep: bool = False,
 ) -> Any:
     """Exact leave-one-out error (support-vector refits) with the Vapnik and Joachims bounds.
 
-    Returns :class:`~solver.explanation.LeaveOneOut`; needs a converged run.
+    Returns :class:`~solver.explanation.LeaveOneOut` (ε-regression / one-class:
+    :class:`~solver.explanation.KindLeaveOneOut`); needs a converged run.  With ``keep``
+    the figures are stored as the attachment ``leave_one_out`` of a child record of the
+    run (the run's parts plus the attachment, parent link with the run's manifest
+    digest, so it is verified with the run on every load); its id is ``kept_as``.
     """
+    import dataclasses
+
     from .explanation import leave_one_out as _loo
 
     rec = load_run(run, store=store)
+    if keep and rec.run_id is None:
+        raise InvalidInputError("leave-one-out figures can be kept only for a stored run")
     if rec.problem.labels is None:  # ε-regression / one-class: KindLeaveOneOut
         from .explanation import kind_leave_one_out
 
@@ -227,25 +277,85 @@ def leave_one_out(
             raise InvalidInputError(f"run {rec.run_id} did not converge "
                                     f"({rec.result.status.label}); leave-one-out needs a "
                                     "converged run")
-        return kind_leave_one_out(rec.problem, rec.result)
-    if progress is None:
-        return _loo(rec.problem, rec.result)
+        loo = kind_leave_one_out(rec.problem, rec.result)
+    elif progress is None:
+        loo = _loo(rec.problem, rec.result)
+    else:
+        def cb(done: int, total: int) -> None:
+            progress("leave_one_out", {"done": done, "total": total})
 
-    def cb(done: int, total: int) -> None:
-        progress("leave_one_out", {"done": done, "total": total})
+        try:
+            loo = _loo(rec.problem, rec.result, progress=cb)
+        finally:
+            progress("done", {"task": "leave_one_out"})
+    if keep:
+        child = dataclasses.replace(
+            rec, attachments={**rec.attachments, LOO_ATTACHMENT: loo_attachment(loo)})
+        loo = dataclasses.replace(loo, kept_as=open_store(store).save(child, parent=rec.run_id))
+    return loo
 
-    try:
-        return _loo(rec.problem, rec.result, progress=cb)
-    finally:
-        progress("done", {"task": "leave_one_out"})
+
+#: Attachment name of stored leave-one-out figures.
+LOO_ATTACHMENT = "leave_one_out"
 
 
-def replay(run: str | RunRecord, iteration: int, *, store: Any = None) -> Any:
-    """State of a run at a recorded ``iteration`` (α, certificate figures, decision function)."""
+def loo_attachment(loo: Any) -> dict[str, Any]:
+    """Plain data of a leave-one-out result as stored: its scalars (the keys of
+    :data:`solver.vocabulary.LEAVE_ONE_OUT`) and ``per_point`` (equal-length arrays:
+    ``row_id``, ``loo_value`` the left-out decision value / prediction / score,
+    ``refitted``, and for classification ``loo_wrong``)."""
+    if hasattr(loo, "to_columns"):
+        scalars, per_point = loo.to_dict(), loo.to_columns()
+    else:
+        scalars = loo.summary()
+        per_point = {"row_id": np.arange(loo.values.size, dtype=np.int64),
+                     "loo_value": np.asarray(loo.values, np.float64),
+                     "refitted": np.asarray(loo.refitted, bool)}
+    scalars.pop("kept_as", None)
+    return {**scalars, "per_point": per_point}
+
+
+def kept_leave_one_out(st: Any, rec: RunRecord) -> tuple[Any, str, str] | None:
+    """The newest child record of ``rec`` holding leave-one-out figures, loaded with
+    verification: (attachment, child run id, child manifest SHA-256), or None."""
+    if rec.run_id is None:
+        return None
+    rows = sorted(st.runs(parent=rec.run_id), key=lambda r: str(r.get("created") or ""),
+                  reverse=True)
+    for row in rows:
+        cid = row.get("run_id")
+        if not cid or not (st.run_dir(cid) / f"{LOO_ATTACHMENT}.json").exists():
+            continue
+        child = st.load(cid)  # verified: digests, the child against itself, the parent link
+        att = child.attachments.get(LOO_ATTACHMENT)
+        if att is not None:
+            import hashlib
+
+            digest = hashlib.sha256((st.run_dir(cid) / "manifest.json").read_bytes()).hexdigest()
+            return att, cid, digest
+    return None
+
+
+def replay(run: str | RunRecord, iteration: int, *, store: Any = None,
+           pair: str | Sequence[str] | None = None) -> Any:
+    """State of a run at a recorded ``iteration`` (α, certificate figures, decision function).
+
+    For a multi-class parent ``pair`` (``"a,b"``) names the pair run to rebuild."""
     from .store import replay as _replay
 
     if isinstance(iteration, bool) or not isinstance(iteration, int) or iteration < 0:
         raise InvalidInputError(f"iteration must be a non-negative integer, got {iteration!r}")
+    pr = _parent_runs(run, store)
+    if pr is not None:
+        from .parent_workflow import member_name, pair_key
+
+        if pair is None:
+            raise InvalidInputError(
+                f"run {run} is a multi-class model over {len(pr.keys)} pair runs; name the "
+                f"pair to rebuild with --pair (one of {', '.join(map(member_name, pr.keys))})")
+        return _replay(pr.member(pair_key(pair)), iteration)
+    if pair is not None:
+        raise InvalidInputError(f"--pair applies to multi-class models; run {run} is one run")
     rec = load_run(run, store=store)
     return _replay(rec, iteration)
 
@@ -283,6 +393,37 @@ class VerifyOutcome:
         return ok
 
 
+@dataclass(frozen=True, eq=False)
+class _ParentReproduction:
+    """The re-run of every pair of a multi-class parent: ``pairs`` (key, Reproduction)."""
+
+    pairs: tuple[tuple[tuple[str, ...], Any], ...]
+
+    @property
+    def within_tolerance(self) -> bool:
+        """True when every pair reproduced."""
+        return all(bool(r.within_tolerance) for _, r in self.pairs)
+
+    @property
+    def agreement(self) -> str:
+        """The worst pair's agreement (``bitwise`` only when every pair is bitwise)."""
+        found = [str(r.agreement) for _, r in self.pairs]
+        for a in ("different", "within_tolerance"):
+            if a in found:
+                return a
+        return found[0] if len(set(found)) == 1 else ", ".join(sorted(set(found)))
+
+    def to_dict(self) -> dict[str, Any]:
+        """Plain data: every pair's reproduction."""
+        from .reporting._records import _plain as plain
+
+        out = [{"pair": list(key), **{k: plain(getattr(r, k)) for k in (
+            "run_id", "agreement", "max_abs_difference", "tolerance", "problem_identical",
+            "iterations", "status")}} for key, r in self.pairs]
+        return {"agreement": self.agreement, "within_tolerance": self.within_tolerance,
+                "pairs": out}
+
+
 def _trusted_keys(trusted: Any) -> list[Any] | None:
     from .store.signing import PublicKey, load_public_key
 
@@ -317,7 +458,22 @@ def verify(
     reproduction = None
     new_id = None
     calibration = None
-    if rerun is not None and integrity.ok:
+    if rerun is not None and integrity.ok and st.is_parent(run):
+        from .parent_workflow import load_parent_runs, rerun_parent
+
+        if keep_rerun:
+            raise InvalidInputError("--keep stores one re-run; a multi-class model's pairs are "
+                                    "re-run and compared without storing them")
+
+        from .calibration.reproduce import recalibrate_pairs
+
+        pr = load_parent_runs(st, run, trusted=keys)
+        reps = rerun_parent(pr, rerun)
+        reproduction = _ParentReproduction(tuple(reps))
+        calibration = recalibrate_pairs([
+            (key, (rec.attachments or {}).get("calibration"), rep.record.problem)
+            for (key, rep), rec in zip(reps, pr.primary, strict=True)])
+    elif rerun is not None and integrity.ok:
         rec = st.load(run, trusted=keys)
         ds = _load_data(rerun, _split_column(rec.data), "re-run data")
         reproduction = reproduce(rec, ds)
@@ -379,6 +535,10 @@ class ModelOutput:
     probabilities : (m, k) class probabilities (columns in ``probability_labels`` order)
     when asked for, else None; probability_disagreements : rows whose most probable class
     differs from the decision-value label.
+    A multi-class parent (``kind`` ``"multiclass_one_vs_one"``) also fills: values (m, q)
+    every pair's decision value (columns in ``member_keys`` order); votes (m, k) vote
+    counts (columns in ``vote_classes`` order); tie (m,) True where the highest count was
+    shared (the class first in the class order won: ``tie_rule``).
     """
 
     run_id: str | None
@@ -392,6 +552,12 @@ class ModelOutput:
     probabilities: np.ndarray | None = None
     probability_labels: tuple[Any, ...] | None = None
     probability_disagreements: int | None = None
+    votes: np.ndarray | None = None
+    vote_classes: tuple[Any, ...] | None = None
+    tie: np.ndarray | None = None
+    member_keys: tuple[tuple[str, ...], ...] | None = None
+    vote_rule: str | None = None
+    tie_rule: str | None = None
 
     def to_dict(self) -> dict[str, Any]:
         """Plain data (lists)."""
@@ -409,6 +575,12 @@ class ModelOutput:
             out["probability_labels"] = [_plain(v) for v in self.probability_labels or ()]
             out["probabilities"] = self.probabilities.tolist()
             out["probability_disagreements"] = self.probability_disagreements
+        if self.votes is not None:
+            out["pairs"] = [list(k) for k in self.member_keys or ()]
+            out["vote_classes"] = [_plain(v) for v in self.vote_classes or ()]
+            out["votes"] = self.votes.tolist()
+            out["tie"] = self.tie.tolist() if self.tie is not None else None
+            out["vote_rule"], out["tie_rule"] = self.vote_rule, self.tie_rule
         return out
 
 
@@ -438,6 +610,15 @@ def apply(
     (a :class:`~solver.errors.DataWarning` names them); ``feature_columns`` /
     ``ignore_columns`` / ``delimiter`` as for :func:`train`.
     """
+    pr = _parent_runs(run, store)
+    if pr is not None:
+        from .parent_workflow import apply_parent
+
+        if isinstance(data, (str, Path)) and label is None:
+            lab = pr.parent.data.get("label_name")
+            label = lab if _has_column(Path(data), lab) else None
+        return ModelOutput(run_id=pr.parent.run_id, kind="multiclass_one_vs_one",
+                           **apply_parent(pr, data, label, probabilities))
     rec = load_run(run, store=store)
     names = list(rec.data.get("feature_names") or [])
     cols = Columns.of(feature_columns, ignore_columns, delimiter)
@@ -519,12 +700,18 @@ def report(
     formats: Sequence[str] = ("html", "pdf", "json"),
     notes: str | None = None,
     stem: str = "report",
+    pair: str | Sequence[str] | None = None,
 ) -> dict[str, Path]:
     """Write the audit report for one run (or a run and its challenger) and return the paths.
 
     With two runs the comparison stored with the challenger is used when the second run
     derives from the first; otherwise the two runs are compared afresh.  ``out_dir``
     defaults to ``<store>/reports/<first run id>``.
+
+    For a multi-class model (a parent id) the report has the task's multi-class section
+    (every pair's convergence, the confusion matrix) and the full pages of one pair and
+    its challenger: ``pair`` (``"a,b"``), by default the worst pair (not converged first,
+    then the worst verdict, then the most iterations).
     """
     from .reporting import write_report
 
@@ -532,7 +719,12 @@ def report(
     ids = [run_ids] if isinstance(run_ids, (str, RunRecord)) else list(run_ids)
     if not 1 <= len(ids) <= 2:
         raise InvalidInputError(f"a report covers one run or two runs, got {len(ids)}")
-    recs = [load_run(r, store=st) for r in ids]
+    pr = _parent_runs(ids[0], st) if len(ids) == 1 else None
+    if pr is not None:
+        return _parent_report(st, pr, out_dir, formats, notes, stem, pair)
+    if pair is not None:
+        raise InvalidInputError("--pair applies to the report of a multi-class model")
+    recs = [_with_kept_leave_one_out(st, load_run(r, store=st)) for r in ids]
     comparison = None
     if len(recs) == 2:
         comparison = _stored_comparison(recs[1], recs[0])
@@ -548,7 +740,57 @@ def report(
     return paths
 
 
-def _log_report(st: Any, recs: Sequence[RunRecord], paths: Mapping[str, Path]) -> None:
+def _with_kept_leave_one_out(st: Any, rec: RunRecord) -> RunRecord:
+    """``rec`` with the leave-one-out figures of its newest child record that holds them
+    (see :func:`leave_one_out` with ``keep``), marked with that record's id and digest."""
+    import dataclasses
+
+    if rec.attachments.get(LOO_ATTACHMENT) is not None:
+        return rec
+    kept = kept_leave_one_out(st, rec)
+    if kept is None:
+        return rec
+    att, cid, digest = kept
+    value = {**dict(att), "kept_as": cid, "kept_digest": digest}
+    return dataclasses.replace(rec, attachments={**rec.attachments, LOO_ATTACHMENT: value})
+
+
+def _parent_report(st: Any, pr: Any, out_dir: Any, formats: Sequence[str], notes: str | None,
+                   stem: str, pair: Any) -> dict[str, Path]:
+    """The report of a multi-class parent (see :func:`report`)."""
+    from .parent_workflow import pair_key
+    from .reporting import write_report
+
+    if pair is not None:
+        key = pair_key(pair)
+        pr.member(key)  # names the pairs when there is no such pair
+    else:
+        verdicts = ("agree", "agree_within_tolerances", "disagree")
+
+        def badness(k: tuple[str, ...]) -> tuple[int, int, int]:
+            rec = pr.member(k)
+            ch = pr.challengers.get(k)
+            comp = (ch.attachments or {}).get("comparison") if ch is not None else None
+            v = str(comp.get("verdict")) if comp else "agree"
+            return (int(not rec.result.success),
+                    verdicts.index(v) if v in verdicts else len(verdicts),
+                    int(rec.result.iterations))
+
+        key = max(pr.keys, key=badness)
+    recs = [pr.member(key)] + ([pr.challengers[key]] if key in pr.challengers else [])
+    comparison = _stored_comparison(recs[1], recs[0]) if len(recs) == 2 else None
+    members = [pr.member(tuple(m.key or ())) if not m.role.endswith("_challenger")
+               else pr.challengers[tuple(m.key or ())] for m in pr.parent.members]
+    rid = str(pr.parent.run_id)
+    out = Path(out_dir) if out_dir is not None else Path(st.root) / "reports" / rid
+    st.check_output_path(out, "report folder")
+    paths = write_report(recs, out, formats=tuple(formats), comparison=comparison, notes=notes,
+                         stem=stem, parent=pr.parent, parent_members=members)
+    _log_report(st, [pr.parent, *recs], paths)
+    return paths
+
+
+def _log_report(st: Any, recs: Sequence[Any], paths: Mapping[str, Path]) -> None:
     import hashlib
 
     from .store import auditlog
@@ -575,10 +817,10 @@ def export_explanation(
             raise InvalidInputError(f"unknown table format {fmt!r}; choose csv or parquet")
     out = check_output_path(out_dir, store=store if not isinstance(run, RunRecord) else store,
                             what="explanation folder")
-    rec = load_run(run, store=store)
-    table = explain(rec)
+    table = explain(run, store=store)
     out.mkdir(parents=True, exist_ok=True)
-    stem = f"points-{rec.run_id or 'unsaved'}"
+    rid = run.run_id if isinstance(run, RunRecord) else run
+    stem = f"points-{rid or 'unsaved'}"
     paths: dict[str, Path] = {}
     if "csv" in formats:
         paths["csv"] = table.write_csv(out / f"{stem}.csv")

@@ -39,13 +39,21 @@ __all__ = [
     "monomial_names",
     "monomial_count",
     "AUDIT_SAMPLE",
+    "AUDIT_SAMPLE_KNOWN_PSD",
     "FEATURE_MAP_MAX_TERMS",
     "AUDIT_MAP_MAX_DEGREE",
     "AUDIT_MAP_MAX_DIM",
 ]
 
-#: Rows used for the eigenvalue check when X has more rows (seeded sample).
+#: Rows used for the eigenvalue check when X has more rows (seeded sample), for kernels
+#: whose Grams are not known to be PSD (sigmoid, polynomial with offset < 0, precomputed,
+#: callable): there a negative eigenvalue is the finding, and a larger sample finds more.
 AUDIT_SAMPLE = 2000
+#: The same for kernels whose Grams are PSD by theorem (linear, RBF, polynomial with
+#: offset ≥ 0): the eigenvalue check then only guards the implementation and measures the
+#: spectrum's spread, for which a smaller sample suffices.  Cost: one eigh of this size,
+#: O(sample³) — about 6 % of the 2000-row one — whatever n is.
+AUDIT_SAMPLE_KNOWN_PSD = 800
 #: polynomial_feature_map refuses more monomials than this by default.
 FEATURE_MAP_MAX_TERMS = 5000
 #: The audit builds the explicit map only up to this degree and dimension.
@@ -275,7 +283,7 @@ def audit_kernel(
     kernel: Kernel,
     X: np.ndarray,
     *,
-    sample: int = AUDIT_SAMPLE,
+    sample: int | None = None,
     seed: int = 0,
     psd_tol: float | None = None,
     feature_names: Sequence[str] | None = None,
@@ -284,6 +292,8 @@ def audit_kernel(
 
     Above ``sample`` rows the Gram checks use ``sample`` rows drawn without replacement with
     ``numpy.random.default_rng(seed)``; memory O(sample²), time O(sample³) for eigh.
+    ``sample`` None: :data:`AUDIT_SAMPLE_KNOWN_PSD` for kernels PSD by theorem, else
+    :data:`AUDIT_SAMPLE`.
     ``feature_names`` label the monomials of the polynomial feature map.
     """
     X = np.asarray(X, dtype=np.float64)
@@ -293,6 +303,8 @@ def audit_kernel(
         raise InvalidInputError(f"audit: X must be a non-empty 2-D array, got shape {X.shape}")
     if not np.all(np.isfinite(X)):
         raise InvalidInputError("audit: X has non-finite values")
+    if sample is None:
+        sample = AUDIT_SAMPLE_KNOWN_PSD if kernel.is_psd is True else AUDIT_SAMPLE
     if isinstance(sample, bool) or not isinstance(sample, (int, np.integer)) or sample < 1:
         raise InvalidInputError(f"audit: sample must be a positive integer, got {sample!r}")
     if psd_tol is not None and not (math.isfinite(float(psd_tol)) and float(psd_tol) >= 0):

@@ -80,6 +80,26 @@ class SolveResult:
     extra: Mapping[str, Any] = field(default_factory=dict)
 
     @property
+    def timing(self) -> dict[str, float | None]:
+        """Wall-clock seconds of the solve call, split (the names every output uses).
+
+        ``solve_seconds``: the iterations themselves; ``compile_seconds``: compiling (or
+        loading from the on-disk cache) the numba code, paid once per process (0 for a
+        solver without compiled code); ``setup_seconds``: start-up before the first
+        iteration (kernel storage, or loading cvxopt and building Q); ``total_seconds``:
+        the whole call (:attr:`seconds`, which also holds the final certificate).  A part
+        the solver did not record is None.
+        """
+        ex = self.extra or {}
+
+        def part(key: str) -> float | None:
+            v = ex.get(key)
+            return None if v is None else float(v)
+
+        return {"solve_seconds": part("solve_seconds"), "compile_seconds": part("compile_seconds"),
+                "setup_seconds": part("setup_seconds"), "total_seconds": float(self.seconds)}
+
+    @property
     def success(self) -> bool:
         """True only when the solver's optimality test was met."""
         return self.status == Status.CONVERGED
@@ -93,6 +113,7 @@ class SolveResult:
             "message": self.message,
             "iterations": int(self.iterations),
             "seconds": float(self.seconds),
+            **self.timing,
             "bias": float(self.bias),
             **c.to_dict(),
         }

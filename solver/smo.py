@@ -56,7 +56,7 @@ from .kernels import (
 )
 from .problem import DualProblem, serial_dot
 from .result import TRACE_LEVELS, SolveResult, Trace
-from .status import Status, status_message
+from .status import Status, settle
 
 __all__ = ["solve_smo", "EVENT_KINDS", "SELECTIONS", "replay_alpha", "repair_start"]
 
@@ -946,7 +946,7 @@ def solve_smo(
     }
     extra = dict(ph["extra"])
     extra["polish_iterations"] = polish_iterations
-    message = status_message(status, detail)
+    status, message = settle(status, detail, cert.max_violation, cert.kkt_tol)
     if status != Status.CONVERGED:
         warnings.warn(f"SMO did not converge: {message}", ConvergenceWarning, stacklevel=2)
     return SolveResult(

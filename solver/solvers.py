@@ -10,13 +10,16 @@ from .errors import InvalidInputError
 from .problem import DualProblem
 from .result import SolveResult
 
-__all__ = ["SOLVERS", "get_solver", "solve"]
+__all__ = ["SOLVERS", "SOLVER_METHODS", "get_solver", "solve"]
 
 #: name → "module:function"; imported on first use so that numba / cvxopt load only when needed.
 SOLVERS: dict[str, str] = {
     "smo": "solver.smo:solve_smo",
     "qp": "solver.qp:solve_qp",
 }
+#: name → the family of method, as outputs describe it ("working-set": one pair of
+#: multipliers per iteration; "interior-point": every multiplier every iteration).
+SOLVER_METHODS: dict[str, str] = {"smo": "working-set", "qp": "interior-point"}
 
 
 def get_solver(name: str) -> Callable[..., SolveResult]:

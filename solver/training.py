@@ -235,6 +235,7 @@ def _run_summary(record: RunRecord, run_id: str, run_dir: Path) -> dict[str, Any
         "n_bounded": int(c.n_bounded),
         "bias": float(r.bias),
         "seconds": float(r.seconds),
+        **r.timing,
         "run_dir": str(run_dir),
         "n_rows": int(record.problem.n),
         "kernel": record.problem.kernel.describe(),
@@ -457,7 +458,12 @@ def train(
     seen: list[str] = []
     for m in [*outcome.warnings, *caught]:
         m = _for_settings(m, standardise)
-        if m is not None and m not in seen and f"data: {m}" not in seen:
+        if m is None or f"data: {m}" in seen:
+            continue
+        # a solver's own warning ("qp solver: MESSAGE") repeats a run's note ("... did not
+        # converge: MESSAGE"): say it once
+        tail = m.split(": ", 1)[-1]
+        if m not in seen and not any(s != m and s.endswith(tail) for s in seen):
             seen.append(m)
     return replace(outcome, warnings=tuple(seen))
 
@@ -787,7 +793,12 @@ def _train(
         "label_name": ds.label_name, "source": ds.source, "warnings": list(ds.warnings),
         "n_rows": int(ds.X.shape[0]), **extra,
     }
-    attachments: dict[str, Any] = {}
+    # which training row is in which pair (explain of the parent reads it)
+    cls_text = [str(c) for c in classes]
+    attachments: dict[str, Any] = {"training_rows": {
+        "class_index": [cls_text.index(str(v)) for v in ds.labels.tolist()],
+        "rule": "class_index[r] is training row r's position in info.classes; a pair "
+                "(a, b) trains on the rows of classes a and b in row order"}}
     if hold is not None:
         models = [model_from_solution(r.problem, r.result, r.standardiser)
                   for r, m in zip(saved, member_refs, strict=True) if m.role == "pair"]
@@ -798,6 +809,15 @@ def _train(
                      ties=int(np.sum(pred.tie)),
                      min_abs_value=float(np.min(np.abs(pred.values))) if hX.shape[0] else None)
         attachments["holdout"] = facts
+    if probabilities:
+        from .calibration.multiclass import parent_attachment
+
+        pair_refs = [(m, r) for m, r in zip(member_refs, saved, strict=True) if m.role == "pair"]
+        held = {} if hold is None else {"values": pred.values, "truth": hold.labels.tolist(),
+                                        "voted": pred.labels.tolist(), "source": hold.source}
+        attachments["calibration"] = parent_attachment(
+            info["class_values"], [m.key for m, _ in pair_refs],
+            [r.attachments.get("calibration") for _, r in pair_refs], **held)
     summary = _parent_summary(member_summaries, ds, kernel, C, kkt_tol, task.name,
                               attachments.get("holdout"))
     parent = ParentRecord(task=task.name, members=tuple(member_refs), info=info,
@@ -848,8 +868,8 @@ class _NoPrediction:
         self.labels = labels
 
 
-_STATUS_ORDER = ("converged", "stopped_by_callback", "time_limit", "iteration_limit",
-                 "stalled", "singular_kkt", "numerical_error")
+_STATUS_ORDER = ("converged", "certificate_not_met", "stopped_by_callback", "time_limit",
+                 "iteration_limit", "stalled", "singular_kkt", "numerical_error")
 _VERDICT_ORDER = ("agree", "agree_within_tolerances", "disagree")
 
 

@@ -240,3 +240,15 @@ def test_explicit_psd_tol_used(rng):
     a = audit_kernel(SigmoidKernel(gamma=1.0, offset=0.0), np.array([[1.0], [2.0]]), psd_tol=1.0)
     assert a.psd_tol == 1.0 and a.psd  # the caller's (loose) tolerance is applied and reported
     assert audit_kernel(LinearKernel(), X, psd_tol=0.0).psd_tol == 0.0
+
+
+def test_default_sample_is_smaller_for_kernels_psd_by_theorem():
+    """The eigenvalue check's cost does not grow with n: 800 rows for kernels PSD by
+    theorem (RBF: Schoenberg's theorem, common practice), 2000 rows otherwise (sigmoid)."""
+    from solver.audit import AUDIT_SAMPLE, AUDIT_SAMPLE_KNOWN_PSD
+
+    X = np.random.default_rng(3).standard_normal((1500, 3))
+    rbf = audit_kernel(RBFKernel(gamma=0.5), X)
+    assert rbf.sampled and rbf.sample_size == AUDIT_SAMPLE_KNOWN_PSD == 800
+    sig = audit_kernel(SigmoidKernel(gamma=0.5, offset=-1.0), X)
+    assert not sig.sampled and sig.sample_size == 1500 < AUDIT_SAMPLE

@@ -267,3 +267,53 @@ def test_cli_train_apply_verify_with_probabilities(tmp_path):
     r = _cli("train", train, "--label", "lab_decision", "--probabilities",
              "--calibration-folds", "400", store=tmp_path)
     assert r.returncode == 1 and "class 'reject' has 186 training rows" in r.stderr
+
+
+def _our_folds_through_calibrated_classifier_cv(problem, folds, kkt_tol):
+    """scikit-learn's public CalibratedClassifierCV(method="sigmoid", ensemble=False) with our
+    folds (PredefinedSplit) around an estimator that solves our fold duals: it takes the
+    cross-validated decision values itself (cross_val_predict) and fits one sigmoid."""
+    from sklearn.base import BaseEstimator, ClassifierMixin
+    from sklearn.calibration import CalibratedClassifierCV
+    from sklearn.model_selection import PredefinedSplit
+
+    from solver.calibration.crossval import _fold_problem
+    from solver.smo import solve_smo
+
+    class FoldDual(ClassifierMixin, BaseEstimator):
+        def __init__(self, tol=1e-3):
+            self.tol = tol
+
+        def fit(self, rows, y):
+            rows = rows[:, 0].astype(np.int64)
+            sub = _fold_problem(problem, rows, -1)
+            res = solve_smo(sub, kkt_tol=self.tol, trace="off")
+            sv = np.flatnonzero(res.alpha > sub.lower)
+            self.sv, self.coef = sub.X[sv], res.alpha[sv] * sub.y[sv]
+            self.bias, self.classes_ = float(res.bias), np.array([0, 1])
+            return self
+
+        def decision_function(self, rows):
+            X = problem.X[rows[:, 0].astype(np.int64)]
+            return problem.kernel.block(X, self.sv) @ self.coef + self.bias
+
+        def predict(self, rows):
+            return (self.decision_function(rows) > 0).astype(int)
+
+    cal = CalibratedClassifierCV(FoldDual(kkt_tol), method="sigmoid",
+                                 cv=PredefinedSplit(folds), ensemble=False)
+    cal.fit(np.arange(problem.n, dtype=np.float64)[:, None], (problem.y > 0).astype(int))
+    sig = cal.calibrated_classifiers_[0].calibrators[0]
+    return float(sig.a_), float(sig.b_)
+
+
+@pytest.mark.parametrize("name,X,y", _cases()[:2], ids=[c[0] for c in _cases()[:2]])
+def test_sigmoid_matches_calibrated_classifier_cv_with_our_folds(name, X, y):
+    # reference: scikit-learn's CalibratedClassifierCV(method="sigmoid") through its public
+    # interface, given our folds; it computes the out-of-fold values itself
+    pb = _problem(X, y)
+    cal = calibrate(pb, n_folds=5, seed=0, kkt_tol=1e-5)
+    a, b = _our_folds_through_calibrated_classifier_cv(pb, cal.folds, 1e-5)
+    assert cal.success
+    assert abs(cal.A - a) <= 1e-4 * abs(a)
+    assert abs(cal.B - b) <= 1e-4 * max(abs(b), 1e-3 * abs(a))

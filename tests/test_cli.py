@@ -190,9 +190,9 @@ def test_explain_query_file_and_leave_one_out(trained):
                    trained["holdout"], "--top", 2, "--json"))
     assert np.asarray(d["top_rows"]).shape == (120, 2)
     loo = ok_json(kk("explain", trained["smo"], "--store", trained["store"],
-                     "--leave-one-out", "--json"))
+                     "--leave-one-out", "--no-keep", "--json"))
     assert loo["refits"] <= trained["summary"]["n_support"]
-    assert 0 <= loo["error_rate"] <= loo["sv_bound"] <= 1
+    assert 0 <= loo["error_rate"] <= loo["support_vector_bound"] <= 1
 
 
 # --------------------------------------------------------------------------- replay

@@ -144,6 +144,18 @@ def test_challenge_of_a_model_trained_elsewhere_binary(tmp_path):
     assert set(p.verdicts) == {"smo", "qp"}
     assert all(v in ("agree", "agree_within_tolerances") for v in p.verdicts.values())
     assert p.matched > 0 and not p.findings
+    # the external run is a run like any other: it verifies against itself and reports
+    from solver.api import report
+    from solver.store import RunStore
+
+    store = RunStore(tmp_path / "store")
+    v = store.verify(p.external_run)
+    assert v.ok, v.problems
+    rec = store.load(p.external_run)
+    assert rec.result.solver == "external"
+    written = report([p.external_run, p.fresh_runs["smo"]], store=store,
+                     out_dir=tmp_path / "report", formats=("json",))
+    assert Path(written["json"]).exists()
 
 
 def test_challenge_of_a_three_class_model(tmp_path):
@@ -349,8 +361,9 @@ def test_one_vs_one_layout_reproduces_every_pair_and_the_vote():
     f and its label equals the first-maximum vote (ONNX Operators-ml.md, SVMClassifier)."""
     from sklearn.datasets import load_wine
 
-    from solver.exchange.export import pairwise_expansion, vote
     from solver.exchange.onnx_codec import classifier_graph
+    from solver.exchange.subjects import pairwise_expansion
+    from solver.tasks.multiclass import vote
 
     X, y = load_wine(return_X_y=True)
     std = Standardiser.fit(X)
@@ -377,4 +390,6 @@ def test_one_vs_one_layout_reproduces_every_pair_and_the_vote():
         label, scores = run(None, {"features": X.astype(np.float32)})
         assert np.max(np.abs(scores - F)) <= 1e-4 * max(1.0, np.max(np.abs(F)))
         clear = np.min(np.abs(F), axis=1) >= NEAR_ZERO
-        assert np.array_equal(np.asarray(label)[clear], np.array(labels)[vote(F, 3)][clear])
+        # pairs here are oriented f_ij > 0 → class i; the task's vote counts f_ij > 0 → j
+        win = vote(-F, [(0, 1), (0, 2), (1, 2)], 3)[0]
+        assert np.array_equal(np.asarray(label)[clear], np.array(labels)[win][clear])

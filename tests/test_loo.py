@@ -122,10 +122,10 @@ def test_exact_loo_equals_brute_force_and_bounds_hold(solved):
         assert fast.loo_values[i] == pytest.approx(f_i, abs=1e-4)
     # both bounds are upper bounds of the exact leave-one-out error (Vapnik; Joachims 2000,
     # the ξα-estimate for stable solutions: at least one free support vector)
-    assert fast.xi_alpha_stable
-    assert fast.sv_bound >= fast.error_rate
-    assert fast.xi_alpha_estimate >= fast.error_rate
-    assert fast.xi_alpha_estimate <= fast.sv_bound  # ξα only counts support vectors
+    assert fast.slack_bound_applies
+    assert fast.support_vector_bound >= fast.error_rate
+    assert fast.slack_bound_rate >= fast.error_rate
+    assert fast.slack_bound_rate <= fast.support_vector_bound  # ξα only counts support vectors
     # sensitivity from either record agrees on the flips
     s_fast = sensitivity(prob, res, loo=fast)
     s_brute = sensitivity(prob, res, loo=brute)
@@ -169,8 +169,8 @@ def test_xi_alpha_needs_a_free_support_vector():
     pred = cross_val_predict(SVC(kernel="rbf", gamma=3.0, C=0.1, tol=1e-10), prob.X, prob.y,
                              cv=SkLeaveOneOut())
     assert loo.errors == int(np.sum(pred != prob.y)) == prob.n
-    assert not loo.xi_alpha_stable and not loo.to_dict()["xi_alpha_stable"]
-    assert loo.xi_alpha_estimate < loo.error_rate <= loo.sv_bound
+    assert not loo.slack_bound_applies and not loo.to_dict()["slack_bound_applies"]
+    assert loo.slack_bound_rate < loo.error_rate <= loo.support_vector_bound
 
 
 def test_non_support_vectors_are_never_loo_errors(solved):
@@ -327,7 +327,7 @@ def test_progress_summary_and_columns():
     assert seen == [(k + 1, loo.refits) for k in range(loo.refits)]
     d = loo.to_dict()
     assert d["refits"] == loo.n_support and d["estimated_brute_force_seconds"] > 0
-    assert d["xi_alpha_r2"] == pytest.approx(1.0 - prob.kernel.gram(prob.X).min())
+    assert d["kernel_value_range"] == pytest.approx(1.0 - prob.kernel.gram(prob.X).min())
     cols = loo.to_columns()
     assert cols["refitted"].sum() == loo.refits
     assert loo.seconds > 0 and loo.refit_seconds.size == loo.refits

@@ -412,8 +412,12 @@ def test_leave_one_out_attachment_is_shown(work: dict) -> None:
     attached = replace(rec, attachments={**rec.attachments,
                                          "leave_one_out": {**loo.to_dict(), **loo.to_columns()}})
     rc = build_report_content([attached]).runs[0]
-    scalars = dict(rc.loo.rows)
+    scalars = dict(rc.loo_facts)
     assert scalars["errors"] == loo.errors and scalars["method"] == loo.method
+    # every row is shown by its display label with its meaning, never by its key
+    shown = {row[0] for row in rc.loo.rows}
+    assert "leave-one-out errors" in shown and "errors" not in shown
+    assert all(row[2] for row in rc.loo.rows)
     fig = rc.loo_figure
     assert fig is not None and int(np.sum(fig.data["wrong"])) == loo.errors
     # plotted values are signed: a leave-one-out error is a point with y·f₋ᵢ(xᵢ) ≤ 0

@@ -10,17 +10,27 @@ from __future__ import annotations
 
 from .coupling import couple_pairwise, couple_pairwise_rows, coupling_matrix
 from .crossval import ATTACHMENT, DEFAULT_FOLDS, DEFAULT_SEED, Calibration, calibrate
-from .evidence import calibration_evidence
+from .evidence import calibration_evidence, multiclass_evidence
 from .folds import stratified_folds
+from .multiclass import (
+    COUPLING_METHOD,
+    PAIR_CLIP,
+    PairwiseCalibration,
+    pair_calibration,
+    parent_calibration,
+)
 from .platt import FIT_MESSAGES, FitStatus, SigmoidFit, fit_sigmoid, sigmoid_probability
 
 __all__ = [
     "ATTACHMENT",
+    "COUPLING_METHOD",
     "DEFAULT_FOLDS",
     "DEFAULT_SEED",
     "FIT_MESSAGES",
+    "PAIR_CLIP",
     "Calibration",
     "FitStatus",
+    "PairwiseCalibration",
     "SigmoidFit",
     "calibrate",
     "calibration_evidence",
@@ -28,6 +38,9 @@ __all__ = [
     "couple_pairwise_rows",
     "coupling_matrix",
     "fit_sigmoid",
+    "multiclass_evidence",
+    "pair_calibration",
+    "parent_calibration",
     "sigmoid_probability",
     "stratified_folds",
 ]

@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from collections.abc import Mapping
+from collections.abc import Mapping, Sequence
 from typing import Any
 
 import numpy as np
@@ -11,7 +11,7 @@ from ..errors import InvalidInputError
 from ..problem import DualProblem
 from .crossval import ATTACHMENT, Calibration, calibrate
 
-__all__ = ["run_calibration", "recalibrate"]
+__all__ = ["run_calibration", "recalibrate", "recalibrate_pairs"]
 
 
 def run_calibration(record: Any) -> Calibration:
@@ -55,3 +55,22 @@ def recalibrate(stored: Mapping[str, Any], problem: DualProblem) -> dict[str, An
             "A": [old.A, new.A], "B": [old.B, new.B], "status": [old.status.label,
                                                                  new.status.label],
             "n_folds": old.n_folds, "seed": old.seed}
+
+
+def recalibrate_pairs(pairs: Sequence[tuple[Sequence[str], Mapping[str, Any] | None,
+                                            DualProblem]]) -> dict[str, Any] | None:
+    """:func:`recalibrate` for every pair of a multi-class model: ``pairs`` holds (key,
+    stored calibration attachment or None, re-run problem) per pair.  None when no pair
+    carries a calibration; ``agreement`` is ``bitwise`` only when every pair's is."""
+    out = []
+    for key, att, problem in pairs:
+        if att is None:
+            continue
+        r = recalibrate(att, problem)
+        out.append({"pair": [str(v) for v in key], **r})
+    if not out:
+        return None
+    bitwise = len(out) == len(pairs) and all(r["agreement"] == "bitwise" for r in out)
+    return {"agreement": "bitwise" if bitwise else "different", "pairs": out,
+            "n_folds": out[0]["n_folds"], "seed": out[0]["seed"],
+            "max_cv_value_difference": max(r["max_cv_value_difference"] for r in out)}

@@ -26,7 +26,7 @@ from ._shared import (
 
 #: command modules, in the order their commands are listed by ``kktrace --help``
 COMMAND_MODULES = ("train", "inspect", "compare", "explain", "verify", "apply", "report",
-                   "exchange", "upkeep")
+                   "exchange", "upkeep", "diagnose", "study")
 
 
 def build_parser() -> argparse.ArgumentParser:

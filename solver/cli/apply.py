@@ -17,7 +17,11 @@ from ._shared import (
 
 _APPLY_EXAMPLES = """examples:
   kktrace apply RUN_ID new_batches.csv
-  kktrace apply RUN_ID new_batches.csv --out outputs.csv --json"""
+  kktrace apply RUN_ID new_batches.csv --out outputs.csv --json
+
+For a multi-class model (a parent over one-vs-one pairs) every row gets its class, the
+vote count of every class, whether the highest count was tied (the class first in the
+class order wins a tie) and every pair's decision value."""
 
 
 def cmd_apply(args: argparse.Namespace) -> int:
@@ -34,6 +38,8 @@ def cmd_apply(args: argparse.Namespace) -> int:
         return EXIT_OK
     n = len(sc.values)
     print(f"applied run {args.run} to {n} rows of {sc.source or 'the data'} ")
+    if sc.votes is not None:
+        return _print_votes(sc, args)
     if sc.kind != "binary_classification":
         return _print_kind(sc, args)
     if sc.confusion is not None:
@@ -64,6 +70,50 @@ def cmd_apply(args: argparse.Namespace) -> int:
 
 def _prob_column(label: Any) -> str:
     return f"probability_{label}"
+
+
+def _vote_heads(sc: Any) -> list[str]:
+    """CSV / table column names of a parent's output: votes, tie, pair values."""
+    return ([f"votes_{c}" for c in sc.vote_classes] + ["tie"]
+            + [f"value_{a}_vs_{b}" for a, b in sc.member_keys])
+
+
+def _vote_cells(sc: Any, i: int) -> list[str]:
+    return ([str(int(v)) for v in sc.votes[i]] + [str(int(bool(sc.tie[i])))]
+            + [repr(float(v)) for v in sc.values[i]])
+
+
+def _print_votes(sc: Any, args: argparse.Namespace) -> int:
+    """A multi-class parent: class, vote counts and every pair's decision value per row."""
+    print(f"  one-vs-one over {len(sc.member_keys)} pairs: {sc.vote_rule}")
+    print(f"  ties: {sc.tie_rule} ({int(sc.tie.sum())} of {len(sc.labels)} rows tied)")
+    c = sc.confusion
+    if c is not None:
+        print(f"  accuracy {c['accuracy']:.3f}, balanced accuracy {c['balanced_accuracy']:.3f}; "
+              "recall " + ", ".join(f"{k} {v:.3f}" if v is not None else f"{k} n/a"
+                                    for k, v in c["recall"].items()))
+        labs = [str(v) for v in c["labels"]]
+        w = max(len(x) for x in labs) + 2
+        print("  confusion (rows: true, columns: predicted)")
+        print("  " + " " * w + "".join(x.rjust(w) for x in labs))
+        for lab, row in zip(labs, c["matrix"], strict=True):
+            print("  " + lab.ljust(w) + "".join(str(v).rjust(w) for v in row))
+    if sc.probabilities is not None:
+        print(f"  {sc.probability_disagreements} of {len(sc.labels)} rows: the most probable "
+              "class (pairwise coupling) differs from the voted class")
+    if args.out:
+        print(f"  class, votes, ties and pair decision values written to {args.out}")
+        return EXIT_OK
+    heads = ["row", "label", *_vote_heads(sc)]
+    if sc.probabilities is not None:
+        heads += [_prob_column(lab) for lab in sc.probability_labels]
+    print("  ".join(heads))
+    for i, lab in enumerate(sc.labels.tolist()):
+        extra = [] if sc.probabilities is None else [f"{q:.6f}" for q in sc.probabilities[i]]
+        cells = [str(i), str(lab), *_vote_cells(sc, i)[:len(sc.vote_classes) + 1],
+                 *(f"{float(v):+.6f}" for v in sc.values[i]), *extra]
+        print("  ".join(cells))
+    return EXIT_OK
 
 
 def _print_kind(sc: Any, args: argparse.Namespace) -> int:
@@ -97,6 +147,14 @@ def _write_outputs(sc: Any, path: Path) -> None:
 
     with path.open("w", newline="", encoding="utf-8") as fh:
         w = csv.writer(fh, lineterminator="\n")
+        if sc.votes is not None:
+            probs = sc.probabilities
+            heads = [] if probs is None else [_prob_column(lab) for lab in sc.probability_labels]
+            w.writerow(["row", "label", *_vote_heads(sc), *heads])
+            for i, lab in enumerate(sc.labels.tolist()):
+                extra = [] if probs is None else [repr(float(q)) for q in probs[i]]
+                w.writerow([i, lab, *_vote_cells(sc, i), *extra])
+            return
         if sc.kind == "epsilon_regression":
             w.writerow(["row", "prediction"])
             for i, v in enumerate(sc.values.tolist(), 1):

@@ -19,7 +19,10 @@ from ._shared import (
 
 _COMPARE_EXAMPLES = """examples:
   kktrace compare SMO_RUN_ID QP_RUN_ID
-  kktrace compare RUN_A RUN_B --holdout new_batches.csv --json"""
+  kktrace compare RUN_A RUN_B --holdout new_batches.csv --json
+
+Two multi-class models are compared pair by pair; the worst pair decides the verdict and
+every pair is listed."""
 
 
 def cmd_compare(args: argparse.Namespace) -> int:
@@ -31,6 +34,8 @@ def cmd_compare(args: argparse.Namespace) -> int:
     if args.json:
         emit_json(d, sys.stdout)
         return EXIT_OK
+    if d.get("pairs") is not None:
+        return _print_parents(d)
     print(f"run A {args.run_a}\nrun B {args.run_b}")
     print(f"verdict: {d.get('verdict')}")
     if d.get("verdict_text"):
@@ -45,13 +50,33 @@ def cmd_compare(args: argparse.Namespace) -> int:
             rows.append([name, num(m.get("value"), ".4g"), f"{rule} {num(m.get('tolerance'))}",
                          f"{rule} {num(m.get('loose_tolerance'))}", result])
         print_rows(rows)
+    timing = ("solve_seconds", "compile_seconds", "setup_seconds", "total_seconds")
     for run in d.get("runs") or []:
         print("  " + ", ".join(f"{k} {num(v, '.4g') if isinstance(v, float) else v}"
-                               for k, v in run.items()))
+                               for k, v in run.items() if k not in timing))
+        print(f"    time {solver.timing_text(run)}")
     for note in list(d.get("mismatches") or []) + list(d.get("notes") or []):
         print(f"note: {note}")
     return EXIT_OK
 
+
+
+def _print_parents(d: Any) -> int:
+    """Two multi-class models: one verdict (the worst pair's), every pair listed."""
+    print(f"model A {d['run_a']}\nmodel B {d['run_b']}")
+    worst = " vs ".join(d["worst_pair"] or [])
+    print(f"verdict: {d['verdict']}  ({d['rule']}; decided by pair {worst})")
+    rows = [["pair", "verdict", "objective diff", "alpha rms diff", "decision rms diff",
+             "failed measures"]]
+    for p in d["pairs"]:
+        rows.append([" vs ".join(p["pair"]), p["verdict"], num(p.get("objective_abs_diff"), ".3g"),
+                     num(p.get("alpha_rms_diff"), ".3g"), num(p.get("decision_rms_diff"), ".3g"),
+                     ", ".join(p.get("failed") or []) or "-"])
+    print_rows(rows)
+    for p in d["pairs"]:
+        for note in list(p.get("mismatches") or []) + list(p.get("notes") or []):
+            print(f"note: pair {' vs '.join(p['pair'])}: {note}")
+    return EXIT_OK
 
 
 def register(sub: Any) -> None:

@@ -23,9 +23,6 @@ _CHALLENGE_EXAMPLES = """examples:
   kktrace challenge vendor_model.onnx --data batches.csv --label lab_decision --C 10
   kktrace challenge model.json --data batches.csv --label lab_decision --C 1 --no-standardise"""
 
-CAUTION = ("kktrace gives evidence about the optimisation, not a validation sign-off; decisions "
-           "rest with the accountable model owner and validator under local regulation.")
-
 
 def cmd_export(args: argparse.Namespace) -> int:
     import solver
@@ -35,8 +32,10 @@ def cmd_export(args: argparse.Namespace) -> int:
     if args.json:
         emit_json(out.to_dict(), sys.stdout)
         return EXIT_OK if out.check.passed else EXIT_ERROR
-    print(f"run {out.run_id} exported to {out.path} (float32: the ONNX SVM operators hold "
+    print(f"record {out.run_id} exported to {out.path} (float32: the ONNX SVM operators hold "
           "every number as float32)")
+    print(f"  layout:        {out.check.layout}")
+    print(f"  probabilities: {'exported' if out.check.probabilities else 'not exported'}")
     for ev, sets in out.check.evaluators.items():
         for name, f in sets.items():
             line = (f"  {ev:15s} {name:8s} {out.check.rows[name]} rows: largest |difference| "
@@ -45,10 +44,18 @@ def cmd_export(args: argparse.Namespace) -> int:
                 line += (f"; predicted class changed on {f['label_changes']} rows "
                          f"({f['label_changes_away_from_boundary']} with |f| >= "
                          f"{out.check.near_zero:g})")
+            if "probability_max_abs_diff" in f:
+                line += (f"; probabilities differ by at most "
+                         f"{num(f['probability_max_abs_diff'], '.2e')}"
+                         + ("" if f["probability_counted"] else " (reported, not counted)"))
             print(line)
+    for note in out.check.notes:
+        print(f"note: {note}")
     verdict = "passed" if out.check.passed else "FAILED"
     print(f"check {verdict} (limit: relative difference <= "
-          f"{out.check.relative_drift_limit:g}, no class change away from the boundary); "
+          f"{out.check.relative_drift_limit:g}, no class change away from the boundary"
+          + (f", probabilities within {out.check.probability_drift_limit:g}"
+             if out.check.probabilities else "") + "); "
           f"stored with derived run {out.checked_run_id}")
     return EXIT_OK if out.check.passed else EXIT_ERROR
 
@@ -86,7 +93,8 @@ def cmd_challenge(args: argparse.Namespace) -> int:
 
 def register(sub: Any) -> None:
     """Add ``export`` and ``challenge`` to the sub-command table."""
-    p = add_command(sub, "export", "write a run's model as an ONNX file and check it",
+    p = add_command(sub, "export", "write a run's (or multi-class parent's) model as an ONNX "
+                    "file and check it",
                     _EXPORT_EXAMPLES)
     p.add_argument("run", metavar="RUN_ID")
     p.add_argument("--to", metavar="FILE.onnx", required=True, help="the ONNX file to write")

@@ -15,7 +15,6 @@ from ._shared import (
     cell,
     column_kwargs,
     emit_json,
-    kv_lines,
     num,
     positive_int,
     print_rows,
@@ -29,7 +28,12 @@ _EXPLAIN_EXAMPLES = """examples:
   kktrace explain RUN_ID --point "coating_thickness_um=92,dissolution_30min_pct=88,\\
 hardness_n=120,moisture_pct=2.4"
   kktrace explain RUN_ID --query new_batches.csv --top 3 --json
-  kktrace explain RUN_ID --leave-one-out"""
+  kktrace explain RUN_ID --leave-one-out
+
+For a multi-class model (a parent over one-vs-one pairs) the table has one row per
+training point with its category and multiplier in every pair it took part in, and
+"support vector in m of its k-1 pairs"; --point / --query break a query down per pair
+and show the vote."""
 
 
 def _parse_point_text(text: str) -> dict[str, str]:
@@ -54,13 +58,13 @@ def cmd_explain(args: argparse.Namespace) -> int:
     if args.point is not None and args.query is not None:
         raise solver.InvalidInputError("give either --point or --query, not both")
     if args.leave_one_out:
-        loo = solver.leave_one_out(args.run, store=args.store, progress=progress(args))
+        loo = solver.leave_one_out(args.run, store=args.store, progress=progress(args),
+                                   keep=not args.no_keep)
         d = loo.summary() if hasattr(loo, "summary") else to_dict(loo)
         if args.json:
             emit_json(d, sys.stdout)
         else:
-            print(f"leave-one-out for run {args.run}:")
-            print("\n".join(kv_lines(d)))
+            _print_loo(d, args.run)
         return EXIT_OK
     points: Any = None
     if args.point is not None:
@@ -82,21 +86,79 @@ def cmd_explain(args: argparse.Namespace) -> int:
         if args.json:
             emit_json(cols, sys.stdout)
         elif not args.out:
-            _print_columns(cols)
+            traced = getattr(res, "trace_level", "full") is not None
+            _print_columns(cols, None if traced else solver.vocabulary.not_traced(
+                getattr(res, "solver", None), None))
         return EXIT_OK
-    d = to_dict(res)
+    d = res.to_dict() if hasattr(res, "to_dict") else to_dict(res)
     if args.json:
         emit_json(d, sys.stdout)
+    elif d.get("record") == "parent":
+        _print_parent_breakdown(d, args.run)
     else:
         _print_breakdown(d, args.run)
     return EXIT_OK
 
 
-def _print_columns(cols: Mapping[str, list[Any]]) -> None:
+def _print_parent_breakdown(d: Mapping[str, Any], run: str) -> None:
+    """A multi-class parent: per query, the vote, then every pair's breakdown."""
+    print(f"multi-class model {run}: {len(d['pairs'])} pairs vote ({d['vote_rule']}; "
+          f"{d['tie_rule']})")
+    for q, lab in enumerate(d["labels"]):
+        votes = ", ".join(f"{c} {v}" for c, v in zip(d["classes"], d["votes"][q], strict=True))
+        tie = "  (tied: the first class in the class order wins)" if d["tie"][q] else ""
+        print(f"query {q}: class {lab}  [votes {votes}]{tie}")
+        for p in d["pairs"]:
+            val = p["values"][q]
+            print(f"  pair {' vs '.join(p['pair'])}: f(x) = {val:+.6g} → votes "
+                  f"{p['votes_for'][q]}  (bias {num(p['bias'])}, {p['n_support']} support "
+                  "vectors)")
+            rows = p.get("top_rows_parent") or p["top_rows"]
+            for r, c, sh in zip(rows[q], p["top_contributions"][q], p["top_shares"][q],
+                                strict=True):
+                print(f"      training row {int(r):>6d}  {c:+.6g}  ({sh:.1%} of the "
+                      "absolute total)")
+            print(f"      all other support vectors  {p['remainder'][q]:+.6g}  "
+                  f"({p['remainder_share'][q]:.1%})")
+
+
+def _print_columns(cols: Mapping[str, list[Any]], placeholder: str | None) -> None:
+    """The per-point table with the vocabulary's labels; untraced columns say why."""
+    import solver
+
+    voc = solver.vocabulary
     names = [c for c in cols if c != "reason"] + (["reason"] if "reason" in cols else [])
     n = len(next(iter(cols.values()), []))
-    rows = [names] + [[cell(cols[c][i]) for c in names] for i in range(n)]
+
+    def show(c: str, v: Any) -> str:
+        if placeholder is not None and c in voc.TRACE_COLUMNS:
+            return placeholder
+        return cell(v)
+
+    rows = [list(voc.labels(names, voc.POINT_COLUMNS))]
+    rows += [[show(c, cols[c][i]) for c in names] for i in range(n)]
     print_rows(rows, indent="")
+
+
+def _print_loo(d: Mapping[str, Any], run: str) -> None:
+    import solver
+
+    voc = solver.vocabulary
+    print(f"leave-one-out for run {run}:")
+    rows = []
+    for k, v in d.items():
+        if k == "kept_as" or isinstance(v, Mapping):
+            continue
+        if isinstance(v, (list, tuple)):
+            shown = f"[{len(v)} rows]" if len(v) > 8 else (", ".join(map(str, v)) or "none")
+        else:
+            shown = cell(v)
+        rows.append([voc.label(k, voc.LEAVE_ONE_OUT), shown, voc.meaning(k, voc.LEAVE_ONE_OUT)])
+    print_rows(rows, indent="  ")
+    if d.get("kept_as"):
+        print(f"stored as child record {d['kept_as']} of run {run} (the report shows it)")
+    else:
+        print("not stored (--no-keep)")
 
 
 def _print_breakdown(d: Mapping[str, Any], run: str) -> None:
@@ -137,7 +199,10 @@ def register(sub: Any) -> None:
     p.add_argument("--out", metavar="DIR", default=None,
                    help="write the per-point table as CSV and Parquet into DIR")
     p.add_argument("--leave-one-out", action="store_true",
-                   help="exact leave-one-out error and its bounds")
+                   help="exact leave-one-out error and its bounds, stored with the run "
+                        "as a child record")
+    p.add_argument("--no-keep", action="store_true",
+                   help="with --leave-one-out: print the figures without storing them")
     add_column_options(p, "the --query file")
     p.set_defaults(func=cmd_explain)
 

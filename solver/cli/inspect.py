@@ -21,7 +21,8 @@ _RUNS_EXAMPLES = """examples:
 
 _REPLAY_EXAMPLES = """examples:
   kktrace replay RUN_ID --iteration 100
-  kktrace replay RUN_ID --iteration 0 --json"""
+  kktrace replay RUN_ID --iteration 0 --json
+  kktrace replay PARENT_ID --pair release,rework --iteration 50"""
 
 
 def cmd_runs(args: argparse.Namespace) -> int:
@@ -34,7 +35,8 @@ def cmd_runs(args: argparse.Namespace) -> int:
     if args.limit is not None:
         rows = rows[-args.limit:] if args.limit > 0 else []
     if args.json:
-        emit_json(rows, sys.stdout)
+        emit_json([{**r, "record": "parent", "members": listing.parents[r["run_id"]]}
+                   if r["run_id"] in listing.parents else r for r in rows], sys.stdout)
         return EXIT_OK
     if not rows:
         print("no runs match" if any(v is not None for v in filters.values())
@@ -44,6 +46,7 @@ def cmd_runs(args: argparse.Namespace) -> int:
     cols = [c for c in ("run_id", "created", "solver", "status", "iterations", "n",
                         "kernel", "C", "max_violation", "duality_gap", "parent_id")
             if any(c in r for r in rows)]
+    rows = _fold_parents(rows, listing.parents)
     table = [[cell(r.get(c)) for c in cols] for r in rows]
     widths = [max(len(c), *(len(t[i]) for t in table)) for i, c in enumerate(cols)]
     print("  ".join(c.ljust(w) for c, w in zip(cols, widths, strict=True)))
@@ -51,6 +54,35 @@ def cmd_runs(args: argparse.Namespace) -> int:
         print("  ".join(v.ljust(w) for v, w in zip(t, widths, strict=True)))
     _print_leftovers(listing)
     return EXIT_OK
+
+
+def _fold_parents(rows: list[dict[str, Any]], parents: dict[str, list[dict[str, Any]]]
+                  ) -> list[dict[str, Any]]:
+    """Parents (multi-class models) with their member runs folded under them: the
+    parent's row says ``model of N pairs``, each member's id is indented and names its pair."""
+    if not parents:
+        return rows
+    by_id = {r["run_id"]: r for r in rows}
+    folded = {m["run_id"] for ms in parents.values() for m in ms}
+    out = []
+    for r in rows:
+        if r["run_id"] in folded:
+            continue
+        if r["run_id"] not in parents:
+            out.append(r)
+            continue
+        ms = parents[r["run_id"]]
+        out.append({**r, "solver": "model", "parent_id": f"{sum(m['role'] == 'pair' for m in ms)}"
+                    " pairs below"})
+        for m in ms:
+            sub = by_id.get(m["run_id"])
+            if sub is None:
+                continue
+            key = " vs ".join(m.get("key") or [])
+            what = "pair" if m["role"] == "pair" else "challenger"
+            out.append({**sub, "run_id": f"  {what} {key}: {sub['run_id']}",
+                        "parent_id": sub.get("parent_id") or "-"})
+    return out
 
 
 def _print_leftovers(listing: Any) -> None:
@@ -70,7 +102,7 @@ def _print_leftovers(listing: Any) -> None:
 def cmd_replay(args: argparse.Namespace) -> int:
     import solver
 
-    state = solver.replay(args.run, args.iteration, store=args.store)
+    state = solver.replay(args.run, args.iteration, store=args.store, pair=args.pair)
     cert = state.certificate.to_dict()
     d = {
         "run_id": state.run_id,
@@ -79,13 +111,21 @@ def cmd_replay(args: argparse.Namespace) -> int:
         "deltas_applied": state.deltas_applied,
         "certificate": cert,
         "recorded": dict(state.recorded) if state.recorded is not None else None,
+        "run_status": state.run_status.label if state.run_status is not None else None,
+        "run_converged": state.run_status == solver.Status.CONVERGED,
+        "run_message": state.run_message,
+        "run_timing": dict(state.run_timing or {}),
     }
     if args.json:
         d["alpha"] = state.alpha.tolist()
         emit_json(d, sys.stdout)
         return EXIT_OK
-    print(f"run {args.run} rebuilt at iteration {state.iteration} "
+    who = args.run if not args.pair else (f"pair {' vs '.join(args.pair.split(','))} "
+                                           f"(run {state.run_id}) of {args.run}")
+    print(f"{'' if args.pair else 'run '}{who} rebuilt at iteration {state.iteration} "
           f"(snapshot {state.base_iteration} + {state.deltas_applied} recorded steps)")
+    print(f"  run status    {d['run_status']} (of the whole run: {d['run_message']})")
+    print(f"  run time      {solver.timing_text(d['run_timing'])}")
     print(f"  violation     {num(cert['max_violation'], '.3e')}  "
           f"(kkt_tol {num(cert['kkt_tol'], '.1e')})")
     print(f"  objectives    dual {num(cert['dual_objective'], '.8g')}, "
@@ -121,5 +161,7 @@ def register(sub: Any) -> None:
     p.add_argument("run", metavar="RUN_ID")
     p.add_argument("--iteration", type=nonneg_int, required=True, metavar="K",
                    help="iteration to rebuild (0 = start)")
+    p.add_argument("--pair", metavar="A,B", default=None,
+                   help="for a multi-class model: the pair run to rebuild (two class labels)")
     p.set_defaults(func=cmd_replay)
 

@@ -39,6 +39,8 @@ _DEMO_EXAMPLES = """examples:
 
 
 def _run_block(s: Mapping[str, Any], role: str) -> list[str]:
+    import solver
+
     k = s.get("kernel") or {}
     params = dict(k.get("params") or {})
     source = params.pop("gamma_source", None)
@@ -51,14 +53,16 @@ def _run_block(s: Mapping[str, Any], role: str) -> list[str]:
         f"{role} run {s['run_id']}  [{s['solver']}]  {state}",
         f"  kernel        {k.get('name', '?')}" + (f" ({kp})" if kp else "")
         + f", C = {num(s.get('C'))}",
-        f"  iterations    {s['iterations']}  in {s['seconds']:.2f} s",
+        f"  iterations    {s['iterations']}",
+        f"  time          {solver.timing_text(s)}",
         f"  violation     {num(s['max_violation'], '.3e')}  (kkt_tol {num(s['kkt_tol'], '.1e')})",
         f"  objectives    dual (minimised) {num(s['dual_objective'], '.8g')}, "
         f"primal {num(s['primal_objective'], '.8g')}",
         f"  duality gap   {num(s['duality_gap'], '.3e')} = primal + dual  "
         f"(relative {num(s.get('relative_gap'), '.2e')})",
         f"  support       {s['n_support']} of {s['n_rows']} points "
-        f"({s['n_free']} on the margin, {s['n_bounded']} at the bound), bias {num(s['bias'])}",
+        f"({s['n_free']} {solver.term('n_free').label}, {s['n_bounded']} "
+        f"{solver.term('n_bounded').label}), bias {num(s['bias'])}",
     ]
     if s.get("task") == "regression":
         lines.append(f"  task          ε-regression, ε = {num(s.get('epsilon'))}; training RMSE "
@@ -217,6 +221,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
             "reports": {k: str(v) for k, v in res.reports.items()},
             "explanations": {k: str(v) for k, v in res.explanation_files.items()},
             "seconds": res.seconds,
+            "caution": solver.caution_line(prefix=False),
         }, sys.stdout)
     else:
         print(f"data (invented): {res.data_files[0]}  (held out: {res.data_files[1]})")
@@ -228,6 +233,7 @@ def cmd_demo(args: argparse.Namespace) -> int:
         for k, v in res.reports.items():
             print(f"  {k:7s} {v}")
         print(f"demo finished in {res.seconds:.1f} s; store: {res.store}")
+        print(solver.caution_line())
     return EXIT_OK if tr.converged else EXIT_NOT_CONVERGED
 
 

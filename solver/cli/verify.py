@@ -43,7 +43,9 @@ def cmd_verify(args: argparse.Namespace) -> int:
             chain = integ.get("chain") or [args.run]
             print(f"run {args.run}: files intact ({integ.get('files_checked', '?')} digests "
                   "match) and consistent with themselves (certificate recomputed, model "
-                  f"rebuilt, trace replayed); chain of {len(chain)} run(s) checked")
+                  f"rebuilt, trace replayed); chain of {len(chain)} run(s) checked"
+                  + (" (a multi-class model and every member run)" if len(chain) > 1
+                     and not integ.get("parent_id") else ""))
             if res.integrity.trusted:
                 print(f"  signed by {res.integrity.signer}: a trusted key")
         else:
@@ -54,7 +56,13 @@ def cmd_verify(args: argparse.Namespace) -> int:
             print(f"  note: {note}")
         if res.audit_note:
             print(f"  note: {res.audit_note}")
-        if repro is not None:
+        if repro is not None and "pairs" in repro:
+            print(f"re-run of every pair: alpha {repro['agreement']}")
+            for r in repro["pairs"]:
+                print(f"  pair {' vs '.join(r['pair'])} (run {r['run_id']}): alpha "
+                      f"{r['agreement']} (max |difference| "
+                      f"{num(r['max_abs_difference'], '.3g')}); iterations {r['iterations']}")
+        elif repro is not None:
             print(f"re-run: alpha {repro.get('agreement')} (max |difference| "
                   f"{num(repro.get('max_abs_difference'), '.3g')}, tolerance "
                   f"{num(repro.get('tolerance'), '.3g')}); iterations "
@@ -62,7 +70,13 @@ def cmd_verify(args: argparse.Namespace) -> int:
             for note in repro.get("notes") or ():
                 print(f"  note: {note}")
         cal = res.calibration
-        if cal is not None:
+        if cal is not None and "pairs" in cal:
+            print(f"re-run: probability calibration of every pair {cal['agreement']} "
+                  f"({cal['n_folds']} folds, seed {cal['seed']})")
+            for r in cal["pairs"]:
+                print(f"  pair {' vs '.join(r['pair'])}: {r['agreement']} (A "
+                      f"{num(r['A'][1], '.10g')}, B {num(r['B'][1], '.10g')})")
+        elif cal is not None:
             print(f"re-run: probability calibration {cal['agreement']} ({cal['n_folds']} folds, "
                   f"seed {cal['seed']}; A {num(cal['A'][0], '.10g')} vs "
                   f"{num(cal['A'][1], '.10g')}, B {num(cal['B'][0], '.10g')} vs "

@@ -1,12 +1,14 @@
-"""Export a stored run's model to ONNX and check the file with two independent evaluators.
+"""Export a stored run or multi-class parent to ONNX and check the file with two independent
+evaluators.
 
-Each problem kind maps to the standard's operators through :data:`EXPORT_MAPPINGS`
-(problem kind → function building the ONNX model and reading kktrace's decision values
-back out of the evaluators' outputs); nothing branches on the kind elsewhere.
+What is exported is an :class:`~solver.exchange.subjects.ExportSubject`: a run maps by its
+problem kind, a parent through its task (:mod:`solver.exchange.subjects`); nothing here
+branches on the kind.
 
 The check runs the exported file with onnxruntime and with the ``onnx`` package's
-reference evaluator on the run's training rows (in raw units) and on any held-out rows
-given, and compares the decision values with kktrace's own (float64).  The ONNX SVM
+reference evaluator on the training rows (in raw units) and on any held-out rows given,
+and compares the decision values (every pair's, for one-vs-one), the predicted classes and
+any exported probabilities with kktrace's own (float64).  The ONNX SVM
 operators hold every number as float32, so differences of float32 rounding are expected:
 the check reports them (largest absolute difference, the same relative to the largest
 |f|, and the share of rows whose predicted class changes, counting separately the rows
@@ -24,124 +26,53 @@ from typing import Any
 import numpy as np
 
 from ..errors import InvalidInputError
-from ..model import model_from_solution
-from ..problem import ONE_CLASS_KIND, REGRESSION_KIND
 from ..run import RunRecord
-from .onnx_codec import (
-    INPUT_NAME,
-    KernelExpansion,
-    PairwiseExpansion,
-    classifier_graph,
-    regressor_graph,
-)
+from .onnx_codec import INPUT_NAME
+from .subjects import ExportSubject, run_subject
 
-__all__ = ["ExportCheck", "ExportOutcome", "EXPORT_MAPPINGS", "build_onnx", "check_onnx",
-           "export_run", "NEAR_ZERO"]
+__all__ = ["ExportCheck", "ExportOutcome", "build_onnx", "check_onnx", "export_run",
+           "NEAR_ZERO", "as_subject"]
 
 #: |f| below this counts as "near the decision boundary": a float32 sign flip there is expected.
 NEAR_ZERO = 1e-4
 #: The export passes its check when max |Δf| ≤ this × max(1, max |f|) (float32 rounding).
 RELATIVE_DRIFT_LIMIT = 1e-4
+#: Largest |Δp| of exported probabilities counted as passing.  Both evaluators compute the
+#: sigmoid in float32 and onnxruntime with a fast approximation of exp: measured differences
+#: up to 2.7e-3 on bundled iris, wine and breast cancer (tests/test_exchange_tasks.py).
+PROBABILITY_DRIFT_LIMIT = 5e-3
+#: The onnx package's reference evaluator (onnx 1.x, ``multiclass_probability``) fills the
+#: off-diagonal of its coupling matrix with a dot product where the coupling method needs
+#: the elementwise product, so its probabilities for three or more classes are not the
+#: coupled ones; they are reported, not counted (tests/test_exchange_tasks.py shows it).
+REFERENCE_COUPLING_NOTE = (
+    "the onnx reference evaluator's pairwise coupling (multiclass_probability) uses a dot "
+    "product where the coupling needs elementwise products, so its probabilities for three "
+    "or more classes are reported, not counted")
 
 
-@dataclass(frozen=True)
-class Mapping2Onnx:
-    """How one problem kind is expressed in ONNX.
-
-    build(record, doc, integer_labels) → ONNX model; values(outputs) → kktrace's decision
-    values (m,) from an evaluator's outputs; labels(outputs) → the evaluator's predicted
-    classes (m,) as text, or None; ours(model, f) → kktrace's predicted classes as text.
-    """
-
-    build: Callable[..., Any]
-    values: Callable[[list[np.ndarray]], np.ndarray]
-    labels: Callable[[list[np.ndarray]], np.ndarray | None]
-    ours: Callable[[Any, np.ndarray], np.ndarray]
+def as_subject(x: RunRecord | ExportSubject) -> ExportSubject:
+    """The export subject of a run record (a subject is returned as is)."""
+    return x if isinstance(x, ExportSubject) else run_subject(x)
 
 
-def _binary_model(rec: RunRecord, doc: str, integer_labels: bool | None = None) -> Any:
-    m = model_from_solution(rec.problem, rec.result, rec.standardiser)
-    neg, pos = m.labels
-    y = np.sign(m.coefficients)
-    # class 0 (first listed) is kktrace's negative label; the standard votes for class 0 when
-    # its pair value is > 0, so the exported pair value is −f: coefficients −αy, rho −b.
-    order = np.concatenate([np.flatnonzero(y < 0), np.flatnonzero(y >= 0)])
-    exp = PairwiseExpansion(
-        points=m.support_points[order], per_class=(int(np.sum(y < 0)), int(np.sum(y >= 0))),
-        coefficients=-m.coefficients[order][None, :], biases=np.array([-m.bias]),
-        labels=(neg, pos), kernel=m.kernel, centre=m.standardiser.centre,
-        scale=m.standardiser.scale)
-    return classifier_graph(exp, doc=doc, integer_labels=integer_labels)
+def _doc(subject: ExportSubject) -> str:
+    return (f"kktrace record {subject.run_id} ({subject.layout}); float32 model (ONNX SVM "
+            "attributes are float32). kktrace gives evidence about the optimisation, not a "
+            "validation sign-off.")
 
 
-def _binary_values(out: list[np.ndarray]) -> np.ndarray:
-    # second output without probability attributes: [−g, g] for the exported pair value g = −f
-    return np.asarray(out[1], dtype=np.float64)[:, 0]
+def _with_probabilities(subject: ExportSubject) -> bool:
+    return subject.our_probabilities is not None
 
 
-def _expansion(rec: RunRecord) -> KernelExpansion:
-    m = model_from_solution(rec.problem, rec.result, rec.standardiser)
-    return KernelExpansion(points=m.support_points, coefficients=m.coefficients, bias=m.bias,
-                           kernel=m.kernel, centre=m.standardiser.centre,
-                           scale=m.standardiser.scale)
-
-
-def _regression_model(rec: RunRecord, doc: str, integer_labels: bool | None = None) -> Any:
-    return regressor_graph(_expansion(rec), doc=doc)
-
-
-def _one_class_model(rec: RunRecord, doc: str, integer_labels: bool | None = None) -> Any:
-    # f(x) = Σ αᵢK(xᵢ, x) − ρ: the bias −ρ is the regressor's rho; Sign gives the flag
-    return regressor_graph(_expansion(rec), doc=doc, flag=True)
-
-
-def _first_column(out: list[np.ndarray]) -> np.ndarray:
-    return np.asarray(out[0], dtype=np.float64)[:, 0]
-
-
-def _text(a: Any) -> np.ndarray:
-    return np.asarray([str(v) for v in np.asarray(a).tolist()])
-
-
-def _inlier_text(f: np.ndarray) -> np.ndarray:
-    return np.where(np.asarray(f) >= 0, "inlier", "outlier")
-
-
-EXPORT_MAPPINGS: dict[str, Mapping2Onnx] = {
-    "binary_classification": Mapping2Onnx(
-        build=_binary_model, values=_binary_values, labels=lambda out: _text(out[0]),
-        ours=lambda model, f: _text(model.classify_values(f))),
-    REGRESSION_KIND: Mapping2Onnx(
-        build=_regression_model, values=_first_column, labels=lambda out: None,
-        ours=lambda model, f: np.asarray([], dtype=str)),
-    # the flag output is Sign(f): 0 on the boundary counts as inlier, as kktrace's f ≥ 0
-    ONE_CLASS_KIND: Mapping2Onnx(
-        build=_one_class_model, values=_first_column,
-        labels=lambda out: _inlier_text(np.asarray(out[1], dtype=np.float64)[:, 0]),
-        ours=lambda model, f: _inlier_text(f)),
-}
-
-
-def _mapping(rec: RunRecord) -> Mapping2Onnx:
-    kind = rec.problem.kind
-    found = EXPORT_MAPPINGS.get(kind)
-    if found is None:
-        raise InvalidInputError(f"run {rec.run_id}: problem kind {kind!r} has no ONNX export "
-                                f"mapping (kktrace exports {', '.join(sorted(EXPORT_MAPPINGS))})")
-    if rec.problem.kernel.name in ("callable", "precomputed"):
-        raise InvalidInputError(f"run {rec.run_id}: a {rec.problem.kernel.name} kernel cannot "
-                                "be expressed by the ONNX SVM operators")
-    return found
-
-
-def build_onnx(rec: RunRecord) -> bytes:
-    """The ONNX file (bytes) for a stored run, checked with ``onnx.checker.check_model``."""
+def build_onnx(x: RunRecord | ExportSubject) -> bytes:
+    """The ONNX file (bytes) for a stored run or subject, checked with
+    ``onnx.checker.check_model(full_check=True)``; probabilities included when fitted."""
     import onnx
 
-    mapping = _mapping(rec)
-    doc = (f"kktrace run {rec.run_id}; float32 model (ONNX SVM attributes are float32). "
-           "kktrace gives evidence about the optimisation, not a validation sign-off.")
-    model = mapping.build(rec, doc)
+    subject = as_subject(x)
+    model = subject.build(_doc(subject), False, _with_probabilities(subject))
     onnx.checker.check_model(model, full_check=True)
     return model.SerializeToString()
 
@@ -156,18 +87,25 @@ class ExportCheck:
     relative_drift_limit: float
     near_zero: float
     passed: bool
+    layout: str = "binary"
+    probabilities: bool = False
+    probability_drift_limit: float = PROBABILITY_DRIFT_LIMIT
+    notes: tuple[str, ...] = ()
 
     def to_dict(self) -> dict[str, Any]:
         """Plain data (the stored attachment ``onnx_export``)."""
         return {"sha256": self.sha256, "evaluators": {k: dict(v) for k, v in
                                                       self.evaluators.items()},
                 "rows": dict(self.rows), "relative_drift_limit": self.relative_drift_limit,
-                "near_zero": self.near_zero, "passed": self.passed,
+                "near_zero": self.near_zero, "passed": self.passed, "layout": self.layout,
+                "probabilities": self.probabilities,
+                "probability_drift_limit": self.probability_drift_limit,
+                "notes": list(self.notes),
                 "float32": "the ONNX SVM operators hold every number as float32"}
 
 
 def _compare(name: str, ours: np.ndarray, theirs: np.ndarray, our_labels: np.ndarray | None,
-             their_labels: np.ndarray | None) -> dict[str, Any]:
+             their_labels: np.ndarray | None, near: np.ndarray) -> dict[str, Any]:
     diff = np.abs(theirs - ours)
     scale = max(1.0, float(np.max(np.abs(ours)))) if ours.size else 1.0
     out: dict[str, Any] = {
@@ -178,60 +116,92 @@ def _compare(name: str, ours: np.ndarray, theirs: np.ndarray, our_labels: np.nda
     }
     if our_labels is not None and their_labels is not None:
         changed = np.asarray(our_labels) != np.asarray(their_labels)
-        near = np.abs(ours) < NEAR_ZERO
         out.update(label_changes=int(changed.sum()),
                    label_change_share=float(changed.mean()) if changed.size else 0.0,
                    label_changes_away_from_boundary=int(np.sum(changed & ~near)))
     return out
 
 
-def check_onnx(rec: RunRecord, data: bytes,
+def _evaluators(subject: ExportSubject, data: bytes) -> dict[str, dict[str, Any]]:
+    """Per evaluator: ``plain`` (decision values), ``file`` (labels), ``probs`` runners.
+
+    onnxruntime runs the exported bytes; the reference evaluator runs copies with the labels
+    written as 0 … k−1 (onnx 1.x cannot give string labels for two classes).  Decision values
+    are read from copies without probability attributes (with them, ``scores`` holds
+    probabilities).
+    """
+    import onnxruntime as ort
+    from onnx.reference import ReferenceEvaluator
+
+    def rt(b: bytes) -> Callable[[np.ndarray], list[np.ndarray]]:
+        s = ort.InferenceSession(b, providers=["CPUExecutionProvider"])
+        return lambda x: s.run(None, {INPUT_NAME: x})
+
+    def ref(model: Any) -> Callable[[np.ndarray], list[np.ndarray]]:
+        r = ReferenceEvaluator(model)
+        return lambda x: r.run(None, {INPUT_NAME: x})
+
+    probs = _with_probabilities(subject)
+    plain_rt = (rt(subject.build("", False, False).SerializeToString()) if probs else rt(data))
+    ref_ints = subject.classes is not None
+    plain_ref = ref(subject.build("", ref_ints, False))
+    return {
+        "onnxruntime": {"plain": plain_rt, "file": rt(data) if probs else plain_rt,
+                        "ints": False},
+        "onnx_reference": {"plain": plain_ref,
+                           "file": ref(subject.build("", ref_ints, True)) if probs
+                           else plain_ref, "ints": ref_ints},
+    }
+
+
+def check_onnx(x: RunRecord | ExportSubject, data: bytes,
                holdout: np.ndarray | None = None) -> ExportCheck:
     """Run the exported bytes with onnxruntime and ``onnx.reference`` and compare with kktrace.
 
     holdout : optional (m, d) held-out rows in raw units, checked as a second row set.
+    Decision values (every pair's for one-vs-one), predicted classes and, when exported,
+    probabilities are compared; the reference evaluator's multi-class probabilities are
+    reported only (:data:`REFERENCE_COUPLING_NOTE`).
     """
-    import onnx
-    import onnxruntime as ort
-    from onnx.reference import ReferenceEvaluator
-
-    mapping = _mapping(rec)
-    model = model_from_solution(rec.problem, rec.result, rec.standardiser)
-    std = rec.standardiser
-    sets = {"training": rec.problem.X * std.scale + std.centre}
+    subject = as_subject(x)
+    sets = {"training": np.asarray(subject.training, dtype=np.float64)}
     if holdout is not None:
         sets["holdout"] = np.asarray(holdout, dtype=np.float64)
-    session = ort.InferenceSession(data, providers=["CPUExecutionProvider"])
-    # the reference evaluator (onnx 1.x) cannot give string labels for two classes; it runs
-    # a copy with the labels written as 0 … k−1 and is compared on decision values only
-    ref_model = relabelled = onnx.load_from_string(data)
-    if any(a.name == "classlabels_strings" for n in ref_model.graph.node for a in n.attribute):
-        ref_model = relabelled = mapping.build(rec, "", integer_labels=True)
-    else:
-        relabelled = None
-    reference = ReferenceEvaluator(ref_model)
-    evaluators: dict[str, dict[str, Any]] = {"onnxruntime": {}, "onnx_reference": {}}
+    runners = _evaluators(subject, data)
+    evaluators: dict[str, dict[str, Any]] = {name: {} for name in runners}
     passed = True
+    notes = [subject.probability_note]
+    multi = subject.classes is not None and len(subject.classes) > 2
+    if _with_probabilities(subject) and multi:
+        notes.append(REFERENCE_COUPLING_NOTE)
     for name, X in sets.items():
-        ours = model.values(X)
-        our_labels = mapping.ours(model, ours)
+        ours = subject.ours(X)
+        near = np.min(np.abs(ours), axis=1) < NEAR_ZERO
+        our_labels = subject.our_labels(X)
+        our_p = subject.our_probabilities(X) if _with_probabilities(subject) else None
         x32 = np.ascontiguousarray(X, dtype=np.float32)
-        out_rt = session.run(None, {INPUT_NAME: x32})
-        out_ref = reference.run(None, {INPUT_NAME: x32})
-        # the reference copy of a string-labelled classifier carries 0 … k−1, not the labels
-        ref_labelled = ref_model is not relabelled
-        for ev, out, labelled in (("onnxruntime", out_rt, True), ("onnx_reference", out_ref,
-                                                                  ref_labelled)):
-            theirs = mapping.values(out)
-            lab = mapping.labels(out) if labelled else None
-            facts = _compare(name, ours, theirs, our_labels if lab is not None else None, lab)
-            evaluators[ev][name] = facts
+        for ev, run in runners.items():
+            plain = run["plain"](x32)
+            out = run["file"](x32) if run["file"] is not run["plain"] else plain
+            facts = _compare(name, ours, subject.theirs(plain), our_labels,
+                             subject.their_labels(out, run["ints"]), near)
             passed &= facts["finite"] and facts["max_rel_diff"] <= RELATIVE_DRIFT_LIMIT
             passed &= facts.get("label_changes_away_from_boundary", 0) == 0
+            if our_p is not None and subject.their_probabilities is not None:
+                dp = np.abs(subject.their_probabilities(out) - our_p)
+                counted = not (multi and ev == "onnx_reference")
+                facts["probability_max_abs_diff"] = float(dp.max()) if dp.size else 0.0
+                facts["probability_counted"] = counted
+                if counted:
+                    passed &= bool(np.all(np.isfinite(dp))) and \
+                        facts["probability_max_abs_diff"] <= PROBABILITY_DRIFT_LIMIT
+            evaluators[ev][name] = facts
     return ExportCheck(sha256=hashlib.sha256(data).hexdigest(), evaluators=evaluators,
                        rows={k: int(v.shape[0]) for k, v in sets.items()},
                        relative_drift_limit=RELATIVE_DRIFT_LIMIT, near_zero=NEAR_ZERO,
-                       passed=bool(passed))
+                       passed=bool(passed), layout=subject.layout,
+                       probabilities=_with_probabilities(subject),
+                       probability_drift_limit=PROBABILITY_DRIFT_LIMIT, notes=tuple(notes))
 
 
 def write_export(path: Path, data: bytes) -> Path:
@@ -260,78 +230,37 @@ class ExportOutcome:
                 "checked_run_id": self.checked_run_id, "check": self.check.to_dict()}
 
 
-def export_run(rec: RunRecord, to: str | Path, *, store: Any,
-               holdout: np.ndarray | None = None) -> ExportOutcome:
-    """Export ``rec`` (a stored run) to ``to``, check it, and store the check.
+def _store_check(store: Any, record: Any, check: ExportCheck, path: Path) -> str:
+    """Save a record derived from ``record`` that carries the check as ``onnx_export``.
 
-    Stored runs never change, so the check is kept as the attachment ``onnx_export`` of a
-    derived run (parent: the exported run).  The file is written only after the check ran.
+    Stored runs never change, so the check lives on a derived run (parent: the exported
+    run) or, for a parent record, a derived parent over the same members
+    (``info.derived_from``).
     """
     from dataclasses import replace
 
     from ..plaindata import to_plain
+    from ..run import ParentRecord
 
-    data = build_onnx(rec)
-    check = check_onnx(rec, data, holdout)
+    att = to_plain({**check.to_dict(), "file": path.name})
+    if isinstance(record, ParentRecord):
+        derived = replace(record, attachments={**record.attachments, "onnx_export": att},
+                          info={**record.info, "derived_from": record.run_id},
+                          run_id=None, created=None, manifest=None)
+        return store.save_parent(derived)
+    child = replace(record, attachments={**record.attachments, "onnx_export": att})
+    return store.save(child, parent=record.run_id)
+
+
+def export_run(record: Any, to: str | Path, *, store: Any, holdout: np.ndarray | None = None,
+               subject: ExportSubject | None = None) -> ExportOutcome:
+    """Export ``record`` (a stored run, or a parent with its ``subject``) to ``to``, check it,
+    and store the check (:func:`_store_check`).  The file is written only after the check
+    ran."""
+    subject = subject or as_subject(record)
+    data = build_onnx(subject)
+    check = check_onnx(subject, data, holdout)
     path = write_export(Path(to), data)
-    child = replace(rec, attachments={**rec.attachments,
-                                      "onnx_export": to_plain({**check.to_dict(),
-                                                               "file": path.name})})
-    checked = store.save(child, parent=rec.run_id)
-    return ExportOutcome(path=path, check=check, run_id=str(rec.run_id), checked_run_id=checked)
-
-
-def pairwise_expansion(
-    labels: tuple[Any, ...], row_class: np.ndarray, points: np.ndarray,
-    pairs: list[tuple[int, int, np.ndarray, np.ndarray, float]], kernel: Any,
-    centre: np.ndarray, scale: np.ndarray,
-) -> PairwiseExpansion:
-    """The standard's one-vs-one layout from k(k−1)/2 binary expansions.
-
-    labels : the k classes in order; row_class (n,) class index of every training row;
-    points (n, d) standardised training rows; pairs : for each pair (i, j), i < j, in the
-    standard's order (0,1), (0,2), …: (i, j, rows, coefficients, bias) with ``rows`` the
-    training rows of the pair's support vectors and the expansion oriented so that
-    f_ij > 0 is a vote for class i.  A row that is a support vector in some of its pairs
-    only gets coefficient 0 in the others.
-    """
-    k = len(labels)
-    used = np.zeros(row_class.shape[0], dtype=bool)
-    for _, _, rows, _, _ in pairs:
-        used[np.asarray(rows, dtype=np.int64)] = True
-    order = np.concatenate([np.flatnonzero(used & (row_class == c)) for c in range(k)])
-    column = np.full(row_class.shape[0], -1, dtype=np.int64)
-    column[order] = np.arange(order.size)
-    coef = np.zeros((k - 1, order.size))
-    biases = []
-    expected = [(i, j) for i in range(k) for j in range(i + 1, k)]
-    if [(i, j) for i, j, *_ in pairs] != expected:
-        raise InvalidInputError("pairs must come in the order (0,1), (0,2), …, (1,2), …")
-    for i, j, rows, a, b in pairs:
-        rows = np.asarray(rows, dtype=np.int64)
-        a = np.asarray(a, dtype=np.float64)
-        ci = row_class[rows] == i
-        cj = row_class[rows] == j
-        if not np.all(ci | cj):
-            raise InvalidInputError(f"pair ({i}, {j}) lists a row of another class")
-        coef[j - 1, column[rows[ci]]] = a[ci]
-        coef[i, column[rows[cj]]] = a[cj]
-        biases.append(float(b))
-    per_class = tuple(int(np.sum(row_class[order] == c)) for c in range(k))
-    return PairwiseExpansion(points=points[order], per_class=per_class, coefficients=coef,
-                             biases=np.asarray(biases), labels=tuple(labels), kernel=kernel,
-                             centre=np.asarray(centre), scale=np.asarray(scale))
-
-
-def vote(pair_values: np.ndarray, k: int) -> np.ndarray:
-    """Class index by one-vs-one votes: pair (i, j) votes i when f_ij > 0, else j; the
-    first class with the most votes wins (the standard's rule, ONNX Operators-ml.md)."""
-    votes = np.zeros((pair_values.shape[0], k), dtype=np.int64)
-    p = 0
-    for i in range(k):
-        for j in range(i + 1, k):
-            win = pair_values[:, p] > 0
-            votes[win, i] += 1
-            votes[~win, j] += 1
-            p += 1
-    return np.argmax(votes, axis=1)
+    checked = _store_check(store, record, check, path)
+    return ExportOutcome(path=path, check=check, run_id=str(record.run_id),
+                         checked_run_id=checked)

@@ -40,6 +40,7 @@ __all__ = [
     "kernel_from_attributes",
     "classifier_graph",
     "regressor_graph",
+    "vote_graph",
     "ParsedModel",
     "parse_model",
 ]
@@ -134,12 +135,13 @@ def _front(helper: Any, centre: np.ndarray, scale: np.ndarray) -> tuple[list[Any
 
 
 def _model(helper: Any, nodes: list[Any], d: int, outputs: list[Any], name: str,
-           doc: str) -> Any:
+           doc: str, initializers: Sequence[Any] = ()) -> Any:
     import onnx
 
     graph = helper.make_graph(
         nodes, name, [helper.make_tensor_value_info(INPUT_NAME, onnx.TensorProto.FLOAT,
-                                                    [None, d])], outputs)
+                                                    [None, d])], outputs,
+        initializer=list(initializers))
     model = helper.make_model(graph, opset_imports=[helper.make_opsetid("", ONNX_OPSET),
                                                     helper.make_opsetid("ai.onnx.ml",
                                                                         ONNX_ML_OPSET)],
@@ -148,12 +150,29 @@ def _model(helper: Any, nodes: list[Any], d: int, outputs: list[Any], name: str,
     return model
 
 
+def _label_attributes(labels: Sequence[Hashable], integer_labels: bool | None
+                      ) -> tuple[list[Any], int]:
+    """(label values, ONNX element type): integers when every label is one (or 0 … k−1 when
+    ``integer_labels`` forces it), else text."""
+    import onnx
+
+    ints = integer_labels if integer_labels is not None else all(
+        isinstance(v, (int, np.integer)) and not isinstance(v, bool) for v in labels)
+    if ints:
+        return ([int(v) for v in labels] if integer_labels is None
+                else list(range(len(labels)))), onnx.TensorProto.INT64
+    return [str(v) for v in labels], onnx.TensorProto.STRING
+
+
 def classifier_graph(expansion: PairwiseExpansion, *, doc: str = "",
-                     integer_labels: bool | None = None) -> Any:
+                     integer_labels: bool | None = None,
+                     sigmoids: Sequence[tuple[float, float]] | None = None) -> Any:
     """An ONNX model: ``Scaler`` → ``SVMClassifier`` with outputs ``label`` and ``scores``.
 
     Labels are written as ``classlabels_ints`` when every label is an integer (or when
     ``integer_labels`` forces it, then as 0 … k−1), else as ``classlabels_strings``.
+    ``sigmoids`` (one (prob_a, prob_b) per pair, pair order) become the standard's
+    probability attributes; ``scores`` then holds the k class probabilities.
     """
     import onnx
     from onnx import helper
@@ -161,26 +180,93 @@ def classifier_graph(expansion: PairwiseExpansion, *, doc: str = "",
     e = expansion
     kind, params = kernel_attributes(e.kernel)
     nodes, x = _front(helper, e.centre, e.scale)
-    ints = integer_labels if integer_labels is not None else all(
-        isinstance(v, (int, np.integer)) and not isinstance(v, bool) for v in e.labels)
-    if ints:
-        labels = ([int(v) for v in e.labels] if integer_labels is None
-                  else list(range(len(e.labels))))
-        label_attr: dict[str, Any] = {"classlabels_ints": labels}
-        label_type = onnx.TensorProto.INT64
-    else:
-        label_attr = {"classlabels_strings": [str(v) for v in e.labels]}
-        label_type = onnx.TensorProto.STRING
+    labels, label_type = _label_attributes(e.labels, integer_labels)
+    label_attr: dict[str, Any] = {("classlabels_ints" if label_type == onnx.TensorProto.INT64
+                                   else "classlabels_strings"): labels}
+    if sigmoids is not None:
+        if len(sigmoids) != len(e.biases):
+            raise InvalidInputError(f"{len(sigmoids)} sigmoids for {len(e.biases)} pairs")
+        label_attr["prob_a"] = _f32([a for a, _ in sigmoids])
+        label_attr["prob_b"] = _f32([b for _, b in sigmoids])
     nodes.append(helper.make_node(
         "SVMClassifier", [x], ["label", "scores"], domain="ai.onnx.ml",
         coefficients=_f32(e.coefficients), support_vectors=_f32(e.points),
         rho=_f32(e.biases), vectors_per_class=[int(c) for c in e.per_class],
         kernel_type=kind, kernel_params=_f32(params), post_transform="NONE", **label_attr))
     k = len(e.labels)
-    width = 2 if k == 2 else k * (k - 1) // 2
+    width = 2 if k == 2 else (k if sigmoids is not None else k * (k - 1) // 2)
     outputs = [helper.make_tensor_value_info("label", label_type, [None]),
                helper.make_tensor_value_info("scores", onnx.TensorProto.FLOAT, [None, width])]
     return _model(helper, nodes, e.points.shape[1], outputs, "kktrace_classifier", doc)
+
+
+def _regressor_nodes(helper: Any, e: KernelExpansion, out: str, suffix: str = ""
+                     ) -> list[Any]:
+    """``Scaler`` → ``SVMRegressor`` computing e's f(x) into the (N, 1) tensor ``out``."""
+    kind, params = kernel_attributes(e.kernel)
+    scaled = f"standardised{suffix}"
+    return [
+        helper.make_node("Scaler", [INPUT_NAME], [scaled], domain="ai.onnx.ml",
+                         offset=_f32(e.centre), scale=_f32(1.0 / np.asarray(e.scale))),
+        helper.make_node(
+            "SVMRegressor", [scaled], [out], domain="ai.onnx.ml",
+            coefficients=_f32(e.coefficients), support_vectors=_f32(e.points),
+            rho=_f32([e.bias]), n_supports=int(e.points.shape[0]), kernel_type=kind,
+            kernel_params=_f32(params), post_transform="NONE", one_class=0),
+    ]
+
+
+def vote_graph(pairs: Sequence[KernelExpansion], indices: Sequence[tuple[int, int]],
+               labels: Sequence[Hashable], *, doc: str = "",
+               integer_labels: bool | None = None) -> Any:
+    """One-vs-one by votes, each pair with its own standardiser and kernel.
+
+    Outputs ``label`` (N,), ``scores`` (N, q) — pair p = (i, j) gives kktrace's f_ij, whose
+    positive class is j — and ``votes`` (N, k).  Pair (i, j) votes j where f_ij > 0, else i
+    (``Greater`` → ``Cast`` → ``MatMul`` with a (q, k) matrix of +1 at j and −1 at i, plus
+    the count of pairs in which each class is the first); ``ArgMax`` returns the first
+    maximum, so a tie goes to the class first in the class order, as kktrace's own rule.
+    """
+    import onnx
+    from onnx import helper, numpy_helper
+
+    k, q = len(labels), len(pairs)
+    if q != len(indices) or q == 0:
+        raise InvalidInputError(f"{q} pair expansions for {len(indices)} pairs")
+    nodes: list[Any] = []
+    for p, e in enumerate(pairs):
+        nodes += _regressor_nodes(helper, e, f"pair_{p}", f"_{p}")
+    matrix = np.zeros((q, k), dtype=np.float32)
+    base = np.zeros(k, dtype=np.float32)
+    for p, (i, j) in enumerate(indices):
+        matrix[p, j], matrix[p, i] = 1.0, -1.0
+        base[i] += 1.0
+    values, label_type = _label_attributes(labels, integer_labels)
+    if label_type == onnx.TensorProto.INT64:
+        label_tensor = numpy_helper.from_array(np.asarray(values, dtype=np.int64),
+                                               "class_labels")
+    else:
+        label_tensor = helper.make_tensor("class_labels", onnx.TensorProto.STRING, [k],
+                                          [v.encode("utf-8") for v in values])
+    inits = [numpy_helper.from_array(np.zeros(1, dtype=np.float32), "zero"),
+             numpy_helper.from_array(matrix, "vote_matrix"),
+             numpy_helper.from_array(base, "vote_base"), label_tensor]
+    nodes += [
+        helper.make_node("Concat", [f"pair_{p}" for p in range(q)], ["scores"], axis=1),
+        helper.make_node("Greater", ["scores", "zero"], ["positive_side"]),
+        helper.make_node("Cast", ["positive_side"], ["positive_share"],
+                         to=onnx.TensorProto.FLOAT),
+        helper.make_node("MatMul", ["positive_share", "vote_matrix"], ["vote_change"]),
+        helper.make_node("Add", ["vote_change", "vote_base"], ["votes"]),
+        helper.make_node("ArgMax", ["votes"], ["winner"], axis=1, keepdims=0,
+                         select_last_index=0),
+        helper.make_node("Gather", ["class_labels", "winner"], ["label"], axis=0),
+    ]
+    outputs = [helper.make_tensor_value_info("label", label_type, [None]),
+               helper.make_tensor_value_info("scores", onnx.TensorProto.FLOAT, [None, q]),
+               helper.make_tensor_value_info("votes", onnx.TensorProto.FLOAT, [None, k])]
+    return _model(helper, nodes, pairs[0].points.shape[1], outputs, "kktrace_one_vs_one",
+                  doc, inits)
 
 
 def regressor_graph(expansion: KernelExpansion, *, doc: str = "", flag: bool = False) -> Any:
@@ -193,13 +279,7 @@ def regressor_graph(expansion: KernelExpansion, *, doc: str = "", flag: bool = F
     from onnx import helper
 
     e = expansion
-    kind, params = kernel_attributes(e.kernel)
-    nodes, x = _front(helper, e.centre, e.scale)
-    nodes.append(helper.make_node(
-        "SVMRegressor", [x], ["value"], domain="ai.onnx.ml",
-        coefficients=_f32(e.coefficients), support_vectors=_f32(e.points),
-        rho=_f32([e.bias]), n_supports=int(e.points.shape[0]), kernel_type=kind,
-        kernel_params=_f32(params), post_transform="NONE", one_class=0))
+    nodes = _regressor_nodes(helper, e, "value")
     outputs = [helper.make_tensor_value_info("value", onnx.TensorProto.FLOAT, [None, 1])]
     if flag:
         nodes.append(helper.make_node("Sign", ["value"], ["flag"]))

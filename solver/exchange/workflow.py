@@ -24,21 +24,31 @@ def export_onnx(
     """Export a stored run's model to the ONNX file ``to`` and check it.
 
     The file holds a ``Scaler`` (the run's standardiser) and the standard's SVM operator
-    for the run's problem kind.  onnxruntime and the ``onnx`` reference evaluator run it on
+    for the run's problem kind; a multi-class parent is exported through its task, in the
+    standard's one-vs-one layout when its pairs share one standardiser and kernel, else one
+    ``SVMRegressor`` per pair and the task's vote (:mod:`solver.exchange.subjects`).
+    onnxruntime and the ``onnx`` reference evaluator run it on
     the training rows (and ``holdout`` rows, if given); the largest decision-value
     difference (float32 drift) and the share of changed predicted classes are returned and
     stored as the attachment ``onnx_export`` of a run derived from ``run``.
     """
     from ..api import load_run
+    from ..tasks import get_task
 
     st = open_store(store)
-    rec = load_run(run, store=st)
+    subject = None
+    if isinstance(run, str) and st.is_parent(run):
+        rec: Any = st.load_parent(run)
+        members = [st.load(i) for i in rec.member_ids("pair")]
+        subject = get_task(rec.task).export_mapping(rec, members)
+    else:
+        rec = load_run(run, store=st)
     hX = None
     if holdout is not None:
         names = list(rec.data.get("feature_names") or [])
         hX = np.asarray(_align(_load_data(holdout, None, "held-out data"), names,
                                "held-out data"), dtype=np.float64)
-    return export_run(rec, to, store=st, holdout=hX)
+    return export_run(rec, to, store=st, holdout=hX, subject=subject)
 
 
 def challenge(

@@ -217,6 +217,8 @@ class KindLeaveOneOut:
     iterations: int
     measures: Mapping[str, Any]
     bias_from_free: bool
+    #: run id of the child record that stores these figures (None when not stored)
+    kept_as: str | None = None
 
     @property
     def all_converged(self) -> bool:
@@ -229,14 +231,15 @@ class KindLeaveOneOut:
                 "all_converged": self.all_converged, "iterations": self.iterations,
                 **dict(self.measures), "bias_from_free": self.bias_from_free,
                 "exactness": "non-support rows need no refit (removing them changes nothing); "
-                             "support-vector rows refitted"}
+                             "support-vector rows refitted", "kept_as": self.kept_as}
 
     def to_dict(self) -> dict[str, Any]:
         """Plain data (the per-row values as lists)."""
         return {"kind": self.kind, "values": self.values.tolist(),
                 "refitted": self.refitted.tolist(), "n_refits": int(self.refitted.sum()),
                 "all_converged": self.all_converged, "iterations": self.iterations,
-                "measures": dict(self.measures), "bias_from_free": self.bias_from_free}
+                "measures": dict(self.measures), "bias_from_free": self.bias_from_free,
+                "kept_as": self.kept_as}
 
 
 def _default_solver() -> Callable[..., SolveResult]:

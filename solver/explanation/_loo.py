@@ -10,7 +10,7 @@
   the range of kernel values, c ≤ K(x, x') ≤ c + R²_Δ, taken here over all training pairs
   (max K − min K).  The count of such points / n bounds the leave-one-out error rate for
   *stable* solutions, those with at least one free support vector (0 < αᵢ < uᵢ), so that
-  the bias is pinned by the margin; reported as ``xi_alpha_stable``.  Without a free
+  the bias is pinned by the margin; reported as ``slack_bound_applies``.  Without a free
   support vector the bias can jump when a point is removed and the estimate may fall
   below the exact value (seen on iris versicolor/virginica, RBF gamma = 3, C = 0.1).
 * Exact: only support vectors are refitted (see :mod:`solver.explanation._refit`): each refit
@@ -39,14 +39,14 @@ from ..status import Status
 from ._refit import Refit, Refitter
 from ._table import _check_classification, decision_on_training, misclassified
 
-__all__ = ["LOO_METHODS", "XI_ALPHA_RHO", "LeaveOneOut", "Sensitivity", "leave_one_out",
+__all__ = ["LOO_METHODS", "SLACK_BOUND_FACTOR", "LeaveOneOut", "Sensitivity", "leave_one_out",
            "sensitivity"]
 
 #: ``support_refits``: refit support vectors only (decremental path, SMO where needed);
 #: ``brute_force``: SMO on every problem without one row from the default start.
 LOO_METHODS = ("support_refits", "brute_force")
 #: ρ in Joachims' ξα-estimate (ρ = 2 gives the bound; from memory).
-XI_ALPHA_RHO = 2.0
+SLACK_BOUND_FACTOR = 2.0
 #: Largest shared Gram matrix (MiB) that leave-one-out computes once for all refits.
 SHARED_GRAM_MB = 512.0
 _BLOCK = 2048
@@ -56,7 +56,7 @@ _BLOCK = 2048
 class LeaveOneOut:
     """Leave-one-out figures for a solved binary classification problem.
 
-    Rates are fractions of n.  ``xi_alpha_stable``: the solution has a free support
+    Rates are fractions of n.  ``slack_bound_applies``: the solution has a free support
     vector, the condition under which the ξα-estimate is a bound.  ``loo_values`` (n,)
     f₋ᵢ(xᵢ): the decision value at xᵢ of the model trained without i (for non-refitted
     points the full model's value, exact by the non-support-vector argument);
@@ -69,7 +69,7 @@ class LeaveOneOut:
     the solver tolerance, so another solution meeting the same tolerance may classify
     them the other way (tighten ``kkt_tol`` to settle them).
     ``non_converged_rows`` refits that did not meet the tolerance
-    (their values are used but flagged).  ``reference_seconds`` is the time of one cold
+    (their values are used but flagged).  ``one_refit_seconds`` is the time of one cold
     refit (fastest of three probes for ``support_refits``, median for ``brute_force``);
     ``estimated_brute_force_seconds`` = n × that, measured directly for ``brute_force``.
     """
@@ -79,12 +79,12 @@ class LeaveOneOut:
     n_support: int
     errors: int
     error_rate: float
-    sv_bound: float
-    xi_alpha_count: int
-    xi_alpha_estimate: float
-    xi_alpha_rho: float
-    xi_alpha_r2: float
-    xi_alpha_stable: bool
+    support_vector_bound: float
+    slack_bound_count: int
+    slack_bound_rate: float
+    slack_bound_factor: float
+    kernel_value_range: float
+    slack_bound_applies: bool
     loo_values: np.ndarray
     loo_wrong: np.ndarray
     refit_rows: np.ndarray
@@ -99,10 +99,12 @@ class LeaveOneOut:
     non_converged_rows: np.ndarray
     near_boundary_rows: np.ndarray
     seconds: float
-    reference_seconds: float
+    one_refit_seconds: float
     estimated_brute_force_seconds: float
     kkt_tol: float
     solver_options: Mapping[str, Any] = field(default_factory=dict)
+    #: run id of the child record that stores these figures (None when not stored)
+    kept_as: str | None = None
 
     @property
     def refits(self) -> int:
@@ -128,17 +130,20 @@ class LeaveOneOut:
         """Scalars as plain data."""
         return {
             "method": self.method, "n": self.n, "n_support": self.n_support,
-            "errors": self.errors, "error_rate": self.error_rate, "sv_bound": self.sv_bound,
-            "xi_alpha_count": self.xi_alpha_count, "xi_alpha_estimate": self.xi_alpha_estimate,
-            "xi_alpha_rho": self.xi_alpha_rho, "xi_alpha_r2": self.xi_alpha_r2,
-            "xi_alpha_stable": self.xi_alpha_stable,
+            "errors": self.errors, "error_rate": self.error_rate,
+            "support_vector_bound": self.support_vector_bound,
+            "slack_bound_count": self.slack_bound_count,
+            "slack_bound_rate": self.slack_bound_rate,
+            "slack_bound_factor": self.slack_bound_factor,
+            "kernel_value_range": self.kernel_value_range,
+            "slack_bound_applies": self.slack_bound_applies,
             "refits": self.refits, "non_converged": int(self.non_converged_rows.size),
             "non_converged_rows": self.non_converged_rows.tolist(),
             "near_boundary_rows": self.near_boundary_rows.tolist(),
-            "seconds": self.seconds, "reference_seconds": self.reference_seconds,
+            "seconds": self.seconds, "one_refit_seconds": self.one_refit_seconds,
             "estimated_brute_force_seconds": self.estimated_brute_force_seconds,
             "estimated_seconds_saved": self.estimated_seconds_saved,
-            "speedup": self.speedup, "kkt_tol": self.kkt_tol,
+            "speedup": self.speedup, "kkt_tol": self.kkt_tol, "kept_as": self.kept_as,
         }
 
     def to_columns(self) -> dict[str, np.ndarray]:
@@ -268,7 +273,7 @@ def leave_one_out(
     n_sv = int(support.sum())
     xi = np.maximum(0.0, 1.0 - margin)
     r2 = kernel_range(problem, ref.gram)
-    xa_count = int(np.sum(XI_ALPHA_RHO * alpha * r2 + xi >= 1.0))
+    xa_count = int(np.sum(SLACK_BOUND_FACTOR * alpha * r2 + xi >= 1.0))
     warm = method == "support_refits"
 
     def refit(i: int, cold: bool) -> tuple[Refit, float]:
@@ -327,9 +332,9 @@ def leave_one_out(
     errors = int(loo_wrong.sum())
     return LeaveOneOut(
         method=method, n=n, n_support=n_sv, errors=errors, error_rate=errors / n,
-        sv_bound=n_sv / n, xi_alpha_count=xa_count, xi_alpha_estimate=xa_count / n,
-        xi_alpha_rho=XI_ALPHA_RHO, xi_alpha_r2=r2,
-        xi_alpha_stable=bool(result.certificate.n_free > 0), loo_values=loo_values,
+        support_vector_bound=n_sv / n, slack_bound_count=xa_count, slack_bound_rate=xa_count / n,
+        slack_bound_factor=SLACK_BOUND_FACTOR, kernel_value_range=r2,
+        slack_bound_applies=bool(result.certificate.n_free > 0), loo_values=loo_values,
         loo_wrong=loo_wrong,
         refit_rows=rows.astype(np.int64), refit_status=tuple(status), refit_iterations=iters,
         refit_seconds=secs, refit_max_change=max_change, refit_mean_change=mean_change,
@@ -337,7 +342,7 @@ def leave_one_out(
         non_converged_rows=bad.astype(np.int64),
         near_boundary_rows=np.flatnonzero(np.abs(loo_values) <= float(opts["kkt_tol"])),
         seconds=seconds,
-        reference_seconds=reference, estimated_brute_force_seconds=brute,
+        one_refit_seconds=reference, estimated_brute_force_seconds=brute,
         kkt_tol=float(opts["kkt_tol"]), solver_options=dict(opts),
     )
 

@@ -70,7 +70,8 @@ class PointTable:
     (SMO); otherwise all three are −1 and :attr:`trace_level` is None.
 
     Attributes besides ``columns``: ``bias`` b, ``kkt_tol`` the certificate tolerance,
-    ``status`` the solver status label, ``trace_level`` ``"full"`` or None.
+    ``status`` the solver status label, ``trace_level`` ``"full"`` or None, ``solver``
+    the solver's registry name.
     """
 
     columns: Mapping[str, np.ndarray]
@@ -78,6 +79,7 @@ class PointTable:
     kkt_tol: float = float("nan")
     status: str = ""
     trace_level: str | None = None
+    solver: str = ""
 
     def __post_init__(self) -> None:
         missing = [c for c in COLUMNS if c not in self.columns]
@@ -271,7 +273,8 @@ def point_table(problem: DualProblem, result: SolveResult) -> PointTable:
         "times_selected": selected,
     }
     return PointTable(columns=cols, bias=float(result.bias), kkt_tol=float(cert.kkt_tol),
-                      status=result.status.label, trace_level=level)
+                      status=result.status.label, trace_level=level,
+                      solver=str(result.solver))
 
 
 def _reason(category: str, a: float, u: float, m: float, resid: float, kkt_tol: float) -> str:

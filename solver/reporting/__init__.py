@@ -83,6 +83,8 @@ def write_report(
     notes: str | None = None,
     stem: str = "report",
     holdout: Mapping | None = None,
+    parent: Any = None,
+    parent_members: Sequence[RunRecord] = (),
 ) -> dict[str, Path]:
     """Write the report for ``runs`` into ``out_dir`` as ``<stem>.html`` / ``.pdf`` / ``.json``.
 
@@ -101,7 +103,8 @@ def write_report(
     out = Path(out_dir)
     if out.exists() and not out.is_dir():
         raise InvalidInputError(f"report folder {str(out)!r} exists and is not a folder")
-    content = build_report_content(runs, comparison=comparison, holdout=holdout, notes=notes)
+    content = build_report_content(runs, comparison=comparison, holdout=holdout, notes=notes,
+                                   parent=parent, parent_members=parent_members)
     rendered = {f: render_report(content, f) for f in formats}
     out.mkdir(parents=True, exist_ok=True)
     paths = {f: out / f"{stem}{FORMATS[f]}" for f in rendered}

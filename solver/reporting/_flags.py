@@ -30,11 +30,6 @@ def _run_flags(rec: RunRecord, label: str, term: Mapping[str, Any], audit: Mappi
         flags.append(Flag("not_converged", "stop",
                           f"{label} did not converge: status {status} — {term['message']}. "
                           "Its multipliers are not an optimal solution.", label))
-    elif not term.get("meets_tol", True):
-        flags.append(Flag("tolerance_not_met", "stop",
-                          f"{label} reports convergence but its certificate's maximal violation "
-                          f"{_fmt_num(term['max_violation'])} exceeds kkt_tol "
-                          f"{_fmt_num(term['kkt_tol'])}.", label))
     if audit:
         ind = _audit_indefinite(audit)
         eig = next((audit[k] for k in _EIG_KEYS if k in audit), None)

@@ -31,71 +31,94 @@ def _categories(rec: RunRecord) -> tuple[np.ndarray, str]:
     return cat.astype(str), "certificate (α against its bounds)"
 
 
+#: Columns of the report's table of points carrying the solution, in order (keys of
+#: :data:`solver.vocabulary.POINT_COLUMNS`; those a run lacks are left out).
+INFLUENTIAL_COLUMNS = ("row_id", "label", "category", "alpha", "alpha_ratio", "margin",
+                       "slack", "kkt_residual", "times_selected", "first_nonzero_iteration",
+                       "last_change_iteration", "reason")
+
+
 def _influential(rec: RunRecord, sel: np.ndarray | None) -> tuple[Table | None, str]:
+    """The support vectors ranked by :data:`solver.vocabulary.RANKING_RULE` (top
+    :data:`N_INFLUENTIAL`); trace columns the solver does not record say why."""
+    from ..vocabulary import RANKING_RULE, TRACE_COLUMNS, not_traced, rank_points
+
     expl = rec.attachments.get("explanation") if rec.attachments else None
     p, res = rec.problem, rec.result
-    if isinstance(expl, Mapping) and "alpha" in expl:
-        alpha = np.asarray(expl["alpha"], dtype=np.float64)
-        tie = (np.asarray(expl["times_selected"], np.float64) if "times_selected" in expl
-               else np.zeros_like(alpha))
-        order = np.lexsort((-tie, -alpha))[:N_INFLUENTIAL]
-        order = order[alpha[order] > 0]
-        wanted = ["row_id", "label", "category", "alpha", "alpha_ratio", "margin", "slack",
-                  "kkt_residual", "times_selected", "first_nonzero_iteration",
-                  "last_change_iteration", "reason"]
-        cols = [c for c in wanted if c in expl]
-        rows = tuple(tuple(_plain(np.asarray(expl[c])[k]) for c in cols) for k in order)
-        return Table(columns=tuple(cols), rows=rows,
-                     note=f"Points with the largest multipliers α (top {len(rows)}), "
-                          "from the explanation attachment."), ""
-    if p.n == 0:
-        return None, "no training points"
-    alpha = res.alpha
-    # largest α first; ties (e.g. all at C) broken by how often the solver selected the point
-    tie = sel if sel is not None else np.zeros(p.n)
-    order = np.lexsort((-tie, -alpha))[:N_INFLUENTIAL]
-    order = order[alpha[order] > p.lower[order]]
-    labels = p.labels
-    cats, _ = _categories(rec)
+    if isinstance(expl, Mapping) and "row_id" in expl and "kkt_residual" in expl:
+        cols = {str(k): np.asarray(v) for k, v in expl.items()}
+        src, missing = "the explanation attachment", ""
+    else:
+        if p.n == 0:
+            return None, "no training points"
+        labels = p.labels
+        cats, _ = _categories(rec)
+        alpha = np.asarray(res.alpha, np.float64)
+        cols = {"row_id": np.arange(p.n), "category": cats, "alpha": alpha,
+                "alpha_ratio": np.divide(alpha, p.upper, out=np.full(p.n, np.nan),
+                                         where=p.upper > 0),
+                "kkt_residual": np.asarray(res.certificate.kkt_residual, np.float64),
+                "times_selected": sel if sel is not None else np.full(p.n, -1)}
+        if labels and p.kind == "binary_classification":
+            cols["label"] = np.where(p.y > 0, str(labels[1]), str(labels[0]))
+        src = "the solver result"
+        missing = "Explanation attachment not available: reasons, margins and slacks are not shown."
+    traced = sel is not None
+    placeholder = None if traced else not_traced(
+        res.solver, res.trace.level if res.trace is not None else None)
+    order = rank_points(cols, N_INFLUENTIAL)
+    keys = [c for c in INFLUENTIAL_COLUMNS if c in cols]
     rows = []
     for k in order:
-        lab = (labels[1] if p.y[k] > 0 else labels[0]) if labels else int(p.y[k])
-        ratio = alpha[k] / p.upper[k] if p.upper[k] > 0 else float("nan")
-        rows.append((int(k), _plain(lab), str(cats[k]), float(alpha[k]), float(ratio),
-                     float(res.certificate.kkt_residual[k]),
-                     int(sel[k]) if sel is not None else None))
-    return (Table(columns=("row", "label", "category", "alpha", "alpha_ratio", "kkt_residual",
-                           "times_selected"), rows=tuple(rows),
-                  note=f"Points with the largest multipliers α (top {len(rows)}), from the "
-                       "solver result."),
-            "Explanation attachment not available: reasons, margins and slacks are not shown.")
+        rows.append(tuple(None if (placeholder and c in TRACE_COLUMNS)
+                          else _plain(cols[c][k]) for c in keys))
+    return (Table(columns=tuple(keys), rows=tuple(rows),
+                  note=f"{len(rows)} support vectors from {src}, ordered as follows: "
+                       f"{RANKING_RULE}.", blank=placeholder or ""), missing)
 
 
-def _loo(rec: RunRecord, label: str) -> tuple[Table | None, FigureData | None, str]:
-    """Leave-one-out scalars as a table and, with per-point values, a figure."""
+def _loo(
+    rec: RunRecord, label: str
+) -> tuple[Table | None, FigureData | None, str, dict[str, Any]]:
+    """Leave-one-out scalars as a table (label, value, meaning) and, with per-point
+    values, a figure.  Reads the ``leave_one_out`` attachment: the run's own or, as
+    :func:`solver.api.report` passes it, that of a child record (``kept_as``)."""
+    from ..vocabulary import LEAVE_ONE_OUT, meaning
+    from ..vocabulary import label as term_label
+
     raw = rec.attachments.get("leave_one_out") if rec.attachments else None
     if raw is None:
-        return None, None, "Leave-one-out figures not available for this run."
+        return None, None, ("Leave-one-out figures not available for this run: run "
+                            "kktrace explain RUN_ID --leave-one-out to compute and store "
+                            "them."), {}
     loo: dict[str, Any] = dict(_as_mapping(raw) or {})
     to_columns = getattr(raw, "to_columns", None)
     if callable(to_columns):
         loo.update(to_columns())
+    per_point = loo.pop("per_point", None)
+    if isinstance(per_point, Mapping):
+        loo.update(per_point)
     if not loo:
-        return None, None, "Leave-one-out figures not available for this run."
+        return None, None, "Leave-one-out figures not available for this run.", {}
     arrays = {str(k): np.asarray(v) for k, v in loo.items()
               if isinstance(v, (np.ndarray, list, tuple)) and np.asarray(v).ndim == 1
               and np.asarray(v).size > 20}
-    scalars = [(str(k), _plain(v)) for k, v in loo.items()
-               if str(k) not in arrays and not isinstance(v, Mapping)]
-    table = Table(columns=("measure", "value"), rows=tuple(scalars),
-                  note="Leave-one-out figures for this run.") if scalars else None
+    facts = {str(k): _plain(v) for k, v in loo.items()
+             if str(k) not in arrays and not isinstance(v, Mapping) and v is not None}
+    scalars = [(term_label(k, LEAVE_ONE_OUT), v, meaning(k, LEAVE_ONE_OUT))
+               for k, v in facts.items() if k not in ("kept_as", "kept_digest")]
+    kept = loo.get("kept_as")
+    where = (f"Stored in child record {kept} (manifest SHA-256 {loo.get('kept_digest')}), "
+             "verified when this report was written." if kept
+             else "Attached to this run.")
+    table = Table(columns=("measure", "value", "meaning"), rows=tuple(scalars),
+                  note=f"Leave-one-out figures for this run. {where}") if scalars else None
     fig = None
     values = arrays.get("loo_value", arrays.get("loo_values"))
-    if values is not None and values.dtype.kind in "fiu":
+    if values is not None and values.dtype.kind in "fiu" and "loo_wrong" in arrays:
         p = rec.problem
         rows = arrays.get("row_id", np.arange(values.size)).astype(np.float64)
-        wrong = arrays.get("loo_wrong")
-        wrong = (np.zeros(values.size, bool) if wrong is None else wrong.astype(bool))
+        wrong = arrays["loo_wrong"].astype(bool)
         y = p.y if p.n == values.size else np.ones(values.size)
         fig = FigureData(
             key="loo", kind="loo", title=f"{label}: leave-one-out decision values",
@@ -105,7 +128,7 @@ def _loo(rec: RunRecord, label: str) -> tuple[Table | None, FigureData | None, s
             data={"x": rows, "y": y * values.astype(np.float64), "wrong": wrong,
                   "xlabel": "training row (0-based)"},
         )
-    return table, fig, ""
+    return table, fig, "", facts
 
 
 # --------------------------------------------------------------------------- held-out, map

@@ -8,6 +8,7 @@ from typing import Any
 import numpy as np
 
 from ..run import RunRecord
+from ..vocabulary import term
 from ._records import _fmt_num, _plain, _scalar_items, _status_of
 
 # --------------------------------------------------------------------------- identity
@@ -23,7 +24,8 @@ def _identity(rec: RunRecord, label: str) -> tuple[tuple[tuple[str, Any], ...], 
         ("created", rec.created or man.get("created") or "not recorded"),
         ("parent run", rec.parent_id or "none"),
         ("solver", res.solver),
-        ("solve time (s)", _plain(res.seconds)),
+        *((f"{term(k).label} time (s)" if k != "total_seconds" else "whole solver call (s)",
+           "not recorded" if v is None else _plain(v)) for k, v in res.timing.items()),
         ("kktrace version at solve", version or "not recorded"),
         ("data fingerprint", rec.data.get("fingerprint") or "not recorded"),
         ("data source", rec.data.get("source") or "in-memory arrays"),

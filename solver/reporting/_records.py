@@ -14,14 +14,10 @@ from typing import Any
 import numpy as np
 
 from ..status import Status
+from ..vocabulary import CAUTION
 
-__all__ = ["CAUTION", "SEVERITIES", "Flag", "Table", "FigureData", "RunContent", "ReportContent"]
-
-#: The standing caution printed on every report (HTML, PDF and JSON).
-CAUTION = (
-    "kktrace gives evidence about the optimisation, not a validation sign-off; decisions on use "
-    "rest with the accountable model owner and validator under local regulation."
-)
+__all__ = ["CAUTION", "SEVERITIES", "Flag", "Table", "FigureData", "TaskSection", "RunContent",
+           "ReportContent"]
 
 #: Severity order used for sorting flags: "stop" (result not usable as is), "caution", "note".
 SEVERITIES = ("stop", "caution", "note")
@@ -44,6 +40,8 @@ class Table:
     columns: tuple[str, ...]
     rows: tuple[tuple[Any, ...], ...]
     note: str = ""
+    #: what the renderers print for a None cell ("" → the usual dash); the JSON keeps null
+    blank: str = ""
 
 
 @dataclass(frozen=True, eq=False)
@@ -55,6 +53,20 @@ class FigureData:
     title: str
     caption: str
     data: Mapping[str, Any]
+
+
+@dataclass(frozen=True, eq=False)
+class TaskSection:
+    """The section a run's task adds (regression fit, one-class boundary, ...): ``task`` is
+    its registry name; facts, tables, figures and flags as the task supplied them."""
+
+    task: str
+    title: str
+    intro: str
+    facts: tuple[tuple[str, Any], ...]
+    tables: tuple[Table, ...]
+    figures: tuple[FigureData, ...]
+    flags: tuple[Flag, ...] = ()
 
 
 @dataclass(frozen=True, eq=False)
@@ -92,6 +104,18 @@ class RunContent:
     flags: tuple[Flag, ...]
     series: Mapping[str, Mapping[str, list[float]]] = field(default_factory=dict)
     data_facts: Mapping[str, Any] = field(default_factory=dict)
+    #: leave-one-out scalars by key (:data:`solver.vocabulary.LEAVE_ONE_OUT`), with
+    #: ``kept_as`` / ``kept_digest`` when they come from a child record; {} when absent
+    loo_facts: Mapping[str, Any] = field(default_factory=dict)
+    #: probability calibration section (:mod:`._calibration`), None without probabilities
+    calibration: Any = None
+    task_section: TaskSection | None = None
+    task_note: str = ""
+    #: the run's diagnosis (:mod:`solver.diagnosis`): findings table (severity, code,
+    #: finding, action) and its statement plus unchecked codes; None when it failed
+    diagnosis: Table | None = None
+    diagnosis_note: str = ""
+    diagnosis_skipped: Mapping[str, str] = field(default_factory=dict)
 
 
 @dataclass(frozen=True, eq=False)

@@ -16,6 +16,7 @@ import numpy as np
 
 from ..run import RunRecord
 from ..status import Status
+from ._calibration import calibration_content
 from ._convergence import _trace_figures
 from ._flags import AGREE_VERDICTS, LOOSE_VERDICTS, _comparison, _run_flags
 from ._points import _categories, _confusion, _decision_map, _influential, _loo
@@ -39,6 +40,7 @@ from ._records import (
     _scalar_items,
     _status_of,
 )
+from ._task import _parent_section, _task_section
 
 __all__ = [
     "AGREE_VERDICTS",
@@ -53,6 +55,19 @@ __all__ = [
 ]
 
 
+def _diagnosis(rec: RunRecord) -> tuple[Table | None, str, dict[str, str]]:
+    """The diagnosis table of one run (findings with codes, severities and actions)."""
+    from ..diagnosis import diagnose
+
+    try:
+        d = diagnose(rec)
+    except Exception as exc:  # noqa: BLE001 - a failed check must not lose the report
+        return None, f"Diagnosis not available: {type(exc).__name__}: {exc}", {}
+    rows = tuple((f.severity, f.code, f.summary, f.action) for f in d.findings)
+    table = Table(("severity", "code", "finding", "suggested action"), rows) if rows else None
+    return table, d.statement(), dict(d.skipped)
+
+
 def _run_content(rec: RunRecord, label: str, holdout: Mapping | None) -> RunContent:
     res = rec.result
     cert = res.certificate
@@ -64,6 +79,7 @@ def _run_content(rec: RunRecord, label: str, holdout: Mapping | None) -> RunCont
         "converged": status == Status.CONVERGED,
         "iterations": int(res.iterations),
         "seconds": float(res.seconds),
+        **res.timing,
         **{k: _plain(v) for k, v in cd.items()},
     }
     ident, env = _identity(rec, label)
@@ -81,7 +97,7 @@ def _run_content(rec: RunRecord, label: str, holdout: Mapping | None) -> RunCont
         sel = (np.bincount(np.asarray(tr.columns["i"], np.int64), minlength=rec.problem.n)
                + np.bincount(np.asarray(tr.columns["j"], np.int64), minlength=rec.problem.n))
     infl, infl_note = _influential(rec, sel)
-    loo_table, loo_fig, loo_note = _loo(rec, label)
+    loo_table, loo_fig, loo_note, loo_facts = _loo(rec, label)
     hold = _as_mapping(holdout) if holdout is not None else _as_mapping(att.get("holdout"))
     confusion = _confusion(hold, rec.problem.labels) if hold else None
     try:
@@ -89,6 +105,10 @@ def _run_content(rec: RunRecord, label: str, holdout: Mapping | None) -> RunCont
     except Exception as exc:  # noqa: BLE001 - a map failure must not lose the report
         dmap, dnote = None, f"Decision map not available: {type(exc).__name__}: {exc}"
     flags = _run_flags(rec, label, term, audit, facts)
+    section, section_note = _task_section(rec, label)
+    if section is not None:
+        flags += list(section.flags)
+    diag, diag_note, diag_skipped = _diagnosis(rec)
     cmd_text, cmd_py, cmd_note = _command_parts(att.get("command"))
     uniq, counts = np.unique(cats, return_counts=True)
     data_facts = {
@@ -112,7 +132,10 @@ def _run_content(rec: RunRecord, label: str, holdout: Mapping | None) -> RunCont
         influential=infl, influential_note=infl_note, loo=loo_table, loo_figure=loo_fig,
         loo_note=loo_note, holdout={k: _plain(v) for k, v in hold.items()} if hold else None,
         confusion=confusion, decision_map=dmap, decision_note=dnote, flags=tuple(flags),
-        series=series, data_facts=data_facts,
+        series=series, data_facts=data_facts, task_section=section, task_note=section_note,
+        calibration=calibration_content(_as_mapping(att.get("calibration")), label),
+        diagnosis=diag, diagnosis_note=diag_note, diagnosis_skipped=diag_skipped,
+        loo_facts=loo_facts,
     )
 
 
@@ -124,8 +147,14 @@ def build_report_content(
     notes: str | None = None,
     title: str | None = None,
     generated: str | None = None,
+    parent: Any = None,
+    parent_members: Sequence[RunRecord] = (),
 ) -> ReportContent:
     """Collect the report for ``runs`` (one or more stored runs) as plain data.
+
+    parent, parent_members : a parent record (multi-class model) and all its member runs
+        in member order; its task's section goes on the first run's pages (the runs are
+        then the pair shown in full and its challenger).
 
     comparison : a :class:`solver.agreement.Comparison` or its ``to_dict()``; default the first
         ``"comparison"`` attachment found on the runs.
@@ -147,6 +176,15 @@ def build_report_content(
     for k, rec in enumerate(runs):
         label = f"run {letters[k]}" if k < len(letters) else f"run {k + 1}"
         contents.append(_run_content(rec, label, holdout if k == 0 else None))
+    if parent is not None:
+        import dataclasses
+
+        sec, sec_note = _parent_section(parent, list(parent_members), contents[0].label)
+        first = contents[0]
+        contents[0] = dataclasses.replace(
+            first, task_section=sec if sec is not None else first.task_section,
+            task_note=sec_note or first.task_note,
+            flags=tuple(first.flags) + (tuple(sec.flags) if sec is not None else ()))
     comp_src = comparison
     if comp_src is None:
         comp_src = next((r.attachments.get("comparison") for r in runs
@@ -156,6 +194,9 @@ def build_report_content(
                                  "was compared with this one.")
     flags = [f for rc in contents for f in rc.flags] + comp_flags
     flags.sort(key=lambda f: SEVERITIES.index(f.severity))
+    if title is None and parent is not None:
+        title = (f"Convergence and audit record — multi-class model {parent.run_id} "
+                 f"(pair run {runs[0].run_id} in full)")
     if title is None:
         first = runs[0].run_id or "unsaved run"
         more = f" and {len(runs) - 1} further run(s)" if len(runs) > 1 else ""

@@ -402,6 +402,157 @@ def _draw_loo(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
     _legend_above(ax, ax.get_legend_handles_labels()[0])
 
 
+def _draw_reliability(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
+    """Reliability diagram: observed share against mean probability per bin, and below it
+    the rows in each bin."""
+    gs = fig.add_gridspec(2, 1, height_ratios=[1.0, 0.38], hspace=0.1, **_margins(fig))
+    ax = fig.add_subplot(gs[0])
+    bars = fig.add_subplot(gs[1], sharex=ax)
+    ax.tick_params(labelbottom=False)
+    ax.plot([0, 1], [0, 1], color=_c("muted"), linewidth=0.7, linestyle=(0, (4, 2)),
+            label="perfect calibration")
+    ax.plot(d["mean"], d["observed"], color=_c("tide"), marker="o", markersize=4,
+            label="bins with rows")
+    for x, y, n in zip(d["mean"], d["observed"], d["occupied_rows"], strict=True):
+        ax.annotate(f"{n}", (x, y), textcoords="offset points", xytext=(4, -9), fontsize=6,
+                    color=_c("muted"))
+    ax.set_xlim(0, 1)
+    ax.set_ylim(-0.02, 1.02)
+    ax.set_ylabel(plain_text(d.get("ylabel") or f"share {d['positive']}", 30))
+    _legend_above(ax, ax.get_legend_handles_labels()[0])
+    low, high = np.asarray(d["low"]), np.asarray(d["high"])
+    bars.bar(low, d["rows"], width=high - low, align="edge", color=_c("tint_neg"),
+             edgecolor=_c("tide"), linewidth=0.5)
+    bars.set_ylabel("rows")
+    bars.yaxis.set_major_formatter(FuncFormatter(_count))
+    bars.set_xlabel(plain_text(d.get("xlabel") or f"predicted P({d['positive']})", 40))
+
+
+def _draw_sigmoid(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
+    """The fitted sigmoid over the decision values, the rows as ticks by class, and the
+    band between f = 0 and the sigmoid's midpoint."""
+    ax = _axes(fig)
+    f = np.asarray(d["values"], dtype=np.float64)
+    pos = np.asarray(d["positive"], dtype=bool)
+    c = d["crossover"]
+    if c is not None and np.isfinite(c):
+        ax.axvspan(min(0.0, c), max(0.0, c), color=_c("tint_pos"), linewidth=0,
+                   label="class by f and by P differ")
+    ax.axvline(0.0, color=_c("ink"), linewidth=0.6)
+    ax.axhline(0.5, color=_c("muted"), linewidth=0.5, linestyle=(0, (1, 2)))
+    ax.plot(d["grid"], d["p"], color=_c("tide"), linewidth=1.2, label="fitted sigmoid")
+    ax.plot(f[pos], np.full(int(pos.sum()), 1.03), linestyle="none", marker="|",
+            markersize=5, color=_c("rust"), alpha=0.6,
+            label=plain_text(f"rows of {d['positive_label']}", 30))
+    ax.plot(f[~pos], np.full(int((~pos).sum()), -0.03), linestyle="none", marker="|",
+            markersize=5, color=_c("tide"), alpha=0.6,
+            label=plain_text(f"rows of {d['negative_label']}", 30))
+    ax.set_ylim(-0.08, 1.08)
+    ax.set_xlabel("decision value f(x)")
+    ax.set_ylabel(plain_text(f"P({d['positive_label']} | f)", 30))
+    ax.xaxis.set_major_formatter(FuncFormatter(_num))
+    _legend_above(ax, ax.get_legend_handles_labels()[0])
+
+
+#: Markers of the task sections' row categories (matched on the display words' start).
+_TASK_MARKS = (("inside", "muted", "o", True, 5.0), ("interior", "muted", "o", True, 5.0),
+               ("on the", "pine", "D", True, 16.0), ("outside", "mustard", "s", False, 20.0))
+
+
+def _task_mark(cat: str) -> tuple[str, str, bool, float]:
+    for start, colour, marker, filled, size in _TASK_MARKS:
+        if cat.startswith(start):
+            return colour, marker, filled, size
+    return "heather", "^", True, 14.0
+
+
+def _scatter_by_category(ax: Any, x: np.ndarray, y: np.ndarray, cats: np.ndarray) -> None:
+    order = sorted(set(cats.tolist()), key=lambda c: _task_mark(c)[3])
+    for cat in order:
+        sel = cats == cat
+        colour, marker, filled, size = _task_mark(cat)
+        ax.scatter(x[sel], y[sel], s=size, marker=marker, zorder=3,
+                   facecolors=_c(colour) if filled else "none", edgecolors=_c(colour),
+                   linewidths=0.7, label=f"{plain_text(cat, 40)} ({int(sel.sum())})")
+
+
+def _legend_two(ax: Any) -> None:
+    """Legend in two columns above the axes (long category words)."""
+    handles = ax.get_legend_handles_labels()[0]
+    if handles:
+        ax.legend(handles=handles, loc="lower left", bbox_to_anchor=(0.0, 1.01), ncol=2,
+                  borderaxespad=0.0, columnspacing=1.2)
+
+
+def _draw_fit_tube(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
+    ax = _axes(fig, top=0.8)
+    t, f = np.asarray(d["actual"], np.float64), np.asarray(d["fitted"], np.float64)
+    eps = float(d["epsilon"])
+    lo = float(min(t.min(), f.min())) - eps
+    hi = float(max(t.max(), f.max())) + eps
+    line = np.array([lo, hi])
+    ax.fill_between(line, line - eps, line + eps, color=_c("tint_neg"), linewidth=0, zorder=1)
+    ax.plot(line, line, color=_c("ink"), linewidth=0.8, zorder=2)
+    for s in (-1.0, 1.0):
+        ax.plot(line, line + s * eps, color=_c("tide"), linewidth=0.7, linestyle=(0, (1, 2)),
+                zorder=2)
+    _scatter_by_category(ax, t, f, np.asarray(d["category"]).astype(str))
+    ax.set_xlim(lo, hi)
+    ax.set_ylim(lo, hi)
+    ax.set_xlabel(plain_text(d.get("xlabel", "actual")))
+    ax.set_ylabel(plain_text(d.get("ylabel", "fitted")))
+    _legend_two(ax)
+
+
+def _draw_residuals(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
+    ax = _axes(fig, top=0.8)
+    f, r = np.asarray(d["fitted"], np.float64), np.asarray(d["residual"], np.float64)
+    eps = float(d["epsilon"])
+    ax.axhspan(-eps, eps, color=_c("tint_neg"), linewidth=0, zorder=1)
+    ax.axhline(0.0, color=_c("ink"), linewidth=0.7, zorder=2)
+    for s in (-1.0, 1.0):
+        ax.axhline(s * eps, color=_c("tide"), linewidth=0.7, linestyle=(0, (1, 2)), zorder=2)
+    _scatter_by_category(ax, f, r, np.asarray(d["category"]).astype(str))
+    ax.set_xlabel(plain_text(d.get("xlabel", "fitted")))
+    ax.set_ylabel(plain_text(d.get("ylabel", "residual")))
+    _legend_two(ax)
+
+
+def _draw_score_distribution(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
+    ax = _axes(fig, top=0.8)
+    g = np.asarray(d["expansion"], np.float64)
+    cats = np.asarray(d["category"]).astype(str)
+    rho = float(d["rho"])
+    lo, hi = float(min(g.min(), rho)), float(max(g.max(), rho))
+    span = hi - lo if hi > lo else max(abs(hi), 1.0)
+    edges = np.linspace(lo - 0.02 * span, hi + 0.02 * span, 41)
+    groups = sorted(set(cats.tolist()), key=lambda c: _task_mark(c)[3])
+    ax.hist([g[cats == c] for c in groups], bins=edges, stacked=True,
+            color=[_c(_task_mark(c)[0]) for c in groups],
+            label=[f"{plain_text(c, 40)} ({int(np.sum(cats == c))})" for c in groups])
+    ax.axvline(rho, color=_c("rust"), linewidth=1.1, linestyle=(0, (5, 3)),
+               label=f"ρ = {rho:.4g}")
+    ax.yaxis.set_major_formatter(FuncFormatter(_count))
+    ax.set_xlabel("g(x) = Σ αⱼ K(xⱼ, x)")
+    ax.set_ylabel("training rows")
+    _legend_two(ax)
+
+
+def _draw_nu_shares(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
+    ax = _axes(fig, left=0.3)
+    names = ["outlier share", "ν", "support-vector share"]
+    vals = [float(d["outlier_share"]), float(d["nu"]), float(d["support_share"])]
+    colours = [_c("rust"), _c("ink"), _c("tide")]
+    ax.barh(names, vals, color=colours, height=0.55)
+    ax.axvline(float(d["nu"]), color=_c("ink"), linewidth=0.7, linestyle=(0, (1, 2)))
+    for k, v in enumerate(vals):
+        ax.text(v, k, f"  {v:.4g}", va="center", ha="left", fontsize=7.0)
+    ax.set_xlim(0.0, max(1.0, max(vals) * 1.15))
+    ax.invert_yaxis()
+    ax.set_xlabel("share of training rows" + ("" if d.get("holds") else
+                                                "  (ν-property does NOT hold)"))
+
+
 _DRAW = {
     "violation": (_draw_violation, FIG_SIZE),
     "objective": (_draw_objective, FIG_SIZE_TALL),
@@ -411,6 +562,12 @@ _DRAW = {
     "selection": (_draw_selection, FIG_SIZE),
     "regions": (_draw_regions, MAP_SIZE),
     "loo": (_draw_loo, FIG_SIZE),
+    "reliability": (_draw_reliability, FIG_SIZE_TALL),
+    "sigmoid": (_draw_sigmoid, FIG_SIZE),
+    "fit_tube": (_draw_fit_tube, MAP_SIZE),
+    "residuals": (_draw_residuals, FIG_SIZE_TALL),
+    "score_distribution": (_draw_score_distribution, FIG_SIZE_TALL),
+    "nu_shares": (_draw_nu_shares, FIG_SIZE),
 }
 
 

@@ -14,6 +14,7 @@ from collections.abc import Mapping, Sequence
 from importlib import resources
 from typing import Any
 
+from ..vocabulary import heading
 from .content import AGREE_VERDICTS, LOOSE_VERDICTS, Flag, ReportContent, RunContent, Table
 from .figures import figure_svg
 
@@ -23,11 +24,6 @@ _CSP = ("default-src 'none'; style-src 'unsafe-inline'; img-src data:; base-uri 
         "form-action 'none'")
 #: Held-out keys shown as the confusion table rather than as plain values.
 HOLDOUT_TABLE_KEYS = ("confusion_matrix", "confusion", "matrix", "labels")
-#: Short column headings for the per-point table.
-_HEADS = {"row_id": "row", "alpha": "α", "alpha_ratio": "α / u", "margin": "y·f(x)",
-          "kkt_residual": "KKT residual", "times_selected": "selected",
-          "first_nonzero_iteration": "first α > 0", "last_change_iteration": "last change",
-          "decision_value": "f(x)"}
 _POWER = re.compile(r"×10\^(-?[0-9]+)")
 _SEVERITY_MARK = {"stop": "■", "caution": "▲", "note": "●"}
 _SEVERITY_WORD = {"stop": "stop", "caution": "caution", "note": "note"}
@@ -94,10 +90,11 @@ class _Doc:
         """Render ``t``; a column named ``detail`` becomes a full-width line under each row."""
         d = t.columns.index(detail) if detail in t.columns else None
         cols = [c for k, c in enumerate(t.columns) if k != d]
-        head = "".join(f'<th scope="col">{esc(_HEADS.get(c, c))}</th>' for c in cols)
+        head = "".join(f'<th scope="col">{esc(heading(c))}</th>' for c in cols)
         body = []
         for row in t.rows:
-            cells = "".join(f'<td class="{_cell_class(v)}">{_num_html(v)}</td>'
+            cells = "".join(f'<td class="{_cell_class(v)}">'
+                            f'{esc(t.blank) if v is None and t.blank else _num_html(v)}</td>'
                             for k, v in enumerate(row) if k != d)
             if d is None:
                 body.append(f"<tr>{cells}</tr>")
@@ -137,7 +134,7 @@ def _banner(c: ReportContent) -> str:
     rows = []
     for r in c.runs:
         t = r.termination
-        ok = bool(t.get("converged")) and bool(t.get("meets_tol", True))
+        ok = bool(t.get("converged"))  # the status rule: solver.status.decide
         word = "CONVERGED" if ok else "NOT CONVERGED"
         cls = "ok" if ok else "bad"
         rows.append(
@@ -166,7 +163,8 @@ def _keyfigs(c: ReportContent) -> str:
                 ("primal objective", t.get("primal_objective")),
                 ("duality gap", t.get("duality_gap")),
                 ("support vectors", t.get("n_support")), ("at upper bound", t.get("n_bounded")),
-                ("free", t.get("n_free")), ("solve time (s)", t.get("seconds"))]
+                ("free", t.get("n_free")), ("solve time (s)", t.get("solve_seconds")),
+                ("compile time (s)", t.get("compile_seconds"))]
         items = "".join(f"<div><dt>{esc(k)}</dt><dd>{_num_html(v)}</dd></div>" for k, v in figs)
         cells.append(f'<div class="keyrun"><p class="keylabel">{esc(r.label)}</p>'
                      f'<dl class="keyfigs">{items}</dl></div>')
@@ -191,7 +189,9 @@ def _termination_rows(t: Mapping[str, Any]) -> list[tuple[str, Any]]:
     meets = t.get("meets_tol")
     rows = [
         ("status", t.get("status")), ("message", t.get("message")),
-        ("iterations", t.get("iterations")), ("solve time (s)", t.get("seconds")),
+        ("iterations", t.get("iterations")), ("solve time (s)", t.get("solve_seconds")),
+        ("compile time (s)", t.get("compile_seconds")), ("set-up time (s)", t.get("setup_seconds")),
+        ("whole solver call (s)", t.get("seconds")),
         ("tolerance (kkt_tol)", t.get("kkt_tol")), ("final maximal violation",
                                                     t.get("max_violation")),
         ("violation within kkt_tol", meets),
@@ -297,12 +297,48 @@ def _run_section(doc: _Doc, r: RunContent, k: int) -> None:
             doc.table(r.confusion, cls="grid confusion")
     else:
         doc.missing("Held-out outcomes not available: no held-out data were scored with this run.")
+    if r.calibration is not None:
+        h3("Probability calibration", "calibration")
+        _calibration_html(doc, r.calibration)
+    if r.task_section is not None:
+        ts = r.task_section
+        h3(ts.title, "task")
+        if ts.intro:
+            doc.add(f"<p>{esc(ts.intro)}</p>")
+        doc.kv(ts.facts)
+        for t in ts.tables:
+            doc.table(t, cls="grid")
+        for fd in ts.figures:
+            doc.figure(fd)
+    elif r.task_note:
+        h3("Task section", "task")
+        doc.missing(r.task_note)
+    h3("Diagnosis", "diagnosis")
+    doc.add(f"<p>{esc(r.diagnosis_note)}</p>")
+    if r.diagnosis is not None:
+        doc.table(r.diagnosis, cls="grid")
+    for code, why in r.diagnosis_skipped.items():
+        doc.missing(f"Not checked: {code} — {why}")
     h3("Decision map", "map")
     if r.decision_map is not None:
         doc.figure(r.decision_map)
     else:
         doc.missing(r.decision_note)
     doc.add("</section>")
+
+
+def _calibration_html(doc: _Doc, cal: Any) -> None:
+    """The probability section (:class:`._calibration.CalibrationContent`)."""
+    for note in cal.notes:
+        doc.add(f'<p class="quiet">{esc(note)}</p>')
+    if cal.facts:
+        doc.kv(cal.facts)
+    if cal.bins is not None:
+        doc.table(cal.bins, cls="grid narrow")
+    for fd in cal.figures:
+        doc.figure(fd)
+    if cal.folds is not None:
+        doc.table(cal.folds, cls="grid narrow")
 
 
 def _challenger(doc: _Doc, c: ReportContent) -> None:

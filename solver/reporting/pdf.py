@@ -16,6 +16,7 @@ from typing import Any
 from matplotlib.backends.backend_pdf import PdfPages
 from matplotlib.figure import Figure
 
+from ..vocabulary import heading
 from .content import FigureData, ReportContent, RunContent, Table
 from .figures import PALETTE, draw, plain_text, style
 from .html import HOLDOUT_TABLE_KEYS, _termination_rows, comparison_table, fmt
@@ -73,25 +74,66 @@ class _Lines:
                                       subsequent_indent="    ") or [""]:
                 self.items.append(("m", line))
 
-    def table(self, t: Table) -> None:
+    def table(self, t: Table, skip: Sequence[str] = ()) -> None:
+        """Monospace table with the vocabulary's headings; never cuts a cell: columns
+        that do not fit go to a further block (the first column repeated), and the last
+        column of a block wraps within the room left."""
         if t.note:
             self.para(t.note, "i")
-        cells = [[fmt(v).replace("×10^", "e") for v in row] for row in t.rows]
-        heads = [str(c) for c in t.columns]
-        ncol = len(heads)
-        widths = [max([len(heads[c])] + [len(r[c]) for r in cells]) for c in range(ncol)]
-        budget = CHARS - 2 * (ncol - 1)
-        while sum(widths) > budget and max(widths) > 6:
-            widths[widths.index(max(widths))] -= 1
+        keep = [k for k, c in enumerate(t.columns) if c not in skip]
+        heads = [heading(t.columns[k]) for k in keep]
+        cells = [[t.blank if row[k] is None and t.blank else fmt(row[k]).replace("×10^", "e")
+                  for k in keep] for row in t.rows]
+        for block, widths in _blocks([len(h) for h in heads], cells):
+            self._block([heads[c] for c in block],
+                        [[r[c] for c in block] for r in cells], widths)
 
-        def cut(s: str, w: int) -> str:
-            return s if len(s) <= w else s[: max(1, w - 1)] + "…"
+    def _block(self, heads: list[str], cells: list[list[str]], widths: list[int]) -> None:
+        def lines(values: Sequence[str]) -> list[str]:
+            parts = [textwrap.wrap(v, width=w, break_long_words=True) or [""]
+                     for v, w in zip(values, widths, strict=True)]
+            depth = max(len(p) for p in parts)
+            return ["  ".join((p[i] if i < len(p) else "").ljust(w)
+                              for p, w in zip(parts, widths, strict=True)).rstrip()
+                    for i in range(depth)]
 
-        def line(values: Sequence[str]) -> str:
-            return "  ".join(cut(v, w).ljust(w) for v, w in zip(values, widths, strict=True))
+        self.items += [("mb", ln) for ln in lines(heads)]
+        for r in cells:
+            self.items += [("m", ln) for ln in lines(r)]
+        self.items.append(("gap", ""))
 
-        self.items.append(("mb", line(heads)))
-        self.items += [("m", line(r)) for r in cells]
+
+def _blocks(head_widths: list[int], cells: list[list[str]]) -> list[tuple[list[int], list[int]]]:
+    """Split columns into blocks that fit :data:`CHARS` (column 0 starts every block);
+    returns (column positions, widths).  Only a block's last column may be narrower than
+    its widest cell (it wraps within the room left)."""
+    n = len(head_widths)
+    natural = [max([head_widths[c]] + [len(r[c]) for r in cells]) for c in range(n)]
+    first = min(natural[0], CHARS // 3)
+    out: list[tuple[list[int], list[int]]] = []
+    cur, widths = [0], [first]
+
+    def room() -> int:
+        return CHARS - sum(widths) - 2 * len(widths)
+
+    for c in range(1, n):
+        if natural[c] <= room():
+            cur.append(c)
+            widths.append(natural[c])
+        elif room() >= 24 and (c == n - 1 or natural[c] > CHARS // 2):
+            cur.append(c)
+            widths.append(room())
+            out.append((cur, widths))
+            cur, widths = [0], [first]
+        else:
+            if len(cur) > 1:
+                out.append((cur, widths))
+                cur, widths = [0], [first]
+            cur.append(c)
+            widths.append(min(natural[c], room()))
+    if len(cur) > 1 or not out:
+        out.append((cur, widths))
+    return out
 
 
 def _height(kind: str) -> float:
@@ -124,7 +166,7 @@ def _cover(c: ReportContent) -> list[PdfPage]:
     L.heading("Outcome")
     for r in c.runs:
         t = r.termination
-        ok = bool(t.get("converged")) and bool(t.get("meets_tol", True))
+        ok = bool(t.get("converged"))  # the status rule: solver.status.decide
         L.para(f"{r.label} ({r.solver}, run id {r.run_id or 'not stored'}): "
                f"{'CONVERGED' if ok else 'NOT CONVERGED'} — status {t.get('status')} after "
                f"{fmt(t.get('iterations'))} iterations.", "p" if ok else "ps")
@@ -198,7 +240,7 @@ def _run_support(r: RunContent) -> list[PdfPage]:
     L.table(Table(columns=("category", "points"), rows=tuple(r.categories.items()),
                   note=f"Final category of every training point ({r.categories_source})."))
     if r.influential is not None:
-        L.table(r.influential)
+        L.table(r.influential, skip=("reason",))
         reason_col = next((k for k, c in enumerate(r.influential.columns) if c == "reason"), None)
         if reason_col is not None:
             L.para("Reasons in full:", "i")
@@ -219,10 +261,48 @@ def _run_support(r: RunContent) -> list[PdfPage]:
     else:
         L.para("Held-out outcomes not available: no held-out data were scored with this run.",
                "i")
+    if r.task_section is not None:
+        ts = r.task_section
+        L.heading(ts.title)
+        if ts.intro:
+            L.para(ts.intro)
+        L.kv(ts.facts)
+        for t in ts.tables:
+            L.table(t)
+    elif r.task_note:
+        L.heading("Task section")
+        L.para(r.task_note, "i")
+    L.heading("Diagnosis")
+    L.para(r.diagnosis_note)
+    if r.diagnosis is not None:
+        L.table(r.diagnosis)
+    for code, why in r.diagnosis_skipped.items():
+        L.para(f"Not checked: {code} — {why}", "i")
     if r.decision_map is None:
         L.heading("Decision map")
         L.para(r.decision_note, "i")
     return _paginate(f"Record of {r.label}: support vectors and outcomes", L)
+
+
+def _run_calibration(r: RunContent) -> list[PdfPage]:
+    """Text and figure pages of the probability section (none without probabilities)."""
+    cal = r.calibration
+    if cal is None:
+        return []
+    L = _Lines()
+    L.heading("Probability calibration")
+    for note in cal.notes:
+        L.para(note, "i")
+    L.kv(cal.facts)
+    if cal.bins is not None:
+        L.table(cal.bins)
+    if cal.folds is not None:
+        L.table(cal.folds)
+    pages = _paginate(f"Record of {r.label}: probability calibration", L)
+    if cal.figures:
+        pages.append(PdfPage(heading=f"Probability calibration — {r.label}",
+                             figures=tuple(cal.figures)))
+    return pages
 
 
 def _challenger(c: ReportContent) -> list[PdfPage]:
@@ -255,6 +335,12 @@ def plan_pages(content: ReportContent) -> list[PdfPage]:
             pages.append(PdfPage(heading=f"Path to the solution — {r.label}",
                                  figures=tuple(figs[k:k + FIGS_PER_PAGE])))
         pages += _run_support(r)
+        pages += _run_calibration(r)
+        if r.task_section is not None and r.task_section.figures:
+            tf = list(r.task_section.figures)
+            for k in range(0, len(tf), FIGS_PER_PAGE):
+                pages.append(PdfPage(heading=f"{r.task_section.title} — {r.label}",
+                                     figures=tuple(tf[k:k + FIGS_PER_PAGE])))
         extra = [f for f in (r.decision_map, r.loo_figure) if f is not None]
         if extra:
             pages.append(PdfPage(heading=f"Decision map and leave-one-out — {r.label}",

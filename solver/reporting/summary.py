@@ -20,7 +20,8 @@ SCHEMA_ID = "kktrace-report-summary"
 SCHEMA_VERSION = 1
 
 _TERMINATION_KEYS = (
-    "status", "message", "converged", "iterations", "seconds", "kkt_tol", "max_violation",
+    "status", "message", "converged", "iterations", "seconds", "solve_seconds",
+    "compile_seconds", "setup_seconds", "total_seconds", "kkt_tol", "max_violation",
     "meets_tol", "m_up", "M_low", "dual_objective", "primal_objective", "duality_gap",
     "relative_gap", "bias", "bias_from", "bound_violation", "equality_residual",
     "max_kkt_residual",
@@ -53,14 +54,35 @@ def _run(r: RunContent) -> dict[str, Any]:
         "categories_source": r.categories_source,
         "influential": (None if r.influential is None else
                         {"columns": list(r.influential.columns),
-                         "rows": [list(row) for row in r.influential.rows]}),
+                         "rows": [list(row) for row in r.influential.rows],
+                         "order": r.influential.note, "null_means": r.influential.blank or None}),
         "holdout": None if r.holdout is None else dict(r.holdout),
+        "leave_one_out": None if not r.loo_facts else dict(r.loo_facts),
+        "calibration": None if r.calibration is None else r.calibration.to_dict(),
         "series": {k: dict(v) for k, v in r.series.items()},
         "figures": [{"key": f.key, "title": f.title, "caption": f.caption}
-                    for f in (*r.figures, *(x for x in (r.decision_map, r.loo_figure) if x))],
+                    for f in (*r.figures, *(x for x in (r.decision_map, r.loo_figure) if x),
+                              *(r.task_section.figures if r.task_section else ()),
+                              *(r.calibration.figures if r.calibration is not None else ()))],
+        "task_section": _task_section(r),
+        "diagnosis": {"statement": r.diagnosis_note,
+                      "findings": [] if r.diagnosis is None else [
+                          dict(zip(("severity", "code", "summary", "action"), row, strict=True))
+                          for row in r.diagnosis.rows],
+                      "skipped": dict(r.diagnosis_skipped)},
         "flags": [{"code": f.code, "severity": f.severity, "message": f.message}
                   for f in r.flags],
     }
+
+
+def _task_section(r: RunContent) -> dict[str, Any] | None:
+    ts = r.task_section
+    if ts is None:
+        return None
+    return {"task": ts.task, "title": ts.title, "intro": ts.intro,
+            "facts": {k: v for k, v in ts.facts},
+            "tables": [{"columns": list(t.columns), "rows": [list(row) for row in t.rows],
+                        "note": t.note} for t in ts.tables]}
 
 
 def summary_dict(content: ReportContent) -> dict[str, Any]:

@@ -1,7 +1,8 @@
 """Parent records: a run folder that ties member runs together (multi-class models, studies).
 
 A parent folder is named by a run id like any run and holds ``manifest.json``,
-``manifest.sha256`` and one ``<name>.json`` per attachment.  Its manifest has
+``manifest.sha256`` and one ``<name>.json`` per attachment (``<name>.parquet`` for an
+attachment given as the bytes of a Parquet file, e.g. a study's results table).  Its manifest has
 ``"record": "parent"``, the task name, and a ``members`` list with every member's run id,
 role, key and the SHA-256 of the member's ``manifest.json`` at the time the parent was
 saved (``traces/README.md`` section 17).  Because each member manifest holds the digests
@@ -65,6 +66,12 @@ def encode_parent(
     for name, value in record.attachments.items():
         if not isinstance(name, str) or not _ATTACHMENT_NAME.fullmatch(name) or name in _RESERVED:
             raise InvalidInputError(f"attachment name {name!r} is not allowed")
+        if isinstance(value, (bytes, bytearray)):  # a Parquet table (a study's results)
+            if not bytes(value[:4]) == b"PAR1":
+                raise InvalidInputError(f"attachment {name!r}: bytes must be a Parquet file")
+            files[f"{name}.parquet"] = bytes(value)
+            att_m[name] = {"kind": "parquet", "files": [f"{name}.parquet"]}
+            continue
         files[f"{name}.json"] = dump_json(to_plain(value, None, f"attachment {name!r}"))
         att_m[name] = {"kind": "json", "files": [f"{name}.json"]}
     members = []
@@ -122,7 +129,13 @@ def decode_parent(manifest: Mapping[str, Any], blobs: Mapping[str, bytes]) -> Pa
                               key=None if m.get("key") is None else tuple(m["key"]),
                               manifest_sha256=m["manifest_sha256"]))
     atts = {}
-    for name in (manifest.get("attachments") or {}):
+    for name, desc in (manifest.get("attachments") or {}).items():
+        if isinstance(desc, dict) and desc.get("kind") == "parquet":
+            fname = f"{name}.parquet"
+            if fname not in blobs:
+                raise IntegrityError(f"{fname}: missing")
+            atts[name] = bytes(blobs[fname])
+            continue
         fname = f"{name}.json"
         if fname not in blobs:
             raise IntegrityError(f"{fname}: missing")

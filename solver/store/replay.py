@@ -19,6 +19,7 @@ from ..certificate import Certificate, certify
 from ..errors import InvalidInputError
 from ..model import Model, model_from_solution
 from ..run import RunRecord
+from ..status import Status
 
 __all__ = ["ReplayState", "replay", "replayable_iterations"]
 
@@ -38,6 +39,9 @@ class ReplayState:
     model : the decision function f(x) at α (support vectors α > lower bound, bias from
         the certificate), or None for problems without labels.
     recorded : the trace row of iteration k as plain numbers, or None if not recorded.
+    run_status : the run's status (the status rule, :func:`solver.status.decide`),
+        run_message its message and run_timing its :attr:`SolveResult.timing`: they
+        describe the whole run, not iteration k.
     """
 
     run_id: str | None
@@ -48,6 +52,9 @@ class ReplayState:
     certificate: Certificate
     model: Model | None
     recorded: Mapping[str, Any] | None
+    run_status: Status | None = None
+    run_message: str = ""
+    run_timing: Mapping[str, float | None] | None = None
 
     def values(self, X: np.ndarray, *, standardised: bool = False) -> np.ndarray:
         """Decision values f(x) at this iteration for rows of ``X`` (m, d)."""
@@ -151,4 +158,6 @@ def replay(record: RunRecord, iteration: int, *, base: int | None = None) -> Rep
         if r < it.shape[0] and it[r] == k:
             recorded = {c: np.asarray(v)[r].item() for c, v in tr.columns.items()}
     return ReplayState(run_id=record.run_id, iteration=k, alpha=alpha, base_iteration=start,
-                       deltas_applied=applied, certificate=cert, model=model, recorded=recorded)
+                       deltas_applied=applied, certificate=cert, model=model, recorded=recorded,
+                       run_status=record.result.status, run_message=record.result.message,
+                       run_timing=record.result.timing)

@@ -106,12 +106,15 @@ class Listing:
     catalog_note : why the catalog was not (fully) used, or None when it was current.
     temp_folders : ``.tmp-*`` folders: ``folder``, ``pid``, ``writer_running``, ``age_seconds``.
     missing_challengers : SMO runs whose requested QP challenger was never saved.
+    parents : parent record id → its members (``run_id``, ``role``, ``key``), for the
+        parents among ``rows`` (listings fold the members under their parent).
     """
 
     rows: list[dict[str, Any]]
     catalog_note: str | None = None
     temp_folders: list[dict[str, Any]] = field(default_factory=list)
     missing_challengers: list[dict[str, Any]] = field(default_factory=list)
+    parents: dict[str, list[dict[str, Any]]] = field(default_factory=dict)
 
 
 def _pid_alive(pid: int) -> bool:
@@ -544,8 +547,30 @@ class RunStore:
             note = "catalog is empty or stale; runs listed from their folders"
         matched = query_rows(rows, filters)
         temps = [self._temp_info(p) for p in self.temp_folders()]
+        parents = self._parents_among(rows)
         return Listing(rows=matched, catalog_note=note, temp_folders=temps,
-                       missing_challengers=_missing_challengers(rows))
+                       missing_challengers=_missing_challengers(
+                           [r for r in rows if r["run_id"] not in parents]),
+                       parents={k: v for k, v in parents.items()
+                                if any(r["run_id"] == k for r in matched)})
+
+    def _parents_among(self, rows: list[dict[str, Any]]) -> dict[str, list[dict[str, Any]]]:
+        """Parent id → members for the parent records among ``rows`` (a parent has no
+        trace, so only rows without a trace level are read from their folders)."""
+        out: dict[str, list[dict[str, Any]]] = {}
+        for r in rows:
+            rid = r.get("run_id")
+            if r.get("trace_level") is not None or not isinstance(rid, str):
+                continue
+            if not self.is_parent(rid):
+                continue
+            try:
+                m = parse_json((self.run_dir(rid) / MANIFEST).read_bytes(), MANIFEST)
+            except (OSError, IntegrityError):
+                continue
+            out[rid] = [{"run_id": x.get("run_id"), "role": x.get("role"), "key": x.get("key")}
+                        for x in (m.get("members") or []) if isinstance(x, dict)]
+        return out
 
     def runs(self, **filters: Any) -> list[dict[str, Any]]:
         """Catalog rows (oldest first) matching ``filters``; folders the catalog lacks are

@@ -1,4 +1,4 @@
-"""Tasks: binary classification, one-vs-one multi-class, and (later) regression, one-class.
+"""Tasks: binary classification, one-vs-one multi-class, ε-regression and one-class.
 
 :data:`TASKS` maps a task name to ``"module:attribute"`` of its :class:`Task` object,
 imported on first use (the same pattern as :data:`solver.solvers.SOLVERS`).  Commands and
@@ -29,6 +29,9 @@ __all__ = ["TASKS", "Task", "MemberSpec", "Prediction", "WeightSpec", "get_task"
 TASKS: dict[str, str] = {
     "binary": "solver.tasks.binary:TASK",
     "multiclass": "solver.tasks.multiclass:TASK",
+    "regression": "solver.tasks.regression:TASK",
+    "one-class": "solver.tasks.one_class:TASK",
+    "study": "solver.studies.task:TASK",
 }
 
 

@@ -151,9 +151,12 @@ class Task:
         """Plain-data content of the task's own report section (None: no section)."""
         return None
 
-    def export_mapping(self, parent: Any, members: Sequence[Any]) -> dict[str, Any]:
-        """How the fitted members map onto an exchange format (filled in by the export work)."""
-        raise InvalidInputError(f"task {self.name!r} has no export mapping yet")
+    def export_mapping(self, parent: Any, members: Sequence[Any]) -> Any:
+        """The ONNX export subject (:class:`~solver.exchange.subjects.ExportSubject`) of a
+        parent record of this task over its member runs (task order).  Tasks whose fits
+        are single runs export by problem kind and never get here."""
+        raise InvalidInputError(f"task {self.name!r} has no ONNX export mapping for parent "
+                                "records")
 
     def __repr__(self) -> str:
         return f"<task {self.name}>"

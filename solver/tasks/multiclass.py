@@ -175,6 +175,129 @@ class MultiClassTask(Task):
                  classes: Sequence[Any]) -> dict[str, Any]:
         return confusion_k(truth, prediction.labels, classes)
 
+    def report_section(self, parent: Any, members: Sequence[Any]) -> dict[str, Any] | None:
+        """The multi-class section of a parent's report: a per-pair convergence table
+        (iterations, violation, gap, status, verdict) with the slowest pair and the worst
+        verdict called out, the held-out k × k confusion matrix and per-class recall.
+
+        members : the member runs in the parent's member order (pairs and challengers).
+        Per-pair figures are not repeated here: ``kktrace report PARENT --pair A,B`` gives
+        one pair's full pages.
+        """
+        if parent is None:
+            return None  # a pair run reported on its own: the binary pages say it all
+        from ..status import Status
+
+        info, summary = dict(parent.info), dict(parent.summary)
+        roles = [(m.role, tuple(m.key or ())) for m in parent.members]
+        verdicts: dict[tuple[str, ...], str] = {}
+        for (role, key), rec in zip(roles, members, strict=True):
+            comp = (rec.attachments or {}).get("comparison")
+            if role.endswith("_challenger") and comp:
+                verdicts[key] = str(comp.get("verdict"))
+        rows, flags = [], []
+        worst_v = None
+        order = ("agree", "agree_within_tolerances", "disagree")
+        for (role, key), rec in zip(roles, members, strict=True):
+            if role != "pair":
+                continue
+            r, c = rec.result, rec.result.certificate
+            status = r.status.label if isinstance(r.status, Status) else str(r.status)
+            v = verdicts.get(key, "no challenger")
+            rows.append((" vs ".join(key), rec.run_id, int(r.iterations),
+                         float(c.max_violation), float(c.duality_gap), status, v,
+                         int(c.n_support), float(r.seconds)))
+            if status != "converged":
+                flags.append({"code": "pair_not_converged", "severity": "stop",
+                              "message": f"pair {' vs '.join(key)} did not converge "
+                                         f"({status}); the model's votes rest on it"})
+            if v in order and (worst_v is None or order.index(v) > order.index(worst_v[1])):
+                worst_v = (key, v)
+        if worst_v is not None and worst_v[1] == "disagree":
+            flags.append({"code": "pair_solvers_disagree", "severity": "caution",
+                          "message": f"the solvers disagree on pair {' vs '.join(worst_v[0])}"})
+        slow = max(rows, key=lambda t: t[2])
+        facts = [
+            ("classes (class order)", ", ".join(str(c) for c in info["classes"])),
+            ("pairs", len(rows)),
+            ("vote rule", info.get("vote_rule")), ("tie rule", info.get("tie_rule")),
+            ("slowest pair", f"{slow[0]}: {slow[2]} iterations, {slow[8]:.3g} s"),
+            ("worst verdict", "no challenger ran" if worst_v is None else
+             f"{worst_v[1]} (every pair)" if len({t[6] for t in rows}) == 1 else
+             f"{worst_v[1]} (pair {' vs '.join(worst_v[0])})"),
+            ("worst status", summary.get("status")),
+            ("largest violation over the pairs", max(t[3] for t in rows)),
+            ("pairs ran", (info.get("execution") or {}).get("mode", "sequential")),
+        ]
+        if info.get("class_weight"):
+            facts.append(("class weights (scale C per class)", ", ".join(
+                f"{k} {v:.6g}" for k, v in info["class_weight"].items())
+                + f" ({info.get('class_weight_rule', 'given')})"))
+        wc = (info.get("options") or {}).get("weight_column")
+        if wc:
+            facts.append(("per-row weights from column", wc))
+        tables = [{"columns": ["pair", "run", "iterations", "violation", "duality gap",
+                               "status", "verdict", "support vectors", "seconds"],
+                   "rows": rows,
+                   "note": (f"slowest pair {slow[0]}; worst verdict "
+                            f"{'n/a' if worst_v is None else worst_v[1]}. One pair's full "
+                            f"pages: kktrace report {parent.run_id} --pair A,B")}]
+        hold = (parent.attachments or {}).get("holdout")
+        if hold:
+            labs = [str(v) for v in hold["labels"]]
+            tables.append({"columns": ["true \\ predicted", *labs],
+                           "rows": [(lab, *row) for lab, row in
+                                    zip(labs, hold["matrix"], strict=True)],
+                           "note": f"held-out rows {hold['n']}: rows true class, columns "
+                                   f"predicted; {hold.get('ties', 0)} tied votes"})
+            tables.append({"columns": ["class", "recall"],
+                           "rows": [(k, v) for k, v in hold["recall"].items()],
+                           "note": f"accuracy {hold['accuracy']:.4f}, balanced accuracy "
+                                   f"{hold['balanced_accuracy']:.4f}"})
+            facts += [("held-out accuracy", hold["accuracy"]),
+                      ("held-out balanced accuracy", hold["balanced_accuracy"])]
+        figures: list[dict[str, Any]] = []
+        from ..calibration.evidence import multiclass_report_part
+
+        probs = multiclass_report_part((parent.attachments or {}).get("calibration"))
+        if probs is not None:  # trained with probabilities: coupling, pair sigmoids, evidence
+            facts += probs["facts"]
+            tables += probs["tables"]
+            figures += probs["figures"]
+        return {
+            "title": f"One-vs-one model over {len(info['classes'])} classes",
+            "intro": (f"Multi-class model {parent.run_id}: {len(rows)} pair runs, each a "
+                      "complete binary run on the rows of its two classes, tied together by "
+                      "this parent record (verify checks every pair). The pages below show "
+                      "one pair in full; the table lists every pair."),
+            "facts": facts, "tables": tables, "figures": figures, "flags": flags,
+        }
+
+    def export_mapping(self, parent: Any, members: Sequence[Any]) -> Any:
+        """The ONNX export subject of a one-vs-one parent (:mod:`solver.exchange.subjects`).
+
+        members : the pair runs in pair order.  The check rows are the training rows of
+        every class, read back in raw units from the first pair that holds the class
+        (class 0 and 1 from pair (0, 1), class j ≥ 2 from pair (0, j)).
+        """
+        from ..exchange.subjects import one_vs_one_subject
+
+        info = dict(parent.info)
+        pairs = _pairs(len(info["class_values"]))
+        if len(members) != len(pairs):
+            raise InvalidInputError(f"parent {parent.run_id}: {len(pairs)} pairs expected, "
+                                    f"{len(members)} pair runs found")
+        blocks = []
+        for (i, j), rec in zip(pairs, members, strict=True):
+            raw = rec.problem.X * rec.standardiser.scale + rec.standardiser.centre
+            positive = rec.problem.y > 0  # the later class j
+            if i == 0:
+                blocks += [raw[~positive]] if j == 1 else []
+                blocks.append(raw[positive])
+        return one_vs_one_subject(
+            parent, members, pairs=pairs, training=np.vstack(blocks),
+            predict=lambda models, X: self.predict(models, X, info))
+
 
 def confusion_k(truth: np.ndarray, pred: np.ndarray, classes: Sequence[Any]) -> dict[str, Any]:
     """k × k confusion matrix (rows: true class, columns: predicted; class order),

@@ -106,8 +106,9 @@ def main() -> None:
     print(f"leave-one-out errors: support_refits {fast.errors}, brute_force {brute.errors}, "
           f"same rows: {same}, max |f difference| {gap:.2e}")
     print(f"rows with |f| within the tolerance of the boundary: {fast.near_boundary_rows.size}")
-    print(f"error rate {fast.error_rate:.4f} <= xi-alpha estimate {fast.xi_alpha_estimate:.4f} "
-          f"(R^2 = {fast.xi_alpha_r2:.4f}) <= support-vector bound {fast.sv_bound:.4f}")
+    print(f"error rate {fast.error_rate:.4f} <= xi-alpha estimate {fast.slack_bound_rate:.4f} "
+          f"(R^2 = {fast.kernel_value_range:.4f}) "
+          f"<= support-vector bound {fast.support_vector_bound:.4f}")
 
 
 if __name__ == "__main__":

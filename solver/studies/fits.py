@@ -1,0 +1,164 @@
+"""The fits of a study: pure functions run on Dask workers (nothing here writes).
+
+A *job* is a chain of cells that share a fold, γ and degree, in ascending C.  Cold jobs
+hold one cell; with warm starts a job walks the whole C axis, each fit starting from the
+previous C's α scaled by C_new / C_old into the new box and then made feasible
+(:func:`solver.smo.repair_start`).  Every fit is returned as a complete
+:class:`~solver.run.RunRecord` (the client stores it) with the scores of its validation
+fold.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from ..data import Dataset
+from ..model import Standardiser, model_from_solution
+from ..run import RunRecord
+from .grid import Cell
+
+__all__ = ["StudyData", "FitJob", "FitOutput", "fit_chain", "fit_key", "SMALL_VALUE"]
+
+#: validation rows with |f(x)| below this are counted: their predicted class may flip
+#: between two solvers that meet the same tolerance (the reference check allows them)
+SMALL_VALUE = 1e-3
+
+
+@dataclass(frozen=True, eq=False)
+class StudyData:
+    """What every fit reads: the dataset and the fold number (0 … k−1) of every row.
+    Scattered to the workers once."""
+
+    dataset: Dataset
+    folds: np.ndarray
+
+
+@dataclass(frozen=True)
+class FitJob:
+    """One chain of fits (see the module docstring).
+
+    task : registry name of the task (``"binary"``).
+    fold : validation fold; the fit trains on every other fold.
+    cells : the cells, ascending C.  keys : the idempotency key of each cell's fit.
+    warm : start each fit after the first from the previous one's scaled α.
+    options : kernel name and offset, kkt_tol, iteration_limit, trace, standardise.
+    command : the reproducing command stored with every member run.
+    """
+
+    task: str
+    fold: int
+    cells: tuple[Cell, ...]
+    keys: tuple[str, ...]
+    warm: bool
+    options: Mapping[str, Any]
+    command: Any = None
+    extra_data: Mapping[str, Any] = field(default_factory=dict)
+
+
+@dataclass(frozen=True, eq=False)
+class FitOutput:
+    """One fit: its record (not yet stored), validation scores and the count of small
+    validation decision values."""
+
+    key: str
+    cell: Cell
+    fold: int
+    record: RunRecord
+    values: np.ndarray
+    warm_start: bool
+
+
+def fit_key(base: Mapping[str, Any], cell: Cell, fold: int, warm: bool) -> str:
+    """SHA-256 naming one fit: the study's data, folds and options plus cell, fold and
+    start mode.  The same inputs give the same key, so a re-run finds fits already
+    stored."""
+    doc = {**base, "cell": cell.to_dict(), "fold": int(fold), "start": "warm" if warm
+           else "cold"}
+    return hashlib.sha256(json.dumps(doc, sort_keys=True).encode()).hexdigest()
+
+
+def _kernel(options: Mapping[str, Any], cell: Cell):
+    from ..training import _make_kernel
+
+    return _make_kernel(options["kernel"], cell.gamma, cell.degree or 3,
+                        float(options.get("offset", 0.0)))
+
+
+def fit_chain(data: StudyData, job: FitJob) -> list[FitOutput]:
+    """Fit every cell of ``job`` on the rows outside ``job.fold`` and score the rows in
+    it.  Pure: the records are returned, not stored."""
+    from ..smo import repair_start
+    from ..tasks import get_task
+    from ..training import _fingerprint, _solve, _subset
+
+    task = get_task(job.task)
+    ds = data.dataset
+    train_rows = np.flatnonzero(data.folds != job.fold)
+    val_rows = np.flatnonzero(data.folds == job.fold)
+    sub = _subset(ds, train_rows)
+    val = _subset(ds, val_rows)
+    (member,) = task.members(sub.labels)
+    opts = job.options
+    std = Standardiser.fit(sub.X) if opts.get("standardise", True) else \
+        Standardiser.identity(sub.X.shape[1])
+    Z = std.transform(sub.X)
+    data_facts = {
+        "fingerprint": _fingerprint(sub), "feature_names": list(ds.feature_names),
+        "label_name": ds.label_name, "source": ds.source, "warnings": list(sub.warnings),
+        "n_rows": int(sub.X.shape[0]), **job.extra_data,
+    }
+    from ..tasks._labels import class_order
+
+    classes = class_order(ds.labels)
+    out: list[FitOutput] = []
+    prev = None
+    for cell, key in zip(job.cells, job.keys, strict=True):
+        problem = task.build_problem(Z, member, kernel=_kernel(opts, cell), C=cell.C)
+        start = None
+        if job.warm and prev is not None:
+            p_prob, p_res = prev
+            # α scaled into the new box (bounds are C times fixed weights), then feasible
+            start = repair_start(problem, p_res.alpha * (cell.C / p_prob.info["C"]))
+        result = _solve_from(problem, opts, start, _solve)
+        model = model_from_solution(problem, result, std)
+        pred = task.predict([model], val.X)
+        scores = task.held_out(pred, val.labels, classes)
+        values = np.asarray(pred.values[:, 0], dtype=np.float64)
+        scores.update(source="validation fold", fold=int(job.fold),
+                      n_small_values=int(np.sum(np.abs(values) < SMALL_VALUE)),
+                      small_value_threshold=SMALL_VALUE)
+        att = {
+            "command": job.command,
+            "holdout": scores,
+            "study_fit": {"key": key, "cell": cell.to_dict(), "fold": int(job.fold),
+                          "start": "warm" if start is not None else "cold",
+                          "validation_rows": int(val_rows.size)},
+        }
+        rec = RunRecord(problem=problem, result=result,
+                        data={**data_facts, "study_fit_key": key}, standardiser=std,
+                        attachments=att)
+        out.append(FitOutput(key=key, cell=cell, fold=int(job.fold), record=rec,
+                             values=values, warm_start=start is not None))
+        prev = (problem, result)
+    return out
+
+
+def _solve_from(problem: Any, opts: Mapping[str, Any], start: np.ndarray | None,
+                solve: Any) -> Any:
+    if start is None:
+        return solve("smo", problem, kkt_tol=float(opts["kkt_tol"]),
+                     iteration_limit=opts.get("iteration_limit"), trace=opts["trace"],
+                     progress=None)
+    from ..smo import solve_smo
+
+    kw: dict[str, Any] = {"kkt_tol": float(opts["kkt_tol"]), "trace": opts["trace"],
+                          "alpha0": start}
+    if opts.get("iteration_limit") is not None:
+        kw["iteration_limit"] = opts["iteration_limit"]
+    return solve_smo(problem, **kw)

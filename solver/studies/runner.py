@@ -1,0 +1,402 @@
+"""``study()``: a grid × stratified seeded k-fold cross-validation, every fit a stored
+run, the study a parent record (``task = "study"``) with the results table.
+
+Flow: data → folds → fit jobs (cells × folds) → Dask workers (:mod:`.execute`) → records
+back to this process → store (one run per fit, as each arrives) → table, best cell and
+one-standard-error choice → parent record.  A re-run with the same data, folds and options
+finds the fits already stored (by their key, after verifying them) and fits only the rest.
+
+Trace level: ``sampled`` by default — a study is hundreds of fits; every 100th iteration
+plus every iteration with an event keeps each run's convergence shape and all its events
+at a small fraction of a full trace's size (``full`` and ``off`` may be asked for).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import math
+import os
+import shlex
+import time
+from collections.abc import Callable, Mapping, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from ..errors import InvalidInputError
+from ..result import TRACE_LEVELS
+from ..run import Member, ParentRecord, RunRecord
+from .execute import CONNECT_TIMEOUT_S, RETRIES, connect, run_study_jobs
+from .fits import FitJob, StudyData, fit_chain, fit_key
+from .grid import Grid, make_grid
+from .table import aggregate, choose, fit_row, write_parquet
+
+__all__ = ["study", "StudyOutcome", "SCHEDULER_ENV", "study_folds"]
+
+#: environment variable naming a Dask scheduler address (used when ``scheduler`` is None)
+SCHEDULER_ENV = "KKTRACE_SCHEDULER"
+
+#: progress callback: (cells done, total, failures, elapsed s, estimated s left or None)
+StudyProgress = Callable[[int, int, int, float, float | None], None]
+
+
+@dataclass(frozen=True, eq=False)
+class StudyOutcome:
+    """Result of :func:`study`.
+
+    study_id : the stored parent record.  grid : the :class:`Grid`.
+    rows : one plain-data row per fit (cell × fold); cells : per-cell aggregates;
+    choice : best cell and the one-standard-error cell (with the rule, named).
+    reused : fits found already stored and verified (not refitted).
+    fitted : fits made by this call.  execution : where the fits ran.
+    not_converged : rows of fits that did not converge.  table_path : Parquet file or None.
+    """
+
+    study_id: str
+    grid: Grid
+    rows: tuple[dict[str, Any], ...]
+    cells: tuple[dict[str, Any], ...]
+    choice: dict[str, Any]
+    reused: int
+    fitted: int
+    execution: dict[str, Any]
+    store: Path
+    table_path: Path | None = None
+    warnings: tuple[str, ...] = field(default=())
+
+    @property
+    def not_converged(self) -> list[dict[str, Any]]:
+        """Rows of the fits that did not converge."""
+        return [r for r in self.rows if not r["converged"]]
+
+    def summary(self) -> dict[str, Any]:
+        """Plain data for ``--json``."""
+        return {
+            "study_id": self.study_id, "grid": self.grid.to_dict(), "choice": self.choice,
+            "cells": list(self.cells), "fits": len(self.rows), "reused": self.reused,
+            "fitted": self.fitted, "execution": self.execution,
+            "not_converged": [{k: r[k] for k in ("cell", "fold", "run_id", "status")}
+                              for r in self.not_converged],
+            "store": str(self.store),
+            "table": None if self.table_path is None else str(self.table_path),
+            "warnings": list(self.warnings),
+            "caution": CAUTION,
+        }
+
+
+CAUTION = ("kktrace gives evidence about the optimisation and the cross-validated scores of "
+           "these fits; it is not a validation sign-off of a model")
+
+
+def study_folds(labels: np.ndarray, k: int, seed: int) -> np.ndarray:
+    """Stratified seeded fold numbers (n,) for a study; a class with fewer rows than
+    ``k`` is refused, naming the class."""
+    from ..calibration import stratified_folds
+
+    if isinstance(k, bool) or not isinstance(k, (int, np.integer)) or k < 2:
+        raise InvalidInputError(f"--folds must be an integer >= 2, got {k!r}")
+    if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
+        raise InvalidInputError(f"--seed must be a non-negative integer, got {seed!r}")
+    text = np.array([str(v) for v in np.asarray(labels, dtype=object).tolist()])
+    names, counts = np.unique(text, return_counts=True)
+    for name, cnt in zip(names.tolist(), counts.tolist(), strict=True):
+        if cnt < k:
+            raise InvalidInputError(
+                f"class {name!r} has {cnt} rows, fewer than the {k} folds: some fold would "
+                f"have no row of it; use at most {cnt} folds or more data")
+    return stratified_folds(text, int(k), int(seed))
+
+
+def _where(scheduler: str | None) -> str:
+    if scheduler is None:
+        scheduler = os.environ.get(SCHEDULER_ENV) or "local"
+    if not isinstance(scheduler, str) or not scheduler.strip():
+        raise InvalidInputError(f"scheduler must be 'local', 'sequential' or an address, "
+                                f"got {scheduler!r}")
+    return scheduler.strip()
+
+
+def _existing(store: Any, fingerprints: Sequence[str]) -> dict[str, str]:
+    """study fit key → run id, for the runs already in the store on these training sets."""
+    from ..store.format import parse_json
+
+    found: dict[str, str] = {}
+    if not Path(store.root).is_dir():
+        return found
+    for fp in sorted(set(fingerprints)):
+        for row in store.runs(fingerprint=fp):
+            rid = row.get("run_id")
+            try:
+                m = parse_json((store.run_dir(rid) / "manifest.json").read_bytes(),
+                               "manifest.json")
+            except Exception:  # noqa: BLE001 - an unreadable run is simply not reused
+                continue
+            key = (m.get("data") or {}).get("study_fit_key") if isinstance(m, dict) else None
+            if isinstance(key, str):
+                found.setdefault(key, rid)
+    return found
+
+
+def _command(data: Any, label: str | None, args: Mapping[str, Any]) -> dict[str, Any]:
+    if not isinstance(data, (str, Path)):
+        return {"argv": None, "text": None, "python": "solver.study(dataset, ...)",
+                "note": "study of an in-memory dataset: reproduce with the Python call"}
+    argv = ["kktrace", "study", str(data)]
+    if label is not None:
+        argv += ["--label", label]
+    for k, v in args.items():
+        if v is None or v is False:
+            continue
+        flag = "--" + k.replace("_", "-")
+        argv += [flag] if v is True else [flag, ",".join(f"{x:g}" for x in v)
+                                            if isinstance(v, (list, tuple)) else str(v)]
+    return {"argv": argv, "text": shlex.join(argv), "python": None}
+
+
+def _versions() -> dict[str, str]:
+    import importlib.metadata as md
+
+    from .. import __version__
+
+    out = {"kktrace": __version__}
+    for pkg in ("numpy", "scipy", "numba", "dask", "distributed", "pyarrow"):
+        try:
+            out[pkg] = md.version(pkg)
+        except md.PackageNotFoundError:
+            out[pkg] = "not installed"
+    return out
+
+
+def study(data: Any, **options: Any) -> StudyOutcome:
+    """Cross-validate a grid of C × γ (× degree) and store every fit and the study.
+
+    Keyword options as :func:`_study` (data and solver warnings are kept out of the
+    warnings machinery and recorded in ``outcome.warnings``, as :func:`solver.train` does).
+
+    Parameters
+    ----------
+    data, label : a :class:`~solver.data.Dataset` or a data file and its label column
+        (two classes).
+    kernel, C, gamma, degree, offset : the kernel and the grid axes (each non-empty, every
+        value > 0; ``gamma`` for rbf/poly/sigmoid, ``degree`` for poly, default 3).
+    folds, seed : stratified seeded k-fold assignment (the fold of every row is stored).
+    kkt_tol, iteration_limit, trace, standardise : as for :func:`solver.train`; the
+        trace level defaults to ``sampled`` (see :mod:`solver.studies.runner`).
+    warm_start : within a fold, γ and degree, start each C from the previous C's α scaled
+        into the new box (:mod:`solver.studies.fits`).
+    scheduler : ``"local"`` (a LocalCluster, default), ``"sequential"`` (this process) or a
+        Dask scheduler address; None reads ``$KKTRACE_SCHEDULER``, else ``"local"``.
+    workers : worker processes of the LocalCluster (default: one per core).
+    connect_timeout : seconds to wait for a scheduler address (default 10).
+    store : store directory or RunStore.  table : also write the results table here
+        (Parquet); it is stored with the study either way.
+    progress : ``progress(done, total, failures, elapsed_s, left_s)`` after every fit.
+
+    Returns a :class:`StudyOutcome`.  A fit that does not converge is stored with its
+    status, counted in the table and listed (``outcome.not_converged``).
+    """
+    import warnings
+    from dataclasses import replace
+
+    from ..errors import ConvergenceWarning, DataWarning, StoreWarning
+
+    kinds = (ConvergenceWarning, DataWarning, StoreWarning)
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        out = _study(data, **options)
+    notes = list(out.warnings)
+    for w in caught:
+        if issubclass(w.category, kinds):
+            if str(w.message) not in notes and f"data: {w.message}" not in notes:
+                notes.append(str(w.message))
+        else:
+            warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+    return replace(out, warnings=tuple(notes))
+
+
+def _study(
+    data: Any, *, label: str | None = None, kernel: str = "rbf",
+    C: Sequence[float] | str = (0.1, 1.0, 10.0), gamma: Sequence[float] | str | None = None,
+    degree: Sequence[int] | str | None = None, offset: float = 0.0, folds: int = 5,
+    seed: int = 0, kkt_tol: float = 1e-3, iteration_limit: int | None = None,
+    trace: str = "sampled", standardise: bool = True, warm_start: bool = False,
+    scheduler: str | None = None, workers: int | None = None,
+    connect_timeout: float = CONNECT_TIMEOUT_S, store: Any = None,
+    table: str | Path | None = None, progress: StudyProgress | None = None,
+) -> StudyOutcome:
+    """The body of :func:`study` (same options)."""
+    from .._workflow import _fingerprint, _load_data, open_store
+    from ..tasks import classification_task
+    from ..tasks._labels import class_order
+    from ..training import _subset, _warm_up
+
+    grid = make_grid(kernel, C, gamma, degree)
+    if trace not in TRACE_LEVELS:
+        raise InvalidInputError(f"unknown trace level {trace!r}; choose one of "
+                                f"{', '.join(TRACE_LEVELS)}")
+    if not (isinstance(kkt_tol, (int, float)) and math.isfinite(kkt_tol) and kkt_tol > 0):
+        raise InvalidInputError(f"kkt_tol must be a finite number > 0, got {kkt_tol!r}")
+    where = _where(scheduler)
+    if isinstance(data, (str, Path)) and label is None:
+        raise InvalidInputError("name the label column of the data file (--label COLUMN)")
+    ds = _load_data(data, label, "study data")
+    if ds.labels is None:
+        raise InvalidInputError("study data have no label column")
+    classes = class_order(ds.labels)
+    task = classification_task(len(classes))
+    if task.parent_record:
+        raise InvalidInputError(f"the label column has {len(classes)} classes; studies "
+                                "support two-class data so far")
+    fold_of = study_folds(ds.labels, folds, seed)
+    run_store = open_store(store)
+    out_table = None
+    if table is not None:
+        out_table = run_store.check_output_path(table, "--table")
+    opts = {"kernel": grid.kernel, "offset": float(offset), "kkt_tol": float(kkt_tol),
+            "iteration_limit": iteration_limit, "trace": trace,
+            "standardise": bool(standardise)}
+    fold_digest = hashlib.sha256(np.ascontiguousarray(fold_of, dtype="<i8").tobytes()).hexdigest()
+    base = {"data": _fingerprint(ds), "folds": fold_digest, "task": task.name, **opts}
+    command = _command(data, label, {
+        "kernel": grid.kernel, "C": list(grid.C),
+        "gamma": None if grid.gamma == (None,) else list(grid.gamma),
+        "degree": None if grid.degree == (None,) else list(grid.degree),
+        "folds": int(folds), "seed": int(seed), "kkt_tol": kkt_tol,
+        "iteration_limit": iteration_limit, "trace": trace, "warm_start": bool(warm_start),
+        "no_standardise": not standardise})
+    jobs: list[FitJob] = []
+    chains: dict[tuple[int, Any, Any], list[Any]] = {}
+    for cell in grid.cells():
+        for k in range(int(folds)):
+            chains.setdefault((k, cell.gamma, cell.degree), []).append(cell)
+    for (k, _, _), cells in chains.items():
+        groups = [cells] if warm_start else [[c] for c in cells]
+        for g in groups:
+            keys = tuple(fit_key(base, c, k, warm_start and i > 0) for i, c in enumerate(g))
+            jobs.append(FitJob(task=task.name, fold=k, cells=tuple(g), keys=keys,
+                               warm=bool(warm_start), options=opts, command=command,
+                               extra_data={"study_fold": k}))
+    train_fps = [_fingerprint(_subset(ds, np.flatnonzero(fold_of != k)))
+                 for k in range(int(folds))]
+    known = _existing(run_store, train_fps)
+    notes: list[str] = [f"data: {w}" for w in ds.warnings]
+    stored: dict[str, tuple[str, RunRecord]] = {}
+    for key in {k for j in jobs for k in j.keys}:
+        if key in known:
+            try:
+                stored[key] = (known[key], run_store.load(known[key], verify=True))
+            except Exception as exc:  # noqa: BLE001 - a damaged earlier fit is fitted again
+                notes.append(f"run {known[key]} was not reused ({exc}); fitted again")
+    reused = len(stored)
+    todo = [j for j in jobs if not all(k in stored for k in j.keys)]
+    total = len(grid.cells()) * int(folds)
+    t0 = time.monotonic()
+    state = {"done": reused, "fitted": 0}
+
+    def on_done(_: int, outputs: list[Any]) -> None:
+        for o in outputs:
+            if o.key in stored:
+                continue  # a warm chain refits earlier cells to reach the missing ones
+            rid = run_store.save(o.record)
+            stored[o.key] = (rid, o.record)
+            state["done"] += 1
+            state["fitted"] += 1
+        if progress is not None:
+            el = time.monotonic() - t0
+            rate = el / state["fitted"] if state["fitted"] else None
+            left = None if rate is None else rate * (total - state["done"])
+            fails = sum(not r.result.success for _, r in stored.values())
+            progress(state["done"], total, fails, el, left)
+
+    connected = None
+    if todo and where != "sequential":
+        connected = connect(where, workers, connect_timeout)  # before anything is written
+    if todo:
+        ex = run_study_jobs(fit_chain, StudyData(ds, fold_of), todo, where=where,
+                            workers=workers, on_done=on_done, warm_up=_warm_up,
+                            connected=connected)
+        execution = {**ex.to_dict(), "retries_on_error": RETRIES,
+                     "retries_on_worker_death": "Dask scheduler allowed-failures (default 3)"}
+    else:
+        execution = {"mode": "none", "workers": 0, "reason": "every fit was already stored "
+                     "and verified", "address": None}
+    score_name = "accuracy"
+    pairs = []
+    for j in jobs:
+        for cell, key in zip(j.cells, j.keys, strict=True):
+            rid, rec = stored[key]
+            pairs.append((fit_row(rec, rid, score_name),
+                          Member(run_id=rid, role="fit", key=(cell.label, f"fold={j.fold}"))))
+    pairs.sort(key=lambda p: (p[0]["gamma"] or 0.0, p[0]["degree"] or 0, p[0]["C"],
+                              p[0]["fold"]))
+    rows = [p[0] for p in pairs]
+    members = [p[1] for p in pairs]
+    cells = aggregate(rows)
+    choice = choose(cells, score_name)
+    for r in rows:
+        if not r["converged"]:
+            notes.append(f"fit {r['cell']} fold {r['fold']} (run {r['run_id']}) did not "
+                         f"converge: {r['status']}")
+    parent = _parent(task.name, grid, ds, fold_of, folds, seed, opts, warm_start, execution,
+                     rows, cells, choice, members, command)
+    sid = run_store.save_parent(parent)
+    if out_table is not None:
+        write_parquet(rows, cells, out_table)
+    return StudyOutcome(study_id=sid, grid=grid, rows=tuple(rows), cells=tuple(cells),
+                        choice=choice, reused=reused, fitted=state["fitted"],
+                        execution=execution, store=Path(run_store.root),
+                        table_path=out_table, warnings=tuple(notes))
+
+
+def _parent(task: str, grid: Grid, ds: Any, fold_of: np.ndarray, k: int, seed: int,
+            opts: Mapping[str, Any], warm: bool, execution: Mapping[str, Any],
+            rows: Sequence[Mapping[str, Any]], cells: Sequence[Mapping[str, Any]],
+            choice: Mapping[str, Any], members: Sequence[Member], command: Any
+            ) -> ParentRecord:
+    import io
+
+    import pyarrow as pa  # noqa: F401 - the table is written with pyarrow
+
+    from .._workflow import _fingerprint
+    from ..training import _STATUS_ORDER, worst
+
+    buf = io.BytesIO()
+    write_parquet(rows, cells, buf)
+    status = worst([r["status"] for r in rows], _STATUS_ORDER) or "converged"
+    one_se = next(c for c in cells if c["cell"] == choice["one_se"])
+    info = {
+        "kind": "study", "member_task": task, "grid": grid.to_dict(),
+        "folds": {"k": int(k), "seed": int(seed), "rule": "stratified by class, seeded "
+                  "(solver.calibration.stratified_folds)", "attachment": "folds"},
+        "options": dict(opts), "warm_start": bool(warm), "execution": dict(execution),
+        "versions": _versions(), "score": choice["score"],
+        "trace_level_reason": "sampled: every 100th iteration plus every event keeps each "
+        "fit's convergence shape at a fraction of a full trace's size",
+    }
+    summary = {
+        "task": "study", "members": len(members), "status": status,
+        "converged": all(r["converged"] for r in rows), "choice": dict(choice),
+        "solver": {"name": "smo", "status": status,
+                   "iterations": int(sum(r["iterations"] for r in rows)),
+                   "seconds": float(sum(r["seconds"] for r in rows))},
+        "problem": {"kind": "study", "n": int(ds.X.shape[0]), "n_features": int(ds.X.shape[1]),
+                    "kernel": {"name": grid.kernel,
+                               "params": {} if one_se["gamma"] is None else
+                               {"gamma": one_se["gamma"]}},
+                    "info": {"C": float(one_se["C"])}},
+        "certificate": {"kkt_tol": float(opts["kkt_tol"]),
+                        "max_violation": float(max(r["max_violation"] for r in rows)),
+                        "duality_gap": float(max(r["duality_gap"] for r in rows))},
+    }
+    data = {"fingerprint": _fingerprint(ds), "feature_names": list(ds.feature_names),
+            "label_name": ds.label_name, "source": ds.source, "warnings": list(ds.warnings),
+            "n_rows": int(ds.X.shape[0])}
+    attachments = {
+        "folds": {"fold": [int(v) for v in fold_of.tolist()], "k": int(k), "seed": int(seed)},
+        "results": {"fits": list(rows), "cells": list(cells), "choice": dict(choice)},
+        "results_table": buf.getvalue(),
+    }
+    return ParentRecord(task="study", members=tuple(members), info=info, data=data,
+                        summary=summary, attachments=attachments, command=command)

@@ -1,0 +1,131 @@
+"""The ``one-class`` task: novelty detection from features alone (Schölkopf et al. 2001).
+
+One problem (:func:`solver.problem.one_class`, scaled so that 0 ≤ α ≤ 1 and eᵀα = νn),
+stored as one run.  Training goes through :mod:`solver.training_kinds`; this object gives
+the task's vocabulary, its held-out measures and its report section.
+
+Report section (plain data, drawn by :mod:`solver.reporting`): the distribution of the
+kernel expansion g(x) = Σ αⱼ K(xⱼ, x) over the training rows with the threshold ρ (the
+score is f(x) = g(x) − ρ; a row is flagged where f < 0), and the ν-property — ν is an upper
+bound on the share of outliers and a lower bound on the share of support vectors
+(Schölkopf et al. 2001, Proposition 4), checked by :func:`solver.measures.nu_property`.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+from typing import Any
+
+import numpy as np
+
+from ..explanation._kinds import ONE_CLASS_CATEGORIES
+from ..problem import ONE_CLASS_KIND
+from ._base import Task
+
+__all__ = ["OneClassTask", "TASK"]
+
+#: display words of the per-point categories (codes from the explanation table)
+CATEGORY_WORDS = {"interior": "interior", "boundary": "on the boundary (free)",
+                  "outside": "outside (bounded)"}
+
+
+class OneClassTask(Task):
+    """One-class: f(x) = Σ αⱼ K(xⱼ, x) − ρ; inlier where f(x) ≥ 0, outlier where f(x) < 0."""
+
+    name = "one-class"
+    problem_kinds = (ONE_CLASS_KIND,)
+    parent_record = False
+    categories = tuple(ONE_CLASS_CATEGORIES)
+    measures = ("n_flagged", "share_flagged", "confusion", "detection_rate",
+                "false_alarm_rate")
+
+    def report_section(self, parent: Any, members: Sequence[Any]) -> dict[str, Any] | None:
+        """Score distribution, ρ, and the ν-property of one stored one-class run."""
+        from ..explanation import kind_point_table
+        from ..measures import nu_property
+
+        (rec,) = members
+        p, res = rec.problem, rec.result
+        table = kind_point_table(p, res)
+        cols = table.columns
+        score = np.asarray(cols["score"], np.float64)
+        cat = np.asarray(cols["category"]).astype(str)
+        n = int(score.size)
+        nu = float(p.info["nu"])
+        rho = -float(res.bias)
+        tol = float(res.certificate.kkt_tol)
+        check = nu_property(p, res.alpha, score, kkt_tol=tol)
+        stored = (rec.attachments or {}).get("nu_property")
+        counts = table.category_counts()
+        facts = [
+            ("ν", nu), ("training rows", n),
+            ("ρ (threshold on Σ αⱼK(xⱼ, x), this scaling: eᵀα = νn)", rho),
+            ("ρ in the paper's scaling (eᵀα = 1): ρ / (νn)", rho / (nu * n)),
+            ("outlier share (score < −kkt_tol)", check["outlier_share"]),
+            ("share with score < 0", check["strict_outlier_share"]),
+            ("support-vector share (α > 0)", check["support_share"]),
+            ("ν-property: outlier share ≤ ν ≤ support-vector share", check["holds"]),
+            ("tolerance of the outlier count (kkt_tol)", tol),
+        ]
+        if isinstance(stored, Mapping) and "holds" in stored:
+            facts.append(("ν-property as stored with the run", bool(stored["holds"])))
+        tables = [{"columns": ("category", "rows", "meaning"),
+                   "rows": tuple((CATEGORY_WORDS[c], counts[c], ONE_CLASS_CATEGORIES[c])
+                                 for c in ONE_CLASS_CATEGORIES),
+                   "note": "Rows by their multiplier against its bounds."}]
+        hold = (rec.attachments or {}).get("holdout")
+        conf = hold.get("confusion") if isinstance(hold, Mapping) else None
+        if isinstance(conf, Mapping):
+            tables.append({
+                "columns": ("", "flagged (score < 0)", "passed (score ≥ 0)"),
+                "rows": (("known outlier", conf.get("flagged_known"), conf.get("missed")),
+                         ("not known as outlier", conf.get("flagged_unknown"),
+                          conf.get("passed"))),
+                "note": "Held-out rows: flags against the known-outlier column."})
+        flags = []
+        if not check["holds"]:
+            flags.append({"code": "nu_property_fails", "severity": "caution",
+                          "message": (f"the ν-property does not hold: outlier share "
+                                      f"{check['outlier_share']:.4g}, ν {nu:g}, support-vector "
+                                      f"share {check['support_share']:.4g}; the run may not "
+                                      "be at its optimum")})
+        words = np.array([CATEGORY_WORDS[c] for c in cat], dtype=object)
+        return {
+            "title": f"One-class boundary (ν = {nu:g})",
+            "intro": ("Each training row's kernel expansion g(x) = Σ αⱼK(xⱼ, x) against the "
+                      f"threshold ρ = {rho:.6g}; the score is f(x) = g(x) − ρ and a row is "
+                      "flagged as unusual where f(x) < 0. ν bounds the share of flagged "
+                      "training rows from above and the share of support vectors from below "
+                      "(Schölkopf et al. 2001, Proposition 4)."),
+            "facts": facts,
+            "tables": tables,
+            "figures": [
+                {"key": "score_distribution", "kind": "score_distribution",
+                 "title": "distribution of g(x) with the threshold ρ",
+                 "caption": (f"Histogram of g(x) = f(x) + ρ over the {n} training rows, "
+                             f"stacked by category; the vertical line is ρ = {rho:.4g}. Rows "
+                             "left of it are flagged."),
+                 "data": {"expansion": score + rho, "rho": rho, "category": words}},
+                {"key": "nu_shares", "kind": "nu_shares",
+                 "title": "ν against the shares of outliers and support vectors",
+                 "caption": ("Outlier share ≤ ν ≤ support-vector share must hold at the "
+                             "optimum (Schölkopf et al. 2001, Proposition 4); outliers are "
+                             f"rows with score below −kkt_tol = −{tol:.3g}. "
+                             + ("It holds for this run." if check["holds"] else
+                                "It does NOT hold for this run.")),
+                 "data": {"nu": nu, "outlier_share": check["outlier_share"],
+                          "support_share": check["support_share"], "holds": check["holds"]}},
+            ],
+            "flags": flags,
+        }
+
+    def held_out(self, prediction: Any, truth: np.ndarray | None,
+                 classes: Sequence[Any]) -> dict[str, Any]:
+        """Share flagged and, with known outliers (``truth``, booleans), the confusion."""
+        from ..measures import novelty_measures
+
+        values = np.asarray(getattr(prediction, "values", prediction), np.float64)
+        return novelty_measures(values.reshape(-1), truth)
+
+
+TASK = OneClassTask()

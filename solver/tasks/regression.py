@@ -1,0 +1,115 @@
+"""The ``regression`` task: ε-support-vector regression of one numeric target column.
+
+One problem in the 2n-variable form (:func:`solver.problem.regression`), stored as one run
+(no parent record).  Training goes through :mod:`solver.training_kinds`; this object gives
+the task's vocabulary, its held-out measures and its report section.
+
+Report section (plain data, drawn by :mod:`solver.reporting`): the fit against the target
+with the ε-tube (predicted against actual; a point is inside the tube when
+|t − f(x)| ≤ ε, i.e. between the lines f = t − ε and f = t + ε), residuals against fitted
+values with the band ±ε, support vectors marked by category, and the training facts
+(RMSE, MAE, R², tube coverage; :func:`solver.measures.regression_measures`).
+"""
+
+from __future__ import annotations
+
+from collections.abc import Sequence
+from typing import Any
+
+import numpy as np
+
+from ..explanation._kinds import REGRESSION_CATEGORIES
+from ..problem import REGRESSION_KIND
+from ._base import Task
+
+__all__ = ["RegressionTask", "TASK"]
+
+#: display words of the per-point categories (codes from the explanation table)
+CATEGORY_WORDS = {"inside_tube": "inside the tube",
+                  "on_tube_edge": "on the tube edge (free)",
+                  "outside_tube": "outside the tube (bounded)"}
+
+
+class RegressionTask(Task):
+    """ε-regression: f(x) = Σ (α⁺ᵢ − α⁻ᵢ) K(xᵢ, x) + b predicts the target (its units)."""
+
+    name = "regression"
+    problem_kinds = (REGRESSION_KIND,)
+    parent_record = False
+    categories = tuple(REGRESSION_CATEGORIES)
+    measures = ("rmse", "mae", "r2", "tube_coverage", "max_abs_residual")
+
+    def report_section(self, parent: Any, members: Sequence[Any]) -> dict[str, Any] | None:
+        """Fit, residual and support-vector facts of one stored ε-regression run."""
+        from ..explanation import kind_point_table
+        from ..measures import regression_measures
+
+        (rec,) = members
+        p, res = rec.problem, rec.result
+        table = kind_point_table(p, res)
+        cols = table.columns
+        t = np.asarray(cols["target"], np.float64)
+        f = np.asarray(cols["prediction"], np.float64)
+        cat = np.asarray(cols["category"]).astype(str)
+        eps = float(p.info["epsilon"])
+        fit = regression_measures(t, f, epsilon=eps)
+        target = (rec.data or {}).get("target_name") or "target"
+        counts = table.category_counts()
+        n = int(t.size)
+        n_sv = n - counts["inside_tube"]
+        facts = [
+            ("target column", target), ("ε (half-width of the tube, target units)", eps),
+            ("C", p.info.get("C")), ("training rows", n),
+            ("training RMSE", fit["rmse"]), ("training MAE", fit["mae"]),
+            ("training R²", fit["r2"]), ("share of rows inside the tube", fit["tube_coverage"]),
+            ("largest |residual|", fit["max_abs_residual"]),
+            ("support vectors (rows with α⁺ or α⁻ > 0)", n_sv),
+        ]
+        cat_rows = tuple((CATEGORY_WORDS[c], counts[c], REGRESSION_CATEGORIES[c])
+                         for c in REGRESSION_CATEGORIES)
+        # rows outside the tube by the residual, whatever their multiplier (a check of the
+        # category: with a converged run every bounded row has |r| ≥ ε − kkt_tol)
+        r = t - f
+        above, below = int(np.sum(r > eps)), int(np.sum(r < -eps))
+        words = np.array([CATEGORY_WORDS[c] for c in cat], dtype=object)
+        return {
+            "title": f"ε-regression of {target}",
+            "intro": (f"The fit f(x) against the target {target} on the training rows. The "
+                      f"ε-tube is |t − f(x)| ≤ ε = {eps:.6g}: rows inside it carry no "
+                      "multiplier; rows on its edge (free multipliers) and outside it "
+                      "(multipliers at C) are the support vectors."),
+            "facts": facts,
+            "tables": [{"columns": ("category", "rows", "meaning"), "rows": cat_rows,
+                        "note": (f"Rows by the multipliers against their bounds; by the "
+                                 f"residual alone {above} rows lie above the tube and "
+                                 f"{below} below it.")}],
+            "figures": [
+                {"key": "fit_tube", "kind": "fit_tube",
+                 "title": f"fit against {target} with the ε-tube",
+                 "caption": (f"Each training row at (target, fitted value). Solid line f = t; "
+                             f"dotted lines f = t ± ε bound the tube (ε = {eps:.4g}). Markers "
+                             "give the row's category; squares are bounded support vectors "
+                             "outside the tube, diamonds free ones on its edge."),
+                 "data": {"actual": t, "fitted": f, "epsilon": eps, "category": words,
+                          "xlabel": f"{target} (actual)", "ylabel": f"{target} (fitted)"}},
+                {"key": "residuals", "kind": "residuals",
+                 "title": "residuals against fitted values",
+                 "caption": (f"Residual t − f(x) against f(x) for each training row; the band "
+                             f"±ε = ±{eps:.4g} is the tube. Support vectors marked as in the "
+                             "figure above."),
+                 "data": {"fitted": f, "residual": r, "epsilon": eps, "category": words,
+                          "xlabel": f"{target} (fitted)", "ylabel": "residual t − f(x)"}},
+            ],
+            "flags": [],
+        }
+
+    def held_out(self, prediction: Any, truth: np.ndarray,
+                 classes: Sequence[Any], *, epsilon: float = 0.0) -> dict[str, Any]:
+        """RMSE, MAE, R², tube coverage of predicted values against the true targets."""
+        from ..measures import regression_measures
+
+        values = np.asarray(getattr(prediction, "values", prediction), np.float64)
+        return regression_measures(truth, values.reshape(-1), epsilon=epsilon)
+
+
+TASK = RegressionTask()

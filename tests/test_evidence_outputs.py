@@ -1,0 +1,152 @@
+"""One story in every output (issue 13): solve and compile time apart (item 2), the caution
+line in the terminal (item 11).
+
+The runs are trained once, as the README's tour does, on the shipped demo CSVs (invented
+data, used only to exercise the workflow).
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import re
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from solver.demo import DEMO_LABEL, shipped_data
+from solver.vocabulary import CAUTION, timing_text
+
+TIME_LINE = re.compile(r"^\s+time\s+solve (\d+\.\d\d) s, compile (\d+\.\d\d) s, set-up "
+                       r"(\d+\.\d\d) s \(whole call (\d+\.\d\d) s\)$", re.M)
+
+
+def kk(*args: object, cwd: Path | None = None, env: dict | None = None
+       ) -> subprocess.CompletedProcess:
+    e = {k: v for k, v in os.environ.items() if k != "KKTRACE_STORE"}
+    e.update(env or {})
+    return subprocess.run([sys.executable, "-m", "solver.cli", *map(str, args)],
+                          capture_output=True, text=True, cwd=cwd, env=e, timeout=900)
+
+
+@pytest.fixture(scope="module")
+def tour(tmp_path_factory):
+    work = tmp_path_factory.mktemp("tour")
+    train_csv, hold_csv = shipped_data()
+    store = work / "store"
+    proc = kk("train", train_csv, "--label", DEMO_LABEL, "--kernel", "rbf", "--C", 10,
+              "--kkt-tol", "1e-5", "--solver", "both", "--holdout", hold_csv,
+              "--store", store, cwd=work)
+    assert proc.returncode == 0, proc.stderr
+    ids = re.findall(r"^(?:primary|challenger) run (\S+)", proc.stdout, re.M)
+    assert len(ids) == 2
+    return {"work": work, "store": store, "text": proc.stdout, "smo": ids[0], "qp": ids[1],
+            "train": train_csv, "holdout": hold_csv}
+
+
+# --------------------------------------------------------------------------- item 2
+
+
+def test_every_solver_splits_its_time(rng):
+    from solver.kernels import RBFKernel
+    from solver.problem import binary_classification
+    from solver.solvers import solve
+
+    X = rng.normal(size=(40, 2))
+    y = np.where(X[:, 0] + 0.3 * rng.normal(size=40) > 0, 1, 0)
+    prob = binary_classification(X, y, kernel=RBFKernel(gamma=0.5), C=1.0)
+    for method in ("smo", "qp"):
+        t = solve(prob, method=method).timing
+        assert set(t) == {"solve_seconds", "compile_seconds", "setup_seconds", "total_seconds"}
+        parts = [t["solve_seconds"], t["compile_seconds"], t["setup_seconds"]]
+        assert all(v is not None and v >= 0 for v in parts), (method, t)
+        assert sum(parts) <= t["total_seconds"] + 1e-9, (method, t)
+    assert solve(prob, method="qp").timing["compile_seconds"] == 0.0  # nothing compiled
+
+
+def test_timing_text_names_each_part():
+    t = {"solve_seconds": 0.005, "compile_seconds": 28.44, "setup_seconds": 0.001,
+         "total_seconds": 28.45}
+    assert timing_text(t) == "solve 0.01 s, compile 28.44 s, set-up 0.00 s (whole call 28.45 s)"
+    assert timing_text({"total_seconds": 1.0}).startswith("solve not recorded, compile not")
+
+
+def test_train_prints_solve_and_compile_apart(tour):
+    lines = TIME_LINE.findall(tour["text"])
+    assert len(lines) == 2, tour["text"]  # one per run
+    # before: "iterations 1280  in 28.45 s" (compile counted as solve time)
+    assert not re.search(r"iterations\s+\d+\s+in ", tour["text"])
+
+
+def test_train_and_compare_json_carry_the_parts(tour, tmp_path):
+    proc = kk("train", tour["train"], "--label", DEMO_LABEL, "--C", 10, "--kkt-tol", "1e-5",
+              "--store", tmp_path / "s", "--json", cwd=tmp_path)
+    s = json.loads(proc.stdout)
+    for key in ("solve_seconds", "compile_seconds", "setup_seconds", "total_seconds"):
+        assert isinstance(s[key], float), key
+    assert s["total_seconds"] == s["seconds"]
+    comp = json.loads(kk("compare", tour["smo"], tour["qp"], "--store", tour["store"],
+                         "--json").stdout)
+    for run in comp["runs"]:
+        assert run["solve_seconds"] is not None and run["compile_seconds"] is not None
+    text = kk("compare", tour["smo"], tour["qp"], "--store", tour["store"]).stdout
+    assert len(re.findall(r"^    time solve \d+\.\d\d s, compile \d+\.\d\d s", text, re.M)) == 2
+
+
+def test_replay_prints_the_runs_time(tour):
+    out = kk("replay", tour["smo"], "--iteration", 100, "--store", tour["store"]).stdout
+    assert re.search(r"^  run time      solve \d+\.\d\d s, compile \d+\.\d\d s", out, re.M), out
+    j = json.loads(kk("replay", tour["smo"], "--iteration", 100, "--store", tour["store"],
+                      "--json").stdout)
+    assert set(j["run_timing"]) == {"solve_seconds", "compile_seconds", "setup_seconds",
+                                    "total_seconds"}
+
+
+def test_report_html_pdf_json_show_solve_and_compile_apart(tour, tmp_path):
+    import jsonschema
+
+    from solver.reporting.summary import load_schema
+
+    out = tmp_path / "rep"
+    proc = kk("report", tour["smo"], tour["qp"], "--store", tour["store"], "--out", out)
+    assert proc.returncode == 0, proc.stderr
+    doc = json.loads((out / "report.json").read_text())
+    jsonschema.validate(doc, load_schema())
+    for run in doc["runs"]:
+        t = run["termination"]
+        assert t["solve_seconds"] is not None and t["compile_seconds"] is not None
+        assert t["total_seconds"] == t["seconds"]
+        assert run["identity"]["solve time (s)"] == t["solve_seconds"]
+        assert run["identity"]["compile time (s)"] == t["compile_seconds"]
+    html = (out / "report.html").read_text()
+    assert html.count("compile time (s)") >= 2 and html.count("solve time (s)") >= 2
+    from pypdf import PdfReader
+
+    pdf = " ".join(p.extract_text() for p in PdfReader(str(out / "report.pdf")).pages)
+    assert "compile time (s)" in pdf and "solve time (s)" in pdf
+    # item 11: the caution is the last line the command prints
+    assert proc.stdout.rstrip("\n").splitlines()[-1] == f"caution: {CAUTION}"
+
+
+@pytest.mark.slow
+def test_fresh_demo_prints_solve_and_compile_apart_and_the_caution(tmp_path):
+    """A first demo in a fresh checkout: no numba cache yet, so compiling is paid here."""
+    cache = tmp_path / "numba-cache"
+    cache.mkdir()
+    started = time.perf_counter()
+    proc = kk("demo", "--store", tmp_path / "traces", cwd=tmp_path,
+              env={"NUMBA_CACHE_DIR": str(cache)})
+    wall = time.perf_counter() - started
+    assert proc.returncode == 0, proc.stderr
+    found = TIME_LINE.findall(proc.stdout)
+    assert len(found) == 2, proc.stdout
+    smo_solve, smo_compile = float(found[0][0]), float(found[0][1])
+    # compiling (no cache) dwarfs the 360-point solve; before, the sum was shown as solve time
+    assert smo_compile > smo_solve
+    assert float(found[1][1]) == 0.0  # the QP challenger compiles nothing
+    assert proc.stdout.rstrip("\n").splitlines()[-1] == f"caution: {CAUTION}"
+    print(f"fresh demo: wall {wall:.1f} s; SMO solve {smo_solve} s, compile {smo_compile} s")

@@ -1,0 +1,316 @@
+"""Studies (issue 20): grid × stratified seeded folds, every fit a stored run, the study a
+parent record with member digests, the results table, best cell and one-standard-error
+choice, idempotent re-runs, Dask execution and the bad-input errors."""
+
+from __future__ import annotations
+
+import io
+import json
+import os
+import socket
+import subprocess
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+import solver
+from solver.demo import DEMO_LABEL, shipped_data
+from solver.errors import InvalidInputError
+from solver.studies import make_grid, study, study_folds
+from solver.studies.table import aggregate, choose
+
+TRAIN_CSV, _ = shipped_data()
+
+
+def _demo(n: int | None = None):
+    ds = solver.load_table(TRAIN_CSV, label=DEMO_LABEL)
+    if n is None:
+        return ds
+    return solver.from_arrays(ds.X[:n], ds.labels[:n], feature_names=ds.feature_names,
+                              label_name=ds.label_name, source="demo head")
+
+
+def kk(*args: object, cwd: Path | None = None, timeout: float = 300
+       ) -> subprocess.CompletedProcess:
+    env = {k: v for k, v in os.environ.items() if k not in ("KKTRACE_STORE",
+                                                            "KKTRACE_SCHEDULER")}
+    return subprocess.run([sys.executable, "-m", "solver.cli", *map(str, args)],
+                          capture_output=True, text=True, cwd=cwd, env=env, timeout=timeout)
+
+
+# ----------------------------------------------------------------------------- grid, folds
+
+
+def test_grid_axes_are_validated_and_sorted():
+    g = make_grid("rbf", "10,0.1,1", [0.5, 0.05])
+    assert g.C == (0.1, 1.0, 10.0) and g.gamma == (0.05, 0.5)
+    assert [c.label for c in g.cells()][:3] == ["C=0.1 gamma=0.05", "C=1 gamma=0.05",
+                                                "C=10 gamma=0.05"]
+    assert make_grid("poly", [1], [0.1], "2,3").degree == (2, 3)
+    assert make_grid("linear", [1, 2]).gamma == (None,)
+    for bad, words in [(("rbf", "", [0.1]), "empty"), (("rbf", [], [0.1]), "empty"),
+                       (("rbf", [1], None), "gamma is empty"),
+                       (("rbf", "0,1", [0.1]), "not > 0"), (("rbf", [1], [-0.1]), "not > 0"),
+                       (("rbf", [1, 1], [0.1]), "repeats"), (("rbf", "1,x", [0.1]), "'x'"),
+                       (("rbf", [float("nan")], [0.1]), "finite"),
+                       (("linear", [1], [0.1]), "no gamma"),
+                       (("poly", [1], [0.1], [2.5]), "whole number")]:
+        with pytest.raises(InvalidInputError, match=words):
+            make_grid(*bad)
+
+
+def test_study_folds_are_stratified_seeded_and_refuse_a_small_class():
+    labels = np.array(["a"] * 12 + ["b"] * 7)
+    f = study_folds(labels, 3, 5)
+    assert np.array_equal(f, study_folds(labels, 3, 5))
+    for k in range(3):
+        assert abs(np.sum((f == k) & (labels == "b")) - 7 / 3) < 1
+    with pytest.raises(InvalidInputError, match=r"class 'b' has 7 rows, fewer than the 8 folds"):
+        study_folds(labels, 8, 0)
+
+
+def test_one_standard_error_rule_picks_the_most_parsimonious_cell_within_one_se():
+    # hand-made fold scores: best cell C=10 (mean 0.90, se 0.02); C=1 within, C=0.1 not
+    rows = []
+    for C, scores in [(0.1, [0.80, 0.82, 0.84]), (1.0, [0.87, 0.89, 0.88]),
+                      (10.0, [0.86, 0.90, 0.94])]:
+        for k, s in enumerate(scores):
+            rows.append({"cell": f"C={C:g}", "C": C, "gamma": 0.1, "degree": None, "fold": k,
+                         "score": s, "accuracy": s, "balanced_accuracy": s, "iterations": 10,
+                         "seconds": 0.1, "status": "converged", "converged": True,
+                         "max_violation": 1e-4, "duality_gap": 1e-5, "support_share": 0.3,
+                         "bounded_share": 0.1, "curvature_fixes": 0, "shrink_events": 0,
+                         "n_small_values": 0})
+    cells = aggregate(rows)
+    ch = choose(cells, "accuracy")
+    assert ch["best"] == "C=10" and ch["one_se"] == "C=1"
+    assert ch["best_se"] == pytest.approx(np.std([0.86, 0.90, 0.94], ddof=1) / np.sqrt(3))
+    assert "7.10" in ch["rule"] and "Hastie" in ch["rule"]
+
+
+# ----------------------------------------------------------------------------- the study
+
+
+@pytest.fixture(scope="module")
+def small_study(tmp_path_factory):
+    store = tmp_path_factory.mktemp("study-store")
+    table = store.parent / "results.parquet"
+    ds = _demo(150)
+    out = study(ds, C=[0.3, 3.0], gamma=[0.1, 0.5], folds=3, seed=2, scheduler="sequential",
+                store=store, table=table)
+    return ds, store, out
+
+
+def test_every_fit_is_a_stored_run_and_the_study_a_verifying_parent(small_study):
+    ds, store, out = small_study
+    st = solver.RunStore(store)
+    assert len(out.rows) == 4 * 3 and out.fitted == 12 and out.reused == 0
+    parent = st.load_parent(out.study_id)  # verifies the parent and every member
+    assert parent.task == "study" and solver.get_task("study").parent_record
+    assert len(parent.members) == 12
+    assert sorted(m.run_id for m in parent.members) == sorted(r["run_id"] for r in out.rows)
+    for m in parent.manifest["members"]:
+        digest = __import__("hashlib").sha256(
+            (store / m["run_id"] / "manifest.json").read_bytes()).hexdigest()
+        assert m["manifest_sha256"] == digest
+        rec = st.load(m["run_id"])
+        assert rec.manifest["trace"]["level"] == "sampled"
+        assert rec.attachments["study_fit"]["key"] == rec.data["study_fit_key"]
+    info = parent.info
+    assert info["grid"]["C"] == [0.3, 3.0] and info["folds"]["seed"] == 2
+    assert info["versions"]["kktrace"] == solver.__version__ and "dask" in info["versions"]
+    # the stored folds rebuild the fold of every row
+    folds = np.array(parent.attachments["folds"]["fold"])
+    assert np.array_equal(folds, study_folds(ds.labels, 3, 2))
+    # every fit trained on exactly the rows outside its fold
+    for r in out.rows:
+        rec = st.load(r["run_id"])
+        assert rec.problem.n == int(np.sum(folds != r["fold"]))
+        assert r["validation_rows"] == int(np.sum(folds == r["fold"]))
+    with pytest.raises(InvalidInputError, match="not a model"):
+        solver.get_task("study").predict([], np.zeros((1, 4)))
+
+
+def test_results_table_is_stored_as_parquet_and_matches_the_rows(small_study):
+    import pyarrow.parquet as pq
+
+    _, store, out = small_study
+    parent = solver.RunStore(store).load_parent(out.study_id)
+    t = pq.read_table(io.BytesIO(parent.attachments["results_table"])).to_pylist()
+    fits = [r for r in t if r["level"] == "fit"]
+    cells = [r for r in t if r["level"] == "cell"]
+    assert len(fits) == 12 and len(cells) == 4
+    assert {r["run_id"] for r in fits} == {r["run_id"] for r in out.rows}
+    on_disk = pq.read_table(out.table_path).to_pylist()
+    assert on_disk == t
+    for c in cells:  # per-cell mean is the mean of its folds' scores
+        mine = [r["score"] for r in fits if r["cell"] == c["cell"]]
+        assert c["mean_score"] == pytest.approx(np.mean(mine))
+        assert c["iterations"] == sum(r["iterations"] for r in fits if r["cell"] == c["cell"])
+    assert out.choice["one_se"] in {c["cell"] for c in cells}
+
+
+def test_a_rerun_reuses_verified_fits_and_refits_a_damaged_one(small_study):
+    ds, store, out = small_study
+    again = study(ds, C=[0.3, 3.0], gamma=[0.1, 0.5], folds=3, seed=2,
+                  scheduler="sequential", store=store)
+    assert again.reused == 12 and again.fitted == 0
+    assert [r["run_id"] for r in again.rows] == [r["run_id"] for r in out.rows]
+    assert again.execution["mode"] == "none"
+    # damage one member: the re-run notices, fits that cell again and says so
+    victim = out.rows[0]["run_id"]
+    f = next(p for p in (store / victim).iterdir() if p.name.startswith("trace"))
+    f.write_bytes(f.read_bytes()[:-3] + b"xyz")
+    third = study(ds, C=[0.3, 3.0], gamma=[0.1, 0.5], folds=3, seed=2,
+                  scheduler="sequential", store=store)
+    assert third.reused == 11 and third.fitted == 1
+    assert any(victim in w and "not reused" in w for w in third.warnings)
+    assert solver.RunStore(store).verify(third.study_id).ok
+    # another seed gives other folds: nothing is reused
+    other = study(ds, C=[0.3], gamma=[0.1], folds=3, seed=3, scheduler="sequential",
+                  store=store)
+    assert other.reused == 0 and other.fitted == 3
+
+
+def test_study_runs_on_dask_and_gives_the_sequential_results(tmp_path):
+    """Against the CI cluster (KKTRACE_TEST_SCHEDULER, started by .ci/run as separate
+    ``dask scheduler`` / ``dask worker`` processes) when set, else a LocalCluster."""
+    where = os.environ.get("KKTRACE_TEST_SCHEDULER") or "local"
+    ds = _demo(120)
+    kw = {"C": [0.5, 5.0], "gamma": [0.2], "folds": 3, "seed": 1}
+    seq = study(ds, scheduler="sequential", store=tmp_path / "a", **kw)
+    ticks = []
+    dist = study(ds, scheduler=where, store=tmp_path / "b", progress=lambda *a: ticks.append(a),
+                 **kw)
+    assert dist.execution["mode"] == ("scheduler" if "://" in where else "local_cluster")
+    assert dist.fitted == 6 and len(ticks) == 6 and ticks[-1][:2] == (6, 6)
+    for a, b in zip(seq.rows, dist.rows, strict=True):
+        assert (a["cell"], a["fold"]) == (b["cell"], b["fold"])
+        assert a["accuracy"] == b["accuracy"] and a["iterations"] == b["iterations"]
+    assert solver.RunStore(tmp_path / "b").verify(dist.study_id).ok
+
+
+def _free_port() -> int:
+    s = socket.socket()
+    s.bind(("127.0.0.1", 0))
+    port = s.getsockname()[1]
+    s.close()
+    return port
+
+
+def test_a_worker_killed_mid_study_is_replaced_and_the_study_completes(tmp_path):
+    """A scheduler and two workers as separate processes (``dask scheduler``,
+    ``dask worker --no-nanny``); one worker gets SIGKILL after the third fit arrives.  The
+    scheduler reschedules its fit on the other worker; every cell is present once and every
+    member verifies."""
+    import signal
+
+    from dask.distributed import Client
+
+    port = _free_port()
+    addr = f"tcp://127.0.0.1:{port}"
+    env = {**os.environ, "KKTRACE_THREADS": "1"}
+    logs = [open(tmp_path / f"p{i}.log", "w") for i in range(3)]  # noqa: SIM115
+    procs = [subprocess.Popen(["dask", "scheduler", "--host", "127.0.0.1", "--port",
+                               str(port), "--no-dashboard"], env=env, stdout=logs[0],
+                              stderr=subprocess.STDOUT)]
+    try:
+        time.sleep(1.0)
+        for i in (1, 2):
+            procs.append(subprocess.Popen(
+                ["dask", "worker", addr, "--nthreads", "1", "--no-nanny", "--no-dashboard",
+                 "--name", f"kill-test-{i}"], env=env, stdout=logs[i],
+                stderr=subprocess.STDOUT))
+        with Client(addr, timeout=30) as c:
+            c.wait_for_workers(2, timeout=90)
+        killed = []
+
+        def tick(done, total, *_):
+            if done >= 3 and not killed:
+                os.kill(procs[1].pid, signal.SIGKILL)
+                killed.append(done)
+
+        ds = _demo()
+        out = study(ds, C=[0.1, 1.0, 10.0], gamma=[0.05, 0.5], folds=4, seed=0,
+                    scheduler=addr, store=tmp_path / "st", progress=tick)
+        assert killed and procs[1].wait(timeout=30) == -signal.SIGKILL
+        keys = [(r["cell"], r["fold"]) for r in out.rows]
+        assert len(keys) == 24 and len(set(keys)) == 24
+        st = solver.RunStore(tmp_path / "st")
+        v = st.verify(out.study_id)
+        assert v.ok, v.problems
+        assert len(set(r["run_id"] for r in out.rows)) == 24
+        # nothing duplicated in the store: 24 fits + the study
+        assert len(st.run_ids()) == 25
+    finally:
+        for p in reversed(procs):
+            if p.poll() is None:
+                p.terminate()
+        for p in procs:
+            try:
+                p.wait(timeout=20)
+            except subprocess.TimeoutExpired:
+                p.kill()
+        for f in logs:
+            f.close()
+
+
+# ----------------------------------------------------------------------------- the command
+
+
+def test_study_command_prints_the_choice_and_json(tmp_path):
+    r = kk("study", TRAIN_CSV, "--label", DEMO_LABEL, "--C", "0.5,5", "--gamma", "0.2",
+           "--folds", "3", "--scheduler", "sequential", "--store", tmp_path / "st", "--json")
+    assert r.returncode == 0, r.stderr
+    s = json.loads(r.stdout)
+    assert s["fits"] == 6 and s["choice"]["one_se"] in {"C=0.5 gamma=0.2", "C=5 gamma=0.2"}
+    assert "not a validation sign-off" in s["caution"]
+    r2 = kk("study", TRAIN_CSV, "--label", DEMO_LABEL, "--C", "0.5,5", "--gamma", "0.2",
+            "--folds", "3", "--scheduler", "sequential", "--store", tmp_path / "st")
+    assert r2.returncode == 0, r2.stderr
+    assert "6 found stored and verified" in r2.stdout
+    assert "one-standard-error rule" in r2.stdout and "7.10" in r2.stdout
+
+
+@pytest.mark.parametrize("case", ["empty grid", "zero C", "negative gamma", "small class",
+                                  "no label"])
+def test_study_command_bad_input_is_one_line_and_writes_nothing(tmp_path, case):
+    small = tmp_path / "small.csv"
+    small.write_text("a,b,label\n" + "".join(f"{i},{i % 5},x\n" for i in range(20))
+                     + "1,1,rare\n2,2,rare\n", encoding="utf-8")
+    base = ["study", TRAIN_CSV, "--label", DEMO_LABEL, "--scheduler", "sequential",
+            "--store", tmp_path / "st"]
+    args, words = {
+        "empty grid": (base + ["--C", "", "--gamma", "0.1"], ["grid of C", "empty"]),
+        "zero C": (base + ["--C", "0,1", "--gamma", "0.1"], ["grid of C", "not > 0"]),
+        "negative gamma": (base + ["--C", "1", "--gamma", "-0.5"], ["gamma", "not > 0"]),
+        "small class": (["study", small, "--label", "label", "--C", "1", "--gamma", "0.1",
+                         "--folds", "3", "--scheduler", "sequential", "--store",
+                         tmp_path / "st"], ["class 'rare'", "2 rows", "3 folds"]),
+        "no label": (["study", TRAIN_CSV, "--C", "1", "--gamma", "0.1", "--store",
+                      tmp_path / "st"], ["--label"]),
+    }[case]
+    r = kk(*args)
+    assert r.returncode == 1, (r.stdout, r.stderr)
+    lines = r.stderr.strip().splitlines()
+    assert len(lines) == 1 and "Traceback" not in r.stderr
+    for w in words:
+        assert w in lines[0], lines[0]
+    assert not (tmp_path / "st").exists() or not any((tmp_path / "st").iterdir())
+
+
+def test_unreachable_scheduler_is_one_line_within_the_timeout_and_writes_nothing(tmp_path):
+    addr = f"tcp://127.0.0.1:{_free_port()}"  # nothing listens there
+    t0 = time.monotonic()
+    r = kk("study", TRAIN_CSV, "--label", DEMO_LABEL, "--C", "1", "--gamma", "0.1",
+           "--scheduler", addr, "--connect-timeout", "3", "--store", tmp_path / "st")
+    took = time.monotonic() - t0
+    assert r.returncode == 1, r.stderr
+    line = r.stderr.strip().splitlines()
+    assert len(line) == 1 and addr in line[0] and "within 3 s" in line[0], r.stderr
+    assert "nothing was written" in line[0]
+    assert took < 3 + 25  # the stated timeout plus interpreter and import start-up
+    assert not (tmp_path / "st").exists() or not any((tmp_path / "st").iterdir())
