@@ -610,18 +610,18 @@ def apply(
     (a :class:`~solver.errors.DataWarning` names them); ``feature_columns`` /
     ``ignore_columns`` / ``delimiter`` as for :func:`train`.
     """
+    cols = Columns.of(feature_columns, ignore_columns, delimiter)
     pr = _parent_runs(run, store)
     if pr is not None:
         from .parent_workflow import apply_parent
 
         if isinstance(data, (str, Path)) and label is None:
             lab = pr.parent.data.get("label_name")
-            label = lab if _has_column(Path(data), lab) else None
+            label = lab if _has_column(Path(data), lab, cols) else None
         return ModelOutput(run_id=pr.parent.run_id, kind="multiclass_one_vs_one",
-                           **apply_parent(pr, data, label, probabilities))
+                           **apply_parent(pr, data, label, probabilities, cols))
     rec = load_run(run, store=store)
     names = list(rec.data.get("feature_names") or [])
-    cols = Columns.of(feature_columns, ignore_columns, delimiter)
     if rec.problem.labels is None:
         return _apply_kind(rec, data, names, label, cols)
     if isinstance(data, (str, Path)) and label is None:
