@@ -52,6 +52,7 @@ _EXPORTS: dict[str, str] = {
     "parse_change": "resolve",
     "resume": "resolve",
     "ResumeOutcome": "resolve",
+    "overlay": "resolve",
     "Diagnosis": "diagnosis",
     "hard_problem": "hard",
     # model exchange (solver.exchange)

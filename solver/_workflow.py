@@ -255,3 +255,35 @@ def _fingerprint(ds: Dataset) -> str:
     from .data import fingerprint
 
     return fingerprint(ds)
+
+
+#: attachment holding the held-out rows themselves, so that ``compare`` can reuse them
+HOLDOUT_ROWS = "holdout_rows"
+
+
+def _holdout_rows(hold: Dataset, names: Sequence[str]) -> dict[str, Any]:
+    """The held-out feature rows (m, d) in raw units, training column order, with their
+    fingerprint and source: attachment :data:`HOLDOUT_ROWS`."""
+    return {"features": np.ascontiguousarray(_align(hold, names, "held-out data"),
+                                             dtype=np.float64),
+            "feature_names": list(names), "fingerprint": _fingerprint(hold),
+            "source": hold.source}
+
+
+def _stored_holdout(*records: Any) -> tuple[np.ndarray | None, str]:
+    """Held-out rows stored with the first of ``records`` that has them, and a note saying
+    where they came from, or why there are none and how to add them."""
+    for k, rec in enumerate(records):
+        rows = (rec.attachments or {}).get(HOLDOUT_ROWS)
+        if isinstance(rows, Mapping) and rows.get("features") is not None:
+            X = np.asarray(rows["features"], dtype=np.float64)
+            names = "AB"[k] if len(records) == 2 else str(k)
+            return X, (f"held-out rows: the {X.shape[0]} stored with run {names} "
+                       f"({rows.get('source') or 'in-memory data'}, fingerprint "
+                       f"{str(rows.get('fingerprint'))[:12]}…)")
+    held = any("holdout" in (rec.attachments or {}) for rec in records)
+    why = ("the runs were scored on held-out data but do not store its rows (trained before "
+           "kktrace kept them)" if held else "neither run was trained with held-out data")
+    return None, (f"held-out measures not computed: {why}; add them with "
+                  "'kktrace compare RUN_A RUN_B --holdout FILE' (Python: "
+                  "solver.compare(a, b, holdout=FILE))")

@@ -33,6 +33,7 @@ from ._workflow import (
     _fingerprint,
     _load_data,
     _plain,
+    _stored_holdout,
     check_finite_values,
     check_known_labels,
     open_store,
@@ -120,9 +121,10 @@ def compare(
     ``holdout`` (data file or Dataset, label column optional) adds decision-value agreement
     on held-out rows; its columns are matched to the run's features by name
     (``feature_columns`` / ``ignore_columns`` / ``delimiter`` as for :func:`train`; other
-    columns are ignored with a :class:`~solver.errors.DataWarning` naming them).  Runs of
-    different problems raise
-    :class:`~solver.errors.ProblemMismatchError` unless ``allow_mismatch``.
+    columns are ignored with a :class:`~solver.errors.DataWarning` naming them).  Without
+    it the held-out rows stored with run A (else run B) at training are used, and a note
+    says which, or that none are stored and how to add them.  Runs of different problems
+    raise :class:`~solver.errors.ProblemMismatchError` unless ``allow_mismatch``.
     """
     from .agreement import compare_runs
 
@@ -133,17 +135,22 @@ def compare(
         if pa is None or pb is None:
             raise InvalidInputError("compare a multi-class model with another multi-class "
                                     "model (pair by pair), or one pair's run with another run")
-        hX = None if holdout is None else _holdout_rows(
+        hX = None if holdout is None else _holdout_X(
             holdout, pa.parent.data, Columns.of(feature_columns, ignore_columns, delimiter))
         return compare_parents(pa, pb, holdout_X=hX, tolerances=tolerances,
                                allow_mismatch=allow_mismatch)
     a, b = load_run(run_a, store=store), load_run(run_b, store=store)
-    hX = None if holdout is None else _holdout_rows(
-        holdout, a.data, Columns.of(feature_columns, ignore_columns, delimiter))
-    return compare_runs(a, b, holdout_X=hX, tolerances=tolerances, allow_mismatch=allow_mismatch)
+    hX, note = None, None
+    if holdout is not None:
+        hX = _holdout_X(holdout, a.data, Columns.of(feature_columns, ignore_columns, delimiter))
+    else:
+        hX, note = _stored_holdout(a, b)
+    comp = compare_runs(a, b, holdout_X=hX, tolerances=tolerances,
+                        allow_mismatch=allow_mismatch)
+    return comp if note is None else replace(comp, notes=(*comp.notes, note))
 
 
-def _holdout_rows(holdout: Any, data: Mapping[str, Any], cols: Columns) -> np.ndarray:
+def _holdout_X(holdout: Any, data: Mapping[str, Any], cols: Columns) -> np.ndarray:
     """Held-out rows (m, d) in the run's feature order, label column optional."""
     lab = _split_column(data)
     if isinstance(holdout, (str, Path)) and not _has_column(Path(holdout), lab, cols):
@@ -724,7 +731,8 @@ def report(
         return _parent_report(st, pr, out_dir, formats, notes, stem, pair)
     if pair is not None:
         raise InvalidInputError("--pair applies to the report of a multi-class model")
-    recs = [_with_kept_leave_one_out(st, load_run(r, store=st)) for r in ids]
+    loaded = [_load_with_evidence(st, r) for r in ids]
+    recs = [_with_kept_leave_one_out(st, rec) for rec, _ in loaded]
     comparison = None
     if len(recs) == 2:
         comparison = _stored_comparison(recs[1], recs[0])
@@ -735,9 +743,25 @@ def report(
     out = Path(out_dir) if out_dir is not None else Path(st.root) / "reports" / str(recs[0].run_id)
     st.check_output_path(out, "report folder")
     paths = write_report(recs, out, formats=tuple(formats), comparison=comparison, notes=notes,
-                         stem=stem)
+                         stem=stem, evidence=[ev for _, ev in loaded])
     _log_report(st, recs, paths)
     return paths
+
+
+def _load_with_evidence(st: Any, run: str | RunRecord) -> tuple[RunRecord, dict[str, Any] | None]:
+    """A run for the report and what its verification found while the report is written
+    (None for a record passed in memory: nothing on disk to check)."""
+    if isinstance(run, RunRecord):
+        return run, None
+    if not isinstance(run, str) or not run:
+        raise InvalidInputError(f"a run id must be a non-empty string, got {run!r}")
+    from .store.format import utc_stamp
+
+    rec, v = st.load_verified(run)
+    return rec, {"manifest_sha256": v.manifest_sha256, "verified": bool(v.ok),
+                 "checked_at": utc_stamp(), "files_checked": int(v.files_checked),
+                 "parent_chain": list(v.chain), "signer": v.signer, "trusted": bool(v.trusted),
+                 "problems": list(v.problems), "notes": list(v.notes)}
 
 
 def _with_kept_leave_one_out(st: Any, rec: RunRecord) -> RunRecord:

@@ -14,6 +14,7 @@ import time
 import warnings
 from collections.abc import Mapping
 from dataclasses import dataclass, replace
+from pathlib import Path
 from typing import Any
 
 import numpy as np
@@ -26,8 +27,11 @@ from .problem import DualProblem
 from .run import RunRecord
 from .status import Status
 
-__all__ = ["diagnose", "what_if", "resume", "WhatIf", "ResumeOutcome", "CHANGES",
-           "RESUMABLE", "parse_change"]
+__all__ = ["diagnose", "what_if", "resume", "overlay", "WhatIf", "ResumeOutcome", "CHANGES",
+           "RESUMABLE", "parse_change", "OVERLAY_FORMATS"]
+
+#: figure file formats of :func:`overlay` (by file suffix)
+OVERLAY_FORMATS = ("png", "svg", "pdf")
 
 #: what-if changes: name → value kind ("" for none)
 CHANGES = {"standardise": "", "gamma": "number", "C": "number", "selection": "choice",
@@ -274,3 +278,36 @@ def resume(run: str | RunRecord, *, iteration_limit: int | None = None,
     return ResumeOutcome(run_id, parent.run_id, (int(parent.result.iterations),
                                                  int(res.iterations)),
                          (st.label, res.status.label), child)
+
+
+def overlay(runs: list[str | RunRecord], *, out: str | Path | None = None, store: Any = None,
+            allow_mismatch: bool = False) -> dict[str, Any]:
+    """Convergence of two or more runs of one problem overlaid (violation and objective gap
+    against iterations and estimated seconds; see :mod:`solver.diagnosis.overlay`).
+
+    Returns the plot data; with ``out`` (a ``.png``, ``.svg`` or ``.pdf`` path outside the
+    store's run folders) the figure is written there and ``"figure"`` holds the path.
+    """
+    from .diagnosis.overlay import overlay_series
+
+    recs = [_load(r, store) for r in runs]
+    data = overlay_series(recs, allow_mismatch=allow_mismatch)
+    if out is not None:
+        path = Path(out)
+        fmt = path.suffix.lower().lstrip(".")
+        if fmt not in OVERLAY_FORMATS:
+            raise InvalidInputError(f"{path}: the figure file must end in "
+                                    f"{', '.join('.' + f for f in OVERLAY_FORMATS)}")
+        path = open_store(store).check_output_path(path, what="--out")
+        if not data["runs"]:
+            raise InvalidInputError("none of the runs has trace rows to plot")
+        from .reporting.content import FigureData
+        from .reporting.figures import render_figure, style
+
+        fd = FigureData(key="overlay", kind="overlay", title="convergence side by side",
+                        caption=data["seconds_note"], data=data)
+        fig = render_figure(fd)
+        with style():
+            fig.savefig(path, format=fmt, metadata={"Date": None} if fmt == "svg" else None)
+        data["figure"] = str(path)
+    return data

@@ -17,6 +17,7 @@ import numpy as np
 
 from ._intake import SCALE_ADVICE, SCALE_WARNING
 from ._workflow import (
+    HOLDOUT_ROWS,
     KERNEL_CHOICES,
     NO_CHOICE,
     SOLVER_CHOICES,
@@ -25,6 +26,7 @@ from ._workflow import (
     _align,
     _confusion,
     _fingerprint,
+    _holdout_rows,
     _load_data,
     check_known_labels,
     open_store,
@@ -598,6 +600,7 @@ def _fit_member(job: _MemberJob, progress: ProgressFn | None = None) -> _MemberF
         model = model_from_solution(problem, result, std)
         if job.hold is not None and job.hold.X.shape[0] > 0:
             attachments["holdout"] = _holdout_facts(model, job.hold, ds.feature_names)
+            attachments[HOLDOUT_ROWS] = _holdout_rows(job.hold, ds.feature_names)
         if method == "smo" and skipped:
             attachments["challenger"] = {"ran": False, "reason": skipped}
         if job.probabilities and not records:

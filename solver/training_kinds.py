@@ -19,7 +19,16 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
-from ._workflow import NO_CHOICE, Columns, ProgressFn, _align, _fingerprint, _load_data
+from ._workflow import (
+    HOLDOUT_ROWS,
+    NO_CHOICE,
+    Columns,
+    ProgressFn,
+    _align,
+    _fingerprint,
+    _holdout_rows,
+    _load_data,
+)
 from .data import Dataset
 from .errors import InvalidInputError
 from .measures import novelty_measures, nu_property, regression_measures
@@ -214,6 +223,7 @@ def train_kind(
         if hold is not None:
             att["holdout"] = _held_out(kind, model, hold, list(ds.feature_names), epsilon,
                                        hold.labels is not None)
+            att[HOLDOUT_ROWS] = _holdout_rows(hold, ds.feature_names)
         if method == "smo" and skipped:
             att["challenger"] = {"ran": False, "reason": skipped}
         records.append(RunRecord(problem=problem, result=result, data=data_facts,

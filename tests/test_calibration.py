@@ -317,3 +317,51 @@ def test_sigmoid_matches_calibrated_classifier_cv_with_our_folds(name, X, y):
     assert cal.success
     assert abs(cal.A - a) <= 1e-4 * abs(a)
     assert abs(cal.B - b) <= 1e-4 * max(abs(b), 1e-3 * abs(a))
+
+
+def test_cv_fits_carry_the_sample_weights():
+    # a known slip elsewhere: calibration folds that drop the weights. Every fold problem
+    # keeps its rows' bounds C × class weight × sample weight of the final problem.
+    from sklearn.datasets import load_breast_cancer
+
+    from solver.calibration.crossval import _fold_problem
+
+    X, y = load_breast_cancer(return_X_y=True)
+    X, y = X[:150], y[:150]
+    w = np.random.default_rng(2).uniform(0.2, 3.0, y.size)
+    Z = Standardiser.fit(X).transform(X)
+    kernel = make_kernel("rbf", gamma=0.05)
+    pb = binary_classification(Z, y, kernel=kernel, C=1.0, sample_weight=w,
+                               class_weight={0: 2.0})
+    cal = calibrate(pb, seed=4, kkt_tol=1e-5)
+    assert cal.weights["sample_weight"] is True and cal.weights["class_weight"] == {"0": 2.0}
+    for k in range(cal.n_folds):
+        rows = np.flatnonzero(cal.folds != k)
+        sub = _fold_problem(pb, rows, k)
+        assert np.array_equal(sub.upper, np.where(y[rows] == 0, 2.0, 1.0) * w[rows])
+    plain = calibrate(binary_classification(Z, y, kernel=kernel, C=1.0), seed=4, kkt_tol=1e-5)
+    assert np.array_equal(plain.folds, cal.folds)  # same folds, so only the weights differ
+    assert not np.allclose(plain.cv_values, cal.cv_values)
+
+
+def test_degenerate_fit_end_to_end_is_reported_not_made_up(tmp_path):
+    # 50 vs 10 rows of pure noise with a tiny C: every cross-validated value has the
+    # majority's sign, so there is nothing to fit a sigmoid to
+    import solver
+    from solver.data import from_arrays
+    from solver.reporting import build_report_content
+
+    rng = np.random.default_rng(0)
+    ds = from_arrays(rng.normal(size=(60, 3)), np.array(["ok"] * 50 + ["bad"] * 10),
+                     feature_names=["a", "b", "c"], label_name="q")
+    out = solver.train(ds, C=0.01, probabilities=True, store=tmp_path, trace="off",
+                       explain=False)
+    att = out.records[0].attachments["calibration"]
+    assert att["status"] == "degenerate_values"
+    assert att["A"] is None or np.isnan(att["A"])
+    assert any("this run gives no probabilities" in w for w in out.warnings)
+    with pytest.raises(InvalidInputError, match="gives no probabilities: its sigmoid fit "
+                                                "failed \\(degenerate_values\\)"):
+        solver.apply(out.run_ids[0], ds, store=tmp_path, probabilities=True)
+    cal = build_report_content([out.records[0]]).runs[0].calibration
+    assert cal.evidence is None and any("No probabilities" in n for n in cal.notes)

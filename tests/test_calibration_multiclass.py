@@ -3,6 +3,8 @@ Weng 2004, method 2), and the multi-class calibration evidence."""
 
 from __future__ import annotations
 
+import os
+
 import numpy as np
 import pytest
 
@@ -195,3 +197,48 @@ def test_parent_report_shows_the_multiclass_probability_evidence(iris_fit, tmp_p
     # the pair shown in full keeps its own binary calibration section
     assert d["runs"][0]["calibration"]["facts"]["fold seed"] == 2
     assert "Reliability of the top class probability" in paths["html"].read_text()
+
+
+def test_cli_multiclass_probabilities_end_to_end(tmp_path):
+    import csv
+    import json
+    import subprocess
+    import sys
+
+    ds, X, names, te = _iris_split()
+    train, hold = tmp_path / "train.csv", tmp_path / "hold.csv"
+    for path, rows in ((train, np.setdiff1d(np.arange(150), te)), (hold, te)):
+        with path.open("w", newline="") as fh:
+            w = csv.writer(fh)
+            w.writerow(["sl", "sw", "pl", "pw", "species"])
+            w.writerows([*map(repr, X[i].tolist()), names[i]] for i in rows)
+    env = {**os.environ, "PYTHONPATH": os.getcwd(), "KKTRACE_THREADS": "1"}
+
+    def cli(*args):
+        return subprocess.run([sys.executable, "-m", "solver.cli", *args, "--store",
+                               str(tmp_path / "st")], capture_output=True, text=True, env=env,
+                              timeout=600)
+
+    r = cli("train", str(train), "--label", "species", "--probabilities", "--holdout",
+            str(hold), "--calibration-seed", "7", "--parallel", "sequential", "--json")
+    assert r.returncode == 0, r.stderr
+    rid = json.loads(r.stdout)["run_id"]
+    out = tmp_path / "out.csv"
+    r = cli("apply", rid, str(hold), "--probabilities", "--out", str(out))
+    assert r.returncode == 0, r.stderr
+    rows = list(csv.DictReader(out.open()))
+    cols = ["probability_setosa", "probability_versicolor", "probability_virginica"]
+    assert set(cols) <= set(rows[0]) and len(rows) == 40
+    P = np.array([[float(row[c]) for c in cols] for row in rows])
+    assert np.max(np.abs(P.sum(axis=1) - 1)) <= 1e-12 and np.all((P > 0) & (P < 1))
+    r = cli("verify", rid, "--rerun", str(train))
+    assert r.returncode == 0, r.stdout + r.stderr
+    assert "probability calibration of every pair bitwise (5 folds, seed 7)" in r.stdout
+    r = cli("train", str(train), "--label", "species", "--parallel", "sequential", "--json")
+    plain = json.loads(r.stdout)["run_id"]
+    r = cli("apply", plain, str(hold), "--probabilities")
+    assert r.returncode == 1 and "Traceback" not in r.stderr
+    assert "pair 'setosa' vs 'versicolor' has no fitted sigmoid" in r.stderr
+    r = cli("train", str(train), "--label", "species", "--probabilities",
+            "--calibration-folds", "40")
+    assert r.returncode == 1 and "calibration folds" in r.stderr and "class '" in r.stderr

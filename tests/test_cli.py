@@ -351,7 +351,12 @@ def test_demo_writes_everything_and_says_the_data_are_invented(tmp_path):
     for word in ("primary run", "challenger run", "solver agreement", "audit report"):
         assert word in out, word
     manifests = list((tmp_path / "traces").glob("*/manifest.json"))
-    assert len(manifests) == 2
+    # classification, ε-regression and one-class, each with its QP challenger; the
+    # multi-class model: 3 pairs + 3 challengers + the parent
+    assert len(manifests) == 6 + 7
+    for word in ("ε-regression: coating thickness", "one-class: new batches",
+                 "multi-class parent"):
+        assert word in out, word
     for suffix in (".html", ".pdf", ".json"):
         assert list((tmp_path / "traces" / "reports").rglob(f"*{suffix}")), suffix
     assert list((tmp_path / "traces" / "reports").rglob("points-*.csv"))

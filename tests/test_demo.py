@@ -98,3 +98,79 @@ def test_demo_command_json_lists_runs_explanations_and_reports(tmp_path, capsys)
         assert Path(out["explanations"][fmt]).is_file()
     for f in out["data_files"]:
         assert Path(f).is_file()
+
+    # the further parts: ε-regression of the coating thickness and the one-class model of
+    # released batches, each with its challenger, stored, verified and reported
+    parts = out["parts"]
+    assert set(parts) == {"multiclass", "regression", "one-class"}
+    # the multi-class part: the same batches graded release / rework / reject, one-vs-one
+    mc = parts.pop("multiclass")
+    model = mc["runs"]
+    assert model["record"] == "parent" and model["pairs"] == 3 and model["converged"]
+    assert model["verdict"] in ("agree", "agree_within_tolerances")
+    assert store.verify(model["run_id"]).ok
+    mc_summary = json.loads(Path(mc["reports"]["json"]).read_text(encoding="utf-8"))
+    sections = [r["task_section"] for r in mc_summary["runs"] if r.get("task_section")]
+    assert sections and sections[0]["task"] == "multiclass"
+    assert len(sections[0]["tables"][0]["rows"]) == 3  # one row per pair
+    assert Path(mc["reports"]["html"]).is_file() and Path(mc["reports"]["pdf"]).is_file()
+    for name, part in parts.items():
+        runs = part["runs"]
+        assert runs["converged"], (name, runs)
+        assert runs["verdict"] in ("agree", "agree_within_tolerances"), (name, runs)
+        ids = [runs["run_id"], runs["challenger"]["run_id"]]
+        for rid in ids:
+            assert store.verify(rid).ok
+        assert runs["holdout"]["n"] == (demo.N_PROCESS_HOLDOUT if name == "regression"
+                                        else demo.N_HOLDOUT)
+        for fmt in ("html", "pdf", "json"):
+            assert Path(part["reports"][fmt]).stat().st_size > 0
+        summary = json.loads(Path(part["reports"]["json"]).read_text(encoding="utf-8"))
+        sec = summary["runs"][0]["task_section"]
+        assert sec["task"] == name
+    reg = parts["regression"]["runs"]
+    # the gauge noise is 2 µm (invented); the fit should be near that, not far off it
+    assert 1.5 < reg["holdout"]["rmse"] < 3.5 and reg["holdout"]["r2"] > 0.95
+    oc = parts["one-class"]["runs"]
+    assert oc["nu_property"]["holds"]
+    conf = oc["holdout"]["confusion"]
+    assert sum(conf.values()) == demo.N_HOLDOUT
+    # most rejected batches are unlike the released ones (detection well above chance)
+    assert conf["flagged_known"] > 2 * conf["missed"]
+
+
+def test_task_tables_are_seeded_and_written_as_documented(tmp_path):
+    a_train, a_hold = demo.coating_process_tables()
+    b_train, _ = demo.coating_process_tables()
+    c_train, _ = demo.coating_process_tables(seed=demo.PROCESS_SEED + 1)
+    assert list(a_train) == [*demo.PROCESS_COLUMNS, demo.PROCESS_TARGET]
+    assert len(a_train[demo.PROCESS_TARGET]) == demo.N_PROCESS_TRAIN
+    assert len(a_hold[demo.PROCESS_TARGET]) == demo.N_PROCESS_HOLDOUT
+    for k in a_train:
+        np.testing.assert_array_equal(a_train[k], b_train[k])
+    assert not np.array_equal(a_train[demo.PROCESS_TARGET], c_train[demo.PROCESS_TARGET])
+    assert np.all(a_train[demo.PROCESS_TARGET] > 0)
+    files = demo.write_task_data(tmp_path)
+    from solver import load_table
+
+    reg = load_table(files["regression"][0], label=demo.PROCESS_TARGET)
+    assert reg.feature_names == demo.PROCESS_COLUMNS and reg.X.shape == (demo.N_PROCESS_TRAIN, 4)
+    released = load_table(files["one-class"][0], label=None)
+    train, hold = demo.tablet_coating_tables()
+    n_rel = int(np.sum(train[demo.DEMO_LABEL] == "release"))
+    assert released.feature_names == demo.DEMO_COLUMNS and released.X.shape == (n_rel, 4)
+    new = load_table(files["one-class"][1], label=demo.UNUSUAL_COLUMN)
+    assert new.X.shape == (demo.N_HOLDOUT, 4)
+    np.testing.assert_array_equal(np.asarray(new.labels) == "yes",
+                                  hold[demo.DEMO_LABEL] == "reject")
+
+
+def test_grade_tables_share_the_batches_and_have_three_grades():
+    """The multi-class demo file: the same feature values and releases, three grades."""
+    a, a_hold = demo.tablet_coating_tables()
+    g, g_hold = demo.tablet_coating_grade_tables()
+    for c in demo.DEMO_COLUMNS:
+        assert np.array_equal(a[c], g[c]) and np.array_equal(a_hold[c], g_hold[c])
+    assert np.array_equal(a[demo.DEMO_LABEL] == "release", g[demo.GRADE_LABEL] == "release")
+    values, counts = np.unique(g[demo.GRADE_LABEL], return_counts=True)
+    assert values.tolist() == ["reject", "release", "rework"] and counts.min() >= 50

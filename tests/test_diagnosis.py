@@ -204,3 +204,20 @@ def test_cli_diagnose_of_a_trained_trace_off_run(tmp_path, capsys):
     assert {"stall", "cycling", "long_plateau", "objective_increase"} == set(d["skipped"])
     assert d["findings"][0]["code"] == "not_converged"
     assert "not a validation sign-off" in d["caution"]
+
+
+def test_suggested_changes_run_as_what_ifs():
+    """Each finding's ``try`` is a change the what-if accepts, and re-solving with the
+    suggestion for γ = 10³ removes the near-identity finding."""
+    from solver.resolve import parse_change, what_if
+
+    hp, rec = _hard_record("gamma_huge")
+    d = diagnose(rec)
+    f = next(f for f in d.findings if f.code == "kernel_near_identity")
+    assert f.try_change == "gamma=1"
+    parse_change(f.try_change)
+    w = what_if(rec, f.try_change)
+    assert "kernel_near_identity" not in diagnose(w.record).codes
+    _, rec1 = _hard_record("overlap_large_c", selection="first_order")
+    stall = next(f for f in diagnose(rec1).findings if f.code == "stall")
+    assert stall.try_change == "selection=second_order"

@@ -150,3 +150,33 @@ def test_fresh_demo_prints_solve_and_compile_apart_and_the_caution(tmp_path):
     assert float(found[1][1]) == 0.0  # the QP challenger compiles nothing
     assert proc.stdout.rstrip("\n").splitlines()[-1] == f"caution: {CAUTION}"
     print(f"fresh demo: wall {wall:.1f} s; SMO solve {smo_solve} s, compile {smo_compile} s")
+
+
+# --------------------------------------------------------------------------- item 4
+
+
+def test_compare_reuses_the_stored_held_out_rows(tour):
+    import solver
+
+    comp = json.loads(kk("compare", tour["smo"], tour["qp"], "--store", tour["store"],
+                         "--json").stdout)
+    stored = solver.load_run(tour["qp"], store=tour["store"]).attachments["comparison"]
+    # before: compare without --holdout dropped the two held-out measures train had
+    assert list(comp["measures"]) == list(stored["measures"])
+    assert {"decision_max_diff_holdout", "prediction_agreement_holdout"} <= set(comp["measures"])
+    for name, m in stored["measures"].items():
+        assert comp["measures"][name]["value"] == m["value"], name
+    assert comp["verdict"] == stored["verdict"]
+    assert comp["n_holdout"] == stored["n_holdout"] == 120
+    assert any(n.startswith("held-out rows: the 120 stored with run A") for n in comp["notes"])
+
+
+def test_compare_says_how_to_add_missing_held_out_rows(tour, tmp_path):
+    proc = kk("train", tour["train"], "--label", DEMO_LABEL, "--C", 10, "--kkt-tol", "1e-5",
+              "--solver", "both", "--store", tmp_path / "s", "--json", cwd=tmp_path)
+    s = json.loads(proc.stdout)
+    out = kk("compare", s["run_id"], s["challenger"]["run_id"], "--store", tmp_path / "s")
+    assert out.returncode == 0, out.stderr
+    assert ("note: held-out measures not computed: neither run was trained with held-out "
+            "data; add them with 'kktrace compare RUN_A RUN_B --holdout FILE' (Python: "
+            "solver.compare(a, b, holdout=FILE))") in out.stdout.splitlines()

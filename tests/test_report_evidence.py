@@ -186,3 +186,94 @@ def test_one_label_per_column_in_cli_html_pdf_and_one_key_in_json(work: dict,
                 "first_nonzero_iteration"):
         assert key not in cli and key not in heads and key not in pdf
         assert POINT_COLUMNS[key].label in cli
+
+
+# --------------------------------------------------------------------------- item 10
+
+
+def test_report_prints_each_runs_manifest_digest_and_its_verification(work: dict,
+                                                                      written: dict) -> None:
+    """Item 10: each run's manifest SHA-256 (equal to the stored manifest's bytes) and the
+    verification done while writing, in the JSON, HTML and PDF."""
+    import hashlib
+
+    st = RunStore(work["store"])
+    pdf = _pdf_text(written["paths"]["pdf"], "-layout")
+    for run, rid in zip(written["summary"]["runs"], (work["smo"], work["qp"]), strict=True):
+        ev = run["evidence"]
+        digest = hashlib.sha256((st.run_dir(rid) / "manifest.json").read_bytes()).hexdigest()
+        assert ev["manifest_sha256"] == digest == st.verify(rid).manifest_sha256
+        assert ev["verified"] is True and ev["checked_at"].endswith("Z")
+        assert ev["files_checked"] >= 5 and ev["parent_chain"][0] == rid
+        assert digest in written["html"] and digest in pdf
+    assert written["summary"]["runs"][1]["evidence"]["parent_chain"] == [work["qp"], work["smo"]]
+    assert "verified while writing this report" in written["html"]
+    # one timestamp form (Z) for the report's own time and the check's
+    assert written["summary"]["generated"].endswith("Z")
+
+
+def test_report_states_decision_rule_scaling_and_label_mapping(work: dict,
+                                                               written: dict) -> None:
+    """Item 10: sign convention, the label at f = 0, the label mapping and the
+    standardiser's centre and scale are in the report (not only in model.json)."""
+    rec = RunStore(work["store"]).load(work["smo"])
+    neg, pos = rec.problem.labels
+    run = written["summary"]["runs"][0]
+    rule = run["decision_rule"]
+    assert rule["label at f = 0"].startswith(repr(neg))
+    assert repr(pos) in rule["label mapping"] and repr(neg) in rule["label mapping"]
+    assert "f(x) > 0" in rule["sign convention"]
+    std = run["standardiser"]
+    assert std["features"] == ["coating_um", "hardness_n"]
+    assert std["centre"] == rec.standardiser.centre.tolist()
+    assert std["scale"] == rec.standardiser.scale.tolist()
+    pdf = _pdf_text(written["paths"]["pdf"], "-layout")
+    for text in ("label at f = 0", "Decision rule and scaling", "label mapping"):
+        assert text in written["html"] and text in pdf
+
+
+def test_title_names_the_runs_by_label(written: dict) -> None:
+    """Item 10: the title names the runs by label, not "… and 1 further run(s)"."""
+    title = written["summary"]["title"]
+    assert title.endswith("run A (smo) and run B (qp, challenger of run A)")
+    assert "further run" not in written["html"]
+
+
+def test_in_memory_records_say_they_were_not_verified(work: dict) -> None:
+    """Item 10: a report built from records in memory does not claim a verification."""
+    from solver.reporting import build_report_content
+
+    rec = RunStore(work["store"]).load(work["smo"])
+    rc = build_report_content([rec]).runs[0]
+    assert rc.evidence_facts["verified"] is None
+    assert "not done" in dict(rc.evidence)["verification while writing"]
+
+
+# --------------------------------------------------------------------------- item 6
+
+
+def test_demo_settings_do_not_flag_themselves(work: dict) -> None:
+    """Item 6: the demo's own fit (invented tablet-coating data, DEMO_SETTINGS) raises no
+    "C may be too small" flag, though most of its support vectors sit at C: the revised
+    rule (stated with BOUNDED_SHARE) counts only correctly classified points held at C
+    inside the margin; a far too small C is still flagged."""
+    from solver.demo import DEMO_LABEL, DEMO_SETTINGS, shipped_data
+    from solver.reporting import build_report_content
+
+    train, _ = shipped_data()
+    st = RunStore(work["store"])
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        demo = api.train(str(train), label=DEMO_LABEL, store=str(work["store"]), solver="smo",
+                         **DEMO_SETTINGS)
+        small = api.train(str(train), label=DEMO_LABEL, store=str(work["store"]), solver="smo",
+                          kernel="rbf", C=0.05, kkt_tol=1e-5)
+    rec = st.load(demo.run_ids[0])
+    cert = rec.result.certificate
+    assert cert.n_bounded / cert.n_support >= 0.5  # the old rule fired here (69 of 103)
+    content = build_report_content([rec])
+    assert "many_bounded" not in {f.code for f in content.flags}
+    flagged = build_report_content([st.load(small.run_ids[0])]).flags
+    msg = next(f.message for f in flagged if f.code == "many_bounded")
+    assert "correctly classified points held at the upper bound C inside the margin" in msg
+    assert "our heuristic" in msg

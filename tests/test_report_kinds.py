@@ -81,7 +81,8 @@ def test_regression_section_has_the_fit_the_tube_and_the_support_vectors(runs) -
     facts = dict(ts.facts)
     ref = regression_measures(t, f, epsilon=0.2)
     assert facts["training RMSE"] == pytest.approx(ref["rmse"], rel=1e-9)
-    assert facts["share of rows inside the tube"] == pytest.approx(ref["tube_coverage"])
+    cover = facts["tube coverage: share of rows with |t − f(x)| ≤ ε"]
+    assert cover == pytest.approx(ref["tube_coverage"])
     figs = {fd.kind: fd for fd in ts.figures}
     assert set(figs) == {"fit_tube", "residuals"}
     tube = figs["fit_tube"].data

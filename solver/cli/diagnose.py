@@ -32,6 +32,13 @@ changes for --try: standardise, gamma=V, C=V, selection=first_order|second_order
 shrinking=on|off, kkt_tol=V.  Each re-solves the run's data with that one change and
 prints both runs side by side (with the agreement verdict when the problem is unchanged)."""
 
+_OVERLAY_EXAMPLES = """examples:
+  kktrace overlay SMO_RUN QP_RUN --out convergence.svg
+  kktrace overlay RUN_A RUN_B RUN_C --out convergence.png --json
+
+The seconds axis is an estimate: traces record no per-iteration time, so each run's
+iterations are spread evenly over its loop seconds."""
+
 _RESUME_EXAMPLES = """examples:
   kktrace resume RUN_ID
   kktrace resume RUN_ID --iteration-limit 500000 --json"""
@@ -121,6 +128,31 @@ def cmd_resume(args: argparse.Namespace) -> int:
     return EXIT_OK if out.converged else EXIT_NOT_CONVERGED
 
 
+def cmd_overlay(args: argparse.Namespace) -> int:
+    import solver
+
+    d = solver.overlay(args.runs, out=args.out, store=args.store,
+                       allow_mismatch=args.allow_mismatch)
+    if args.json:
+        emit_json(d, sys.stdout)
+        return EXIT_OK
+    rows = [["run", "solver", "status", "iterations", "last seconds", "best violation or gap",
+             "final objective gap"]]
+    for r in d["runs"]:
+        rows.append([str(r["label"]), r["solver"], r["status"], _short(r["iterations"][-1]),
+                     _short(r["seconds"][-1]), _short(min(r["violation"])),
+                     _short(r["objective_gap"][-1])])
+    print_rows(rows)
+    for label in d["without_trace"]:
+        print(f"  {label}: no trace rows, not plotted")
+    for m in d["mismatch"]:
+        print(f"note: the problems differ: {m}")
+    print(f"note: {d['seconds_note']}")
+    if d.get("figure"):
+        print(f"figure: {d['figure']}")
+    return EXIT_OK
+
+
 def register(sub: Any) -> None:
     """Add this module's commands to the sub-command table."""
     p = add_command(sub, "diagnose", "why a run was hard, where it went wrong, what would "
@@ -131,6 +163,14 @@ def register(sub: Any) -> None:
     p.add_argument("--save", action="store_true",
                    help="store each what-if re-solve as a child run of RUN")
     p.set_defaults(func=cmd_diagnose)
+    p = add_command(sub, "overlay", "convergence of several runs of one problem, side by side",
+                    _OVERLAY_EXAMPLES)
+    p.add_argument("runs", metavar="RUN", nargs="+")
+    p.add_argument("--out", metavar="FILE", default=None,
+                   help="write the figure here (.png, .svg or .pdf)")
+    p.add_argument("--allow-mismatch", action="store_true",
+                   help="overlay runs of different problems (the output says what differs)")
+    p.set_defaults(func=cmd_overlay)
     p = add_command(sub, "resume", "continue a run stopped by its iteration or time limit",
                     _RESUME_EXAMPLES)
     p.add_argument("run", metavar="RUN")

@@ -221,6 +221,11 @@ def cmd_demo(args: argparse.Namespace) -> int:
             "reports": {k: str(v) for k, v in res.reports.items()},
             "explanations": {k: str(v) for k, v in res.explanation_files.items()},
             "seconds": res.seconds,
+            "parts": {name: {"title": part.title,
+                             "data_files": [str(f) for f in part.data_files],
+                             "runs": part.train.summary(),
+                             "reports": {k: str(v) for k, v in part.reports.items()}}
+                      for name, part in res.parts.items()},
             "caution": solver.caution_line(prefix=False),
         }, sys.stdout)
     else:
@@ -232,9 +237,20 @@ def cmd_demo(args: argparse.Namespace) -> int:
         print("audit report:")
         for k, v in res.reports.items():
             print(f"  {k:7s} {v}")
+        for part in res.parts.values():
+            print(f"\n{part.title}")
+            print(f"data (invented): {part.data_files[0]}  (held out: {part.data_files[1]})")
+            if part.train.parent is not None:
+                _print_parent(part.train)
+            else:
+                _print_outcome(part.train)
+            print("audit report:")
+            for k, v in part.reports.items():
+                print(f"  {k:7s} {v}")
         print(f"demo finished in {res.seconds:.1f} s; store: {res.store}")
         print(solver.caution_line())
-    return EXIT_OK if tr.converged else EXIT_NOT_CONVERGED
+    ok = tr.converged and all(part.train.converged for part in res.parts.values())
+    return EXIT_OK if ok else EXIT_NOT_CONVERGED
 
 
 

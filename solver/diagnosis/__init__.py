@@ -16,6 +16,7 @@ needs a full trace); the others still run.  Thresholds are module constants of
 
 from __future__ import annotations
 
+from dataclasses import replace
 from typing import Any
 
 import numpy as np
@@ -118,6 +119,8 @@ def diagnose(record: RunRecord) -> Diagnosis:
         phases, plateau, checks["phases"] = _series.phases(it, viol, objective, kkt_tol=kkt_tol)
         st, stretch, checks["stall"] = _series.stall(it, viol, wi, wj, kkt_tol=kkt_tol)
         rise, checks["objective_increase"] = _series.objective_increase(it, objective)
+        if st is not None and res.options.get("selection") == "first_order":
+            st = replace(st, try_change="selection=second_order")
         findings += [f for f in (plateau, st, rise) if f is not None]
         if tr.level == "full":
             cyc, checks["cycling"] = _series.cycling(it, wi, wj, stretch, _pair_facts(record),
@@ -150,7 +153,8 @@ def diagnose(record: RunRecord) -> Diagnosis:
     probe = _problem.kernel_probe(prob)
     checks["kernel_probe"] = probe
     sv_share = (cert.n_free + cert.n_bounded) / prob.n
-    findings += _problem.conditioning(probe, sv_share)
+    gamma = getattr(prob.kernel, "gamma", None)
+    findings += _problem.conditioning(probe, sv_share, None if gamma is None else float(gamma))
     audit = record.attachments.get("audit") if record.attachments else None
     ind, checks["indefinite"] = _problem.indefinite(probe, audit, events, kinds,
                                                     prob.kernel.is_psd)

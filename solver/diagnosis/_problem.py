@@ -82,8 +82,10 @@ def kernel_probe(problem: DualProblem, *, rows: int = PROBE_ROWS, seed: int = 0)
     return out
 
 
-def conditioning(probe: Mapping[str, Any], sv_share: float) -> list[Finding]:
-    """Kernel ≈ identity (γ too large) or ≈ constant (γ too small, unscaled features)."""
+def conditioning(probe: Mapping[str, Any], sv_share: float,
+                 gamma: float | None = None) -> list[Finding]:
+    """Kernel ≈ identity (γ too large) or ≈ constant (γ too small, unscaled features);
+    with the kernel's ``gamma`` the what-if suggestion moves it by a factor 1000."""
     out = []
     p95 = probe.get("offdiag_p95")
     ev = {k: probe.get(k) for k in ("rows", "offdiag_p95", "offdiag_median", "spread_median",
@@ -95,7 +97,8 @@ def conditioning(probe: Mapping[str, Any], sv_share: float) -> list[Finding]:
             f"below {p95:.2g} on {probe['rows']} probed rows, and {sv_share:.0%} of the rows are "
             "support vectors (each point is fitted on its own)",
             {**ev, "support_share": sv_share, "threshold": IDENTITY_OFFDIAG},
-            "use a smaller γ (e.g. the median heuristic on standardised features)"))
+            "use a smaller γ (e.g. the median heuristic on standardised features)",
+            None if gamma is None else f"gamma={gamma / 1000:g}"))
     spread = probe.get("spread_median")
     if spread is not None and spread < CONSTANT_SPREAD:
         out.append(Finding(
@@ -104,7 +107,8 @@ def conditioning(probe: Mapping[str, Any], sv_share: float) -> list[Finding]:
             f"K_ij| is {spread:.2g} and the largest eigenvalue carries "
             f"{(probe.get('top_eigenvalue_share') or 0):.1%} of the probed spectrum",
             {**ev, "threshold": CONSTANT_SPREAD},
-            "use a larger γ, or standardise the features if one column dominates the distances"))
+            "use a larger γ, or standardise the features if one column dominates the distances",
+            None if gamma is None else f"gamma={gamma * 1000:g}"))
     return out
 
 

@@ -85,6 +85,7 @@ def write_report(
     holdout: Mapping | None = None,
     parent: Any = None,
     parent_members: Sequence[RunRecord] = (),
+    evidence: Sequence[Mapping | None] | None = None,
 ) -> dict[str, Path]:
     """Write the report for ``runs`` into ``out_dir`` as ``<stem>.html`` / ``.pdf`` / ``.json``.
 
@@ -104,7 +105,8 @@ def write_report(
     if out.exists() and not out.is_dir():
         raise InvalidInputError(f"report folder {str(out)!r} exists and is not a folder")
     content = build_report_content(runs, comparison=comparison, holdout=holdout, notes=notes,
-                                   parent=parent, parent_members=parent_members)
+                                   parent=parent, parent_members=parent_members,
+                                   evidence=evidence)
     rendered = {f: render_report(content, f) for f in formats}
     out.mkdir(parents=True, exist_ok=True)
     paths = {f: out / f"{stem}{FORMATS[f]}" for f in rendered}

@@ -11,8 +11,12 @@ from ..run import RunRecord
 from ._provenance import _EIG_KEYS, _audit_indefinite
 from ._records import Flag, _as_mapping, _fmt_num, _plain
 
-#: A run is flagged when at least this share of its support vectors sit at the upper bound
-#: (our heuristic: most multipliers clipped at C suggests the penalty C is too small).
+#: A classification run is flagged when at least this share of its support vectors are
+#: correctly classified points held at the upper bound C inside the margin (0 ≤ y·f(x) ≤ 1).
+#: Our heuristic, and its basis: misclassified points sit at C for every C when the classes
+#: overlap, so their number says nothing about C; correctly classified points inside the
+#: margin are the ones a larger C pushes out of it (the margin narrows as C grows), so when
+#: they make up most support vectors, a fit with a larger C is worth comparing.
 BOUNDED_SHARE = 0.5
 #: Features whose standard deviations differ by more than this factor count as unscaled
 #: (our heuristic; standardising before distance-based kernels is common practice).
@@ -79,17 +83,39 @@ def _run_flags(rec: RunRecord, label: str, term: Mapping[str, Any], audit: Mappi
                               f"{label}: features were not standardised and their spreads differ "
                               f"by a factor of {sd.max() / sd.min():.3g} (> {SCALE_RATIO:g}).",
                               label))
-    n_sv, n_b = int(term.get("n_support") or 0), int(term.get("n_bounded") or 0)
-    if n_sv and n_b / n_sv >= BOUNDED_SHARE:
+    n_sv = int(term.get("n_support") or 0)
+    n_in = _bounded_inside_margin(rec)
+    if n_sv and n_in is not None and n_in / n_sv >= BOUNDED_SHARE:
         flags.append(Flag("many_bounded", "caution",
-                          f"{label}: {n_b} of {n_sv} support vectors sit at the upper bound C "
-                          f"(≥ {BOUNDED_SHARE:.0%}); the penalty C may be too small.", label))
+                          f"{label}: {n_in} of {n_sv} support vectors are correctly classified "
+                          f"points held at the upper bound C inside the margin (≥ "
+                          f"{BOUNDED_SHARE:.0%}); a larger C would narrow the margin — compare "
+                          "a fit with a larger C (our heuristic; misclassified points at C are "
+                          "not counted: they sit at C for any C when the classes overlap).",
+                          label))
     rep = facts.get("replay")
     if rep is not None and not rep["reproduced"]:
         flags.append(Flag("replay_mismatch", "caution",
                           f"{label}: replaying the trace does not give the final multipliers "
                           f"(largest difference {_fmt_num(rep['max_abs_difference'])}).", label))
     return flags
+
+
+def _bounded_inside_margin(rec: RunRecord) -> int | None:
+    """Correctly classified points at the upper bound (α = u, y·f(x) ≥ 0) of a binary
+    classification run; None for other problems.  From the explanation attachment's
+    categories when present, else from y·f(x) = (Qα)ᵢ + yᵢb."""
+    p, res = rec.problem, rec.result
+    if not p.labels or p.kind != "binary_classification" or p.n == 0:
+        return None
+    expl = rec.attachments.get("explanation") if rec.attachments else None
+    if isinstance(expl, Mapping) and "category" in expl:
+        cat = np.asarray(expl["category"]).astype(str)
+        if cat.shape == (p.n,):
+            return int(np.isin(cat, ("bounded_inside_margin", "bounded_on_margin")).sum())
+    alpha = np.asarray(res.alpha, np.float64)
+    margin = p.q_times(alpha) + p.y * float(res.bias)
+    return int(np.sum(np.asarray(res.certificate.at_upper, bool) & (margin >= 0)))
 
 
 #: Verdicts that mean the two solvers agree (strictly / within the loose tolerances).

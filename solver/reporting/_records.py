@@ -107,6 +107,12 @@ class RunContent:
     #: leave-one-out scalars by key (:data:`solver.vocabulary.LEAVE_ONE_OUT`), with
     #: ``kept_as`` / ``kept_digest`` when they come from a child record; {} when absent
     loo_facts: Mapping[str, Any] = field(default_factory=dict)
+    #: the manifest digest and the verification done while writing (rows, JSON facts)
+    evidence: tuple[tuple[str, Any], ...] = ()
+    evidence_facts: Mapping[str, Any] = field(default_factory=dict)
+    #: the decision rule (from the run's task) and the standardiser per feature
+    decision_rule: tuple[tuple[str, str], ...] = ()
+    scaling: Table | None = None
     #: probability calibration section (:mod:`._calibration`), None without probabilities
     calibration: Any = None
     task_section: TaskSection | None = None

@@ -18,6 +18,7 @@ from ..run import RunRecord
 from ..status import Status
 from ._calibration import calibration_content
 from ._convergence import _trace_figures
+from ._evidence import _decision_items, _evidence_items, _scaling_table
 from ._flags import AGREE_VERDICTS, LOOSE_VERDICTS, _comparison, _run_flags
 from ._points import _categories, _confusion, _decision_map, _influential, _loo
 from ._provenance import (
@@ -68,7 +69,8 @@ def _diagnosis(rec: RunRecord) -> tuple[Table | None, str, dict[str, str]]:
     return table, d.statement(), dict(d.skipped)
 
 
-def _run_content(rec: RunRecord, label: str, holdout: Mapping | None) -> RunContent:
+def _run_content(rec: RunRecord, label: str, holdout: Mapping | None,
+                 evidence: Mapping[str, Any] | None = None) -> RunContent:
     res = rec.result
     cert = res.certificate
     status = _status_of(res)
@@ -98,6 +100,7 @@ def _run_content(rec: RunRecord, label: str, holdout: Mapping | None) -> RunCont
                + np.bincount(np.asarray(tr.columns["j"], np.int64), minlength=rec.problem.n))
     infl, infl_note = _influential(rec, sel)
     loo_table, loo_fig, loo_note, loo_facts = _loo(rec, label)
+    ev_rows, ev_facts = _evidence_items(rec, evidence)
     hold = _as_mapping(holdout) if holdout is not None else _as_mapping(att.get("holdout"))
     confusion = _confusion(hold, rec.problem.labels) if hold else None
     try:
@@ -135,8 +138,19 @@ def _run_content(rec: RunRecord, label: str, holdout: Mapping | None) -> RunCont
         series=series, data_facts=data_facts, task_section=section, task_note=section_note,
         calibration=calibration_content(_as_mapping(att.get("calibration")), label),
         diagnosis=diag, diagnosis_note=diag_note, diagnosis_skipped=diag_skipped,
-        loo_facts=loo_facts,
+        loo_facts=loo_facts, evidence=ev_rows, evidence_facts=ev_facts,
+        decision_rule=_decision_items(rec), scaling=_scaling_table(rec),
     )
+
+
+def _title_names(runs: Sequence[RunRecord], contents: Sequence[RunContent]) -> str:
+    """The runs by label: ``run A (smo) and run B (qp, challenger of run A)``."""
+    names = []
+    for k, (rec, rc) in enumerate(zip(runs, contents, strict=True)):
+        role = (f", challenger of {contents[0].label}"
+                if k > 0 and rec.parent_id and rec.parent_id == runs[0].run_id else "")
+        names.append(f"{rc.label} ({rc.solver}{role})")
+    return names[0] if len(names) == 1 else ", ".join(names[:-1]) + " and " + names[-1]
 
 
 def build_report_content(
@@ -149,6 +163,7 @@ def build_report_content(
     generated: str | None = None,
     parent: Any = None,
     parent_members: Sequence[RunRecord] = (),
+    evidence: Sequence[Mapping[str, Any] | None] | None = None,
 ) -> ReportContent:
     """Collect the report for ``runs`` (one or more stored runs) as plain data.
 
@@ -160,7 +175,10 @@ def build_report_content(
         ``"comparison"`` attachment found on the runs.
     holdout : held-out scores for the first run (default: each run's ``"holdout"`` attachment).
     notes : free text from the person preparing the report (shown escaped).
-    generated : ISO time stamp to print (default now, UTC).
+    generated : ISO time stamp to print (default now, UTC, ``Z`` form).
+    evidence : per run, what :meth:`solver.store.RunStore.load_verified` found while the
+        report is written (manifest digest, files checked, chain; None: not read from a
+        store).
     """
     from .. import __version__
     from ..errors import InvalidInputError
@@ -175,7 +193,8 @@ def build_report_content(
     contents = []
     for k, rec in enumerate(runs):
         label = f"run {letters[k]}" if k < len(letters) else f"run {k + 1}"
-        contents.append(_run_content(rec, label, holdout if k == 0 else None))
+        ev = evidence[k] if evidence is not None and k < len(evidence) else None
+        contents.append(_run_content(rec, label, holdout if k == 0 else None, ev))
     if parent is not None:
         import dataclasses
 
@@ -198,12 +217,10 @@ def build_report_content(
         title = (f"Convergence and audit record — multi-class model {parent.run_id} "
                  f"(pair run {runs[0].run_id} in full)")
     if title is None:
-        first = runs[0].run_id or "unsaved run"
-        more = f" and {len(runs) - 1} further run(s)" if len(runs) > 1 else ""
-        title = f"Convergence and audit record — {first}{more}"
+        title = "Convergence and audit record — " + _title_names(runs, contents)
     return ReportContent(
         title=title,
-        generated=generated or datetime.now(timezone.utc).isoformat(timespec="seconds"),
+        generated=generated or datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
         kktrace_version=__version__, caution=CAUTION, notes=notes, runs=tuple(contents),
         comparison=comp, comparison_note=comp_note, flags=tuple(flags),
     )

@@ -553,7 +553,42 @@ def _draw_nu_shares(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
                                                 "  (ν-property does NOT hold)"))
 
 
+def _draw_overlay(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
+    """Several runs of one problem: violation and objective gap against iterations (left)
+    and estimated seconds (right); data from :func:`solver.diagnosis.overlay.overlay_series`."""
+    gs = fig.add_gridspec(2, 2, hspace=0.12, wspace=0.22, **_margins(fig, top=0.8,
+                                                                      bottom=0.1, left=0.1))
+    axes = [[fig.add_subplot(gs[r, c]) for c in range(2)] for r in range(2)]
+    for k, run in enumerate(d["runs"]):
+        colour = _c(LINE_COLOURS[k % len(LINE_COLOURS)])
+        for c, xkey in enumerate(("iterations", "seconds")):
+            x = np.asarray(run[xkey], dtype=np.float64)
+            for r, ykey in enumerate(("violation", "objective_gap")):
+                y = np.asarray(run[ykey], dtype=np.float64)
+                ok = np.isfinite(y) & (y > 0)
+                axes[r][c].plot(x[ok], y[ok], color=colour, linewidth=0.9,
+                                label=plain_text(f"{run['label']} ({run['solver']}, "
+                                                 f"{run['status']})", 60) if r + c == 0 else None)
+    for r in range(2):
+        for c in range(2):
+            ax = axes[r][c]
+            if ax.lines:
+                _log_y(ax)
+            if r == 0:
+                ax.tick_params(labelbottom=False)
+    axes[1][0].set_xlabel("iteration")
+    axes[1][0].xaxis.set_major_formatter(FuncFormatter(_count))
+    axes[1][1].set_xlabel("seconds (estimated at each run's average rate)")
+    axes[0][0].set_ylabel("best violation so far")
+    axes[1][0].set_ylabel("(D − D*) / max(1, |D*|)")
+    handles = axes[0][0].get_legend_handles_labels()[0]
+    if handles:
+        axes[0][0].legend(handles=handles, loc="lower left", bbox_to_anchor=(0.0, 1.02),
+                          ncol=1, borderaxespad=0.0)
+
+
 _DRAW = {
+    "overlay": (_draw_overlay, (7.2, 5.2)),
     "violation": (_draw_violation, FIG_SIZE),
     "objective": (_draw_objective, FIG_SIZE_TALL),
     "gap": (_draw_gap, FIG_SIZE),

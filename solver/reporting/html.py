@@ -130,6 +130,16 @@ def _flag_list(flags: Sequence[Flag]) -> str:
     return f'<ul class="flags">{items}</ul>'
 
 
+def _evidence_line(r: RunContent) -> str:
+    """Run id, manifest digest and the verification done while writing, in one line."""
+    ev = r.evidence_facts
+    if not ev.get("manifest_sha256"):
+        return f"run id {r.run_id or 'not stored'}; not read from a store, so not verified"
+    state = "verified" if ev.get("verified") else "FAILED verification"
+    return (f"run id {r.run_id}; manifest SHA-256 {ev['manifest_sha256']}; {state} while "
+            f"writing this report ({ev.get('checked_at')})")
+
+
 def _banner(c: ReportContent) -> str:
     rows = []
     for r in c.runs:
@@ -143,7 +153,8 @@ def _banner(c: ReportContent) -> str:
             f"{_num_html(t.get('iterations'))} iterations — {esc(t.get('message'))}</p>"
             f"<p>maximal violation {_num_html(t.get('max_violation'))} against kkt_tol "
             f"{_num_html(t.get('kkt_tol'))}; duality gap {_num_html(t.get('duality_gap'))} "
-            f"(relative {_num_html(t.get('relative_gap'))})</p></div>")
+            f"(relative {_num_html(t.get('relative_gap'))})</p>"
+            f"<p>{esc(_evidence_line(r))}</p></div>")
     if c.comparison:
         v = c.comparison["verdict"]
         cls = ("ok" if v in AGREE_VERDICTS and not c.comparison["failed"]
@@ -234,6 +245,12 @@ def _run_section(doc: _Doc, r: RunContent, k: int) -> None:
         doc.kv(r.environment)
     else:
         doc.missing("Environment not available (the run carries no stored manifest).")
+    h3("Evidence checked while writing", "evidence")
+    doc.kv(r.evidence)
+    h3("Decision rule and scaling", "rule")
+    doc.kv(r.decision_rule)
+    if r.scaling is not None:
+        doc.table(r.scaling, cls="grid narrow")
     h3("How to reproduce", "reproduce")
     if r.reproduce_command:
         doc.add('<p class="sub">Command recorded with the run</p>')

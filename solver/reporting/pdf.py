@@ -19,7 +19,7 @@ from matplotlib.figure import Figure
 from ..vocabulary import heading
 from .content import FigureData, ReportContent, RunContent, Table
 from .figures import PALETTE, draw, plain_text, style
-from .html import HOLDOUT_TABLE_KEYS, _termination_rows, comparison_table, fmt
+from .html import HOLDOUT_TABLE_KEYS, _evidence_line, _termination_rows, comparison_table, fmt
 
 __all__ = ["PdfPage", "plan_pages", "render_pdf"]
 
@@ -61,12 +61,15 @@ class _Lines:
         self.items += [("fs" if severity == "stop" else "f", ln) for ln in lines]
 
     def kv(self, items: Sequence[tuple[str, Any]]) -> None:
+        """Name / value rows; a long name or value wraps (nothing is cut)."""
         for k, v in items:
-            key = str(k)[:34].ljust(36, " ")
+            keys = textwrap.wrap(str(k), width=34, break_long_words=True) or [""]
             text = fmt(v).replace("×10^", "e")
             chunks = textwrap.wrap(text, width=CHARS - 36, break_long_words=True) or [""]
-            self.items.append(("m", key + chunks[0]))
-            self.items += [("m", " " * 36 + c) for c in chunks[1:]]
+            for i in range(max(len(keys), len(chunks))):
+                key = keys[i] if i < len(keys) else ""
+                val = chunks[i] if i < len(chunks) else ""
+                self.items.append(("m", (key.ljust(36, " ") + val).rstrip()))
 
     def pre(self, text: str) -> None:
         for raw in text.splitlines() or [""]:
@@ -176,6 +179,7 @@ def _cover(c: ReportContent) -> list[PdfPage]:
               ("duality gap", t.get("duality_gap")), ("relative gap", t.get("relative_gap")),
               ("support vectors (free / at bound)",
                f"{t.get('n_support')} ({t.get('n_free')} / {t.get('n_bounded')})")])
+        L.para(_evidence_line(r), "i")
     if c.comparison:
         L.para(f"Challenger comparison verdict: {c.comparison['verdict']}")
     else:
@@ -200,6 +204,12 @@ def _run_text(r: RunContent) -> list[PdfPage]:
         L.kv(r.environment)
     else:
         L.para("Environment not available.", "i")
+    L.heading("Evidence checked while writing")
+    L.kv(r.evidence)
+    L.heading("Decision rule and scaling")
+    L.kv(r.decision_rule)
+    if r.scaling is not None:
+        L.table(r.scaling)
     L.heading("How to reproduce")
     if r.reproduce_command:
         L.para("Command recorded with the run:", "i")

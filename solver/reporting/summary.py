@@ -58,6 +58,12 @@ def _run(r: RunContent) -> dict[str, Any]:
                          "order": r.influential.note, "null_means": r.influential.blank or None}),
         "holdout": None if r.holdout is None else dict(r.holdout),
         "leave_one_out": None if not r.loo_facts else dict(r.loo_facts),
+        "evidence": dict(r.evidence_facts),
+        "decision_rule": {k: v for k, v in r.decision_rule},
+        "standardiser": (None if r.scaling is None else
+                         {"features": [row[0] for row in r.scaling.rows],
+                          "centre": [row[1] for row in r.scaling.rows],
+                          "scale": [row[2] for row in r.scaling.rows]}),
         "calibration": None if r.calibration is None else r.calibration.to_dict(),
         "series": {k: dict(v) for k, v in r.series.items()},
         "figures": [{"key": f.key, "title": f.title, "caption": f.caption}

@@ -421,6 +421,19 @@ class RunStore:
                 f"manifest.json: run_id {record.run_id} does not match folder {run_id}")
         return record
 
+    def load_verified(self, run_id: str, *, trusted: Any = None) -> tuple[RunRecord, Verification]:
+        """The run and the :class:`Verification` it passed, from one check of exactly the
+        bytes decoded (what :meth:`load` does, with the findings kept); a failed check
+        raises :class:`IntegrityError` listing every problem."""
+        if self.is_parent(run_id):
+            raise InvalidInputError(
+                f"{run_id} is a parent record over member runs; load it with load_parent")
+        self._existing(run_id)
+        v, record, _ = self._inspect(run_id, trusted)
+        if not v.ok or record is None:
+            raise IntegrityError(f"run {run_id} failed verification: " + "; ".join(v.problems))
+        return record, v
+
     def load_model(
         self, run_id: str, *, verify: bool = True, require_converged: bool = True
     ) -> Model:

@@ -147,6 +147,12 @@ class Task:
 
     # ---------------------------------------------------------------- presenting
 
+    def decision_rule(self, record: Any) -> list[tuple[str, str]]:
+        """How one stored run's decision value f(x) becomes its output, as (name, text)
+        rows for the report: the sign convention, what happens at f = 0 and the label
+        mapping.  The default describes f(x) alone."""
+        return [("decision value", "f(x) = Σ αᵢyᵢK(xᵢ, x) + b on the standardised features")]
+
     def report_section(self, parent: Any, members: Sequence[Any]) -> dict[str, Any] | None:
         """Plain-data content of the task's own report section (None: no section)."""
         return None

@@ -64,6 +64,20 @@ class BinaryTask(Task):
                           np.asarray(neg, dtype=object))
         return Prediction(labels=labels, values=values[:, None], member_keys=(None,))
 
+    def decision_rule(self, record: Any) -> list[tuple[str, str]]:
+        """Sign convention, the label at f = 0 and the label mapping of a binary run
+        (the rule of :meth:`solver.model.Model.classify`)."""
+        labels = record.problem.labels
+        if not labels:
+            return super().decision_rule(record)
+        neg, pos = (str(v) for v in labels)
+        return [
+            ("decision value", "f(x) = Σ αᵢyᵢK(xᵢ, x) + b on the standardised features"),
+            ("sign convention", f"f(x) > 0 → {pos!r} (y = +1); f(x) < 0 → {neg!r} (y = −1)"),
+            ("label at f = 0", f"{neg!r}: only f(x) > 0 gives the positive label"),
+            ("label mapping", f"y = +1 ↔ {pos!r} (positive label); y = −1 ↔ {neg!r}"),
+        ]
+
     def held_out(self, prediction: Prediction, truth: np.ndarray,
                  classes: Sequence[Any]) -> dict[str, Any]:
         return _confusion(truth, prediction.labels, tuple(classes))

@@ -39,6 +39,12 @@ class OneClassTask(Task):
     measures = ("n_flagged", "share_flagged", "confusion", "detection_rate",
                 "false_alarm_rate")
 
+    def decision_rule(self, record: Any) -> list[tuple[str, str]]:
+        """Inlier where the score is ≥ 0 (the boundary f = 0 counts as inside)."""
+        return [("score", "f(x) = Σ αⱼK(xⱼ, x) − ρ on the standardised features"),
+                ("sign convention", "f(x) ≥ 0 → inlier; f(x) < 0 → outlier"),
+                ("at f = 0", "inlier (the boundary belongs to the region)")]
+
     def report_section(self, parent: Any, members: Sequence[Any]) -> dict[str, Any] | None:
         """Score distribution, ρ, and the ν-property of one stored one-class run."""
         from ..explanation import kind_point_table

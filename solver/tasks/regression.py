@@ -39,6 +39,11 @@ class RegressionTask(Task):
     categories = tuple(REGRESSION_CATEGORIES)
     measures = ("rmse", "mae", "r2", "tube_coverage", "max_abs_residual")
 
+    def decision_rule(self, record: Any) -> list[tuple[str, str]]:
+        """f(x) itself is the prediction (no sign rule, no labels)."""
+        return [("decision value", "f(x) = Σ (α⁺ᵢ − α⁻ᵢ)K(xᵢ, x) + b on the standardised "
+                 "features"), ("prediction", "f(x) itself, in the target's units")]
+
     def report_section(self, parent: Any, members: Sequence[Any]) -> dict[str, Any] | None:
         """Fit, residual and support-vector facts of one stored ε-regression run."""
         from ..explanation import kind_point_table
@@ -61,7 +66,8 @@ class RegressionTask(Task):
             ("target column", target), ("ε (half-width of the tube, target units)", eps),
             ("C", p.info.get("C")), ("training rows", n),
             ("training RMSE", fit["rmse"]), ("training MAE", fit["mae"]),
-            ("training R²", fit["r2"]), ("share of rows inside the tube", fit["tube_coverage"]),
+            ("training R²", fit["r2"]),
+            ("tube coverage: share of rows with |t − f(x)| ≤ ε", fit["tube_coverage"]),
             ("largest |residual|", fit["max_abs_residual"]),
             ("support vectors (rows with α⁺ or α⁻ > 0)", n_sv),
         ]
@@ -70,7 +76,8 @@ class RegressionTask(Task):
         # rows outside the tube by the residual, whatever their multiplier (a check of the
         # category: with a converged run every bounded row has |r| ≥ ε − kkt_tol)
         r = t - f
-        above, below = int(np.sum(r > eps)), int(np.sum(r < -eps))
+        tol = float(res.certificate.kkt_tol)
+        above, below = int(np.sum(r > eps + tol)), int(np.sum(r < -eps - tol))
         words = np.array([CATEGORY_WORDS[c] for c in cat], dtype=object)
         return {
             "title": f"ε-regression of {target}",
@@ -82,7 +89,7 @@ class RegressionTask(Task):
             "tables": [{"columns": ("category", "rows", "meaning"), "rows": cat_rows,
                         "note": (f"Rows by the multipliers against their bounds; by the "
                                  f"residual alone {above} rows lie above the tube and "
-                                 f"{below} below it.")}],
+                                 f"{below} below it by more than kkt_tol = {tol:.3g}.")}],
             "figures": [
                 {"key": "fit_tube", "kind": "fit_tube",
                  "title": f"fit against {target} with the ε-tube",
