@@ -654,7 +654,8 @@ def _read_npy_stream(fh: Any, size: int, prefix: str, what: str) -> np.ndarray:
             raise ValueError(f"unsupported .npy format version {version}")
         offset = fh.tell()
     except (ValueError, SyntaxError, TypeError, EOFError, OSError) as exc:
-        raise InvalidInputError(f"{prefix}{what} is not in .npy format ({exc})") from None
+        raise InvalidInputError(f"{prefix}{what or 'the file'} is not in .npy format "
+                                f"({exc})") from None
     if dtype.hasobject or dtype.kind not in _NPY_KINDS:
         raise _numpy_error(ValueError("pickle" if dtype.hasobject else
                                       f"dtype {dtype} is not numbers or text"), prefix)
@@ -664,12 +665,14 @@ def _read_npy_stream(fh: Any, size: int, prefix: str, what: str) -> np.ndarray:
     need = count * dtype.itemsize
     if need != size - offset:
         raise InvalidInputError(
-            f"{prefix}{what}: its header declares shape {tuple(shape)} of {dtype} "
+            f"{prefix}{what + ': its' if what else 'its'} .npy header declares shape "
+            f"{tuple(shape)} of {dtype} "
             f"({need:,} bytes) but {max(size - offset, 0):,} data bytes follow; the file is "
             "truncated or corrupt")
     raw = fh.read(need)
     if len(raw) != need:
-        raise InvalidInputError(f"{prefix}{what} is truncated ({len(raw):,} of {need:,} bytes)")
+        raise InvalidInputError(f"{prefix}{what or 'the array'} is truncated ({len(raw):,} of "
+                                f"{need:,} bytes)")
     arr = np.frombuffer(raw, dtype=dtype).reshape(shape, order="F" if fortran else "C")
     return np.array(arr, order="C")
 
@@ -689,7 +692,7 @@ def _load_numpy(p: Path, prefix: str, members: Sequence[str] | None = None) -> A
                     f"{prefix}the file is a .npz archive; give it the .npz suffix")
             raise InvalidInputError(f"{prefix}cannot read as NumPy data: no .npy header")
         with open(p, "rb") as fh:
-            return _read_npy_stream(fh, p.stat().st_size, prefix, "the file")
+            return _read_npy_stream(fh, p.stat().st_size, prefix, "")
     if head[:4] != b"PK\x03\x04":
         raise InvalidInputError(f"{prefix}cannot read as NumPy data: not a .npz (zip) archive")
     try:

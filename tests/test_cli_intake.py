@@ -260,3 +260,66 @@ def test_apply_rows_follow_the_one_row_convention(files, tmp_path):
     table = proc.stdout.splitlines()
     head = table.index("row  decision_value  label")
     assert table[head + 1].split()[0] == "1" and len(table) == head + 6
+
+
+def _npy_bytes(arr: np.ndarray) -> bytes:
+    import io
+
+    buf = io.BytesIO()
+    np.save(buf, arr)
+    return buf.getvalue()
+
+
+def _hostile_files(d: Path) -> list[tuple[Path, list[str], list[str]]]:
+    """(file, extra train options, words of the one-line error)."""
+    import io
+    import zipfile
+
+    out = []
+    buf = io.BytesIO()
+    np.lib.format.write_array_header_1_0(
+        buf, {"descr": "<f8", "fortran_order": False, "shape": (10**10, 2)})
+    (d / "huge.npy").write_bytes(buf.getvalue() + b"\0" * 64)
+    out.append((d / "huge.npy", ["--label", "col2"], ["huge.npy", "declares shape"]))
+    rows = 2**15 + 1  # 2**15 + 1 rows of 1024 float64: just over the 256 MiB floor
+    with zipfile.ZipFile(d / "bomb.npz", "w", compression=zipfile.ZIP_DEFLATED) as zf:
+        with zf.open("X.npy", "w", force_zip64=True) as fh:  # streamed: never in memory
+            np.lib.format.write_array_header_1_0(
+                fh, {"descr": "<f8", "fortran_order": False, "shape": (rows, 1024)})
+            block = bytes(1024 * 8 * 256)
+            for _ in range(rows // 256):
+                fh.write(block)
+            fh.write(bytes(1024 * 8 * (rows % 256)))
+        zf.writestr("y.npy", _npy_bytes(np.zeros(rows)))
+    out.append((d / "bomb.npz", ["--label", "y"], ["bomb.npz", "would inflate to"]))
+    with zipfile.ZipFile(d / "odd.npz", "w") as zf:
+        zf.writestr("X.npy", b"not an array")
+    out.append((d / "odd.npz", ["--label", "y"], ["odd.npz", "not in .npy format"]))
+    for name, cell, words in [("big", "1e400", "beyond the range"), ("hex", "0x1A", "hexa"),
+                              ("group", "1_000", "digit-group"), ("arabic", "\u0663", "ASCII"),
+                              ("nanword", "NaN", "NaN")]:
+        p = d / f"{name}.csv"
+        p.write_text(f"a,b,y\n1,2,x\n3,{cell},z\n5,6,x\n4,4,z\n", encoding="utf-8")
+        out.append((p, ["--label", "y"], [f"{name}.csv", "row 2 (line 3), column 'b'", words]))
+    p = d / "overflow.csv"
+    p.write_text("a,b,y\n1e300,2,x\n-1e300,3,z\n5,6,x\n4,4,z\n", encoding="utf-8")
+    out.append((p, ["--label", "y"], ["overflow.csv", "column 'a'", "overflows"]))
+    p = d / "dc.csv"
+    p.write_text("a;b;y\n1,5;2;x\n3;4;z\n5;6;x\n4;4;z\n", encoding="utf-8")
+    out.append((p, ["--label", "y"], ["dc.csv", "row 1 (line 2), column 'a'", "decimal comma"]))
+    return out
+
+
+def test_hostile_files_are_one_line_errors_from_the_command_line(tmp_path):
+    # before: MemoryError / AttributeError (exit 4), or numbers read without a word
+    failures = []
+    for path, opts, words in _hostile_files(tmp_path):
+        proc = kk("train", path, *opts, "--store", tmp_path / "store")
+        lines = [ln for ln in proc.stderr.splitlines() if ln.strip()]
+        ok = (proc.returncode == 1 and len(lines) == 1 and lines[0].startswith(
+            "kktrace: error: ") and all(w in lines[0] for w in words))
+        if not ok:
+            failures.append(f"{path.name}: exit {proc.returncode}: {proc.stderr!r}")
+    assert not failures, "\n".join(failures)
+    assert not (tmp_path / "store").exists() or not any(
+        p.is_dir() and not p.name.startswith(".") for p in (tmp_path / "store").iterdir())
