@@ -45,6 +45,7 @@ _EXPORTS: dict[str, str] = {
     # studies (solver.studies)
     "study": "studies",
     "StudyOutcome": "studies",
+    "study_report": "studies",
     # convergence on hard problems (solver.resolve, solver.diagnosis, solver.hard)
     "diagnose": "resolve",
     "what_if": "resolve",
@@ -90,6 +91,7 @@ _EXPORTS: dict[str, str] = {
     "ParentRecord": "run",
     "Member": "run",
     "get_task": "tasks",
+    "task_for_kind": "tasks",
     "RunStore": "store",
     "Status": "status",
     "to_plain": "plaindata",

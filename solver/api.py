@@ -81,7 +81,13 @@ def load_run(run: str | RunRecord, *, store: Any = None) -> RunRecord:
         return run
     if not isinstance(run, str) or not run:
         raise InvalidInputError(f"a run id must be a non-empty string, got {run!r}")
-    return open_store(store).load(run)
+    st = open_store(store)
+    if st.is_parent(run):
+        raise InvalidInputError(
+            f"run {run} is a multi-class model over pair runs; this step works on one pair: "
+            "name it with --pair A,B (Python: pair='A,B') or give the pair's run id "
+            "(kktrace runs lists them under the model)")
+    return st.load(run)
 
 
 def _parent_runs(run: Any, store: Any) -> Any:
@@ -260,7 +266,7 @@ def _query_rows(points: Any, data: Mapping[str, Any], cols: Columns = NO_CHOICE
 
 def leave_one_out(
     run: str | RunRecord, *, store: Any = None, progress: ProgressFn | None = None,
-    keep: bool = False,
+    keep: bool = False, pair: str | Sequence[str] | None = None,
 ) -> Any:
     """Exact leave-one-out error (support-vector refits) with the Vapnik and Joachims bounds.
 
@@ -268,13 +274,22 @@ def leave_one_out(
     :class:`~solver.explanation.KindLeaveOneOut`); needs a converged run.  With ``keep``
     the figures are stored as the attachment ``leave_one_out`` of a child record of the
     run (the run's parts plus the attachment, parent link with the run's manifest
-    digest, so it is verified with the run on every load); its id is ``kept_as``.
+    digest, so it is verified with the run on every load); its id is ``kept_as``.  For a
+    multi-class model ``pair`` (``"a,b"``) names the pair run.
     """
     import dataclasses
 
     from .explanation import leave_one_out as _loo
 
-    rec = load_run(run, store=store)
+    pr = _parent_runs(run, store) if pair is not None else None
+    if pair is not None and pr is None:
+        raise InvalidInputError(f"--pair applies to multi-class models; run {run} is one run")
+    if pr is not None:
+        from .parent_workflow import pair_key
+
+        rec = pr.member(pair_key(pair))
+    else:
+        rec = load_run(run, store=store)
     if keep and rec.run_id is None:
         raise InvalidInputError("leave-one-out figures can be kept only for a stored run")
     if rec.problem.labels is None:  # ε-regression / one-class: KindLeaveOneOut
@@ -667,26 +682,17 @@ def _apply_kind(rec: RunRecord, data: Any, names: list[str], label: str | None,
     """ε-regression (values = predictions, no labels) or one-class (values = signed scores,
     labels ``inlier`` / ``outlier``); with the target or known-outlier column present the
     held-out facts go into ``confusion`` (regression: RMSE, MAE, R², tube coverage)."""
-    from .measures import novelty_measures, regression_measures
-    from .problem import REGRESSION_KIND
-    from .training_kinds import known_outliers, numeric_column
+    from .tasks import task_for_kind
 
     col = label or rec.data.get("target_name") or rec.data.get("known_outlier_column")
     if isinstance(data, (str, Path)) and col is not None and not _has_column(Path(data), col,
                                                                               cols):
         col = None
     ds = _load_data(data, col, "data the model is applied to", cols, names=names)
-    X = ds.X
     with np.errstate(all="ignore"):
-        values = model_from_solution(rec.problem, rec.result, rec.standardiser).values(X)
+        values = model_from_solution(rec.problem, rec.result, rec.standardiser).values(ds.X)
     check_finite_values(values, ds, "data the model is applied to")
-    if rec.problem.kind == REGRESSION_KIND:
-        labels = np.full(values.shape[0], None, dtype=object)
-        facts = None if ds.labels is None else regression_measures(
-            numeric_column(ds, "target"), values, epsilon=float(rec.problem.info["epsilon"]))
-    else:
-        labels = np.where(values >= 0, "inlier", "outlier").astype(object)
-        facts = novelty_measures(values, None if ds.labels is None else known_outliers(ds))
+    labels, facts = task_for_kind(rec.problem.kind).applied(rec.problem, values, ds)
     return ModelOutput(run_id=rec.run_id, values=values, labels=labels, truth=ds.labels,
                        confusion=facts, fingerprint=_fingerprint(ds), source=ds.source,
                        kind=rec.problem.kind)

@@ -644,11 +644,18 @@ def _solve_once(
         cols[c] = np.asarray(rec.rows[c], dtype=np.int32)
     order = np.argsort(np.asarray(rec.snap_iters, dtype=np.int64), kind="stable")
     snaps = np.asarray(rec.snaps, dtype=np.float64).reshape(len(rec.snaps), n)[order]
+    snap_its = np.asarray(rec.snap_iters, dtype=np.int64)[order]
+    final_is_answer = bool(snap_its.size and snap_its[-1] == iterations)
+    if final_is_answer:
+        # the last snapshot is the returned α (the final iterate moved onto its active
+        # bounds), so a replay of the last iteration gives exactly the certificate's state;
+        # the last trace row keeps cvxopt's own figures of the interior iterate
+        snaps[-1] = alpha
     tr = Trace(
         solver="qp", level=trace, columns=cols,
         events={"iteration": np.zeros(0, np.int64), "kind": np.zeros(0, np.int8),
                 "value": np.zeros(0, np.float64)},
-        event_kinds={}, snapshot_iterations=np.asarray(rec.snap_iters, dtype=np.int64)[order],
+        event_kinds={}, snapshot_iterations=snap_its,
         snapshots=snaps, sample_every=int(sample_every), snapshot_every=int(snapshot_every),
     )
     backend_stats = {}
@@ -678,6 +685,7 @@ def _solve_once(
         else "cvxopt frame unavailable: start and final iterate only",
         "kernel_psd": problem.kernel.is_psd,
         "certificate_meets_tol": cert.meets_tol,
+        "final_snapshot": "returned_alpha" if final_is_answer else "interior_iterate",
         # no compiled code; set-up is loading cvxopt and building the dense Q
         "compile_seconds": 0.0, "setup_seconds": t_iterate - started,
         "solve_seconds": solve_seconds,

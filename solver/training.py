@@ -72,12 +72,15 @@ def _solve(
     iteration_limit: int | None,
     trace: str,
     progress: ProgressFn | None,
+    interior_point_tol: float | None = None,
 ) -> SolveResult:
     from .solvers import get_solver
 
     if method == "qp":
         # the challenger runs to cvxopt's own (tight) tolerance; ``kkt_tol`` is the certificate's
         options: dict[str, Any] = {"kkt_tol": kkt_tol, "trace": trace}
+        if interior_point_tol is not None:
+            options["interior_point_tol"] = interior_point_tol
     else:
         options = {"kkt_tol": kkt_tol, "trace": trace}
     if iteration_limit is not None:

@@ -97,6 +97,12 @@ _TRACE: dict[tuple[str, str], Term] = {
         "smo"),
     ("smo", "objective"): Term("dual objective after the step", "D after iteration k, "
                                "updated by the loop", "smo"),
+    ("smo", "i"): Term("working set i", "first working-set index (0-based training row)",
+                       "smo"),
+    ("smo", "j"): Term("working set j", "second working-set index (0-based training row)",
+                       "smo"),
+    ("smo", "alpha_i"): Term("new αᵢ", "αᵢ after the step, as the solver holds it", "smo"),
+    ("smo", "alpha_j"): Term("new αⱼ", "αⱼ after the step, as the solver holds it", "smo"),
     ("smo", "step"): Term("step", "change of αᵢ in iteration k", "smo"),
     ("smo", "active"): Term("active set", "variables not shrunk away", "smo"),
     ("qp", "primal_objective"): Term(

@@ -13,6 +13,7 @@ from hypothesis import strategies as st
 from solver.calibration import (
     Calibration,
     FitStatus,
+    SigmoidFit,
     couple_pairwise,
     couple_pairwise_rows,
     coupling_matrix,
@@ -113,3 +114,23 @@ def test_coupled_rows_sum_to_one(seed, k, m):
     assert P.shape == (m, k)
     assert np.max(np.abs(P.sum(axis=1) - 1)) <= 1e-12
     assert np.all((P > 0) & (P < 1))
+
+
+@SETTINGS
+@given(A=slopes, B=offsets, f=st.lists(st.floats(-1e6, 1e6), min_size=1, max_size=40))
+def test_calibration_probabilities_stay_inside_the_open_interval(A, B, f):
+    # the stored probabilities (Calibration.probabilities) stay inside (0, 1) even where the
+    # sigmoid itself rounds to 0 or 1 (clipped at 1e-15; see PROBABILITY_CLIP)
+    n = 4
+    fit = SigmoidFit(A=A, B=B, status=FitStatus.FITTED, message="", newton_steps=0,
+                     gradient_norm=0.0, objective=0.0, n_positive=2, n_negative=2,
+                     target_positive=0.75, target_negative=0.25)
+    cal = Calibration(labels={"negative": 0, "positive": 1}, n_folds=2, seed=0,
+                      folds=np.zeros(n, np.int64), cv_values=np.zeros(n), positive=np.ones(n, bool),
+                      fit=fit, fold_fits=(), solver="smo", solver_options={}, weights={},
+                      status=FitStatus.FITTED, message="")
+    values = np.sort(np.array(f))
+    P = cal.probabilities(values)
+    assert np.all((P > 0) & (P < 1))
+    assert np.max(np.abs(P.sum(axis=1) - 1)) <= 2e-15
+    assert np.all(np.diff(P[:, 1]) >= 0)

@@ -153,6 +153,12 @@ def test_replay_names_the_pair_and_verify_reruns_every_pair(model) -> None:
               "--store", model["store"])
     assert proc.returncode == 0, proc.stderr
     assert proc.stdout.startswith("pair rework vs scrap (run ")
+    proc = kk("explain", model["pid"], "--leave-one-out", "--no-keep", "--store",
+              model["store"])
+    assert proc.returncode == 1 and "--pair" in proc.stderr
+    loo = ok_json(kk("explain", model["pid"], "--leave-one-out", "--no-keep", "--pair",
+                     "pass,scrap", "--store", model["store"], "--json"))
+    assert loo["n"] == 40  # the rows of pass and scrap
     d = ok_json(kk("verify", model["pid"], "--store", model["store"], "--rerun",
                    model["train"], "--json"))
     assert d["ok"] and d["reproduction"]["agreement"] == "bitwise"
@@ -205,3 +211,41 @@ def test_bad_row_weight_names_the_row(tmp_path, weight, message) -> None:
               "--store", tmp_path / "store")
     assert proc.returncode == 1 and message in proc.stderr, proc.stderr
     assert len(proc.stderr.strip().splitlines()) == 1
+    store = tmp_path / "store"
+    assert not store.exists() or not any(p.name[0].isdigit() for p in store.iterdir())
+
+
+def test_weight_column_that_is_the_label_is_refused(tmp_path) -> None:
+    path = tmp_path / "w.csv"
+    with path.open("w", newline="") as fh:
+        w = csv.writer(fh)
+        w.writerow(["x", "grade"])
+        for k in range(6):
+            w.writerow([k, "abc"[k % 3]])
+    proc = kk("train", path, "--label", "grade", "--weight-column", "grade",
+              "--store", tmp_path / "store")
+    assert proc.returncode == 1, proc.stderr
+    assert "weight column 'grade' is also the label column" in proc.stderr
+    assert len(proc.stderr.strip().splitlines()) == 1
+
+
+def test_verify_of_the_parent_names_the_damaged_or_missing_pair(model, tmp_path) -> None:
+    import shutil
+
+    store = tmp_path / "copy"
+    shutil.copytree(model["store"], store)
+    members = model["summary"]["member_runs"]
+    ok = ok_json(kk("verify", model["pid"], "--store", store, "--json"))
+    assert ok["ok"]
+    target = [m for m in members if m["key"] == ["pass", "scrap"] and m["role"] == "pair"][0]
+    path = store / target["run_id"] / "solution.npz"
+    data = bytearray(path.read_bytes())
+    data[len(data) // 2] ^= 0x01
+    path.write_bytes(bytes(data))
+    gone = [m for m in members if m["key"] == ["rework", "scrap"] and m["role"] == "pair"][0]
+    shutil.rmtree(store / gone["run_id"])
+    proc = kk("verify", model["pid"], "--store", store)
+    assert proc.returncode == 1 and "INTEGRITY CHECK FAILED" in proc.stdout
+    assert f"member pair 'pass' vs 'scrap' (run {target['run_id']}): solution.npz" in proc.stdout
+    assert (f"member pair 'rework' vs 'scrap' (run {gone['run_id']}): run folder is missing"
+            in proc.stdout)

@@ -180,3 +180,104 @@ def test_compare_says_how_to_add_missing_held_out_rows(tour, tmp_path):
     assert ("note: held-out measures not computed: neither run was trained with held-out "
             "data; add them with 'kktrace compare RUN_A RUN_B --holdout FILE' (Python: "
             "solver.compare(a, b, holdout=FILE))") in out.stdout.splitlines()
+
+
+# --------------------------------------------------------------------------- items 3 and 7
+
+
+def _replay(tour, run, k):
+    return json.loads(kk("replay", tour[run], "--iteration", k, "--store", tour["store"],
+                         "--json").stdout)
+
+
+def _labelled(text: str, heading: str) -> dict[str, str]:
+    """label → value lines of the block under ``heading`` in replay's output."""
+    if heading not in text:
+        return {}
+    out = {}
+    for line in text.split(heading, 1)[1].splitlines()[1:]:
+        if not line.startswith("    "):
+            break
+        m = re.match(r"^    (.+?)\s{2,}(\S+)", line) or re.match(r"^    (.+?) (\S+)", line)
+        out[m.group(1)] = m.group(2)
+    return out
+
+
+def test_smo_trace_violation_is_named_apart_and_is_the_state_before_the_step(tour):
+    """Before: replay printed "violation 1.283" (certificate after iteration 100) beside a
+    trace row "violation 1.23863" — one word, two definitions."""
+    text = kk("replay", tour["smo"], "--iteration", 100, "--store", tour["store"]).stdout
+    cert = _labelled(text, "  certificate of α after iteration 100")
+    row = _labelled(text, "  trace row 100")
+    assert "maximal violation" in cert and "violation" not in row
+    assert "violation before the step" in row and "dual objective after the step" in row
+    assert "trace row 100 (the SMO loop's own figures)" in text
+    # the definitions: the row's figure is the certificate of the state after iteration 99
+    r99, r100 = _replay(tour, "smo", 99), _replay(tour, "smo", 100)
+    assert r100["recorded"]["violation"] == pytest.approx(
+        r99["certificate"]["max_violation"], rel=1e-9)
+    assert r100["recorded"]["objective"] == pytest.approx(
+        r100["certificate"]["dual_objective"], rel=1e-12)
+
+
+def test_free_is_the_one_word_for_the_count(tour):
+    assert "on the margin" not in tour["text"]
+    assert re.search(r"support\s+103 of 360 points \(34 free, 69 at the bound\)", tour["text"])
+    text = kk("replay", tour["smo"], "--iteration", 1280, "--store", tour["store"]).stdout
+    assert "(34 free, 69 at the bound)" in text
+
+
+def test_qp_trace_row_is_labelled_as_cvxopts_own(tour):
+    it = _replay(tour, "qp", 0)  # any QP replay names the row's owner
+    assert it["run_status"] == "converged"
+    n = json.loads(kk("runs", "--store", tour["store"], "--json").stdout)
+    k = next(r["iterations"] for r in n if r["run_id"] == tour["qp"])
+    text = kk("replay", tour["qp"], "--iteration", k, "--store", tour["store"]).stdout
+    row = _labelled(text, f"  trace row {k}")
+    # before: "primal_objective" in the row was what the summary calls the dual objective
+    assert "cvxopt primal objective (= D at its interior iterate)" in row
+    assert "cvxopt dual objective (lower bound on D)" in row
+    assert "primal objective P" not in row and "cvxopt gap sᵀz" in row
+    assert f"trace row {k} (cvxopt's own figures at its interior iterate" in text
+
+
+def test_last_replayed_qp_state_is_the_certificate(tour):
+    """Before: replay at the QP run's last iteration gave violation 1.598e-7 and gap
+    6.525e-7 against the certificate's 1.582e-7 and 7.201e-7 (the unsnapped iterate)."""
+    import solver
+
+    rec = solver.load_run(tour["qp"], store=tour["store"])
+    k = int(rec.result.iterations)
+    r = _replay(tour, "qp", k)
+    c, stored = r["certificate"], rec.result.certificate
+    assert np.array_equal(np.asarray(r["alpha"]), rec.result.alpha)
+    for key in ("max_violation", "duality_gap", "relative_gap", "dual_objective", "bias"):
+        assert c[key] == pytest.approx(getattr(stored, key), rel=1e-9, abs=1e-12), key
+    assert (c["n_free"], c["n_bounded"]) == (stored.n_free, stored.n_bounded)
+    text = kk("replay", tour["qp"], "--iteration", k, "--store", tour["store"]).stdout
+    assert "the returned answer: cvxopt's final iterate moved onto its active bounds" in text
+    # the figures the train command printed for the run, to its printed precision
+    block = tour["text"].split("challenger run", 1)[1]
+    viol = re.search(r"violation\s+(\S+)", block).group(1)
+    gap = re.search(r"duality gap\s+(\S+)", block).group(1)
+    assert f"{c['max_violation']:.3e}" == viol and f"{c['duality_gap']:.3e}" == gap
+    # an earlier iterate is cvxopt's interior point, and says so
+    text = kk("replay", tour["qp"], "--iteration", k - 1, "--store", tour["store"]).stdout
+    assert f"cvxopt's interior iterate {k - 1} (strictly inside the box" in text
+
+
+def test_report_says_whose_figure_is_whose_for_the_qp_run(tour, tmp_path):
+    out = tmp_path / "rep"
+    assert kk("report", tour["smo"], tour["qp"], "--store", tour["store"], "--out", out,
+              "--format", "json").returncode == 0
+    runs = {r["run_id"]: r for r in json.loads((out / "report.json").read_text())["runs"]}
+    qp = runs[tour["qp"]]
+    # before: run B had no "trace replay gives final α" row
+    assert qp["replay"] == {"reproduced": True, "max_abs_difference": 0.0}
+    caps = {f["key"]: f["caption"] for f in qp["figures"]}
+    assert caps["gap"].startswith("cvxopt's own gap sᵀz")
+    assert "not the certificate's" in caps["gap"] and "not a point of these curves" in caps["gap"]
+    assert "cvxopt's own primal objective at its interior iterates" in caps["objective"]
+    # two tolerances, two names
+    assert {"interior_point_tol", "kkt_tol"} <= set(qp["options"])
+    assert "tol" not in qp["options"]

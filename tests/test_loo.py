@@ -391,3 +391,42 @@ def test_removal_start_feasible_property(seed, C):
     sub, _ = drop_row(prob, i)
     bound, eq = sub.feasibility(removal_start(prob, a, i))
     assert bound == 0.0 and eq <= 1e-12 * max(1.0, a.sum())
+
+
+@pytest.mark.parametrize("weights", ["class", "row"])
+def test_exact_loo_is_correct_with_weights(weights):
+    # Weighted bounds uᵢ = C·w_class·w_row: the support-vector refits must keep every other
+    # row's bound.  Checked against an independent brute force that rebuilds each
+    # leave-one-out problem from the data with the same weights (row i removed) and solves
+    # it from scratch; for class weights also against scikit-learn's leave-one-out
+    # predictions with SVC(class_weight=...) (same dual, bounds C·w_class).
+    X, t = load_iris(return_X_y=True)
+    m = (t == 1) | (t == 2)
+    Z, t = Standardiser.fit(X[m]).transform(X[m]), t[m]
+    kern = RBFKernel(gamma=0.5)
+    rng = np.random.default_rng(2)
+    cw = {1: 3.0, 2: 0.5} if weights == "class" else None
+    sw = rng.uniform(0.3, 3.0, size=t.shape[0]) if weights == "row" else None
+    prob = binary_classification(Z, t, kernel=kern, C=1.0, class_weight=cw, sample_weight=sw)
+    res = _solve(prob)
+    plain = _solve(binary_classification(Z, t, kernel=kern, C=1.0))
+    assert not np.array_equal(prob.upper, np.full(prob.n, 1.0))  # the weights are in use
+    loo = leave_one_out(prob, res)
+    wrong = np.zeros(prob.n, dtype=bool)
+    for i in range(prob.n):
+        keep = np.arange(prob.n) != i
+        p_i = binary_classification(Z[keep], t[keep], kernel=kern, C=1.0, class_weight=cw,
+                                    sample_weight=None if sw is None else sw[keep])
+        r_i = _solve(p_i)
+        f = np.sum(r_i.alpha * p_i.y * kern.block(p_i.X, Z[i:i + 1])[:, 0]) + r_i.bias
+        wrong[i] = np.sign(f) != prob.y[i]
+    np.testing.assert_array_equal(loo.loo_wrong, wrong)
+    if weights == "class":
+        pred = cross_val_predict(SVC(kernel="rbf", gamma=0.5, C=1.0, tol=1e-10,
+                                     class_weight={-1.0: 3.0, 1.0: 0.5}), Z, prob.y,
+                                 cv=SkLeaveOneOut())
+        np.testing.assert_array_equal(loo.loo_wrong, pred != prob.y)
+    # and the weights matter for the answer (else the check could not fail)
+    assert not np.array_equal(leave_one_out(prob, res).loo_values,
+                              leave_one_out(binary_classification(Z, t, kernel=kern, C=1.0),
+                                            plain).loo_values)

@@ -226,10 +226,14 @@ def test_trace_rows_are_the_exact_iterates(rng):
     # a snapshot per iteration, starting with cvxopt's initial point
     assert list(t.snapshot_iterations) == list(range(0, k + 1))
     assert t.snapshots.shape == (k + 1, prob.n)
-    # the primal objective column is ½αᵀQα + pᵀα of the stored iterate (exact bookkeeping)
-    for row in range(k):
+    # the primal objective column is ½αᵀQα + pᵀα of the stored iterate (exact bookkeeping);
+    # the last snapshot is the returned α (the final iterate moved onto its active bounds),
+    # while the last row keeps cvxopt's own figures of the interior iterate
+    for row in range(k - 1):
         assert cols["primal_objective"][row] == pytest.approx(
             prob.objective(t.snapshots[row + 1]), rel=1e-10, abs=1e-10)
+    assert np.array_equal(t.snapshots[-1], r.alpha)
+    assert r.extra["final_snapshot"] == "returned_alpha"
     # the final row equals cvxopt's own returned statistics
     stats = r.extra["backend_stats"]
     for col, key in (("primal_objective", "primal_objective"), ("dual_objective",

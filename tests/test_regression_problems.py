@@ -219,3 +219,14 @@ def test_novelty_measures_confusion_matches_scikit_learn(rng):
     assert m["confusion"] == {"flagged_known": tp, "flagged_unknown": fp, "missed": fn,
                               "passed": tn}
     assert m["share_flagged"] == pytest.approx(np.mean(s < 0))
+
+
+def test_a_target_column_that_is_also_a_feature_is_refused():
+    """Bad input (issue 17): a target that is also a feature is refused at intake, before
+    any problem is built (a CSV cannot name a column twice; arrays are checked here)."""
+    from solver.data import from_arrays
+
+    X = np.random.default_rng(4).normal(size=(12, 2))
+    with pytest.raises(InvalidInputError, match="'thickness' is also a feature name"):
+        from_arrays(X, X[:, 1], feature_names=["speed", "thickness"], label_name="thickness",
+                    min_classes=1)

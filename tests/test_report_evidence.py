@@ -277,3 +277,72 @@ def test_demo_settings_do_not_flag_themselves(work: dict) -> None:
     msg = next(f.message for f in flagged if f.code == "many_bounded")
     assert "correctly classified points held at the upper bound C inside the margin" in msg
     assert "our heuristic" in msg
+
+
+# --------------------------------------------------------------------------- item 20
+
+
+def _words(pdf: Path) -> list[tuple[int, float, float, float, float, float, float, str]]:
+    """(page, page width, page height, xMin, yMin, xMax, yMax, word) of every word, from
+    ``pdftotext -bbox`` (poppler)."""
+    import html as _html
+    import re
+
+    out = subprocess.run(["pdftotext", "-bbox", str(pdf), "-"], capture_output=True,
+                         text=True, check=True).stdout
+    words = []
+    for k, page in enumerate(re.findall(r"<page (.*?)</page>", out, re.S), start=1):
+        w, h = (float(v) for v in re.findall(r'(?:width|height)="([0-9.]+)"', page)[:2])
+        for m in re.finditer(r'<word xMin="([-0-9.]+)" yMin="([-0-9.]+)" xMax="([-0-9.]+)" '
+                             r'yMax="([-0-9.]+)">(.*?)</word>', page):
+            x0, y0, x1, y1 = (float(v) for v in m.groups()[:4])
+            words.append((k, w, h, x0, y0, x1, y1, _html.unescape(m.group(5))))
+    return words
+
+
+def _page_images(pdf: Path, out: Path) -> list[np.ndarray]:
+    """Every page rendered by pdftoppm as a grey image (values 0–255)."""
+    out.mkdir(exist_ok=True)
+    subprocess.run(["pdftoppm", "-r", "30", "-gray", str(pdf), str(out / "p")], check=True)
+    images = []
+    for f in sorted(out.glob("p-*.pgm")):
+        data = f.read_bytes()
+        parts = data.split(maxsplit=4)  # P5, width, height, maxval, pixels
+        w, h = int(parts[1]), int(parts[2])
+        images.append(np.frombuffer(parts[4][: w * h], np.uint8).reshape(h, w))
+    return images
+
+
+def test_pdf_pages_keep_their_text_inside_the_page(work: dict, written: dict) -> None:
+    """Item 20: every rendered page: no word outside the page's text margins, no ink at the
+    page edge, no cut cell ("…"), the title on page 1 in full, the scope sentence once per
+    page."""
+    from solver.reporting import CAUTION
+    from solver.reporting.pdf import LEFT
+
+    pdf = written["paths"]["pdf"]
+    words = _words(pdf)
+    assert words
+    for k, w, h, x0, y0, x1, y1, text in words:
+        assert x0 >= 0.8 * LEFT * w and x1 <= (1 - 0.8 * LEFT) * w, (k, text, x0, x1)
+        assert y0 >= 0 and y1 <= h, (k, text)
+        assert not (len(text) > 1 and text.endswith("…")), (k, text)  # a cut cell
+    images = _page_images(pdf, work["root"] / "pages")
+    assert len(images) == max(wd[0] for wd in words)
+    for k, img in enumerate(images, start=1):
+        edge = max(2, img.shape[1] // 50)
+        border = np.concatenate([img[:, :edge].ravel(), img[:, -edge:].ravel(),
+                                 img[:edge].ravel(), img[-edge:].ravel()])
+        assert border.min() > 200, f"ink at the edge of page {k}"
+    pages = _pdf_text(pdf).split("\f")
+    title = written["summary"]["title"]
+    first = " ".join(pages[0].split())
+    assert all(part in first for part in title.split(" — "))
+    start = " ".join(CAUTION.split()[:8])
+    for k, page in enumerate(pages[:-1], start=1):
+        assert " ".join(page.split()).count(start) == 1, k
+    # the top table's cells appear whole: every row id and category of the QP run's table
+    qp = written["summary"]["runs"][1]["influential"]
+    text = " ".join(" ".join(pages).split())
+    for row in qp["rows"]:
+        assert row[qp["columns"].index("category")] in text

@@ -314,3 +314,81 @@ def test_unreachable_scheduler_is_one_line_within_the_timeout_and_writes_nothing
     assert "nothing was written" in line[0]
     assert took < 3 + 25  # the stated timeout plus interpreter and import start-up
     assert not (tmp_path / "st").exists() or not any((tmp_path / "st").iterdir())
+
+
+def test_study_report_has_both_maps_the_rule_the_failures_and_the_cautions(tmp_path):
+    ds = _demo(150)
+    # an iteration limit of 40 makes the large-C fits stop early: listed and mapped
+    out = study(ds, C=[0.3, 30.0], gamma=[0.1, 1.0], folds=3, iteration_limit=40,
+                scheduler="sequential", store=tmp_path / "st")
+    assert out.not_converged
+    paths = solver.study_report(out.study_id, store=tmp_path / "st", out_dir=tmp_path / "rep")
+    text = paths["html"].read_text(encoding="utf-8")
+    assert "<svg" in text and "convergence-difficulty map" in text
+    assert "one-standard-error rule" in text and "7.10" in text
+    assert out.choice["one_se"] in text
+    for r in out.not_converged:
+        assert r["run_id"] in text
+    assert "not a validation sign-off" in text
+    data = json.loads(paths["json"].read_text(encoding="utf-8"))
+    assert len(data["not_converged"]) == len(out.not_converged)
+    assert any("did not converge" in n for n in data["difficulty_notes"])
+    m = data["maps"]
+    assert len(m["maps"]["mean_iterations"]) == 2 and len(m["maps"]["mean_iterations"][0]) == 2
+    assert paths["pdf"].read_bytes()[:5] == b"%PDF-"
+    with pytest.raises(InvalidInputError, match="formats"):
+        solver.study_report(out.study_id, store=tmp_path / "st", formats=["docx"])
+
+
+def test_stability_evidence_for_the_chosen_cell(tmp_path):
+    ds = _demo(200)
+    out = study(ds, C=[1.0, 4.0], gamma=[0.2], folds=4, seed=1, stability=True,
+                scheduler="sequential", store=tmp_path / "st")
+    s = out.stability
+    assert s["cell"] == out.choice["one_se"]
+    kinds = [v["kind"] for v in s["variants"]]
+    assert kinds == ["permutation"] * 3 + ["bootstrap"] * 3 + ["noise"] * 2
+    # a row-order permutation is the same problem renumbered: same optimum (and said so)
+    assert s["permutations_same_optimum"], s["variants"][:3]
+    assert "same optimum" in s["permutation_verdict"]
+    for v in s["variants"][:3]:
+        assert v["support_jaccard"] == 1.0 and v["flips_held_out"] == 0
+        assert v["max_drift_train"] <= 1e-2
+    # bootstrap resamples change the training set: their support vectors differ
+    assert s["by_kind"]["bootstrap"]["lowest_sv_jaccard"] < 1.0
+    assert s["noise_levels"] == [0.01, 0.05]
+    st = solver.RunStore(tmp_path / "st")
+    parent = st.load_parent(out.study_id)
+    roles = [m.role for m in parent.members]
+    assert roles.count("stability_base") == 1 and roles.count("stability_noise") == 2
+    assert parent.attachments["stability"]["base_run_id"] == s["base_run_id"]
+    paths = solver.study_report(out.study_id, store=tmp_path / "st", out_dir=tmp_path / "r",
+                                formats=["html"])
+    assert "Stability of" in paths["html"].read_text(encoding="utf-8")
+
+
+def test_a_permutation_that_moves_the_optimum_is_flagged():
+    """The rule, on two hand-made fits: same support vectors and objective, but one
+    training decision value moved by 0.5 > SAME_VALUE_ABS (1e-2): flagged, with the run."""
+    from types import SimpleNamespace
+
+    from solver.studies.grid import Cell
+    from solver.studies.stability import SAME_VALUE_ABS, StabilityJob, summarise
+
+    def fit(kind, values):
+        on = np.array([True, False, True, False])
+        result = SimpleNamespace(certificate=SimpleNamespace(at_lower=~on, dual_objective=-3.0),
+                                 success=True, bias=0.0,
+                                 status=SimpleNamespace(label="converged"))
+        job = StabilityJob(kind, 0, None, 0, Cell(1.0, 0.1, None), "binary", {})
+        return SimpleNamespace(job=job, record=SimpleNamespace(result=result),
+                               rows=np.arange(4), train_values=np.array(values),
+                               hold_values=np.array(values[:2]))
+
+    base = fit("base", [1.0, -1.0, 0.5, -0.5])
+    same = fit("permutation", [1.0 + SAME_VALUE_ABS / 2, -1.0, 0.5, -0.5])
+    moved = fit("permutation", [1.5, -1.0, 0.5, -0.5])
+    assert summarise([base, same], ["r0", "r1"])["permutations_same_optimum"]
+    s = summarise([base, moved], ["r0", "r2"])
+    assert not s["permutations_same_optimum"]
+    assert s["permutation_verdict"].startswith("FLAG") and "r2" in s["permutation_verdict"]

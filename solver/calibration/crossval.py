@@ -25,11 +25,15 @@ from ..problem import DualProblem
 from .folds import stratified_folds
 from .platt import FIT_MESSAGES, FitStatus, SigmoidFit, fit_sigmoid, sigmoid_probability
 
-__all__ = ["Calibration", "calibrate", "DEFAULT_FOLDS", "DEFAULT_SEED", "ATTACHMENT"]
+__all__ = ["Calibration", "calibrate", "DEFAULT_FOLDS", "DEFAULT_SEED", "ATTACHMENT",
+           "PROBABILITY_CLIP"]
 
 #: Defaults of ``train(probabilities=True)``: five folds, seed 0 (both recorded).
 DEFAULT_FOLDS = 5
 DEFAULT_SEED = 0
+#: Binary probabilities are kept inside [PROBABILITY_CLIP, 1 − PROBABILITY_CLIP] (float64
+#: cannot hold 1 − e^{−z} below 1 for z > 36.7; the clip keeps both in the open interval).
+PROBABILITY_CLIP = 1e-15
 #: Name of the run attachment (``calibration.json``).
 ATTACHMENT = "calibration"
 _METHOD = "platt_cross_validated"
@@ -84,6 +88,10 @@ class Calibration:
     def probabilities(self, values: np.ndarray) -> np.ndarray:
         """(m, 2) probabilities [P(negative), P(positive)] for decision values (m,).
 
+        Both columns are kept inside [PROBABILITY_CLIP, 1 − PROBABILITY_CLIP], which acts
+        only where |A f + B| > 34.5; without it the larger of the two would round to
+        exactly 1.0 in float64 from |A f + B| > 36.7 on.  Rows sum to 1 within 2e−15.
+
         Raises :class:`InvalidInputError` when the fit failed (its reason in the message):
         probabilities are never made up."""
         if not self.success:
@@ -91,7 +99,8 @@ class Calibration:
         f = np.asarray(values, dtype=np.float64).reshape(-1)
         p_pos = sigmoid_probability(f, self.A, self.B)
         p_neg = sigmoid_probability(f, -self.A, -self.B)  # = 1 − p_pos without cancellation
-        return np.column_stack([p_neg, p_pos])
+        P = np.column_stack([p_neg, p_pos])
+        return np.clip(P, PROBABILITY_CLIP, 1.0 - PROBABILITY_CLIP)
 
     @property
     def crossover(self) -> float:

@@ -40,8 +40,10 @@ def cmd_apply(args: argparse.Namespace) -> int:
     print(f"applied run {args.run} to {n} rows of {sc.source or 'the data'} ")
     if sc.votes is not None:
         return _print_votes(sc, args)
-    if sc.kind != "binary_classification":
-        return _print_kind(sc, args)
+    task = solver.task_for_kind(sc.kind)
+    columns = task.output_columns(sc.values, sc.labels)
+    if columns is not None:  # the task's own layout (ε-regression, one-class)
+        return _print_task(task, columns, sc, args)
     if sc.confusion is not None:
         c = sc.confusion
         print(f"  accuracy {c['accuracy']:.3f}, balanced accuracy {c['balanced_accuracy']:.3f}")
@@ -110,35 +112,24 @@ def _print_votes(sc: Any, args: argparse.Namespace) -> int:
     print("  ".join(heads))
     for i, lab in enumerate(sc.labels.tolist()):
         extra = [] if sc.probabilities is None else [f"{q:.6f}" for q in sc.probabilities[i]]
-        cells = [str(i), str(lab), *_vote_cells(sc, i)[:len(sc.vote_classes) + 1],
+        cells = [str(i + 1), str(lab), *_vote_cells(sc, i)[:len(sc.vote_classes) + 1],
                  *(f"{float(v):+.6f}" for v in sc.values[i]), *extra]
         print("  ".join(cells))
     return EXIT_OK
 
 
-def _print_kind(sc: Any, args: argparse.Namespace) -> int:
-    f = sc.confusion
-    if sc.kind == "epsilon_regression":
-        if f is not None:
-            r2 = "n/a" if f["r2"] is None else f"{f['r2']:.4f}"
-            print(f"  RMSE {f['rmse']:.4g}, MAE {f['mae']:.4g}, R² {r2}, inside the ε-tube "
-                  f"(ε = {f['epsilon']:g}) {f['tube_coverage']:.3f}")
-        rows = [f"{i:<4d} {v:+.6f}" for i, v in enumerate(sc.values.tolist(), 1)]
-        head = "row  prediction"
-    else:
-        print(f"  flagged {f['n_flagged']} of {f['n']} as outliers ({f['rule']})")
-        if f.get("confusion"):
-            c = f["confusion"]
-            print(f"  known outliers: flagged {c['flagged_known']}, missed {c['missed']}; "
-                  f"others: false alarms {c['flagged_unknown']}, passed {c['passed']}")
-        rows = [f"{i:<4d} {v:+.6f}  {lab}"
-                for i, (v, lab) in enumerate(zip(sc.values.tolist(), sc.labels.tolist(),
-                                                 strict=True), 1)]
-        head = "row  score      flag"
+def _print_task(task: Any, columns: dict[str, list[Any]], sc: Any,
+                args: argparse.Namespace) -> int:
+    for line in task.applied_lines(sc.confusion):
+        print(f"  {line}")
     if args.out:
         print(f"  outputs written to {args.out}")
-    else:
-        print("\n".join([head, *rows]))
+        return EXIT_OK
+    print("  ".join(["row ", *(f"{c:<11s}" for c in columns)]).rstrip())
+    for i in range(len(sc.values)):
+        cells = [f"{v:<+11.6f}" if isinstance(v, float) else f"{v!s:<11s}"
+                 for v in (columns[c][i] for c in columns)]
+        print("  ".join([f"{i + 1:<4d}", *cells]).rstrip())
     return EXIT_OK
 
 
@@ -153,17 +144,16 @@ def _write_outputs(sc: Any, path: Path) -> None:
             w.writerow(["row", "label", *_vote_heads(sc), *heads])
             for i, lab in enumerate(sc.labels.tolist()):
                 extra = [] if probs is None else [repr(float(q)) for q in probs[i]]
-                w.writerow([i, lab, *_vote_cells(sc, i), *extra])
+                w.writerow([i + 1, lab, *_vote_cells(sc, i), *extra])
             return
-        if sc.kind == "epsilon_regression":
-            w.writerow(["row", "prediction"])
-            for i, v in enumerate(sc.values.tolist(), 1):
-                w.writerow([i, repr(float(v))])
-            return
-        if sc.kind == "one_class":
-            w.writerow(["row", "score", "inlier"])
-            for i, v in enumerate(sc.values.tolist(), 1):
-                w.writerow([i, repr(float(v)), int(v >= 0)])
+        import solver
+
+        columns = solver.task_for_kind(sc.kind).output_columns(sc.values, sc.labels)
+        if columns is not None:  # the task's own columns (ε-regression, one-class)
+            w.writerow(["row", *columns])
+            for i in range(len(sc.values)):
+                w.writerow([i + 1, *(repr(v) if isinstance(v, float) else v
+                                 for v in (columns[c][i] for c in columns))])
             return
         probs = sc.probabilities
         heads = [] if probs is None else [_prob_column(lab) for lab in sc.probability_labels]

@@ -57,14 +57,18 @@ def cmd_explain(args: argparse.Namespace) -> int:
 
     if args.point is not None and args.query is not None:
         raise solver.InvalidInputError("give either --point or --query, not both")
+    if args.pair is not None and not args.leave_one_out:
+        raise solver.InvalidInputError("--pair goes with --leave-one-out (the per-point table "
+                                       "and --point cover every pair already)")
     if args.leave_one_out:
         loo = solver.leave_one_out(args.run, store=args.store, progress=progress(args),
-                                   keep=not args.no_keep)
+                                   keep=not args.no_keep, pair=args.pair)
         d = loo.summary() if hasattr(loo, "summary") else to_dict(loo)
         if args.json:
             emit_json(d, sys.stdout)
         else:
-            _print_loo(d, args.run)
+            _print_loo(d, f"pair {' vs '.join(args.pair.split(','))} of model {args.run}"
+                       if args.pair else f"run {args.run}")
         return EXIT_OK
     points: Any = None
     if args.point is not None:
@@ -144,7 +148,7 @@ def _print_loo(d: Mapping[str, Any], run: str) -> None:
     import solver
 
     voc = solver.vocabulary
-    print(f"leave-one-out for run {run}:")
+    print(f"leave-one-out for {run}:")
     rows = []
     for k, v in d.items():
         if k == "kept_as" or isinstance(v, Mapping):
@@ -198,6 +202,8 @@ def register(sub: Any) -> None:
                    help="support vectors listed per query (default 5)")
     p.add_argument("--out", metavar="DIR", default=None,
                    help="write the per-point table as CSV and Parquet into DIR")
+    p.add_argument("--pair", metavar="A,B", default=None,
+                   help="with --leave-one-out on a multi-class model: the pair run")
     p.add_argument("--leave-one-out", action="store_true",
                    help="exact leave-one-out error and its bounds, stored with the run "
                         "as a child record")

@@ -126,18 +126,42 @@ def cmd_replay(args: argparse.Namespace) -> int:
           f"(snapshot {state.base_iteration} + {state.deltas_applied} recorded steps)")
     print(f"  run status    {d['run_status']} (of the whole run: {d['run_message']})")
     print(f"  run time      {solver.timing_text(d['run_timing'])}")
-    print(f"  violation     {num(cert['max_violation'], '.3e')}  "
-          f"(kkt_tol {num(cert['kkt_tol'], '.1e')})")
-    print(f"  objectives    dual {num(cert['dual_objective'], '.8g')}, "
-          f"primal {num(cert['primal_objective'], '.8g')}")
-    print(f"  duality gap   {num(cert['duality_gap'], '.3e')}")
-    print(f"  support       {cert['n_support']} points ({cert['n_free']} free, "
-          f"{cert['n_bounded']} at the bound), bias {num(cert['bias'])}")
-    if state.recorded:
-        print("  trace row     " + ", ".join(
-            f"{k} {num(v, '.6g') if isinstance(v, float) else v}"
-            for k, v in state.recorded.items()))
+    _print_state(state, cert)
     return EXIT_OK
+
+
+#: whose figures a trace row holds, by the owner named in solver.vocabulary
+_ROW_OWNER = {"smo": "the SMO loop's own figures", "cvxopt": "cvxopt's own figures at its "
+              "interior iterate, not the certificate's"}
+
+
+def _print_state(state: Any, cert: dict[str, Any]) -> None:
+    """The certificate at the replayed α, then the trace row in the solver's own words."""
+    import solver
+
+    t = solver.term
+    print(f"  α             {state.alpha_source}")
+    print(f"  certificate of α after iteration {state.iteration} (kktrace's shared "
+          "certificate, gradient recomputed):")
+    print(f"    {t('max_violation').label:30s} {num(cert['max_violation'], '.3e')}  "
+          f"(kkt_tol {num(cert['kkt_tol'], '.1e')})")
+    print(f"    {t('dual_objective').label:30s} {num(cert['dual_objective'], '.8g')}")
+    print(f"    {t('primal_objective').label:30s} {num(cert['primal_objective'], '.8g')}")
+    print(f"    {t('duality_gap').label:30s} {num(cert['duality_gap'], '.3e')}  "
+          f"({t('relative_gap').label} {num(cert['relative_gap'], '.3e')})")
+    print(f"    {'support vectors':30s} {cert['n_support']} ({cert['n_free']} "
+          f"{t('n_free').label}, {cert['n_bounded']} {t('n_bounded').label})")
+    print(f"    {t('bias').label:30s} {num(cert['bias'], '.10g')}")
+    if not state.recorded:
+        return
+    terms = {k: solver.trace_term(state.solver, k) for k in state.recorded if k != "iteration"}
+    owners = {tm.owner for tm in terms.values()}
+    whose = "; ".join(_ROW_OWNER.get(o, f"{o}'s own figures") for o in sorted(owners))
+    print(f"  trace row {state.iteration} ({whose}):")
+    width = max(len(tm.label) for tm in terms.values())
+    for k, tm in terms.items():
+        v = state.recorded[k]
+        print(f"    {tm.label:{width}s}  {num(v, '.6g') if isinstance(v, float) else v}")
 
 
 def _is_long_array(v: Any) -> bool:

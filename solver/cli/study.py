@@ -61,12 +61,17 @@ def cmd_study(args: argparse.Namespace) -> int:
             degree=args.degree, offset=args.offset, folds=args.folds, seed=args.seed,
             kkt_tol=args.kkt_tol, iteration_limit=args.iteration_limit, trace=args.trace,
             standardise=not args.no_standardise, warm_start=args.warm_start,
+            stability=args.stability,
             scheduler=args.scheduler, workers=args.workers,
             connect_timeout=args.connect_timeout, store=args.store, table=args.table,
             progress=ticker)
     finally:
         ticker.close()
     s = out.summary()
+    paths = {}
+    if args.report is not None:
+        paths = solver.study_report(out.study_id, store=args.store, out_dir=args.report)
+        s["report"] = {k: str(v) for k, v in paths.items()}
     code = EXIT_OK if not out.not_converged else EXIT_NOT_CONVERGED
     if args.json:
         emit_json(s, sys.stdout)
@@ -85,12 +90,29 @@ def cmd_study(args: argparse.Namespace) -> int:
     ch = out.choice
     print(f"best cell by mean {ch['score']}: {ch['best']} ({num(ch['best_mean'], '.4f')})")
     print(f"chosen cell: {ch['one_se']} ({num(ch['one_se_mean'], '.4f')}) by the {ch['rule']}")
+    wc = out.warm_check
+    if wc is not None:
+        same = "all the same" if wc["all_same_certificate"] else "NOT all the same"
+        print(f"warm starts: {wc['warm_iterations']} iterations against "
+              f"{wc['cold_iterations']} cold on the same {len(wc['cells'])} cells (fold 0), "
+              f"ratio {num(wc['ratio_cold_to_warm'], '.3g')}; certificates {same} "
+              f"(dual objectives within {num(wc['objective_tolerance'])} relative)")
+    st = out.stability
+    if st is not None:
+        print(f"stability of {st['cell']}: {st['permutation_verdict']}")
+        for k, v in st["by_kind"].items():
+            print(f"  {k:<12} {v['refits']} refits, min support-vector Jaccard "
+                  f"{v['lowest_sv_jaccard']:.3f}, max drift {num(v['max_drift_train'])} "
+                  f"(train) {num(v['max_drift_held_out'])} (held out), flips "
+                  f"{v['max_flips_held_out']}, bias spread {num(v['bias_spread'])}")
     for r in out.not_converged:
         print(f"NOT CONVERGED: {r['cell']} fold {r['fold']} run {r['run_id']} ({r['status']})")
     for w in out.warnings:
         print(f"note: {w}")
     if out.table_path is not None:
         print(f"results table: {out.table_path}")
+    for fmt, path in paths.items():
+        print(f"report {fmt}: {path}")
     print(f"caution: {s['caution']}")
     return code
 
@@ -118,6 +140,9 @@ def register(sub: Any) -> None:
     p.add_argument("--no-standardise", action="store_true", help="do not standardise")
     p.add_argument("--warm-start", action="store_true",
                    help="start each C from the previous C's solution (same fold and gamma)")
+    p.add_argument("--stability", action="store_true",
+                   help="also refit the chosen cell under row-order permutations, bootstrap "
+                   "resamples and feature noise")
     p.add_argument("--scheduler", metavar="ADDRESS", default=None,
                    help="Dask scheduler address (default $KKTRACE_SCHEDULER, else a local "
                    "cluster); 'sequential' runs in this process")
@@ -127,4 +152,6 @@ def register(sub: Any) -> None:
                    help="seconds to wait for --scheduler before giving up (default 10)")
     p.add_argument("--table", metavar="FILE", default=None,
                    help="also write the results table to this Parquet file")
+    p.add_argument("--report", metavar="DIR", default=None,
+                   help="also write the study report (HTML, PDF, JSON) to this folder")
     p.set_defaults(func=cmd_study)

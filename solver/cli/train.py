@@ -64,34 +64,13 @@ def _run_block(s: Mapping[str, Any], role: str) -> list[str]:
         f"({s['n_free']} {solver.term('n_free').label}, {s['n_bounded']} "
         f"{solver.term('n_bounded').label}), bias {num(s['bias'])}",
     ]
-    if s.get("task") == "regression":
-        lines.append(f"  task          ε-regression, ε = {num(s.get('epsilon'))}; training RMSE "
-                     f"{num(s.get('training_rmse'), '.4g')}, inside or on the tube "
-                     f"{num(s.get('training_tube_coverage'), '.3f')}")
-    elif s.get("task") == "one-class":
-        nuc = s.get("nu_property") or {}
-        lines.append(f"  task          one-class, ν = {num(s.get('nu'))}; outlier share "
-                     f"{num(nuc.get('outlier_share'), '.4f')} <= ν <= support share "
-                     f"{num(nuc.get('support_share'), '.4f')}: "
-                     + ("holds" if nuc.get("holds") else "DOES NOT HOLD"))
+    if isinstance(s.get("task"), str):  # the task's own lines (ε-regression, one-class)
+        for head, text in solver.get_task(s["task"]).run_lines(s):
+            lines.append(f"  {head:13s} {text}")
     labels = s.get("labels")
     if labels:
         lines.append(f"  labels        f(x) > 0 predicts {str(labels['positive'])!r} (positive), "
                      f"f(x) <= 0 predicts {str(labels['negative'])!r} (negative)")
-    hold = s.get("holdout") or {}
-    if "rmse" in hold:
-        r2 = hold.get("r2")
-        lines.append(f"  held-out      RMSE {num(hold['rmse'], '.4g')}, "
-                     f"MAE {num(hold['mae'], '.4g')}, "
-                     f"R² {num(r2, '.4f') if r2 is not None else 'n/a'}, tube coverage "
-                     f"{num(hold['tube_coverage'], '.3f')}")
-    elif "share_flagged" in hold:
-        text = f"  held-out      flagged {hold['n_flagged']} of {hold['n']}"
-        conf = hold.get("confusion")
-        if conf:
-            text += (f"; known outliers flagged {conf['flagged_known']}, missed "
-                     f"{conf['missed']}, false alarms {conf['flagged_unknown']}")
-        lines.append(text)
     if "holdout_accuracy" in s:
         lines.append(
             f"  held-out      accuracy {num(s['holdout_accuracy'], '.3f')}, balanced accuracy "

@@ -132,7 +132,8 @@ def calibration_content(att: Mapping[str, Any] | None, label: str) -> Calibratio
          [fit.target_positive, fit.target_negative]),
         ("class weights in the fold fits", cal.weights.get("class_weight") or "none"),
         ("sample weights in the fold fits", bool(cal.weights.get("sample_weight"))),
-        ("fold solver", f"{cal.solver} {dict(cal.solver_options)}"),
+        ("fold solver", ", ".join([cal.solver, *(f"{k} {v}" for k, v in
+                                                   cal.solver_options.items() if k != "trace")])),
     ]
     folds = Table(columns=("fold", "training rows", "held-out rows", "status", "iterations",
                            "max violation"),

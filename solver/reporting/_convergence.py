@@ -101,9 +101,11 @@ def _trace_figures(rec: RunRecord, label: str, categories: np.ndarray | None) ->
             caption=("Dual objective ½αᵀQα + pᵀα (minimised; upper panel) and its distance "
                      f"|D − D_final| to the final value {_fmt_num(final)} (log scale; lower "
                      "panel)"
-                     + ("; dashed: the interior-point solver's lower bound on it (its own dual "
-                        "objective — our dual problem is that solver's primal)"
-                        if lower is not None else "") + "."),
+                     + ("; for the interior-point solver the curve is cvxopt's own primal "
+                        "objective at its interior iterates (our dual problem is that "
+                        "solver's primal) and the final value is the certificate's, at the "
+                        "returned α; dashed: cvxopt's lower bound on it (its own dual "
+                        "objective)" if lower is not None else "") + "."),
             data=data,
         ))
     gap_keys = [k for k in ("gap", "relative_gap", "primal_residual", "dual_residual") if k in cols]
@@ -116,9 +118,12 @@ def _trace_figures(rec: RunRecord, label: str, categories: np.ndarray | None) ->
             series[k] = bucket_envelope(x, cols[k])
         figs.append(FigureData(
             key="gap", kind="gap", title=f"{label}: duality gap and residuals",
-            caption=("Duality gap, relative gap and primal/dual residuals per interior-point "
-                     f"iteration (absolute values, log scale); final relative gap "
-                     f"{_fmt_num(res.certificate.relative_gap)}."),
+            caption=("cvxopt's own gap sᵀz, relative gap and primal/dual residuals at each "
+                     "of its interior iterates (absolute values, log scale; the library's "
+                     "figures, not the certificate's). The certificate's relative gap at the "
+                     "returned α (final iterate moved onto its active bounds) is "
+                     f"{_fmt_num(res.certificate.relative_gap)}; it is not a point of these "
+                     "curves."),
             data={"lines": lines},
         ))
     # support-set size, replay, trajectories, selection counts
@@ -145,6 +150,10 @@ def _trace_figures(rec: RunRecord, label: str, categories: np.ndarray | None) ->
         series["support_size"] = bucket_envelope(replay.iterations, replay.support_size)
     elif trace.snapshots is not None and np.asarray(trace.snapshots).size:
         snaps = np.asarray(trace.snapshots)
+        if (res.extra or {}).get("final_snapshot") == "returned_alpha" and p.n:
+            # the QP solver's last snapshot is its returned α (solver/qp.py)
+            diff = float(np.max(np.abs(snaps[-1] - res.alpha)))
+            facts["replay"] = {"max_abs_difference": diff, "reproduced": diff == 0.0}
         thresh = p.lower + float(res.certificate.bound_tol) * np.maximum(p.upper - p.lower, 0)
         counts = np.sum(snaps > thresh[None, :], axis=1).astype(np.float64)
         sets["support"] = (np.asarray(trace.snapshot_iterations, dtype=np.float64), counts)

@@ -30,6 +30,7 @@ CHARS = 104  # monospace characters per line at 7.5 pt
 SANS_CHARS = 112  # sans characters per body line at 8 pt (conservative)
 PAGE_LINES = (TOP - 0.045 - BOTTOM - 0.01) / LINE  # body lines that fit below the heading
 FIGS_PER_PAGE = 2
+FOOT_CHARS = 150  # footer characters per line at 6.2 pt
 
 
 @dataclass(frozen=True)
@@ -141,7 +142,7 @@ def _blocks(head_widths: list[int], cells: list[list[str]]) -> list[tuple[list[i
 
 def _height(kind: str) -> float:
     """Height of one line item in body lines."""
-    return {"gap": 0.6, "h": 1.35}.get(kind, 1.0)
+    return {"gap": 0.6, "h": 1.35, "t": 1.35}.get(kind, 1.0)
 
 
 def _paginate(heading: str, lines: _Lines) -> list[PdfPage]:
@@ -163,8 +164,15 @@ def _paginate(heading: str, lines: _Lines) -> list[PdfPage]:
             for k, p in enumerate(pages)]
 
 
+#: Characters per line of the cover's title line (10.5 pt; conservative for A4).
+TITLE_CHARS = 84
+
+
 def _cover(c: ReportContent) -> list[PdfPage]:
     L = _Lines()
+    head, _, rest = c.title.partition(" — ")
+    for line in textwrap.wrap(rest, width=TITLE_CHARS, break_long_words=True):
+        L.items.append(("t", line))
     L.para(f"prepared {c.generated} with kktrace {c.kktrace_version} · {len(c.runs)} run(s)", "i")
     L.heading("Outcome")
     for r in c.runs:
@@ -190,9 +198,8 @@ def _cover(c: ReportContent) -> list[PdfPage]:
             L.flag(f.severity, f.message)
     else:
         L.para("No flags raised.")
-    L.heading("Scope of this record")
-    L.para(c.caution)
-    return _paginate(c.title, L)
+    # the scope sentence (the standing caution) is in every page's footer, once per page
+    return _paginate(head, L)
 
 
 def _run_text(r: RunContent) -> list[PdfPage]:
@@ -330,8 +337,6 @@ def _challenger(c: ReportContent) -> list[PdfPage]:
         L.heading("Notes from the preparer")
         for para in c.notes.splitlines() or [""]:
             L.para(para)
-    L.heading("Scope of this record")
-    L.para(c.caution)
     return _paginate("Challenger cross-check", L)
 
 
@@ -361,6 +366,7 @@ def plan_pages(content: ReportContent) -> list[PdfPage]:
 
 _FONTS = {
     "h": dict(family="DejaVu Sans", size=10.5, color=PALETTE["tide"]),
+    "t": dict(family="DejaVu Sans", size=10.5, color=PALETTE["ink"]),
     "p": dict(family="DejaVu Sans", size=8.0, color=PALETTE["ink"]),
     "ps": dict(family="DejaVu Sans", size=8.0, color=PALETTE["oxblood"]),
     "i": dict(family="DejaVu Sans", size=8.0, color="#5f676d"),
@@ -376,11 +382,11 @@ def _frame(fig: Figure, page: PdfPage, number: int, total: int, content: ReportC
              color=PALETTE["tide"], family="DejaVu Sans")
     fig.text(1 - LEFT, 0.975, f"page {number} of {total}", fontsize=7, ha="right",
              color="#5f676d", family="DejaVu Sans")
-    fig.text(LEFT, TOP, plain_text(page.heading, 200), fontsize=13,
-             color=PALETTE["ink"], family="DejaVu Sans", va="top")
+    fig.text(LEFT, TOP, plain_text(page.heading, 200), fontsize=13 if len(page.heading) <= 64
+             else 10.5, color=PALETTE["ink"], family="DejaVu Sans", va="top")
     fig.add_artist(_rule(TOP - 0.024))
-    fig.text(LEFT, 0.03, plain_text(content.caution, 400), fontsize=6.2,
-             color="#5f676d", family="DejaVu Sans", wrap=True)
+    fig.text(LEFT, 0.035, textwrap.fill(plain_text(content.caution, 400), width=FOOT_CHARS),
+             fontsize=6.2, color="#5f676d", family="DejaVu Sans", va="top", linespacing=1.3)
 
 
 def _rule(y: float) -> Any:
@@ -396,7 +402,7 @@ def _draw_text_page(fig: Figure, page: PdfPage) -> None:
             y -= LINE * 0.6
             continue
         fig.text(LEFT, y, plain_text(text, 400), va="top", **_FONTS[kind])
-        y -= LINE * (1.35 if kind == "h" else 1.0)
+        y -= LINE * (1.35 if kind in ("h", "t") else 1.0)
 
 
 def _draw_figure_page(fig: Figure, page: PdfPage) -> None:

@@ -42,6 +42,8 @@ class ReplayState:
     run_status : the run's status (the status rule, :func:`solver.status.decide`),
         run_message its message and run_timing its :attr:`SolveResult.timing`: they
         describe the whole run, not iteration k.
+    solver : the solver that wrote the trace.  alpha_source : what α is, in words (rebuilt
+        bitwise from the trace; cvxopt's interior iterate; or the returned answer).
     """
 
     run_id: str | None
@@ -55,6 +57,8 @@ class ReplayState:
     run_status: Status | None = None
     run_message: str = ""
     run_timing: Mapping[str, float | None] | None = None
+    solver: str = ""
+    alpha_source: str = ""
 
     def values(self, X: np.ndarray, *, standardised: bool = False) -> np.ndarray:
         """Decision values f(x) at this iteration for rows of ``X`` (m, d)."""
@@ -157,7 +161,18 @@ def replay(record: RunRecord, iteration: int, *, base: int | None = None) -> Rep
         r = int(np.searchsorted(it, k))
         if r < it.shape[0] and it[r] == k:
             recorded = {c: np.asarray(v)[r].item() for c, v in tr.columns.items()}
+    final = k == int(record.result.iterations)
+    if applied or tr.solver != "qp":
+        source = (f"rebuilt bit for bit from snapshot {start} and {applied} recorded steps"
+                  if applied else f"snapshot {start}, stored bit for bit")
+    elif final and (record.result.extra or {}).get("final_snapshot") == "returned_alpha":
+        source = ("the returned answer: cvxopt's final iterate moved onto its active bounds "
+                  "(equal to solution.npz, so these are the certificate's own figures)")
+    else:
+        source = (f"cvxopt's interior iterate {k} (strictly inside the box; not the returned "
+                  "answer, which is moved onto its active bounds)")
     return ReplayState(run_id=record.run_id, iteration=k, alpha=alpha, base_iteration=start,
                        deltas_applied=applied, certificate=cert, model=model, recorded=recorded,
                        run_status=record.result.status, run_message=record.result.message,
-                       run_timing=record.result.timing)
+                       run_timing=record.result.timing, solver=tr.solver,
+                       alpha_source=source)

@@ -366,9 +366,11 @@ def _trace_checks(record: RunRecord, ck: _Checker) -> None:
                            f"iteration {res.iterations} (found {snaps[0]} … {snaps[-1]})")
         return
     delta_cols = all(c in tr.columns for c in ("i", "j", "alpha_i", "alpha_j"))
-    # SMO holds α exactly as the snapshots do; the QP solver's last snapshot is its final
-    # interior iterate, before the answer is moved onto the bounds, so it is not compared
-    if delta_cols and not np.array_equal(S[-1], alpha):
+    # SMO holds α exactly as the snapshots do, and so does the QP solver's last snapshot
+    # when it says so (extra.final_snapshot "returned_alpha"); older QP runs kept the final
+    # interior iterate there, before the answer was moved onto the bounds
+    returned = (res.extra or {}).get("final_snapshot") == "returned_alpha"
+    if (delta_cols or returned) and not np.array_equal(S[-1], alpha):
         k = int(np.sum(S[-1] != alpha))
         ck.problems.append(f"snapshots.npz: the last snapshot (iteration {snaps[-1]}) differs "
                            f"from the final alpha in solution.npz at {k} point(s)")

@@ -9,8 +9,9 @@ Public entry point :func:`study` (re-exported by :mod:`solver`); see
 from __future__ import annotations
 
 from .grid import Cell, Grid, make_grid, parse_values
+from .report import study_report
 from .runner import SCHEDULER_ENV, StudyOutcome, study, study_folds
 from .table import ONE_SE_RULE
 
 __all__ = ["study", "StudyOutcome", "Grid", "Cell", "make_grid", "parse_values",
-           "study_folds", "SCHEDULER_ENV", "ONE_SE_RULE"]
+           "study_folds", "SCHEDULER_ENV", "ONE_SE_RULE", "study_report"]

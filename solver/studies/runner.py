@@ -52,6 +52,9 @@ class StudyOutcome:
     reused : fits found already stored and verified (not refitted).
     fitted : fits made by this call.  execution : where the fits ran.
     not_converged : rows of fits that did not converge.  table_path : Parquet file or None.
+    stability : with ``stability=True``, the stability evidence of the chosen cell.
+    warm_check : with warm starts, the iterations of warm fits against the same cells
+        started cold (fold 0) and whether their certificates agree; else None.
     """
 
     study_id: str
@@ -65,6 +68,8 @@ class StudyOutcome:
     store: Path
     table_path: Path | None = None
     warnings: tuple[str, ...] = field(default=())
+    warm_check: dict[str, Any] | None = None
+    stability: dict[str, Any] | None = None
 
     @property
     def not_converged(self) -> list[dict[str, Any]]:
@@ -82,6 +87,8 @@ class StudyOutcome:
             "store": str(self.store),
             "table": None if self.table_path is None else str(self.table_path),
             "warnings": list(self.warnings),
+            "warm_start_check": self.warm_check,
+            "stability": self.stability,
             "caution": CAUTION,
         }
 
@@ -169,11 +176,20 @@ def _versions() -> dict[str, str]:
     return out
 
 
-def study(data: Any, **options: Any) -> StudyOutcome:
+def study(
+    data: Any, *, label: str | None = None, kernel: str = "rbf",
+    C: Sequence[float] | str = (0.1, 1.0, 10.0), gamma: Sequence[float] | str | None = None,
+    degree: Sequence[int] | str | None = None, offset: float = 0.0, folds: int = 5,
+    seed: int = 0, kkt_tol: float = 1e-3, iteration_limit: int | None = None,
+    trace: str = "sampled", standardise: bool = True, warm_start: bool = False,
+    stability: bool = False, scheduler: str | None = None, workers: int | None = None,
+    connect_timeout: float = CONNECT_TIMEOUT_S, store: Any = None,
+    table: str | Path | None = None, progress: StudyProgress | None = None,
+) -> StudyOutcome:
     """Cross-validate a grid of C × γ (× degree) and store every fit and the study.
 
-    Keyword options as :func:`_study` (data and solver warnings are kept out of the
-    warnings machinery and recorded in ``outcome.warnings``, as :func:`solver.train` does).
+    Data and solver warnings are kept out of the warnings machinery and recorded in
+    ``outcome.warnings``, as :func:`solver.train` does.
 
     Parameters
     ----------
@@ -186,6 +202,8 @@ def study(data: Any, **options: Any) -> StudyOutcome:
         trace level defaults to ``sampled`` (see :mod:`solver.studies.runner`).
     warm_start : within a fold, γ and degree, start each C from the previous C's α scaled
         into the new box (:mod:`solver.studies.fits`).
+    stability : also refit the chosen cell under row-order permutations, bootstrap
+        resamples and feature noise (:mod:`solver.studies.stability`; in this process).
     scheduler : ``"local"`` (a LocalCluster, default), ``"sequential"`` (this process) or a
         Dask scheduler address; None reads ``$KKTRACE_SCHEDULER``, else ``"local"``.
     workers : worker processes of the LocalCluster (default: one per core).
@@ -203,6 +221,12 @@ def study(data: Any, **options: Any) -> StudyOutcome:
     from ..errors import ConvergenceWarning, DataWarning, StoreWarning
 
     kinds = (ConvergenceWarning, DataWarning, StoreWarning)
+    options = dict(label=label, kernel=kernel, C=C, gamma=gamma, degree=degree, offset=offset,
+                   folds=folds, seed=seed, kkt_tol=kkt_tol, iteration_limit=iteration_limit,
+                   trace=trace, standardise=standardise, warm_start=warm_start,
+                   stability=stability, scheduler=scheduler, workers=workers,
+                   connect_timeout=connect_timeout, store=store, table=table,
+                   progress=progress)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         out = _study(data, **options)
@@ -222,7 +246,7 @@ def _study(
     degree: Sequence[int] | str | None = None, offset: float = 0.0, folds: int = 5,
     seed: int = 0, kkt_tol: float = 1e-3, iteration_limit: int | None = None,
     trace: str = "sampled", standardise: bool = True, warm_start: bool = False,
-    scheduler: str | None = None, workers: int | None = None,
+    stability: bool = False, scheduler: str | None = None, workers: int | None = None,
     connect_timeout: float = CONNECT_TIMEOUT_S, store: Any = None,
     table: str | Path | None = None, progress: StudyProgress | None = None,
 ) -> StudyOutcome:
@@ -278,20 +302,31 @@ def _study(
             jobs.append(FitJob(task=task.name, fold=k, cells=tuple(g), keys=keys,
                                warm=bool(warm_start), options=opts, command=command,
                                extra_data={"study_fold": k}))
+    # warm starts: the same cells started cold on a sample (the first fold of every chain)
+    checks: list[FitJob] = []
+    if warm_start:
+        for (k, _, _), cells in chains.items():
+            if k != 0:
+                continue
+            for c in cells[1:]:
+                checks.append(FitJob(task=task.name, fold=k, cells=(c,),
+                                     keys=(fit_key(base, c, k, False),), warm=False,
+                                     options=opts, command=command,
+                                     extra_data={"study_fold": k}))
     train_fps = [_fingerprint(_subset(ds, np.flatnonzero(fold_of != k)))
                  for k in range(int(folds))]
     known = _existing(run_store, train_fps)
     notes: list[str] = [f"data: {w}" for w in ds.warnings]
     stored: dict[str, tuple[str, RunRecord]] = {}
-    for key in {k for j in jobs for k in j.keys}:
+    for key in {k for j in [*jobs, *checks] for k in j.keys}:
         if key in known:
             try:
                 stored[key] = (known[key], run_store.load(known[key], verify=True))
             except Exception as exc:  # noqa: BLE001 - a damaged earlier fit is fitted again
                 notes.append(f"run {known[key]} was not reused ({exc}); fitted again")
     reused = len(stored)
-    todo = [j for j in jobs if not all(k in stored for k in j.keys)]
-    total = len(grid.cells()) * int(folds)
+    todo = [j for j in [*jobs, *checks] if not all(k in stored for k in j.keys)]
+    total = len(grid.cells()) * int(folds) + len(checks)
     t0 = time.monotonic()
     state = {"done": reused, "fitted": 0}
 
@@ -335,26 +370,109 @@ def _study(
     members = [p[1] for p in pairs]
     cells = aggregate(rows)
     choice = choose(cells, score_name)
+    warm_check = None
+    if checks:
+        warm_check, check_members = _warm_check(checks, jobs, stored, opts)
+        members += check_members
+    stab = None
+    if stability:
+        stab, stab_members = _stability(ds, fold_of, choice, cells, task.name, opts, seed,
+                                        command, run_store)
+        members += stab_members
+        if not stab["permutations_same_optimum"]:
+            notes.append(stab["permutation_verdict"])
     for r in rows:
         if not r["converged"]:
             notes.append(f"fit {r['cell']} fold {r['fold']} (run {r['run_id']}) did not "
                          f"converge: {r['status']}")
     parent = _parent(task.name, grid, ds, fold_of, folds, seed, opts, warm_start, execution,
-                     rows, cells, choice, members, command)
+                     rows, cells, choice, members, command, warm_check, stab)
     sid = run_store.save_parent(parent)
     if out_table is not None:
         write_parquet(rows, cells, out_table)
     return StudyOutcome(study_id=sid, grid=grid, rows=tuple(rows), cells=tuple(cells),
                         choice=choice, reused=reused, fitted=state["fitted"],
                         execution=execution, store=Path(run_store.root),
-                        table_path=out_table, warnings=tuple(notes))
+                        table_path=out_table, warnings=tuple(notes), warm_check=warm_check,
+                        stability=stab)
+
+
+def _stability(ds: Any, fold_of: np.ndarray, choice: Mapping[str, Any],
+               cells: Sequence[Mapping[str, Any]], task: str, opts: Mapping[str, Any],
+               seed: int, command: Any, store: Any) -> tuple[dict[str, Any], list[Member]]:
+    """Refit the chosen cell's variants in this process, store them, summarise."""
+    from .grid import Cell
+    from .stability import fit_variant, stability_jobs, summarise
+
+    c = next(x for x in cells if x["cell"] == choice["one_se"])
+    cell = Cell(c["C"], c["gamma"], c["degree"])
+    fits, ids, members = [], [], []
+    for job in stability_jobs(cell, task, opts, int(seed), command=command):
+        f = fit_variant(StudyData(ds, fold_of), job)
+        rid = store.save(f.record)
+        fits.append(f)
+        ids.append(rid)
+        members.append(Member(run_id=rid, role=f"stability_{job.kind}",
+                              key=(cell.label, f"{job.kind}={job.index}")))
+    return summarise(fits, ids), members
+
+
+#: warm and cold fits of a cell agree when both meet the certificate and their dual
+#: objectives differ by at most this much relative to max(1, |objective|)
+WARM_OBJECTIVE_TOL = 1e-3
+
+
+def _warm_check(checks: Sequence[FitJob], jobs: Sequence[FitJob],
+                stored: Mapping[str, tuple[str, RunRecord]], opts: Mapping[str, Any]
+                ) -> tuple[dict[str, Any], list[Member]]:
+    """Iterations of warm-started fits against the same cells started cold, and whether
+    both give the same certificate (see :data:`WARM_OBJECTIVE_TOL`)."""
+    warm_of = {}
+    for j in jobs:
+        for c, key in zip(j.cells, j.keys, strict=True):
+            warm_of[(j.fold, c)] = stored[key]
+    cells, members = [], []
+    for j in checks:
+        c = j.cells[0]
+        crid, cold = stored[j.keys[0]]
+        wrid, warm = warm_of[(j.fold, c)]
+        members.append(Member(run_id=crid, role="cold_check", key=(c.label, f"fold={j.fold}")))
+        dw = float(warm.result.certificate.dual_objective)
+        dc = float(cold.result.certificate.dual_objective)
+        rel = abs(dw - dc) / max(1.0, abs(dc))
+        hw, hc = warm.attachments["holdout"], cold.attachments["holdout"]
+        cells.append({
+            "cell": c.label, "fold": j.fold, "warm_run_id": wrid, "cold_run_id": crid,
+            "warm_iterations": int(warm.result.iterations),
+            "cold_iterations": int(cold.result.iterations),
+            "both_converged": bool(warm.result.success and cold.result.success),
+            "dual_objective_relative_difference": rel,
+            "accuracy_difference": abs(float(hw["accuracy"]) - float(hc["accuracy"])),
+            "same_certificate": bool(warm.result.success and cold.result.success
+                                     and rel <= WARM_OBJECTIVE_TOL),
+        })
+    w = sum(x["warm_iterations"] for x in cells)
+    cd = sum(x["cold_iterations"] for x in cells)
+    # the first C of every sampled chain starts cold either way: counted in both path totals
+    first = sum(int(stored[j.keys[0]][1].result.iterations) for j in jobs
+                if j.fold == 0 and j.warm)
+    return {"sample": "every cell but the first C of each gamma/degree chain, fold 0",
+            "cells": cells, "warm_iterations": w, "cold_iterations": cd,
+            "ratio_cold_to_warm": cd / w if w else None,
+            "first_cell_iterations": first,
+            "path_ratio_cold_to_warm": (cd + first) / (w + first) if w + first else None,
+            "all_same_certificate": all(x["same_certificate"] for x in cells),
+            "objective_tolerance": WARM_OBJECTIVE_TOL, "kkt_tol": float(opts["kkt_tol"]),
+            "rule": "same certificate: both fits converged (violation <= kkt_tol) and their "
+            "dual objectives differ by <= 1e-3 relative to max(1, |objective|)"}, members
 
 
 def _parent(task: str, grid: Grid, ds: Any, fold_of: np.ndarray, k: int, seed: int,
             opts: Mapping[str, Any], warm: bool, execution: Mapping[str, Any],
             rows: Sequence[Mapping[str, Any]], cells: Sequence[Mapping[str, Any]],
-            choice: Mapping[str, Any], members: Sequence[Member], command: Any
-            ) -> ParentRecord:
+            choice: Mapping[str, Any], members: Sequence[Member], command: Any,
+            warm_check: Mapping[str, Any] | None = None,
+            stab: Mapping[str, Any] | None = None) -> ParentRecord:
     import io
 
     import pyarrow as pa  # noqa: F401 - the table is written with pyarrow
@@ -395,8 +513,11 @@ def _parent(task: str, grid: Grid, ds: Any, fold_of: np.ndarray, k: int, seed: i
             "n_rows": int(ds.X.shape[0])}
     attachments = {
         "folds": {"fold": [int(v) for v in fold_of.tolist()], "k": int(k), "seed": int(seed)},
-        "results": {"fits": list(rows), "cells": list(cells), "choice": dict(choice)},
+        "results": {"fits": list(rows), "cells": list(cells), "choice": dict(choice),
+                    "warm_start_check": None if warm_check is None else dict(warm_check)},
         "results_table": buf.getvalue(),
     }
+    if stab is not None:
+        attachments["stability"] = dict(stab)
     return ParentRecord(task="study", members=tuple(members), info=info, data=data,
                         summary=summary, attachments=attachments, command=command)

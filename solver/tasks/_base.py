@@ -157,6 +157,30 @@ class Task:
         """Plain-data content of the task's own report section (None: no section)."""
         return None
 
+    def run_lines(self, summary: Mapping[str, Any]) -> list[tuple[str, str]]:
+        """(heading, text) lines in the task's words about one run's summary (the task's
+        own facts and held-out facts, as ``train`` prints them); [] adds none."""
+        return []
+
+    def applied_lines(self, facts: Mapping[str, Any] | None) -> list[str]:
+        """Sentences on the held-out facts of applying a model of this task to new rows
+        (``apply``); [] adds none."""
+        return []
+
+    def applied(self, problem: DualProblem, values: np.ndarray,
+                data: Any) -> tuple[np.ndarray, dict[str, Any] | None]:
+        """(labels, held-out facts) of a single-run model of this task applied to rows whose
+        (m,) decision ``values`` are given; ``data`` is the loaded
+        :class:`~solver.data.Dataset` (its split-off column, if any, in ``labels``).  Used by
+        ``apply`` and ``train --holdout`` for tasks without class labels."""
+        raise InvalidInputError(f"task {self.name!r} applies through its class labels")
+
+    def output_columns(self, values: np.ndarray,
+                       labels: np.ndarray) -> dict[str, list[Any]] | None:
+        """Columns (name → values per row) ``apply`` shows and ``apply --out`` writes after
+        ``row``; None keeps the classification layout (decision value, label, ...)."""
+        return None
+
     def export_mapping(self, parent: Any, members: Sequence[Any]) -> Any:
         """The ONNX export subject (:class:`~solver.exchange.subjects.ExportSubject`) of a
         parent record of this task over its member runs (task order).  Tasks whose fits

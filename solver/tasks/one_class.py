@@ -125,6 +125,44 @@ class OneClassTask(Task):
             "flags": flags,
         }
 
+    def run_lines(self, summary: Mapping[str, Any]) -> list[tuple[str, str]]:
+        nuc = summary.get("nu_property") or {}
+        lines = [("task", f"one-class, ν = {summary.get('nu'):g}; outlier share "
+                          f"{_num(nuc.get('outlier_share'), '.4f')} <= ν <= support share "
+                          f"{_num(nuc.get('support_share'), '.4f')}: "
+                          + ("holds" if nuc.get("holds") else "DOES NOT HOLD"))]
+        hold = summary.get("holdout")
+        if hold:
+            lines.append(("held-out", _flag_text(hold)))
+        return lines
+
+    def applied_lines(self, facts: Mapping[str, Any] | None) -> list[str]:
+        if not facts:
+            return []
+        out = [f"flagged {facts['n_flagged']} of {facts['n']} as outliers ({facts['rule']})"]
+        c = facts.get("confusion")
+        if c:
+            out.append(f"known outliers: flagged {c['flagged_known']}, missed {c['missed']}; "
+                       f"others: false alarms {c['flagged_unknown']}, passed {c['passed']}")
+        return out
+
+    def applied(self, problem: Any, values: np.ndarray,
+                data: Any) -> tuple[np.ndarray, dict[str, Any] | None]:
+        """``inlier`` / ``outlier`` per row; share flagged, and the confusion when the rows
+        carry the known-outlier column."""
+        from ..measures import novelty_measures
+        from ..training_kinds import known_outliers
+
+        v = np.asarray(values, np.float64)
+        labels = np.where(v >= 0, "inlier", "outlier").astype(object)
+        return labels, novelty_measures(v, None if data.labels is None
+                                        else known_outliers(data))
+
+    def output_columns(self, values: np.ndarray,
+                       labels: np.ndarray) -> dict[str, list[Any]] | None:
+        v = np.asarray(values, np.float64)
+        return {"score": [float(x) for x in v], "inlier": [int(x >= 0) for x in v]}
+
     def held_out(self, prediction: Any, truth: np.ndarray | None,
                  classes: Sequence[Any]) -> dict[str, Any]:
         """Share flagged and, with known outliers (``truth``, booleans), the confusion."""
@@ -132,6 +170,19 @@ class OneClassTask(Task):
 
         values = np.asarray(getattr(prediction, "values", prediction), np.float64)
         return novelty_measures(values.reshape(-1), truth)
+
+
+def _num(v: Any, spec: str) -> str:
+    return "n/a" if v is None else format(float(v), spec)
+
+
+def _flag_text(f: Mapping[str, Any]) -> str:
+    text = f"flagged {f['n_flagged']} of {f['n']}"
+    conf = f.get("confusion")
+    if conf:
+        text += (f"; known outliers flagged {conf['flagged_known']}, missed "
+                 f"{conf['missed']}, false alarms {conf['flagged_unknown']}")
+    return text
 
 
 TASK = OneClassTask()

@@ -13,7 +13,7 @@ values with the band ±ε, support vectors marked by category, and the training 
 
 from __future__ import annotations
 
-from collections.abc import Sequence
+from collections.abc import Mapping, Sequence
 from typing import Any
 
 import numpy as np
@@ -110,6 +110,34 @@ class RegressionTask(Task):
             "flags": [],
         }
 
+    def run_lines(self, summary: Mapping[str, Any]) -> list[tuple[str, str]]:
+        lines = [("task", f"ε-regression, ε = {summary.get('epsilon'):g}; training RMSE "
+                          f"{_num(summary.get('training_rmse'), '.4g')}, inside or on the tube "
+                          f"{_num(summary.get('training_tube_coverage'), '.3f')}")]
+        hold = summary.get("holdout")
+        if hold:
+            lines.append(("held-out", _held_out_text(hold)))
+        return lines
+
+    def applied_lines(self, facts: Mapping[str, Any] | None) -> list[str]:
+        return [] if not facts else [_held_out_text(facts)]
+
+    def applied(self, problem: Any, values: np.ndarray,
+                data: Any) -> tuple[np.ndarray, dict[str, Any] | None]:
+        """No labels; RMSE, MAE, R², tube coverage when the rows carry the target column."""
+        from ..measures import regression_measures
+        from ..training_kinds import numeric_column
+
+        labels = np.full(np.asarray(values).shape[0], None, dtype=object)
+        if data.labels is None:
+            return labels, None
+        return labels, regression_measures(numeric_column(data, "target"), values,
+                                           epsilon=float(problem.info["epsilon"]))
+
+    def output_columns(self, values: np.ndarray,
+                       labels: np.ndarray) -> dict[str, list[Any]] | None:
+        return {"prediction": [float(v) for v in np.asarray(values, np.float64)]}
+
     def held_out(self, prediction: Any, truth: np.ndarray,
                  classes: Sequence[Any], *, epsilon: float = 0.0) -> dict[str, Any]:
         """RMSE, MAE, R², tube coverage of predicted values against the true targets."""
@@ -117,6 +145,16 @@ class RegressionTask(Task):
 
         values = np.asarray(getattr(prediction, "values", prediction), np.float64)
         return regression_measures(truth, values.reshape(-1), epsilon=epsilon)
+
+
+def _num(v: Any, spec: str) -> str:
+    return "n/a" if v is None else format(float(v), spec)
+
+
+def _held_out_text(f: Mapping[str, Any]) -> str:
+    return (f"RMSE {_num(f.get('rmse'), '.4g')}, MAE {_num(f.get('mae'), '.4g')}, "
+            f"R² {_num(f.get('r2'), '.4f')}, tube coverage (|t − f| ≤ ε = "
+            f"{_num(f.get('epsilon'), 'g')}) {_num(f.get('tube_coverage'), '.3f')}")
 
 
 TASK = RegressionTask()

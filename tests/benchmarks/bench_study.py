@@ -1,0 +1,101 @@
+"""Benchmark of a study on Dask: a 5 × 5 grid (C × γ) × 5 folds at n = 3000 on a
+LocalCluster with 2 workers against 1 worker (ratio; target ≥ 1.7× on 2 cores), and the
+overhead per fit of going through Dask against calling ``solver.train`` in a loop on the
+same training folds with the same options.  All figures are measured in this run.
+
+Data: invented two-class rows (5 features, a curved boundary with label noise), seeded.
+Every configuration writes to its own temporary store; the train loop saves its runs too
+(trace ``sampled``, no explanation table, like the study's fits), so both sides pay for the
+store.  Each side's LocalCluster start-up is included in its time and also reported.
+
+Run: ``python tests/benchmarks/bench_study.py [--n 3000] [--grid 5] [--folds 5] [--sample 10]``
+(``--grid 3 --n 1000`` for a quick look).  On a machine shared with other work the ratio
+is lower than on two idle cores; the load average is printed with the figures.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import tempfile
+import time
+import warnings
+
+import numpy as np
+
+
+def _data(n: int, seed: int = 0):
+    import solver
+
+    rng = np.random.default_rng(seed)
+    X = rng.normal(size=(n, 5))
+    y = np.where(X[:, 0] + 0.5 * X[:, 1] ** 2 + rng.normal(scale=0.8, size=n) > 0.5,
+                 "pass", "fail")
+    return solver.from_arrays(X, y, label_name="qc", source="invented")
+
+
+def main() -> None:
+    import solver
+    from solver.studies import study, study_folds
+
+    ap = argparse.ArgumentParser()
+    ap.add_argument("--n", type=int, default=3000)
+    ap.add_argument("--grid", type=int, default=5)
+    ap.add_argument("--folds", type=int, default=5)
+    ap.add_argument("--sample", type=int, default=10, help="train-loop fits timed")
+    a = ap.parse_args()
+    warnings.simplefilter("ignore")
+    ds = _data(a.n)
+    Cs = list(np.round(np.logspace(-1, 2, a.grid), 4))
+    gs = list(np.round(np.logspace(-2, 0, a.grid), 4))
+    fits = len(Cs) * len(gs) * a.folds
+    kw = {"C": Cs, "gamma": gs, "folds": a.folds, "seed": 0}
+    print(f"study benchmark: n = {a.n}, grid {len(Cs)} x {len(gs)}, {a.folds} folds = {fits} "
+          f"fits; load average before {os.getloadavg()[0]:.1f}")
+
+    # train in a loop (a sample of the same fits: rows outside the fold, same options);
+    # train also audits the kernel of every run, which a study's fits leave out
+    folds = study_folds(ds.labels, a.folds, 0)
+    every = max(1, fits // a.sample)
+    sample = [(k, g, C) for k in range(a.folds) for g in gs for C in Cs][::every]
+    t0 = time.perf_counter()
+    with tempfile.TemporaryDirectory() as st:
+        for k, g, C in sample:
+            rows = np.flatnonzero(folds != k)
+            sub = solver.from_arrays(ds.X[rows], ds.labels[rows], label_name="qc")
+            solver.train(sub, C=float(C), gamma=float(g), trace="sampled", explain=False,
+                         store=st)
+    per_train = (time.perf_counter() - t0) / len(sample)
+    print(f"  train in a loop ({len(sample)} of the fits)  {per_train:.3f} s per fit")
+
+    from solver.studies.execute import connect
+
+    t0 = time.perf_counter()
+    client, cluster, _ = connect("local", 2)
+    client.close()
+    cluster.close()
+    t_start = time.perf_counter() - t0
+    print(f"  LocalCluster start and close (2 workers) {t_start:.1f} s")
+
+    times = {}
+    for where, workers in (("sequential", None), ("local", 1), ("local", 2)):
+        with tempfile.TemporaryDirectory() as st:
+            t0 = time.perf_counter()
+            out = study(ds, scheduler=where, workers=workers, store=st, **kw)
+            times[workers] = time.perf_counter() - t0
+            solve = sum(r["seconds"] for r in out.rows)
+        label = ("in this process    " if where == "sequential"
+                 else f"LocalCluster {workers} worker(s)")
+        print(f"  study {label} {times[workers]:8.1f} s  ({times[workers] / fits:.3f} s per "
+              f"fit; solver seconds summed {solve:.1f}; chosen {out.choice['one_se']})")
+    print(f"  ratio 1 worker / 2 workers     {times[1] / times[2]:8.2f} x  (target >= 1.7)")
+    print(f"  overhead per fit through Dask (1 worker) against the study's fits in this "
+          f"process: {(times[1] - times[None]) / fits * 1000:+.0f} ms (cluster start-up "
+          f"included), {(times[1] - times[None] - t_start) / fits * 1000:+.0f} ms without it")
+    print(f"  study fit in this process against train in a loop: "
+          f"{times[None] / fits:.3f} s vs {per_train:.3f} s per fit")
+    print(f"  load average after {os.getloadavg()[0]:.1f}")
+
+
+if __name__ == "__main__":
+    main()
