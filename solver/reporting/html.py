@@ -379,6 +379,10 @@ def _challenger(doc: _Doc, c: ReportContent) -> None:
         doc.table(comparison_table(comp))
         if comp.get("extra"):
             doc.kv(list(comp["extra"].items()))
+    if c.overlay is not None:
+        doc.figure(c.overlay)
+    elif c.overlay_note:
+        doc.missing(c.overlay_note)
     doc.add("</section>")
 
 

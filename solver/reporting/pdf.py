@@ -360,6 +360,8 @@ def plan_pages(content: ReportContent) -> list[PdfPage]:
         if extra:
             pages.append(PdfPage(heading=f"Decision map and leave-one-out — {r.label}",
                                  figures=tuple(extra)))
+    if content.overlay is not None:
+        pages.append(PdfPage(heading="Convergence side by side", figures=(content.overlay,)))
     pages += _challenger(content)
     return pages
 

@@ -114,6 +114,13 @@ def summary_dict(content: ReportContent) -> dict[str, Any]:
         "comparison": comp,
         "flags": [{"code": f.code, "severity": f.severity, "message": f.message, "run": f.run}
                   for f in c.flags],
+        "overlay": None if c.overlay is None else {
+            "seconds_note": c.overlay.data["seconds_note"],
+            "runs": [{"label": r["label"], "run_id": r["run_id"], "solver": r["solver"],
+                      "status": r["status"], "measure": r["measure"],
+                      "iterations": r["iterations"][-1], "seconds": r["seconds"][-1],
+                      "best": min(r["violation"]), "objective_gap": r["objective_gap"][-1]}
+                     for r in c.overlay.data["runs"]]},
     }
     return to_plain(out, nonfinite_as_none=True, other=str)
 
