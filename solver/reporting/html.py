@@ -14,7 +14,7 @@ from collections.abc import Mapping, Sequence
 from importlib import resources
 from typing import Any
 
-from ..vocabulary import heading
+from ..vocabulary import heading, label
 from .content import AGREE_VERDICTS, LOOSE_VERDICTS, Flag, ReportContent, RunContent, Table
 from .figures import figure_svg
 
@@ -82,7 +82,7 @@ class _Doc:
         self.parts.append(s)
 
     def kv(self, items: Sequence[tuple[str, Any]], cls: str = "kv") -> None:
-        rows = "".join(f"<tr><th scope=\"row\">{esc(k)}</th><td>{_num_html(v)}</td></tr>"
+        rows = "".join(f"<tr><th scope=\"row\">{esc(label(k))}</th><td>{_num_html(v)}</td></tr>"
                        for k, v in items)
         self.add(f'<table class="{cls}"><tbody>{rows}</tbody></table>')
 
