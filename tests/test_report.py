@@ -258,6 +258,7 @@ def test_html_is_self_contained(written: dict) -> None:
     assert not re.search(r"url\((?!#)", low)  # only in-document references (SVG clip paths)
     assert "content-security-policy" in low and "default-src 'none'" in low
     n_fig = sum(len(r.figures) + (r.decision_map is not None) for r in written["content"].runs)
+    n_fig += written["content"].overlay is not None  # the runs side by side
     assert low.count("<svg") == n_fig == low.count("<figcaption>")
     assert CAUTION in html
     ids = re.findall(r'\bid="([^"]+)"', html)

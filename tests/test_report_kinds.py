@@ -191,3 +191,45 @@ def test_classification_reports_have_no_task_section(runs, tmp_path) -> None:
     c = build_report_content([replace(rec)])
     assert c.runs[0].task_section is None and c.runs[0].task_note == ""
     assert summary_dict(c)["runs"][0]["task_section"] is None
+
+
+def _pdf_words(pdf: Path) -> list[tuple[int, float, float, float, str]]:
+    """(page, page width, xMin, xMax, word) of every word, from ``pdftotext -bbox``."""
+    import re
+    import subprocess
+
+    out = subprocess.run(["pdftotext", "-bbox", str(pdf), "-"], capture_output=True,
+                         text=True, check=True).stdout
+    words, page, width = [], 0, 0.0
+    for line in out.splitlines():
+        m = re.search(r'<page width="([0-9.]+)"', line)
+        if m:
+            page, width = page + 1, float(m[1])
+            continue
+        m = re.search(r'<word xMin="([-0-9.]+)" yMin="[-0-9.]+" xMax="([-0-9.]+)"', line)
+        if m:
+            words.append((page, width, float(m[1]), float(m[2]), line))
+    return words
+
+
+@pytest.mark.parametrize("kind", ["reg", "oc"])
+def test_pdf_pages_of_the_section_keep_their_text_inside_the_page(runs, kind, tmp_path) -> None:
+    """The section's text and figure pages: no word outside the text margins (the rule of
+    the report's own PDF layout test)."""
+    import shutil
+    import subprocess
+
+    if shutil.which("pdftotext") is None:
+        pytest.skip("pdftotext (poppler-utils) not installed")
+    from solver.reporting.pdf import LEFT
+
+    c = build_report_content(runs[kind])
+    title = c.runs[0].task_section.title
+    pdf = write_report(runs[kind], tmp_path, formats=("pdf",))["pdf"]
+    pages = subprocess.run(["pdftotext", str(pdf), "-"], capture_output=True, text=True,
+                           check=True).stdout.split("\f")
+    mine = {k for k, text in enumerate(pages, start=1) if title in text}
+    assert len(mine) >= 2  # the text page(s) and the figure page of each run
+    for page, width, x0, x1, line in _pdf_words(pdf):
+        if page in mine:
+            assert x0 >= 0.8 * LEFT * width and x1 <= (1 - 0.8 * LEFT) * width, (page, line)

@@ -231,3 +231,26 @@ def test_overlay_of_smo_runs_and_figure_file(tmp_path, capsys):
     c = _saved(st, other, std2)
     assert main(["overlay", a, c, "--store", str(store)]) == 1
     assert "different problems" in capsys.readouterr().err
+
+
+def test_report_of_two_runs_shows_them_side_by_side():
+    import jsonschema
+
+    from solver.reporting import build_report_content, render_report
+    from solver.reporting.summary import load_schema, summary_dict
+
+    problem, std = _breast_cancer(C=1.0)
+    recs = [RunRecord(problem=problem, result=_solve(problem, selection=sel), data={},
+                      standardiser=std) for sel in ("second_order", "first_order")]
+    content = build_report_content(recs)
+    assert content.overlay is not None and len(content.overlay.data["runs"]) == 2
+    doc = summary_dict(content)
+    jsonschema.validate(doc, load_schema(), cls=jsonschema.Draft202012Validator)
+    assert [r["label"] for r in doc["overlay"]["runs"]] == ["run A", "run B"]
+    assert "estimated" in doc["overlay"]["seconds_note"]
+    assert "Convergence of the runs side by side" in render_report(content, "html").decode()
+    other, _ = _breast_cancer(C=3.0)
+    mixed = build_report_content([recs[0], RunRecord(problem=other, result=_solve(other),
+                                                     data={}, standardiser=std)])
+    assert mixed.overlay is None and "different problems" in mixed.overlay_note
+    assert build_report_content(recs[:1]).overlay is None

@@ -137,6 +137,10 @@ class ReportContent:
     comparison: Mapping[str, Any] | None
     comparison_note: str
     flags: tuple[Flag, ...]
+    #: convergence of the runs side by side (two or more runs of one problem), or None
+    #: with ``overlay_note`` saying why
+    overlay: FigureData | None = None
+    overlay_note: str = ""
 
     @property
     def converged(self) -> bool:

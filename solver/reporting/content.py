@@ -69,6 +69,28 @@ def _diagnosis(rec: RunRecord) -> tuple[Table | None, str, dict[str, str]]:
     return table, d.statement(), dict(d.skipped)
 
 
+def _overlay(runs: Sequence[RunRecord], labels: list[str]) -> tuple[FigureData | None, str]:
+    """The side-by-side convergence figure of two or more runs of one problem."""
+    from ..diagnosis.overlay import overlay_series
+    from ..errors import InvalidInputError
+
+    if len(runs) < 2:
+        return None, ""
+    try:
+        d = overlay_series(runs, labels)
+    except InvalidInputError as exc:
+        return None, f"Side-by-side convergence not shown: {exc}"
+    if len(d["runs"]) < 2:
+        return None, ("Side-by-side convergence not shown: fewer than two of the runs have "
+                      "trace rows.")
+    return FigureData(
+        key="overlay", kind="overlay", title="Convergence of the runs side by side",
+        caption=("Best maximal violation so far (relative gap for interior-point runs) and "
+                 "objective gap (D − D*)/max(1, |D*|), D* the lowest objective rebuilt from "
+                 "the runs' multipliers, against iterations (left) and seconds (right); "
+                 + d["seconds_note"] + "."), data=d), ""
+
+
 def _run_content(rec: RunRecord, label: str, holdout: Mapping | None,
                  evidence: Mapping[str, Any] | None = None) -> RunContent:
     res = rec.result
@@ -92,6 +114,8 @@ def _run_content(rec: RunRecord, label: str, holdout: Mapping | None,
         term["replay_max_difference"] = facts["replay"]["max_abs_difference"]
     term["events"] = facts.get("event_counts", {})
     att = rec.attachments or {}
+    term["phase_seconds"] = {str(k): float(v) for k, v in
+                             (_as_mapping(att.get("phases")) or {}).items()}
     audit = _as_mapping(att.get("audit"))
     sel = None
     tr = res.trace
@@ -218,7 +242,9 @@ def build_report_content(
                  f"(pair run {runs[0].run_id} in full)")
     if title is None:
         title = "Convergence and audit record — " + _title_names(runs, contents)
+    overlay, overlay_note = _overlay(runs, [rc.label for rc in contents])
     return ReportContent(
+        overlay=overlay, overlay_note=overlay_note,
         title=title,
         generated=generated or datetime.now(timezone.utc).strftime("%Y-%m-%dT%H:%M:%SZ"),
         kktrace_version=__version__, caution=CAUTION, notes=notes, runs=tuple(contents),

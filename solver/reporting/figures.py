@@ -485,7 +485,7 @@ def _legend_two(ax: Any) -> None:
 
 
 def _draw_fit_tube(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
-    ax = _axes(fig, top=0.8)
+    ax = _axes(fig, top=0.8, left=0.15)
     t, f = np.asarray(d["actual"], np.float64), np.asarray(d["fitted"], np.float64)
     eps = float(d["epsilon"])
     lo = float(min(t.min(), f.min())) - eps
@@ -505,7 +505,7 @@ def _draw_fit_tube(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
 
 
 def _draw_residuals(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
-    ax = _axes(fig, top=0.8)
+    ax = _axes(fig, top=0.8, left=0.15)
     f, r = np.asarray(d["fitted"], np.float64), np.asarray(d["residual"], np.float64)
     eps = float(d["epsilon"])
     ax.axhspan(-eps, eps, color=_c("tint_neg"), linewidth=0, zorder=1)
@@ -519,7 +519,7 @@ def _draw_residuals(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
 
 
 def _draw_score_distribution(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
-    ax = _axes(fig, top=0.8)
+    ax = _axes(fig, top=0.8, left=0.15)
     g = np.asarray(d["expansion"], np.float64)
     cats = np.asarray(d["category"]).astype(str)
     rho = float(d["rho"])
@@ -539,7 +539,7 @@ def _draw_score_distribution(fig: Figure | SubFigure, d: Mapping[str, Any]) -> N
 
 
 def _draw_nu_shares(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
-    ax = _axes(fig, left=0.3)
+    ax = _axes(fig, left=0.3, right=0.9)
     names = ["outlier share", "ν", "support-vector share"]
     vals = [float(d["outlier_share"]), float(d["nu"]), float(d["support_share"])]
     colours = [_c("rust"), _c("ink"), _c("tide")]
