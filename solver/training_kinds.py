@@ -29,10 +29,9 @@ from ._workflow import (
 )
 from .data import Dataset
 from .errors import InvalidInputError
-from .measures import nu_property, regression_measures
 from .model import Model, Standardiser, model_from_solution
 from .plaindata import to_plain
-from .problem import ONE_CLASS_KIND, REGRESSION_KIND, DualProblem, one_class, regression
+from .problem import ONE_CLASS_KIND, REGRESSION_KIND, DualProblem
 from .run import RunRecord
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -191,10 +190,11 @@ def train_kind(
             known_outliers(hold)
     std = Standardiser.fit(ds.X) if standardise else Standardiser.identity(ds.X.shape[1])
     Z = std.transform(ds.X)
-    if kind == REGRESSION_KIND:
-        problem: DualProblem = regression(Z, t, kernel=kern, C=C, epsilon=epsilon)
-    else:
-        problem = one_class(Z, kernel=kern, nu=nu)
+    from .tasks import get_task
+
+    task_obj = get_task(task)
+    problem: DualProblem = task_obj.fit_problem(Z, t, kernel=kern, C=C,
+                                                options={"epsilon": epsilon, "nu": nu})
     methods = ["qp"] if solver == "qp" else ["smo"]
     skipped = None
     if solver == "both":
@@ -227,12 +227,7 @@ def train_kind(
         if explain:
             att["explanation"] = table.to_columns()
         model = model_from_solution(problem, result, std)
-        if kind == ONE_CLASS_KIND:
-            att["nu_property"] = nu_property(problem, result.alpha, table.columns["score"],
-                                             kkt_tol=result.certificate.kkt_tol)
-        else:
-            att["training_fit"] = regression_measures(t, table.columns["prediction"],
-                                                      epsilon=epsilon)
+        att.update(task_obj.fit_attachments(problem, result, table, t))
         if hold is not None:
             att["holdout"] = _held_out(problem, model, hold, list(ds.feature_names))
             att[HOLDOUT_ROWS] = _holdout_rows(hold, ds.feature_names)
@@ -269,20 +264,10 @@ def train_kind(
 
 def kind_summary(record: RunRecord) -> dict[str, Any]:
     """Task facts added to a run summary: the task, ε or ν, held-out and training facts."""
-    p = record.problem
     from .tasks import task_for_kind
 
-    out: dict[str, Any] = {"task": task_for_kind(p.kind).name}
-    if p.kind == REGRESSION_KIND:
-        out["epsilon"] = p.info.get("epsilon")
-        out["n_rows"] = int(p.X.shape[0])
-        fit = record.attachments.get("training_fit")
-        if fit:
-            out["training_rmse"] = fit["rmse"]
-            out["training_tube_coverage"] = fit["tube_coverage"]
-    else:
-        out["nu"] = p.info.get("nu")
-        out["nu_property"] = record.attachments.get("nu_property")
+    task = task_for_kind(record.problem.kind)
+    out: dict[str, Any] = {"task": task.name, **task.summary_facts(record)}
     hold = record.attachments.get("holdout")
     if hold:
         out["holdout"] = dict(hold)
