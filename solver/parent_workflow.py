@@ -79,6 +79,8 @@ def load_parent_runs(store: Any, run_id: str, *, trusted: Any = None) -> ParentR
         raise IntegrityError(f"run {run_id} failed verification: " + "; ".join(v.problems))
     parent = st.load_parent(run_id, verify=False)
     task = get_task(parent.task)
+    if getattr(task, "not_a_model", None):  # e.g. a study: its members are not one model
+        raise InvalidInputError(str(task.not_a_model))
     prim, mems, chal = [], [], {}
     for m in parent.members:
         rec = st.load(m.run_id, verify=False)
@@ -331,7 +333,8 @@ _VERDICT_ORDER = ("agree", "agree_within_tolerances", "disagree")
 def compare_parents(a: ParentRuns, b: ParentRuns, *, holdout_X: np.ndarray | None = None,
                     tolerances: Any = None, allow_mismatch: bool = False) -> ParentComparison:
     """Every pair of ``a`` against the same pair of ``b`` (:func:`solver.agreement.compare_runs`,
-    its problem-mismatch check included: weights, C, kernel, rows)."""
+    its problem-mismatch check included: weights, C, kernel, rows).  Without ``holdout_X``
+    each pair uses the held-out rows stored with it (attachment ``holdout_rows``), if any."""
     from .agreement import compare_runs
     from .errors import ProblemMismatchError
 
@@ -342,10 +345,14 @@ def compare_parents(a: ParentRuns, b: ParentRuns, *, holdout_X: np.ndarray | Non
         raise ProblemMismatchError(
             f"the parents have different pairs: {', '.join(map(member_name, a.keys))} vs "
             f"{', '.join(map(member_name, b.keys))}")
+    from ._workflow import _stored_holdout
+
     out = []
     for key, ra, rb in zip(a.keys, a.primary, b.primary, strict=True):
+        # without held-out data given, each pair reuses the held-out rows stored with it
+        hX = holdout_X if holdout_X is not None else _stored_holdout(ra, rb)[0]
         try:
-            c = compare_runs(ra, rb, holdout_X=holdout_X, tolerances=tolerances,
+            c = compare_runs(ra, rb, holdout_X=hX, tolerances=tolerances,
                              allow_mismatch=allow_mismatch)
         except ProblemMismatchError as exc:
             raise ProblemMismatchError(f"pair {member_name(key)}: {exc}") from None

@@ -249,3 +249,12 @@ def test_verify_of_the_parent_names_the_damaged_or_missing_pair(model, tmp_path)
     assert f"member pair 'pass' vs 'scrap' (run {target['run_id']}): solution.npz" in proc.stdout
     assert (f"member pair 'rework' vs 'scrap' (run {gone['run_id']}): run folder is missing"
             in proc.stdout)
+
+
+def test_compare_parents_reuses_each_pairs_stored_held_out_rows(model) -> None:
+    """Issue 13 item 4: without --holdout every pair compares on the held-out rows stored
+    with it, so compare shows the held-out measures the comparison stored at training has."""
+    d = ok_json(kk("compare", model["pid"], model["pid"], "--store", model["store"], "--json"))
+    for pair in d["pairs"]:
+        measures = pair["comparison"]["measures"] if "comparison" in pair else pair["measures"]
+        assert {"decision_max_diff_holdout", "prediction_agreement_holdout"} <= set(measures)

@@ -392,3 +392,41 @@ def test_a_permutation_that_moves_the_optimum_is_flagged():
     s = summarise([base, moved], ["r0", "r2"])
     assert not s["permutations_same_optimum"]
     assert s["permutation_verdict"].startswith("FLAG") and "r2" in s["permutation_verdict"]
+
+
+def test_an_interrupted_study_resumes_without_duplicates(tmp_path):
+    """Ctrl-C (here: KeyboardInterrupt from the progress callback) after three fits: those
+    three runs are complete and verify, no study record exists; the re-run reuses them,
+    fits the rest and stores each fit once."""
+    ds = _demo(120)
+    kw = {"C": [0.5, 5.0], "gamma": [0.2, 1.0], "folds": 2, "seed": 0,
+          "scheduler": "sequential", "store": tmp_path}
+
+    def stop(done, *_):
+        if done == 3:
+            raise KeyboardInterrupt
+
+    with pytest.raises(KeyboardInterrupt):
+        study(ds, progress=stop, **kw)
+    st = solver.RunStore(tmp_path)
+    first = st.run_ids()
+    assert len(first) == 3 and not any(st.is_parent(r) for r in first)
+    assert all(st.verify(r).ok for r in first)
+    out = study(ds, **kw)
+    assert out.reused == 3 and out.fitted == 5
+    assert set(first) <= {r["run_id"] for r in out.rows}
+    assert len(st.run_ids()) == 8 + 1 and not st.temp_folders()
+
+
+def test_other_commands_treat_a_study_as_a_study(small_study, tmp_path):
+    _, store, out = small_study
+    # report writes the study report; verify names a parent record; explain refuses
+    paths = solver.report(out.study_id, store=store, out_dir=tmp_path / "rep")
+    assert sorted(p.name for p in paths.values()) == ["study.html", "study.json", "study.pdf"]
+    r = kk("verify", out.study_id, "--store", store)
+    assert r.returncode == 0 and "a parent record and every member run" in r.stdout
+    for args in (["explain", out.study_id], ["apply", out.study_id, TRAIN_CSV]):
+        r = kk(*args, "--store", store)
+        assert r.returncode == 1 and "not a model" in r.stderr, r.stderr
+    r = kk("runs", "--store", store)
+    assert "member runs below" in r.stdout and "  fit C=0.3 gamma=0.1 vs fold=0" in r.stdout

@@ -328,7 +328,7 @@ def _study(
     todo = [j for j in [*jobs, *checks] if not all(k in stored for k in j.keys)]
     total = len(grid.cells()) * int(folds) + len(checks)
     t0 = time.monotonic()
-    state = {"done": reused, "fitted": 0}
+    state: dict[str, Any] = {"done": reused, "fitted": 0}
 
     def on_done(_: int, outputs: list[Any]) -> None:
         for o in outputs:
@@ -339,8 +339,11 @@ def _study(
             state["done"] += 1
             state["fitted"] += 1
         if progress is not None:
-            el = time.monotonic() - t0
-            rate = el / state["fitted"] if state["fitted"] else None
+            now = time.monotonic()
+            el = now - t0
+            state.setdefault("first", now)  # the rate is measured after cluster start-up
+            rate = ((now - state["first"]) / (state["fitted"] - 1)
+                    if state["fitted"] > 1 else None)
             left = None if rate is None else rate * (total - state["done"])
             fails = sum(not r.result.success for _, r in stored.values())
             progress(state["done"], total, fails, el, left)
