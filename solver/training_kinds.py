@@ -194,11 +194,11 @@ def train_kind(
             known_outliers(hold)
     from .tasks import get_task
 
-    task_obj = get_task(task)
+    fit_task = get_task(task)
     with clock.phase("standardise"):
         std = Standardiser.fit(ds.X) if standardise else Standardiser.identity(ds.X.shape[1])
         Z = std.transform(ds.X)
-        problem: DualProblem = task_obj.fit_problem(Z, t, kernel=kern, C=C,
+        problem: DualProblem = fit_task.fit_problem(Z, t, kernel=kern, C=C,
                                                     options={"epsilon": epsilon, "nu": nu})
     methods = ["qp"] if solver == "qp" else ["smo"]
     skipped = None
@@ -237,7 +237,7 @@ def train_kind(
         if explain:
             att["explanation"] = table.to_columns()
         model = model_from_solution(problem, result, std)
-        att.update(task_obj.fit_attachments(problem, result, table, t))
+        att.update(fit_task.fit_attachments(problem, result, table, t))
         if hold is not None:
             with own.phase("holdout"):
                 att["holdout"] = _held_out(problem, model, hold, list(ds.feature_names))
