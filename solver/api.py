@@ -709,6 +709,9 @@ def report(
     ids = [run_ids] if isinstance(run_ids, (str, RunRecord)) else list(run_ids)
     if not 1 <= len(ids) <= 2:
         raise InvalidInputError(f"a report covers one run or two runs, got {len(ids)}")
+    own = _own_report(st, ids[0]) if len(ids) == 1 else None
+    if own is not None:  # a parent whose task writes its own report (a study)
+        return own(st, ids[0], out_dir, tuple(formats))
     pr = _parent_runs(ids[0], st) if len(ids) == 1 else None
     if pr is not None:
         return _parent_report(st, pr, out_dir, formats, notes, stem, pair)
@@ -729,6 +732,17 @@ def report(
                          stem=stem, evidence=[ev for _, ev in loaded])
     _log_report(st, recs, paths)
     return paths
+
+
+def _own_report(st: Any, run: Any) -> Any:
+    """The ``write_report`` of the task of parent ``run`` when it has one, else None."""
+    if not isinstance(run, str) or not run or not st.is_parent(run):
+        return None
+    from .store.format import parse_json
+    from .tasks import task_of_manifest
+
+    manifest = parse_json((st.run_dir(run) / "manifest.json").read_bytes(), "manifest.json")
+    return getattr(task_of_manifest(manifest), "write_report", None)
 
 
 def _load_with_evidence(st: Any, run: str | RunRecord) -> tuple[RunRecord, dict[str, Any] | None]:

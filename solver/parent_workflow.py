@@ -79,6 +79,8 @@ def load_parent_runs(store: Any, run_id: str, *, trusted: Any = None) -> ParentR
         raise IntegrityError(f"run {run_id} failed verification: " + "; ".join(v.problems))
     parent = st.load_parent(run_id, verify=False)
     task = get_task(parent.task)
+    if getattr(task, "not_a_model", None):  # e.g. a study: its members are not one model
+        raise InvalidInputError(str(task.not_a_model))
     prim, mems, chal = [], [], {}
     for m in parent.members:
         rec = st.load(m.run_id, verify=False)

@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import math
 import shlex
+import time
 import warnings
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field, replace
@@ -31,6 +32,7 @@ from .data import Dataset
 from .errors import ConvergenceWarning, DataWarning, InvalidInputError, StoreWarning
 from .kernels import make_kernel
 from .model import Model, Standardiser, model_from_solution
+from .phases import PhaseClock
 from .plaindata import to_plain
 from .problem import DualProblem
 from .result import TRACE_LEVELS, SolveResult
@@ -223,6 +225,7 @@ def _run_summary(record: RunRecord, run_id: str, run_dir: Path) -> dict[str, Any
         "bias": float(r.bias),
         "seconds": float(r.seconds),
         **r.timing,
+        "phase_seconds": dict(record.attachments.get("phases") or {}),
         "run_dir": str(run_dir),
         "n_rows": int(record.problem.n),
         "kernel": record.problem.kernel.describe(),
@@ -501,6 +504,7 @@ class _MemberJob:
     probabilities: bool = False
     calibration_folds: int = 5
     calibration_seed: int = 0
+    phases: Mapping[str, float] = field(default_factory=dict)
 
 
 @dataclass(frozen=True, eq=False)
@@ -518,8 +522,11 @@ def _fit_member(job: _MemberJob, progress: ProgressFn | None = None) -> _MemberF
     task = get_task(job.task)
     ds = job.data
     kern = _make_kernel(*job.kernel)
-    std = Standardiser.fit(ds.X) if job.standardise else Standardiser.identity(ds.X.shape[1])
-    problem = task.build_problem(std.transform(ds.X), job.member, kernel=kern, C=job.C)
+    clock = PhaseClock(job.phases)
+    with clock.phase("standardise"):
+        std = (Standardiser.fit(ds.X) if job.standardise
+               else Standardiser.identity(ds.X.shape[1]))
+        problem = task.build_problem(std.transform(ds.X), job.member, kernel=kern, C=job.C)
     methods = ["qp"] if job.solver == "qp" else ["smo"]
     skipped = None
     if job.solver == "both":
@@ -531,7 +538,8 @@ def _fit_member(job: _MemberJob, progress: ProgressFn | None = None) -> _MemberF
                 f"QP challenger skipped: {problem.n} training points exceed its size limit of "
                 f"{limit}"
             )
-    audit = _audit(problem, ds.feature_names)
+    with clock.phase("audit"):
+        audit = _audit(problem, ds.feature_names)
     data_facts = {
         "fingerprint": _fingerprint(ds),
         "feature_names": list(ds.feature_names),
@@ -545,21 +553,27 @@ def _fit_member(job: _MemberJob, progress: ProgressFn | None = None) -> _MemberF
     for method in methods:
         # with "both" the iteration limit is SMO's; the challenger keeps cvxopt's own
         limit = job.iteration_limit if (method == "smo" or job.solver == "qp") else None
-        result = _solve(method, problem, kkt_tol=job.kkt_tol, iteration_limit=limit,
-                        trace=job.trace, progress=progress)
+        own = clock.copy()
+        with own.phase("solve"):
+            result = _solve(method, problem, kkt_tol=job.kkt_tol, iteration_limit=limit,
+                            trace=job.trace, progress=progress)
         attachments: dict[str, Any] = {"audit": audit, "command": job.command}
         if job.explain:
-            attachments["explanation"] = _explanation(problem, result)
+            with own.phase("explanation"):
+                attachments["explanation"] = _explanation(problem, result)
         model = model_from_solution(problem, result, std)
         if job.hold is not None and job.hold.X.shape[0] > 0:
-            attachments["holdout"] = _holdout_facts(model, job.hold, ds.feature_names)
+            with own.phase("holdout"):
+                attachments["holdout"] = _holdout_facts(model, job.hold, ds.feature_names)
             attachments[HOLDOUT_ROWS] = _holdout_rows(job.hold, ds.feature_names)
         if method == "smo" and skipped:
             attachments["challenger"] = {"ran": False, "reason": skipped}
         if job.probabilities and not records:
-            attachments["calibration"] = _calibration(
-                problem, method, job.kkt_tol, limit, job.calibration_folds,
-                job.calibration_seed, model, job.hold, ds.feature_names)
+            with own.phase("calibration"):
+                attachments["calibration"] = _calibration(
+                    problem, method, job.kkt_tol, limit, job.calibration_folds,
+                    job.calibration_seed, model, job.hold, ds.feature_names)
+        attachments["phases"] = own.to_dict()
         records.append(RunRecord(problem=problem, result=result, data=data_facts,
                                  standardiser=std, attachments=attachments))
     comparison = None
@@ -624,7 +638,9 @@ def _train(
     from .tasks import classification_task
     from .tasks._labels import class_order
 
-    ds0 = _load_data(data, label, "training data")
+    loading = PhaseClock()
+    with loading.phase("load"):
+        ds0 = _load_data(data, label, "training data")
     if ds0.labels is None:
         raise InvalidInputError("training data have no label column")
     ds, weights = _weights(ds0, class_weight, weight_column)
@@ -637,7 +653,9 @@ def _train(
         _check_calibration_folds(ds.labels, calibration_folds, calibration_seed)
     hold = None
     if holdout is not None:
-        hold = _drop_column(_load_data(holdout, ds.label_name, "held-out data"), weight_column)
+        with loading.phase("load"):
+            hold = _drop_column(_load_data(holdout, ds.label_name, "held-out data"),
+                                weight_column)
         if hold.labels is None:
             raise InvalidInputError("held-out data need the label column to be scored")
         _align(hold, ds.feature_names, "held-out data")  # fail before solving
@@ -675,7 +693,7 @@ def _train(
             iteration_limit=iteration_limit, solver=solver, standardise=standardise,
             trace=trace, explain=explain, command=command, extra_data=extra,
             probabilities=bool(probabilities), calibration_folds=int(calibration_folds),
-            calibration_seed=int(calibration_seed)))
+            calibration_seed=int(calibration_seed), phases=loading.to_dict()))
     if len(jobs) == 1:
         fits, execution = [_fit_member(jobs[0], progress)], None
     else:
@@ -689,12 +707,15 @@ def _train(
     for job, fit in zip(jobs, fits, strict=True):
         first = None
         for k, rec in enumerate(fit.records):
+            t_save = time.perf_counter()
             rid = store.save(rec, parent=first)
+            t_save = time.perf_counter() - t_save
             saved.append(replace(rec, run_id=rid, parent_id=first))
             ids.append(rid)
             role = job.member.role if k == 0 else f"{job.member.role}_challenger"
             member_refs.append(Member(run_id=rid, role=role, key=job.member.key))
             summ = _run_summary(saved[-1], rid, store.run_dir(rid))
+            summ["phase_seconds"] = {**summ.get("phase_seconds", {}), "save": t_save}
             if task.parent_record:
                 summ["role"], summ["key"] = role, list(job.member.key or ())
             if k == 1 and fit.comparison is not None:

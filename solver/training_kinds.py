@@ -29,10 +29,10 @@ from ._workflow import (
 )
 from .data import Dataset
 from .errors import InvalidInputError
-from .measures import nu_property, regression_measures
 from .model import Model, Standardiser, model_from_solution
+from .phases import PhaseClock
 from .plaindata import to_plain
-from .problem import ONE_CLASS_KIND, REGRESSION_KIND, DualProblem, one_class, regression
+from .problem import ONE_CLASS_KIND, REGRESSION_KIND, DualProblem
 from .run import RunRecord
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -177,11 +177,14 @@ def train_kind(
     from .explanation import kind_point_table
 
     kind = kind_of_task(task)
-    ds, t = _load_training(data, task, target, label, outlier_column)
+    clock = PhaseClock()
+    with clock.phase("load"):
+        ds, t = _load_training(data, task, target, label, outlier_column)
     hold = None
     if holdout is not None:
         col = ds.label_name if kind == REGRESSION_KIND else outlier_column
-        hold = _load_data(holdout, col, "held-out data")
+        with clock.phase("load"):
+            hold = _load_data(holdout, col, "held-out data")
         if kind == REGRESSION_KIND and hold.labels is None:
             raise InvalidInputError("held-out data need the target column to be scored")
         _align(hold, ds.feature_names, "held-out data")  # fail before solving
@@ -189,12 +192,14 @@ def train_kind(
             numeric_column(hold, "target")
         elif hold.labels is not None:
             known_outliers(hold)
-    std = Standardiser.fit(ds.X) if standardise else Standardiser.identity(ds.X.shape[1])
-    Z = std.transform(ds.X)
-    if kind == REGRESSION_KIND:
-        problem: DualProblem = regression(Z, t, kernel=kern, C=C, epsilon=epsilon)
-    else:
-        problem = one_class(Z, kernel=kern, nu=nu)
+    from .tasks import get_task
+
+    fit_task = get_task(task)
+    with clock.phase("standardise"):
+        std = Standardiser.fit(ds.X) if standardise else Standardiser.identity(ds.X.shape[1])
+        Z = std.transform(ds.X)
+        problem: DualProblem = fit_task.fit_problem(Z, t, kernel=kern, C=C,
+                                                    options={"epsilon": epsilon, "nu": nu})
     methods = ["qp"] if solver == "qp" else ["smo"]
     skipped = None
     if solver == "both":
@@ -204,7 +209,8 @@ def train_kind(
         else:
             skipped = (f"QP challenger skipped: {problem.n} dual variables exceed its size "
                        f"limit of {limit}")
-    audit = _t._audit(problem, ds.feature_names)
+    with clock.phase("audit"):
+        audit = _t._audit(problem, ds.feature_names)
     data_facts = {
         "fingerprint": _fingerprint(ds), "feature_names": list(ds.feature_names),
         "label_name": None, "target_name": target if kind == REGRESSION_KIND else None,
@@ -220,24 +226,25 @@ def train_kind(
     records: list[RunRecord] = []
     for method in methods:
         lim = iteration_limit if (method == "smo" or solver == "qp") else None
-        result = _t._solve(method, problem, kkt_tol=kkt_tol, iteration_limit=lim, trace=trace,
-                           progress=progress, interior_point_tol=_interior_point_tol(kkt_tol))
+        own = clock.copy()
+        with own.phase("solve"):
+            result = _t._solve(method, problem, kkt_tol=kkt_tol, iteration_limit=lim,
+                               trace=trace, progress=progress,
+                               interior_point_tol=_interior_point_tol(kkt_tol))
         att: dict[str, Any] = {"audit": audit, "command": command}
-        table = kind_point_table(problem, result)
+        with own.phase("explanation"):
+            table = kind_point_table(problem, result)
         if explain:
             att["explanation"] = table.to_columns()
         model = model_from_solution(problem, result, std)
-        if kind == ONE_CLASS_KIND:
-            att["nu_property"] = nu_property(problem, result.alpha, table.columns["score"],
-                                             kkt_tol=result.certificate.kkt_tol)
-        else:
-            att["training_fit"] = regression_measures(t, table.columns["prediction"],
-                                                      epsilon=epsilon)
+        att.update(fit_task.fit_attachments(problem, result, table, t))
         if hold is not None:
-            att["holdout"] = _held_out(problem, model, hold, list(ds.feature_names))
+            with own.phase("holdout"):
+                att["holdout"] = _held_out(problem, model, hold, list(ds.feature_names))
             att[HOLDOUT_ROWS] = _holdout_rows(hold, ds.feature_names)
         if method == "smo" and skipped:
             att["challenger"] = {"ran": False, "reason": skipped}
+        att["phases"] = own.to_dict()
         records.append(RunRecord(problem=problem, result=result, data=data_facts,
                                  standardiser=std, attachments=att))
     comparison = None
@@ -269,20 +276,10 @@ def train_kind(
 
 def kind_summary(record: RunRecord) -> dict[str, Any]:
     """Task facts added to a run summary: the task, ε or ν, held-out and training facts."""
-    p = record.problem
     from .tasks import task_for_kind
 
-    out: dict[str, Any] = {"task": task_for_kind(p.kind).name}
-    if p.kind == REGRESSION_KIND:
-        out["epsilon"] = p.info.get("epsilon")
-        out["n_rows"] = int(p.X.shape[0])
-        fit = record.attachments.get("training_fit")
-        if fit:
-            out["training_rmse"] = fit["rmse"]
-            out["training_tube_coverage"] = fit["tube_coverage"]
-    else:
-        out["nu"] = p.info.get("nu")
-        out["nu_property"] = record.attachments.get("nu_property")
+    task = task_for_kind(record.problem.kind)
+    out: dict[str, Any] = {"task": task.name, **task.summary_facts(record)}
     hold = record.attachments.get("holdout")
     if hold:
         out["holdout"] = dict(hold)

@@ -32,7 +32,7 @@ from typing import Any
 
 __all__ = ["CAUTION", "Term", "TERMS", "caution_line", "term", "trace_term", "timing_text",
            "POINT_COLUMNS", "LEAVE_ONE_OUT", "FIELDS", "label", "meaning", "labels", "heading",
-           "not_traced", "rank_points", "RANKING_RULE", "TRACE_COLUMNS"]
+           "json_key", "not_traced", "rank_points", "RANKING_RULE", "TRACE_COLUMNS"]
 
 #: The standing caution, printed by every output that presents evidence (report, demo,
 #: export, challenge) in these words.
@@ -252,11 +252,75 @@ FIELDS: dict[str, Term] = _terms(
     ("min_abs_value", "smallest absolute value", "smallest |value|"),
     ("manifest_sha256", "manifest SHA-256", "SHA-256 of the run's manifest.json"),
     ("run_id", "run id", "the run's folder name in the store"),
+    # training data facts
+    ("fingerprint", "data fingerprint", "SHA-256 over the training values and labels"),
+    ("source", "data source", "the file the training data came from"),
+    ("feature_names", "feature names", "the feature columns, in order"),
+    ("label_name", "label column", "the column holding the labels"),
+    # kernel audit (solver.audit)
+    ("kernel", "kernel", "the kernel and its parameters"),
+    ("sample_size", "rows in the checked sample", "rows the Gram matrix was checked on"),
+    ("sampled", "checked on a sample", "yes when the check used a seeded sample of rows"),
+    ("seed", "sample seed", "seed of the sample of rows"),
+    ("symmetry_error", "largest asymmetry", "max |K − Kᵀ| on the checked rows"),
+    ("symmetric", "symmetric", "largest asymmetry within the PSD tolerance"),
+    ("min_eigenvalue", "smallest eigenvalue", "smallest eigenvalue of the checked Gram matrix"),
+    ("max_eigenvalue", "largest eigenvalue", "largest eigenvalue of the checked Gram matrix"),
+    ("psd_tol", "PSD tolerance", "PSD when the smallest eigenvalue ≥ −(this tolerance)"),
+    ("psd", "positive semi-definite", "smallest eigenvalue ≥ −PSD tolerance"),
+    ("psd_scope", "PSD check covers", "all rows or a sample of rows"),
+    ("n_negative", "eigenvalues below −tolerance", "count of eigenvalues < −PSD tolerance"),
+    ("declared_psd", "kernel declared PSD", "what the kernel promises by construction"),
+    ("diag_min", "smallest K(x, x)", "smallest diagonal entry"),
+    ("diag_max", "largest K(x, x)", "largest diagonal entry"),
+    ("diag_error", "largest diagonal error", "largest |K(x, x) − expected value|"),
+    ("condition", "condition number", "largest / smallest eigenvalue (∞ when singular)"),
+    ("numerically_singular", "numerically singular", "smallest eigenvalue within tolerance of 0"),
+    ("feature_map_terms", "explicit feature-map terms", "monomials of the polynomial map"),
+    ("feature_map_weights", "feature-map weights", "weights of the explicit feature map"),
+    ("feature_map_error", "feature-map largest error", "largest |φ(x)·φ(z) − K(x, z)|"),
+    ("feature_map_matches", "feature map reproduces K", "feature-map error within tolerance"),
+    ("notes", "notes", "remarks of the check"),
+    # environment recorded with a run
+    ("python", "Python version", "the Python version"),
+    ("packages", "package versions", "versions of the numerical packages"),
+    ("platform", "platform", "operating system"),
+    ("machine", "machine", "processor architecture"),
+    ("cpu_model", "CPU model", "processor model"),
+    ("cpu_count", "CPU count", "logical processors"),
+    ("byte_order", "byte order", "endianness"),
+    ("blas", "BLAS", "the linear-algebra library numpy uses"),
+    ("numba_disable_jit", "numba JIT disabled", "NUMBA_DISABLE_JIT was set"),
+    # solver options
+    ("iteration_limit", "iteration limit", "largest number of iterations"),
+    ("time_limit", "time limit (s)", "wall-clock limit of the solve"),
+    ("selection", "working-set selection", "how SMO picks its pair"),
+    ("shrinking", "shrinking", "variables set aside while they stay at a bound"),
+    ("trace", "trace level", "what the trace records"),
+    ("sample_every", "trace row every (iterations)", "sampling of a sampled trace"),
+    ("snapshot_every", "α snapshot every (iterations)", "snapshots of α for replay"),
+    ("kernel_memory_mb", "kernel memory (MB)", "memory for a stored kernel matrix"),
+    ("kernel_dtype", "kernel storage type", "floating-point type of stored kernel values"),
+    ("row_cache_mb", "row cache (MB)", "memory of the kernel row cache"),
+    ("warm_start", "warm start", "the run started from given multipliers"),
+    ("callback_every", "callback every (iterations)", "how often a callback was called"),
+    ("stall_window", "stall window (iterations)", "iterations without progress before stalled"),
+    ("curvature_floor", "curvature floor", "smallest curvature a step divides by"),
+    ("threads", "threads", "threads of the SMO loop"),
+    ("size_limit", "size limit (points)", "largest problem the interior-point solver takes"),
+    ("force", "size limit overridden", "the size limit was overridden"),
+    ("kkt", "Newton-system solver", "how each interior-point step's KKT system is solved"),
+    ("alpha0", "starting α", "given starting multipliers"),
+    ("cvxopt_options", "cvxopt options", "options handed to cvxopt"),
+    ("tighten", "tighten", "extra interior-point steps after the stopping test"),
+    ("sample_weight", "per-row weights", "per-row weights of the bounds"),
+    ("class_counts", "points per class", "training points per label"),
 )
 
-#: Every displayed key: the shared quantities (:data:`TERMS`) first, then the per-point
-#: columns, the leave-one-out figures and the other report fields.
-_ALL: dict[str, Term] = {**FIELDS, **LEAVE_ONE_OUT, **POINT_COLUMNS, **TERMS}
+#: Every key shown without a section: the shared quantities (:data:`TERMS`) first, then
+#: the per-point columns and the other report fields (leave-one-out keys such as
+#: ``iterations`` mean something else there, so they are looked up with their section).
+_ALL: dict[str, Term] = {**FIELDS, **POINT_COLUMNS, **TERMS}
 
 
 def label(key: str, section: Mapping[str, Term] | None = None) -> str:
@@ -274,6 +338,15 @@ def heading(key: str) -> str:
     labels) unchanged."""
     found = POINT_COLUMNS.get(key) or TERMS.get(key)
     return found.label if found is not None else str(key)
+
+
+def json_key(name: str) -> str:
+    """One key style for JSON: a label or key as lower-case words joined by ``_``
+    (``"solve time (s)"`` → ``"solve_time_s"``); keys already in that style are kept."""
+    import re
+
+    key = re.sub(r"[^0-9a-zA-Z]+", "_", str(name)).strip("_")
+    return key if key.isidentifier() and key == str(name) else key.lower() or "_"
 
 
 def meaning(key: str, section: Mapping[str, Term] | None = None) -> str:

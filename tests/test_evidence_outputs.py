@@ -121,8 +121,8 @@ def test_report_html_pdf_json_show_solve_and_compile_apart(tour, tmp_path):
         t = run["termination"]
         assert t["solve_seconds"] is not None and t["compile_seconds"] is not None
         assert t["total_seconds"] == t["seconds"]
-        assert run["identity"]["solve time (s)"] == t["solve_seconds"]
-        assert run["identity"]["compile time (s)"] == t["compile_seconds"]
+        assert run["identity"]["solve_time_s"] == t["solve_seconds"]
+        assert run["identity"]["compile_time_s"] == t["compile_seconds"]
     html = (out / "report.html").read_text()
     assert html.count("compile time (s)") >= 2 and html.count("solve time (s)") >= 2
     from pypdf import PdfReader

@@ -220,9 +220,9 @@ def test_report_states_decision_rule_scaling_and_label_mapping(work: dict,
     neg, pos = rec.problem.labels
     run = written["summary"]["runs"][0]
     rule = run["decision_rule"]
-    assert rule["label at f = 0"].startswith(repr(neg))
-    assert repr(pos) in rule["label mapping"] and repr(neg) in rule["label mapping"]
-    assert "f(x) > 0" in rule["sign convention"]
+    assert rule["label_at_f_0"].startswith(repr(neg))
+    assert repr(pos) in rule["label_mapping"] and repr(neg) in rule["label_mapping"]
+    assert "f(x) > 0" in rule["sign_convention"]
     std = run["standardiser"]
     assert std["features"] == ["coating_um", "hardness_n"]
     assert std["centre"] == rec.standardiser.centre.tolist()
@@ -346,3 +346,34 @@ def test_pdf_pages_keep_their_text_inside_the_page(work: dict, written: dict) ->
     text = " ".join(" ".join(pages).split())
     for row in qp["rows"]:
         assert row[qp["columns"].index("category")] in text
+
+
+def test_no_raw_key_is_shown_as_a_label_and_json_keys_have_one_style(written: dict) -> None:
+    """Item 9: name / value rows show labels (no n_rows, psd_scope, python_implementation,
+    …); the JSON's keys are all of one style (no spaces); the PSD tolerance has one sign."""
+    import re
+
+    heads = re.findall(r'<th scope="row">(.*?)</th>', written["html"])
+    raw = sorted({h for h in heads if re.fullmatch(r"[a-z][a-z0-9]*(_[a-z0-9]+)+", h)})
+    assert raw == [] or raw == ["kkt_tol"], raw  # kkt_tol: the option's own name (--kkt-tol)
+    pdf = _pdf_text(written["paths"]["pdf"], "-layout")
+    for key in ("n_rows", "psd_scope", "python_implementation", "cpu_model", "psd_tol",
+                "iteration_limit", "row_cache_mb", "feature_map_terms"):
+        assert not re.search(rf"^{key}\b", pdf, re.M), key
+        assert key not in heads
+
+    def keys(obj: object, path: str = "") -> list[str]:
+        if isinstance(obj, dict):
+            out = []
+            for k, v in obj.items():
+                if path.endswith((".categories", ".class_counts", ".packages")):
+                    continue  # values' own names (category codes, labels, package names)
+                out += [f"{path}.{k}"] + keys(v, f"{path}.{k}")
+            return out
+        if isinstance(obj, list):
+            return [k for v in obj for k in keys(v, path + "[]")]
+        return []
+
+    spaced = [k for k in keys(written["summary"]) if " " in k.rsplit(".", 1)[-1]]
+    assert spaced == [], spaced[:5]
+    assert "tolerance −" not in written["html"]  # the tolerance is positive; the bound is −tol

@@ -173,7 +173,8 @@ def _audit_verdict(audit: Mapping[str, Any] | None, rec: RunRecord) -> str:
     if eig is not None:
         text += f"; smallest eigenvalue {_fmt_num(eig)}"
         if kkt_tol is not None:
-            text += f" (tolerance −{_fmt_num(kkt_tol)})"
+            text += (f" (positive semi-definite when ≥ −{_fmt_num(kkt_tol)}, PSD tolerance "
+                     f"{_fmt_num(kkt_tol)})")
     if scope:
         text += f"; checked on {str(scope).replace('_', ' ')}"
     return text + "."

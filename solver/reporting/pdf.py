@@ -16,7 +16,7 @@ from typing import Any
 from matplotlib.backends.backend_pdf import PdfPages
 from matplotlib.figure import Figure
 
-from ..vocabulary import heading
+from ..vocabulary import heading, label
 from .content import FigureData, ReportContent, RunContent, Table
 from .figures import PALETTE, draw, plain_text, style
 from .html import HOLDOUT_TABLE_KEYS, _evidence_line, _termination_rows, comparison_table, fmt
@@ -64,7 +64,7 @@ class _Lines:
     def kv(self, items: Sequence[tuple[str, Any]]) -> None:
         """Name / value rows; a long name or value wraps (nothing is cut)."""
         for k, v in items:
-            keys = textwrap.wrap(str(k), width=34, break_long_words=True) or [""]
+            keys = textwrap.wrap(label(str(k)), width=34, break_long_words=True) or [""]
             text = fmt(v).replace("×10^", "e")
             chunks = textwrap.wrap(text, width=CHARS - 36, break_long_words=True) or [""]
             for i in range(max(len(keys), len(chunks))):

@@ -12,6 +12,7 @@ from importlib import resources
 from typing import Any
 
 from ..plaindata import to_plain
+from ..vocabulary import json_key
 from .content import ReportContent, RunContent
 
 __all__ = ["SCHEMA_ID", "summary_dict", "summary_json", "load_schema"]
@@ -21,7 +22,8 @@ SCHEMA_VERSION = 1
 
 _TERMINATION_KEYS = (
     "status", "message", "converged", "iterations", "seconds", "solve_seconds",
-    "compile_seconds", "setup_seconds", "total_seconds", "kkt_tol", "max_violation",
+    "compile_seconds", "setup_seconds", "total_seconds", "phase_seconds", "kkt_tol",
+    "max_violation",
     "meets_tol", "m_up", "M_low", "dual_objective", "primal_objective", "duality_gap",
     "relative_gap", "bias", "bias_from", "bound_violation", "equality_residual",
     "max_kkt_residual",
@@ -35,14 +37,14 @@ def _run(r: RunContent) -> dict[str, Any]:
         "label": r.label,
         "run_id": r.run_id,
         "solver": r.solver,
-        "identity": {k: v for k, v in r.identity},
-        "environment": {k: v for k, v in r.environment},
+        "identity": {json_key(k): v for k, v in r.identity},
+        "environment": {json_key(k): v for k, v in r.environment},
         "reproduce": {"command": r.reproduce_command, "python": r.reproduce_code},
         "data": dict(r.data_facts),
         "data_warnings": list(r.data_warnings),
-        "problem": {k: v for k, v in r.problem},
-        "options": {k: v for k, v in r.options},
-        "kernel_audit": None if r.audit is None else {k: v for k, v in r.audit},
+        "problem": {json_key(k): v for k, v in r.problem},
+        "options": {json_key(k): v for k, v in r.options},
+        "kernel_audit": None if r.audit is None else {json_key(k): v for k, v in r.audit},
         "termination": term,
         "counts": {"support": t.get("n_support"), "free": t.get("n_free"),
                    "bounded": t.get("n_bounded"), "zero": t.get("n_zero")},
@@ -59,7 +61,7 @@ def _run(r: RunContent) -> dict[str, Any]:
         "holdout": None if r.holdout is None else dict(r.holdout),
         "leave_one_out": None if not r.loo_facts else dict(r.loo_facts),
         "evidence": dict(r.evidence_facts),
-        "decision_rule": {k: v for k, v in r.decision_rule},
+        "decision_rule": {json_key(k): v for k, v in r.decision_rule},
         "standardiser": (None if r.scaling is None else
                          {"features": [row[0] for row in r.scaling.rows],
                           "centre": [row[1] for row in r.scaling.rows],
