@@ -31,11 +31,10 @@ from ._workflow import (
 )
 from .data import Dataset
 from .errors import InvalidInputError
-from .measures import nu_property, regression_measures
 from .model import Model, Standardiser, model_from_solution
 from .phases import PhaseClock
 from .plaindata import to_plain
-from .problem import ONE_CLASS_KIND, REGRESSION_KIND, DualProblem, one_class, regression
+from .problem import ONE_CLASS_KIND, REGRESSION_KIND, DualProblem
 from .run import RunRecord
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -197,13 +196,14 @@ def train_kind(
             numeric_column(hold, "target")
         elif hold.labels is not None:
             known_outliers(hold)
+    from .tasks import get_task
+
+    fit_task = get_task(task)
     with clock.phase("standardise"):
         std = Standardiser.fit(ds.X) if standardise else Standardiser.identity(ds.X.shape[1])
         Z = std.transform(ds.X)
-        if kind == REGRESSION_KIND:
-            problem: DualProblem = regression(Z, t, kernel=kern, C=C, epsilon=epsilon)
-        else:
-            problem = one_class(Z, kernel=kern, nu=nu)
+        problem: DualProblem = fit_task.fit_problem(Z, t, kernel=kern, C=C,
+                                                    options={"epsilon": epsilon, "nu": nu})
     methods = ["qp"] if solver == "qp" else ["smo"]
     skipped = None
     if solver == "both":
@@ -241,12 +241,7 @@ def train_kind(
         if explain:
             att["explanation"] = table.to_columns()
         model = model_from_solution(problem, result, std)
-        if kind == ONE_CLASS_KIND:
-            att["nu_property"] = nu_property(problem, result.alpha, table.columns["score"],
-                                             kkt_tol=result.certificate.kkt_tol)
-        else:
-            att["training_fit"] = regression_measures(t, table.columns["prediction"],
-                                                      epsilon=epsilon)
+        att.update(fit_task.fit_attachments(problem, result, table, t))
         if hold is not None:
             with own.phase("holdout"):
                 att["holdout"] = _held_out(problem, model, hold, list(ds.feature_names))
@@ -285,20 +280,10 @@ def train_kind(
 
 def kind_summary(record: RunRecord) -> dict[str, Any]:
     """Task facts added to a run summary: the task, ε or ν, held-out and training facts."""
-    p = record.problem
     from .tasks import task_for_kind
 
-    out: dict[str, Any] = {"task": task_for_kind(p.kind).name}
-    if p.kind == REGRESSION_KIND:
-        out["epsilon"] = p.info.get("epsilon")
-        out["n_rows"] = int(p.X.shape[0])
-        fit = record.attachments.get("training_fit")
-        if fit:
-            out["training_rmse"] = fit["rmse"]
-            out["training_tube_coverage"] = fit["tube_coverage"]
-    else:
-        out["nu"] = p.info.get("nu")
-        out["nu_property"] = record.attachments.get("nu_property")
+    task = task_for_kind(record.problem.kind)
+    out: dict[str, Any] = {"task": task.name, **task.summary_facts(record)}
     hold = record.attachments.get("holdout")
     if hold:
         out["holdout"] = dict(hold)
