@@ -21,6 +21,8 @@ import numpy as np
 
 from ._workflow import (
     HOLDOUT_ROWS,
+    NO_CHOICE,
+    Columns,
     ProgressFn,
     _align,
     _fingerprint,
@@ -29,10 +31,10 @@ from ._workflow import (
 )
 from .data import Dataset
 from .errors import InvalidInputError
-from .measures import nu_property, regression_measures
 from .model import Model, Standardiser, model_from_solution
+from .phases import PhaseClock
 from .plaindata import to_plain
-from .problem import ONE_CLASS_KIND, REGRESSION_KIND, DualProblem, one_class, regression
+from .problem import ONE_CLASS_KIND, REGRESSION_KIND, DualProblem
 from .run import RunRecord
 
 if TYPE_CHECKING:  # pragma: no cover
@@ -93,7 +95,8 @@ def known_outliers(ds: Dataset) -> np.ndarray:
 
 
 def _load_training(data: Any, task: str, target: str | None, label: str | None,
-                   outlier_column: str | None) -> tuple[Dataset, np.ndarray | None]:
+                   outlier_column: str | None, columns: Columns = NO_CHOICE
+                   ) -> tuple[Dataset, np.ndarray | None]:
     if task == "regression":
         if label is not None:
             raise InvalidInputError("regression uses --target COLUMN for the continuous "
@@ -103,7 +106,7 @@ def _load_training(data: Any, task: str, target: str | None, label: str | None,
         if isinstance(data, (str, Path)) and target is None:
             raise InvalidInputError("name the target column of the training file "
                                     "(--target COLUMN)")
-        ds = _load_data(data, target, "training data")
+        ds = _load_data(data, target, "training data", columns)
         if ds.labels is None:
             raise InvalidInputError("training data have no target column")
         t = numeric_column(ds, "target")
@@ -125,7 +128,7 @@ def _load_training(data: Any, task: str, target: str | None, label: str | None,
 
         if not _has_column(Path(data), outlier_column):
             outlier_column = None  # the training file need not carry it
-    ds = _load_data(data, outlier_column, "training data")
+    ds = _load_data(data, outlier_column, "training data", columns)
     if outlier_column is not None and ds.labels is not None:
         known_outliers(ds)  # validated now; the fit never uses it
     return ds, None
@@ -164,7 +167,7 @@ def train_kind(
     outlier_column: str | None, epsilon: float, nu: float, kern: Any, C: float,
     kkt_tol: float, iteration_limit: int | None, solver: str, standardise: bool,
     holdout: Dataset | str | Path | None, store: RunStore, trace: str, explain: bool,
-    progress: ProgressFn | None, opts: dict[str, Any],
+    progress: ProgressFn | None, opts: dict[str, Any], columns: Columns = NO_CHOICE,
 ) -> dict[str, Any]:
     """Fit, explain, score and save one regression or one-class problem (module notes).
 
@@ -177,24 +180,30 @@ def train_kind(
     from .explanation import kind_point_table
 
     kind = kind_of_task(task)
-    ds, t = _load_training(data, task, target, label, outlier_column)
+    clock = PhaseClock()
+    with clock.phase("load"):
+        ds, t = _load_training(data, task, target, label, outlier_column, columns)
     hold = None
     if holdout is not None:
         col = ds.label_name if kind == REGRESSION_KIND else outlier_column
-        hold = _load_data(holdout, col, "held-out data")
+        hold_cols = replace(columns, features=None)
+        with clock.phase("load"):
+            hold = _load_data(holdout, col, "held-out data", hold_cols,
+                              names=ds.feature_names)
         if kind == REGRESSION_KIND and hold.labels is None:
             raise InvalidInputError("held-out data need the target column to be scored")
-        _align(hold, ds.feature_names, "held-out data")  # fail before solving
         if kind == REGRESSION_KIND:
             numeric_column(hold, "target")
         elif hold.labels is not None:
             known_outliers(hold)
-    std = Standardiser.fit(ds.X) if standardise else Standardiser.identity(ds.X.shape[1])
-    Z = std.transform(ds.X)
-    if kind == REGRESSION_KIND:
-        problem: DualProblem = regression(Z, t, kernel=kern, C=C, epsilon=epsilon)
-    else:
-        problem = one_class(Z, kernel=kern, nu=nu)
+    from .tasks import get_task
+
+    fit_task = get_task(task)
+    with clock.phase("standardise"):
+        std = Standardiser.fit(ds.X) if standardise else Standardiser.identity(ds.X.shape[1])
+        Z = std.transform(ds.X)
+        problem: DualProblem = fit_task.fit_problem(Z, t, kernel=kern, C=C,
+                                                    options={"epsilon": epsilon, "nu": nu})
     methods = ["qp"] if solver == "qp" else ["smo"]
     skipped = None
     if solver == "both":
@@ -204,7 +213,8 @@ def train_kind(
         else:
             skipped = (f"QP challenger skipped: {problem.n} dual variables exceed its size "
                        f"limit of {limit}")
-    audit = _t._audit(problem, ds.feature_names)
+    with clock.phase("audit"):
+        audit = _t._audit(problem, ds.feature_names)
     data_facts = {
         "fingerprint": _fingerprint(ds), "feature_names": list(ds.feature_names),
         "label_name": None, "target_name": target if kind == REGRESSION_KIND else None,
@@ -216,28 +226,29 @@ def train_kind(
     extra_opts = ({"epsilon": epsilon} if kind == REGRESSION_KIND else {"nu": nu})
     command = _t._command(data, None, {"task": task, "target": target,
                                        "outlier_column": outlier_column, **extra_opts, **opts,
-                                       "solver": solver}, holdout)
+                                       "solver": solver}, holdout, columns)
     records: list[RunRecord] = []
     for method in methods:
         lim = iteration_limit if (method == "smo" or solver == "qp") else None
-        result = _t._solve(method, problem, kkt_tol=kkt_tol, iteration_limit=lim, trace=trace,
-                           progress=progress, interior_point_tol=_interior_point_tol(kkt_tol))
+        own = clock.copy()
+        with own.phase("solve"):
+            result = _t._solve(method, problem, kkt_tol=kkt_tol, iteration_limit=lim,
+                               trace=trace, progress=progress,
+                               interior_point_tol=_interior_point_tol(kkt_tol))
         att: dict[str, Any] = {"audit": audit, "command": command}
-        table = kind_point_table(problem, result)
+        with own.phase("explanation"):
+            table = kind_point_table(problem, result)
         if explain:
             att["explanation"] = table.to_columns()
         model = model_from_solution(problem, result, std)
-        if kind == ONE_CLASS_KIND:
-            att["nu_property"] = nu_property(problem, result.alpha, table.columns["score"],
-                                             kkt_tol=result.certificate.kkt_tol)
-        else:
-            att["training_fit"] = regression_measures(t, table.columns["prediction"],
-                                                      epsilon=epsilon)
+        att.update(fit_task.fit_attachments(problem, result, table, t))
         if hold is not None:
-            att["holdout"] = _held_out(problem, model, hold, list(ds.feature_names))
+            with own.phase("holdout"):
+                att["holdout"] = _held_out(problem, model, hold, list(ds.feature_names))
             att[HOLDOUT_ROWS] = _holdout_rows(hold, ds.feature_names)
         if method == "smo" and skipped:
             att["challenger"] = {"ran": False, "reason": skipped}
+        att["phases"] = own.to_dict()
         records.append(RunRecord(problem=problem, result=result, data=data_facts,
                                  standardiser=std, attachments=att))
     comparison = None
@@ -269,20 +280,10 @@ def train_kind(
 
 def kind_summary(record: RunRecord) -> dict[str, Any]:
     """Task facts added to a run summary: the task, ε or ν, held-out and training facts."""
-    p = record.problem
     from .tasks import task_for_kind
 
-    out: dict[str, Any] = {"task": task_for_kind(p.kind).name}
-    if p.kind == REGRESSION_KIND:
-        out["epsilon"] = p.info.get("epsilon")
-        out["n_rows"] = int(p.X.shape[0])
-        fit = record.attachments.get("training_fit")
-        if fit:
-            out["training_rmse"] = fit["rmse"]
-            out["training_tube_coverage"] = fit["tube_coverage"]
-    else:
-        out["nu"] = p.info.get("nu")
-        out["nu_property"] = record.attachments.get("nu_property")
+    task = task_for_kind(record.problem.kind)
+    out: dict[str, Any] = {"task": task.name, **task.summary_facts(record)}
     hold = record.attachments.get("holdout")
     if hold:
         out["holdout"] = dict(hold)

@@ -416,3 +416,19 @@ def test_an_interrupted_study_resumes_without_duplicates(tmp_path):
     assert out.reused == 3 and out.fitted == 5
     assert set(first) <= {r["run_id"] for r in out.rows}
     assert len(st.run_ids()) == 8 + 1 and not st.temp_folders()
+
+
+def test_other_commands_treat_a_study_as_a_study(tmp_path):
+    store = tmp_path / "st"
+    out = study(_demo(90), C=[0.3, 3.0], gamma=[0.1], folds=2, scheduler="sequential",
+                store=store)
+    # report writes the study report; verify names a parent record; explain refuses
+    paths = solver.report(out.study_id, store=store, out_dir=tmp_path / "rep")
+    assert sorted(p.name for p in paths.values()) == ["study.html", "study.json", "study.pdf"]
+    r = kk("verify", out.study_id, "--store", store)
+    assert r.returncode == 0 and "a parent record and every member run" in r.stdout
+    for args in (["explain", out.study_id], ["apply", out.study_id, TRAIN_CSV]):
+        r = kk(*args, "--store", store)
+        assert r.returncode == 1 and "not a model" in r.stderr, r.stderr
+    r = kk("runs", "--store", store)
+    assert "member runs below" in r.stdout and "  fit C=0.3 gamma=0.1 vs fold=0" in r.stdout

@@ -72,14 +72,15 @@ def _fold_parents(rows: list[dict[str, Any]], parents: dict[str, list[dict[str, 
             out.append(r)
             continue
         ms = parents[r["run_id"]]
-        out.append({**r, "solver": "model", "parent_id": f"{sum(m['role'] == 'pair' for m in ms)}"
-                    " pairs below"})
+        pairs = sum(m["role"] == "pair" for m in ms)
+        below = f"{pairs} pairs below" if pairs else f"{len(ms)} member runs below"
+        out.append({**r, "solver": "model" if pairs else "parent", "parent_id": below})
         for m in ms:
             sub = by_id.get(m["run_id"])
             if sub is None:
                 continue
             key = " vs ".join(m.get("key") or [])
-            what = "pair" if m["role"] == "pair" else "challenger"
+            what = {"pair": "pair", "pair_challenger": "challenger"}.get(m["role"], m["role"])
             out.append({**sub, "run_id": f"  {what} {key}: {sub['run_id']}",
                         "parent_id": sub.get("parent_id") or "-"})
     return out

@@ -44,7 +44,7 @@ def cmd_verify(args: argparse.Namespace) -> int:
             print(f"run {args.run}: files intact ({integ.get('files_checked', '?')} digests "
                   "match) and consistent with themselves (certificate recomputed, model "
                   f"rebuilt, trace replayed); chain of {len(chain)} run(s) checked"
-                  + (" (a multi-class model and every member run)" if len(chain) > 1
+                  + (" (a parent record and every member run)" if len(chain) > 1
                      and not integ.get("parent_id") else ""))
             if res.integrity.trusted:
                 print(f"  signed by {res.integrity.signer}: a trusted key")

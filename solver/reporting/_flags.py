@@ -7,6 +7,7 @@ from typing import Any
 
 import numpy as np
 
+from ..diagnosis._problem import SCALE_RATIO
 from ..run import RunRecord
 from ._provenance import _EIG_KEYS, _audit_indefinite
 from ._records import Flag, _as_mapping, _fmt_num, _plain
@@ -18,9 +19,8 @@ from ._records import Flag, _as_mapping, _fmt_num, _plain
 #: margin are the ones a larger C pushes out of it (the margin narrows as C grows), so when
 #: they make up most support vectors, a fit with a larger C is worth comparing.
 BOUNDED_SHARE = 0.5
-#: Features whose standard deviations differ by more than this factor count as unscaled
-#: (our heuristic; standardising before distance-based kernels is common practice).
-SCALE_RATIO = 100.0
+#: Features whose standard deviations differ by more than SCALE_RATIO count as unscaled:
+#: one definition, the diagnosis's (solver/diagnosis/_problem.py).
 
 
 # --------------------------------------------------------------------------- flags

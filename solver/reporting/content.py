@@ -114,6 +114,8 @@ def _run_content(rec: RunRecord, label: str, holdout: Mapping | None,
         term["replay_max_difference"] = facts["replay"]["max_abs_difference"]
     term["events"] = facts.get("event_counts", {})
     att = rec.attachments or {}
+    term["phase_seconds"] = {str(k): float(v) for k, v in
+                             (_as_mapping(att.get("phases")) or {}).items()}
     audit = _as_mapping(att.get("audit"))
     sel = None
     tr = res.trace

@@ -199,6 +199,13 @@ def _contents(c: ReportContent) -> str:
     return f'<nav class="contents" aria-label="contents"><ul>{"".join(items)}</ul></nav>'
 
 
+def _phase_text(phases: Any) -> str | None:
+    """``load 0.41 · audit 0.12 · solve 1.20 …`` (solver.phases), or None when not recorded."""
+    if not phases:
+        return None
+    return " · ".join(f"{k} {float(v):.3g}" for k, v in dict(phases).items())
+
+
 def _termination_rows(t: Mapping[str, Any]) -> list[tuple[str, Any]]:
     meets = t.get("meets_tol")
     rows = [
@@ -206,6 +213,7 @@ def _termination_rows(t: Mapping[str, Any]) -> list[tuple[str, Any]]:
         ("iterations", t.get("iterations")), ("solve time (s)", t.get("solve_seconds")),
         ("compile time (s)", t.get("compile_seconds")), ("set-up time (s)", t.get("setup_seconds")),
         ("whole solver call (s)", t.get("seconds")),
+        ("phases of the fit (s)", _phase_text(t.get("phase_seconds"))),
         ("tolerance (kkt_tol)", t.get("kkt_tol")), ("final maximal violation",
                                                     t.get("max_violation")),
         ("violation within kkt_tol", meets),

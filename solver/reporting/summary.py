@@ -22,7 +22,8 @@ SCHEMA_VERSION = 1
 
 _TERMINATION_KEYS = (
     "status", "message", "converged", "iterations", "seconds", "solve_seconds",
-    "compile_seconds", "setup_seconds", "total_seconds", "kkt_tol", "max_violation",
+    "compile_seconds", "setup_seconds", "total_seconds", "phase_seconds", "kkt_tol",
+    "max_violation",
     "meets_tol", "m_up", "M_low", "dual_objective", "primal_objective", "duality_gap",
     "relative_gap", "bias", "bias_from", "bound_violation", "equality_residual",
     "max_kkt_residual",

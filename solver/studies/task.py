@@ -18,8 +18,9 @@ from ..tasks._base import MemberSpec, Prediction, Task, WeightSpec
 
 __all__ = ["StudyTask", "TASK"]
 
-_NOT_A_MODEL = ("a study is a record of cross-validation fits, not a model; apply, explain "
-                "or export one of its member runs instead (kktrace inspect STUDY_ID lists them)")
+_NOT_A_MODEL = ("a study is a record of cross-validation fits, not a model; apply, explain, "
+                "compare or export one of its member runs instead (kktrace runs lists them "
+                "under the study)")
 
 
 class StudyTask(Task):
@@ -32,6 +33,16 @@ class StudyTask(Task):
     #: the one category of a study's members (cross-validation fits)
     categories = ("member_fit",)
     measures = ("accuracy", "balanced_accuracy")
+
+    #: parent workflows that need a model (apply, explain, compare) refuse with this
+    not_a_model = _NOT_A_MODEL
+
+    def write_report(self, store: Any, run_id: str, out_dir: Any,
+                     formats: Sequence[str]) -> dict[str, Any]:
+        """The study report (:func:`solver.studies.study_report`), used by ``report``."""
+        from .report import study_report
+
+        return study_report(run_id, store=store, out_dir=out_dir, formats=formats)
 
     def members(self, labels: np.ndarray, *, weights: WeightSpec | None = None,
                 options: Mapping[str, Any] | None = None) -> list[MemberSpec]:

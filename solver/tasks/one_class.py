@@ -45,6 +45,26 @@ class OneClassTask(Task):
                 ("sign convention", "f(x) ≥ 0 → inlier; f(x) < 0 → outlier"),
                 ("at f = 0", "inlier (the boundary belongs to the region)")]
 
+    def fit_problem(self, X: np.ndarray, values: np.ndarray | None, *, kernel: Any, C: float,
+                    options: Mapping[str, Any]) -> Any:
+        """The one-class dual on standardised rows X (m, d); no target, no C."""
+        from ..problem import one_class
+
+        return one_class(X, kernel=kernel, nu=options["nu"])
+
+    def fit_attachments(self, problem: Any, result: Any, table: Any,
+                        values: np.ndarray | None) -> dict[str, Any]:
+        """``nu_property``: outlier share ≤ ν ≤ support-vector share, checked."""
+        from ..measures import nu_property
+
+        return {"nu_property": nu_property(problem, result.alpha, table.columns["score"],
+                                           kkt_tol=result.certificate.kkt_tol)}
+
+    def summary_facts(self, record: Any) -> dict[str, Any]:
+        """ν and the stored ν-property check, for a run summary."""
+        return {"nu": record.problem.info.get("nu"),
+                "nu_property": (record.attachments or {}).get("nu_property")}
+
     def report_section(self, parent: Any, members: Sequence[Any]) -> dict[str, Any] | None:
         """Score distribution, ρ, and the ν-property of one stored one-class run."""
         from ..explanation import kind_point_table

@@ -44,6 +44,31 @@ class RegressionTask(Task):
         return [("decision value", "f(x) = Σ (α⁺ᵢ − α⁻ᵢ)K(xᵢ, x) + b on the standardised "
                  "features"), ("prediction", "f(x) itself, in the target's units")]
 
+    def fit_problem(self, X: np.ndarray, values: np.ndarray | None, *, kernel: Any, C: float,
+                    options: Mapping[str, Any]) -> Any:
+        """The ε-regression dual on standardised rows X (m, d) and targets ``values`` (m,)."""
+        from ..problem import regression
+
+        return regression(X, values, kernel=kernel, C=C, epsilon=options["epsilon"])
+
+    def fit_attachments(self, problem: Any, result: Any, table: Any,
+                        values: np.ndarray | None) -> dict[str, Any]:
+        """``training_fit``: RMSE, MAE, R², tube coverage on the training rows."""
+        from ..measures import regression_measures
+
+        return {"training_fit": regression_measures(
+            values, table.columns["prediction"], epsilon=float(problem.info["epsilon"]))}
+
+    def summary_facts(self, record: Any) -> dict[str, Any]:
+        """ε, rows and the training fit, for a run summary."""
+        out: dict[str, Any] = {"epsilon": record.problem.info.get("epsilon"),
+                               "n_rows": int(record.problem.X.shape[0])}
+        fit = (record.attachments or {}).get("training_fit")
+        if fit:
+            out["training_rmse"] = fit["rmse"]
+            out["training_tube_coverage"] = fit["tube_coverage"]
+        return out
+
     def report_section(self, parent: Any, members: Sequence[Any]) -> dict[str, Any] | None:
         """Fit, residual and support-vector facts of one stored ε-regression run."""
         from ..explanation import kind_point_table
