@@ -418,8 +418,10 @@ def test_an_interrupted_study_resumes_without_duplicates(tmp_path):
     assert len(st.run_ids()) == 8 + 1 and not st.temp_folders()
 
 
-def test_other_commands_treat_a_study_as_a_study(small_study, tmp_path):
-    _, store, out = small_study
+def test_other_commands_treat_a_study_as_a_study(tmp_path):
+    store = tmp_path / "st"
+    out = study(_demo(90), C=[0.3, 3.0], gamma=[0.1], folds=2, scheduler="sequential",
+                store=store)
     # report writes the study report; verify names a parent record; explain refuses
     paths = solver.report(out.study_id, store=store, out_dir=tmp_path / "rep")
     assert sorted(p.name for p in paths.values()) == ["study.html", "study.json", "study.pdf"]
