@@ -32,6 +32,7 @@ SANS_CHARS = 112  # sans characters per body line at 8 pt (conservative)
 PAGE_LINES = (TOP - 0.045 - BOTTOM - 0.01) / LINE  # body lines that fit below the heading
 FIGS_PER_PAGE = 2
 FOOT_CHARS = 150  # footer characters per line at 6.2 pt
+MIN_LINES = 10  # a continued text page carries at least this many lines
 
 
 @dataclass(frozen=True)
@@ -164,6 +165,17 @@ def _paginate(heading: str, lines: _Lines) -> list[PdfPage]:
             continue
         pages[-1].append(it)
         used += h
+    if len(pages) > 1 and len(pages[-1]) < MIN_LINES:
+        # no near-empty last page: it takes the tail of the page before (never leaving a
+        # heading last there)
+        prev = pages[-2]
+        cut = max(1, len(prev) - (MIN_LINES - len(pages[-1])))
+        while cut > 1 and prev[cut - 1][0] in ("h", "gap", "t"):
+            cut -= 1
+        moved = prev[cut:]
+        if moved and moved[0][0] == "gap":
+            moved = moved[1:]
+        pages[-2], pages[-1] = prev[:cut], moved + pages[-1]
     return [PdfPage(heading=heading if k == 0 else f"{heading} (continued)", lines=tuple(p))
             for k, p in enumerate(pages)]
 
