@@ -17,6 +17,11 @@ from .errors import InvalidInputError
 
 #: Warn when the largest / smallest feature standard deviation exceeds this ratio.
 SCALE_RATIO_WARN = 1e3
+#: The words that start the feature-scale warning, and its advice (training words the
+#: advice for the run's settings: :func:`solver.training._for_settings`).
+SCALE_WARNING = "feature scales differ by a factor of"
+SCALE_ADVICE = ("; standardising them (kktrace's default when training) removes this; "
+                "unscaled features slow SMO and let the widest column dominate the kernel")
 #: At most this many examples are named in one message.
 MAX_LISTED = 5
 
@@ -375,9 +380,8 @@ def intake_warnings(
             ratio = float(sd[hi] / sd[lo]) if sd[lo] > 0 else math.inf
             if ratio > SCALE_RATIO_WARN:
                 out.append(
-                    f"{prefix}feature scales differ by a factor of {ratio:.3g} (standard deviation "
-                    f"of {names[hi]!r} is {sd[hi]:.3g}, of {names[lo]!r} is {sd[lo]:.3g}); "
-                    "standardise the features (unscaled data slows SMO and lets the widest "
-                    "column dominate the kernel)"
+                    f"{prefix}{SCALE_WARNING} {ratio:.3g} (standard deviation "
+                    f"of {names[hi]!r} is {sd[hi]:.3g}, of {names[lo]!r} is {sd[lo]:.3g})"
+                    + SCALE_ADVICE
                 )
     return out

@@ -24,15 +24,18 @@ import numpy as np
 from ._workflow import (
     DEFAULT_STORE,
     KERNEL_CHOICES,
+    NO_CHOICE,
     SOLVER_CHOICES,
     STORE_ENV,
+    Columns,
     ProgressFn,
-    _align,
     _confusion,
     _fingerprint,
     _load_data,
     _plain,
     _stored_holdout,
+    check_finite_values,
+    check_known_labels,
     open_store,
 )
 from .data import Dataset
@@ -115,14 +118,19 @@ def compare(
     holdout: Dataset | str | Path | None = None,
     tolerances: Mapping[str, float] | None = None,
     allow_mismatch: bool = False,
+    feature_columns: Sequence[str] | None = None,
+    ignore_columns: Sequence[str] | None = None,
+    delimiter: str | None = None,
 ) -> Any:
     """Solver-agreement :class:`~solver.agreement.Comparison` of two runs.
 
     ``holdout`` (data file or Dataset, label column optional) adds decision-value agreement
-    on held-out rows; without it the held-out rows stored with run A (else run B) at
-    training are used, and a note says which, or that none are stored and how to add them.
-    Runs of different problems raise :class:`~solver.errors.ProblemMismatchError` unless
-    ``allow_mismatch``.
+    on held-out rows; its columns are matched to the run's features by name
+    (``feature_columns`` / ``ignore_columns`` / ``delimiter`` as for :func:`train`; other
+    columns are ignored with a :class:`~solver.errors.DataWarning` naming them).  Without
+    it the held-out rows stored with run A (else run B) at training are used, and a note
+    says which, or that none are stored and how to add them.  Runs of different problems
+    raise :class:`~solver.errors.ProblemMismatchError` unless ``allow_mismatch``.
     """
     from .agreement import compare_runs
 
@@ -133,22 +141,28 @@ def compare(
         if pa is None or pb is None:
             raise InvalidInputError("compare a multi-class model with another multi-class "
                                     "model (pair by pair), or one pair's run with another run")
-        hX = None
-        if holdout is not None:
-            hold = _load_data(holdout, pa.parent.data.get("label_name"), "held-out data")
-            hX = _align(hold, pa.parent.data.get("feature_names") or [], "held-out data")
+        hX = None if holdout is None else _holdout_X(
+            holdout, pa.parent.data, Columns.of(feature_columns, ignore_columns, delimiter))
         return compare_parents(pa, pb, holdout_X=hX, tolerances=tolerances,
                                allow_mismatch=allow_mismatch)
     a, b = load_run(run_a, store=store), load_run(run_b, store=store)
     hX, note = None, None
     if holdout is not None:
-        hold = _load_data(holdout, _split_column(a.data), "held-out data")
-        hX = _align(hold, a.data.get("feature_names") or [], "held-out data")
+        hX = _holdout_X(holdout, a.data, Columns.of(feature_columns, ignore_columns, delimiter))
     else:
         hX, note = _stored_holdout(a, b)
     comp = compare_runs(a, b, holdout_X=hX, tolerances=tolerances,
                         allow_mismatch=allow_mismatch)
     return comp if note is None else replace(comp, notes=(*comp.notes, note))
+
+
+def _holdout_X(holdout: Any, data: Mapping[str, Any], cols: Columns) -> np.ndarray:
+    """Held-out rows (m, d) in the run's feature order, label column optional."""
+    lab = _split_column(data)
+    if isinstance(holdout, (str, Path)) and not _has_column(Path(holdout), lab, cols):
+        lab = None
+    return _load_data(holdout, lab, "held-out data", cols,
+                      names=data.get("feature_names") or []).X
 
 
 def _parse_point(point: Mapping[str, float] | Sequence[float] | np.ndarray,
@@ -192,6 +206,9 @@ def explain(
     store: Any = None,
     points: Mapping[str, float] | Sequence[float] | np.ndarray | Dataset | str | Path | None = None,
     top: int = 5,
+    feature_columns: Sequence[str] | None = None,
+    ignore_columns: Sequence[str] | None = None,
+    delimiter: str | None = None,
 ) -> Any:
     """Explain a run.
 
@@ -199,7 +216,8 @@ def explain(
     data (category and reason for every point).  With ``points`` (a mapping feature →
     value, an (m, d) array in raw units, a Dataset or a data file): the decision
     :class:`~solver.explanation.Breakdown` of each query into its ``top`` contributing support
-    vectors and the remainder.
+    vectors and the remainder.  A query file's columns are matched to the run's features
+    by name (``feature_columns`` / ``ignore_columns`` / ``delimiter`` as for :func:`train`).
     """
     from .explanation import breakdown, point_table
 
@@ -211,7 +229,8 @@ def explain(
             return explain_parent(pr)
         if isinstance(top, bool) or not isinstance(top, int) or top < 1:
             raise InvalidInputError(f"top must be a positive integer, got {top!r}")
-        return explain_parent_points(pr, _query_rows(points, pr.parent.data), top)
+        cols = Columns.of(feature_columns, ignore_columns, delimiter)
+        return explain_parent_points(pr, _query_rows(points, pr.parent.data, cols).X, top)
     rec = load_run(run, store=store)
     if points is None:
         if rec.problem.labels is None:
@@ -219,23 +238,30 @@ def explain(
 
             return kind_point_table(rec.problem, rec.result)
         return point_table(rec.problem, rec.result)
-    X = _query_rows(points, rec.data)
+    cols = Columns.of(feature_columns, ignore_columns, delimiter)
+    qds = _query_rows(points, rec.data, cols)
     model = model_from_solution(rec.problem, rec.result, rec.standardiser)
     if isinstance(top, bool) or not isinstance(top, int) or top < 1:
         raise InvalidInputError(f"top must be a positive integer, got {top!r}")
-    return breakdown(model, X, top=top)
+    with np.errstate(all="ignore"):
+        res = breakdown(model, qds.X, top=top)
+    check_finite_values(res.values, qds, "query data")
+    return res
 
 
-def _query_rows(points: Any, data: Mapping[str, Any]) -> np.ndarray:
-    """Query rows (m, d) in raw units from a mapping, an array, a Dataset or a file."""
+def _query_rows(points: Any, data: Mapping[str, Any], cols: Columns = NO_CHOICE
+                ) -> Dataset:
+    """Query rows (m, d) in raw units, as a Dataset with the run's feature names, from a
+    mapping, an array, a Dataset or a file (matched to the run's features by name)."""
     names = list(data.get("feature_names") or [])
     if isinstance(points, (str, Path)):
-        lab = data.get("label_name")
-        q = _load_data(points, lab if _has_column(Path(points), lab) else None, "query data")
-        return _align(q, names, "query data")
+        lab = _split_column(data)
+        lab = lab if _has_column(Path(points), lab, cols) else None
+        return _load_data(points, lab, "query data", cols, names=names)
     if isinstance(points, Dataset):
-        return _align(points, names, "query data")
-    return _parse_point(points, names)
+        return _load_data(points, None, "query data", replace(cols, delimiter=None),
+                          names=names)
+    return Dataset(X=_parse_point(points, names), labels=None, feature_names=tuple(names))
 
 
 def leave_one_out(
@@ -580,33 +606,21 @@ class ModelOutput:
         return out
 
 
-def _has_column(path: Path, column: str | None) -> bool:
+def _has_column(path: Path, column: str | None, columns: Columns = NO_CHOICE) -> bool:
     """Whether a data file has a column ``column`` (header peek; no data parsed)."""
-    if column is None or not path.is_file():
+    from .data import SUPPORTED_SUFFIXES, column_names
+
+    if column is None or not path.is_file() or path.suffix.lower() not in SUPPORTED_SUFFIXES:
         return False
-    suffix = path.suffix.lower()
-    try:
-        if suffix == ".csv":
-            import csv
-
-            with path.open(newline="", encoding="utf-8-sig") as fh:
-                header = next(csv.reader(fh), [])
-            return column in [h.strip() for h in header]
-        if suffix in (".parquet", ".pq"):
-            import pyarrow.parquet as pq
-
-            return column in pq.read_schema(path).names
-        if suffix == ".npz":
-            with np.load(path, allow_pickle=False) as z:
-                return column in z.files
-    except (OSError, UnicodeDecodeError, ValueError) as exc:
-        raise InvalidInputError(f"cannot read {str(path)!r}: {exc}") from None
-    return False
+    return column in column_names(path, delimiter=columns.delimiter)
 
 
 def apply(
     run: str | RunRecord, data: Dataset | str | Path, *, store: Any = None,
     label: str | None = None, probabilities: bool = False,
+    feature_columns: Sequence[str] | None = None,
+    ignore_columns: Sequence[str] | None = None,
+    delimiter: str | None = None,
 ) -> ModelOutput:
     """Decision values and predicted labels of a stored run's model on ``data``.
 
@@ -614,28 +628,34 @@ def apply(
     has it) the confusion matrix, accuracy and balanced accuracy are included.  With
     ``probabilities`` the run's fitted sigmoid gives P(class | x) for every class (an
     :class:`InvalidInputError` says how to get one when the run has none, or why its fit
-    failed).
+    failed).  The run's features are read by name; the file's other columns are ignored
+    (a :class:`~solver.errors.DataWarning` names them); ``feature_columns`` /
+    ``ignore_columns`` / ``delimiter`` as for :func:`train`.
     """
+    cols = Columns.of(feature_columns, ignore_columns, delimiter)
     pr = _parent_runs(run, store)
     if pr is not None:
         from .parent_workflow import apply_parent
 
         if isinstance(data, (str, Path)) and label is None:
             lab = pr.parent.data.get("label_name")
-            label = lab if _has_column(Path(data), lab) else None
+            label = lab if _has_column(Path(data), lab, cols) else None
         return ModelOutput(run_id=pr.parent.run_id, kind="multiclass_one_vs_one",
-                           **apply_parent(pr, data, label, probabilities))
+                           **apply_parent(pr, data, label, probabilities, cols))
     rec = load_run(run, store=store)
     names = list(rec.data.get("feature_names") or [])
     if rec.problem.labels is None:
-        return _apply_kind(rec, data, names, label)
+        return _apply_kind(rec, data, names, label, cols)
     if isinstance(data, (str, Path)) and label is None:
         lab = rec.data.get("label_name")
-        label = lab if _has_column(Path(data), lab) else None
-    ds = _load_data(data, label, "data the model is applied to")
-    X = _align(ds, names, "data the model is applied to")
+        label = lab if _has_column(Path(data), lab, cols) else None
+    ds = _load_data(data, label, "data the model is applied to", cols, names=names)
+    X = ds.X
     model = model_from_solution(rec.problem, rec.result, rec.standardiser)
-    values = model.values(X)
+    check_known_labels(ds, model.labels, "data the model is applied to")
+    with np.errstate(all="ignore"):
+        values = model.values(X)
+    check_finite_values(values, ds, "data the model is applied to")
     pred = model.classify(X)
     conf = None if ds.labels is None else _confusion(ds.labels, pred, model.labels)
     probs = plabels = disagree = None
@@ -657,18 +677,21 @@ def _split_column(data: Mapping[str, Any]) -> str | None:
     return data.get("label_name") or data.get("target_name") or data.get("outlier_column")
 
 
-def _apply_kind(rec: RunRecord, data: Any, names: list[str], label: str | None) -> ModelOutput:
+def _apply_kind(rec: RunRecord, data: Any, names: list[str], label: str | None,
+                cols: Columns = NO_CHOICE) -> ModelOutput:
     """ε-regression (values = predictions, no labels) or one-class (values = signed scores,
     labels ``inlier`` / ``outlier``); with the target or known-outlier column present the
     held-out facts go into ``confusion`` (regression: RMSE, MAE, R², tube coverage)."""
     from .tasks import task_for_kind
 
     col = label or rec.data.get("target_name") or rec.data.get("known_outlier_column")
-    if isinstance(data, (str, Path)) and col is not None and not _has_column(Path(data), col):
+    if isinstance(data, (str, Path)) and col is not None and not _has_column(Path(data), col,
+                                                                              cols):
         col = None
-    ds = _load_data(data, col, "data the model is applied to")
-    X = _align(ds, names, "data the model is applied to")
-    values = model_from_solution(rec.problem, rec.result, rec.standardiser).values(X)
+    ds = _load_data(data, col, "data the model is applied to", cols, names=names)
+    with np.errstate(all="ignore"):
+        values = model_from_solution(rec.problem, rec.result, rec.standardiser).values(ds.X)
+    check_finite_values(values, ds, "data the model is applied to")
     labels, facts = task_for_kind(rec.problem.kind).applied(rec.problem, values, ds)
     return ModelOutput(run_id=rec.run_id, values=values, labels=labels, truth=ds.labels,
                        confusion=facts, fingerprint=_fingerprint(ds), source=ds.source,

@@ -41,6 +41,7 @@ they are text (``str``, surrounding spaces removed; booleans become ``"True"`` /
 
 from __future__ import annotations
 
+import contextvars
 import csv
 import functools
 import hashlib
@@ -74,6 +75,7 @@ from .errors import DataWarning, InvalidInputError
 __all__ = [
     "Dataset",
     "load_table",
+    "column_names",
     "from_arrays",
     "fingerprint",
     "FINGERPRINT_VERSION",
@@ -228,7 +230,8 @@ def _build(
     if d == 0:
         raise InvalidInputError(f"{prefix}no feature columns")
     check_finite(X, names, where, prefix)
-    check_spread(X, names, where, prefix)
+    if _WARN.get():  # data to train on (data a model is applied to are standardised by it)
+        check_spread(X, names, where, prefix)
     lab = None
     if labels is not None:
         lab = canonical_labels(labels, where, prefix, label_name or "")
@@ -240,7 +243,8 @@ def _build(
                 f"{prefix}{what} has {len(classes)} distinct value(s) ({found} in all {n} rows); "
                 f"at least {min_classes} classes are needed"
             )
-    found_warnings = [*notes, *intake_warnings(X, lab, names, where, prefix)]
+    found_warnings = [*notes, *(intake_warnings(X, lab, names, where, prefix)
+                                if _WARN.get() else [])]
     for w in found_warnings:
         warnings.warn(w, DataWarning, stacklevel=stacklevel)
     return Dataset(
@@ -320,6 +324,7 @@ def load_table(
     min_classes: int = 2,
     ignore_columns: Sequence[str] | None = None,
     delimiter: str | None = None,
+    warn: bool = True,
 ) -> Dataset:
     """Load and validate a table from ``.csv``, ``.parquet``/``.pq``, ``.npy`` or ``.npz``.
 
@@ -332,6 +337,9 @@ def load_table(
     min_classes : fewest distinct labels accepted (2 for training data).
     ignore_columns : columns left out of the features (e.g. an ID column); each must exist.
     delimiter : CSV field delimiter; default detected (see :func:`_sniff_delimiter`).
+    warn : data to train on: look for the intake warnings (conflicting duplicates,
+        constant or unscaled features) and refuse a column whose spread overflows; False
+        for data a trained model is applied to.
 
     Raises
     ------
@@ -358,12 +366,68 @@ def load_table(
     _check_delimiter(delimiter, prefix)
     if delimiter is not None and suffix != ".csv":
         raise InvalidInputError(f"{prefix}a delimiter applies to CSV files only")
-    if suffix == ".csv":
-        return _read_csv(p, prefix, label, feature_columns, min_classes, ignore_columns,
-                         delimiter)
-    reader = {".parquet": _read_parquet, ".pq": _read_parquet,
-              ".npy": _read_npy, ".npz": _read_npz}[suffix]
-    return reader(p, prefix, label, feature_columns, min_classes, ignore_columns)
+    token = _WARN.set(bool(warn))
+    try:
+        if suffix == ".csv":
+            return _read_csv(p, prefix, label, feature_columns, min_classes, ignore_columns,
+                             delimiter)
+        reader = {".parquet": _read_parquet, ".pq": _read_parquet,
+                  ".npy": _read_npy, ".npz": _read_npz}[suffix]
+        return reader(p, prefix, label, feature_columns, min_classes, ignore_columns)
+    finally:
+        _WARN.reset(token)
+
+
+def column_names(path: str | Path, *, delimiter: str | None = None) -> list[str]:
+    """The column names of a data file (for ``.npz`` / ``.npy`` the feature names and the
+    label array's name), read without parsing the values of a CSV or Parquet file."""
+    p = Path(path)
+    prefix = f"{p}: "
+    suffix = p.suffix.lower()
+    _check_delimiter(delimiter, prefix)
+    try:
+        if suffix == ".csv":
+            delim = delimiter if delimiter is not None else _sniff_delimiter(p)
+            with open(p, encoding="utf-8-sig", newline="") as fh:
+                for rec in csv.reader(fh, delimiter=delim, strict=True):
+                    if rec and not (len(rec) == 1 and not rec[0].strip()):
+                        names = [c.strip() for c in rec]
+                        hint = _looks_like(names, delim)
+                        if hint:
+                            raise InvalidInputError(
+                                f"{prefix}the header has one column {names[0]!r}{hint}")
+                        return names[:-1] if len(names) > 1 and not names[-1] else names
+            return []
+        if suffix in (".parquet", ".pq"):
+            import pyarrow.parquet as pq
+
+            return [str(c) for c in pq.read_schema(p).names]
+    except (OSError, UnicodeDecodeError, csv.Error, ValueError) as exc:
+        if isinstance(exc, InvalidInputError):
+            raise
+        raise InvalidInputError(f"{prefix}cannot read the column names: {exc}") from None
+    if suffix == ".npy":
+        arr = _load_numpy(p, prefix)
+        return _default_names(arr.shape[1]) if arr.ndim == 2 else []
+    if suffix == ".npz":
+        archive = _load_numpy(p, prefix, members=("X", "feature_names", "label_name"))
+        keys = archive["__files__"]
+        if "feature_names" in keys:
+            names = _text_entry(archive["feature_names"], "feature_names", prefix)
+        elif "X" in keys and archive["X"].ndim == 2:
+            names = _default_names(archive["X"].shape[1])
+        else:
+            names = []
+        if "label_name" in keys:
+            names += _text_entry(archive["label_name"], "label_name", prefix)[:1]
+        else:
+            names += [k for k in ("y", "labels") if k in keys]
+        return names
+    return []
+
+
+_WARN: contextvars.ContextVar[bool] = contextvars.ContextVar("kktrace_intake_warn",
+                                                             default=True)
 
 
 #: Delimiters the CSV reader detects, with their names in messages.
@@ -590,7 +654,8 @@ def _read_npy_stream(fh: Any, size: int, prefix: str, what: str) -> np.ndarray:
             raise ValueError(f"unsupported .npy format version {version}")
         offset = fh.tell()
     except (ValueError, SyntaxError, TypeError, EOFError, OSError) as exc:
-        raise InvalidInputError(f"{prefix}{what} is not in .npy format ({exc})") from None
+        raise InvalidInputError(f"{prefix}{what or 'the file'} is not in .npy format "
+                                f"({exc})") from None
     if dtype.hasobject or dtype.kind not in _NPY_KINDS:
         raise _numpy_error(ValueError("pickle" if dtype.hasobject else
                                       f"dtype {dtype} is not numbers or text"), prefix)
@@ -600,12 +665,14 @@ def _read_npy_stream(fh: Any, size: int, prefix: str, what: str) -> np.ndarray:
     need = count * dtype.itemsize
     if need != size - offset:
         raise InvalidInputError(
-            f"{prefix}{what}: its header declares shape {tuple(shape)} of {dtype} "
+            f"{prefix}{what + ': its' if what else 'its'} .npy header declares shape "
+            f"{tuple(shape)} of {dtype} "
             f"({need:,} bytes) but {max(size - offset, 0):,} data bytes follow; the file is "
             "truncated or corrupt")
     raw = fh.read(need)
     if len(raw) != need:
-        raise InvalidInputError(f"{prefix}{what} is truncated ({len(raw):,} of {need:,} bytes)")
+        raise InvalidInputError(f"{prefix}{what or 'the array'} is truncated ({len(raw):,} of "
+                                f"{need:,} bytes)")
     arr = np.frombuffer(raw, dtype=dtype).reshape(shape, order="F" if fortran else "C")
     return np.array(arr, order="C")
 
@@ -625,7 +692,7 @@ def _load_numpy(p: Path, prefix: str, members: Sequence[str] | None = None) -> A
                     f"{prefix}the file is a .npz archive; give it the .npz suffix")
             raise InvalidInputError(f"{prefix}cannot read as NumPy data: no .npy header")
         with open(p, "rb") as fh:
-            return _read_npy_stream(fh, p.stat().st_size, prefix, "the file")
+            return _read_npy_stream(fh, p.stat().st_size, prefix, "")
     if head[:4] != b"PK\x03\x04":
         raise InvalidInputError(f"{prefix}cannot read as NumPy data: not a .npz (zip) archive")
     try:

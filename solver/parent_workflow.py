@@ -15,7 +15,16 @@ from typing import Any
 
 import numpy as np
 
-from ._workflow import _align, _fingerprint, _load_data, _plain, open_store
+from ._workflow import (
+    NO_CHOICE,
+    Columns,
+    _fingerprint,
+    _load_data,
+    _plain,
+    check_finite_values,
+    check_known_labels,
+    open_store,
+)
 from .errors import InvalidInputError
 from .model import model_from_solution
 from .run import Member, ParentRecord, RunRecord
@@ -109,7 +118,7 @@ def pair_key(text: str | Sequence[str]) -> tuple[str, ...]:
 
 
 def apply_parent(pr: ParentRuns, data: Any, label: str | None,
-                 probabilities: bool = False) -> dict[str, Any]:
+                 probabilities: bool = False, columns: Columns = NO_CHOICE) -> dict[str, Any]:
     """The task's prediction for ``data`` (votes, ties and every member's decision value),
     with the held-out measures when the data carry the label column.  Plain parts for
     :class:`solver.api.ModelOutput`.
@@ -119,9 +128,13 @@ def apply_parent(pr: ParentRuns, data: Any, label: str | None,
     (:class:`solver.calibration.multiclass.PairwiseCalibration`)."""
     info = dict(pr.parent.info)
     names = list(pr.parent.data.get("feature_names") or [])
-    ds = _load_data(data, label, "data the model is applied to")
-    X = _align(ds, names, "data the model is applied to")
-    pred = pr.task.predict(pr.models(), X, info)
+    what = "data the model is applied to"
+    ds = _load_data(data, label, what, columns, names=names)
+    check_known_labels(ds, info["class_values"], what)
+    with np.errstate(all="ignore"):
+        pred = pr.task.predict(pr.models(), ds.X, info)
+    vals = np.asarray(pred.values)
+    check_finite_values(vals if vals.ndim == 1 else vals.sum(axis=1), ds, what)
     measures = None
     if ds.labels is not None:
         measures = pr.task.held_out(pred, ds.labels, info["class_values"])

@@ -16,16 +16,20 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
+from ._intake import SCALE_ADVICE, SCALE_WARNING
 from ._workflow import (
     HOLDOUT_ROWS,
     KERNEL_CHOICES,
+    NO_CHOICE,
     SOLVER_CHOICES,
+    Columns,
     ProgressFn,
     _align,
     _confusion,
     _fingerprint,
     _holdout_rows,
     _load_data,
+    check_known_labels,
     open_store,
 )
 from .data import Dataset
@@ -109,10 +113,18 @@ def _qp_limit() -> int:
 
 
 def _command(
-    data: Any, label: str | None, opts: Mapping[str, Any], holdout: Any
+    data: Any, label: str | None, opts: Mapping[str, Any], holdout: Any,
+    columns: Columns = NO_CHOICE,
 ) -> dict[str, Any]:
-    """The CLI command and Python call that reproduce a training run."""
-    py_args = ", ".join(f"{k}={v!r}" for k, v in opts.items() if v is not None)
+    """The CLI command and Python call that reproduce a training run (held-out file,
+    column choice and delimiter included)."""
+    py_opts = {**opts, "feature_columns": None if columns.features is None else
+               list(columns.features), "ignore_columns": None if columns.ignore is None else
+               list(columns.ignore), "delimiter": columns.delimiter}
+    py_args = ", ".join(f"{k}={v!r}" for k, v in py_opts.items() if v is not None)
+    if holdout is not None:
+        py_args += (f", holdout={str(holdout)!r}" if isinstance(holdout, (str, Path))
+                    else ", holdout=held_out")
     if isinstance(data, (str, Path)):
         argv = ["kktrace", "train", str(data)]
         if label is not None:
@@ -122,13 +134,19 @@ def _command(
                 continue
             if k.startswith("calibration_") and not opts.get("probabilities"):
                 continue
-            argv += ["--" + k.replace("_", "-"), str(v)]
+            argv += ["--positive" if k == "positive_label" else "--" + k.replace("_", "-"),
+                     str(v)]
         if not opts.get("standardise", True):
             argv.append("--no-standardise")
         if opts.get("probabilities"):
             argv.append("--probabilities")
         if holdout is not None and isinstance(holdout, (str, Path)):
             argv += ["--holdout", str(holdout)]
+        for flag, names in (("--features", columns.features), ("--ignore", columns.ignore)):
+            if names is not None:
+                argv += [flag, ",".join(names)]
+        if columns.delimiter is not None:
+            argv += ["--delimiter", columns.delimiter]
         py = f"solver.train({str(data)!r}, label={label!r}, {py_args})"
         return {"argv": argv, "text": shlex.join(argv), "python": py}
     return {
@@ -231,6 +249,9 @@ def _run_summary(record: RunRecord, run_id: str, run_dir: Path) -> dict[str, Any
         "kernel": record.problem.kernel.describe(),
         "C": record.problem.info.get("C"),
     }
+    labels = record.problem.info.get("labels")
+    if isinstance(labels, Mapping) and "positive" in labels:
+        s["labels"] = {"negative": labels["negative"], "positive": labels["positive"]}
     cal = record.attachments.get("calibration")
     if cal:
         s["calibration"] = {k: cal.get(k) for k in ("status", "message", "A", "B", "n_folds",
@@ -317,6 +338,10 @@ def train(
     probabilities: bool = False,
     calibration_folds: int = 5,
     calibration_seed: int = 0,
+    feature_columns: Sequence[str] | None = None,
+    ignore_columns: Sequence[str] | None = None,
+    delimiter: str | None = None,
+    positive_label: Any = None,
 ) -> TrainOutcome:
     """Train a kernel SVM (two classes, one-vs-one over three or more classes, ε-regression
     or one-class), audit it and save the run(s) to the store.
@@ -361,6 +386,14 @@ def train(
         primary run (attachment ``"calibration"``; see :mod:`solver.calibration`); with
         three or more classes every pair run gets its own sigmoid, combined at apply time
         by pairwise coupling.
+    feature_columns, ignore_columns : the training file's feature columns (default every
+        column but the label / target / known-outlier and weight columns) and columns left
+        out (an ID column, say); held-out files are read by the run's feature names, their
+        other columns ignored with a warning naming them.
+    delimiter : CSV delimiter of the data files (default detected).
+    positive_label : the label value (or its text) that f(x) > 0 predicts, two classes
+        only; default the later of the two sorted labels.  The mapping is recorded
+        (problem info ``labels``) and printed by ``train`` and the report.
     calibration_folds, calibration_seed : the stratified folds of that cross-validation
         (recorded with the run, so a re-run reproduces the probabilities bitwise).
 
@@ -419,6 +452,8 @@ def train(
             parallel=parallel,
             probabilities=bool(probabilities), calibration_folds=calibration_folds,
             calibration_seed=calibration_seed,
+            columns=Columns.of(feature_columns, ignore_columns, delimiter),
+            positive_label=positive_label,
             kinds={"task": task, "target": target, "epsilon": epsilon, "nu": nu,
                    "outlier_column": outlier_column},
         )
@@ -430,12 +465,27 @@ def train(
             warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
     seen: list[str] = []
     for m in [*outcome.warnings, *caught]:
+        m = _for_settings(m, standardise)
+        if m is None or f"data: {m}" in seen:
+            continue
         # a solver's own warning ("qp solver: MESSAGE") repeats a run's note ("... did not
         # converge: MESSAGE"): say it once
         tail = m.split(": ", 1)[-1]
         if m not in seen and not any(s != m and s.endswith(tail) for s in seen):
             seen.append(m)
     return replace(outcome, warnings=tuple(seen))
+
+
+def _for_settings(message: str, standardise: bool) -> str | None:
+    """A warning as it applies to this run: the intake's feature-scale warning is dropped
+    when the run standardises (the default) and says so when it does not."""
+    if SCALE_WARNING not in message:
+        return message
+    if standardise:
+        return None
+    return message.replace(SCALE_ADVICE, "; this run does not standardise them "
+                           "(--no-standardise): unscaled features slow SMO and let the "
+                           "widest column dominate the kernel")
 
 
 def _weights(ds: Dataset, class_weight: Any, weight_column: str | None
@@ -624,8 +674,13 @@ def _train(
     calibration_folds: int = 5,
     calibration_seed: int = 0,
     kinds: dict[str, Any] | None = None,
+    columns: Columns = NO_CHOICE,
+    positive_label: Any = None,
 ) -> TrainOutcome:
     if kinds and kinds["task"] != "classification":
+        if positive_label is not None:
+            raise InvalidInputError(f"--positive belongs to two-class classification; "
+                                    f"{kinds['task']} runs have no labels")
         if probabilities:
             raise InvalidInputError(
                 f"--probabilities needs a classification task (two or more classes); "
@@ -633,14 +688,18 @@ def _train(
         return _train_kind(data, label=label, kernel=kernel, gamma=gamma, degree=degree,
                            offset=offset, C=C, kkt_tol=kkt_tol, iteration_limit=iteration_limit,
                            solver=solver, standardise=standardise, holdout=holdout, store=store,
-                           trace=trace, explain=explain, progress=progress, **kinds)
+                           trace=trace, explain=explain, progress=progress,
+                           columns=columns, **kinds)
     from .distributed import run_jobs
     from .tasks import classification_task
     from .tasks._labels import class_order
 
+    if weight_column is not None and columns.features is not None and \
+            weight_column not in columns.features:
+        columns = replace(columns, features=(*columns.features, weight_column))
     loading = PhaseClock()
     with loading.phase("load"):
-        ds0 = _load_data(data, label, "training data")
+        ds0 = _load_data(data, label, "training data", columns)
     if ds0.labels is None:
         raise InvalidInputError("training data have no label column")
     ds, weights = _weights(ds0, class_weight, weight_column)
@@ -649,16 +708,18 @@ def _train(
     task = classification_task(len(classes))
     members = task.members(ds.labels, weights=weights,
                            options={"max_classes": max_classes, "label_name": ds.label_name})
+    if positive_label is not None:
+        members = _with_positive(members, positive_label, classes, ds, task.parent_record)
     if probabilities:
         _check_calibration_folds(ds.labels, calibration_folds, calibration_seed)
     hold = None
     if holdout is not None:
         with loading.phase("load"):
-            hold = _drop_column(_load_data(holdout, ds.label_name, "held-out data"),
-                                weight_column)
+            hold = _load_data(holdout, ds.label_name, "held-out data",
+                              replace(columns, features=None), names=ds.feature_names)
         if hold.labels is None:
             raise InvalidInputError("held-out data need the label column to be scored")
-        _align(hold, ds.feature_names, "held-out data")  # fail before solving
+        check_known_labels(hold, classes, "held-out data")
         if task.parent_record:
             task.held_out(_NoPrediction(hold.labels), hold.labels, classes)  # unseen labels
     opts = {"kernel": kernel, "gamma": gamma, "degree": degree if kernel == "poly" else None,
@@ -673,7 +734,9 @@ def _train(
                                     ",".join(f"{k}={v}" for k, v in class_weight.items()))
     if weight_column is not None:
         cmd_opts["weight_column"] = weight_column
-    command = _command(data, label, {**cmd_opts, "solver": solver}, holdout)
+    if positive_label is not None:
+        cmd_opts["positive_label"] = str(positive_label)
+    command = _command(data, label, {**cmd_opts, "solver": solver}, holdout, columns)
     extra: dict[str, Any] = {}
     if weights.weight_column is not None:
         extra["weight_column"] = weights.weight_column
@@ -797,6 +860,23 @@ def _train(
     )
 
 
+def _with_positive(members: list[MemberSpec], positive: Any, classes: Sequence[Any],
+                   ds: Dataset, parent: bool) -> list[MemberSpec]:
+    """The binary member with its positive label chosen by value or by text."""
+    where = f"{ds.source}: " if ds.source else ""
+    if parent:
+        raise InvalidInputError(
+            f"{where}--positive applies to two classes; label column {ds.label_name!r} has "
+            f"{len(classes)}, and each one-vs-one pair's positive label is its later class")
+    match = [c for c in classes if c == positive or str(c) == str(positive)]
+    if not match:
+        raise InvalidInputError(
+            f"{where}label column {ds.label_name!r} has no value {str(positive)!r} for "
+            f"--positive (its values: {', '.join(repr(str(c)) for c in classes)})")
+    (m,) = members
+    return [replace(m, build={**m.build, "positive_label": match[0]})]
+
+
 def _check_calibration_folds(labels: np.ndarray, n_folds: int, seed: int) -> None:
     """Refuse, before anything is solved, a bad fold count or seed and a class with fewer
     rows than calibration folds (the rule of :func:`solver.calibration.stratified_folds`,
@@ -885,7 +965,8 @@ def _train_kind(data: Any, *, label: str | None, kernel: str, gamma: float | Non
                 offset: float, C: float, kkt_tol: float, iteration_limit: int | None,
                 solver: str, standardise: bool, holdout: Any, store: RunStore, trace: str,
                 explain: bool, progress: ProgressFn | None, task: str, target: str | None,
-                epsilon: float, nu: float, outlier_column: str | None) -> TrainOutcome:
+                epsilon: float, nu: float, outlier_column: str | None,
+                columns: Columns = NO_CHOICE) -> TrainOutcome:
     """ε-regression and one-class fits (:mod:`solver.training_kinds`) as a TrainOutcome."""
     from .training_kinds import kind_summary, train_kind
 
@@ -899,7 +980,7 @@ def _train_kind(data: Any, *, label: str | None, kernel: str, gamma: float | Non
                      epsilon=epsilon, nu=nu, kern=kern, C=C, kkt_tol=kkt_tol,
                      iteration_limit=iteration_limit, solver=solver, standardise=standardise,
                      holdout=holdout, store=store, trace=trace, explain=explain,
-                     progress=progress, opts=opts)
+                     progress=progress, opts=opts, columns=columns)
     ids, saved, comparison = got["ids"], got["records"], got["comparison"]
     summaries = tuple(
         {**_run_summary(rec, rid, store.run_dir(rid)), **kind_summary(rec)}

@@ -21,6 +21,8 @@ import numpy as np
 
 from ._workflow import (
     HOLDOUT_ROWS,
+    NO_CHOICE,
+    Columns,
     ProgressFn,
     _align,
     _fingerprint,
@@ -93,7 +95,8 @@ def known_outliers(ds: Dataset) -> np.ndarray:
 
 
 def _load_training(data: Any, task: str, target: str | None, label: str | None,
-                   outlier_column: str | None) -> tuple[Dataset, np.ndarray | None]:
+                   outlier_column: str | None, columns: Columns = NO_CHOICE
+                   ) -> tuple[Dataset, np.ndarray | None]:
     if task == "regression":
         if label is not None:
             raise InvalidInputError("regression uses --target COLUMN for the continuous "
@@ -103,7 +106,7 @@ def _load_training(data: Any, task: str, target: str | None, label: str | None,
         if isinstance(data, (str, Path)) and target is None:
             raise InvalidInputError("name the target column of the training file "
                                     "(--target COLUMN)")
-        ds = _load_data(data, target, "training data")
+        ds = _load_data(data, target, "training data", columns)
         if ds.labels is None:
             raise InvalidInputError("training data have no target column")
         t = numeric_column(ds, "target")
@@ -125,7 +128,7 @@ def _load_training(data: Any, task: str, target: str | None, label: str | None,
 
         if not _has_column(Path(data), outlier_column):
             outlier_column = None  # the training file need not carry it
-    ds = _load_data(data, outlier_column, "training data")
+    ds = _load_data(data, outlier_column, "training data", columns)
     if outlier_column is not None and ds.labels is not None:
         known_outliers(ds)  # validated now; the fit never uses it
     return ds, None
@@ -164,7 +167,7 @@ def train_kind(
     outlier_column: str | None, epsilon: float, nu: float, kern: Any, C: float,
     kkt_tol: float, iteration_limit: int | None, solver: str, standardise: bool,
     holdout: Dataset | str | Path | None, store: RunStore, trace: str, explain: bool,
-    progress: ProgressFn | None, opts: dict[str, Any],
+    progress: ProgressFn | None, opts: dict[str, Any], columns: Columns = NO_CHOICE,
 ) -> dict[str, Any]:
     """Fit, explain, score and save one regression or one-class problem (module notes).
 
@@ -179,15 +182,16 @@ def train_kind(
     kind = kind_of_task(task)
     clock = PhaseClock()
     with clock.phase("load"):
-        ds, t = _load_training(data, task, target, label, outlier_column)
+        ds, t = _load_training(data, task, target, label, outlier_column, columns)
     hold = None
     if holdout is not None:
         col = ds.label_name if kind == REGRESSION_KIND else outlier_column
+        hold_cols = replace(columns, features=None)
         with clock.phase("load"):
-            hold = _load_data(holdout, col, "held-out data")
+            hold = _load_data(holdout, col, "held-out data", hold_cols,
+                              names=ds.feature_names)
         if kind == REGRESSION_KIND and hold.labels is None:
             raise InvalidInputError("held-out data need the target column to be scored")
-        _align(hold, ds.feature_names, "held-out data")  # fail before solving
         if kind == REGRESSION_KIND:
             numeric_column(hold, "target")
         elif hold.labels is not None:
@@ -222,7 +226,7 @@ def train_kind(
     extra_opts = ({"epsilon": epsilon} if kind == REGRESSION_KIND else {"nu": nu})
     command = _t._command(data, None, {"task": task, "target": target,
                                        "outlier_column": outlier_column, **extra_opts, **opts,
-                                       "solver": solver}, holdout)
+                                       "solver": solver}, holdout, columns)
     records: list[RunRecord] = []
     for method in methods:
         lim = iteration_limit if (method == "smo" or solver == "qp") else None

@@ -152,6 +152,16 @@ def timing_text(timing: Mapping[str, float | None]) -> str:
     return ", ".join(parts) + tail
 
 
+#: display labels of the fit phases (solver.phases) whose own name would clash with a term:
+#: the "solve" phase is the whole solver call, compile included, not the solve seconds
+PHASE_LABELS = {"solve": "solver call"}
+
+
+def phase_label(name: str) -> str:
+    """Display label of the fit phase ``name`` (:data:`solver.phases.PHASES`)."""
+    return PHASE_LABELS.get(name, name)
+
+
 def caution_line(*, prefix: bool = True) -> str:
     """The standing caution as one terminal line, ``"caution: " + CAUTION`` (without the
     ``"caution: "`` prefix when ``prefix`` is False, e.g. for a JSON field)."""

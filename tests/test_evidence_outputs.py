@@ -125,6 +125,8 @@ def test_report_html_pdf_json_show_solve_and_compile_apart(tour, tmp_path):
         assert run["identity"]["compile_time_s"] == t["compile_seconds"]
     html = (out / "report.html").read_text()
     assert html.count("compile time (s)") >= 2 and html.count("solve time (s)") >= 2
+    # "solve" is the iterations only; the fit phase of the whole solver call is named apart
+    assert "solver call " in html and not re.search(r"(?:·|>) ?solve \d", html)
     from pypdf import PdfReader
 
     pdf = " ".join(p.extract_text() for p in PdfReader(str(out / "report.pdf")).pages)

@@ -11,8 +11,10 @@ from __future__ import annotations
 import argparse
 import os
 import sys
-from collections.abc import Sequence
+import warnings
+from collections.abc import Callable, Sequence
 from importlib import import_module
+from typing import TextIO
 
 from ._shared import (
     EXIT_ERROR,
@@ -57,6 +59,21 @@ def _one_line(exc: BaseException) -> str:
     return " ".join(text.split())
 
 
+def _warning_printer() -> Callable[..., None]:
+    """``warnings.showwarning`` for the command: each warning once, as one line on stderr
+    in the tool's words (no source lines, no file positions)."""
+    shown: set[str] = set()
+
+    def show(message: Warning | str, category: type[Warning], filename: str, lineno: int,
+             file: TextIO | None = None, line: str | None = None) -> None:
+        text = _one_line(message if isinstance(message, BaseException) else Warning(message))
+        if text not in shown:
+            shown.add(text)
+            print(f"kktrace: warning: {text}", file=sys.stderr)
+
+    return show
+
+
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``kktrace`` command; returns the exit status."""
     parser = build_parser()
@@ -64,7 +81,9 @@ def main(argv: Sequence[str] | None = None) -> int:
     from solver import KktraceError
 
     try:
-        return int(args.func(args))
+        with warnings.catch_warnings():
+            warnings.showwarning = _warning_printer()
+            return int(args.func(args))
     except BrokenPipeError:
         # the reader went away (e.g. `| head`): stop quietly
         devnull = os.open(os.devnull, os.O_WRONLY)

@@ -216,3 +216,35 @@ def add_command(sub: Any, name: str, helptext: str, examples: str,
         parents=list(parents) if parents is not None else [common_options()],
         formatter_class=Formatter, epilog=examples + "\n\n" + EXIT_TEXT,
     )
+
+
+def names_arg(text: str) -> list[str]:
+    """``COL,COL,...``: column names separated by commas (surrounding spaces removed)."""
+    names = [c.strip() for c in text.split(",")]
+    if not all(names):
+        raise argparse.ArgumentTypeError(
+            f"expected column names separated by commas, got {text!r}")
+    return names
+
+
+def delimiter_arg(text: str) -> str:
+    """One delimiter character; ``tab`` or ``\\t`` for a tab."""
+    return "\t" if text in ("tab", "\\t") else text
+
+
+def add_column_options(p: argparse.ArgumentParser, what: str) -> None:
+    """``--features``, ``--ignore`` and ``--delimiter`` for the data file ``what``."""
+    g = p.add_argument_group(f"columns of {what}")
+    g.add_argument("--features", metavar="COL,...", type=names_arg, default=None,
+                   help="feature columns (default: every column but the label)")
+    g.add_argument("--ignore", metavar="COL,...", type=names_arg, default=None,
+                   help="columns to leave out (e.g. an ID column)")
+    g.add_argument("--delimiter", metavar="CHAR", type=delimiter_arg, default=None,
+                   help="CSV delimiter, e.g. ';' or tab (default: detected)")
+
+
+def column_kwargs(args: argparse.Namespace) -> dict[str, Any]:
+    """The API keywords of :func:`add_column_options`."""
+    return {"feature_columns": args.features, "ignore_columns": args.ignore,
+            "delimiter": args.delimiter}
+

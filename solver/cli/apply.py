@@ -9,7 +9,9 @@ from typing import Any
 
 from ._shared import (
     EXIT_OK,
+    add_column_options,
     add_command,
+    column_kwargs,
     emit_json,
 )
 
@@ -28,7 +30,7 @@ def cmd_apply(args: argparse.Namespace) -> int:
     if args.out:
         solver.check_output_path(args.out, store=args.store)
     sc = solver.apply(args.run, args.data, store=args.store, label=args.label,
-                      probabilities=args.probabilities)
+                      probabilities=args.probabilities, **column_kwargs(args))
     if args.out:
         _write_outputs(sc, Path(args.out))
     if args.json:
@@ -62,8 +64,8 @@ def cmd_apply(args: argparse.Namespace) -> int:
         heads = "" if probs is None else "  " + "  ".join(
             _prob_column(lab) for lab in sc.probability_labels)
         print("row  decision_value  label" + heads)
-        for i, (v, lab) in enumerate(zip(sc.values.tolist(), sc.labels.tolist(), strict=True)):
-            extra = "" if probs is None else "  " + "  ".join(f"{q:.6f}" for q in probs[i])
+        for i, (v, lab) in enumerate(zip(sc.values.tolist(), sc.labels.tolist(), strict=True), 1):
+            extra = "" if probs is None else "  " + "  ".join(f"{q:.6f}" for q in probs[i - 1])
             print(f"{i:<4d} {v:+.6f}       {lab}{extra}")
     return EXIT_OK
 
@@ -110,7 +112,7 @@ def _print_votes(sc: Any, args: argparse.Namespace) -> int:
     print("  ".join(heads))
     for i, lab in enumerate(sc.labels.tolist()):
         extra = [] if sc.probabilities is None else [f"{q:.6f}" for q in sc.probabilities[i]]
-        cells = [str(i), str(lab), *_vote_cells(sc, i)[:len(sc.vote_classes) + 1],
+        cells = [str(i + 1), str(lab), *_vote_cells(sc, i)[:len(sc.vote_classes) + 1],
                  *(f"{float(v):+.6f}" for v in sc.values[i]), *extra]
         print("  ".join(cells))
     return EXIT_OK
@@ -127,7 +129,7 @@ def _print_task(task: Any, columns: dict[str, list[Any]], sc: Any,
     for i in range(len(sc.values)):
         cells = [f"{v:<+11.6f}" if isinstance(v, float) else f"{v!s:<11s}"
                  for v in (columns[c][i] for c in columns)]
-        print("  ".join([f"{i:<4d}", *cells]).rstrip())
+        print("  ".join([f"{i + 1:<4d}", *cells]).rstrip())
     return EXIT_OK
 
 
@@ -142,7 +144,7 @@ def _write_outputs(sc: Any, path: Path) -> None:
             w.writerow(["row", "label", *_vote_heads(sc), *heads])
             for i, lab in enumerate(sc.labels.tolist()):
                 extra = [] if probs is None else [repr(float(q)) for q in probs[i]]
-                w.writerow([i, lab, *_vote_cells(sc, i), *extra])
+                w.writerow([i + 1, lab, *_vote_cells(sc, i), *extra])
             return
         import solver
 
@@ -150,14 +152,14 @@ def _write_outputs(sc: Any, path: Path) -> None:
         if columns is not None:  # the task's own columns (ε-regression, one-class)
             w.writerow(["row", *columns])
             for i in range(len(sc.values)):
-                w.writerow([i, *(repr(v) if isinstance(v, float) else v
+                w.writerow([i + 1, *(repr(v) if isinstance(v, float) else v
                                  for v in (columns[c][i] for c in columns))])
             return
         probs = sc.probabilities
         heads = [] if probs is None else [_prob_column(lab) for lab in sc.probability_labels]
         w.writerow(["row", "decision_value", "label", *heads])
-        for i, (v, lab) in enumerate(zip(sc.values.tolist(), sc.labels.tolist(), strict=True)):
-            extra = [] if probs is None else [repr(float(q)) for q in probs[i]]
+        for i, (v, lab) in enumerate(zip(sc.values.tolist(), sc.labels.tolist(), strict=True), 1):
+            extra = [] if probs is None else [repr(float(q)) for q in probs[i - 1]]
             w.writerow([i, repr(float(v)), lab, *extra])
 
 
@@ -170,9 +172,11 @@ def register(sub: Any) -> None:
     p.add_argument("--label", metavar="COLUMN", default=None,
                    help="label column, if the data have one (default: the run's, if present)")
     p.add_argument("--out", metavar="FILE", default=None,
-                   help="write row, value, label (and probability_<label> columns) as CSV")
+                   help="write row (the 1-based data row, as in error messages), value, label "
+                   "(and probability_<label> columns) as CSV")
     p.add_argument("--probabilities", action="store_true",
                    help="add P(class | x) for every class from the run's fitted sigmoid "
                    "(the run must be trained with --probabilities)")
+    add_column_options(p, "DATAFILE")
     p.set_defaults(func=cmd_apply)
 

@@ -8,7 +8,9 @@ from typing import Any
 
 from ._shared import (
     EXIT_OK,
+    add_column_options,
     add_command,
+    column_kwargs,
     emit_json,
     num,
     print_rows,
@@ -27,7 +29,7 @@ def cmd_compare(args: argparse.Namespace) -> int:
     import solver
 
     comp = solver.compare(args.run_a, args.run_b, store=args.store, holdout=args.holdout,
-                          allow_mismatch=args.allow_mismatch)
+                          allow_mismatch=args.allow_mismatch, **column_kwargs(args))
     d = to_dict(comp)
     if args.json:
         emit_json(d, sys.stdout)
@@ -87,5 +89,6 @@ def register(sub: Any) -> None:
                    help="also compare decision values on this data")
     p.add_argument("--allow-mismatch", action="store_true",
                    help="compare runs of different problems (the verdict says so)")
+    add_column_options(p, "the --holdout file")
     p.set_defaults(func=cmd_compare)
 

@@ -10,8 +10,10 @@ from typing import Any
 
 from ._shared import (
     EXIT_OK,
+    add_column_options,
     add_command,
     cell,
+    column_kwargs,
     emit_json,
     num,
     positive_int,
@@ -73,7 +75,11 @@ def cmd_explain(args: argparse.Namespace) -> int:
         points = _parse_point_text(args.point)
     elif args.query is not None:
         points = args.query
-    res = solver.explain(args.run, store=args.store, points=points, top=args.top)
+    kw = column_kwargs(args) if args.query is not None else {}
+    if args.query is None and any(kw_v is not None for kw_v in column_kwargs(args).values()):
+        raise solver.InvalidInputError("--features, --ignore and --delimiter apply to the "
+                                       "--query file")
+    res = solver.explain(args.run, store=args.store, points=points, top=args.top, **kw)
     if points is None:
         cols = {k: list(v) for k, v in res.to_columns().items()}
         if args.out:
@@ -168,11 +174,16 @@ def _print_breakdown(d: Mapping[str, Any], run: str) -> None:
     shares = np.atleast_2d(d["top_shares"])
     print(f"decision values of run {run}: f(x) = sum of support-vector terms + bias "
           f"(bias {num(d['bias'])}, {d['n_support']} support vectors)")
+    labels = d.get("labels")
     for q in range(values.shape[0]):
         side = "positive" if values[q] > 0 else "negative"
-        print(f"query {q}: f(x) = {values[q]:+.6g}  ({side} side)")
+        if labels:
+            lab = labels[1] if values[q] > 0 else labels[0]
+            side = f"label {str(lab)!r}: {side} side"
+        print(f"query {q + 1}: f(x) = {values[q]:+.6g}  ({side})")
         for r, c, sh in zip(rows[q], contrib[q], shares[q], strict=True):
-            print(f"  training row {int(r):>6d}  {c:+.6g}  ({sh:.1%} of the absolute total)")
+            print(f"  training row {int(r) + 1:>6d} (index {int(r)})  {c:+.6g}  "
+                  f"({sh:.1%} of the absolute total)")
         rem = np.atleast_1d(d["remainder"])[q]
         rem_share = np.atleast_1d(d["remainder_share"])[q]
         print(f"  all other support vectors  {rem:+.6g}  ({rem_share:.1%})")
@@ -198,5 +209,6 @@ def register(sub: Any) -> None:
                         "as a child record")
     p.add_argument("--no-keep", action="store_true",
                    help="with --leave-one-out: print the figures without storing them")
+    add_column_options(p, "the --query file")
     p.set_defaults(func=cmd_explain)
 

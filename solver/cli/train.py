@@ -10,7 +10,9 @@ from typing import Any
 from ._shared import (
     EXIT_NOT_CONVERGED,
     EXIT_OK,
+    add_column_options,
     add_command,
+    column_kwargs,
     emit_json,
     float_arg,
     num,
@@ -65,6 +67,10 @@ def _run_block(s: Mapping[str, Any], role: str) -> list[str]:
     if isinstance(s.get("task"), str):  # the task's own lines (ε-regression, one-class)
         for head, text in solver.get_task(s["task"]).run_lines(s):
             lines.append(f"  {head:13s} {text}")
+    labels = s.get("labels")
+    if labels:
+        lines.append(f"  labels        f(x) > 0 predicts {str(labels['positive'])!r} (positive), "
+                     f"f(x) <= 0 predicts {str(labels['negative'])!r} (negative)")
     if "holdout_accuracy" in s:
         lines.append(
             f"  held-out      accuracy {num(s['holdout_accuracy'], '.3f')}, balanced accuracy "
@@ -154,6 +160,7 @@ def cmd_train(args: argparse.Namespace) -> int:
         target=args.target, epsilon=args.epsilon, nu=args.nu,
         outlier_column=args.outlier_column, probabilities=args.probabilities,
         calibration_folds=args.calibration_folds, calibration_seed=args.calibration_seed,
+        positive_label=args.positive, **column_kwargs(args),
     )
     if args.json:
         emit_json(outcome.summary(), sys.stdout)
@@ -271,6 +278,9 @@ def register(sub: Any) -> None:
                    help="scale C per class: LABEL=W pairs, or 'balanced' for "
                    "w_c = n / (k * n_c) (n rows, k classes, n_c rows of class c); "
                    "bounds become u_i = C * w_class * w_row")
+    p.add_argument("--positive", metavar="LABEL", default=None,
+                   help="the label that f(x) > 0 predicts (two classes; default the later "
+                   "of the two sorted labels)")
     p.add_argument("--weight-column", metavar="COLUMN", default=None,
                    help="column of per-row weights > 0 scaling C per row (not a feature)")
     p.add_argument("--max-classes", type=positive_int, default=None,
@@ -291,6 +301,7 @@ def register(sub: Any) -> None:
     p.add_argument("--sign", metavar="PRIVATE_KEY", default=None,
                    help="sign each run's manifest digest with this Ed25519 key "
                    "(NAME.private.pem from 'kktrace keys new'; default $KKTRACE_SIGNING_KEY)")
+    add_column_options(p, "DATAFILE and --holdout")
     p.set_defaults(func=cmd_train, train_parser=p)
 
     p = add_command(sub, "demo", "run the full audit on invented tablet-coating QC data",

@@ -26,6 +26,8 @@ class Breakdown:
     ``remainder`` (m,) sum of all other contributions; ``remainder_share`` (m,) their
     share of Σ|contribution|; ``total_abs`` (m,) Σ|contribution| over all support vectors.
     Identity: ``top_contributions.sum(1) + remainder + bias == values`` up to rounding.
+    ``labels`` (negative, positive): the label values of a classification model (f > 0
+    gives the positive one, f <= 0 the negative one); None for other models.
     """
 
     values: np.ndarray
@@ -37,6 +39,7 @@ class Breakdown:
     remainder_share: np.ndarray
     total_abs: np.ndarray
     n_support: int
+    labels: tuple | None = None
 
     @property
     def n_queries(self) -> int:
@@ -131,6 +134,7 @@ def breakdown(
         values=values, bias=float(model.bias), top_rows=top_rows, top_contributions=top_c,
         top_shares=np.abs(top_c) / denom[:, None], remainder=rem,
         remainder_share=rest_abs / denom, total_abs=total, n_support=int(k),
+        labels=None if model.labels is None else tuple(model.labels),
     )
 
 

@@ -126,6 +126,10 @@ def _problem_items(rec: RunRecord) -> tuple[tuple[str, Any], ...]:
     for k in ("C", "labels", "class_weight", "sample_weight", "class_counts"):
         if k in desc and desc[k] is not None:
             items.append((k, _plain(desc[k])))
+    labels = desc.get("labels")
+    if isinstance(labels, Mapping) and "positive" in labels:
+        items.append(("label mapping", f"f(x) > 0 predicts {str(labels['positive'])!r} "
+                      f"(positive), f(x) <= 0 predicts {str(labels['negative'])!r} (negative)"))
     items.append(("upper bounds range", f"{_fmt_num(p.upper.min())} … {_fmt_num(p.upper.max())}"))
     std = rec.standardiser
     ident = bool(np.all(std.centre == 0) and np.all(std.scale == 1))

@@ -14,7 +14,7 @@ from collections.abc import Mapping, Sequence
 from importlib import resources
 from typing import Any
 
-from ..vocabulary import heading, label
+from ..vocabulary import heading, label, phase_label
 from .content import AGREE_VERDICTS, LOOSE_VERDICTS, Flag, ReportContent, RunContent, Table
 from .figures import figure_svg
 
@@ -197,10 +197,11 @@ def _contents(c: ReportContent) -> str:
 
 
 def _phase_text(phases: Any) -> str | None:
-    """``load 0.41 · audit 0.12 · solve 1.20 …`` (solver.phases), or None when not recorded."""
+    """``load 0.41 · audit 0.12 · solver call 1.20 …`` (solver.phases; the solve phase is
+    the whole solver call, so it is not labelled "solve"), or None when not recorded."""
     if not phases:
         return None
-    return " · ".join(f"{k} {float(v):.3g}" for k, v in dict(phases).items())
+    return " · ".join(f"{phase_label(k)} {float(v):.3g}" for k, v in dict(phases).items())
 
 
 def _termination_rows(t: Mapping[str, Any]) -> list[tuple[str, Any]]:
