@@ -432,3 +432,30 @@ def test_other_commands_treat_a_study_as_a_study(tmp_path):
         assert r.returncode == 1 and "not a model" in r.stderr, r.stderr
     r = kk("runs", "--store", store)
     assert "member runs below" in r.stdout and "  fit C=0.3 gamma=0.1 vs fold=0" in r.stdout
+
+
+@pytest.mark.filterwarnings("ignore::solver.DataWarning")
+def test_a_multiclass_study_stores_one_vs_one_fits_and_verifies(tmp_path):
+    """Three classes (scikit-learn's bundled wine data, Forina et al., from memory): every
+    fit is a one-vs-one parent over its three pair runs, the study a parent over those."""
+    from sklearn.datasets import load_wine
+
+    d = load_wine()
+    ds = solver.from_arrays(d.data, np.array(["a", "b", "c"])[d.target],
+                            label_name="cultivar", source="wine")
+    out = study(ds, C=[1.0, 10.0], gamma=[0.05], folds=3, seed=0, scheduler="sequential",
+                store=tmp_path)
+    assert len(out.rows) == 6 and all(0.8 < r["accuracy"] <= 1.0 for r in out.rows)
+    st = solver.RunStore(tmp_path)
+    v = st.verify(out.study_id)
+    assert v.ok, v.problems
+    assert len(st.run_ids()) == 6 * (3 + 1) + 1  # pairs, a parent per fit, the study
+    fit = st.load_parent(out.rows[0]["run_id"])
+    assert fit.task == "multiclass" and len(fit.members) == 3
+    assert fit.attachments["study_fit"]["fold"] == out.rows[0]["fold"]
+    again = study(ds, C=[1.0, 10.0], gamma=[0.05], folds=3, seed=0, scheduler="sequential",
+                  store=tmp_path)
+    assert again.reused == 6 and again.fitted == 0
+    with pytest.raises(InvalidInputError, match="two-class studies"):
+        study(ds, C=[1.0], gamma=[0.05], folds=3, warm_start=True, scheduler="sequential",
+              store=tmp_path)

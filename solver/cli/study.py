@@ -122,7 +122,8 @@ def register(sub: Any) -> None:
     p = add_command(sub, "study", "cross-validate a grid of C x gamma on Dask; every fit "
                     "a stored run, the study a parent record", _STUDY_EXAMPLES)
     p.add_argument("data", metavar="DATAFILE")
-    p.add_argument("--label", metavar="COLUMN", default=None, help="label column (two classes)")
+    p.add_argument("--label", metavar="COLUMN", default=None,
+                   help="label column (two or more classes)")
     p.add_argument("--kernel", default="rbf", choices=["linear", "poly", "rbf", "sigmoid"])
     p.add_argument("--C", metavar="VALUES", default="0.1,1,10",
                    help="comma-separated penalties, each > 0 (default 0.1,1,10)")

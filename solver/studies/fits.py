@@ -23,7 +23,7 @@ from ..model import Standardiser, model_from_solution
 from ..run import RunRecord
 from .grid import Cell
 
-__all__ = ["StudyData", "FitJob", "FitOutput", "fit_chain", "fit_key", "SMALL_VALUE"]
+__all__ = ["StudyData", "FitJob", "FitOutput", "FitView", "fit_chain", "fit_key", "SMALL_VALUE"]
 
 #: validation rows with |f(x)| below this are counted: their predicted class may flip
 #: between two solvers that meet the same tolerance (the reference check allows them)
@@ -63,15 +63,36 @@ class FitJob:
 
 @dataclass(frozen=True, eq=False)
 class FitOutput:
-    """One fit: its record (not yet stored), validation scores and the count of small
-    validation decision values."""
+    """One fit (not yet stored).  A single-run task gives ``record`` (its attachments
+    hold the validation scores); a task with a parent record (one-vs-one) gives
+    ``members`` ``(role, key, record)``, the parent's ``info``, ``attachments`` (the
+    scores) and ``data``, and the client stores the members and a parent per fit."""
 
     key: str
     cell: Cell
     fold: int
-    record: RunRecord
-    values: np.ndarray
+    record: RunRecord | None
     warm_start: bool
+    members: tuple[tuple[str, Any, RunRecord], ...] = ()
+    info: Mapping[str, Any] | None = None
+    attachments: Mapping[str, Any] = field(default_factory=dict)
+    data: Mapping[str, Any] = field(default_factory=dict)
+
+
+@dataclass(frozen=True, eq=False)
+class FitView:
+    """What the table reads of a stored fit: its attachments and its runs' (problem,
+    result) pairs (one run, or every pair of a one-vs-one fit)."""
+
+    attachments: Mapping[str, Any]
+    runs: tuple[tuple[Any, Any], ...]
+
+    @classmethod
+    def of_output(cls, o: FitOutput) -> FitView:
+        """The view of a fresh fit."""
+        if o.record is not None:
+            return cls(o.record.attachments, ((o.record.problem, o.record.result),))
+        return cls(o.attachments, tuple((r.problem, r.result) for _, _, r in o.members))
 
 
 def fit_key(base: Mapping[str, Any], cell: Cell, fold: int, warm: bool) -> str:
@@ -103,49 +124,68 @@ def fit_chain(data: StudyData, job: FitJob) -> list[FitOutput]:
     val_rows = np.flatnonzero(data.folds == job.fold)
     sub = _subset(ds, train_rows)
     val = _subset(ds, val_rows)
-    (member,) = task.members(sub.labels)
     opts = job.options
-    std = Standardiser.fit(sub.X) if opts.get("standardise", True) else \
-        Standardiser.identity(sub.X.shape[1])
-    Z = std.transform(sub.X)
-    data_facts = {
-        "fingerprint": _fingerprint(sub), "feature_names": list(ds.feature_names),
-        "label_name": ds.label_name, "source": ds.source, "warnings": list(sub.warnings),
-        "n_rows": int(sub.X.shape[0]), **job.extra_data,
-    }
+    members = task.members(sub.labels, options={"label_name": ds.label_name})
+    parts = []  # per member: its spec, standardiser, standardised rows, data facts
+    for m in members:
+        mds = _subset(sub, m.rows)
+        std = Standardiser.fit(mds.X) if opts.get("standardise", True) else \
+            Standardiser.identity(mds.X.shape[1])
+        parts.append((m, std, std.transform(mds.X), {
+            "fingerprint": _fingerprint(mds), "feature_names": list(ds.feature_names),
+            "label_name": ds.label_name, "source": ds.source, "warnings": list(mds.warnings),
+            "n_rows": int(mds.X.shape[0]), **job.extra_data}))
+    info = task.describe(members, sub.labels, None) if task.parent_record else None
+    fit_data = {"fingerprint": _fingerprint(sub), "feature_names": list(ds.feature_names),
+                "label_name": ds.label_name, "source": ds.source, "warnings": [],
+                "n_rows": int(sub.X.shape[0]), **job.extra_data}
     from ..tasks._labels import class_order
 
     classes = class_order(ds.labels)
     out: list[FitOutput] = []
-    prev = None
+    prev: list[Any] = [None] * len(parts)
     for cell, key in zip(job.cells, job.keys, strict=True):
-        problem = task.build_problem(Z, member, kernel=_kernel(opts, cell), C=cell.C)
-        start = None
-        if job.warm and prev is not None:
-            p_prob, p_res = prev
-            # α scaled into the new box (bounds are C times fixed weights), then feasible
-            start = repair_start(problem, p_res.alpha * (cell.C / p_prob.info["C"]))
-        result = _solve_from(problem, opts, start, _solve)
-        model = model_from_solution(problem, result, std)
-        pred = task.predict([model], val.X)
+        runs, models, warm = [], [], False
+        for i, (m, std, Z, facts) in enumerate(parts):
+            problem = task.build_problem(Z, m, kernel=_kernel(opts, cell), C=cell.C)
+            start = None
+            if job.warm and prev[i] is not None:
+                p_prob, p_res = prev[i]
+                # α scaled into the new box (bounds are C times fixed weights), then feasible
+                start = repair_start(problem, p_res.alpha * (cell.C / p_prob.info["C"]))
+                warm = True
+            result = _solve_from(problem, opts, start, _solve)
+            models.append(model_from_solution(problem, result, std))
+            runs.append((m, problem, result, std, facts))
+            prev[i] = (problem, result)
+        pred = task.predict(models, val.X, info)
         scores = task.held_out(pred, val.labels, classes)
-        values = np.asarray(pred.values[:, 0], dtype=np.float64)
+        vals = np.abs(np.asarray(pred.values, dtype=np.float64).reshape(val_rows.size, -1))
+        small = vals.min(axis=1) < SMALL_VALUE if vals.size else np.zeros(0, bool)
         scores.update(source="validation fold", fold=int(job.fold),
-                      n_small_values=int(np.sum(np.abs(values) < SMALL_VALUE)),
-                      small_value_threshold=SMALL_VALUE)
+                      n_small_values=int(np.sum(small)), small_value_threshold=SMALL_VALUE)
         att = {
             "command": job.command,
             "holdout": scores,
             "study_fit": {"key": key, "cell": cell.to_dict(), "fold": int(job.fold),
-                          "start": "warm" if start is not None else "cold",
+                          "start": "warm" if warm else "cold",
                           "validation_rows": int(val_rows.size)},
         }
-        rec = RunRecord(problem=problem, result=result,
-                        data={**data_facts, "study_fit_key": key}, standardiser=std,
-                        attachments=att)
-        out.append(FitOutput(key=key, cell=cell, fold=int(job.fold), record=rec,
-                             values=values, warm_start=start is not None))
-        prev = (problem, result)
+        if not task.parent_record:
+            m, problem, result, std, facts = runs[0]
+            rec = RunRecord(problem=problem, result=result,
+                            data={**facts, "study_fit_key": key}, standardiser=std,
+                            attachments=att)
+            out.append(FitOutput(key=key, cell=cell, fold=int(job.fold), record=rec,
+                                 warm_start=warm))
+            continue
+        parts_out = tuple(
+            (m.role, m.key, RunRecord(problem=problem, result=result, data=facts,
+                                      standardiser=std, attachments={"command": job.command}))
+            for m, problem, result, std, facts in runs)
+        out.append(FitOutput(key=key, cell=cell, fold=int(job.fold), record=None,
+                             warm_start=warm, members=parts_out, info=info,
+                             attachments=att, data={**fit_data, "study_fit_key": key}))
     return out
 
 

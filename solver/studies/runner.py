@@ -27,9 +27,9 @@ import numpy as np
 
 from ..errors import InvalidInputError
 from ..result import TRACE_LEVELS
-from ..run import Member, ParentRecord, RunRecord
+from ..run import Member, ParentRecord
 from .execute import CONNECT_TIMEOUT_S, RETRIES, connect, run_study_jobs
-from .fits import FitJob, StudyData, fit_chain, fit_key
+from .fits import FitJob, FitOutput, FitView, StudyData, fit_chain, fit_key
 from .grid import Grid, make_grid
 from .table import aggregate, choose, fit_row, write_parquet
 
@@ -194,7 +194,7 @@ def study(
     Parameters
     ----------
     data, label : a :class:`~solver.data.Dataset` or a data file and its label column
-        (two classes).
+        (two classes, or three or more: each fit then one-vs-one, a parent over its pairs).
     kernel, C, gamma, degree, offset : the kernel and the grid axes (each non-empty, every
         value > 0; ``gamma`` for rbf/poly/sigmoid, ``degree`` for poly, default 3).
     folds, seed : stratified seeded k-fold assignment (the fold of every row is stored).
@@ -270,9 +270,10 @@ def _study(
         raise InvalidInputError("study data have no label column")
     classes = class_order(ds.labels)
     task = classification_task(len(classes))
-    if task.parent_record:
-        raise InvalidInputError(f"the label column has {len(classes)} classes; studies "
-                                "support two-class data so far")
+    if task.parent_record and (warm_start or stability):
+        raise InvalidInputError(f"the label column has {len(classes)} classes: warm starts "
+                                "and stability evidence are for two-class studies so far; "
+                                "drop --warm-start / --stability")
     fold_of = study_folds(ds.labels, folds, seed)
     run_store = open_store(store)
     out_table = None
@@ -317,11 +318,11 @@ def _study(
                  for k in range(int(folds))]
     known = _existing(run_store, train_fps)
     notes: list[str] = [f"data: {w}" for w in ds.warnings]
-    stored: dict[str, tuple[str, RunRecord]] = {}
+    stored: dict[str, tuple[str, FitView]] = {}
     for key in {k for j in [*jobs, *checks] for k in j.keys}:
         if key in known:
             try:
-                stored[key] = (known[key], run_store.load(known[key], verify=True))
+                stored[key] = (known[key], _load_fit(run_store, known[key]))
             except Exception as exc:  # noqa: BLE001 - a damaged earlier fit is fitted again
                 notes.append(f"run {known[key]} was not reused ({exc}); fitted again")
     reused = len(stored)
@@ -334,8 +335,8 @@ def _study(
         for o in outputs:
             if o.key in stored:
                 continue  # a warm chain refits earlier cells to reach the missing ones
-            rid = run_store.save(o.record)
-            stored[o.key] = (rid, o.record)
+            rid = _save_fit(run_store, o, task.name, job_opts=opts)
+            stored[o.key] = (rid, FitView.of_output(o))
             state["done"] += 1
             state["fitted"] += 1
         if progress is not None:
@@ -345,7 +346,7 @@ def _study(
             rate = ((now - state["first"]) / (state["fitted"] - 1)
                     if state["fitted"] > 1 else None)
             left = None if rate is None else rate * (total - state["done"])
-            fails = sum(not r.result.success for _, r in stored.values())
+            fails = sum(not all(r.success for _, r in v.runs) for _, v in stored.values())
             progress(state["done"], total, fails, el, left)
 
     connected = None
@@ -420,13 +421,54 @@ def _stability(ds: Any, fold_of: np.ndarray, choice: Mapping[str, Any],
     return summarise(fits, ids), members
 
 
+def _load_fit(store: Any, run_id: str) -> FitView:
+    """A stored fit (a run, or a one-vs-one parent and its pair runs), verified."""
+    if store.is_parent(run_id):
+        parent = store.load_parent(run_id)  # verifies the parent and every member
+        recs = [store.load(m.run_id, verify=False) for m in parent.members]
+        return FitView(parent.attachments, tuple((r.problem, r.result) for r in recs))
+    rec = store.load(run_id, verify=True)
+    return FitView(rec.attachments, ((rec.problem, rec.result),))
+
+
+def _save_fit(store: Any, o: FitOutput, task: str, *, job_opts: Mapping[str, Any]) -> str:
+    """Store a fresh fit: its run, or its pair runs then a parent record over them."""
+    from ..training import _STATUS_ORDER, worst
+
+    if o.record is not None:
+        return store.save(o.record)
+    refs = []
+    for role, key, rec in o.members:
+        refs.append(Member(run_id=store.save(rec), role=role, key=key))
+    rs = [r for _, _, rec in o.members for r in (rec.result,)]
+    status = worst([r.status.label for r in rs], _STATUS_ORDER) or "converged"
+    p0 = o.members[0][2].problem
+    summary = {
+        "task": task, "members": len(refs), "pairs": len(refs), "status": status,
+        "converged": all(r.success for r in rs),
+        "solver": {"name": "smo", "status": status,
+                   "iterations": int(sum(r.iterations for r in rs)),
+                   "seconds": float(sum(r.seconds for r in rs))},
+        "problem": {"kind": "multiclass_one_vs_one", "n": int(o.data["n_rows"]),
+                    "n_features": int(p0.X.shape[1]), "kernel": p0.kernel.describe(),
+                    "info": {"C": float(o.cell.C)}},
+        "certificate": {"kkt_tol": float(job_opts["kkt_tol"]),
+                        "max_violation": float(max(r.certificate.max_violation for r in rs)),
+                        "duality_gap": float(max(r.certificate.duality_gap for r in rs))},
+    }
+    info = {**dict(o.info or {}), "options": dict(job_opts), "execution": None}
+    return store.save_parent(ParentRecord(
+        task=task, members=tuple(refs), info=info, data=dict(o.data), summary=summary,
+        attachments=dict(o.attachments), command=o.attachments.get("command")))
+
+
 #: warm and cold fits of a cell agree when both meet the certificate and their dual
 #: objectives differ by at most this much relative to max(1, |objective|)
 WARM_OBJECTIVE_TOL = 1e-3
 
 
 def _warm_check(checks: Sequence[FitJob], jobs: Sequence[FitJob],
-                stored: Mapping[str, tuple[str, RunRecord]], opts: Mapping[str, Any]
+                stored: Mapping[str, tuple[str, FitView]], opts: Mapping[str, Any]
                 ) -> tuple[dict[str, Any], list[Member]]:
     """Iterations of warm-started fits against the same cells started cold, and whether
     both give the same certificate (see :data:`WARM_OBJECTIVE_TOL`)."""
@@ -440,24 +482,25 @@ def _warm_check(checks: Sequence[FitJob], jobs: Sequence[FitJob],
         crid, cold = stored[j.keys[0]]
         wrid, warm = warm_of[(j.fold, c)]
         members.append(Member(run_id=crid, role="cold_check", key=(c.label, f"fold={j.fold}")))
-        dw = float(warm.result.certificate.dual_objective)
-        dc = float(cold.result.certificate.dual_objective)
+        (_, wres), (_, cres) = warm.runs[0], cold.runs[0]
+        dw = float(wres.certificate.dual_objective)
+        dc = float(cres.certificate.dual_objective)
         rel = abs(dw - dc) / max(1.0, abs(dc))
         hw, hc = warm.attachments["holdout"], cold.attachments["holdout"]
         cells.append({
             "cell": c.label, "fold": j.fold, "warm_run_id": wrid, "cold_run_id": crid,
-            "warm_iterations": int(warm.result.iterations),
-            "cold_iterations": int(cold.result.iterations),
-            "both_converged": bool(warm.result.success and cold.result.success),
+            "warm_iterations": int(wres.iterations),
+            "cold_iterations": int(cres.iterations),
+            "both_converged": bool(wres.success and cres.success),
             "dual_objective_relative_difference": rel,
             "accuracy_difference": abs(float(hw["accuracy"]) - float(hc["accuracy"])),
-            "same_certificate": bool(warm.result.success and cold.result.success
+            "same_certificate": bool(wres.success and cres.success
                                      and rel <= WARM_OBJECTIVE_TOL),
         })
     w = sum(x["warm_iterations"] for x in cells)
     cd = sum(x["cold_iterations"] for x in cells)
     # the first C of every sampled chain starts cold either way: counted in both path totals
-    first = sum(int(stored[j.keys[0]][1].result.iterations) for j in jobs
+    first = sum(int(stored[j.keys[0]][1].runs[0][1].iterations) for j in jobs
                 if j.fold == 0 and j.warm)
     return {"sample": "every cell but the first C of each gamma/degree chain, fold 0",
             "cells": cells, "warm_iterations": w, "cold_iterations": cd,

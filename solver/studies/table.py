@@ -18,8 +18,6 @@ from typing import Any
 
 import numpy as np
 
-from ..run import RunRecord
-
 __all__ = ["fit_row", "aggregate", "choose", "ONE_SE_RULE", "ROW_COLUMNS", "write_parquet"]
 
 ONE_SE_RULE = ("one-standard-error rule (Hastie, Tibshirani & Friedman, The Elements of "
@@ -35,15 +33,18 @@ ROW_COLUMNS = ("cell", "C", "gamma", "degree", "fold", "run_id", "start", "score
                "shrink_events")
 
 
-def fit_row(record: RunRecord, run_id: str, score_name: str) -> dict[str, Any]:
-    """One row of the table from a (stored) fit record."""
-    r, c = record.result, record.result.certificate
-    sf = record.attachments["study_fit"]
-    h = record.attachments["holdout"]
-    cell = sf["cell"]
-    n = max(1, int(record.problem.n))
+def fit_row(fit: Any, run_id: str, score_name: str) -> dict[str, Any]:
+    """One row of the table from a fit's :class:`~.fits.FitView` (its attachments and its
+    runs: one, or every pair of a one-vs-one fit — iterations, seconds and events summed,
+    the worst status, the largest violation and gap, shares over all pair variables)."""
+    from ..training import _STATUS_ORDER, worst
     from .grid import Cell
 
+    sf = fit.attachments["study_fit"]
+    h = fit.attachments["holdout"]
+    cell = sf["cell"]
+    rs = [r for _, r in fit.runs]
+    n = max(1, sum(int(p.n) for p, _ in fit.runs))
     return {
         "cell": Cell(cell["C"], cell["gamma"], cell["degree"]).label,
         "C": float(cell["C"]), "gamma": cell["gamma"], "degree": cell["degree"],
@@ -54,12 +55,16 @@ def fit_row(record: RunRecord, run_id: str, score_name: str) -> dict[str, Any]:
                               else None),
         "validation_rows": int(sf["validation_rows"]),
         "n_small_values": int(h.get("n_small_values", 0)),
-        "iterations": int(r.iterations), "seconds": float(r.seconds),
-        "status": r.status.label, "converged": bool(r.success),
-        "max_violation": float(c.max_violation), "duality_gap": float(c.duality_gap),
-        "support_share": int(c.n_support) / n, "bounded_share": int(c.n_bounded) / n,
-        "curvature_fixes": int(r.extra.get("curvature_fixes", 0) or 0),
-        "shrink_events": int(r.extra.get("shrinks", 0) or 0),
+        "iterations": int(sum(r.iterations for r in rs)),
+        "seconds": float(sum(r.seconds for r in rs)),
+        "status": worst([r.status.label for r in rs], _STATUS_ORDER) or "converged",
+        "converged": all(r.success for r in rs),
+        "max_violation": float(max(r.certificate.max_violation for r in rs)),
+        "duality_gap": float(max(r.certificate.duality_gap for r in rs)),
+        "support_share": sum(int(r.certificate.n_support) for r in rs) / n,
+        "bounded_share": sum(int(r.certificate.n_bounded) for r in rs) / n,
+        "curvature_fixes": int(sum(int(r.extra.get("curvature_fixes", 0) or 0) for r in rs)),
+        "shrink_events": int(sum(int(r.extra.get("shrinks", 0) or 0) for r in rs)),
     }
 
 
