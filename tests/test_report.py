@@ -25,7 +25,7 @@ from solver.errors import InvalidInputError
 from solver.reporting import build_report_content, write_report
 from solver.reporting._series import replay_pairs
 from solver.reporting.content import CAUTION
-from solver.reporting.html import fmt, render_html
+from solver.reporting.html import render_html
 from solver.reporting.pdf import plan_pages
 from solver.reporting.summary import load_schema, summary_dict, summary_json
 from solver.smo import replay_alpha
@@ -316,7 +316,9 @@ def test_pdf_pages_and_text(written: dict) -> None:
     for rc in written["content"].runs:
         t = rc.termination
         assert f"status {t['status']}" in everything
-        gap = fmt(t["duality_gap"]).replace("×10^", "e")
+        from solver.reporting.pdf import pdf_num
+
+        gap = pdf_num(t["duality_gap"])
         assert gap in everything
     assert f"Verdict: {written['content'].comparison['verdict']}" in everything
     assert "validation sign-off" in everything

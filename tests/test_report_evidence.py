@@ -423,3 +423,21 @@ def test_pdf_has_the_htmls_section_and_figure_numbers_and_no_near_empty_page(
     assert "at bound, in margin" in svg and "not a support vector" in svg
     for code in ("bounded_inside_margin", "margin_support", "non_support"):
         assert code not in svg, code
+
+
+def test_one_number_style_in_html_and_pdf(written: dict) -> None:
+    """Item 9: a figure has one style in the HTML and the PDF (powers of ten as
+    superscripts, 1.000×10⁻⁵), not 1.000×10⁻⁵ in one and 1.000e-5 in the other."""
+    from solver.reporting.html import fmt
+    from solver.reporting.pdf import pdf_num
+
+    pdf = _pdf_text(written["paths"]["pdf"], "-layout")
+    for run in written["summary"]["runs"]:
+        t = run["termination"]
+        for key in ("max_violation", "duality_gap", "relative_gap"):
+            shown = pdf_num(t[key])
+            assert shown in pdf, (key, shown)
+            if "×10" in shown:
+                assert fmt(t[key]).replace("×10^", "e") not in pdf, key
+                power = fmt(t[key]).split("×10^")[1]
+                assert f"×10<sup>{power}</sup>" in written["html"], key

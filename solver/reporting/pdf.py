@@ -7,6 +7,7 @@ drawing.  Fonts are embedded as TrueType (``pdf.fonttype`` 42) so text can be ex
 
 from __future__ import annotations
 
+import re
 import textwrap
 from collections.abc import Sequence
 from dataclasses import dataclass
@@ -22,7 +23,7 @@ from .content import FigureData, ReportContent, RunContent, Table
 from .figures import PALETTE, draw, plain_text, style
 from .html import HOLDOUT_TABLE_KEYS, _evidence_line, _termination_rows, comparison_table, fmt
 
-__all__ = ["PdfPage", "plan_pages", "render_pdf"]
+__all__ = ["PdfPage", "plan_pages", "render_pdf", "pdf_num"]
 
 PAGE = (8.27, 11.69)  # A4 portrait, inches
 LEFT, TOP, BOTTOM = 0.075, 0.945, 0.06
@@ -33,6 +34,16 @@ PAGE_LINES = (TOP - 0.045 - BOTTOM - 0.01) / LINE  # body lines that fit below t
 FIGS_PER_PAGE = 2
 FOOT_CHARS = 150  # footer characters per line at 6.2 pt
 MIN_LINES = 10  # a continued text page carries at least this many lines
+
+
+_POWER = re.compile(r"×10\^(-?[0-9]+)")
+_SUPER = str.maketrans("-0123456789", "⁻⁰¹²³⁴⁵⁶⁷⁸⁹")
+
+
+def pdf_num(v: Any) -> str:
+    """The HTML's display text of a value, powers of ten as superscripts (1.000×10⁻⁵):
+    one style for a figure in both formats."""
+    return _POWER.sub(lambda m: "×10" + m.group(1).translate(_SUPER), fmt(v))
 
 
 @dataclass(frozen=True)
@@ -70,7 +81,7 @@ class _Lines:
         """Name / value rows; a long name or value wraps (nothing is cut)."""
         for k, v in items:
             keys = textwrap.wrap(label(str(k)), width=34, break_long_words=True) or [""]
-            text = fmt(v).replace("×10^", "e")
+            text = pdf_num(v)
             chunks = textwrap.wrap(text, width=CHARS - 36, break_long_words=True) or [""]
             for i in range(max(len(keys), len(chunks))):
                 key = keys[i] if i < len(keys) else ""
@@ -91,7 +102,7 @@ class _Lines:
             self.para(t.note, "i")
         keep = [k for k, c in enumerate(t.columns) if c not in skip]
         heads = [heading(t.columns[k]) for k in keep]
-        cells = [[t.blank if row[k] is None and t.blank else fmt(row[k]).replace("×10^", "e")
+        cells = [[t.blank if row[k] is None and t.blank else pdf_num(row[k])
                   for k in keep] for row in t.rows]
         for block, widths in _blocks([len(h) for h in heads], cells):
             self._block([heads[c] for c in block],
