@@ -59,7 +59,7 @@ from .model import model_from_solution
 from .problem import DualProblem
 from .result import SolveResult
 from .run import RunRecord
-from .status import Status
+from .status import Status, decide
 
 __all__ = ["Tolerances", "Measure", "Comparison", "compare_runs", "compare_results", "VERDICTS"]
 
@@ -302,7 +302,8 @@ def _run_facts(label: str, problem: DualProblem, result: SolveResult, objective:
     bound, eq = problem.feasibility(result.alpha)
     return {
         "label": label, "run_id": run_id, "solver": result.solver,
-        "status": result.status.label, "iterations": int(result.iterations),
+        "status": decide(result.status, c.max_violation, c.kkt_tol).label,
+        "iterations": int(result.iterations),
         "dual_objective": float(objective),
         "certificate_dual_objective": float(c.dual_objective),
         "duality_gap": float(c.duality_gap), "relative_gap": float(c.relative_gap),
@@ -444,7 +445,9 @@ def compare_results(
         measures["prediction_agreement_holdout"] = _gate(
             "prediction_agreement_holdout", _agreement(ha, hb, tol.decision_max_diff),
             tol.prediction_agreement, tol.prediction_agreement_loose, ">=")
-    both = float(result_a.status == Status.CONVERGED and result_b.status == Status.CONVERGED)
+    # the status rule (solver.status.decide), also for runs stored before it was applied
+    both = float(all(decide(r.status, r.certificate.max_violation, r.certificate.kkt_tol)
+                     == Status.CONVERGED for r in (result_a, result_b)))
     measures["converged"] = _gate("converged", both, 1.0, 0.0, ">=")
 
     failed = tuple(k for k, m in measures.items() if not m.passed)

@@ -32,7 +32,8 @@ from typing import Any
 
 __all__ = ["CAUTION", "Term", "TERMS", "caution_line", "term", "trace_term", "timing_text",
            "POINT_COLUMNS", "LEAVE_ONE_OUT", "FIELDS", "label", "meaning", "labels", "heading",
-           "json_key", "not_traced", "rank_points", "RANKING_RULE", "TRACE_COLUMNS"]
+           "json_key", "not_traced", "CATEGORY_WORDS", "category_label", "rank_points",
+           "RANKING_RULE", "TRACE_COLUMNS"]
 
 #: The standing caution, printed by every output that presents evidence (report, demo,
 #: export, challenge) in these words.
@@ -369,6 +370,31 @@ def meaning(key: str, section: Mapping[str, Term] | None = None) -> str:
 def labels(keys: Iterable[str], section: Mapping[str, Term] | None = None) -> tuple[str, ...]:
     """:func:`label` of every key."""
     return tuple(label(k, section) for k in keys)
+
+
+#: Category codes of the per-point tables (and the certificate's coarse ones) in words,
+#: for legends and captions; the tables and the JSON keep the codes.
+CATEGORY_WORDS: dict[str, str] = {  # at most 21 characters: they fit beside a plot
+    "non_support": "not a support vector",
+    "margin_support": "on the margin",
+    "bounded_inside_margin": "at bound, in margin",
+    "bounded_misclassified": "at bound, wrong side",
+    "bounded_on_margin": "at bound, on margin",
+    "inside_tube": "inside the ε-tube",
+    "on_tube_edge": "on the tube edge",
+    "outside_tube": "outside the tube",
+    "interior": "inside the region",
+    "boundary": "on the boundary",
+    "outside": "outside the region",
+    "non-support": "not a support vector",
+    "free": "free (0 < α < u)",
+    "bounded": "at the bound (α = u)",
+}
+
+
+def category_label(code: str) -> str:
+    """A category code in words (unknown codes: underscores as spaces)."""
+    return CATEGORY_WORDS.get(str(code), str(code).replace("_", " "))
 
 
 #: The trace columns of the per-point table: −1 in the stored table when not traced.

@@ -317,14 +317,21 @@ def test_pdf_pages_keep_their_text_inside_the_page(work: dict, written: dict) ->
     """Item 20: every rendered page: no word outside the page's text margins, no ink at the
     page edge, no cut cell ("…"), the title on page 1 in full, the scope sentence once per
     page."""
+    import re
+
     from solver.reporting import CAUTION
     from solver.reporting.pdf import LEFT
 
     pdf = written["paths"]["pdf"]
     words = _words(pdf)
     assert words
+    figure_pages = {k for k, text in enumerate(_pdf_text(pdf).split("\f"), start=1)
+                    if re.search(r"^Figure [0-9]+\. ", text, re.M)}
+    assert figure_pages
     for k, w, h, x0, y0, x1, y1, text in words:
-        assert x0 >= 0.8 * LEFT * w and x1 <= (1 - 0.8 * LEFT) * w, (k, text, x0, x1)
+        # text pages: inside the text margins; figure pages (tick labels): 12 pt clear
+        inset = 12.0 if k in figure_pages else 0.8 * LEFT * w
+        assert x0 >= inset and x1 <= w - inset, (k, text, x0, x1)
         assert y0 >= 0 and y1 <= h, (k, text)
         assert not (len(text) > 1 and text.endswith("…")), (k, text)  # a cut cell
     images = _page_images(pdf, work["root"] / "pages")
@@ -377,3 +384,42 @@ def test_no_raw_key_is_shown_as_a_label_and_json_keys_have_one_style(written: di
     spaced = [k for k in keys(written["summary"]) if " " in k.rsplit(".", 1)[-1]]
     assert spaced == [], spaced[:5]
     assert "tolerance −" not in written["html"]  # the tolerance is positive; the bound is −tol
+
+
+def test_runs_json_and_report_json_agree_on_types(work: dict, written: dict) -> None:
+    """Item 9: ``runs --json`` gives ``converged`` as a boolean, like the report's JSON."""
+    out = kk("runs", "--store", work["store"], "--json")
+    assert out.returncode == 0, out.stderr
+    rows = {r["run_id"]: r for r in json.loads(out.stdout)}
+    for run in written["summary"]["runs"]:
+        mine = rows[run["run_id"]]
+        assert mine["converged"] is run["termination"]["converged"] is True
+        assert mine["status"] == run["termination"]["status"]
+
+
+def test_pdf_has_the_htmls_section_and_figure_numbers_and_no_near_empty_page(
+        written: dict) -> None:
+    """Item 10: the PDF numbers its sections and figures as the HTML does; no page is
+    near empty; figure legends name categories in words, not by their codes."""
+    import html as _html
+    import re
+
+    page_texts = _pdf_text(written["paths"]["pdf"]).split("\f")[:-1]
+    flat = "\n".join(page_texts)
+    sections = re.findall(r'<span class="subno">([0-9.]+)</span>([^<]*)</h3>', written["html"])
+    assert len(sections) >= 20
+    for num, title in sections:
+        assert re.search(rf"(^|and ){re.escape(num)} +{re.escape(_html.unescape(title))}",
+                         flat, re.M), (num, title)
+    figs = re.findall(r'class="figno">Figure ([0-9]+)</span> <span class="figtitle">([^<]*)\.<',
+                      written["html"])
+    assert len(figs) >= 8
+    for num, title in figs:
+        assert f"Figure {num}. {_html.unescape(title)}" in flat, (num, title)
+    for k, text in enumerate(page_texts, start=1):
+        lines = [ln for ln in text.splitlines() if ln.strip()]
+        assert len(lines) >= 12, f"page {k} is near empty: {lines}"
+    svg = " ".join(re.findall(r"<svg.*?</svg>", written["html"], re.S))
+    assert "at bound, in margin" in svg and "not a support vector" in svg
+    for code in ("bounded_inside_margin", "margin_support", "non_support"):
+        assert code not in svg, code

@@ -185,3 +185,36 @@ def test_qp_tightens_its_own_tolerance_before_giving_up():
     assert [a["status"] for a in r.extra["attempts"]][:-1] == ["certificate_not_met"] * (
         len(tols) - 1)
     assert r.options["interior_point_tol"] == 1e-9 and r.options["tighten"] == 2
+
+
+def test_a_qp_run_stored_before_the_rule_is_read_under_it(tight, tmp_path):
+    """QP runs written before the rule (no ``extra.attempts``) kept cvxopt's "converged";
+    they still load and verify, and every reader applies the rule to them."""
+    from dataclasses import replace
+
+    import solver
+    from solver.store import RunStore
+
+    s = json.loads(tight["proc"].stdout)
+    rec = RunStore(tight["store"]).load(s["challenger"]["run_id"])
+    extra = {k: v for k, v in rec.result.extra.items() if k != "attempts"}
+    old = replace(rec, result=replace(rec.result, status=Status.CONVERGED, extra=extra,
+                                      message="optimality test met (cvxopt status 'optimal')"),
+                  run_id=None, created=None, parent_id=None, parent_digest=None, manifest=None)
+    st = RunStore(tmp_path / "old")
+    rid = st.save(old)
+    assert st.verify(rid).ok
+    r = json.loads(kk("replay", rid, "--iteration", 0, "--store", st.root, "--json").stdout)
+    assert r["run_status"] == "certificate_not_met"
+    out = tmp_path / "rep"
+    assert kk("report", rid, "--store", st.root, "--out", out, "--format", "json"
+              ).returncode == 0
+    term = json.loads((out / "report.json").read_text())["runs"][0]["termination"]
+    assert term["status"] == "certificate_not_met" and term["converged"] is False
+    assert term["message"].endswith("(stored status 'converged': optimality test met (cvxopt "
+                                    "status 'optimal'); shared certificate maximal violation "
+                                    f"{rec.result.certificate.max_violation:.3e} > kkt_tol "
+                                    "1.0e-10)")
+    comp = solver.compare(s["run_id"], solver.load_run(rid, store=st.root), store=tight["store"])
+    assert comp.measures["converged"].value == 0.0
+    assert comp.runs[1]["status"] == "certificate_not_met"

@@ -17,7 +17,7 @@ from ..status import Status
 from ..vocabulary import CAUTION
 
 __all__ = ["CAUTION", "SEVERITIES", "Flag", "Table", "FigureData", "TaskSection", "RunContent",
-           "ReportContent"]
+           "ReportContent", "run_outline", "section_numbers", "figure_numbers"]
 
 #: Severity order used for sorting flags: "stop" (result not usable as is), "caution", "note".
 SEVERITIES = ("stop", "caution", "note")
@@ -224,3 +224,50 @@ def _fmt_num(v: Any) -> str:
     if f != 0 and (abs(f) < 1e-3 or abs(f) >= 1e5):
         return f"{f:.3e}"
     return f"{f:.6g}"
+
+
+# --------------------------------------------------------------------------- numbering
+
+
+def run_outline(r: RunContent) -> list[str]:
+    """Titles of a run's numbered subsections, in order (``k.1``, ``k.2``, …): the HTML
+    and the PDF number their headings from this one list."""
+    titles = ["Provenance", "Evidence checked while writing", "Decision rule and scaling",
+              "How to reproduce", "Problem set-up", "Kernel check", "Data remarks",
+              "Stopping and certificate", "Path to the solution", "Points carrying the solution",
+              "Held-out outcomes"]
+    if getattr(r, "calibration", None) is not None:
+        titles.append("Probability calibration")
+    ts = getattr(r, "task_section", None)
+    if ts is not None:
+        titles.append(ts.title)
+    elif getattr(r, "task_note", ""):
+        titles.append("Task section")
+    titles += ["Diagnosis", "Decision map"]
+    return titles
+
+
+def section_numbers(r: RunContent, k: int) -> dict[str, str]:
+    """Title → number (``"k.j"``) of run ``k``'s subsections (:func:`run_outline`)."""
+    return {t: f"{k}.{j}" for j, t in enumerate(run_outline(r), start=1)}
+
+
+def figure_numbers(content: ReportContent) -> dict[int, int]:
+    """``id(figure)`` → its number, in the HTML's order: per run its convergence figures,
+    the leave-one-out figure, the calibration figures, the task's figures and the decision
+    map; then the side-by-side overlay.  The PDF prints the same numbers."""
+    order: list[Any] = []
+    for r in content.runs:
+        order += list(r.figures)
+        order.append(r.loo_figure)
+        cal = getattr(r, "calibration", None)
+        order += list(getattr(cal, "figures", ()) or ())
+        ts = getattr(r, "task_section", None)
+        order += list(getattr(ts, "figures", ()) or ())
+        order.append(r.decision_map)
+    order.append(getattr(content, "overlay", None))
+    nums: dict[int, int] = {}
+    for fd in order:
+        if fd is not None and id(fd) not in nums:
+            nums[id(fd)] = len(nums) + 1
+    return nums

@@ -15,7 +15,7 @@ from typing import Any
 import numpy as np
 
 from ..run import RunRecord
-from ..status import Status
+from ..status import Status, settle
 from ._calibration import calibration_content
 from ._convergence import _trace_figures
 from ._evidence import _decision_items, _evidence_items, _scaling_table
@@ -96,10 +96,16 @@ def _run_content(rec: RunRecord, label: str, holdout: Mapping | None,
     res = rec.result
     cert = res.certificate
     status = _status_of(res)
+    message = str(res.message)
+    if status is not None:  # the status rule, also for runs stored before it was applied
+        ruled, ruled_message = settle(status, f"stored status {status.label!r}: {message}",
+                                      cert.max_violation, cert.kkt_tol)
+        if ruled != status:
+            status, message = ruled, ruled_message
     cd = cert.to_dict()
     term: dict[str, Any] = {
         "status": status.label if status is not None else str(res.status),
-        "message": str(res.message),
+        "message": message,
         "converged": status == Status.CONVERGED,
         "iterations": int(res.iterations),
         "seconds": float(res.seconds),

@@ -23,6 +23,7 @@ from matplotlib.figure import Figure, SubFigure
 from matplotlib.lines import Line2D
 from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
 
+from ..vocabulary import category_label
 from .content import FigureData
 
 __all__ = ["PALETTE", "style", "plain_text", "draw", "render_figure", "figure_svg", "svg_text"]
@@ -341,7 +342,7 @@ def _draw_selection(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
             colour = _c(CATEGORY_COLOURS[_category_kind(cat)])
             ax.scatter(rank[sel], count[sel], s=size * 0.6, marker=marker,
                        facecolors=colour if filled else "none", edgecolors=colour,
-                       linewidths=0.6, label=plain_text(cat, 30))
+                       linewidths=0.6, label=plain_text(category_label(cat), 40))
         _legend_above(ax, ax.get_legend_handles_labels()[0])
     if np.any(ok):
         _log_y(ax)
@@ -377,7 +378,8 @@ def _draw_regions(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
                        linewidths=0.8 if not filled else 0.3, zorder=3)
         handles.append(Line2D([], [], marker=marker, linestyle="none", color=_c("ink"),
                               markerfacecolor=_c("ink") if filled else "none",
-                              markersize=4 if size < 10 else 5, label=plain_text(cat, 30)))
+                              markersize=4 if size < 10 else 5,
+                              label=plain_text(category_label(cat), 40)))
     neg, pos = d["labels"]
     handles.append(Line2D([], [], marker="o", linestyle="none", color=_c(CLASS_COLOURS[0]),
                           markersize=5, label=f"label {plain_text(neg, 30)}"))
@@ -473,7 +475,8 @@ def _scatter_by_category(ax: Any, x: np.ndarray, y: np.ndarray, cats: np.ndarray
         colour, marker, filled, size = _task_mark(cat)
         ax.scatter(x[sel], y[sel], s=size, marker=marker, zorder=3,
                    facecolors=_c(colour) if filled else "none", edgecolors=_c(colour),
-                   linewidths=0.7, label=f"{plain_text(cat, 40)} ({int(sel.sum())})")
+                   linewidths=0.7,
+                   label=f"{plain_text(category_label(cat), 40)} ({int(sel.sum())})")
 
 
 def _legend_two(ax: Any) -> None:

@@ -15,6 +15,7 @@ from importlib import resources
 from typing import Any
 
 from ..vocabulary import heading, label, phase_label
+from ._records import figure_numbers, section_numbers
 from .content import AGREE_VERDICTS, LOOSE_VERDICTS, Flag, ReportContent, RunContent, Table
 from .figures import figure_svg
 
@@ -77,6 +78,8 @@ class _Doc:
     def __init__(self) -> None:
         self.parts: list[str] = []
         self.n_fig = 0
+        #: id(figure) → number (:func:`._records.figure_numbers`), set by render_html
+        self.numbers: dict[int, int] = {}
 
     def add(self, s: str) -> None:
         self.parts.append(s)
@@ -106,7 +109,7 @@ class _Doc:
                  f'</thead><tbody>{"".join(body)}</tbody></table></div>')
 
     def figure(self, fd: Any) -> None:
-        self.n_fig += 1
+        self.n_fig = self.numbers.get(id(fd), self.n_fig + 1)  # shared with the PDF
         prefix = f"k{self.n_fig}"
         svg = figure_svg(fd, prefix)
         label = esc(fd.title)
@@ -239,10 +242,10 @@ def _run_section(doc: _Doc, r: RunContent, k: int) -> None:
     doc.add(f'<section class="run" id="run-{k}">')
     doc.add(f'<h2><span class="secno">{k}</span>Record of {esc(r.label)}'
             f'<span class="runid">{esc(r.run_id or "not stored")}</span></h2>')
-    sub = iter(range(1, 100))
+    numbers = section_numbers(r, k)  # the PDF numbers its headings from the same list
 
     def h3(title: str, anchor: str) -> None:
-        doc.add(f'<h3 id="run-{k}-{anchor}"><span class="subno">{k}.{next(sub)}</span>'
+        doc.add(f'<h3 id="run-{k}-{anchor}"><span class="subno">{numbers[title]}</span>'
                 f"{esc(title)}</h3>")
 
     if r.flags:
@@ -406,6 +409,7 @@ def render_html(content: ReportContent) -> str:
     """The complete HTML document for ``content`` (UTF-8 text)."""
     c = content
     doc = _Doc()
+    doc.numbers = figure_numbers(content)
     doc.add("<!DOCTYPE html>\n<html lang=\"en\"><head><meta charset=\"utf-8\">")
     doc.add(f'<meta http-equiv="Content-Security-Policy" content="{_CSP}">')
     doc.add('<meta name="viewport" content="width=device-width, initial-scale=1">')

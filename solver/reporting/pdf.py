@@ -17,6 +17,7 @@ from matplotlib.backends.backend_pdf import PdfPages
 from matplotlib.figure import Figure
 
 from ..vocabulary import heading, label
+from ._records import figure_numbers, section_numbers
 from .content import FigureData, ReportContent, RunContent, Table
 from .figures import PALETTE, draw, plain_text, style
 from .html import HOLDOUT_TABLE_KEYS, _evidence_line, _termination_rows, comparison_table, fmt
@@ -31,6 +32,7 @@ SANS_CHARS = 112  # sans characters per body line at 8 pt (conservative)
 PAGE_LINES = (TOP - 0.045 - BOTTOM - 0.01) / LINE  # body lines that fit below the heading
 FIGS_PER_PAGE = 2
 FOOT_CHARS = 150  # footer characters per line at 6.2 pt
+MIN_LINES = 10  # a continued text page carries at least this many lines
 
 
 @dataclass(frozen=True)
@@ -45,11 +47,14 @@ class PdfPage:
 class _Lines:
     """Accumulates (style, text) lines; styles: h (heading), p (body), m (monospace), f (flag)."""
 
-    def __init__(self) -> None:
+    def __init__(self, numbers: dict[str, str] | None = None) -> None:
         self.items: list[tuple[str, str]] = []
+        #: heading → section number, as in the HTML (:func:`._records.section_numbers`)
+        self.numbers = numbers or {}
 
     def heading(self, text: str) -> None:
-        self.items += [("gap", ""), ("h", text)]
+        num = self.numbers.get(text)
+        self.items += [("gap", ""), ("h", f"{num} {text}" if num else text)]
 
     def para(self, text: str, style_: str = "p") -> None:
         width = SANS_CHARS if style_ in ("p", "i") else CHARS
@@ -160,6 +165,17 @@ def _paginate(heading: str, lines: _Lines) -> list[PdfPage]:
             continue
         pages[-1].append(it)
         used += h
+    if len(pages) > 1 and len(pages[-1]) < MIN_LINES:
+        # no near-empty last page: it takes the tail of the page before (never leaving a
+        # heading last there)
+        prev = pages[-2]
+        cut = max(1, len(prev) - (MIN_LINES - len(pages[-1])))
+        while cut > 1 and prev[cut - 1][0] in ("h", "gap", "t"):
+            cut -= 1
+        moved = prev[cut:]
+        if moved and moved[0][0] == "gap":
+            moved = moved[1:]
+        pages[-2], pages[-1] = prev[:cut], moved + pages[-1]
     return [PdfPage(heading=heading if k == 0 else f"{heading} (continued)", lines=tuple(p))
             for k, p in enumerate(pages)]
 
@@ -202,8 +218,8 @@ def _cover(c: ReportContent) -> list[PdfPage]:
     return _paginate(head, L)
 
 
-def _run_text(r: RunContent) -> list[PdfPage]:
-    L = _Lines()
+def _run_text(r: RunContent, k: int = 1) -> list[PdfPage]:
+    L = _Lines(section_numbers(r, k))
     L.heading("Provenance")
     L.kv(r.identity)
     if r.environment:
@@ -248,11 +264,11 @@ def _run_text(r: RunContent) -> list[PdfPage]:
     L.kv(_termination_rows(r.termination))
     for note in r.figure_notes:
         L.para(note, "i")
-    return _paginate(f"Record of {r.label}: provenance, set-up, certificate", L)
+    return _paginate(f"{k} Record of {r.label}: provenance, set-up, certificate", L)
 
 
-def _run_support(r: RunContent) -> list[PdfPage]:
-    L = _Lines()
+def _run_support(r: RunContent, k: int = 1) -> list[PdfPage]:
+    L = _Lines(section_numbers(r, k))
     L.heading("Points carrying the solution")
     L.table(Table(columns=("category", "points"), rows=tuple(r.categories.items()),
                   note=f"Final category of every training point ({r.categories_source})."))
@@ -298,15 +314,15 @@ def _run_support(r: RunContent) -> list[PdfPage]:
     if r.decision_map is None:
         L.heading("Decision map")
         L.para(r.decision_note, "i")
-    return _paginate(f"Record of {r.label}: support vectors and outcomes", L)
+    return _paginate(f"{k} Record of {r.label}: support vectors and outcomes", L)
 
 
-def _run_calibration(r: RunContent) -> list[PdfPage]:
+def _run_calibration(r: RunContent, k: int = 1) -> list[PdfPage]:
     """Text and figure pages of the probability section (none without probabilities)."""
     cal = r.calibration
     if cal is None:
         return []
-    L = _Lines()
+    L = _Lines(section_numbers(r, k))
     L.heading("Probability calibration")
     for note in cal.notes:
         L.para(note, "i")
@@ -337,29 +353,36 @@ def _challenger(c: ReportContent) -> list[PdfPage]:
         L.heading("Notes from the preparer")
         for para in c.notes.splitlines() or [""]:
             L.para(para)
-    return _paginate("Challenger cross-check", L)
+    return _paginate(f"{len(c.runs) + 1} Challenger cross-check", L)
 
 
 def plan_pages(content: ReportContent) -> list[PdfPage]:
-    """Every page of the PDF in order (headings, text lines, figures)."""
+    """Every page of the PDF in order (headings, text lines, figures).
+
+    A run's convergence figures, its leave-one-out figure and its decision map share
+    figure pages two by two, so at most one figure page per run is half empty."""
     pages = _cover(content)
-    for r in content.runs:
-        pages += _run_text(r)
-        figs = list(r.figures)
-        for k in range(0, len(figs), FIGS_PER_PAGE):
-            pages.append(PdfPage(heading=f"Path to the solution — {r.label}",
-                                 figures=tuple(figs[k:k + FIGS_PER_PAGE])))
-        pages += _run_support(r)
-        pages += _run_calibration(r)
+    for k, r in enumerate(content.runs, start=1):
+        pages += _run_text(r, k)
+        numbers = section_numbers(r, k)
+        conv = list(r.figures)
+        figs = conv + [f for f in (r.loo_figure, r.decision_map) if f is not None]
+        for i in range(0, len(figs), FIGS_PER_PAGE):
+            chunk = tuple(figs[i:i + FIGS_PER_PAGE])
+            titles = list(dict.fromkeys(
+                "Path to the solution" if any(f is c for c in conv)
+                else "Decision map" if f is r.decision_map else "Points carrying the solution"
+                for f in chunk))
+            head = " and ".join(f"{numbers[t]} {t}" for t in titles)
+            pages.append(PdfPage(heading=f"{head} — {r.label}", figures=chunk))
+        pages += _run_support(r, k)
+        pages += _run_calibration(r, k)
         if r.task_section is not None and r.task_section.figures:
             tf = list(r.task_section.figures)
-            for k in range(0, len(tf), FIGS_PER_PAGE):
-                pages.append(PdfPage(heading=f"{r.task_section.title} — {r.label}",
-                                     figures=tuple(tf[k:k + FIGS_PER_PAGE])))
-        extra = [f for f in (r.decision_map, r.loo_figure) if f is not None]
-        if extra:
-            pages.append(PdfPage(heading=f"Decision map and leave-one-out — {r.label}",
-                                 figures=tuple(extra)))
+            for i in range(0, len(tf), FIGS_PER_PAGE):
+                pages.append(PdfPage(heading=f"{numbers[r.task_section.title]} "
+                                     f"{r.task_section.title} — {r.label}",
+                                     figures=tuple(tf[i:i + FIGS_PER_PAGE])))
     if content.overlay is not None:
         pages.append(PdfPage(heading="Convergence side by side", figures=(content.overlay,)))
     pages += _challenger(content)
@@ -407,14 +430,16 @@ def _draw_text_page(fig: Figure, page: PdfPage) -> None:
         y -= LINE * (1.35 if kind in ("h", "t") else 1.0)
 
 
-def _draw_figure_page(fig: Figure, page: PdfPage) -> None:
+def _draw_figure_page(fig: Figure, page: PdfPage, numbers: dict[int, int]) -> None:
     # always FIGS_PER_PAGE slots, so a lone figure keeps the size it has on a full page;
     # fixed margins, no layout engine (see figures._margins)
     sub = fig.subfigures(FIGS_PER_PAGE + 2, 1,
                          height_ratios=[0.16] + [1.0] * FIGS_PER_PAGE + [0.06])
     for sf, fd in zip(sub[1:-1], page.figures, strict=False):
         inner = sf.subfigures(3, 1, height_ratios=[0.08, 1.0, 0.2])
-        inner[0].text(LEFT, 0.3, plain_text(fd.title, 200), fontsize=9.5,
+        num = numbers.get(id(fd))
+        title = f"Figure {num}. {fd.title}" if num else fd.title  # the HTML's number
+        inner[0].text(LEFT, 0.3, plain_text(title, 200), fontsize=9.5,
                       family="DejaVu Sans", color=PALETTE["tide"])
         # inset left and right so plots line up with the text margins of the page
         plot = inner[1].subfigures(1, 3, width_ratios=[0.035, 1.0, 0.05])[1]
@@ -428,13 +453,14 @@ def render_pdf(content: ReportContent, path: str | Path) -> int:
     """Write the PDF to ``path``; returns the number of pages written."""
     pages = plan_pages(content)
     total = len(pages)
+    numbers = figure_numbers(content)
     meta = {"Title": content.title, "Creator": f"kktrace {content.kktrace_version}",
             "Subject": "convergence and audit record", "CreationDate": None}
     with style(), PdfPages(path, metadata=meta) as pdf:
         for k, page in enumerate(pages, start=1):
             fig = Figure(figsize=PAGE)
             if page.figures:
-                _draw_figure_page(fig, page)
+                _draw_figure_page(fig, page, numbers)
             else:
                 _draw_text_page(fig, page)
             _frame(fig, page, k, total, content)

@@ -185,6 +185,15 @@ def _where(filters: Mapping[str, Any]) -> tuple[str, list[Any]] | None:
     return (" WHERE " + " AND ".join(where) if where else ""), args
 
 
+def _typed(row: Any) -> dict[str, Any]:
+    """A catalog row as a dict, ``converged`` as a boolean (SQLite stores it as 0/1), so
+    listings and the report's JSON agree on its type."""
+    d = dict(row)
+    if d.get("converged") is not None:
+        d["converged"] = bool(d["converged"])
+    return d
+
+
 def query_rows(rows: Iterable[Mapping[str, Any]], filters: Mapping[str, Any]) -> list[dict]:
     """Filter and order catalog-shaped rows in memory (same rules as :meth:`Catalog.query`)."""
     w = _where(filters)
@@ -198,7 +207,7 @@ def query_rows(rows: Iterable[Mapping[str, Any]], filters: Mapping[str, Any]) ->
         sql = (f"INSERT OR REPLACE INTO runs ({', '.join(chr(34) + c + chr(34) for c in _NAMES)})"
                f" VALUES ({', '.join('?' for _ in _NAMES)})")
         con.executemany(sql, [tuple(r.get(c) for c in _NAMES) for r in rows])
-        return [dict(r) for r in con.execute(
+        return [_typed(r) for r in con.execute(
             f"SELECT * FROM runs{w[0]} ORDER BY created, run_id", w[1])]
     finally:
         con.close()
@@ -413,6 +422,6 @@ class Catalog:
         sql = f"SELECT * FROM runs{w[0]} ORDER BY created, run_id"
         con = self._connect()
         try:
-            return [dict(r) for r in con.execute(sql, w[1])]
+            return [_typed(r) for r in con.execute(sql, w[1])]
         finally:
             con.close()

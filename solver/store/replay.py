@@ -19,7 +19,7 @@ from ..certificate import Certificate, certify
 from ..errors import InvalidInputError
 from ..model import Model, model_from_solution
 from ..run import RunRecord
-from ..status import Status
+from ..status import Status, decide
 
 __all__ = ["ReplayState", "replay", "replayable_iterations"]
 
@@ -173,6 +173,8 @@ def replay(record: RunRecord, iteration: int, *, base: int | None = None) -> Rep
                   "answer, which is moved onto its active bounds)")
     return ReplayState(run_id=record.run_id, iteration=k, alpha=alpha, base_iteration=start,
                        deltas_applied=applied, certificate=cert, model=model, recorded=recorded,
-                       run_status=record.result.status, run_message=record.result.message,
+                       run_status=decide(record.result.status, cert0.max_violation,
+                                         cert0.kkt_tol),
+                       run_message=record.result.message,
                        run_timing=record.result.timing, solver=tr.solver,
                        alpha_source=source)
