@@ -45,14 +45,12 @@ from typing import Any
 import numpy as np
 
 from . import _smo_kernels as _k
+from ._products import compiled_q_times, kernel_code
 from .certificate import certify
 from .errors import ConvergenceWarning, InvalidInputError
 from .kernels import (
-    LinearKernel,
-    PolynomialKernel,
     PrecomputedKernel,
     RBFKernel,
-    SigmoidKernel,
 )
 from .problem import DualProblem, serial_dot
 from .result import TRACE_LEVELS, SolveResult, Trace
@@ -262,19 +260,6 @@ def replay_alpha(trace: Trace, iteration: int) -> np.ndarray:
     return alpha
 
 
-def _kernel_code(kernel: Any) -> tuple[int, float, float, int]:
-    """(code, gamma, offset, degree) of kernels evaluated inside the compiled loop."""
-    if isinstance(kernel, RBFKernel):
-        return _k.KERNEL_RBF, float(kernel.gamma), 0.0, 1
-    if isinstance(kernel, PolynomialKernel):
-        return _k.KERNEL_POLY, float(kernel.gamma), float(kernel.offset), int(kernel.degree)
-    if isinstance(kernel, SigmoidKernel):
-        return _k.KERNEL_SIGMOID, float(kernel.gamma), float(kernel.offset), 1
-    if isinstance(kernel, LinearKernel):
-        return _k.KERNEL_LINEAR, 0.0, 0.0, 1
-    return _k.KERNEL_EXTERNAL, 0.0, 0.0, 1
-
-
 class _Engine:
     """State of one SMO run: position arrays, kernel access, trace buffers.
 
@@ -308,7 +293,7 @@ class _Engine:
         self.active = n
         self.dtype = dtype
         kern = problem.kernel
-        code, gamma, offset, degree = _kernel_code(kern)
+        code, gamma, offset, degree = kernel_code(kern)
         self.code = code
         self.precomputed = isinstance(kern, PrecomputedKernel)
         itemsize = dtype.itemsize
@@ -958,26 +943,16 @@ def solve_smo(
 
 def _exact_gradient(problem: DualProblem, alpha: np.ndarray) -> np.ndarray:
     """G = Qα + p in float64 from the support vectors only (rows of the data)."""
-    sv = np.flatnonzero(alpha != 0.0)
-    code, gamma, offset, degree = _kernel_code(problem.kernel)
-    yb = problem.y * alpha
-    if sv.size == 0:
-        return problem.p.copy()
-    if code == _k.KERNEL_EXTERNAL:
-        out = np.empty(problem.n)
+    qa = compiled_q_times(problem, alpha)
+    if qa is None:  # a kernel the compiled code does not evaluate: numpy blocks
+        sv = np.flatnonzero(alpha != 0.0)
+        yb = problem.y * alpha
+        out = np.zeros(problem.n)
         for s in range(0, problem.n, 1024):
-            blk = problem.kernel_block(slice(s, s + 1024), sv)
-            out[s:s + 1024] = blk @ yb[sv]
-        return problem.y * out + problem.p
-    XK = np.array(problem.features().T, order="C")
-    sq = np.zeros(problem.n)
-    _k.self_dots(XK, sq)
-    F = np.zeros(problem.n)
-    allpos = np.arange(problem.n, dtype=np.int64)
-    _k.reconstruct(XK, sq, allpos, allpos, np.ascontiguousarray(XK[:, sv]), sq[sv],
-                   np.ascontiguousarray(yb[sv]), np.zeros(problem.n), F, code, gamma, offset,
-                   degree, np.zeros((4, _k.CHUNK)), np.zeros(_k.CHUNK, dtype=np.int64))
-    return problem.y * (-F) + problem.p  # F = −Kβ here (q = 0)
+            if sv.size:
+                out[s:s + 1024] = problem.kernel_block(slice(s, s + 1024), sv) @ yb[sv]
+        qa = problem.y * out
+    return qa + problem.p
 
 
 def _merge_phases(a: dict[str, Any], b: dict[str, Any]) -> dict[str, Any]:
