@@ -179,7 +179,9 @@ def _terms(owner: str, *rows: tuple[str, str, str]) -> dict[str, Term]:
 #: Per-point table (binary classification, ε-regression, one-class), in export order.
 POINT_COLUMNS: dict[str, Term] = _terms(
     "explanation",
-    ("row_id", "row", "training row, counted from 0 in file order"),
+    ("row_id", "index",
+     "training row index, counted from 0 in file order (data row = index + 1, as messages "
+     "count)"),
     ("label", "label", "the point's label as given in the data"),
     ("alpha", "α", "the point's Lagrange multiplier αᵢ at the solution"),
     ("alpha_ratio", "α / u", "αᵢ divided by its upper bound uᵢ (1 = at the bound C·weight)"),

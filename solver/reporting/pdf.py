@@ -289,7 +289,7 @@ def _run_support(r: RunContent, k: int = 1) -> list[PdfPage]:
         if reason_col is not None:
             L.para("Reasons in full:", "i")
             for row in r.influential.rows:
-                L.para(f"row {row[0]}: {row[reason_col]}")
+                L.para(f"index {row[0]}: {row[reason_col]}")
     if r.influential_note:
         L.para(r.influential_note, "i")
     L.heading("Leave-one-out")
