@@ -1,4 +1,6 @@
-"""The walkthrough notebook executes from top to bottom without error (so it cannot rot).
+"""The notebooks execute from top to bottom without error (so they cannot rot): the audit
+walkthrough, and the study walkthrough (issue 20: a verifying study, the chosen cell with
+its rule, the stability verdict and the maps).
 
 The kernel runs on the interpreter running pytest: a private kernelspec pointing at
 ``sys.executable`` is written to a temporary Jupyter path, so the test does not depend on
@@ -17,18 +19,21 @@ nbformat = pytest.importorskip("nbformat")
 nbclient = pytest.importorskip("nbclient")
 pytest.importorskip("ipykernel")
 
-NOTEBOOK = Path(__file__).resolve().parents[1] / "notebooks" / "audit_walkthrough.ipynb"
+NOTEBOOKS = Path(__file__).resolve().parents[1] / "notebooks"
+NAMES = ["audit_walkthrough.ipynb", "study_walkthrough.ipynb"]
 
 
-def test_committed_notebook_has_no_outputs():
-    nb = json.loads(NOTEBOOK.read_text(encoding="utf-8"))
+@pytest.mark.parametrize("name", NAMES)
+def test_committed_notebook_has_no_outputs(name):
+    nb = json.loads((NOTEBOOKS / name).read_text(encoding="utf-8"))
     for cell in nb["cells"]:
         if cell["cell_type"] == "code":
             assert cell.get("outputs") == [] and cell.get("execution_count") is None
 
 
-@pytest.mark.slow
-def test_notebook_executes(tmp_path, monkeypatch):
+def _execute(name: str, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> list:
+    """Run the notebook in a private kernel; returns every code cell's outputs in order
+    (raises CellExecutionError on the first failing cell)."""
     spec_dir = tmp_path / "jupyter" / "kernels" / "kktrace-test"
     spec_dir.mkdir(parents=True)
     (spec_dir / "kernel.json").write_text(json.dumps({
@@ -37,13 +42,28 @@ def test_notebook_executes(tmp_path, monkeypatch):
     }))
     monkeypatch.setenv("JUPYTER_PATH", str(tmp_path / "jupyter"))
     monkeypatch.setenv("MPLBACKEND", "Agg")
-    nb = nbformat.read(NOTEBOOK, as_version=4)
-    client = nbclient.NotebookClient(
-        nb, kernel_name="kktrace-test", timeout=600,
-        resources={"metadata": {"path": str(tmp_path)}},
-    )
-    client.execute()  # raises CellExecutionError on the first failing cell
-    text = "\n".join(
-        o.get("text", "") for c in nb.cells if c.cell_type == "code" for o in c.outputs
-    )
+    nb = nbformat.read(NOTEBOOKS / name, as_version=4)
+    client = nbclient.NotebookClient(nb, kernel_name="kktrace-test", timeout=600,
+                                     resources={"metadata": {"path": str(tmp_path)}})
+    client.execute()
+    return [o for c in nb.cells if c.cell_type == "code" for o in c.outputs]
+
+
+def _text(outputs: list) -> str:
+    return "\n".join(o.get("text", "") for o in outputs)
+
+
+@pytest.mark.slow
+def test_notebook_executes(tmp_path, monkeypatch):
+    text = _text(_execute("audit_walkthrough.ipynb", tmp_path, monkeypatch))
     assert "verdict" in text and "files intact: True" in text
+
+
+@pytest.mark.slow
+def test_study_notebook_executes(tmp_path, monkeypatch):
+    outputs = _execute("study_walkthrough.ipynb", tmp_path, monkeypatch)
+    text = _text(outputs)
+    assert "study and every member verify: True" in text
+    assert "one-standard-error rule" in text and "same optimum" in text
+    shown = [o for o in outputs if "image/svg+xml" in o.get("data", {})]
+    assert shown, "the maps were not displayed"
