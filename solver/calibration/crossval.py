@@ -256,3 +256,17 @@ def calibrate(
                            **common)
     fit = fit_sigmoid(cv, positive)
     return Calibration(fit=fit, status=fit.status, message=fit.message, **common)
+
+
+def usable_calibration(attachment: Mapping[str, Any] | None, what: str) -> Calibration:
+    """The :class:`Calibration` stored as ``attachment`` for ``what`` (e.g. ``run <id>``),
+    or a one-line error saying why it gives no probabilities."""
+    if attachment is None:
+        raise InvalidInputError(
+            f"{what} has no fitted sigmoid, so it gives no probabilities; train it with "
+            "--probabilities (Python: solver.train(..., probabilities=True))")
+    cal = Calibration.from_attachment(attachment)
+    if not cal.success:
+        raise InvalidInputError(f"{what} gives no probabilities: its sigmoid fit failed "
+                                f"({cal.status.label}): {cal.message}")
+    return cal

@@ -24,7 +24,7 @@ import numpy as np
 from ..errors import InvalidInputError
 from ..plaindata import to_plain
 from .coupling import couple_pairwise_rows
-from .crossval import Calibration
+from .crossval import Calibration, usable_calibration
 from .platt import sigmoid_probability
 
 __all__ = ["PAIR_CLIP", "COUPLING_METHOD", "PairwiseCalibration", "pair_calibration",
@@ -94,15 +94,7 @@ def pair_calibration(classes: Sequence[Any], keys: Sequence[Sequence[Any]],
         a, b = (str(v) for v in key)
         if a not in names or b not in names:
             raise InvalidInputError(f"pair {a!r} vs {b!r} is not a pair of the classes {names}")
-        what = f"pair {a!r} vs {b!r}"
-        if att is None:
-            raise InvalidInputError(
-                f"{what} has no fitted sigmoid, so the model gives no probabilities; train it "
-                "with --probabilities (Python: solver.train(..., probabilities=True))")
-        cal = Calibration.from_attachment(att)
-        if not cal.success:
-            raise InvalidInputError(f"{what} gives no probabilities: its sigmoid fit failed "
-                                    f"({cal.status.label}): {cal.message}")
+        cal = usable_calibration(att, f"pair {a!r} vs {b!r}")
         pairs.append((names.index(a), names.index(b)))
         cals.append(cal)
     k = len(names)

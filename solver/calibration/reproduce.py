@@ -7,25 +7,16 @@ from typing import Any
 
 import numpy as np
 
-from ..errors import InvalidInputError
 from ..problem import DualProblem
-from .crossval import ATTACHMENT, Calibration, calibrate
+from .crossval import ATTACHMENT, Calibration, calibrate, usable_calibration
 
 __all__ = ["run_calibration", "recalibrate", "recalibrate_pairs"]
 
 
 def run_calibration(record: Any) -> Calibration:
     """The usable :class:`Calibration` of a stored run, or a clear error saying why not."""
-    att = (record.attachments or {}).get(ATTACHMENT)
-    if att is None:
-        raise InvalidInputError(
-            f"run {record.run_id} has no fitted sigmoid, so it gives no probabilities; "
-            "train it with --probabilities (Python: solver.train(..., probabilities=True))")
-    cal = Calibration.from_attachment(att)
-    if not cal.success:
-        raise InvalidInputError(f"run {record.run_id} gives no probabilities: its sigmoid fit "
-                                f"failed ({cal.status.label}): {cal.message}")
-    return cal
+    return usable_calibration((record.attachments or {}).get(ATTACHMENT),
+                              f"run {record.run_id}")
 
 
 def _same(a: Any, b: Any) -> bool:
