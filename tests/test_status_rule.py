@@ -48,7 +48,7 @@ def test_settle_keeps_the_backends_own_word_and_both_figures():
     status, message = settle(Status.CONVERGED, "cvxopt status 'optimal'", 2.072e-5, 1e-5)
     assert status == Status.CERTIFICATE_NOT_MET
     assert message == (MESSAGES[Status.CERTIFICATE_NOT_MET] + " (cvxopt status 'optimal'; "
-                       "shared certificate maximal violation 2.072e-05 > kkt_tol 1.0e-05)")
+                       "shared certificate maximal violation 2.072×10⁻⁵ > kkt_tol 1×10⁻⁵)")
     assert settle(Status.CONVERGED, "", 1e-6, 1e-5) == (Status.CONVERGED,
                                                         MESSAGES[Status.CONVERGED])
 
