@@ -191,7 +191,7 @@ def _decision_map(rec: RunRecord, label: str, cats: np.ndarray) -> tuple[FigureD
         basis = vt[:2]
         Z = (X - centre) @ basis.T
         share = (s[:2] ** 2).sum() / max((s**2).sum(), np.finfo(float).tiny)
-        xlabel, ylabel = "principal component 1", "principal component 2"
+        xlabel, ylabel = "principal component 1" + unit, "principal component 2" + unit
         kind = unit.strip(" ()") or "raw"
         how = (f"a 2-D projection: the first two principal components of the {kind} "
                f"training rows ({100 * share:.1f} % of the variance); regions are the "

@@ -247,10 +247,10 @@ def section_numbers(r: RunContent, k: int) -> dict[str, str]:
     return {t: f"{k}.{j}" for j, t in enumerate(run_outline(r), start=1)}
 
 
-def figure_numbers(content: ReportContent) -> dict[int, int]:
-    """``id(figure)`` → its number, in the HTML's order: per run its convergence figures,
+def ordered_figures(content: ReportContent) -> list[FigureData]:
+    """Every figure of the report in the HTML's order: per run its convergence figures,
     the leave-one-out figure, the calibration figures, the task's figures and the decision
-    map; then the side-by-side overlay.  The PDF prints the same numbers."""
+    map; then the side-by-side overlay."""
     order: list[Any] = []
     for r in content.runs:
         order += list(r.figures)
@@ -261,8 +261,14 @@ def figure_numbers(content: ReportContent) -> dict[int, int]:
         order += list(getattr(ts, "figures", ()) or ())
         order.append(r.decision_map)
     order.append(getattr(content, "overlay", None))
+    return [fd for fd in order if fd is not None]
+
+
+def figure_numbers(content: ReportContent) -> dict[int, int]:
+    """``id(figure)`` → its number, in :func:`ordered_figures`' order (the HTML's); the PDF
+    prints the same numbers."""
     nums: dict[int, int] = {}
-    for fd in order:
+    for fd in ordered_figures(content):
         if fd is not None and id(fd) not in nums:
             nums[id(fd)] = len(nums) + 1
     return nums

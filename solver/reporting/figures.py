@@ -12,7 +12,7 @@ from __future__ import annotations
 
 import io
 import re
-from collections.abc import Iterator, Mapping
+from collections.abc import Iterator, Mapping, Sequence
 from contextlib import contextmanager
 from typing import Any
 
@@ -85,6 +85,61 @@ _STYLE: dict[str, Any] = {
     "path.simplify": True,
 }
 
+#: The unit of every fixed axis label the figures print (audited by a test: a new label
+#: needs its entry).  Counts and dimensionless quantities of the dual problem carry no unit
+#: on the axis; a label holding a physical unit says it in brackets, e.g. "(s)".
+AXIS_UNITS: dict[str, str] = {
+    "iteration": "count (solver iterations)",
+    "m(α) − M(α)": "dimensionless (the KKT violation of the scaled dual)",
+    "objective": "dimensionless (dual objective D)",
+    "above final": "dimensionless (D − D_final)",
+    "duality gap and residuals": "dimensionless",
+    "points": "count (training points)",
+    "α": "dimensionless (Lagrange multiplier, 0 ≤ α ≤ C)",
+    "points ranked by selections": "rank (count)",
+    "times selected": "count",
+    "y · f₋ᵢ(xᵢ)": "dimensionless (decision value times label)",
+    "left-out point": "rank (count)",
+    "rows": "count (training rows)",
+    "training rows": "count (training rows)",
+    "decision value f(x)": "dimensionless (decision value)",
+    "g(x) = Σ αⱼ K(xⱼ, x)": "dimensionless (kernel sum)",
+    "share of training rows": "share (0 to 1)",
+    "best violation so far": "dimensionless (KKT violation)",
+    "(D − D*) / max(1, |D*|)": "dimensionless (relative objective gap)",
+    "seconds (estimated at each run's average rate) (s)": "s",
+    "training row (0-based)": "row number",
+    "share correct": "share (0 to 1)",
+    "top class probability": "probability (0 to 1)",
+}
+#: Labels made from the data: a feature or target column keeps that column's own unit;
+#: principal components of standardised features are in standard deviations.
+AXIS_UNIT_PATTERNS: tuple[tuple[str, str], ...] = (
+    (r"^.+ \(standardised\)$", "standard deviations of the training columns"),
+    (r"^.+ \((actual|fitted)\)$", "the target column's own unit"),
+    (r"^residual .+$", "the target column's own unit"),
+    (r"^share .+$", "share (0 to 1)"),
+    (r"^predicted P\(.+\)$", "probability (0 to 1)"),
+    (r"^P\(.+ \| f\)$", "probability (0 to 1)"),
+)
+
+
+def axis_unit(label: str, columns: Sequence[str] = ()) -> str | None:
+    """The unit statement of an axis label (:data:`AXIS_UNITS`, then the data-derived
+    :data:`AXIS_UNIT_PATTERNS`; a bare column name of ``columns`` or a principal component
+    of raw columns keeps the data's own unit); None for a label nobody has given a unit."""
+    import re
+
+    if label in AXIS_UNITS:
+        return AXIS_UNITS[label]
+    if label in columns or re.match(r"^principal component \d+$", label):
+        return "the data columns' own unit"
+    for pattern, unit in AXIS_UNIT_PATTERNS:
+        if re.match(pattern, label):
+            return unit
+    return None
+
+
 #: Size of one figure in the HTML report, inches.
 FIG_SIZE = (6.4, 2.7)
 FIG_SIZE_TALL = (6.4, 3.6)
@@ -124,8 +179,8 @@ def _pow10(v: float, _pos: int) -> str:
 def _count(v: float, _pos: int) -> str:
     """Tick label for counts and iterations: integers with thin-space thousands."""
     if abs(v - round(v)) > 1e-9:
-        return f"{v:g}"
-    return f"{int(round(v)):,}".replace(",", "\u2009")
+        return f"{v:g}".replace("-", "−")
+    return f"{int(round(v)):,}".replace(",", "\u2009").replace("-", "−")
 
 
 def _num(v: float, _pos: int) -> str:
@@ -256,6 +311,7 @@ def _draw_gap(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
                 markersize=3, label=name.replace("_", " "))
     _log_y(ax)
     _iter_x(ax)
+    ax.set_ylabel("duality gap and residuals")
     _legend_above(ax, ax.get_legend_handles_labels()[0])
 
 
@@ -580,9 +636,10 @@ def _draw_overlay(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
                 ax.tick_params(labelbottom=False)
     axes[1][0].set_xlabel("iteration")
     axes[1][0].xaxis.set_major_formatter(FuncFormatter(_count))
-    axes[1][1].set_xlabel("seconds (estimated at each run's average rate)")
-    axes[0][0].set_ylabel("best violation so far")
-    axes[1][0].set_ylabel("(D − D*) / max(1, |D*|)")
+    axes[1][1].set_xlabel("seconds (estimated at each run's average rate) (s)")
+    for c in range(2):
+        axes[0][c].set_ylabel("best violation so far")
+        axes[1][c].set_ylabel("(D − D*) / max(1, |D*|)")
     handles = axes[0][0].get_legend_handles_labels()[0]
     if handles:
         axes[0][0].legend(handles=handles, loc="lower left", bbox_to_anchor=(0.0, 1.02),
