@@ -242,7 +242,7 @@ def test_projection_for_more_than_two_features(tmp_path: Path) -> None:
     assert d is not None and "principal components" in d.caption
     share = float(re.search(r"\(([0-9.]+) % of the variance\)", d.caption).group(1))
     assert 0.0 < share <= 100.0
-    assert d.data["xlabel"] == "principal component 1"
+    assert d.data["xlabel"] == "principal component 1 (standardised)"
     assert d.data["z"].shape == (150, 2)
 
 
