@@ -39,14 +39,14 @@ def cmd_export(args: argparse.Namespace) -> int:
     for ev, sets in out.check.evaluators.items():
         for name, f in sets.items():
             line = (f"  {ev:15s} {name:8s} {out.check.rows[name]} rows: largest |difference| "
-                    f"{num(f['max_abs_diff'], '.3e')} (relative {num(f['max_rel_diff'], '.3e')})")
+                    f"{num(f['max_abs_diff'])} (relative {num(f['max_rel_diff'])})")
             if "label_changes" in f:
                 line += (f"; predicted class changed on {f['label_changes']} rows "
                          f"({f['label_changes_away_from_boundary']} with |f| >= "
                          f"{out.check.near_zero:g})")
             if "probability_max_abs_diff" in f:
                 line += (f"; probabilities differ by at most "
-                         f"{num(f['probability_max_abs_diff'], '.2e')}"
+                         f"{num(f['probability_max_abs_diff'])}"
                          + ("" if f["probability_counted"] else " (reported, not counted)"))
             print(line)
     for note in out.check.notes:
@@ -75,9 +75,9 @@ def cmd_challenge(args: argparse.Namespace) -> int:
         c = p.certificate
         state = "meets" if p.optimal else "FAILS"
         print(f"pair {p.positive} (positive) vs {p.negative}: external solution {state} the "
-              f"optimality test — violation {num(c['max_violation'], '.3e')} (kkt_tol "
-              f"{num(p.kkt_tol, '.3e')}, of which float32 allowance "
-              f"{num(p.float32_allowance, '.1e')}), duality gap {num(c['duality_gap'], '.3e')}")
+              f"optimality test — violation {num(c['max_violation'])} (kkt_tol "
+              f"{num(p.kkt_tol)}, of which float32 allowance "
+              f"{num(p.float32_allowance)}), duality gap {num(c['duality_gap'])}")
         print(f"  {p.matched} support vectors matched to training rows; external run "
               f"{p.external_run}")
         for method, verdict in p.verdicts.items():

@@ -101,7 +101,7 @@ def cmd_study(args: argparse.Namespace) -> int:
         same = "all the same" if wc["all_same_certificate"] else "NOT all the same"
         print(f"warm starts: {wc['warm_iterations']} iterations against "
               f"{wc['cold_iterations']} cold on the same {len(wc['cells'])} cells (fold 0), "
-              f"ratio {num(wc['ratio_cold_to_warm'], '.3g')}; certificates {same} "
+              f"ratio {num(wc['ratio_cold_to_warm'])}; certificates {same} "
               f"(dual objectives within {num(wc['objective_tolerance'])} relative)")
     st = out.stability
     if st is not None:

@@ -61,11 +61,11 @@ def cmd_verify(args: argparse.Namespace) -> int:
             for r in repro["pairs"]:
                 print(f"  pair {' vs '.join(r['pair'])} (run {r['run_id']}): alpha "
                       f"{r['agreement']} (max |difference| "
-                      f"{num(r['max_abs_difference'], '.3g')}); iterations {r['iterations']}")
+                      f"{num(r['max_abs_difference'])}); iterations {r['iterations']}")
         elif repro is not None:
             print(f"re-run: alpha {repro.get('agreement')} (max |difference| "
-                  f"{num(repro.get('max_abs_difference'), '.3g')}, tolerance "
-                  f"{num(repro.get('tolerance'), '.3g')}); iterations "
+                  f"{num(repro.get('max_abs_difference'))}, tolerance "
+                  f"{num(repro.get('tolerance'))}); iterations "
                   f"{repro.get('iterations')}, status {repro.get('status')}")
             for note in repro.get("notes") or ():
                 print(f"  note: {note}")

@@ -38,6 +38,7 @@ from ..problem import binary_classification
 from ..result import SolveResult
 from ..run import RunRecord
 from ..status import Status, status_message
+from ..vocabulary import figure_text
 from .external import ExternalModel, ExternalPair, read_external_model
 
 __all__ = ["ChallengeOutcome", "PairChallenge", "challenge", "FLOAT32_EPS", "TOP_RESIDUALS"]
@@ -153,8 +154,9 @@ def _findings(problem: Any, alpha: np.ndarray, coef_sign_bad: np.ndarray, rows: 
         res = np.asarray(cert.kkt_residual)
         order = np.argsort(-res, kind="stable")[:TOP_RESIDUALS]
         named = ", ".join(f"{int(rows[i])} ({res[i]:.3g})" for i in order if res[i] > 0)
-        out.append(f"KKT conditions fail: maximal violation {cert.max_violation:.3g} > kkt_tol "
-                   f"{cert.kkt_tol:.3g}; largest KKT residuals at data row(s) {named} (0-based)")
+        out.append(f"KKT conditions fail: maximal violation {figure_text(cert.max_violation)} "
+                   f"> kkt_tol {figure_text(cert.kkt_tol)}; largest KKT residuals at data row(s) "
+                   f"{named} (0-based)")
     return out
 
 
