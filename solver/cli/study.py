@@ -10,8 +10,10 @@ from typing import Any
 from ._shared import (
     EXIT_NOT_CONVERGED,
     EXIT_OK,
+    add_column_options,
     add_command,
     bar,
+    column_kwargs,
     emit_json,
     float_arg,
     num,
@@ -69,7 +71,7 @@ def cmd_study(args: argparse.Namespace) -> int:
             stability=args.stability,
             scheduler=args.scheduler, workers=args.workers,
             connect_timeout=args.connect_timeout, store=args.store, table=args.table,
-            progress=ticker)
+            progress=ticker, **column_kwargs(args))
     finally:
         ticker.close()
     s = out.summary()
@@ -178,4 +180,5 @@ def register(sub: Any) -> None:
                    help="also write the results table to this Parquet file")
     p.add_argument("--report", metavar="DIR", default=None,
                    help="also write the study report (HTML, PDF, JSON) to this folder")
+    add_column_options(p, "DATAFILE")
     p.set_defaults(func=cmd_study)

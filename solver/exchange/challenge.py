@@ -28,7 +28,7 @@ from typing import Any
 
 import numpy as np
 
-from .._workflow import _fingerprint, _load_data, open_store
+from .._workflow import NO_CHOICE, Columns, _fingerprint, _load_data, open_store
 from ..certificate import certify
 from ..data import Dataset
 from ..errors import InvalidInputError
@@ -238,7 +238,7 @@ def challenge(
     kkt_tol: float = 1e-3,
     standardise: bool = True,
     store: Any = None,
-    challenger: bool = True,
+    challenger: bool = True, columns: Columns = NO_CHOICE,
 ) -> ChallengeOutcome:
     """Challenge an external model (ONNX file or open JSON table) on its training data.
 
@@ -250,9 +250,10 @@ def challenge(
     standardise : when the model carries no input scaling of its own, standardise the data
         as ``train`` would (mean 0, sd 1); ``False`` uses the features as given.
     challenger : also solve with the QP challenger (skipped above its size limit).
+    columns : the data's feature / ignored columns and delimiter (as for ``train``).
     """
     ext = read_external_model(model)
-    ds = _load_data(data, label, "training data")
+    ds = _load_data(data, label, "training data", columns)
     if ds.labels is None:
         raise InvalidInputError("a challenge needs the training data's label column (--label)")
     width = ext.pairs[0].points.shape[1]

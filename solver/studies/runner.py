@@ -169,8 +169,12 @@ def _command(data: Any, label: str | None, args: Mapping[str, Any]) -> dict[str,
         if v is None or v is False:
             continue
         flag = "--" + k.replace("_", "-")
-        argv += [flag] if v is True else [flag, ",".join(f"{x:g}" for x in v)
-                                            if isinstance(v, (list, tuple)) else str(v)]
+        if v is True:
+            argv += [flag]
+        elif isinstance(v, (list, tuple)):
+            argv += [flag, ",".join(x if isinstance(x, str) else f"{x:g}" for x in v)]
+        else:
+            argv += [flag, str(v)]
     return {"argv": argv, "text": shlex.join(argv), "python": None}
 
 
@@ -205,6 +209,8 @@ def study(
     stability: bool = False, scheduler: str | None = None, workers: int | None = None,
     connect_timeout: float = CONNECT_TIMEOUT_S, store: Any = None,
     table: str | Path | None = None, progress: StudyProgress | None = None,
+    feature_columns: Sequence[str] | None = None, ignore_columns: Sequence[str] | None = None,
+    delimiter: str | None = None,
 ) -> StudyOutcome:
     """Cross-validate a grid of C × γ (× degree, × ε) or ν × γ and store every fit and
     the study.
@@ -239,6 +245,8 @@ def study(
     store : store directory or RunStore.  table : also write the results table here
         (Parquet); it is stored with the study either way.
     progress : ``progress(done, total, failures, elapsed_s, left_s)`` after every fit.
+    feature_columns, ignore_columns, delimiter : the data file's columns, as for
+        :func:`solver.train`.
 
     Returns a :class:`StudyOutcome`.  A fit that does not converge is stored with its
     status, counted in the table and listed (``outcome.not_converged``).
@@ -255,7 +263,8 @@ def study(
                    iteration_limit=iteration_limit, trace=trace, standardise=standardise,
                    warm_start=warm_start, stability=stability, scheduler=scheduler,
                    workers=workers, connect_timeout=connect_timeout, store=store,
-                   table=table, progress=progress)
+                   table=table, progress=progress, feature_columns=feature_columns,
+                   ignore_columns=ignore_columns, delimiter=delimiter)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         out = _study(data, **options)
@@ -270,7 +279,7 @@ def study(
 
 
 def _load(data: Any, task: str, label: str | None, target: str | None,
-          outlier_column: str | None) -> tuple[Any, Any]:
+          outlier_column: str | None, columns: Any) -> tuple[Any, Any]:
     """(dataset whose ``labels`` are the column the task's members are built from, task
     object): class labels, numeric targets, or known-outlier flags / None."""
     from dataclasses import replace
@@ -286,7 +295,7 @@ def _load(data: Any, task: str, label: str | None, target: str | None,
                                     "--outlier-column to --task one-class")
         if isinstance(data, (str, Path)) and label is None:
             raise InvalidInputError("name the label column of the data file (--label COLUMN)")
-        ds = _load_data(data, label, "study data")
+        ds = _load_data(data, label, "study data", columns)
         if ds.labels is None:
             raise InvalidInputError("study data have no label column")
         return ds, classification_task(len(class_order(ds.labels)))
@@ -295,7 +304,7 @@ def _load(data: Any, task: str, label: str | None, target: str | None,
                                 f"{', '.join(KIND_TASKS)}")
     from ..tasks import get_task
 
-    ds, t = _load_training(data, task, target, label, outlier_column)
+    ds, t = _load_training(data, task, target, label, outlier_column, columns)
     if t is not None:
         ds = replace(ds, labels=t)
     elif ds.labels is not None:
@@ -331,9 +340,11 @@ def _study(
     stability: bool = False, scheduler: str | None = None, workers: int | None = None,
     connect_timeout: float = CONNECT_TIMEOUT_S, store: Any = None,
     table: str | Path | None = None, progress: StudyProgress | None = None,
+    feature_columns: Sequence[str] | None = None, ignore_columns: Sequence[str] | None = None,
+    delimiter: str | None = None,
 ) -> StudyOutcome:
     """The body of :func:`study` (same options)."""
-    from .._workflow import _fingerprint, open_store
+    from .._workflow import Columns, _fingerprint, open_store
     from ..training import _subset, _warm_up
 
     if trace not in TRACE_LEVELS:
@@ -345,7 +356,8 @@ def _study(
     if task not in ("classification", "regression", "one-class"):
         raise InvalidInputError(f"unknown task {task!r}; choose one of classification, "
                                 "regression, one-class")
-    ds, fit_task = _load(data, task, label, target, outlier_column)
+    ds, fit_task = _load(data, task, label, target, outlier_column,
+                         Columns.of(feature_columns, ignore_columns, delimiter))
     axes = _make_axes(fit_task, C, epsilon, nu)
     grid = make_grid(kernel, axes["C"], gamma, degree, epsilon=axes["epsilon"], nu=axes["nu"])
     if warm_start and grid.C == (None,):
@@ -371,7 +383,8 @@ def _study(
         "epsilon": listed(grid.epsilon), "nu": listed(grid.nu),
         "folds": int(folds), "seed": int(seed), "kkt_tol": kkt_tol,
         "iteration_limit": iteration_limit, "trace": trace, "warm_start": bool(warm_start),
-        "no_standardise": not standardise})
+        "no_standardise": not standardise, "features": feature_columns,
+        "ignore": ignore_columns, "delimiter": delimiter})
     jobs: list[FitJob] = []
     chains: dict[tuple[int, Any, Any, Any], list[Any]] = {}
     for cell in grid.cells():
