@@ -101,6 +101,7 @@ _EXPORTS: dict[str, str] = {
     "trace_term": "vocabulary",
     "timing_text": "vocabulary",
     "caution_line": "vocabulary",
+    "figure_text": "vocabulary",
     "vocabulary": "_vocabulary_module",
     # errors and warnings
     "KktraceError": "errors",

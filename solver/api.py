@@ -459,6 +459,8 @@ def _trusted_keys(trusted: Any) -> list[Any] | None:
 def verify(
     run: str, *, store: Any = None, rerun: Dataset | str | Path | None = None,
     keep_rerun: bool = False, trusted: Any = None,
+    feature_columns: Sequence[str] | None = None,
+    ignore_columns: Sequence[str] | None = None, delimiter: str | None = None,
 ) -> VerifyOutcome:
     """Check a stored run and optionally re-run it.
 
@@ -468,9 +470,12 @@ def verify(
     hold its digest, and along its parent chain.  ``trusted`` (public-key file(s) from
     :func:`new_signing_keys`) requires a valid signature by one of those keys.
     ``rerun`` is the training data (file or Dataset); it must match the stored
-    fingerprint.  With ``keep_rerun`` the re-run is saved as a new run whose parent is
-    ``run``.  A ``run_verified`` (and ``run_rerun``) entry is appended to the store's
-    audit log when the store is writable; nothing is written on a read-only store.
+    fingerprint.  The run's own feature columns are read from it by name (other columns,
+    e.g. an ID column, are ignored with a note); ``feature_columns`` / ``ignore_columns`` /
+    ``delimiter`` as for :func:`train`.  With ``keep_rerun`` the re-run is saved as a new
+    run whose parent is ``run``.  A ``run_verified`` (and ``run_rerun``) entry is appended
+    to the store's audit log when the store is writable; nothing is written on a read-only
+    store.
     """
     from .store import auditlog, reproduce
 
@@ -490,14 +495,16 @@ def verify(
         from .calibration.reproduce import recalibrate_pairs
 
         pr = load_parent_runs(st, run, trusted=keys)
-        reps = rerun_parent(pr, rerun)
+        reps = rerun_parent(pr, rerun, Columns.of(feature_columns, ignore_columns, delimiter))
         reproduction = _ParentReproduction(tuple(reps))
         calibration = recalibrate_pairs([
             (key, (rec.attachments or {}).get("calibration"), rep.record.problem)
             for (key, rep), rec in zip(reps, pr.primary, strict=True)])
     elif rerun is not None and integrity.ok:
         rec = st.load(run, trusted=keys)
-        ds = _load_data(rerun, _split_column(rec.data), "re-run data")
+        ds = _load_data(rerun, _split_column(rec.data), "re-run data",
+                        Columns.of(feature_columns, ignore_columns, delimiter),
+                        names=rec.data.get("feature_names") or None)
         reproduction = reproduce(rec, ds)
         if keep_rerun:
             new_id = st.save(reproduction.record, parent=run)

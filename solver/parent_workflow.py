@@ -380,14 +380,20 @@ def compare_parents(a: ParentRuns, b: ParentRuns, *, holdout_X: np.ndarray | Non
 # --------------------------------------------------------------------------- re-run
 
 
-def rerun_parent(pr: ParentRuns, data: Any) -> list[tuple[tuple[str, ...], Any]]:
-    """Re-run every pair from the parent's training data; (key, Reproduction) per pair."""
+def rerun_parent(pr: ParentRuns, data: Any, columns: Columns = NO_CHOICE,
+                 ) -> list[tuple[tuple[str, ...], Any]]:
+    """Re-run every pair from the parent's training data (the parent's features read by
+    name, ``columns`` as chosen on the command line); (key, Reproduction) per pair."""
     from .store import reproduce
     from .training import _subset, _weights
 
     pdata = pr.parent.data
-    ds0 = _load_data(data, pdata.get("label_name"), "re-run data")
     opts = dict(pr.parent.info.get("options") or {})
+    names = list(pdata.get("feature_names") or [])
+    if names and opts.get("weight_column"):
+        names.append(str(opts["weight_column"]))  # read with the features, split off below
+    ds0 = _load_data(data, pdata.get("label_name"), "re-run data", columns,
+                     names=names or None)
     ds, _ = _weights(ds0, None, opts.get("weight_column"))
     if _fingerprint(ds) != pdata.get("fingerprint"):
         raise InvalidInputError(

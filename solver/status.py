@@ -17,6 +17,8 @@ from __future__ import annotations
 
 import enum
 
+from .vocabulary import figure_text
+
 
 class Status(enum.IntEnum):
     """Why a solver stopped.  Only ``CONVERGED`` means the optimality test was met."""
@@ -87,6 +89,6 @@ def settle(backend_status: Status, detail: str, max_violation: float,
     status = decide(backend_status, max_violation, kkt_tol)
     if status != backend_status:
         own = f"{detail}; " if detail else ""
-        detail = (f"{own}shared certificate maximal violation {max_violation:.3e} > kkt_tol "
-                  f"{kkt_tol:.1e}")
+        detail = (f"{own}shared certificate maximal violation {figure_text(max_violation)} "
+                  f"> kkt_tol {figure_text(kkt_tol)}")
     return status, status_message(status, detail)

@@ -30,10 +30,46 @@ from collections.abc import Iterable, Mapping
 from dataclasses import dataclass
 from typing import Any
 
-__all__ = ["CAUTION", "Term", "TERMS", "caution_line", "term", "trace_term", "timing_text",
+__all__ = ["figure_text", "SUPERSCRIPT_DIGITS", "CAUTION",
+           "Term", "TERMS", "caution_line", "term", "trace_term", "timing_text",
            "POINT_COLUMNS", "LEAVE_ONE_OUT", "FIELDS", "label", "meaning", "labels", "heading",
            "json_key", "not_traced", "CATEGORY_WORDS", "category_label", "rank_points",
            "RANKING_RULE", "TRACE_COLUMNS"]
+
+#: Digits and minus sign as Unicode superscripts (the exponent of ×10ⁿ).
+SUPERSCRIPT_DIGITS = str.maketrans("-0123456789", "⁻⁰¹²³⁴⁵⁶⁷⁸⁹")
+
+
+def figure_text(v: Any, *, power: str = "superscript") -> str:
+    """The one display form of a figure, shared by the CLI, the HTML and the PDF.
+
+    Reals: 6 significant digits; below 10⁻³ or from 10⁶ in magnitude, 4 significant digits
+    as m×10ⁿ (trailing zeros dropped, so a tolerance 1e-05 reads 1×10⁻⁵ and a violation
+    2.0724e-05 reads 2.072×10⁻⁵ everywhere).  ``power="caret"`` writes the exponent as
+    ``×10^-5`` for renderers that set it themselves (the HTML's ``<sup>``).  Integers get
+    thin-space thousands, booleans yes / no, None a dash, non-finite values n/a or ±∞.
+    """
+    if v is None:
+        return "—"
+    if isinstance(v, bool):
+        return "yes" if v else "no"
+    if isinstance(v, int):
+        return f"{v:,}".replace(",", "\u2009")
+    if isinstance(v, float):
+        if v != v:
+            return "n/a"
+        if v in (float("inf"), float("-inf")):
+            return "∞" if v > 0 else "−∞"
+        if v != 0 and (abs(v) < 1e-3 or abs(v) >= 1e6):
+            m, e = f"{v:.3e}".split("e")
+            m = m.rstrip("0").rstrip(".")
+            exp = str(int(e))
+            if power == "caret":
+                return f"{m}×10^{exp}"
+            return f"{m}×10{exp.translate(SUPERSCRIPT_DIGITS)}"
+        return f"{v:.6g}"
+    return str(v)
+
 
 #: The standing caution, printed by every output that presents evidence (report, demo,
 #: export, challenge) in these words.

@@ -323,3 +323,58 @@ def test_hostile_files_are_one_line_errors_from_the_command_line(tmp_path):
     assert not failures, "\n".join(failures)
     assert not (tmp_path / "store").exists() or not any(
         p.is_dir() and not p.name.startswith(".") for p in (tmp_path / "store").iterdir())
+
+
+def test_verify_rerun_reads_the_run_features_from_a_file_with_an_id_column(files):
+    # before: --rerun read every column, so the text ID column failed the re-run
+    a = files["ids"][0]
+    proc = kk("verify", a, "--rerun", files["train"], "--store", files["store"], "--json")
+    assert proc.returncode == 0, proc.stderr
+    assert json.loads(proc.stdout)["reproduction"]["agreement"] == "bitwise"
+    assert "column(s) 'batch_id' are not features of the run" in proc.stderr
+    proc = kk("verify", a, "--rerun", files["train"], "--ignore", "batch_id",
+              "--store", files["store"], "--json")
+    assert proc.returncode == 0 and proc.stderr == "", proc.stderr
+    proc = kk("verify", a, "--rerun", files["train"], "--ignore", "b", "--store", files["store"])
+    assert proc.returncode == 1 and "Traceback" not in proc.stderr
+    assert "lacks the run's feature column(s) 'b'" in proc.stderr
+
+
+def test_export_holdout_and_challenge_choose_columns(files, tmp_path):
+    a = files["ids"][0]
+    onnx_file = tmp_path / "m.onnx"
+    proc = kk("export", a, "--to", onnx_file, "--holdout", files["hold"], "--ignore",
+              "batch_id", "--store", files["store"], "--json")
+    assert proc.returncode == 0, proc.stderr
+    assert "batch_id" not in proc.stderr
+    assert json.loads(proc.stdout)["check"]["rows"]["holdout"] == 20
+    C = 1.0  # the C train used (its default; the runs table shows C 1)
+    base = ("challenge", onnx_file, "--data", files["train"], "--label", "outcome", "--C", C,
+            "--no-challenger", "--store", tmp_path / "s", "--json")
+    # before: no way to leave the text ID column out of the challenge's training data
+    proc = kk(*base)
+    assert proc.returncode == 1 and "column 'batch_id'" in proc.stderr
+    proc = kk(*base, "--ignore", "batch_id")
+    assert proc.returncode == 0, proc.stderr
+    assert json.loads(proc.stdout)["optimal"] is True
+
+
+def test_study_leaves_columns_out(files, tmp_path):
+    proc = kk("study", files["train"], "--label", "outcome", "--kernel", "linear", "--C", "1",
+              "--folds", "2", "--scheduler", "sequential", "--store", tmp_path / "s",
+              "--ignore", "batch_id", "--json")
+    assert proc.returncode == 0, proc.stderr
+    summary = json.loads(proc.stdout)
+    assert summary["fits"] == 2
+    listed = json.loads(kk("runs", "--store", tmp_path / "s", "--json").stdout)
+    rows = [r for r in (listed["runs"] if isinstance(listed, dict) else listed)
+            if r["run_id"] != summary["study_id"]]
+    assert len(rows) == 2
+    for row in rows:
+        rec = solver.load_run(row["run_id"], store=tmp_path / "s")
+        assert rec.data["feature_names"] == ["a", "b", "c"]
+        assert rec.attachments["command"]["argv"][-2:] == ["--ignore", "batch_id"]
+    # before: no --ignore, and the text ID column stopped the study
+    proc = kk("study", files["train"], "--label", "outcome", "--kernel", "linear", "--C", "1",
+              "--folds", "2", "--scheduler", "sequential", "--store", tmp_path / "t")
+    assert proc.returncode == 1 and "column 'batch_id'" in proc.stderr

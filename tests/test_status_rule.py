@@ -48,7 +48,7 @@ def test_settle_keeps_the_backends_own_word_and_both_figures():
     status, message = settle(Status.CONVERGED, "cvxopt status 'optimal'", 2.072e-5, 1e-5)
     assert status == Status.CERTIFICATE_NOT_MET
     assert message == (MESSAGES[Status.CERTIFICATE_NOT_MET] + " (cvxopt status 'optimal'; "
-                       "shared certificate maximal violation 2.072e-05 > kkt_tol 1.0e-05)")
+                       "shared certificate maximal violation 2.072×10⁻⁵ > kkt_tol 1×10⁻⁵)")
     assert settle(Status.CONVERGED, "", 1e-6, 1e-5) == (Status.CONVERGED,
                                                         MESSAGES[Status.CONVERGED])
 
@@ -213,8 +213,8 @@ def test_a_qp_run_stored_before_the_rule_is_read_under_it(tight, tmp_path):
     assert term["status"] == "certificate_not_met" and term["converged"] is False
     assert term["message"].endswith("(stored status 'converged': optimality test met (cvxopt "
                                     "status 'optimal'); shared certificate maximal violation "
-                                    f"{rec.result.certificate.max_violation:.3e} > kkt_tol "
-                                    "1.0e-10)")
+                                    f"{solver.figure_text(rec.result.certificate.max_violation)}"
+                                    " > kkt_tol 1×10⁻¹⁰)")
     comp = solver.compare(s["run_id"], solver.load_run(rid, store=st.root), store=tight["store"])
     assert comp.measures["converged"].value == 0.0
     assert comp.runs[1]["status"] == "certificate_not_met"

@@ -42,11 +42,23 @@ def run(argv: list[str], store: Path) -> subprocess.CompletedProcess:
                           capture_output=True, text=True, timeout=1200)
 
 
+_FROM_SUPERSCRIPT = str.maketrans("⁻⁰¹²³⁴⁵⁶⁷⁸⁹", "-0123456789")
+
+
+def printed_value(printed: str) -> float:
+    """The float a printed figure stands for (``2.072×10⁻⁵``, ``0.190685``, ``1e-05``)."""
+    text = printed.replace("\u2009", "").replace("−", "-")
+    if "×10" in text:
+        m, e = text.split("×10", 1)
+        return float(f"{m}e{e.translate(_FROM_SUPERSCRIPT)}")
+    return float(text)
+
+
 def same_to_printed_precision(printed: str, exact: float) -> bool:
     """True when ``exact`` rounds to ``printed`` at the digits ``printed`` shows."""
-    mant = re.sub(r"[eE].*$", "", printed).lstrip("+-").replace(".", "").lstrip("0")
+    mant = re.split(r"[eE×]", printed)[0].lstrip("+-−").replace(".", "").lstrip("0")
     sig = max(1, len(mant))
-    return float(f"{exact:.{sig - 1}e}") == float(printed)
+    return float(f"{exact:.{sig - 1}e}") == float(f"{printed_value(printed):.{sig - 1}e}")
 
 
 @pytest.fixture(scope="module")
@@ -129,3 +141,31 @@ def test_replay_in_the_tour_names_its_figures(tour):
     text = tour["outs"]["6:replay"].stdout
     assert "run status    converged" in text
     assert "maximal violation" in text and "violation before the step" in text
+
+
+def test_one_number_form_in_terminal_html_and_pdf(tour):
+    """Issue 13 item 9: train prints the tolerance, the violation and the duality gap in the
+    very form the report's HTML and PDF show them (one formatter,
+    solver.vocabulary.figure_text), not 1.0e-05 in one place and 1.000×10⁻⁵ in another."""
+    import html as html_module
+    import shutil
+
+    smo, _qp = tour["ids"]
+    block = tour["outs"]["train"].stdout.split("primary run", 1)[1].split(" run ", 1)[0]
+    shown = {"kkt_tol": re.search(r"\(kkt_tol (\S+?)\)", block).group(1),
+             "max_violation": re.search(r"violation\s+(\S+)", block).group(1),
+             "duality_gap": re.search(r"duality gap\s+(\S+)", block).group(1)}
+    assert "e-" not in "".join(shown.values()), shown
+    reports = Path(tour["store"], "reports", smo)
+    page = next(reports.glob("*.html")).read_text(encoding="utf-8")
+    sup = str.maketrans("-0123456789", "⁻⁰¹²³⁴⁵⁶⁷⁸⁹")
+    text = html_module.unescape(re.sub(r"<sup>(-?\d+)</sup>",
+                                       lambda m: m.group(1).translate(sup), page))
+    for key, value in shown.items():
+        assert value in text, (key, value)
+    if shutil.which("pdftotext") is None:
+        pytest.skip("pdftotext (poppler-utils) is not installed")
+    pdf = subprocess.run(["pdftotext", "-layout", str(next(reports.glob("*.pdf"))), "-"],
+                         capture_output=True, text=True, check=True).stdout
+    for key, value in shown.items():
+        assert value in pdf, (key, value)

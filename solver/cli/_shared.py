@@ -33,9 +33,16 @@ def emit_json(obj: Any, out: TextIO) -> None:
     out.write(json.dumps(clean(obj), indent=2, allow_nan=False, default=str) + "\n")
 
 
-def num(v: Any, spec: str = ".4g") -> str:
+def num(v: Any, spec: str | None = None) -> str:
+    """A figure for the terminal: by default :func:`solver.vocabulary.figure_text`, the one
+    display form the HTML and PDF reports use too; ``spec`` (a format spec) only for a
+    fixed-point share or score (``.3f``) or a full-precision reproduction (``.10g``)."""
     if v is None:
         return "n/a"
+    if spec is None and isinstance(v, (int, float)) and not isinstance(v, bool):
+        import solver
+
+        return solver.figure_text(float(v) if not isinstance(v, int) else v)
     if isinstance(v, float) and not math.isfinite(v):
         return str(v)
     try:
@@ -117,9 +124,9 @@ class Progress:
                 self.first_violation = max(float(v), float(kkt_tol) * 10)
             span = math.log(self.first_violation / kkt_tol)
             frac = 1.0 if v <= kkt_tol else max(0.0, math.log(self.first_violation / v) / span)
-            text += f"  violation {v:.2e} (kkt_tol {kkt_tol:.1e})"
+            text += f"  violation {num(float(v))} (kkt_tol {num(float(kkt_tol))})"
         elif isinstance(info.get("gap"), (int, float)):
-            text += f"  gap {info['gap']:.2e}"
+            text += f"  gap {num(float(info['gap']))}"
         return (f"{bar(frac)} " if frac is not None else "") + text
 
     def _draw(self, line: str) -> None:
@@ -154,7 +161,7 @@ def cell(v: Any) -> str:
     if v is None:
         return "-"
     if isinstance(v, float):
-        return num(v, ".3g")
+        return num(v)
     if isinstance(v, Mapping):
         return str(v.get("name", v))
     return str(v)

@@ -47,12 +47,12 @@ def cmd_compare(args: argparse.Namespace) -> int:
             rule = m.get("rule", "")
             result = ("pass" if m.get("passed") else
                       "within loose" if m.get("passed_loose") else "FAIL")
-            rows.append([name, num(m.get("value"), ".4g"), f"{rule} {num(m.get('tolerance'))}",
+            rows.append([name, num(m.get("value")), f"{rule} {num(m.get('tolerance'))}",
                          f"{rule} {num(m.get('loose_tolerance'))}", result])
         print_rows(rows)
     timing = ("solve_seconds", "compile_seconds", "setup_seconds", "total_seconds")
     for run in d.get("runs") or []:
-        print("  " + ", ".join(f"{k} {num(v, '.4g') if isinstance(v, float) else v}"
+        print("  " + ", ".join(f"{k} {num(v) if isinstance(v, float) else v}"
                                for k, v in run.items() if k not in timing))
         print(f"    time {solver.timing_text(run)}")
     for note in list(d.get("mismatches") or []) + list(d.get("notes") or []):
@@ -69,8 +69,8 @@ def _print_parents(d: Any) -> int:
     rows = [["pair", "verdict", "objective diff", "alpha rms diff", "decision rms diff",
              "failed measures"]]
     for p in d["pairs"]:
-        rows.append([" vs ".join(p["pair"]), p["verdict"], num(p.get("objective_abs_diff"), ".3g"),
-                     num(p.get("alpha_rms_diff"), ".3g"), num(p.get("decision_rms_diff"), ".3g"),
+        rows.append([" vs ".join(p["pair"]), p["verdict"], num(p.get("objective_abs_diff")),
+                     num(p.get("alpha_rms_diff")), num(p.get("decision_rms_diff")),
                      ", ".join(p.get("failed") or []) or "-"])
     print_rows(rows)
     for p in d["pairs"]:

@@ -46,7 +46,7 @@ _RESUME_EXAMPLES = """examples:
 
 def _short(v: Any) -> str:
     if isinstance(v, float):
-        return num(v, ".3g")
+        return num(v)
     if isinstance(v, Mapping):
         return "{" + ", ".join(f"{k} {_short(x)}" for k, x in list(v.items())[:6]) + "}"
     if isinstance(v, (list, tuple)):
@@ -61,7 +61,7 @@ def _print_diagnosis(d: Mapping[str, Any]) -> None:
     if d["phases"]:
         print("phases: " + "; ".join(
             f"{p['name']} {p['first']}–{p['last']} ({p['iterations']} it, violation "
-            f"{num(p['violation_start'], '.3g')} → {num(p['violation_end'], '.3g')})"
+            f"{num(p['violation_start'])} → {num(p['violation_end'])})"
             for p in d["phases"]))
     print(d["statement"])
     for f in d["findings"]:
@@ -123,8 +123,8 @@ def cmd_resume(args: argparse.Namespace) -> int:
               f"{d['status']['parent']} after {d['iterations']['parent']} iterations)")
         print(f"  status {d['status']['resumed']} after {d['iterations']['resumed']} more "
               f"iterations ({d['iterations']['total']} in all); maximal violation "
-              f"{num(d['max_violation'], '.3g')} (kkt_tol {num(d['kkt_tol'], '.3g')}), "
-              f"relative gap {num(d['relative_gap'], '.3g')}")
+              f"{num(d['max_violation'])} (kkt_tol {num(d['kkt_tol'])}), "
+              f"relative gap {num(d['relative_gap'])}")
     return EXIT_OK if out.converged else EXIT_NOT_CONVERGED
 
 

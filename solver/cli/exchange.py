@@ -9,7 +9,9 @@ from typing import Any
 from ._shared import (
     EXIT_ERROR,
     EXIT_OK,
+    add_column_options,
     add_command,
+    column_kwargs,
     emit_json,
     float_arg,
     num,
@@ -28,7 +30,8 @@ def cmd_export(args: argparse.Namespace) -> int:
     import solver
 
     solver.check_output_path(args.to, store=args.store, what="--to")
-    out = solver.export_onnx(args.run, args.to, store=args.store, holdout=args.holdout)
+    out = solver.export_onnx(args.run, args.to, store=args.store, holdout=args.holdout,
+                             **column_kwargs(args))
     if args.json:
         emit_json(out.to_dict(), sys.stdout)
         return EXIT_OK if out.check.passed else EXIT_ERROR
@@ -39,14 +42,14 @@ def cmd_export(args: argparse.Namespace) -> int:
     for ev, sets in out.check.evaluators.items():
         for name, f in sets.items():
             line = (f"  {ev:15s} {name:8s} {out.check.rows[name]} rows: largest |difference| "
-                    f"{num(f['max_abs_diff'], '.3e')} (relative {num(f['max_rel_diff'], '.3e')})")
+                    f"{num(f['max_abs_diff'])} (relative {num(f['max_rel_diff'])})")
             if "label_changes" in f:
                 line += (f"; predicted class changed on {f['label_changes']} rows "
                          f"({f['label_changes_away_from_boundary']} with |f| >= "
                          f"{out.check.near_zero:g})")
             if "probability_max_abs_diff" in f:
                 line += (f"; probabilities differ by at most "
-                         f"{num(f['probability_max_abs_diff'], '.2e')}"
+                         f"{num(f['probability_max_abs_diff'])}"
                          + ("" if f["probability_counted"] else " (reported, not counted)"))
             print(line)
     for note in out.check.notes:
@@ -65,7 +68,8 @@ def cmd_challenge(args: argparse.Namespace) -> int:
 
     out = solver.challenge(args.model, args.data, label=args.label, C=args.C,
                            kkt_tol=args.kkt_tol, standardise=not args.no_standardise,
-                           store=args.store, challenger=not args.no_challenger)
+                           store=args.store, challenger=not args.no_challenger,
+                           **column_kwargs(args))
     if args.json:
         emit_json(out.to_dict(), sys.stdout)
         return EXIT_OK
@@ -75,9 +79,9 @@ def cmd_challenge(args: argparse.Namespace) -> int:
         c = p.certificate
         state = "meets" if p.optimal else "FAILS"
         print(f"pair {p.positive} (positive) vs {p.negative}: external solution {state} the "
-              f"optimality test — violation {num(c['max_violation'], '.3e')} (kkt_tol "
-              f"{num(p.kkt_tol, '.3e')}, of which float32 allowance "
-              f"{num(p.float32_allowance, '.1e')}), duality gap {num(c['duality_gap'], '.3e')}")
+              f"optimality test — violation {num(c['max_violation'])} (kkt_tol "
+              f"{num(p.kkt_tol)}, of which float32 allowance "
+              f"{num(p.float32_allowance)}), duality gap {num(c['duality_gap'])}")
         print(f"  {p.matched} support vectors matched to training rows; external run "
               f"{p.external_run}")
         for method, verdict in p.verdicts.items():
@@ -100,6 +104,7 @@ def register(sub: Any) -> None:
     p.add_argument("--to", metavar="FILE.onnx", required=True, help="the ONNX file to write")
     p.add_argument("--holdout", metavar="FILE", default=None,
                    help="also check the exported file on these rows")
+    add_column_options(p, "the --holdout file")
     p.set_defaults(func=cmd_export)
 
     p = add_command(sub, "challenge", "is a model trained elsewhere the optimum of its problem?",
@@ -117,4 +122,5 @@ def register(sub: Any) -> None:
                    help="when the model has no input scaling, use the features as given")
     p.add_argument("--no-challenger", action="store_true",
                    help="skip the QP challenger (SMO only)")
+    add_column_options(p, "the --data file")
     p.set_defaults(func=cmd_challenge)

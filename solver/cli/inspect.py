@@ -144,12 +144,12 @@ def _print_state(state: Any, cert: dict[str, Any]) -> None:
     print(f"  α             {state.alpha_source}")
     print(f"  certificate of α after iteration {state.iteration} (kktrace's shared "
           "certificate, gradient recomputed):")
-    print(f"    {t('max_violation').label:30s} {num(cert['max_violation'], '.3e')}  "
-          f"(kkt_tol {num(cert['kkt_tol'], '.1e')})")
-    print(f"    {t('dual_objective').label:30s} {num(cert['dual_objective'], '.8g')}")
-    print(f"    {t('primal_objective').label:30s} {num(cert['primal_objective'], '.8g')}")
-    print(f"    {t('duality_gap').label:30s} {num(cert['duality_gap'], '.3e')}  "
-          f"({t('relative_gap').label} {num(cert['relative_gap'], '.3e')})")
+    print(f"    {t('max_violation').label:30s} {num(cert['max_violation'])}  "
+          f"(kkt_tol {num(cert['kkt_tol'])})")
+    print(f"    {t('dual_objective').label:30s} {num(cert['dual_objective'])}")
+    print(f"    {t('primal_objective').label:30s} {num(cert['primal_objective'])}")
+    print(f"    {t('duality_gap').label:30s} {num(cert['duality_gap'])}  "
+          f"({t('relative_gap').label} {num(cert['relative_gap'])})")
     print(f"    {'support vectors':30s} {cert['n_support']} ({cert['n_free']} "
           f"{t('n_free').label}, {cert['n_bounded']} {t('n_bounded').label})")
     print(f"    {t('bias').label:30s} {num(cert['bias'], '.10g')}")
@@ -162,7 +162,7 @@ def _print_state(state: Any, cert: dict[str, Any]) -> None:
     width = max(len(tm.label) for tm in terms.values())
     for k, tm in terms.items():
         v = state.recorded[k]
-        print(f"    {tm.label:{width}s}  {num(v, '.6g') if isinstance(v, float) else v}")
+        print(f"    {tm.label:{width}s}  {num(v) if isinstance(v, float) else v}")
 
 
 def _is_long_array(v: Any) -> bool:

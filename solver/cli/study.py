@@ -10,8 +10,10 @@ from typing import Any
 from ._shared import (
     EXIT_NOT_CONVERGED,
     EXIT_OK,
+    add_column_options,
     add_command,
     bar,
+    column_kwargs,
     emit_json,
     float_arg,
     num,
@@ -64,7 +66,7 @@ def cmd_study(args: argparse.Namespace) -> int:
             stability=args.stability,
             scheduler=args.scheduler, workers=args.workers,
             connect_timeout=args.connect_timeout, store=args.store, table=args.table,
-            progress=ticker)
+            progress=ticker, **column_kwargs(args))
     finally:
         ticker.close()
     s = out.summary()
@@ -95,7 +97,7 @@ def cmd_study(args: argparse.Namespace) -> int:
         same = "all the same" if wc["all_same_certificate"] else "NOT all the same"
         print(f"warm starts: {wc['warm_iterations']} iterations against "
               f"{wc['cold_iterations']} cold on the same {len(wc['cells'])} cells (fold 0), "
-              f"ratio {num(wc['ratio_cold_to_warm'], '.3g')}; certificates {same} "
+              f"ratio {num(wc['ratio_cold_to_warm'])}; certificates {same} "
               f"(dual objectives within {num(wc['objective_tolerance'])} relative)")
     st = out.stability
     if st is not None:
@@ -155,4 +157,5 @@ def register(sub: Any) -> None:
                    help="also write the results table to this Parquet file")
     p.add_argument("--report", metavar="DIR", default=None,
                    help="also write the study report (HTML, PDF, JSON) to this folder")
+    add_column_options(p, "DATAFILE")
     p.set_defaults(func=cmd_study)

@@ -55,11 +55,11 @@ def _run_block(s: Mapping[str, Any], role: str) -> list[str]:
         + f", C = {num(s.get('C'))}",
         f"  iterations    {s['iterations']}",
         f"  time          {solver.timing_text(s)}",
-        f"  violation     {num(s['max_violation'], '.3e')}  (kkt_tol {num(s['kkt_tol'], '.1e')})",
-        f"  objectives    dual (minimised) {num(s['dual_objective'], '.8g')}, "
-        f"primal {num(s['primal_objective'], '.8g')}",
-        f"  duality gap   {num(s['duality_gap'], '.3e')} = primal + dual  "
-        f"(relative {num(s.get('relative_gap'), '.2e')})",
+        f"  violation     {num(s['max_violation'])}  (kkt_tol {num(s['kkt_tol'])})",
+        f"  objectives    dual (minimised) {num(s['dual_objective'])}, "
+        f"primal {num(s['primal_objective'])}",
+        f"  duality gap   {num(s['duality_gap'])} = primal + dual  "
+        f"(relative {num(s.get('relative_gap'))})",
         f"  support       {s['n_support']} of {s['n_rows']} points "
         f"({s['n_free']} {solver.term('n_free').label}, {s['n_bounded']} "
         f"{solver.term('n_bounded').label}), bias {num(s['bias'])}",
@@ -80,7 +80,7 @@ def _run_block(s: Mapping[str, Any], role: str) -> list[str]:
     if cal:
         if cal.get("status") == "fitted":
             lines.append(f"  probabilities P(positive) = 1 / (1 + exp(A f + B)), A = "
-                         f"{num(cal.get('A'), '.6g')}, B = {num(cal.get('B'), '.6g')} "
+                         f"{num(cal.get('A'))}, B = {num(cal.get('B'))} "
                          f"(on {cal.get('n_folds')}-fold cross-validated values, seed "
                          f"{cal.get('seed')})")
         else:
@@ -111,7 +111,7 @@ def _pair_line(s: Mapping[str, Any]) -> str:
     key = " vs ".join(s.get("key") or [])
     verdict = f", agreement {s['verdict']}" if s.get("verdict") else ""
     return (f"  {key:24s} {s['solver']:3s} {s['run_id']}  {state}, {s['iterations']} it, "
-            f"violation {num(s['max_violation'], '.2e')}, gap {num(s['duality_gap'], '.2e')}"
+            f"violation {num(s['max_violation'])}, gap {num(s['duality_gap'])}"
             f"{verdict}")
 
 
@@ -127,8 +127,8 @@ def _print_parent(outcome: Any) -> None:
         f"  slowest pair  {' vs '.join(s['slowest_pair']['key'] or [])}: "
         f"{s['slowest_pair']['iterations']} iterations",
         f"  worst verdict {s.get('worst_verdict') or 'n/a (no challenger)'}",
-        f"  violation     largest {num(s['max_violation'], '.3e')} "
-        f"(kkt_tol {num(s['kkt_tol'], '.1e')})",
+        f"  violation     largest {num(s['max_violation'])} "
+        f"(kkt_tol {num(s['kkt_tol'])})",
     ]
     if "holdout_accuracy" in s:
         out.append(f"  held-out      accuracy {num(s['holdout_accuracy'], '.3f')}, balanced "

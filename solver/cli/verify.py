@@ -9,7 +9,9 @@ from typing import Any
 from ._shared import (
     EXIT_ERROR,
     EXIT_OK,
+    add_column_options,
     add_command,
+    column_kwargs,
     emit_json,
     num,
     to_dict,
@@ -31,7 +33,7 @@ def cmd_verify(args: argparse.Namespace) -> int:
     import solver
 
     res = solver.verify(args.run, store=args.store, rerun=args.rerun, keep_rerun=args.keep,
-                        trusted=args.trusted or None)
+                        trusted=args.trusted or None, **column_kwargs(args))
     integ = to_dict(res.integrity)
     repro = None if res.reproduction is None else to_dict(res.reproduction)
     if args.json:
@@ -61,11 +63,11 @@ def cmd_verify(args: argparse.Namespace) -> int:
             for r in repro["pairs"]:
                 print(f"  pair {' vs '.join(r['pair'])} (run {r['run_id']}): alpha "
                       f"{r['agreement']} (max |difference| "
-                      f"{num(r['max_abs_difference'], '.3g')}); iterations {r['iterations']}")
+                      f"{num(r['max_abs_difference'])}); iterations {r['iterations']}")
         elif repro is not None:
             print(f"re-run: alpha {repro.get('agreement')} (max |difference| "
-                  f"{num(repro.get('max_abs_difference'), '.3g')}, tolerance "
-                  f"{num(repro.get('tolerance'), '.3g')}); iterations "
+                  f"{num(repro.get('max_abs_difference'))}, tolerance "
+                  f"{num(repro.get('tolerance'))}); iterations "
                   f"{repro.get('iterations')}, status {repro.get('status')}")
             for note in repro.get("notes") or ():
                 print(f"  note: {note}")
@@ -102,5 +104,6 @@ def register(sub: Any) -> None:
     p.add_argument("--trusted", metavar="PUBKEY", action="append", default=None,
                    help="require a signature by this public key (NAME.public.pem from "
                    "'kktrace keys new'); may be given more than once")
+    add_column_options(p, "the --rerun file")
     p.set_defaults(func=cmd_verify)
 

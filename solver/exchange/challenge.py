@@ -28,7 +28,7 @@ from typing import Any
 
 import numpy as np
 
-from .._workflow import _fingerprint, _load_data, open_store
+from .._workflow import NO_CHOICE, Columns, _fingerprint, _load_data, open_store
 from ..certificate import certify
 from ..data import Dataset
 from ..errors import InvalidInputError
@@ -38,6 +38,7 @@ from ..problem import binary_classification
 from ..result import SolveResult
 from ..run import RunRecord
 from ..status import Status, status_message
+from ..vocabulary import figure_text
 from .external import ExternalModel, ExternalPair, read_external_model
 
 __all__ = ["ChallengeOutcome", "PairChallenge", "challenge", "FLOAT32_EPS", "TOP_RESIDUALS"]
@@ -153,8 +154,9 @@ def _findings(problem: Any, alpha: np.ndarray, coef_sign_bad: np.ndarray, rows: 
         res = np.asarray(cert.kkt_residual)
         order = np.argsort(-res, kind="stable")[:TOP_RESIDUALS]
         named = ", ".join(f"{int(rows[i])} ({res[i]:.3g})" for i in order if res[i] > 0)
-        out.append(f"KKT conditions fail: maximal violation {cert.max_violation:.3g} > kkt_tol "
-                   f"{cert.kkt_tol:.3g}; largest KKT residuals at data row(s) {named} (0-based)")
+        out.append(f"KKT conditions fail: maximal violation {figure_text(cert.max_violation)} "
+                   f"> kkt_tol {figure_text(cert.kkt_tol)}; largest KKT residuals at data row(s) "
+                   f"{named} (0-based)")
     return out
 
 
@@ -236,7 +238,7 @@ def challenge(
     kkt_tol: float = 1e-3,
     standardise: bool = True,
     store: Any = None,
-    challenger: bool = True,
+    challenger: bool = True, columns: Columns = NO_CHOICE,
 ) -> ChallengeOutcome:
     """Challenge an external model (ONNX file or open JSON table) on its training data.
 
@@ -248,9 +250,10 @@ def challenge(
     standardise : when the model carries no input scaling of its own, standardise the data
         as ``train`` would (mean 0, sd 1); ``False`` uses the features as given.
     challenger : also solve with the QP challenger (skipped above its size limit).
+    columns : the data's feature / ignored columns and delimiter (as for ``train``).
     """
     ext = read_external_model(model)
-    ds = _load_data(data, label, "training data")
+    ds = _load_data(data, label, "training data", columns)
     if ds.labels is None:
         raise InvalidInputError("a challenge needs the training data's label column (--label)")
     width = ext.pairs[0].points.shape[1]

@@ -39,6 +39,7 @@ from ..model import model_from_solution
 from ..problem import ONE_CLASS_KIND, REGRESSION_KIND, DualProblem
 from ..result import SolveResult
 from ..status import Status
+from ..vocabulary import figure_text
 
 __all__ = ["REGRESSION_CATEGORIES", "ONE_CLASS_CATEGORIES", "KindTable", "kind_point_table",
            "KindLeaveOneOut", "kind_leave_one_out", "training_values"]
@@ -157,8 +158,8 @@ def kind_point_table(problem: DualProblem, result: SolveResult,
 
 def _unsettled(resid: float, tol: float) -> str:
     if resid > tol:
-        return (f" Its KKT residual {resid:.3g} exceeds the tolerance {tol:.3g}: the solver "
-                "has not settled this point.")
+        return (f" Its KKT residual {resid:.3g} exceeds the tolerance {figure_text(tol)}: the "
+                "solver has not settled this point.")
     return ""
 
 

@@ -26,6 +26,7 @@ import numpy as np
 from ..errors import InvalidInputError
 from ..problem import DualProblem
 from ..result import SolveResult
+from ..vocabulary import figure_text
 
 __all__ = ["CATEGORIES", "COLUMNS", "PointTable", "point_table"]
 
@@ -304,7 +305,7 @@ def _reason(category: str, a: float, u: float, m: float, resid: float, kkt_tol: 
                 f"while y·f(x) = {mtxt} is not below 1; at the optimum this means it sits "
                 f"exactly on the margin with zero slack (a degenerate case).")
     if resid > kkt_tol:
-        text += (f" Its KKT residual {resid:.3g} exceeds the tolerance {kkt_tol:.3g}: "
+        text += (f" Its KKT residual {resid:.3g} exceeds the tolerance {figure_text(kkt_tol)}: "
                  f"the solver has not settled this point.")
     return text
 

@@ -6,7 +6,6 @@ Shared by the content builders (:mod:`._provenance`, :mod:`._convergence`, :mod:
 
 from __future__ import annotations
 
-import math
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from typing import Any
@@ -14,7 +13,7 @@ from typing import Any
 import numpy as np
 
 from ..status import Status
-from ..vocabulary import CAUTION
+from ..vocabulary import CAUTION, figure_text
 
 __all__ = ["CAUTION", "SEVERITIES", "Flag", "Table", "FigureData", "TaskSection", "RunContent",
            "ReportContent", "run_outline", "section_numbers", "figure_numbers"]
@@ -219,11 +218,7 @@ def _fmt_num(v: Any) -> str:
     f = _float(v)
     if f is None:
         return str(v)
-    if math.isnan(f):
-        return "n/a"
-    if f != 0 and (abs(f) < 1e-3 or abs(f) >= 1e5):
-        return f"{f:.3e}"
-    return f"{f:.6g}"
+    return figure_text(f)
 
 
 # --------------------------------------------------------------------------- numbering

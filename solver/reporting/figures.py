@@ -23,7 +23,7 @@ from matplotlib.figure import Figure, SubFigure
 from matplotlib.lines import Line2D
 from matplotlib.ticker import FuncFormatter, LogLocator, NullFormatter
 
-from ..vocabulary import category_label
+from ..vocabulary import SUPERSCRIPT_DIGITS, category_label, figure_text
 from .content import FigureData
 
 __all__ = ["PALETTE", "style", "plain_text", "draw", "render_figure", "figure_svg", "svg_text"]
@@ -110,7 +110,6 @@ def _c(name: str) -> str:
     return PALETTE[name]
 
 
-_SUPERSCRIPT = str.maketrans("-0123456789", "⁻⁰¹²³⁴⁵⁶⁷⁸⁹")
 
 
 def _pow10(v: float, _pos: int) -> str:
@@ -119,7 +118,7 @@ def _pow10(v: float, _pos: int) -> str:
         return ""
     e = np.log10(v)
     r = int(round(e))
-    return f"10{str(r).translate(_SUPERSCRIPT)}" if abs(e - r) < 1e-9 else ""
+    return f"10{str(r).translate(SUPERSCRIPT_DIGITS)}" if abs(e - r) < 1e-9 else ""
 
 
 def _count(v: float, _pos: int) -> str:
@@ -136,7 +135,7 @@ def _num(v: float, _pos: int) -> str:
     text = f"{v:.3g}"
     if "e" in text:
         m, e = text.split("e")
-        text = f"{m}×10{str(int(e)).translate(_SUPERSCRIPT)}"
+        text = f"{m}×10{str(int(e)).translate(SUPERSCRIPT_DIGITS)}"
     return text.replace("-", "−")
 
 
@@ -211,7 +210,7 @@ def _draw_violation(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
     pos = y > 0
     ax.plot(x[pos], y[pos], color=_c("tide"), linewidth=0.8, label="maximal violation")
     ax.axhline(d["kkt_tol"], color=_c("rust"), linestyle=(0, (5, 3)), linewidth=1.0,
-               label=f"kkt_tol = {d['kkt_tol']:.3g}")
+               label=f"kkt_tol = {figure_text(float(d['kkt_tol']))}")
     fy = d["final_y"] if d["final_y"] > 0 else (y[pos].min() if pos.any() else d["kkt_tol"]) * 0.5
     ax.plot([d["final_x"]], [fy], marker="o", markersize=6, markerfacecolor="none",
             markeredgecolor=_c("ink"), linestyle="none", label="final certificate")

@@ -8,13 +8,12 @@ meta tag forbids scripts and remote loads as a second line of defence.
 from __future__ import annotations
 
 import html
-import math
 import re
 from collections.abc import Mapping, Sequence
 from importlib import resources
 from typing import Any
 
-from ..vocabulary import heading, label, phase_label
+from ..vocabulary import figure_text, heading, label, phase_label
 from ._records import figure_numbers, section_numbers
 from .content import AGREE_VERDICTS, LOOSE_VERDICTS, Flag, ReportContent, RunContent, Table
 from .figures import figure_svg
@@ -36,27 +35,13 @@ def esc(v: Any) -> str:
 
 
 def fmt(v: Any) -> str:
-    """Display text for a plain value (numbers to 6 significant digits, None as a dash)."""
-    if v is None:
-        return "—"
-    if isinstance(v, bool):
-        return "yes" if v else "no"
-    if isinstance(v, int):
-        return f"{v:,}".replace(",", "\u2009")
-    if isinstance(v, float):
-        if math.isnan(v):
-            return "n/a"
-        if math.isinf(v):
-            return "∞" if v > 0 else "−∞"
-        if v != 0 and (abs(v) < 1e-3 or abs(v) >= 1e6):
-            m, e = f"{v:.3e}".split("e")
-            return f"{m}×10^{int(e)}"
-        return f"{v:.6g}"
+    """Display text for a plain value (:func:`solver.vocabulary.figure_text`, the exponent
+    as ``×10^n`` for :func:`_num_html` to set as a superscript)."""
     if isinstance(v, Mapping):
         return "; ".join(f"{k}: {fmt(x)}" for k, x in v.items()) or "—"
     if isinstance(v, (list, tuple)):
         return ", ".join(fmt(x) for x in v) or "—"
-    return str(v)
+    return figure_text(v, power="caret")
 
 
 def _num_html(v: Any) -> str:

@@ -17,7 +17,7 @@ from typing import Any
 from matplotlib.backends.backend_pdf import PdfPages
 from matplotlib.figure import Figure
 
-from ..vocabulary import heading, label
+from ..vocabulary import SUPERSCRIPT_DIGITS, heading, label
 from ._records import figure_numbers, section_numbers
 from .content import FigureData, ReportContent, RunContent, Table
 from .figures import PALETTE, draw, plain_text, style
@@ -37,13 +37,12 @@ MIN_LINES = 10  # a continued text page carries at least this many lines
 
 
 _POWER = re.compile(r"×10\^(-?[0-9]+)")
-_SUPER = str.maketrans("-0123456789", "⁻⁰¹²³⁴⁵⁶⁷⁸⁹")
 
 
 def pdf_num(v: Any) -> str:
-    """The HTML's display text of a value, powers of ten as superscripts (1.000×10⁻⁵):
-    one style for a figure in both formats."""
-    return _POWER.sub(lambda m: "×10" + m.group(1).translate(_SUPER), fmt(v))
+    """The HTML's display text of a value, powers of ten as superscripts (1×10⁻⁵): one
+    style for a figure in the HTML, the PDF and the terminal."""
+    return _POWER.sub(lambda m: "×10" + m.group(1).translate(SUPERSCRIPT_DIGITS), fmt(v))
 
 
 @dataclass(frozen=True)

@@ -157,8 +157,12 @@ def _command(data: Any, label: str | None, args: Mapping[str, Any]) -> dict[str,
         if v is None or v is False:
             continue
         flag = "--" + k.replace("_", "-")
-        argv += [flag] if v is True else [flag, ",".join(f"{x:g}" for x in v)
-                                            if isinstance(v, (list, tuple)) else str(v)]
+        if v is True:
+            argv += [flag]
+        elif isinstance(v, (list, tuple)):
+            argv += [flag, ",".join(x if isinstance(x, str) else f"{x:g}" for x in v)]
+        else:
+            argv += [flag, str(v)]
     return {"argv": argv, "text": shlex.join(argv), "python": None}
 
 
@@ -185,6 +189,8 @@ def study(
     stability: bool = False, scheduler: str | None = None, workers: int | None = None,
     connect_timeout: float = CONNECT_TIMEOUT_S, store: Any = None,
     table: str | Path | None = None, progress: StudyProgress | None = None,
+    feature_columns: Sequence[str] | None = None, ignore_columns: Sequence[str] | None = None,
+    delimiter: str | None = None,
 ) -> StudyOutcome:
     """Cross-validate a grid of C × γ (× degree) and store every fit and the study.
 
@@ -211,6 +217,8 @@ def study(
     store : store directory or RunStore.  table : also write the results table here
         (Parquet); it is stored with the study either way.
     progress : ``progress(done, total, failures, elapsed_s, left_s)`` after every fit.
+    feature_columns, ignore_columns, delimiter : the data file's columns, as for
+        :func:`solver.train`.
 
     Returns a :class:`StudyOutcome`.  A fit that does not converge is stored with its
     status, counted in the table and listed (``outcome.not_converged``).
@@ -226,7 +234,8 @@ def study(
                    trace=trace, standardise=standardise, warm_start=warm_start,
                    stability=stability, scheduler=scheduler, workers=workers,
                    connect_timeout=connect_timeout, store=store, table=table,
-                   progress=progress)
+                   progress=progress, feature_columns=feature_columns,
+                   ignore_columns=ignore_columns, delimiter=delimiter)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         out = _study(data, **options)
@@ -249,9 +258,11 @@ def _study(
     stability: bool = False, scheduler: str | None = None, workers: int | None = None,
     connect_timeout: float = CONNECT_TIMEOUT_S, store: Any = None,
     table: str | Path | None = None, progress: StudyProgress | None = None,
+    feature_columns: Sequence[str] | None = None, ignore_columns: Sequence[str] | None = None,
+    delimiter: str | None = None,
 ) -> StudyOutcome:
     """The body of :func:`study` (same options)."""
-    from .._workflow import _fingerprint, _load_data, open_store
+    from .._workflow import Columns, _fingerprint, _load_data, open_store
     from ..tasks import classification_task
     from ..tasks._labels import class_order
     from ..training import _subset, _warm_up
@@ -265,7 +276,8 @@ def _study(
     where = _where(scheduler)
     if isinstance(data, (str, Path)) and label is None:
         raise InvalidInputError("name the label column of the data file (--label COLUMN)")
-    ds = _load_data(data, label, "study data")
+    ds = _load_data(data, label, "study data",
+                    Columns.of(feature_columns, ignore_columns, delimiter))
     if ds.labels is None:
         raise InvalidInputError("study data have no label column")
     classes = class_order(ds.labels)
@@ -290,7 +302,8 @@ def _study(
         "degree": None if grid.degree == (None,) else list(grid.degree),
         "folds": int(folds), "seed": int(seed), "kkt_tol": kkt_tol,
         "iteration_limit": iteration_limit, "trace": trace, "warm_start": bool(warm_start),
-        "no_standardise": not standardise})
+        "no_standardise": not standardise, "features": feature_columns,
+        "ignore": ignore_columns, "delimiter": delimiter})
     jobs: list[FitJob] = []
     chains: dict[tuple[int, Any, Any], list[Any]] = {}
     for cell in grid.cells():

@@ -20,6 +20,7 @@ import numpy as np
 
 from ..explanation._kinds import ONE_CLASS_CATEGORIES
 from ..problem import ONE_CLASS_KIND
+from ..vocabulary import figure_text
 from ._base import Task
 
 __all__ = ["OneClassTask", "TASK"]
@@ -136,7 +137,7 @@ class OneClassTask(Task):
                  "title": "ν against the shares of outliers and support vectors",
                  "caption": ("Outlier share ≤ ν ≤ support-vector share must hold at the "
                              "optimum (Schölkopf et al. 2001, Proposition 4); outliers are "
-                             f"rows with score below −kkt_tol = −{tol:.3g}. "
+                             f"rows with score below −kkt_tol = −{figure_text(tol)}. "
                              + ("It holds for this run." if check["holds"] else
                                 "It does NOT hold for this run.")),
                  "data": {"nu": nu, "outlier_share": check["outlier_share"],

@@ -20,6 +20,7 @@ import numpy as np
 
 from ..explanation._kinds import REGRESSION_CATEGORIES
 from ..problem import REGRESSION_KIND
+from ..vocabulary import figure_text
 from ._base import Task
 
 __all__ = ["RegressionTask", "TASK"]
@@ -114,7 +115,7 @@ class RegressionTask(Task):
             "tables": [{"columns": ("category", "rows", "meaning"), "rows": cat_rows,
                         "note": (f"Rows by the multipliers against their bounds; by the "
                                  f"residual alone {above} rows lie above the tube and "
-                                 f"{below} below it by more than kkt_tol = {tol:.3g}.")}],
+                                 f"{below} below it by more than kkt_tol = {figure_text(tol)}.")}],
             "figures": [
                 {"key": "fit_tube", "kind": "fit_tube",
                  "title": f"fit against {target} with the ε-tube",
