@@ -373,7 +373,7 @@ def test_a_permutation_that_moves_the_optimum_is_flagged():
     from types import SimpleNamespace
 
     from solver.studies.grid import Cell
-    from solver.studies.stability import SAME_VALUE_ABS, StabilityJob, summarise
+    from solver.studies.stability import SAME_VALUE_ABS, StabilityJob, VariantFit, summarise
 
     def fit(kind, values):
         on = np.array([True, False, True, False])
@@ -381,9 +381,13 @@ def test_a_permutation_that_moves_the_optimum_is_flagged():
                                  success=True, bias=0.0,
                                  status=SimpleNamespace(label="converged"))
         job = StabilityJob(kind, 0, None, 0, Cell(1.0, 0.1, None), "binary", {})
-        return SimpleNamespace(job=job, record=SimpleNamespace(result=result),
-                               rows=np.arange(4), train_values=np.array(values),
-                               hold_values=np.array(values[:2]))
+        rec = SimpleNamespace(result=result, problem=SimpleNamespace(n=4, rows=None),
+                              attachments={"stability_fit": {"rows": [0, 1, 2, 3]}})
+        v = np.array(values)[:, None]
+        return VariantFit(job=job, members=(("model", None, rec),), rows=np.arange(4),
+                          train_values=v, hold_values=v[:2],
+                          train_labels=np.where(v[:, 0] > 0, "a", "b").astype(object),
+                          hold_labels=np.where(v[:2, 0] > 0, "a", "b").astype(object))
 
     base = fit("base", [1.0, -1.0, 0.5, -0.5])
     same = fit("permutation", [1.0 + SAME_VALUE_ABS / 2, -1.0, 0.5, -0.5])
@@ -456,6 +460,3 @@ def test_a_multiclass_study_stores_one_vs_one_fits_and_verifies(tmp_path):
     again = study(ds, C=[1.0, 10.0], gamma=[0.05], folds=3, seed=0, scheduler="sequential",
                   store=tmp_path)
     assert again.reused == 6 and again.fitted == 0
-    with pytest.raises(InvalidInputError, match="two-class studies"):
-        study(ds, C=[1.0], gamma=[0.05], folds=3, warm_start=True, scheduler="sequential",
-              store=tmp_path)

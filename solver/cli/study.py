@@ -26,7 +26,10 @@ _STUDY_EXAMPLES = """examples:
   kktrace study batches.csv --label lab_decision --C 0.1,1,10 --gamma 0.1 \\
       --scheduler tcp://10.0.0.5:8786 --table study.parquet --json
   kktrace study batches.csv --label lab_decision --kernel poly --degree 2,3 --gamma 0.1 \\
-      --C 1,10 --warm-start"""
+      --C 1,10 --warm-start
+  kktrace study batches.csv --task regression --target coating_thickness_um \\
+      --C 1,10 --gamma 0.05,0.1 --epsilon 0.1,0.5
+  kktrace study released.csv --task one-class --nu 0.05,0.2 --gamma 0.05,0.1"""
 
 
 class _Ticker:
@@ -59,8 +62,10 @@ def cmd_study(args: argparse.Namespace) -> int:
     ticker = _Ticker(enabled=not args.quiet and not args.json and sys.stderr.isatty())
     try:
         out = solver.study(
-            args.data, label=args.label, kernel=args.kernel, C=args.C, gamma=args.gamma,
-            degree=args.degree, offset=args.offset, folds=args.folds, seed=args.seed,
+            args.data, label=args.label, task=args.task, target=args.target,
+            outlier_column=args.outlier_column, kernel=args.kernel, C=args.C,
+            gamma=args.gamma, degree=args.degree, epsilon=args.epsilon, nu=args.nu,
+            offset=args.offset, folds=args.folds, seed=args.seed,
             kkt_tol=args.kkt_tol, iteration_limit=args.iteration_limit, trace=args.trace,
             standardise=not args.no_standardise, warm_start=args.warm_start,
             stability=args.stability,
@@ -82,14 +87,15 @@ def cmd_study(args: argparse.Namespace) -> int:
     print(f"study {out.study_id}: {len(out.rows)} fits over {len(out.cells)} cells "
           f"({out.fitted} fitted now, {out.reused} found stored and verified)")
     print(f"  ran on      {ex['mode']} ({ex['workers']} worker(s)): {ex['reason']}")
-    rows = [["cell", "mean accuracy", "std error", "mean iterations", "not converged",
-             "bounded share"]]
+    ch = out.choice
+    better = "higher" if ch.get("higher_is_better", True) else "lower"
+    rows = [["cell", f"mean {ch['score']} ({better} is better)", "std error",
+             "mean iterations", "not converged", "bounded share"]]
     for c in out.cells:
         rows.append([c["cell"], num(c["mean_score"], ".4f"), num(c["se_score"], ".4f"),
                      num(c["mean_iterations"], ".0f"), f"{c['not_converged_share']:.0%}",
                      f"{c['bounded_share']:.0%}"])
     print_rows(rows)
-    ch = out.choice
     print(f"best cell by mean {ch['score']}: {ch['best']} ({num(ch['best_mean'], '.4f')})")
     print(f"chosen cell: {ch['one_se']} ({num(ch['one_se_mean'], '.4f')}) by the {ch['rule']}")
     wc = out.warm_check
@@ -125,10 +131,27 @@ def register(sub: Any) -> None:
                     "a stored run, the study a parent record", _STUDY_EXAMPLES)
     p.add_argument("data", metavar="DATAFILE")
     p.add_argument("--label", metavar="COLUMN", default=None,
-                   help="label column (two or more classes)")
+                   help="label column (two or more classes; --task classification)")
+    p.add_argument("--task", choices=("classification", "regression", "one-class"),
+                   default="classification",
+                   help="classification (default; --label, scored by accuracy), regression "
+                   "(--target, an --epsilon axis, scored by RMSE) or one-class (features "
+                   "alone, a --nu axis instead of --C, scored by |held-out share flagged - "
+                   "nu|)")
+    p.add_argument("--target", metavar="COLUMN", default=None,
+                   help="numeric target column (--task regression)")
+    p.add_argument("--outlier-column", metavar="COLUMN", default=None,
+                   help="column of known outliers, never used for fitting (--task "
+                   "one-class; adds detection and false-alarm rates)")
     p.add_argument("--kernel", default="rbf", choices=["linear", "poly", "rbf", "sigmoid"])
-    p.add_argument("--C", metavar="VALUES", default="0.1,1,10",
-                   help="comma-separated penalties, each > 0 (default 0.1,1,10)")
+    p.add_argument("--C", metavar="VALUES", default=None,
+                   help="comma-separated penalties, each > 0 (default 0.1,1,10; one-class "
+                   "has none)")
+    p.add_argument("--epsilon", metavar="VALUES", default=None,
+                   help="comma-separated tube half-widths, each > 0, target units "
+                   "(--task regression; default 0.1)")
+    p.add_argument("--nu", metavar="VALUES", default=None,
+                   help="comma-separated nu values in (0, 1] (--task one-class; default 0.5)")
     p.add_argument("--gamma", metavar="VALUES", default=None,
                    help="comma-separated kernel gammas, each > 0 (rbf, poly, sigmoid)")
     p.add_argument("--degree", metavar="VALUES", default=None,

@@ -17,11 +17,12 @@ import secrets
 import zipfile
 from collections.abc import Mapping
 from datetime import datetime, timezone
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
-import pyarrow as pa
-import pyarrow.parquet as pq
+
+if TYPE_CHECKING:  # pyarrow loads only when a table is written or read
+    import pyarrow as pa
 
 from ..errors import IntegrityError, InvalidInputError
 
@@ -285,6 +286,8 @@ def _column_encoding(name: str, arr: np.ndarray) -> tuple[str | None, bool]:
 
 def _to_arrow(arr: np.ndarray) -> pa.Array:
     """Arrow array from a 1-D numpy array, built from buffers (``pa.array`` would import pandas)."""
+    import pyarrow as pa
+
     n = int(arr.shape[0])
     if arr.dtype.kind == "b":
         bits = np.packbits(arr.astype(np.uint8), bitorder="little")
@@ -311,6 +314,9 @@ def write_table(
     Numeric and boolean columns keep their dtype; string columns are UTF-8.
     ``descriptions`` become per-field metadata ``description`` for readers.
     """
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
     fields, arrays, enc, dict_cols = [], [], {}, []
     for name, arr in columns.items():
         arr = np.asarray(arr)
@@ -343,6 +349,8 @@ _NUMPY_OF.update({"float": np.dtype(np.float32), "double": np.dtype(np.float64),
 
 def _from_arrow(col: pa.ChunkedArray) -> np.ndarray:
     """numpy copy of a null-free numeric or boolean column, read from its buffers."""
+    import pyarrow as pa
+
     typ = col.type
     parts = []
     for ch in col.chunks:
@@ -368,6 +376,9 @@ def read_table(
     order and dtypes must match exactly (``spec`` names the manifest field in messages).
     Malformed bytes → :class:`IntegrityError`.
     """
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
     try:
         # ParquetFile, not pq.read_table: the latter imports pandas (a second of start-up)
         # one thread: once Arrow's thread pool has started, the process can abort at exit

@@ -3,8 +3,10 @@
 Where (``where``): ``"local"`` (default) starts a ``LocalCluster`` with one worker process
 per core (or ``workers``) and one thread each, closed afterwards; a scheduler address
 (``tcp://host:port``) uses that cluster; ``"sequential"`` runs in this process (tests,
-tiny studies).  The :class:`StudyData` are scattered once to every worker
-(``broadcast=True``, so losing a worker loses no data) and each job refers to them.
+tiny studies).  A :class:`StudySession` holds one client (and its cluster) for the whole
+study — the grid's fits, the warm-start check and the stability refits — and scatters the
+:class:`StudyData` once to every worker (``broadcast=True``, so losing a worker loses no
+data) on its first batch; every later job refers to the same scattered data.
 
 Retries: a job whose worker process dies is rescheduled by the Dask scheduler on another
 worker up to ``distributed.scheduler.allowed-failures`` times (Dask's default 3); a job
@@ -21,7 +23,7 @@ from typing import Any
 from ..distributed import Execution, _cores, _one_thread
 from ..errors import InvalidInputError
 
-__all__ = ["RETRIES", "CONNECT_TIMEOUT_S", "connect", "run_study_jobs"]
+__all__ = ["RETRIES", "CONNECT_TIMEOUT_S", "connect", "run_study_jobs", "StudySession"]
 
 #: extra attempts for a job that raised (a dead worker is retried by the scheduler itself)
 RETRIES = 2
@@ -59,34 +61,72 @@ def connect(where: str, workers: int | None = None,
                                    address=where)
 
 
-def run_study_jobs(
-    fn: Callable[[Any, Any], list[Any]], data: Any, jobs: Sequence[Any], *, where: str,
-    workers: int | None = None, timeout: float = CONNECT_TIMEOUT_S,
-    on_done: Callable[[int, list[Any]], None] | None = None,
-    warm_up: Callable[[], Any] | None = None, connected: Any = None,
-) -> Execution:
-    """Run ``fn(data, job)`` for every job; ``on_done(index, result)`` is called in this
-    process as each job finishes (in completion order).  Raises the first job error."""
-    if where == "sequential":
-        ex = Execution("sequential", 1, "asked for: in this process, one job after the other")
-        for i, job in enumerate(jobs):
-            res = fn(data, job)
-            if on_done is not None:
-                on_done(i, res)
-        return ex
-    from dask.distributed import as_completed
+class StudySession:
+    """One place where a study's fits run (see the module docstring); a context manager
+    that closes the client and the cluster it started.
 
-    client, cluster, ex = connected if connected is not None else connect(where, workers,
-                                                                          timeout)
-    try:
+    where : ``"sequential"``, ``"local"`` or an address; ``connected`` : what
+    :func:`connect` returned (None connects on the first batch)."""
+
+    def __init__(self, data: Any, *, where: str, workers: int | None = None,
+                 timeout: float = CONNECT_TIMEOUT_S, warm_up: Callable[[], Any] | None = None,
+                 connected: Any = None) -> None:
+        self.data, self.where, self.workers, self.timeout = data, where, workers, timeout
+        self.warm_up, self.connected = warm_up, connected
+        self.shared: Any = None
+        self.scatters = 0
+        self.execution: Execution | None = None
+        if where == "sequential":
+            self.execution = Execution("sequential", 1, "asked for: in this process, one "
+                                       "job after the other")
+
+    def __enter__(self) -> StudySession:
+        return self
+
+    def __exit__(self, *exc: Any) -> None:
+        self.close()
+
+    def close(self) -> None:
+        """Close the client and the cluster this session started (idempotent)."""
+        if self.connected is not None:
+            client, cluster, _ = self.connected
+            self.connected = None
+            client.close()
+            if cluster is not None:
+                cluster.close()
+
+    def _client(self) -> Any:
+        if self.connected is None:
+            self.connected = connect(self.where, self.workers, self.timeout)
+        client, _, ex = self.connected
+        self.execution = ex
+        if self.shared is None:
+            client.run(_one_thread)
+            if self.warm_up is not None:
+                client.run(self.warm_up)
+            self.shared = client.scatter(self.data, broadcast=True)
+            self.scatters += 1
+        return client
+
+    def run(self, fn: Callable[[Any, Any], Any], jobs: Sequence[Any],
+            on_done: Callable[[int, Any], None] | None = None) -> Execution:
+        """``fn(data, job)`` for every job; ``on_done(index, result)`` in this process as
+        each finishes (completion order).  Raises the first job error."""
+        if self.where == "sequential":
+            for i, job in enumerate(jobs):
+                res = fn(self.data, job)
+                if on_done is not None:
+                    on_done(i, res)
+            assert self.execution is not None
+            return self.execution
+        from dask.distributed import as_completed
+
+        client = self._client()
         if not jobs:
-            return ex
-        client.run(_one_thread)
-        if warm_up is not None:
-            client.run(warm_up)
-        shared = client.scatter(data, broadcast=True)
+            assert self.execution is not None
+            return self.execution
         stamp = f"{time.time_ns():x}"
-        futures = [client.submit(fn, shared, job, retries=RETRIES, pure=False,
+        futures = [client.submit(fn, self.shared, job, retries=RETRIES, pure=False,
                                  key=f"kktrace-study-fit-{stamp}-{i}")
                    for i, job in enumerate(jobs)]
         index = {f.key: i for i, f in enumerate(futures)}
@@ -94,8 +134,20 @@ def run_study_jobs(
             res = fut.result()
             if on_done is not None:
                 on_done(index[fut.key], res)
-    finally:
-        client.close()
-        if cluster is not None:
-            cluster.close()
-    return ex
+        assert self.execution is not None
+        return self.execution
+
+
+def run_study_jobs(
+    fn: Callable[[Any, Any], list[Any]], data: Any, jobs: Sequence[Any], *, where: str,
+    workers: int | None = None, timeout: float = CONNECT_TIMEOUT_S,
+    on_done: Callable[[int, list[Any]], None] | None = None,
+    warm_up: Callable[[], Any] | None = None, connected: Any = None,
+) -> Execution:
+    """Run ``fn(data, job)`` for every job in a :class:`StudySession` of its own (closed
+    afterwards); ``on_done(index, result)`` as each job finishes."""
+    with StudySession(data, where=where, workers=workers, timeout=timeout,
+                      warm_up=warm_up, connected=connected) as session:
+        if where != "sequential" and not jobs:
+            session._client()
+        return session.run(fn, jobs, on_done)

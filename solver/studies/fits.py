@@ -125,7 +125,7 @@ def fit_chain(data: StudyData, job: FitJob) -> list[FitOutput]:
     sub = _subset(ds, train_rows)
     val = _subset(ds, val_rows)
     opts = job.options
-    members = task.members(sub.labels, options={"label_name": ds.label_name})
+    members = task.members(_column(sub), options={"label_name": ds.label_name})
     parts = []  # per member: its spec, standardiser, standardised rows, data facts
     for m in members:
         mds = _subset(sub, m.rows)
@@ -141,13 +141,13 @@ def fit_chain(data: StudyData, job: FitJob) -> list[FitOutput]:
                 "n_rows": int(sub.X.shape[0]), **job.extra_data}
     from ..tasks._labels import class_order
 
-    classes = class_order(ds.labels)
+    classes = class_order(ds.labels) if task.class_labels else ()
     out: list[FitOutput] = []
     prev: list[Any] = [None] * len(parts)
     for cell, key in zip(job.cells, job.keys, strict=True):
         runs, models, warm = [], [], False
         for i, (m, std, Z, facts) in enumerate(parts):
-            problem = task.build_problem(Z, m, kernel=_kernel(opts, cell), C=cell.C)
+            problem = task.cell_problem(Z, m, kernel=_kernel(opts, cell), cell=cell)
             start = None
             if job.warm and prev[i] is not None:
                 p_prob, p_res = prev[i]
@@ -159,9 +159,10 @@ def fit_chain(data: StudyData, job: FitJob) -> list[FitOutput]:
             runs.append((m, problem, result, std, facts))
             prev[i] = (problem, result)
         pred = task.predict(models, val.X, info)
-        scores = task.held_out(pred, val.labels, classes)
+        scores = task.study_scores(pred, val.labels, classes, cell)
         vals = np.abs(np.asarray(pred.values, dtype=np.float64).reshape(val_rows.size, -1))
-        small = vals.min(axis=1) < SMALL_VALUE if vals.size else np.zeros(0, bool)
+        small = (vals.min(axis=1) < SMALL_VALUE if vals.size and task.decides_by_sign
+                 else np.zeros(0, bool))
         scores.update(source="validation fold", fold=int(job.fold),
                       n_small_values=int(np.sum(small)), small_value_threshold=SMALL_VALUE)
         att = {
@@ -187,6 +188,14 @@ def fit_chain(data: StudyData, job: FitJob) -> list[FitOutput]:
                              warm_start=warm, members=parts_out, info=info,
                              attachments=att, data={**fit_data, "study_fit_key": key}))
     return out
+
+
+def _column(ds: Dataset) -> np.ndarray:
+    """The split-off column a task's members are built from (classes, numeric targets or
+    known-outlier flags); a dataset without one gives (n,) Nones."""
+    if ds.labels is not None:
+        return ds.labels
+    return np.full(ds.X.shape[0], None, dtype=object)
 
 
 def _solve_from(problem: Any, opts: Mapping[str, Any], start: np.ndarray | None,

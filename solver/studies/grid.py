@@ -1,4 +1,5 @@
-"""The grid of a study: C × γ (× degree for the polynomial kernel), validated up front."""
+"""The grid of a study: C × γ (× degree for the polynomial kernel, × ε for ε-regression),
+or ν × γ for one-class (which has no C), validated up front."""
 
 from __future__ import annotations
 
@@ -17,46 +18,72 @@ _GAMMA_KERNELS = ("rbf", "poly", "sigmoid")
 
 @dataclass(frozen=True)
 class Cell:
-    """One grid cell: penalty C (> 0), kernel γ (> 0, None for the linear kernel) and
-    degree (poly only, else None)."""
+    """One grid cell: penalty C (> 0; None for one-class), kernel γ (> 0, None for the
+    linear kernel), degree (poly only, else None), ε (regression only: half-width of the
+    tube, target units) and ν (one-class only, 0 < ν ≤ 1)."""
 
-    C: float
+    C: float | None
     gamma: float | None
     degree: int | None
+    epsilon: float | None = None
+    nu: float | None = None
 
     @property
     def label(self) -> str:
         """How tables and messages name the cell, e.g. ``C=1 gamma=0.1``."""
-        parts = [f"C={self.C:g}"]
+        parts = [] if self.C is None else [f"C={self.C:g}"]
+        if self.nu is not None:
+            parts.append(f"nu={self.nu:g}")
         if self.gamma is not None:
             parts.append(f"gamma={self.gamma:g}")
         if self.degree is not None:
             parts.append(f"degree={self.degree}")
+        if self.epsilon is not None:
+            parts.append(f"epsilon={self.epsilon:g}")
         return " ".join(parts)
 
     def to_dict(self) -> dict[str, Any]:
         """Plain data."""
-        return {"C": self.C, "gamma": self.gamma, "degree": self.degree}
+        out: dict[str, Any] = {"C": self.C, "gamma": self.gamma, "degree": self.degree}
+        if self.epsilon is not None:
+            out["epsilon"] = self.epsilon
+        if self.nu is not None:
+            out["nu"] = self.nu
+        return out
+
+    @classmethod
+    def of(cls, d: Any) -> Cell:
+        """The cell of its plain data (:meth:`to_dict`)."""
+        return cls(d["C"], d["gamma"], d["degree"], d.get("epsilon"), d.get("nu"))
 
 
 @dataclass(frozen=True)
 class Grid:
-    """The axes of a study grid, each sorted ascending and free of repeats."""
+    """The axes of a study grid, each sorted ascending and free of repeats (an axis the
+    task does not have is ``(None,)``)."""
 
     kernel: str
-    C: tuple[float, ...]
+    C: tuple[float | None, ...]
     gamma: tuple[float | None, ...]
     degree: tuple[int | None, ...]
+    epsilon: tuple[float | None, ...] = (None,)
+    nu: tuple[float | None, ...] = (None,)
 
     def cells(self) -> list[Cell]:
-        """Every cell, γ-major then degree then C ascending (C innermost: the order warm
-        starts walk)."""
-        return [Cell(c, g, d) for g in self.gamma for d in self.degree for c in self.C]
+        """Every cell, γ-major then degree then ε, then C (or ν) ascending innermost: the
+        order warm starts walk."""
+        return [Cell(c, g, d, e, v) for g in self.gamma for d in self.degree
+                for e in self.epsilon for c in self.C for v in self.nu]
 
     def to_dict(self) -> dict[str, Any]:
         """Plain data (stored in the study's manifest)."""
-        return {"kernel": self.kernel, "C": list(self.C), "gamma": list(self.gamma),
-                "degree": list(self.degree), "cells": len(self.cells())}
+        out = {"kernel": self.kernel, "C": list(self.C), "gamma": list(self.gamma),
+               "degree": list(self.degree), "cells": len(self.cells())}
+        if self.epsilon != (None,):
+            out["epsilon"] = list(self.epsilon)
+        if self.nu != (None,):
+            out["nu"] = list(self.nu)
+        return out
 
 
 def parse_values(text: str, name: str) -> list[float]:
@@ -75,7 +102,8 @@ def parse_values(text: str, name: str) -> list[float]:
     return out
 
 
-def _axis(values: Any, name: str, *, integer: bool = False) -> tuple[Any, ...]:
+def _axis(values: Any, name: str, *, integer: bool = False,
+          at_most: float | None = None) -> tuple[Any, ...]:
     if values is None:
         raise InvalidInputError(f"the grid of {name} is empty; give at least one value")
     if isinstance(values, str):
@@ -92,6 +120,9 @@ def _axis(values: Any, name: str, *, integer: bool = False) -> tuple[Any, ...]:
         if v <= 0:
             raise InvalidInputError(f"the grid of {name}: {v!r} is not > 0 (every {name} "
                                     "must be a positive number)")
+        if at_most is not None and v > at_most:
+            raise InvalidInputError(f"the grid of {name}: {v!r} is above {at_most:g} "
+                                    f"(every {name} must lie in (0, {at_most:g}])")
         if integer:
             if float(v) != int(v):
                 raise InvalidInputError(f"the grid of {name}: {v!r} is not a whole number")
@@ -106,18 +137,31 @@ def _axis(values: Any, name: str, *, integer: bool = False) -> tuple[Any, ...]:
 
 def make_grid(kernel: str, C: Sequence[float] | str | None,
               gamma: Sequence[float] | str | None = None,
-              degree: Sequence[int] | str | None = None) -> Grid:
+              degree: Sequence[int] | str | None = None, *,
+              epsilon: Sequence[float] | str | None = None,
+              nu: Sequence[float] | str | None = None) -> Grid:
     """Validated :class:`Grid`: every axis non-empty, every value finite and > 0.
 
     ``gamma`` is required for the ``rbf``, ``poly`` and ``sigmoid`` kernels and refused for
-    ``linear``; ``degree`` belongs to ``poly`` (default (3,)).
+    ``linear``; ``degree`` belongs to ``poly`` (default (3,)).  ``epsilon`` (regression)
+    adds an ε axis; ``nu`` (one-class, each in (0, 1]) replaces the C axis, so ``C`` must
+    then be None.
     """
     from .._workflow import KERNEL_CHOICES
 
     if kernel not in KERNEL_CHOICES:
         raise InvalidInputError(f"unknown kernel {kernel!r}; choose one of "
                                 f"{', '.join(KERNEL_CHOICES)}")
-    cs = _axis(C, "C")
+    if nu is not None:
+        if C is not None:
+            raise InvalidInputError("a one-class study has no C: its grid is nu x gamma; "
+                                    "drop --C")
+        cs: tuple[float | None, ...] = (None,)
+        nus: tuple[float | None, ...] = _axis(nu, "nu", at_most=1.0)
+    else:
+        cs = _axis(C, "C")
+        nus = (None,)
+    eps: tuple[float | None, ...] = (None,) if epsilon is None else _axis(epsilon, "epsilon")
     if kernel in _GAMMA_KERNELS:
         gs: tuple[float | None, ...] = _axis(gamma, "gamma")
     elif gamma is not None:
@@ -131,4 +175,4 @@ def make_grid(kernel: str, C: Sequence[float] | str | None,
         raise InvalidInputError(f"degree belongs to the poly kernel, not {kernel}")
     else:
         ds = (None,)
-    return Grid(kernel=kernel, C=cs, gamma=gs, degree=ds)
+    return Grid(kernel=kernel, C=cs, gamma=gs, degree=ds, epsilon=eps, nu=nus)

@@ -48,25 +48,36 @@ def _axis(values: Sequence[Any]) -> list[Any]:
 
 def study_maps(results: Mapping[str, Any]) -> dict[str, Any]:
     """Plain data of the maps from a study's ``results`` attachment: the axes, one
-    (γ, C) matrix per map, and the positions of the chosen and best cells."""
+    (γ, C) matrix per map — (γ, ν) for one-class — and the positions of the chosen and
+    best cells.  With a degree or ε axis the maps are the chosen cell's slice."""
     cells = list(results["cells"])
     choice = results["choice"]
     chosen = next(c for c in cells if c["cell"] == choice["one_se"])
     best = next(c for c in cells if c["cell"] == choice["best"])
-    deg = chosen["degree"]
-    sl = [c for c in cells if c["degree"] == deg]
-    Cs = _axis([c["C"] for c in sl])
+    x = "C" if any(c["C"] is not None for c in cells) else "nu"
+    deg, eps = chosen["degree"], chosen.get("epsilon")
+    sl = [c for c in cells if c["degree"] == deg and c.get("epsilon") == eps]
+    Cs = _axis([c[x] for c in sl])
     gs = _axis([c["gamma"] for c in sl])
-    out: dict[str, Any] = {"C": Cs, "gamma": gs, "degree": deg, "maps": {}}
+    out: dict[str, Any] = {"C": Cs, "gamma": gs, "degree": deg, "epsilon": eps,
+                           "x_name": x, "maps": {}}
     for key, *_ in MAPS:
         m = np.full((len(gs), len(Cs)), np.nan)
         for c in sl:
-            m[gs.index(c["gamma"]), Cs.index(c["C"])] = c[key]
+            m[gs.index(c["gamma"]), Cs.index(c[x])] = c[key]
         out["maps"][key] = m.tolist()
-    out["chosen"] = [gs.index(chosen["gamma"]), Cs.index(chosen["C"])]
-    out["best"] = ([gs.index(best["gamma"]), Cs.index(best["C"])]
-                   if best["degree"] == deg else None)
+    out["chosen"] = [gs.index(chosen["gamma"]), Cs.index(chosen[x])]
+    out["best"] = ([gs.index(best["gamma"]), Cs.index(best[x])]
+                   if best["degree"] == deg and best.get("epsilon") == eps else None)
+    out["score"] = choice.get("score", "accuracy")
+    out["higher_is_better"] = bool(choice.get("higher_is_better", True))
     return out
+
+
+def _score_words(choice: Mapping[str, Any]) -> str:
+    """``mean accuracy`` / ``mean rmse (lower is better)``."""
+    words = f"mean {choice.get('score', 'accuracy')}"
+    return words if choice.get("higher_is_better", True) else words + " (lower is better)"
 
 
 def difficulty_notes(results: Mapping[str, Any]) -> list[str]:
@@ -89,6 +100,7 @@ def difficulty_notes(results: Mapping[str, Any]) -> list[str]:
 
 
 def _figure(maps: Mapping[str, Any], title: str) -> Any:
+    """The four maps side by side (see the module docstring)."""
     from matplotlib.colors import LinearSegmentedColormap, LogNorm, Normalize
     from matplotlib.figure import Figure
 
@@ -116,10 +128,10 @@ def _figure(maps: Mapping[str, Any], title: str) -> Any:
                 norm = Normalize(lo, hi if hi > lo else lo + 1e-9)
             im = ax.imshow(m, cmap=cmap, norm=norm, origin="lower", aspect="auto")
             ax.grid(False)
-            ax.set_title(label)
+            ax.set_title(_score_words(maps) if key == "mean_score" else label)
             ax.set_xticks(range(len(Cs)), [f"{c:g}" for c in Cs])
             ax.set_yticks(range(len(gs)), ["-" if g is None else f"{g:g}" for g in gs])
-            ax.set_xlabel("C")
+            ax.set_xlabel(maps.get("x_name", "C"))
             ax.set_ylabel("gamma")
             nc = np.array(maps["maps"]["not_converged_share"], dtype=float)
             for i in range(m.shape[0]):
@@ -139,8 +151,8 @@ def _figure(maps: Mapping[str, Any], title: str) -> Any:
                 bi, bj = maps["best"]
                 ax.plot([bj], [bi - 0.32], marker="o", ms=3.5, color=PALETTE["ink"])
             fig.colorbar(im, ax=ax, fraction=0.046, pad=0.03)
-        fig.text(0.02, 0.005, "framed: chosen by the one-standard-error rule; dot: best mean "
-                 "accuracy; hatched: some fold did not converge", fontsize=6.5,
+        fig.text(0.02, 0.005, "framed: chosen by the one-standard-error rule; dot: best "
+                 f"{_score_words(maps)}; hatched: some fold did not converge", fontsize=6.5,
                  color=PALETTE["muted"])
         fig.subplots_adjust(left=0.08, right=0.97, bottom=0.1, top=0.9, wspace=0.35,
                             hspace=0.45)
@@ -176,6 +188,8 @@ def _content(parent: Any) -> dict[str, Any]:
         "not_converged": not_conv, "difficulty_notes": difficulty_notes(res),
         "maps": study_maps(res), "members": len(parent.members), "cautions": list(CAUTIONS),
         "stability": parent.attachments.get("stability"),
+        "task": info.get("member_task"), "score_note": info.get("score_note"),
+        "measures": list(info.get("measures") or ("accuracy", "balanced_accuracy")),
     }
 
 
@@ -194,6 +208,18 @@ def _html(c: Mapping[str, Any], svg: str) -> str:
                  for r in c["not_converged"]) or "<li>none: every fit converged</li>"
     notes = "".join(f"<li>{e(n)}</li>" for n in c["difficulty_notes"])
     cautions = "".join(f"<li>{e(n)}</li>" for n in c["cautions"])
+    sw = _score_words(ch)
+    meas = [m for m in c["measures"] if any(x.get(f"mean_{m}") is not None
+                                            for x in c["cells"])]
+    mrows = "".join(
+        f"<tr><td>{e(x['cell'])}</td>" + "".join(
+            f"<td>{_fmt(x.get(f'mean_{m}'))}</td>" for m in meas) + "</tr>"
+        for x in c["cells"])
+    measures = "" if not meas else (
+        f"<h2>Held-out measures ({e(str(c.get('task')))})</h2><p>Mean over the folds of "
+        f"each validation fold's measures.  Score: {e(str(c.get('score_note')))}.</p>"
+        "<table><tr><th>cell</th>" + "".join(f"<th>mean {e(m)}</th>" for m in meas)
+        + f"</tr>{mrows}</table>")
     w = c["warm_start_check"]
     warm = "" if not w else (
         f"<h2>Warm starts along C</h2><p>{w['warm_iterations']} iterations warm against "
@@ -224,22 +250,28 @@ border-bottom:1px dotted {PALETTE['grid']};text-align:right}} td:first-child{{te
 .rule{{color:{PALETTE['muted']}}} .caution{{border-left:3px solid {PALETTE['rust']};
 padding-left:1rem}}</style></head><body>
 <h1>Study {e(str(c['study_id']))}</h1>
-<p>{c['members']} member runs; grid {e(json.dumps(c['grid']))}; {c['folds']['k']} stratified
-folds, seed {c['folds']['seed']}; data {e(str(c['data'].get('source')))} ({c['data']['n_rows']}
+<p>{c['members']} member runs of task {e(str(c.get('task')))}; grid
+{e(json.dumps(c['grid']))}; {c['folds']['k']} folds ({e(c['folds']['rule'])}), seed
+{c['folds']['seed']}; data {e(str(c['data'].get('source')))} ({c['data']['n_rows']}
 rows, fingerprint <code>{e(c['data']['fingerprint'][:16])}</code>...).</p>
 <h2>Chosen cell</h2>
-<p><b>{e(ch['one_se'])}</b> (mean accuracy {ch['one_se_mean']:.4f}); best by mean:
+<p><b>{e(ch['one_se'])}</b> ({e(sw)} {ch['one_se_mean']:.4f}); best by mean:
 {e(ch['best'])} ({ch['best_mean']:.4f}, standard error {ch['best_se']:.4f}).</p>
 <p class="rule">Chosen by the {e(ch['rule'])}.</p>
 <h2>Score map and convergence-difficulty map</h2>{svg}
 <h2>Where the optimisation was hard</h2><ul>{notes}</ul>
 <h2>Fits that did not converge</h2><ul>{nc}</ul>{warm}
 {stab}
-<h2>Cells</h2><table><tr><th>cell</th><th>mean accuracy</th><th>std error</th>
+{measures}
+<h2>Cells</h2><table><tr><th>cell</th><th>{e(sw)}</th><th>std error</th>
 <th>mean iterations</th><th>not converged</th><th>bounded share</th></tr>{rows}</table>
 <h2>Cautions</h2><ul class="caution">{cautions}</ul>
 </body></html>
 """
+
+
+def _fmt(v: Any) -> str:
+    return "-" if v is None or (isinstance(v, float) and not math.isfinite(v)) else f"{v:.4g}"
 
 
 def study_report(study_id: str, *, store: Any = None, out_dir: str | Path | None = None,
@@ -263,8 +295,10 @@ def study_report(study_id: str, *, store: Any = None, out_dir: str | Path | None
     out = Path(out_dir) if out_dir is not None else Path(st.root) / "reports" / study_id
     st.check_output_path(out, "report folder")
     out.mkdir(parents=True, exist_ok=True)
-    title = "score map and convergence-difficulty map over C x gamma" + (
-        f" (degree {c['maps']['degree']})" if c["maps"]["degree"] is not None else "")
+    mp = c["maps"]
+    title = (f"score map and convergence-difficulty map over {mp['x_name']} x gamma"
+             + (f" (degree {mp['degree']})" if mp["degree"] is not None else "")
+             + (f" (epsilon {mp['epsilon']:g})" if mp.get("epsilon") is not None else ""))
     fig = _figure(c["maps"], title)
     paths: dict[str, Path] = {}
     if "json" in formats:
@@ -289,7 +323,8 @@ def _text_page(c: Mapping[str, Any]) -> Any:
 
     ch = c["choice"]
     lines = [f"kktrace study {c['study_id']}", "",
-             f"chosen cell: {ch['one_se']} (mean accuracy {ch['one_se_mean']:.4f})",
+             f"chosen cell: {ch['one_se']} ({_score_words(ch)} {ch['one_se_mean']:.4f})",
+             f"score: {c.get('score_note')}",
              f"best cell by mean: {ch['best']} ({ch['best_mean']:.4f}, "
              f"standard error {ch['best_se']:.4f})", "rule: " + ch["rule"], "",
              f"{c['members']} member runs, {c['folds']['k']} folds, seed {c['folds']['seed']}",

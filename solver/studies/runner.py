@@ -28,7 +28,7 @@ import numpy as np
 from ..errors import InvalidInputError
 from ..result import TRACE_LEVELS
 from ..run import Member, ParentRecord
-from .execute import CONNECT_TIMEOUT_S, RETRIES, connect, run_study_jobs
+from .execute import CONNECT_TIMEOUT_S, RETRIES, StudySession, connect
 from .fits import FitJob, FitOutput, FitView, StudyData, fit_chain, fit_key
 from .grid import Grid, make_grid
 from .table import aggregate, choose, fit_row, write_parquet
@@ -97,15 +97,27 @@ CAUTION = ("kktrace gives evidence about the optimisation and the cross-validate
            "these fits; it is not a validation sign-off of a model")
 
 
-def study_folds(labels: np.ndarray, k: int, seed: int) -> np.ndarray:
-    """Stratified seeded fold numbers (n,) for a study; a class with fewer rows than
-    ``k`` is refused, naming the class."""
+def study_folds(labels: np.ndarray, k: int, seed: int, *,
+                stratified: bool = True) -> np.ndarray:
+    """Seeded fold numbers (n,) for a study.  ``stratified`` (labels are classes): every
+    class spread over the folds, a class with fewer rows than ``k`` refused, naming the
+    class.  Otherwise (regression targets, one-class rows) plain seeded k-fold: the rows
+    in a seeded random order dealt out to folds 0 … k−1 in turn."""
     from ..calibration import stratified_folds
 
     if isinstance(k, bool) or not isinstance(k, (int, np.integer)) or k < 2:
         raise InvalidInputError(f"--folds must be an integer >= 2, got {k!r}")
     if isinstance(seed, bool) or not isinstance(seed, (int, np.integer)) or seed < 0:
         raise InvalidInputError(f"--seed must be a non-negative integer, got {seed!r}")
+    n = int(np.asarray(labels, dtype=object).shape[0])
+    if not stratified:
+        if n < 2 * k:
+            raise InvalidInputError(f"{n} rows are too few for {k} folds: every fold needs "
+                                    "at least 2 rows; use fewer folds or more data")
+        order = np.random.default_rng(int(seed)).permutation(n)
+        fold = np.empty(n, dtype=np.int64)
+        fold[order] = np.arange(n) % int(k)
+        return fold
     text = np.array([str(v) for v in np.asarray(labels, dtype=object).tolist()])
     names, counts = np.unique(text, return_counts=True)
     for name, cnt in zip(names.tolist(), counts.tolist(), strict=True):
@@ -180,10 +192,18 @@ def _versions() -> dict[str, str]:
     return out
 
 
+#: grid axes a task may have beyond γ and degree, with the default used when not given
+#: (the defaults of ``kktrace train``)
+_AXIS_DEFAULTS = {"C": (0.1, 1.0, 10.0), "epsilon": (0.1,), "nu": (0.5,)}
+
+
 def study(
-    data: Any, *, label: str | None = None, kernel: str = "rbf",
-    C: Sequence[float] | str = (0.1, 1.0, 10.0), gamma: Sequence[float] | str | None = None,
-    degree: Sequence[int] | str | None = None, offset: float = 0.0, folds: int = 5,
+    data: Any, *, label: str | None = None, task: str = "classification",
+    target: str | None = None, outlier_column: str | None = None, kernel: str = "rbf",
+    C: Sequence[float] | str | None = None, gamma: Sequence[float] | str | None = None,
+    degree: Sequence[int] | str | None = None,
+    epsilon: Sequence[float] | str | None = None, nu: Sequence[float] | str | None = None,
+    offset: float = 0.0, folds: int = 5,
     seed: int = 0, kkt_tol: float = 1e-3, iteration_limit: int | None = None,
     trace: str = "sampled", standardise: bool = True, warm_start: bool = False,
     stability: bool = False, scheduler: str | None = None, workers: int | None = None,
@@ -192,7 +212,8 @@ def study(
     feature_columns: Sequence[str] | None = None, ignore_columns: Sequence[str] | None = None,
     delimiter: str | None = None,
 ) -> StudyOutcome:
-    """Cross-validate a grid of C × γ (× degree) and store every fit and the study.
+    """Cross-validate a grid of C × γ (× degree, × ε) or ν × γ and store every fit and
+    the study.
 
     Data and solver warnings are kept out of the warnings machinery and recorded in
     ``outcome.warnings``, as :func:`solver.train` does.
@@ -201,15 +222,22 @@ def study(
     ----------
     data, label : a :class:`~solver.data.Dataset` or a data file and its label column
         (two classes, or three or more: each fit then one-vs-one, a parent over its pairs).
-    kernel, C, gamma, degree, offset : the kernel and the grid axes (each non-empty, every
-        value > 0; ``gamma`` for rbf/poly/sigmoid, ``degree`` for poly, default 3).
-    folds, seed : stratified seeded k-fold assignment (the fold of every row is stored).
+    task : ``"classification"`` (default; ``label``), ``"regression"`` (``target``, an
+        ε axis) or ``"one-class"`` (features alone, a ν axis instead of C; optional
+        ``outlier_column`` of known outliers, never used for fitting).
+    kernel, C, gamma, degree, epsilon, nu, offset : the kernel and the grid axes (each
+        non-empty, every value > 0, ν ≤ 1; ``gamma`` for rbf/poly/sigmoid, ``degree`` for
+        poly, default 3; C default 0.1, 1, 10; ε default 0.1; ν default 0.5).
+    folds, seed : seeded k-fold assignment, stratified by class for classification, plain
+        for regression and one-class (the fold of every row is stored).
     kkt_tol, iteration_limit, trace, standardise : as for :func:`solver.train`; the
         trace level defaults to ``sampled`` (see :mod:`solver.studies.runner`).
-    warm_start : within a fold, γ and degree, start each C from the previous C's α scaled
-        into the new box (:mod:`solver.studies.fits`).
+    warm_start : within a fold, γ, degree and ε, start each C from the previous C's α
+        scaled into the new box (:mod:`solver.studies.fits`; every pair of a one-vs-one
+        fit from its own previous α).  Tasks without C (one-class) refuse it.
     stability : also refit the chosen cell under row-order permutations, bootstrap
-        resamples and feature noise (:mod:`solver.studies.stability`; in this process).
+        resamples and feature noise (:mod:`solver.studies.stability`), on the same Dask
+        workers as the grid.
     scheduler : ``"local"`` (a LocalCluster, default), ``"sequential"`` (this process) or a
         Dask scheduler address; None reads ``$KKTRACE_SCHEDULER``, else ``"local"``.
     workers : worker processes of the LocalCluster (default: one per core).
@@ -229,12 +257,13 @@ def study(
     from ..errors import ConvergenceWarning, DataWarning, StoreWarning
 
     kinds = (ConvergenceWarning, DataWarning, StoreWarning)
-    options = dict(label=label, kernel=kernel, C=C, gamma=gamma, degree=degree, offset=offset,
-                   folds=folds, seed=seed, kkt_tol=kkt_tol, iteration_limit=iteration_limit,
-                   trace=trace, standardise=standardise, warm_start=warm_start,
-                   stability=stability, scheduler=scheduler, workers=workers,
-                   connect_timeout=connect_timeout, store=store, table=table,
-                   progress=progress, feature_columns=feature_columns,
+    options = dict(label=label, task=task, target=target, outlier_column=outlier_column,
+                   kernel=kernel, C=C, gamma=gamma, degree=degree, epsilon=epsilon, nu=nu,
+                   offset=offset, folds=folds, seed=seed, kkt_tol=kkt_tol,
+                   iteration_limit=iteration_limit, trace=trace, standardise=standardise,
+                   warm_start=warm_start, stability=stability, scheduler=scheduler,
+                   workers=workers, connect_timeout=connect_timeout, store=store,
+                   table=table, progress=progress, feature_columns=feature_columns,
                    ignore_columns=ignore_columns, delimiter=delimiter)
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
@@ -249,10 +278,63 @@ def study(
     return replace(out, warnings=tuple(notes))
 
 
+def _load(data: Any, task: str, label: str | None, target: str | None,
+          outlier_column: str | None, columns: Any) -> tuple[Any, Any]:
+    """(dataset whose ``labels`` are the column the task's members are built from, task
+    object): class labels, numeric targets, or known-outlier flags / None."""
+    from dataclasses import replace
+
+    from .._workflow import _load_data
+    from ..tasks import classification_task
+    from ..tasks._labels import class_order
+    from ..training_kinds import KIND_TASKS, _load_training, known_outliers
+
+    if task == "classification":
+        if target is not None or outlier_column is not None:
+            raise InvalidInputError("--target belongs to --task regression and "
+                                    "--outlier-column to --task one-class")
+        if isinstance(data, (str, Path)) and label is None:
+            raise InvalidInputError("name the label column of the data file (--label COLUMN)")
+        ds = _load_data(data, label, "study data", columns)
+        if ds.labels is None:
+            raise InvalidInputError("study data have no label column")
+        return ds, classification_task(len(class_order(ds.labels)))
+    if task not in KIND_TASKS:
+        raise InvalidInputError(f"unknown task {task!r}; choose one of classification, "
+                                f"{', '.join(KIND_TASKS)}")
+    from ..tasks import get_task
+
+    ds, t = _load_training(data, task, target, label, outlier_column, columns)
+    if t is not None:
+        ds = replace(ds, labels=t)
+    elif ds.labels is not None:
+        ds = replace(ds, labels=known_outliers(ds))
+    return ds, get_task(task)
+
+
+def _make_axes(task: Any, C: Any, epsilon: Any, nu: Any) -> dict[str, Any]:
+    """The task's grid axes beyond γ and degree (``task.study_axes``), defaults filled in;
+    an axis the task does not have is refused when given."""
+    given = {"C": C, "epsilon": epsilon, "nu": nu}
+    out: dict[str, Any] = {}
+    for name, values in given.items():
+        if name in task.study_axes:
+            out[name] = _AXIS_DEFAULTS[name] if values is None else values
+        elif values is not None:
+            raise InvalidInputError(f"the {task.name} task has no {name} axis; drop "
+                                    f"--{name}")
+        else:
+            out[name] = None
+    return out
+
+
 def _study(
-    data: Any, *, label: str | None = None, kernel: str = "rbf",
-    C: Sequence[float] | str = (0.1, 1.0, 10.0), gamma: Sequence[float] | str | None = None,
-    degree: Sequence[int] | str | None = None, offset: float = 0.0, folds: int = 5,
+    data: Any, *, label: str | None = None, task: str = "classification",
+    target: str | None = None, outlier_column: str | None = None, kernel: str = "rbf",
+    C: Sequence[float] | str | None = None, gamma: Sequence[float] | str | None = None,
+    degree: Sequence[int] | str | None = None,
+    epsilon: Sequence[float] | str | None = None, nu: Sequence[float] | str | None = None,
+    offset: float = 0.0, folds: int = 5,
     seed: int = 0, kkt_tol: float = 1e-3, iteration_limit: int | None = None,
     trace: str = "sampled", standardise: bool = True, warm_start: bool = False,
     stability: bool = False, scheduler: str | None = None, workers: int | None = None,
@@ -262,31 +344,28 @@ def _study(
     delimiter: str | None = None,
 ) -> StudyOutcome:
     """The body of :func:`study` (same options)."""
-    from .._workflow import Columns, _fingerprint, _load_data, open_store
-    from ..tasks import classification_task
-    from ..tasks._labels import class_order
+    from .._workflow import Columns, _fingerprint, open_store
     from ..training import _subset, _warm_up
 
-    grid = make_grid(kernel, C, gamma, degree)
     if trace not in TRACE_LEVELS:
         raise InvalidInputError(f"unknown trace level {trace!r}; choose one of "
                                 f"{', '.join(TRACE_LEVELS)}")
     if not (isinstance(kkt_tol, (int, float)) and math.isfinite(kkt_tol) and kkt_tol > 0):
         raise InvalidInputError(f"kkt_tol must be a finite number > 0, got {kkt_tol!r}")
     where = _where(scheduler)
-    if isinstance(data, (str, Path)) and label is None:
-        raise InvalidInputError("name the label column of the data file (--label COLUMN)")
-    ds = _load_data(data, label, "study data",
-                    Columns.of(feature_columns, ignore_columns, delimiter))
-    if ds.labels is None:
-        raise InvalidInputError("study data have no label column")
-    classes = class_order(ds.labels)
-    task = classification_task(len(classes))
-    if task.parent_record and (warm_start or stability):
-        raise InvalidInputError(f"the label column has {len(classes)} classes: warm starts "
-                                "and stability evidence are for two-class studies so far; "
-                                "drop --warm-start / --stability")
-    fold_of = study_folds(ds.labels, folds, seed)
+    if task not in ("classification", "regression", "one-class"):
+        raise InvalidInputError(f"unknown task {task!r}; choose one of classification, "
+                                "regression, one-class")
+    ds, fit_task = _load(data, task, label, target, outlier_column,
+                         Columns.of(feature_columns, ignore_columns, delimiter))
+    axes = _make_axes(fit_task, C, epsilon, nu)
+    grid = make_grid(kernel, axes["C"], gamma, degree, epsilon=axes["epsilon"], nu=axes["nu"])
+    if warm_start and grid.C == (None,):
+        raise InvalidInputError(f"warm starts walk the C axis; the {fit_task.name} task has "
+                                "none: drop --warm-start")
+    score_name, higher = fit_task.study_score
+    fold_of = study_folds(ds.labels if ds.labels is not None else np.zeros(ds.X.shape[0]),
+                          folds, seed, stratified=fit_task.class_labels)
     run_store = open_store(store)
     out_table = None
     if table is not None:
@@ -295,35 +374,37 @@ def _study(
             "iteration_limit": iteration_limit, "trace": trace,
             "standardise": bool(standardise)}
     fold_digest = hashlib.sha256(np.ascontiguousarray(fold_of, dtype="<i8").tobytes()).hexdigest()
-    base = {"data": _fingerprint(ds), "folds": fold_digest, "task": task.name, **opts}
+    base = {"data": _fingerprint(ds), "folds": fold_digest, "task": fit_task.name, **opts}
+    listed = lambda axis: None if axis == (None,) else list(axis)  # noqa: E731
     command = _command(data, label, {
-        "kernel": grid.kernel, "C": list(grid.C),
-        "gamma": None if grid.gamma == (None,) else list(grid.gamma),
-        "degree": None if grid.degree == (None,) else list(grid.degree),
+        "task": None if task == "classification" else task, "target": target,
+        "outlier_column": outlier_column, "kernel": grid.kernel, "C": listed(grid.C),
+        "gamma": listed(grid.gamma), "degree": listed(grid.degree),
+        "epsilon": listed(grid.epsilon), "nu": listed(grid.nu),
         "folds": int(folds), "seed": int(seed), "kkt_tol": kkt_tol,
         "iteration_limit": iteration_limit, "trace": trace, "warm_start": bool(warm_start),
         "no_standardise": not standardise, "features": feature_columns,
         "ignore": ignore_columns, "delimiter": delimiter})
     jobs: list[FitJob] = []
-    chains: dict[tuple[int, Any, Any], list[Any]] = {}
+    chains: dict[tuple[int, Any, Any, Any], list[Any]] = {}
     for cell in grid.cells():
         for k in range(int(folds)):
-            chains.setdefault((k, cell.gamma, cell.degree), []).append(cell)
-    for (k, _, _), cells in chains.items():
+            chains.setdefault((k, cell.gamma, cell.degree, cell.epsilon), []).append(cell)
+    for (k, *_), cells in chains.items():
         groups = [cells] if warm_start else [[c] for c in cells]
         for g in groups:
             keys = tuple(fit_key(base, c, k, warm_start and i > 0) for i, c in enumerate(g))
-            jobs.append(FitJob(task=task.name, fold=k, cells=tuple(g), keys=keys,
+            jobs.append(FitJob(task=fit_task.name, fold=k, cells=tuple(g), keys=keys,
                                warm=bool(warm_start), options=opts, command=command,
                                extra_data={"study_fold": k}))
     # warm starts: the same cells started cold on a sample (the first fold of every chain)
     checks: list[FitJob] = []
     if warm_start:
-        for (k, _, _), cells in chains.items():
+        for (k, *_), cells in chains.items():
             if k != 0:
                 continue
             for c in cells[1:]:
-                checks.append(FitJob(task=task.name, fold=k, cells=(c,),
+                checks.append(FitJob(task=fit_task.name, fold=k, cells=(c,),
                                      keys=(fit_key(base, c, k, False),), warm=False,
                                      options=opts, command=command,
                                      extra_data={"study_fold": k}))
@@ -348,7 +429,7 @@ def _study(
         for o in outputs:
             if o.key in stored:
                 continue  # a warm chain refits earlier cells to reach the missing ones
-            rid = _save_fit(run_store, o, task.name, job_opts=opts)
+            rid = _save_fit(run_store, o, fit_task.name, job_opts=opts)
             stored[o.key] = (rid, FitView.of_output(o))
             state["done"] += 1
             state["fitted"] += 1
@@ -363,46 +444,54 @@ def _study(
             progress(state["done"], total, fails, el, left)
 
     connected = None
-    if todo and where != "sequential":
+    if (todo or stability) and where != "sequential":
         connected = connect(where, workers, connect_timeout)  # before anything is written
-    if todo:
-        ex = run_study_jobs(fit_chain, StudyData(ds, fold_of), todo, where=where,
-                            workers=workers, on_done=on_done, warm_up=_warm_up,
-                            connected=connected)
-        execution = {**ex.to_dict(), "retries_on_error": RETRIES,
-                     "retries_on_worker_death": "Dask scheduler allowed-failures (default 3)"}
-    else:
-        execution = {"mode": "none", "workers": 0, "reason": "every fit was already stored "
-                     "and verified", "address": None}
-    score_name = "accuracy"
-    pairs = []
-    for j in jobs:
-        for cell, key in zip(j.cells, j.keys, strict=True):
-            rid, rec = stored[key]
-            pairs.append((fit_row(rec, rid, score_name),
-                          Member(run_id=rid, role="fit", key=(cell.label, f"fold={j.fold}"))))
-    pairs.sort(key=lambda p: (p[0]["gamma"] or 0.0, p[0]["degree"] or 0, p[0]["C"],
-                              p[0]["fold"]))
-    rows = [p[0] for p in pairs]
-    members = [p[1] for p in pairs]
-    cells = aggregate(rows)
-    choice = choose(cells, score_name)
-    warm_check = None
-    if checks:
-        warm_check, check_members = _warm_check(checks, jobs, stored, opts)
-        members += check_members
-    stab = None
-    if stability:
-        stab, stab_members = _stability(ds, fold_of, choice, cells, task.name, opts, seed,
-                                        command, run_store)
-        members += stab_members
-        if not stab["permutations_same_optimum"]:
-            notes.append(stab["permutation_verdict"])
+    with StudySession(StudyData(ds, fold_of), where=where, workers=workers,
+                      timeout=connect_timeout, warm_up=_warm_up,
+                      connected=connected) as session:
+        if todo:
+            ex = session.run(fit_chain, todo, on_done)
+            execution = {**ex.to_dict(), "retries_on_error": RETRIES,
+                         "retries_on_worker_death": "Dask scheduler allowed-failures "
+                         "(default 3)"}
+        else:
+            execution = {"mode": "none", "workers": 0, "reason": "every fit was already "
+                         "stored and verified", "address": None}
+        pairs = []
+        for j in jobs:
+            for cell, key in zip(j.cells, j.keys, strict=True):
+                rid, rec = stored[key]
+                pairs.append((fit_row(rec, rid, score_name, fit_task.study_measures),
+                              Member(run_id=rid, role="fit",
+                                     key=(cell.label, f"fold={j.fold}"))))
+        z = lambda v: 0.0 if v is None else v  # noqa: E731
+        pairs.sort(key=lambda p: (z(p[0]["gamma"]), z(p[0]["degree"]), z(p[0]["epsilon"]),
+                                  z(p[0]["C"]), z(p[0]["nu"]), p[0]["fold"]))
+        rows = [p[0] for p in pairs]
+        members = [p[1] for p in pairs]
+        cells = aggregate(rows)
+        choice = choose(cells, score_name, higher)
+        warm_check = None
+        if checks:
+            warm_check, check_members = _warm_check(checks, jobs, stored, opts)
+            members += check_members
+        stab = None
+        if stability:
+            stab, stab_members = _stability(session, choice, cells, fit_task.name, opts,
+                                            seed, command, run_store)
+            members += stab_members
+            if session.execution is not None:
+                stab["execution"] = {**session.execution.to_dict(),
+                                     "data_scattered": session.scatters}
+            if not stab["permutations_same_optimum"]:
+                notes.append(stab["permutation_verdict"])
+    if session.execution is not None and isinstance(execution, dict) and todo:
+        execution["data_scattered"] = session.scatters
     for r in rows:
         if not r["converged"]:
             notes.append(f"fit {r['cell']} fold {r['fold']} (run {r['run_id']}) did not "
                          f"converge: {r['status']}")
-    parent = _parent(task.name, grid, ds, fold_of, folds, seed, opts, warm_start, execution,
+    parent = _parent(fit_task, grid, ds, fold_of, folds, seed, opts, warm_start, execution,
                      rows, cells, choice, members, command, warm_check, stab)
     sid = run_store.save_parent(parent)
     if out_table is not None:
@@ -414,19 +503,23 @@ def _study(
                         stability=stab)
 
 
-def _stability(ds: Any, fold_of: np.ndarray, choice: Mapping[str, Any],
+def _stability(session: StudySession, choice: Mapping[str, Any],
                cells: Sequence[Mapping[str, Any]], task: str, opts: Mapping[str, Any],
                seed: int, command: Any, store: Any) -> tuple[dict[str, Any], list[Member]]:
-    """Refit the chosen cell's variants in this process, store them, summarise."""
+    """Refit the chosen cell's variants on the study's workers (the data scattered for
+    the grid), store them, summarise."""
     from .grid import Cell
     from .stability import fit_variant, stability_jobs, summarise
 
     c = next(x for x in cells if x["cell"] == choice["one_se"])
-    cell = Cell(c["C"], c["gamma"], c["degree"])
+    cell = Cell(c["C"], c["gamma"], c["degree"], c.get("epsilon"), c.get("nu"))
+    jobs = stability_jobs(cell, task, opts, int(seed), command=command)
+    results: dict[int, Any] = {}
+    session.run(fit_variant, jobs, lambda i, f: results.__setitem__(i, f))
     fits, ids, members = [], [], []
-    for job in stability_jobs(cell, task, opts, int(seed), command=command):
-        f = fit_variant(StudyData(ds, fold_of), job)
-        rid = store.save(f.record)
+    for i, job in enumerate(jobs):
+        f = results[i]
+        rid = _save_variant(store, f)
         fits.append(f)
         ids.append(rid)
         members.append(Member(run_id=rid, role=f"stability_{job.kind}",
@@ -442,6 +535,18 @@ def _load_fit(store: Any, run_id: str) -> FitView:
         return FitView(parent.attachments, tuple((r.problem, r.result) for r in recs))
     rec = store.load(run_id, verify=True)
     return FitView(rec.attachments, ((rec.problem, rec.result),))
+
+
+def _save_variant(store: Any, f: Any) -> str:
+    """Store a stability refit: its run, or its pair runs and a parent over them."""
+    if f.info is None:
+        return store.save(f.record)
+    o = FitOutput(key="", cell=f.job.cell, fold=0, record=None, warm_start=False,
+                  members=f.members, info=f.info,
+                  attachments={"command": f.job.command,
+                               "stability_fit": f.record.attachments["stability_fit"]},
+                  data=f.data)
+    return _save_fit(store, o, f.job.task, job_opts=f.job.options)
 
 
 def _save_fit(store: Any, o: FitOutput, task: str, *, job_opts: Mapping[str, Any]) -> str:
@@ -464,7 +569,7 @@ def _save_fit(store: Any, o: FitOutput, task: str, *, job_opts: Mapping[str, Any
                    "seconds": float(sum(r.seconds for r in rs))},
         "problem": {"kind": "multiclass_one_vs_one", "n": int(o.data["n_rows"]),
                     "n_features": int(p0.X.shape[1]), "kernel": p0.kernel.describe(),
-                    "info": {"C": float(o.cell.C)}},
+                    "info": {"C": None if o.cell.C is None else float(o.cell.C)}},
         "certificate": {"kkt_tol": float(job_opts["kkt_tol"]),
                         "max_violation": float(max(r.certificate.max_violation for r in rs)),
                         "duality_gap": float(max(r.certificate.duality_gap for r in rs))},
@@ -495,26 +600,31 @@ def _warm_check(checks: Sequence[FitJob], jobs: Sequence[FitJob],
         crid, cold = stored[j.keys[0]]
         wrid, warm = warm_of[(j.fold, c)]
         members.append(Member(run_id=crid, role="cold_check", key=(c.label, f"fold={j.fold}")))
-        (_, wres), (_, cres) = warm.runs[0], cold.runs[0]
-        dw = float(wres.certificate.dual_objective)
-        dc = float(cres.certificate.dual_objective)
-        rel = abs(dw - dc) / max(1.0, abs(dc))
+        # every member (one run, or every pair of a one-vs-one fit) compared with its twin
+        rels = [abs(float(w.certificate.dual_objective) - float(cr.certificate.dual_objective))
+                / max(1.0, abs(float(cr.certificate.dual_objective)))
+                for (_, w), (_, cr) in zip(warm.runs, cold.runs, strict=True)]
+        conv = all(r.success for _, r in (*warm.runs, *cold.runs))
+        rel = max(rels)
         hw, hc = warm.attachments["holdout"], cold.attachments["holdout"]
+        score = next((m for m in ("accuracy", "rmse", "nu_gap") if m in hw), None)
         cells.append({
             "cell": c.label, "fold": j.fold, "warm_run_id": wrid, "cold_run_id": crid,
-            "warm_iterations": int(wres.iterations),
-            "cold_iterations": int(cres.iterations),
-            "both_converged": bool(wres.success and cres.success),
+            "members": len(rels),
+            "warm_iterations": int(sum(r.iterations for _, r in warm.runs)),
+            "cold_iterations": int(sum(r.iterations for _, r in cold.runs)),
+            "both_converged": bool(conv),
             "dual_objective_relative_difference": rel,
-            "accuracy_difference": abs(float(hw["accuracy"]) - float(hc["accuracy"])),
-            "same_certificate": bool(wres.success and cres.success
-                                     and rel <= WARM_OBJECTIVE_TOL),
+            "score": score,
+            "score_difference": (None if score is None else
+                                 abs(float(hw[score]) - float(hc[score]))),
+            "same_certificate": bool(conv and rel <= WARM_OBJECTIVE_TOL),
         })
     w = sum(x["warm_iterations"] for x in cells)
     cd = sum(x["cold_iterations"] for x in cells)
     # the first C of every sampled chain starts cold either way: counted in both path totals
-    first = sum(int(stored[j.keys[0]][1].runs[0][1].iterations) for j in jobs
-                if j.fold == 0 and j.warm)
+    first = sum(int(r.iterations) for j in jobs if j.fold == 0 and j.warm
+                for _, r in stored[j.keys[0]][1].runs)
     return {"sample": "every cell but the first C of each gamma/degree chain, fold 0",
             "cells": cells, "warm_iterations": w, "cold_iterations": cd,
             "ratio_cold_to_warm": cd / w if w else None,
@@ -523,10 +633,11 @@ def _warm_check(checks: Sequence[FitJob], jobs: Sequence[FitJob],
             "all_same_certificate": all(x["same_certificate"] for x in cells),
             "objective_tolerance": WARM_OBJECTIVE_TOL, "kkt_tol": float(opts["kkt_tol"]),
             "rule": "same certificate: both fits converged (violation <= kkt_tol) and their "
-            "dual objectives differ by <= 1e-3 relative to max(1, |objective|)"}, members
+            "dual objectives differ by <= 1e-3 relative to max(1, |objective|) (for a "
+            "one-vs-one fit: every pair with its own twin)"}, members
 
 
-def _parent(task: str, grid: Grid, ds: Any, fold_of: np.ndarray, k: int, seed: int,
+def _parent(fit_task: Any, grid: Grid, ds: Any, fold_of: np.ndarray, k: int, seed: int,
             opts: Mapping[str, Any], warm: bool, execution: Mapping[str, Any],
             rows: Sequence[Mapping[str, Any]], cells: Sequence[Mapping[str, Any]],
             choice: Mapping[str, Any], members: Sequence[Member], command: Any,
@@ -539,16 +650,23 @@ def _parent(task: str, grid: Grid, ds: Any, fold_of: np.ndarray, k: int, seed: i
     from .._workflow import _fingerprint
     from ..training import _STATUS_ORDER, worst
 
+    task = fit_task.name
     buf = io.BytesIO()
     write_parquet(rows, cells, buf)
     status = worst([r["status"] for r in rows], _STATUS_ORDER) or "converged"
     one_se = next(c for c in cells if c["cell"] == choice["one_se"])
     info = {
         "kind": "study", "member_task": task, "grid": grid.to_dict(),
-        "folds": {"k": int(k), "seed": int(seed), "rule": "stratified by class, seeded "
-                  "(solver.calibration.stratified_folds)", "attachment": "folds"},
+        "folds": {"k": int(k), "seed": int(seed), "attachment": "folds",
+                  "rule": "stratified by class, seeded (solver.calibration.stratified_folds)"
+                  if fit_task.class_labels else "plain seeded k-fold: rows in the order of "
+                  "numpy.random.default_rng(seed).permutation(n), dealt to folds 0..k-1 in "
+                  "turn (solver.studies.study_folds)"},
         "options": dict(opts), "warm_start": bool(warm), "execution": dict(execution),
         "versions": _versions(), "score": choice["score"],
+        "higher_is_better": bool(choice.get("higher_is_better", True)),
+        "measures": list(fit_task.study_measures),
+        "score_note": fit_task.study_score_note,
         "trace_level_reason": "sampled: every 100th iteration plus every event keeps each "
         "fit's convergence shape at a fraction of a full trace's size",
     }
@@ -562,7 +680,7 @@ def _parent(task: str, grid: Grid, ds: Any, fold_of: np.ndarray, k: int, seed: i
                     "kernel": {"name": grid.kernel,
                                "params": {} if one_se["gamma"] is None else
                                {"gamma": one_se["gamma"]}},
-                    "info": {"C": float(one_se["C"])}},
+                    "info": {"C": None if one_se["C"] is None else float(one_se["C"])}},
         "certificate": {"kkt_tol": float(opts["kkt_tol"]),
                         "max_violation": float(max(r["max_violation"] for r in rows)),
                         "duality_gap": float(max(r["duality_gap"] for r in rows))},

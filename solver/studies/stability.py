@@ -14,10 +14,14 @@ variant is a complete refit (own standardiser, own solve) of the same cell:
 * ``noise`` — every feature plus Gaussian noise of sd = level × that feature's sd on the
   training rows, at the levels :data:`NOISE_LEVELS`.
 
-Reported for each: support-vector-set Jaccard against the base (support vectors named by
-their original row; a bootstrap's repeated rows count once), max and RMS decision-value
-drift on the base's training rows and on the held-out rows, prediction flips there, and
-the bias; per kind the spread (max − min) of the bias including the base.
+Every task refits through its task object, so binary, one-vs-one multi-class (every pair
+refitted; drift over every pair's decision value, flips of the combined vote), regression
+and one-class fits get the same evidence.  Reported for each: support-vector-set Jaccard
+against the base (support vectors named by member and original row; a bootstrap's
+repeated rows count once), max and RMS decision-value drift on the base's training rows
+and on the held-out rows, flips of the predicted output there (class, inlier/outlier;
+none for regression, whose output is the value itself), and the bias of every member; per
+kind the largest spread (max − min, including the base) of any member's bias.
 """
 
 from __future__ import annotations
@@ -74,21 +78,48 @@ def stability_jobs(cell: Cell, task: str, options: Mapping[str, Any], seed: int,
 
 @dataclass(frozen=True, eq=False)
 class VariantFit:
-    """A refit: its record, original row of every training variable, decision values on
-    the base training rows and on the held-out rows."""
+    """A refit: its member records (one, or every pair of a one-vs-one fit, as
+    ``(role, key, record)``), the original row of every training row, every member's
+    decision values (m, q) and the predicted outputs on the base training rows and on the
+    held-out rows, and the parent's ``info`` (None for a single-run task)."""
 
     job: StabilityJob
-    record: RunRecord
+    members: tuple[tuple[str, Any, RunRecord], ...]
     rows: np.ndarray
     train_values: np.ndarray
     hold_values: np.ndarray
+    train_labels: np.ndarray
+    hold_labels: np.ndarray
+    info: Any = None
+    data: Any = None
+
+    @property
+    def record(self) -> RunRecord:
+        """The first (for a single-run task the only) member record."""
+        return self.members[0][2]
+
+    @property
+    def success(self) -> bool:
+        """Every member converged."""
+        return all(r.result.success for _, _, r in self.members)
+
+    @property
+    def dual_objective(self) -> float:
+        """Sum of the members' dual objectives."""
+        return float(sum(r.result.certificate.dual_objective for _, _, r in self.members))
+
+    @property
+    def biases(self) -> list[float]:
+        """Every member's bias."""
+        return [float(r.result.bias) for _, _, r in self.members]
 
 
 def fit_variant(data: Any, job: StabilityJob) -> VariantFit:
-    """Refit ``job``'s variant (``data``: :class:`~.fits.StudyData`); nothing is stored."""
+    """Refit ``job``'s variant (``data``: :class:`~.fits.StudyData`) through its task
+    (every member of a one-vs-one fit refitted); nothing is stored."""
     from ..tasks import get_task
     from ..training import _fingerprint, _subset
-    from .fits import _kernel, _solve_from
+    from .fits import _column, _kernel, _solve_from
 
     ds = data.dataset
     base_rows = np.flatnonzero(data.folds != 0)
@@ -107,31 +138,61 @@ def fit_variant(data: Any, job: StabilityJob) -> VariantFit:
         X = ds.X[base_rows] + rng.normal(size=X.shape) * (float(job.level) * sd)
     sub = _subset(ds, rows)
     task = get_task(job.task)
-    (member,) = task.members(sub.labels)
+    specs = task.members(_column(sub), options={"label_name": ds.label_name})
     opts = job.options
-    std = Standardiser.fit(X) if opts.get("standardise", True) else \
-        Standardiser.identity(X.shape[1])
-    problem = task.build_problem(std.transform(X), member, kernel=_kernel(opts, job.cell),
-                                 C=job.cell.C)
-    result = _solve_from(problem, opts, None, _solve_any())
-    model = model_from_solution(problem, result, std)
-    rec = RunRecord(problem=problem, result=result, standardiser=std, data={
-        "fingerprint": _fingerprint(sub), "feature_names": list(ds.feature_names),
-        "label_name": ds.label_name, "source": ds.source, "warnings": [],
-        "n_rows": int(rows.size), "stability_variant": job.kind,
-        "stability_level": job.level, "stability_seed": int(job.seed)},
-        attachments={"command": job.command, "stability_fit": {
-            "kind": job.kind, "index": job.index, "level": job.level, "seed": job.seed,
-            "cell": job.cell.to_dict(), "rows": [int(r) for r in rows.tolist()]}})
-    return VariantFit(job=job, record=rec, rows=rows,
-                      train_values=model.values(ds.X[base_rows]),
-                      hold_values=model.values(ds.X[hold_rows]))
+    facts = {"feature_names": list(ds.feature_names), "label_name": ds.label_name,
+             "source": ds.source, "warnings": [], "stability_variant": job.kind,
+             "stability_level": job.level, "stability_seed": int(job.seed)}
+    members, models = [], []
+    for m in specs:
+        Xm = X[m.rows]
+        std = Standardiser.fit(Xm) if opts.get("standardise", True) else \
+            Standardiser.identity(Xm.shape[1])
+        problem = task.cell_problem(std.transform(Xm), m, kernel=_kernel(opts, job.cell),
+                                    cell=job.cell)
+        result = _solve_from(problem, opts, None, _solve_any())
+        models.append(model_from_solution(problem, result, std))
+        mrows = rows[m.rows]
+        members.append((m.role, m.key, RunRecord(
+            problem=problem, result=result, standardiser=std,
+            data={**facts, "fingerprint": _fingerprint(_subset(sub, m.rows)),
+                  "n_rows": int(mrows.size)},
+            attachments={"command": job.command, "stability_fit": {
+                "kind": job.kind, "index": job.index, "level": job.level, "seed": job.seed,
+                "cell": job.cell.to_dict(), "rows": [int(r) for r in mrows.tolist()]}})))
+    info = task.describe(specs, sub.labels, None) if task.parent_record else None
+    pt = task.predict(models, ds.X[base_rows], info)
+    ph = task.predict(models, ds.X[hold_rows], info)
+    q = len(models)
+    return VariantFit(
+        job=job, members=tuple(members), rows=rows,
+        train_values=np.asarray(pt.values, np.float64).reshape(base_rows.size, q),
+        hold_values=np.asarray(ph.values, np.float64).reshape(hold_rows.size, q),
+        train_labels=np.asarray(pt.labels, dtype=object),
+        hold_labels=np.asarray(ph.labels, dtype=object), info=info,
+        data={**facts, "fingerprint": _fingerprint(sub), "n_rows": int(rows.size)})
 
 
 def _solve_any() -> Any:
     from ..training import _solve
 
     return _solve
+
+
+def _support(f: VariantFit) -> set[tuple[int, int]]:
+    """Support vectors as (member, original data row): a variable with α above its lower
+    bound, named by the row it belongs to (a bootstrap's repeated rows count once; an
+    ε-regression row counts once for either of its two variables)."""
+    out: set[tuple[int, int]] = set()
+    for q, (_, _, rec) in enumerate(f.members):
+        p = rec.problem
+        var_rows = getattr(p, "rows", None)
+        if var_rows is None:
+            var_rows = np.arange(p.n)
+        member_rows = np.asarray(rec.attachments["stability_fit"]["rows"], dtype=np.int64)
+        active = np.flatnonzero(~np.asarray(rec.result.certificate.at_lower, dtype=bool))
+        out.update((q, int(member_rows[int(var_rows[i])])) for i in active)
+    return out
 
 
 def _jaccard(a: set[int], b: set[int]) -> float:
@@ -141,47 +202,48 @@ def _jaccard(a: set[int], b: set[int]) -> float:
 def summarise(fits: Sequence[VariantFit], run_ids: Sequence[str]) -> dict[str, Any]:
     """Plain-data stability evidence (see the module docstring)."""
     base = fits[0]
-    sv = lambda f: {int(f.rows[i]) for i in np.flatnonzero(  # noqa: E731
-        ~np.asarray(f.record.result.certificate.at_lower, dtype=bool))}
-    base_sv = sv(base)
-    dual0 = float(base.record.result.certificate.dual_objective)
+    base_sv = _support(base)
+    dual0 = base.dual_objective
     variants = []
     for f, rid in zip(fits[1:], run_ids[1:], strict=True):
         dt = f.train_values - base.train_values
         dh = f.hold_values - base.hold_values
-        dual = float(f.record.result.certificate.dual_objective)
+        dual = f.dual_objective
         rel = abs(dual - dual0) / max(1.0, abs(dual0))
+        status = ("converged" if f.success else next(
+            r.result.status.label for _, _, r in f.members if not r.result.success))
         row = {
             "kind": f.job.kind, "index": f.job.index, "level": f.job.level,
-            "seed": f.job.seed, "run_id": rid, "status": f.record.result.status.label,
-            "support_jaccard": _jaccard(base_sv, sv(f)),
+            "seed": f.job.seed, "run_id": rid, "status": status,
+            "support_jaccard": _jaccard(base_sv, _support(f)),
             "max_drift_train": float(np.max(np.abs(dt))) if dt.size else 0.0,
             "rms_drift_train": float(np.sqrt(np.mean(dt ** 2))) if dt.size else 0.0,
             "max_drift_held_out": float(np.max(np.abs(dh))) if dh.size else 0.0,
             "rms_drift_held_out": float(np.sqrt(np.mean(dh ** 2))) if dh.size else 0.0,
-            "flips_train": int(np.sum((f.train_values > 0) != (base.train_values > 0))),
-            "flips_held_out": int(np.sum((f.hold_values > 0) != (base.hold_values > 0))),
-            "bias": float(f.record.result.bias),
+            "flips_train": int(np.sum(f.train_labels != base.train_labels)),
+            "flips_held_out": int(np.sum(f.hold_labels != base.hold_labels)),
+            "bias": f.biases[0], "biases": f.biases,
             "dual_objective_relative_difference": rel,
         }
         if f.job.kind == "permutation":
-            row["same_optimum"] = bool(f.record.result.success and base.record.result.success
+            row["same_optimum"] = bool(f.success and base.success
                                        and rel <= SAME_OBJECTIVE_REL
                                        and row["max_drift_train"] <= SAME_VALUE_ABS)
         variants.append(row)
     kinds = {}
-    b0 = float(base.record.result.bias)
+    b0 = base.biases
     for kind in ("permutation", "bootstrap", "noise"):
         vs = [v for v in variants if v["kind"] == kind]
         if not vs:
             continue
-        biases = [b0] + [v["bias"] for v in vs]
+        spread = max(max(bs) - min(bs) for bs in zip(b0, *(v["biases"] for v in vs),
+                                                      strict=True))
         kinds[kind] = {
             "refits": len(vs), "lowest_sv_jaccard": min(v["support_jaccard"] for v in vs),
             "max_drift_train": max(v["max_drift_train"] for v in vs),
             "max_drift_held_out": max(v["max_drift_held_out"] for v in vs),
             "max_flips_held_out": max(v["flips_held_out"] for v in vs),
-            "bias_spread": float(max(biases) - min(biases)),
+            "bias_spread": float(spread),
         }
     perms = [v for v in variants if v["kind"] == "permutation"]
     same = all(v["same_optimum"] for v in perms)
@@ -191,7 +253,10 @@ def summarise(fits: Sequence[VariantFit], run_ids: Sequence[str]) -> dict[str, A
                            if not v["same_optimum"]))
     return {
         "cell": base.job.cell.label, "base_run_id": run_ids[0],
-        "base_status": base.record.result.status.label,
+        "base_status": "converged" if base.success else "not converged",
+        "members": len(base.members),
+        "compared_on": ("every member's decision value and the task's predicted output "
+                        "(for one-vs-one: every pair's value, flips of the combined vote)"),
         "held_out": "fold 0 of the study's folds", "base_support": len(base_sv),
         "noise_levels": list(NOISE_LEVELS), "variants": variants, "by_kind": kinds,
         "permutations_same_optimum": same, "permutation_verdict": verdict,

@@ -4,9 +4,12 @@ cell and the cell chosen by the one-standard-error rule.
 One-standard-error rule (Hastie, Tibshirani & Friedman, *The Elements of Statistical
 Learning*, 2nd ed., §7.10): take the best cell's mean score m* and its standard error
 s* = sd / √k over the k folds; among the cells whose mean is at least m* − s*, choose the
-most parsimonious.  Here the most parsimonious is the smallest C (widest margin), then the
-smallest γ (smoothest RBF/poly/sigmoid kernel), then the smallest degree — our reading of
-"simplest" for a kernel SVM, stated with every choice.
+most parsimonious.  Here the most parsimonious is the smallest C (widest margin) or, for
+one-class, the smallest ν (fewest support vectors), then the smallest γ (smoothest
+RBF/poly/sigmoid kernel), then the smallest degree, then the largest ε (widest tube, fewest
+support vectors) — our reading of "simplest" for a kernel SVM, stated with every choice.
+A score where lower is better (regression RMSE, one-class ``nu_gap``) is read the other way
+round: the cells whose mean is at most m* + s*.
 """
 
 from __future__ import annotations
@@ -22,21 +25,24 @@ __all__ = ["fit_row", "aggregate", "choose", "ONE_SE_RULE", "ROW_COLUMNS", "writ
 
 ONE_SE_RULE = ("one-standard-error rule (Hastie, Tibshirani & Friedman, The Elements of "
                "Statistical Learning, 2nd ed., section 7.10): the most parsimonious cell "
-               "(smallest C, then smallest gamma, then smallest degree) whose mean score is "
-               "within one standard error of the best cell's mean")
+               "(smallest C or nu, then smallest gamma, then smallest degree, then largest "
+               "epsilon) whose mean score is within one standard error of the best cell's "
+               "mean")
 
 #: columns of the per-fit rows, in order
-ROW_COLUMNS = ("cell", "C", "gamma", "degree", "fold", "run_id", "start", "score",
+ROW_COLUMNS = ("cell", "C", "gamma", "degree", "epsilon", "nu", "fold", "run_id", "start", "score",
                "accuracy", "balanced_accuracy", "validation_rows", "n_small_values",
                "iterations", "seconds", "status", "converged", "max_violation",
                "duality_gap", "support_share", "bounded_share", "curvature_fixes",
                "shrink_events")
 
 
-def fit_row(fit: Any, run_id: str, score_name: str) -> dict[str, Any]:
+def fit_row(fit: Any, run_id: str, score_name: str,
+            measures: Sequence[str] = ("accuracy", "balanced_accuracy")) -> dict[str, Any]:
     """One row of the table from a fit's :class:`~.fits.FitView` (its attachments and its
     runs: one, or every pair of a one-vs-one fit — iterations, seconds and events summed,
-    the worst status, the largest violation and gap, shares over all pair variables)."""
+    the worst status, the largest violation and gap, shares over all pair variables);
+    one column per held-out measure in ``measures`` (None where the fit has none)."""
     from ..training import _STATUS_ORDER, worst
     from .grid import Cell
 
@@ -45,14 +51,18 @@ def fit_row(fit: Any, run_id: str, score_name: str) -> dict[str, Any]:
     cell = sf["cell"]
     rs = [r for _, r in fit.runs]
     n = max(1, sum(int(p.n) for p, _ in fit.runs))
-    return {
-        "cell": Cell(cell["C"], cell["gamma"], cell["degree"]).label,
-        "C": float(cell["C"]), "gamma": cell["gamma"], "degree": cell["degree"],
+    row: dict[str, Any] = {
+        "cell": Cell.of(cell).label,
+        "C": None if cell["C"] is None else float(cell["C"]), "gamma": cell["gamma"],
+        "degree": cell["degree"], "epsilon": cell.get("epsilon"), "nu": cell.get("nu"),
         "fold": int(sf["fold"]), "run_id": run_id, "start": sf["start"],
         "score": float(h[score_name]),
-        "accuracy": float(h["accuracy"]) if "accuracy" in h else None,
-        "balanced_accuracy": (float(h["balanced_accuracy"]) if "balanced_accuracy" in h
-                              else None),
+    }
+    for m in dict.fromkeys(("accuracy", "balanced_accuracy", *measures)):
+        v = h.get(m)
+        row[m] = float(v) if isinstance(v, (int, float)) and not isinstance(v, bool) else None
+    return {
+        **row,
         "validation_rows": int(sf["validation_rows"]),
         "n_small_values": int(h.get("n_small_values", 0)),
         "iterations": int(sum(r.iterations for r in rs)),
@@ -82,10 +92,13 @@ def aggregate(rows: Sequence[Mapping[str, Any]]) -> list[dict[str, Any]]:
         sd = float(np.std(s, ddof=1)) if k > 1 else float("nan")
         out.append({
             "cell": label, "C": rs[0]["C"], "gamma": rs[0]["gamma"], "degree": rs[0]["degree"],
-            "folds": k, "mean_score": float(np.mean(s)), "sd_score": sd,
+            "epsilon": rs[0].get("epsilon"), "nu": rs[0].get("nu"), "folds": k,
+            "mean_score": float(np.mean(s)), "sd_score": sd,
             "se_score": sd / math.sqrt(k) if k > 1 else float("nan"),
             "mean_accuracy": _mean(rs, "accuracy"),
             "mean_balanced_accuracy": _mean(rs, "balanced_accuracy"),
+            **{f"mean_{m}": _mean(rs, m) for m in rs[0]
+               if m not in _NOT_MEASURES and m not in ("accuracy", "balanced_accuracy")},
             "iterations": int(sum(r["iterations"] for r in rs)),
             "mean_iterations": float(np.mean([r["iterations"] for r in rs])),
             "seconds": float(sum(r["seconds"] for r in rs)),
@@ -102,25 +115,34 @@ def aggregate(rows: Sequence[Mapping[str, Any]]) -> list[dict[str, Any]]:
     return out
 
 
+#: per-fit columns that are not held-out measures (no mean_<column> aggregate)
+_NOT_MEASURES = set(ROW_COLUMNS) - {"accuracy", "balanced_accuracy"}
+
+
 def _mean(rs: Sequence[Mapping[str, Any]], key: str) -> float | None:
     v = [r[key] for r in rs if r.get(key) is not None]
     return float(np.mean(v)) if v else None
 
 
-def _parsimony(c: Mapping[str, Any]) -> tuple[float, float, int]:
-    return (c["C"], c["gamma"] if c["gamma"] is not None else 0.0,
-            c["degree"] if c["degree"] is not None else 0)
+def _parsimony(c: Mapping[str, Any]) -> tuple[float, float, float, int, float]:
+    z = lambda v: 0.0 if v is None else float(v)  # noqa: E731
+    return (z(c["C"]), z(c.get("nu")), z(c["gamma"]), int(c["degree"] or 0),
+            -z(c.get("epsilon")))
 
 
-def choose(cells: Sequence[Mapping[str, Any]], score_name: str) -> dict[str, Any]:
-    """The best cell (highest mean score; ties to the more parsimonious) and the cell the
+def choose(cells: Sequence[Mapping[str, Any]], score_name: str,
+           higher_better: bool = True) -> dict[str, Any]:
+    """The best cell (best mean score; ties to the more parsimonious) and the cell the
     one-standard-error rule chooses (see the module docstring)."""
-    best = max(cells, key=lambda c: (c["mean_score"], tuple(-v for v in _parsimony(c))))
+    sign = 1.0 if higher_better else -1.0
+    best = max(cells, key=lambda c: (sign * c["mean_score"],
+                                     tuple(-v for v in _parsimony(c))))
     se = best["se_score"] if math.isfinite(best["se_score"]) else 0.0
-    threshold = best["mean_score"] - se
-    within = [c for c in cells if c["mean_score"] >= threshold]
+    threshold = best["mean_score"] - sign * se
+    within = [c for c in cells if sign * (c["mean_score"] - threshold) >= 0]
     chosen = min(within, key=_parsimony)
-    return {"score": score_name, "best": best["cell"], "best_mean": best["mean_score"],
+    return {"score": score_name, "higher_is_better": bool(higher_better),
+            "best": best["cell"], "best_mean": best["mean_score"],
             "best_se": best["se_score"], "threshold": threshold,
             "one_se": chosen["cell"], "one_se_mean": chosen["mean_score"],
             "within_one_se": [c["cell"] for c in within], "rule": ONE_SE_RULE}

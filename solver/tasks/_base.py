@@ -108,6 +108,32 @@ class Task:
     categories: tuple[str, ...] = ()
     measures: tuple[str, ...] = ()
 
+    # what a study (:mod:`solver.studies`) asks of the task
+    #: grid axes a study of this task walks besides γ and degree
+    study_axes: tuple[str, ...] = ("C",)
+    #: the split-off column holds classes: folds are stratified by it (else plain k-fold)
+    class_labels: bool = True
+    #: (held-out measure a study ranks cells by, True when higher is better)
+    study_score: tuple[str, bool] = ("accuracy", True)
+    #: what the study score means, stated in the study and its report
+    study_score_note: str = "share of the validation fold's rows classified correctly"
+    #: held-out measures a study's results table carries (one column each)
+    study_measures: tuple[str, ...] = ("accuracy", "balanced_accuracy")
+    #: the output flips with the sign of f(x): a study counts rows with |f| < 1e-3
+    decides_by_sign: bool = True
+
+    def cell_problem(self, X: np.ndarray, member: MemberSpec, *, kernel: Any,
+                     cell: Any) -> DualProblem:
+        """The dual problem of ``member`` for one study grid cell
+        (:class:`solver.studies.Cell`); the default uses the cell's C."""
+        return self.build_problem(X, member, kernel=kernel, C=cell.C)
+
+    def study_scores(self, prediction: Prediction, truth: np.ndarray | None,
+                     classes: Sequence[Any], cell: Any) -> dict[str, Any]:
+        """Held-out measures of one study fit on its validation fold; the default is
+        :meth:`held_out`."""
+        return self.held_out(prediction, truth, classes)
+
     # ---------------------------------------------------------------- building
 
     def members(

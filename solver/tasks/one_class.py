@@ -21,7 +21,7 @@ import numpy as np
 from ..explanation._kinds import ONE_CLASS_CATEGORIES
 from ..problem import ONE_CLASS_KIND
 from ..vocabulary import figure_text
-from ._base import Task
+from ._base import MemberSpec, Prediction, Task
 
 __all__ = ["OneClassTask", "TASK"]
 
@@ -39,6 +39,56 @@ class OneClassTask(Task):
     categories = tuple(ONE_CLASS_CATEGORIES)
     measures = ("n_flagged", "share_flagged", "confusion", "detection_rate",
                 "false_alarm_rate")
+    class_labels = False
+    study_axes = ("nu",)
+    #: held-out |share flagged − ν| (see :meth:`study_scores`); smaller is better
+    study_score = ("nu_gap", False)
+    study_score_note = ("nu_gap = |share of the validation fold flagged (f < 0) − ν|: on "
+                        "the training rows the share flagged is at most ν and tends to ν "
+                        "(Schölkopf et al. 2001, Proposition 4), so a boundary that "
+                        "generalises flags about ν of new rows; our choice of score for "
+                        "data without labels; lower is better")
+    study_measures = ("nu_gap", "share_flagged", "share_inside", "detection_rate",
+                      "false_alarm_rate")
+
+    def members(self, labels: np.ndarray, *, weights: Any = None,
+                options: Mapping[str, Any] | None = None) -> list[MemberSpec]:
+        """One member over every row (``labels``: (m,) known-outlier flags or Nones,
+        never used for fitting)."""
+        lab = np.asarray(labels, dtype=object)
+        return [MemberSpec(role="model", key=None, rows=np.arange(lab.shape[0]), labels=lab)]
+
+    def cell_problem(self, X: np.ndarray, member: MemberSpec, *, kernel: Any,
+                     cell: Any) -> Any:
+        """The one-class dual of a study cell (its ν; one-class has no C)."""
+        return self.fit_problem(X, None, kernel=kernel, C=1.0, options={"nu": cell.nu})
+
+    def predict(self, models: Sequence[Any], X: np.ndarray,
+                info: Mapping[str, Any] | None = None) -> Prediction:
+        """``inlier`` where f(x) ≥ 0, else ``outlier``."""
+        (model,) = models
+        v = np.asarray(model.values(X), np.float64)
+        return Prediction(labels=np.where(v >= 0, "inlier", "outlier").astype(object),
+                          values=v[:, None], member_keys=(None,))
+
+    def study_scores(self, prediction: Any, truth: Any, classes: Sequence[Any],
+                     cell: Any) -> dict[str, Any]:
+        """Share flagged, share inside and ``nu_gap`` = |share flagged − ν| on the
+        validation fold (and the confusion with known outliers).
+
+        Our choice of score for a study without labels: on the training rows the share
+        flagged is at most ν and tends to ν (Schölkopf et al. 2001, Proposition 4); a
+        boundary that generalises flags about the same share of held-out rows, one that
+        wraps the training rows too tightly flags far more.  Smaller is better.
+        """
+        known = None
+        if truth is not None and not all(v is None for v in np.asarray(truth, object)):
+            known = np.asarray(truth, dtype=bool)
+        out = self.held_out(prediction, known, classes)
+        out["share_inside"] = 1.0 - float(out["share_flagged"])
+        out["nu"] = float(cell.nu)
+        out["nu_gap"] = abs(float(out["share_flagged"]) - float(cell.nu))
+        return out
 
     def decision_rule(self, record: Any) -> list[tuple[str, str]]:
         """Inlier where the score is ≥ 0 (the boundary f = 0 counts as inside)."""

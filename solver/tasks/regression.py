@@ -21,7 +21,7 @@ import numpy as np
 from ..explanation._kinds import REGRESSION_CATEGORIES
 from ..problem import REGRESSION_KIND
 from ..vocabulary import figure_text
-from ._base import Task
+from ._base import MemberSpec, Prediction, Task
 
 __all__ = ["RegressionTask", "TASK"]
 
@@ -39,6 +39,38 @@ class RegressionTask(Task):
     parent_record = False
     categories = tuple(REGRESSION_CATEGORIES)
     measures = ("rmse", "mae", "r2", "tube_coverage", "max_abs_residual")
+    class_labels = False
+    study_axes = ("C", "epsilon")
+    study_score = ("rmse", False)
+    study_score_note = ("root mean squared error of the validation fold's predictions, "
+                        "target units (R² and MAE beside it); lower is better")
+    study_measures = ("rmse", "r2", "mae", "tube_coverage")
+    decides_by_sign = False
+
+    def members(self, labels: np.ndarray, *, weights: Any = None,
+                options: Mapping[str, Any] | None = None) -> list[MemberSpec]:
+        """One member over every row; ``labels`` are the (m,) numeric targets."""
+        t = np.asarray(labels, np.float64)
+        return [MemberSpec(role="model", key=None, rows=np.arange(t.shape[0]), labels=t)]
+
+    def cell_problem(self, X: np.ndarray, member: MemberSpec, *, kernel: Any,
+                     cell: Any) -> Any:
+        """The ε-regression dual of a study cell (its C and ε)."""
+        return self.fit_problem(X, member.labels, kernel=kernel, C=cell.C,
+                                options={"epsilon": cell.epsilon})
+
+    def predict(self, models: Sequence[Any], X: np.ndarray,
+                info: Mapping[str, Any] | None = None) -> Prediction:
+        """f(x) is the prediction (no labels)."""
+        (model,) = models
+        values = np.asarray(model.values(X), np.float64)
+        return Prediction(labels=np.full(values.shape[0], None, dtype=object),
+                          values=values[:, None], member_keys=(None,))
+
+    def study_scores(self, prediction: Any, truth: Any, classes: Sequence[Any],
+                     cell: Any) -> dict[str, Any]:
+        """RMSE, MAE, R², tube coverage (the cell's ε) on the validation fold."""
+        return self.held_out(prediction, truth, classes, epsilon=float(cell.epsilon))
 
     def decision_rule(self, record: Any) -> list[tuple[str, str]]:
         """f(x) itself is the prediction (no sign rule, no labels)."""
