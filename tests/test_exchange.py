@@ -204,7 +204,7 @@ def test_a_perturbed_coefficient_is_caught_naming_its_row(tmp_path):
     assert not p.optimal and not out.optimal
     kkt = [f for f in p.findings if f.startswith("KKT conditions fail")]
     assert kkt, p.findings
-    assert f"data row(s) {row} (" in kkt[0]  # the moved row has the largest KKT residual
+    assert f"index(es) {row} (" in kkt[0]  # the moved row has the largest KKT residual
     assert any(v != "agree" for v in p.verdicts.values())
 
 

@@ -141,13 +141,14 @@ def _findings(problem: Any, alpha: np.ndarray, coef_sign_bad: np.ndarray, rows: 
     if coef_sign_bad.any():
         bad = rows[coef_sign_bad][:TOP_RESIDUALS]
         out.append(f"{int(coef_sign_bad.sum())} coefficient(s) have the sign of the other class "
-                   f"(α < 0), e.g. data row(s) {', '.join(map(str, bad.tolist()))} (0-based)")
+                   f"(α < 0), e.g. index(es) {', '.join(map(str, bad.tolist()))} "
+                   "(0-based; data row = index + 1)")
     over = alpha > problem.upper * (1 + 1e-6)
     if over.any():
         r = rows[over][:TOP_RESIDUALS]
         named = ", ".join(f"{i} (α = {a:.6g})" for i, a in zip(r, alpha[over], strict=False))
-        out.append(f"{int(over.sum())} multiplier(s) exceed C = {C:g}, e.g. data row(s) "
-                   f"{named} (0-based)")
+        out.append(f"{int(over.sum())} multiplier(s) exceed C = {C:g}, e.g. index(es) "
+                   f"{named} (0-based; data row = index + 1)")
     if cert.equality_residual > 1e-6 * max(1.0, float(np.sum(np.abs(alpha)))):
         out.append(f"the equality constraint Σ αᵢyᵢ = 0 is off by {cert.equality_residual:.3g}")
     if not cert.meets_tol:
@@ -155,8 +156,8 @@ def _findings(problem: Any, alpha: np.ndarray, coef_sign_bad: np.ndarray, rows: 
         order = np.argsort(-res, kind="stable")[:TOP_RESIDUALS]
         named = ", ".join(f"{int(rows[i])} ({res[i]:.3g})" for i in order if res[i] > 0)
         out.append(f"KKT conditions fail: maximal violation {figure_text(cert.max_violation)} "
-                   f"> kkt_tol {figure_text(cert.kkt_tol)}; largest KKT residuals at data row(s) "
-                   f"{named} (0-based)")
+                   f"> kkt_tol {figure_text(cert.kkt_tol)}; largest KKT residuals at index(es) "
+                   f"{named} (0-based; data row = index + 1)")
     return out
 
 

@@ -126,7 +126,7 @@ def _loo(
                      "trained without it; points below zero (marked) are leave-one-out "
                      f"errors ({int(wrong.sum())} of {values.size})."),
             data={"x": rows, "y": y * values.astype(np.float64), "wrong": wrong,
-                  "xlabel": "training row (0-based)"},
+                  "xlabel": "index (0-based training row)"},
         )
     return table, fig, "", facts
 

@@ -108,7 +108,7 @@ AXIS_UNITS: dict[str, str] = {
     "best violation so far": "dimensionless (KKT violation)",
     "(D − D*) / max(1, |D*|)": "dimensionless (relative objective gap)",
     "seconds (estimated at each run's average rate) (s)": "s",
-    "training row (0-based)": "row number",
+    "index (0-based training row)": "row number (data row = index + 1)",
     "share correct": "share (0 to 1)",
     "top class probability": "probability (0 to 1)",
 }
