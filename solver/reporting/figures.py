@@ -107,7 +107,7 @@ AXIS_UNITS: dict[str, str] = {
     "share of training rows": "share (0 to 1)",
     "best violation so far": "dimensionless (KKT violation)",
     "(D − D*) / max(1, |D*|)": "dimensionless (relative objective gap)",
-    "seconds (estimated at each run's average rate) (s)": "s",
+    "time (s), estimated at each run's average rate": "s",
     "index (0-based training row)": "row number (data row = index + 1)",
     "share correct": "share (0 to 1)",
     "top class probability": "probability (0 to 1)",
@@ -636,7 +636,7 @@ def _draw_overlay(fig: Figure | SubFigure, d: Mapping[str, Any]) -> None:
                 ax.tick_params(labelbottom=False)
     axes[1][0].set_xlabel("iteration")
     axes[1][0].xaxis.set_major_formatter(FuncFormatter(_count))
-    axes[1][1].set_xlabel("seconds (estimated at each run's average rate) (s)")
+    axes[1][1].set_xlabel("time (s), estimated at each run's average rate")
     for c in range(2):
         axes[0][c].set_ylabel("best violation so far")
         axes[1][c].set_ylabel("(D − D*) / max(1, |D*|)")
