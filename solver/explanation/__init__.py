@@ -26,8 +26,21 @@ from ._kinds import (
     kind_leave_one_out,
     kind_point_table,
 )
-from ._loo import LOO_METHODS, LeaveOneOut, Sensitivity, leave_one_out, sensitivity
 from ._table import CATEGORIES, COLUMNS, PointTable, point_table
+
+#: Names from :mod:`._loo`, imported on first use: the leave-one-out refits pull in their
+#: compiled path kernels, which a plain ``train`` (point table only) never needs.
+_LAZY = ("LOO_METHODS", "LeaveOneOut", "Sensitivity", "leave_one_out", "sensitivity")
+
+
+def __getattr__(name: str):
+    if name in _LAZY:
+        from . import _loo
+
+        value = getattr(_loo, name)
+        globals()[name] = value
+        return value
+    raise AttributeError(f"module {__name__!r} has no attribute {name!r}")
 
 __all__ = [
     "CATEGORIES",
