@@ -42,7 +42,7 @@ def num(v: Any, spec: str | None = None) -> str:
     if spec is None and isinstance(v, (int, float)) and not isinstance(v, bool):
         import solver
 
-        return solver.figure_text(float(v) if not isinstance(v, int) else v)
+        return solver.figure_text(v)
     if isinstance(v, float) and not math.isfinite(v):
         return str(v)
     try:

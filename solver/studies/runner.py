@@ -197,6 +197,85 @@ def _versions() -> dict[str, str]:
 _AXIS_DEFAULTS = {"C": (0.1, 1.0, 10.0), "epsilon": (0.1,), "nu": (0.5,)}
 
 
+def _load(data: Any, task: str, label: str | None, target: str | None,
+          outlier_column: str | None, columns: Any) -> tuple[Any, Any]:
+    """(dataset whose ``labels`` are the column the task's members are built from, task
+    object): class labels, numeric targets, or known-outlier flags / None."""
+    from dataclasses import replace
+
+    from .._workflow import _load_data
+    from ..tasks import classification_task
+    from ..tasks._labels import class_order
+    from ..training_kinds import KIND_TASKS, _load_training, known_outliers
+
+    if task == "classification":
+        if target is not None or outlier_column is not None:
+            raise InvalidInputError("--target belongs to --task regression and "
+                                    "--outlier-column to --task one-class")
+        if isinstance(data, (str, Path)) and label is None:
+            raise InvalidInputError("name the label column of the data file (--label COLUMN)")
+        ds = _load_data(data, label, "study data", columns)
+        if ds.labels is None:
+            raise InvalidInputError("study data have no label column")
+        return ds, classification_task(len(class_order(ds.labels)))
+    if task not in KIND_TASKS:
+        raise InvalidInputError(f"unknown task {task!r}; choose one of classification, "
+                                f"{', '.join(KIND_TASKS)}")
+    from ..tasks import get_task
+
+    ds, t = _load_training(data, task, target, label, outlier_column, columns)
+    if t is not None:
+        ds = replace(ds, labels=t)
+    elif ds.labels is not None:
+        ds = replace(ds, labels=known_outliers(ds))
+    return ds, get_task(task)
+
+
+def _make_axes(task: Any, C: Any, epsilon: Any, nu: Any) -> dict[str, Any]:
+    """The task's grid axes beyond γ and degree (``task.study_axes``), defaults filled in;
+    an axis the task does not have is refused when given."""
+    given = {"C": C, "epsilon": epsilon, "nu": nu}
+    out: dict[str, Any] = {}
+    for name, values in given.items():
+        if name in task.study_axes:
+            out[name] = _AXIS_DEFAULTS[name] if values is None else values
+        elif values is not None:
+            raise InvalidInputError(f"the {task.name} task has no {name} axis; drop "
+                                    f"--{name}")
+        else:
+            out[name] = None
+    return out
+
+
+def _kept_warnings(fn: Callable[..., StudyOutcome]) -> Callable[..., StudyOutcome]:
+    """Run ``fn`` with data, solver and store warnings kept out of the warnings machinery
+    and recorded in ``outcome.warnings`` (as :func:`solver.train` does); others pass on."""
+    import functools
+
+    @functools.wraps(fn)
+    def run(*args: Any, **kwargs: Any) -> StudyOutcome:
+        import warnings
+        from dataclasses import replace
+
+        from ..errors import ConvergenceWarning, DataWarning, StoreWarning
+
+        kinds = (ConvergenceWarning, DataWarning, StoreWarning)
+        with warnings.catch_warnings(record=True) as caught:
+            warnings.simplefilter("always")
+            out = fn(*args, **kwargs)
+        notes = list(out.warnings)
+        for w in caught:
+            if issubclass(w.category, kinds):
+                if str(w.message) not in notes and f"data: {w.message}" not in notes:
+                    notes.append(str(w.message))
+            else:
+                warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
+        return replace(out, warnings=tuple(notes))
+
+    return run
+
+
+@_kept_warnings
 def study(
     data: Any, *, label: str | None = None, task: str = "classification",
     target: str | None = None, outlier_column: str | None = None, kernel: str = "rbf",
@@ -251,99 +330,6 @@ def study(
     Returns a :class:`StudyOutcome`.  A fit that does not converge is stored with its
     status, counted in the table and listed (``outcome.not_converged``).
     """
-    import warnings
-    from dataclasses import replace
-
-    from ..errors import ConvergenceWarning, DataWarning, StoreWarning
-
-    kinds = (ConvergenceWarning, DataWarning, StoreWarning)
-    options = dict(label=label, task=task, target=target, outlier_column=outlier_column,
-                   kernel=kernel, C=C, gamma=gamma, degree=degree, epsilon=epsilon, nu=nu,
-                   offset=offset, folds=folds, seed=seed, kkt_tol=kkt_tol,
-                   iteration_limit=iteration_limit, trace=trace, standardise=standardise,
-                   warm_start=warm_start, stability=stability, scheduler=scheduler,
-                   workers=workers, connect_timeout=connect_timeout, store=store,
-                   table=table, progress=progress, feature_columns=feature_columns,
-                   ignore_columns=ignore_columns, delimiter=delimiter)
-    with warnings.catch_warnings(record=True) as caught:
-        warnings.simplefilter("always")
-        out = _study(data, **options)
-    notes = list(out.warnings)
-    for w in caught:
-        if issubclass(w.category, kinds):
-            if str(w.message) not in notes and f"data: {w.message}" not in notes:
-                notes.append(str(w.message))
-        else:
-            warnings.warn_explicit(w.message, w.category, w.filename, w.lineno)
-    return replace(out, warnings=tuple(notes))
-
-
-def _load(data: Any, task: str, label: str | None, target: str | None,
-          outlier_column: str | None, columns: Any) -> tuple[Any, Any]:
-    """(dataset whose ``labels`` are the column the task's members are built from, task
-    object): class labels, numeric targets, or known-outlier flags / None."""
-    from dataclasses import replace
-
-    from .._workflow import _load_data
-    from ..tasks import classification_task
-    from ..tasks._labels import class_order
-    from ..training_kinds import KIND_TASKS, _load_training, known_outliers
-
-    if task == "classification":
-        if target is not None or outlier_column is not None:
-            raise InvalidInputError("--target belongs to --task regression and "
-                                    "--outlier-column to --task one-class")
-        if isinstance(data, (str, Path)) and label is None:
-            raise InvalidInputError("name the label column of the data file (--label COLUMN)")
-        ds = _load_data(data, label, "study data", columns)
-        if ds.labels is None:
-            raise InvalidInputError("study data have no label column")
-        return ds, classification_task(len(class_order(ds.labels)))
-    if task not in KIND_TASKS:
-        raise InvalidInputError(f"unknown task {task!r}; choose one of classification, "
-                                f"{', '.join(KIND_TASKS)}")
-    from ..tasks import get_task
-
-    ds, t = _load_training(data, task, target, label, outlier_column, columns)
-    if t is not None:
-        ds = replace(ds, labels=t)
-    elif ds.labels is not None:
-        ds = replace(ds, labels=known_outliers(ds))
-    return ds, get_task(task)
-
-
-def _make_axes(task: Any, C: Any, epsilon: Any, nu: Any) -> dict[str, Any]:
-    """The task's grid axes beyond γ and degree (``task.study_axes``), defaults filled in;
-    an axis the task does not have is refused when given."""
-    given = {"C": C, "epsilon": epsilon, "nu": nu}
-    out: dict[str, Any] = {}
-    for name, values in given.items():
-        if name in task.study_axes:
-            out[name] = _AXIS_DEFAULTS[name] if values is None else values
-        elif values is not None:
-            raise InvalidInputError(f"the {task.name} task has no {name} axis; drop "
-                                    f"--{name}")
-        else:
-            out[name] = None
-    return out
-
-
-def _study(
-    data: Any, *, label: str | None = None, task: str = "classification",
-    target: str | None = None, outlier_column: str | None = None, kernel: str = "rbf",
-    C: Sequence[float] | str | None = None, gamma: Sequence[float] | str | None = None,
-    degree: Sequence[int] | str | None = None,
-    epsilon: Sequence[float] | str | None = None, nu: Sequence[float] | str | None = None,
-    offset: float = 0.0, folds: int = 5,
-    seed: int = 0, kkt_tol: float = 1e-3, iteration_limit: int | None = None,
-    trace: str = "sampled", standardise: bool = True, warm_start: bool = False,
-    stability: bool = False, scheduler: str | None = None, workers: int | None = None,
-    connect_timeout: float = CONNECT_TIMEOUT_S, store: Any = None,
-    table: str | Path | None = None, progress: StudyProgress | None = None,
-    feature_columns: Sequence[str] | None = None, ignore_columns: Sequence[str] | None = None,
-    delimiter: str | None = None,
-) -> StudyOutcome:
-    """The body of :func:`study` (same options)."""
     from .._workflow import Columns, _fingerprint, open_store
     from ..training import _subset, _warm_up
 
