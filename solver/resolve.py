@@ -35,12 +35,14 @@ OVERLAY_FORMATS = ("png", "svg", "pdf")
 
 #: what-if changes: name → value kind ("" for none)
 CHANGES = {"standardise": "", "gamma": "number", "C": "number", "selection": "choice",
-           "shrinking": "on/off", "kkt_tol": "number"}
+           "working_set": "choice", "shrinking": "on/off", "kkt_tol": "number"}
+#: changes of how the same problem is solved (the others change the problem)
+_SOLVER_CHANGES = ("selection", "working_set", "shrinking", "kkt_tol")
 #: statuses a run can be resumed from
 RESUMABLE = (Status.ITERATION_LIMIT, Status.TIME_LIMIT, Status.STOPPED_BY_CALLBACK)
 #: stored SMO options carried over to a re-solve (the rest are recording or machine details)
 _CARRIED = ("kkt_tol", "iteration_limit", "time_limit", "selection", "shrinking", "trace",
-            "sample_every", "kernel_dtype", "stall_window")
+            "sample_every", "kernel_dtype", "stall_window", "working_set")
 
 
 def _load(run: str | RunRecord, store: Any) -> RunRecord:
@@ -61,15 +63,15 @@ def diagnose(run: str | RunRecord, *, store: Any = None) -> Any:
 def parse_change(text: str) -> tuple[str, Any]:
     """``"standardise"``, ``"gamma=0.1"``, ``"C=10"``, ``"selection=first_order"``,
     ``"shrinking=off"`` or ``"kkt_tol=1e-5"`` → (name, value); InvalidInputError otherwise."""
-    from .smo import SELECTIONS
+    from .smo import SELECTIONS, WORKING_SETS
 
     name, _, raw = str(text).partition("=")
     name, raw = name.strip(), raw.strip()
     kind = CHANGES.get(name)
     if kind is None:
         raise InvalidInputError(f"unknown change {text!r}; use one of: standardise, gamma=V, "
-                                "C=V, selection=first_order|second_order, shrinking=on|off, "
-                                "kkt_tol=V")
+                                "C=V, selection=first_order|second_order, "
+                                "working_set=pair|block, shrinking=on|off, kkt_tol=V")
     if kind == "":
         if raw:
             raise InvalidInputError(f"change {name!r} takes no value, got {text!r}")
@@ -83,8 +85,9 @@ def parse_change(text: str) -> tuple[str, Any]:
             raise InvalidInputError(f"change {name} needs a finite number > 0, got {raw!r}")
         return name, v
     if kind == "choice":
-        if raw not in SELECTIONS:
-            raise InvalidInputError(f"change selection must be one of {', '.join(SELECTIONS)}, "
+        allowed = SELECTIONS if name == "selection" else WORKING_SETS
+        if raw not in allowed:
+            raise InvalidInputError(f"change {name} must be one of {', '.join(allowed)}, "
                                     f"got {raw!r}")
         return name, raw
     if raw not in ("on", "off"):
@@ -166,7 +169,7 @@ def _figures(record: RunRecord, seconds: float | None = None) -> dict[str, Any]:
             "status": r.status.label, "max_violation": float(c.max_violation),
             "kkt_tol": float(c.kkt_tol), "relative_gap": float(c.relative_gap),
             "dual_objective": float(c.dual_objective), "n_support": int(c.n_support),
-            "options": {k: r.options.get(k) for k in ("selection", "shrinking", "kkt_tol")},
+            "options": {k: r.options.get(k) for k in _SOLVER_CHANGES},
             "kernel": record.problem.kernel.describe(), "C": record.problem.info.get("C")}
 
 
@@ -194,7 +197,7 @@ def what_if(run: str | RunRecord, change: str, *, store: Any = None, save: bool 
     name, value = parse_change(change)
     prob, std = base.problem, base.standardiser
     over: dict[str, Any] = {}
-    if name in ("selection", "shrinking", "kkt_tol"):
+    if name in _SOLVER_CHANGES:
         over[name] = value
     else:
         prob, std = _changed_problem(base, name, value)
@@ -207,7 +210,7 @@ def what_if(run: str | RunRecord, change: str, *, store: Any = None, save: bool 
         res0, _ = _solve(base.problem, **_options(base))
         base_fig.update(iterations=int(res0.iterations), seconds=float(res0.seconds),
                         status=res0.status.label, seconds_source="re-solved in this process")
-    same = name in ("selection", "shrinking", "kkt_tol")
+    same = name in _SOLVER_CHANGES
     comp = compare_results(base.problem, base.result, prob, res, data_a=base.data,
                            data_b=rec.data, run_ids=(base.run_id, None)) if same else None
     run_id = open_store(store).save(rec) if save and base.run_id is not None else None

@@ -44,6 +44,7 @@ from typing import Any
 
 import numpy as np
 
+from . import _block_kernels as _b
 from . import _smo_kernels as _k
 from ._products import compiled_q_times, kernel_code
 from .certificate import certify
@@ -65,6 +66,18 @@ EVENT_KINDS: dict[int, str] = {
     _k.EV_CURVATURE: "curvature_fix",
 }
 SELECTIONS = ("second_order", "first_order")
+#: working-set shapes: ``"block"`` (q variables per outer iteration, solved by pair steps on
+#: their kernel block; :mod:`solver._block_kernels`) or ``"pair"`` (two variables per
+#: iteration, :func:`solver._smo_kernels.smo_run`)
+WORKING_SETS = ("block", "pair")
+#: block working set: variables per outer iteration, most inner steps per outer iteration,
+#: and the inner tolerance as a share of the outer violation (chosen from measurements,
+#: see DEVELOPERS.md, "Block working set")
+BLOCK_SIZE = 128
+BLOCK_INNER_STEPS = 300
+BLOCK_INNER_FACTOR = 0.05
+BLOCK_FRESH_PERCENT = 25
+BLOCK_RULE = 1
 #: a shrink is carried out only when it removes at least this fraction of the active set
 SHRINK_MIN_FRACTION = 0.05
 #: initial row-cache capacity (MB); it grows up to ``row_cache_mb`` while evicted rows recur
@@ -94,7 +107,7 @@ TAU = 1e-12
 _TRACE_COLUMNS = (
     ("iteration", np.int64), ("i", np.int32), ("j", np.int32), ("alpha_i", np.float64),
     ("alpha_j", np.float64), ("step", np.float64), ("objective", np.float64),
-    ("violation", np.float64), ("active", np.int32),
+    ("violation", np.float64), ("active", np.int32), ("outer", np.int64),
 )
 
 
@@ -270,9 +283,13 @@ class _Engine:
 
     def __init__(self, problem: DualProblem, alpha: np.ndarray, *, dtype: np.dtype,
                  budget_mb: float, row_cache_mb: float, level: int, trace_rows: int,
-                 threads: int = 1) -> None:
+                 threads: int = 1, working_set: str = "pair", block_size: int = BLOCK_SIZE,
+                 inner_steps: int = BLOCK_INNER_STEPS,
+                 inner_factor: float = BLOCK_INNER_FACTOR,
+                 fresh_percent: int = BLOCK_FRESH_PERCENT) -> None:
         self.problem = problem
-        self.threads = threads
+        self.block = working_set == "block"
+        self.threads = 1 if self.block else threads
         self.hctl = np.zeros(_k.H_SIZE, dtype=np.int64)
         self.hval = np.zeros(_k.HV_SIZE)
         self.helper_jobs = 0
@@ -380,6 +397,20 @@ class _Engine:
         self.tr = {name: np.zeros(cap, dtype=dt) for name, dt in _TRACE_COLUMNS}
         self.ev = {"iteration": np.zeros(256, dtype=np.int64), "kind": np.zeros(256, dtype=np.int8),
                    "value": np.zeros(256)}
+        q = max(2, int(block_size)) if self.block else 2
+        self.bstate = np.zeros(_b.BS_SIZE, dtype=np.int64)
+        self.bstate[_b.BS_Q] = q
+        self.bstate[_b.BS_MAX_INNER] = int(inner_steps)
+        self.bstate[_b.BS_FRESH] = int(fresh_percent)
+        self.bstate[_b.BS_RULE] = BLOCK_RULE
+        self.bval = np.zeros(_b.BV_SIZE)
+        self.bval[_b.BV_FACTOR] = inner_factor
+        self.bint = {k: np.zeros(q, dtype=np.int64) for k in
+                     ("members", "brefs", "up_pos", "low_pos", "need", "needref")}
+        self.bflt = {k: np.zeros(q) for k in ("bstart", "delta", "Fb", "up_val", "low_val")}
+        self.Kbb = np.zeros(q * q)
+        self.mark = np.zeros(n if self.block else 1, dtype=np.int8)
+        self.acc4 = np.zeros((4, _k.ROW_CHUNK))
         self.last_shrink = 0
         self.shrinks = 0
         self.reconstructions = 0
@@ -517,6 +548,7 @@ class _Engine:
     _POS_ARRAYS = ("F", "beta", "lo", "hi", "diag", "ysign", "status", "perm", "q")
 
     def _reorder(self, order: np.ndarray) -> None:
+        self.bstate[_b.BS_NB] = 0  # positions change: the next working set starts afresh
         for name in self._POS_ARRAYS:
             setattr(self, name, np.ascontiguousarray(getattr(self, name)[order]))
         if self.mode == 1:  # row-cache mode evaluates kernels over positions
@@ -660,7 +692,17 @@ class _Engine:
                        self.cache, self.XK, self.sq, self.istate, self.fstate)
         self.helper_seconds = [time.perf_counter() - w0, time.thread_time() - c0]
 
+    def flush(self) -> None:
+        """Bring F up to date with β (block working set: apply an open outer iteration)."""
+        if self.block:
+            b = self.bint
+            _b.block_flush(self.F, self.beta, self.active, self.bstate, b["brefs"],
+                           b["members"], self.bflt["bstart"], self.bflt["delta"], self.gram,
+                           self.cache)
+
     def run(self) -> int:
+        if self.block:
+            return self._run_block()
         helper = self._start_helper()
         try:
             return self._run_loop()
@@ -690,6 +732,20 @@ class _Engine:
         else:
             self.helper_busy_calls = 0
 
+    def _run_block(self) -> int:
+        tr, ev, b, f = self.tr, self.ev, self.bint, self.bflt
+        return int(_b.block_run(
+            self.F, self.beta, self.lo, self.hi, self.diag, self.ysign, self.status,
+            self.perm, self.gram, self.rowslot, self.cache, self.slot_of, self.slot_owner,
+            self.lru_prev, self.lru_next, self.slot_stamp, self.slot_ver, self.vmaps,
+            self.ext_row, self.XK, self.sq, self.acc, self.ibuf, self.istate, self.fstate,
+            tr["iteration"], tr["i"], tr["j"], tr["alpha_i"], tr["alpha_j"], tr["step"],
+            tr["objective"], tr["violation"], tr["active"], tr["outer"],
+            ev["iteration"], ev["kind"], ev["value"], self.hctl,
+            self.bstate, self.bval, b["members"], b["brefs"], f["bstart"], f["delta"], f["Fb"],
+            self.Kbb, b["up_pos"], f["up_val"], b["low_pos"], f["low_val"], b["need"],
+            b["needref"], self.mark, self.acc4, self.bm))
+
     def _run_loop(self) -> int:
         tr, ev = self.tr, self.ev
         return int(_k.smo_run(
@@ -708,9 +764,10 @@ _compiled: set[str] = set()
 _FINAL_CODES = (_k.RUN_CONVERGED, _k.RUN_NUMERICAL, _k.RUN_STALLED)
 
 
-def _warm_up(dtype: np.dtype) -> float:
-    """Compile (or load from the on-disk cache) the loop for ``dtype``; seconds spent."""
-    key = dtype.name
+def _warm_up(dtype: np.dtype, working_set: str = "pair") -> float:
+    """Compile (or load from the on-disk cache) the loop of ``working_set`` for ``dtype``;
+    seconds spent."""
+    key = f"{dtype.name}-{working_set}"
     if key in _compiled:
         return 0.0
     t0 = time.perf_counter()
@@ -719,7 +776,7 @@ def _warm_up(dtype: np.dtype) -> float:
                        upper=np.ones(3), delta=0.0, kernel=RBFKernel(gamma=1.0),
                        kind="warm_up", info={})
     eng = _Engine(prob, np.zeros(3), dtype=dtype, budget_mb=1.0, row_cache_mb=1.0, level=0,
-                  trace_rows=16)
+                  trace_rows=16, working_set=working_set)
     eng.istate[_k.IS_STOP_AT] = 10
     eng.istate[_k.IS_SHRINK_AT] = 2
     eng.istate[_k.IS_STALL_WINDOW] = 100
@@ -734,6 +791,10 @@ def _warm_up(dtype: np.dtype) -> float:
     _k.relayout_cache(eng.cache, 3, 3, np.zeros(0, dtype=np.int64), eng.slot_ver, eng.vmaps, 0,
                       np.zeros(0, dtype=np.int64), 0)
     eng.rebuild_gradient(np.arange(3, dtype=np.int64))
+    if eng.block:
+        eng.flush()
+        _compiled.add(key)
+        return time.perf_counter() - t0
     hc = np.zeros(_k.H_SIZE, dtype=np.int64)
     hc[_k.H_POSTED] = 1  # a helper told to return at once: compiles (or loads) it
     hc[_k.H_KIND] = _k.JOB_EXIT
@@ -762,6 +823,7 @@ def solve_smo(
     callback_every: int = 1000,
     stall_window: int | None = None,
     threads: int | None = None,
+    working_set: str = "pair",
 ) -> SolveResult:
     """Solve ``problem`` by SMO and return α, bias, status, certificate and trace.
 
@@ -798,6 +860,12 @@ def solve_smo(
         ``KKTRACE_THREADS``, else 2.  With two, a helper thread computes the upper
         half of every long pass and kernel row; α, trace and certificate are bitwise the
         same as with one.
+    working_set : ``"block"`` (default): each outer iteration picks ``BLOCK_SIZE``
+        variables, computes their kernel rows together and solves their subproblem by
+        two-variable steps on the kernel block, then updates the gradient once
+        (Joachims 1999; :mod:`solver._block_kernels`); ``"pair"``: two variables per
+        iteration, the gradient updated after each.  Both stop on the same test and
+        record every two-variable step; the block form runs on one thread.
 
     Returns
     -------
@@ -883,6 +951,9 @@ def solve_smo(
     if threads is None:
         threads = _threads_from_environment()
     threads = min(threads, available_cores(), MAX_THREADS)
+    if working_set not in WORKING_SETS:
+        raise InvalidInputError(
+            f"option working_set must be one of {', '.join(WORKING_SETS)}, got {working_set!r}")
     if stall_window is None:
         stall_window = max(1_000_000, 10 * n)
     alpha = problem.feasible_start() if alpha0 is None else _check_start(problem, alpha0)
@@ -892,7 +963,7 @@ def solve_smo(
                shrinking=bool(shrinking), trace=trace, sample_every=sample_every,
                snapshot_every=snapshot_every, budget_mb=budget_mb, row_cache_mb=row_cache_mb,
                callback=callback, callback_every=callback_every, stall_window=stall_window,
-               threads=threads)
+               threads=threads, working_set=working_set)
     ph = _run_phase(problem, alpha, dtype, cfg, t_start)
     polish_iterations = 0
     if dtype != np.float64 and ph["status"] == Status.CONVERGED:
@@ -927,7 +998,7 @@ def solve_smo(
         "kernel_dtype": kernel_dtype, "row_cache_mb": row_cache_mb, "warm_start": alpha0 is not
         None,
         "callback_every": callback_every, "stall_window": stall_window, "curvature_floor": TAU,
-        "threads": threads,
+        "threads": threads, "working_set": working_set,
     }
     extra = dict(ph["extra"])
     extra["polish_iterations"] = polish_iterations
@@ -969,6 +1040,9 @@ def _merge_phases(a: dict[str, Any], b: dict[str, Any]) -> dict[str, Any]:
                 "helper_seconds", "helper_cpu_seconds"):
         extra[key] = a["extra"][key] + b["extra"][key]
     extra["kernel_mode"] = a["extra"]["kernel_mode"]
+    extra["outer_iterations"] = a["extra"]["outer_iterations"] + b["extra"]["outer_iterations"]
+    out["columns"]["outer"] = np.concatenate(
+        [a["columns"]["outer"], b["columns"]["outer"] + a["extra"]["outer_iterations"]])
     out["extra"] = extra
     return out
 
@@ -981,12 +1055,15 @@ def _run_phase(problem: DualProblem, alpha: np.ndarray, dtype: np.dtype, cfg: di
     kkt_tol, iteration_limit, time_limit = cfg["kkt_tol"], cfg["iteration_limit"], cfg["time_limit"]
     snapshot_every, callback = cfg["snapshot_every"], cfg["callback"]
     callback_every, stall_window = cfg["callback_every"], cfg["stall_window"]
-    compile_seconds = _warm_up(dtype)
+    working_set = cfg["working_set"]
+    compile_seconds = _warm_up(dtype, working_set)
     t_setup = time.perf_counter()
     level = {"full": 0, "sampled": 1, "off": 2}[cfg["trace"]]
     eng = _Engine(problem, alpha, dtype=dtype, budget_mb=cfg["budget_mb"],
                   row_cache_mb=cfg["row_cache_mb"], level=level,
-                  trace_rows=min(iteration_limit, max(4096, 4 * n)), threads=cfg["threads"])
+                  trace_rows=min(iteration_limit, max(4096, 4 * n)), threads=cfg["threads"],
+                  working_set=working_set, block_size=BLOCK_SIZE, inner_steps=BLOCK_INNER_STEPS,
+                  inner_factor=BLOCK_INNER_FACTOR, fresh_percent=BLOCK_FRESH_PERCENT)
     ist, fst = eng.istate, eng.fstate
     ist[_k.IS_SAMPLE] = cfg["sample_every"]
     ist[_k.IS_SECOND_ORDER] = 1 if cfg["selection"] == "second_order" else 0
@@ -1076,6 +1153,7 @@ def _run_phase(problem: DualProblem, alpha: np.ndarray, dtype: np.dtype, cfg: di
                 detail = f"at iteration {it + first_iteration}"
                 break
     it = int(ist[_k.IS_ITER])
+    eng.flush()
     if eng.active < n:
         eng.unshrink(it)
     solve_seconds = time.perf_counter() - t_solve
@@ -1086,6 +1164,8 @@ def _run_phase(problem: DualProblem, alpha: np.ndarray, dtype: np.dtype, cfg: di
     rows, evs = int(ist[_k.IS_ROWS]), int(ist[_k.IS_EVENTS])
     columns = {name: eng.tr[name][:rows].copy() for name, _ in _TRACE_COLUMNS}
     events = {name: eng.ev[name][:evs].copy() for name in ("iteration", "kind", "value")}
+    if not eng.block:  # a pair step is an outer iteration of its own
+        columns["outer"] = columns["iteration"].copy()
     columns["iteration"] += first_iteration
     events["iteration"] += first_iteration
     extra = {
@@ -1104,6 +1184,7 @@ def _run_phase(problem: DualProblem, alpha: np.ndarray, dtype: np.dtype, cfg: di
         "helper_pauses": eng.helper_pauses, "helper_seconds": eng.helper_totals[0],
         "helper_cpu_seconds": eng.helper_totals[1],
         "loop_violation": float(fst[_k.FS_VIOL]), "loop_objective": float(fst[_k.FS_OBJ]),
+        "outer_iterations": int(eng.bstate[_b.BS_OUTER]) if eng.block else it,
     }
     return {"status": status, "detail": detail, "alpha": alpha, "G": eng.gradient(),
             "iterations": it + first_iteration, "columns": columns, "events": events,

@@ -128,9 +128,11 @@ TERMS: dict[str, Term] = {
 #: trace-row columns per solver: (solver, column) → term
 _TRACE: dict[tuple[str, str], Term] = {
     ("smo", "violation"): Term(
-        "violation before the step", "the SMO loop's own m(α) − M(α) at the start of "
-        "iteration k (from its maintained gradient), i.e. of the state after iteration "
-        "k − 1; the certificate's maximal violation is of the state after iteration k",
+        "violation before the step", "the SMO loop's own m(α) − M(α) (from its maintained "
+        "gradient) at the working-set selection of iteration k's outer iteration: with the "
+        "two-variable working set, of the state after iteration k − 1; with the block "
+        "working set, of the state before the outer iteration's first step; the "
+        "certificate's maximal violation is of the state after iteration k",
         "smo"),
     ("smo", "objective"): Term("dual objective after the step", "D after iteration k, "
                                "updated by the loop", "smo"),
@@ -142,6 +144,8 @@ _TRACE: dict[tuple[str, str], Term] = {
     ("smo", "alpha_j"): Term("new αⱼ", "αⱼ after the step, as the solver holds it", "smo"),
     ("smo", "step"): Term("step", "change of αᵢ in iteration k", "smo"),
     ("smo", "active"): Term("active set", "variables not shrunk away", "smo"),
+    ("smo", "outer"): Term("outer iteration", "the working-set selection iteration k belongs "
+                           "to (equal to k for the two-variable working set)", "smo"),
     ("qp", "primal_objective"): Term(
         "cvxopt primal objective (= D at its interior iterate)", "cvxopt's primal objective "
         "½xᵀQx + pᵀx at its interior iterate x, before kktrace moves the answer onto the "
@@ -344,6 +348,8 @@ FIELDS: dict[str, Term] = _terms(
     ("iteration_limit", "iteration limit", "largest number of iterations"),
     ("time_limit", "time limit (s)", "wall-clock limit of the solve"),
     ("selection", "working-set selection", "how SMO picks its pair"),
+    ("working_set", "working set", "two variables per step, or a block of variables solved "
+     "by two-variable steps"),
     ("shrinking", "shrinking", "variables set aside while they stay at a bound"),
     ("trace", "trace level", "what the trace records"),
     ("sample_every", "trace row every (iterations)", "sampling of a sampled trace"),

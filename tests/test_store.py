@@ -496,7 +496,7 @@ def test_format_version_1_manifests_are_still_read(tmp_path, rng, method) -> Non
     rid = store.save(rec)
     folder = store.run_dir(rid)
     manifest = json.loads((folder / "manifest.json").read_text())
-    assert manifest["format_version"] == FORMAT_VERSION == 2
+    assert manifest["format_version"] == FORMAT_VERSION == 3
     blobs = {p.name: p.read_bytes() for p in folder.iterdir() if p.is_file()}
     old = _as_version_1(manifest, qp=method == "qp")
     assert "tol" in old["certificate"] and "kkt_tol" not in old["certificate"]
@@ -509,6 +509,40 @@ def test_format_version_1_manifests_are_still_read(tmp_path, rng, method) -> Non
     else:
         assert {"kkt_tol", "iteration_limit", "row_cache_mb", "curvature_floor"} <= set(
             v1.result.options)
-    old["format_version"] = 3
-    with pytest.raises(IntegrityError, match="format_version 3 is not supported"):
+    old["format_version"] = 4
+    with pytest.raises(IntegrityError, match="format_version 4 is not supported"):
         decode_record(old, blobs)
+
+
+def test_format_version_2_smo_runs_read_as_pair_runs_with_an_outer_column(tmp_path, rng) -> None:
+    # version 2 had no trace column "outer" and no option "working_set": such a run is
+    # read as a two-variable run whose every step was its own outer iteration
+    import io
+
+    import pyarrow.parquet as pq
+
+    from solver.solvers import solve
+    from solver.store.codec import decode_record
+
+    X = rng.normal(size=(40, 3))
+    prob = binary_classification(X, np.where(X[:, 0] > 0, 1, -1), C=1.0, kernel=LinearKernel())
+    rec = RunRecord(problem=prob, result=solve(prob, method="smo", trace="full"),
+                    data={"fingerprint": "x" * 64}, standardiser=Standardiser.fit(X))
+    store = RunStore(tmp_path)
+    folder = store.run_dir(store.save(rec))
+    manifest = json.loads((folder / "manifest.json").read_text())
+    blobs = {p.name: p.read_bytes() for p in folder.iterdir() if p.is_file()}
+    table = pq.read_table(io.BytesIO(blobs["trace.parquet"]))
+    assert "outer" in table.column_names
+    old_table = table.drop(["outer"])
+    buf = io.BytesIO()
+    pq.write_table(old_table, buf)
+    blobs["trace.parquet"] = buf.getvalue()
+    old = json.loads(json.dumps(manifest))
+    old["format_version"] = 2
+    del old["trace"]["columns"]["outer"]
+    del old["solver"]["options"]["working_set"]
+    v2 = decode_record(old, blobs)
+    cols = v2.result.trace.columns
+    assert np.array_equal(cols["outer"], cols["iteration"])
+    assert v2.result.options["working_set"] == "pair"

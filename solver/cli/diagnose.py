@@ -29,8 +29,9 @@ _DIAGNOSE_EXAMPLES = """examples:
   kktrace diagnose RUN_ID --try selection=first_order --try shrinking=off --save
 
 changes for --try: standardise, gamma=V, C=V, selection=first_order|second_order,
-shrinking=on|off, kkt_tol=V.  Each re-solves the run's data with that one change and
-prints both runs side by side (with the agreement verdict when the problem is unchanged)."""
+working_set=pair|block, shrinking=on|off, kkt_tol=V.  Each re-solves the run's data with
+that one change and prints both runs side by side (with the agreement verdict when the
+problem is unchanged)."""
 
 _OVERLAY_EXAMPLES = """examples:
   kktrace overlay SMO_RUN QP_RUN --out convergence.svg

@@ -62,8 +62,12 @@ COLUMN_DOCS = {
     "step": "change of alpha[i] in this iteration (units of C)",
     "objective": "dual objective 1/2 a'Qa + p'a after the step (minimised; <= 0 for "
                  "classification)",
-    "violation": "maximal KKT violation m(a) - M(a) before the step (units of the gradient)",
+    "violation": "maximal KKT violation m(a) - M(a) at the working-set selection of the "
+                 "step's outer iteration (units of the gradient); for the two-variable "
+                 "working set, before the step",
     "active": "size of the active (unshrunk) set during the iteration",
+    "outer": "outer iteration (working-set selection) the step belongs to; equal to the "
+             "iteration for the two-variable working set",
     "primal_objective": "interior-point primal objective (units of the dual objective)",
     "dual_objective": "interior-point dual objective (units of the dual objective)",
     "gap": "interior-point duality gap (units of the dual objective)",
@@ -313,6 +317,19 @@ def _table_dtypes(spec: dict[str, str], fname: str, path: str) -> dict[str, str]
 _V1_OPTIONS = {"max_iter": "iteration_limit", "cache_mb": "row_cache_mb", "tau": "curvature_floor"}
 
 
+def upgrade_v2(manifest: dict[str, Any]) -> dict[str, Any]:
+    """A version-1 or -2 manifest in version-3 form: an SMO run of those versions used the
+    two-variable working set (option ``working_set`` = ``"pair"``); its trace, which has
+    no ``outer`` column, gets one equal to ``iteration`` when decoded (each step was its
+    own selection).  A view for decoding, like :func:`upgrade_v1`."""
+    m = dict(manifest)
+    s = m.get("solver")
+    if (isinstance(s, dict) and s.get("name") == "smo" and isinstance(s.get("options"), dict)
+            and "working_set" not in s["options"]):
+        m["solver"] = dict(s, options=dict(s["options"], working_set="pair"))
+    return m
+
+
 def upgrade_v1(manifest: dict[str, Any]) -> dict[str, Any]:
     """A version-1 manifest with its option and certificate names in version-2 form.
 
@@ -354,6 +371,8 @@ def decode_record(manifest: Any, blobs: Mapping[str, bytes]) -> RunRecord:
             f"{', '.join(map(str, fmt.READABLE_VERSIONS))})")
     if ver == 1:
         m = upgrade_v1(m)
+    if ver < 3:
+        m = upgrade_v2(m)
     run_id = fmt.check_run_id_integrity(get(m, "run_id", str, M, ""), M)
     created = get(m, "created", str, M, "")
     parent = get(m, "parent", dict, M, "", optional=True)
@@ -435,7 +454,7 @@ def decode_record(manifest: Any, blobs: Mapping[str, bytes]) -> RunRecord:
     trace = None
     t = get(m, "trace", dict, M, "", optional=True)
     if t is not None:
-        trace = _decode_trace(t, blob, n)
+        trace = _decode_trace(t, blob, n, ver)
 
     result = SolveResult(
         solver=get(s, "name", str, M, "solver"), status=status,
@@ -490,7 +509,7 @@ def _decode_kernel(desc: dict[str, Any], name: str, gram: np.ndarray | None) -> 
         raise IntegrityError(f"{M}: field problem.kernel is invalid ({exc})") from None
 
 
-def _decode_trace(t: dict[str, Any], blob: Any, n: int) -> Trace:
+def _decode_trace(t: dict[str, Any], blob: Any, n: int, version: int) -> Trace:
     P = "trace"
     level = get(t, "level", str, M, P)
     if level not in TRACE_LEVELS:
@@ -518,8 +537,11 @@ def _decode_trace(t: dict[str, Any], blob: Any, n: int) -> Trace:
     k = get(t, "snapshots", int, M, P)
     snap = read_npz(blob("snapshots.npz"), "snapshots.npz",
                     {"snapshot_iterations": ("i", (k,)), "snapshots": ("f", (k, n))})
+    solver = get(t, "solver", str, M, P)
+    if version < 3 and solver == "smo" and "outer" not in cols and "iteration" in cols:
+        cols["outer"] = np.array(cols["iteration"], dtype=np.int64)  # see upgrade_v2
     return Trace(
-        solver=get(t, "solver", str, M, P), level=level, columns=cols, events=events,
+        solver=solver, level=level, columns=cols, events=events,
         event_kinds=kinds, snapshot_iterations=snap["snapshot_iterations"],
         snapshots=snap["snapshots"], sample_every=get(t, "sample_every", int, M, P),
         snapshot_every=get(t, "snapshot_every", int, M, P),

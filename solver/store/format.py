@@ -45,10 +45,12 @@ __all__ = [
 ]
 
 FORMAT_NAME = "kktrace-run"
-FORMAT_VERSION = 2
+FORMAT_VERSION = 3
 #: versions this code reads; version 1 used the option names ``tol``, ``max_iter``,
-#: ``cache_mb``, ``tau`` and the certificate field ``tol`` (renamed in version 2).
-READABLE_VERSIONS = (1, 2)
+#: ``cache_mb``, ``tau`` and the certificate field ``tol`` (renamed in version 2); version 3
+#: added the SMO trace column ``outer`` and the SMO option ``working_set`` (before it, every
+#: SMO run used the two-variable working set, one selection per step).
+READABLE_VERSIONS = (1, 2, 3)
 
 #: ``YYYYMMDDTHHMMSSffffffZ-`` + 12 lower-case hex digits (48 random bits).
 RUN_ID_PATTERN = re.compile(r"[0-9]{8}T[0-9]{12}Z-[0-9a-f]{12}")
@@ -278,7 +280,7 @@ def _column_encoding(name: str, arr: np.ndarray) -> tuple[str | None, bool]:
     if kind == "f":
         return "BYTE_STREAM_SPLIT", False
     if kind in "iu":
-        if name == "iteration":
+        if name in ("iteration", "outer"):  # non-decreasing counters
             return "DELTA_BINARY_PACKED", False
         return None, True  # dictionary + RLE/bit-packed indices (falls back to plain if large)
     return None, True
