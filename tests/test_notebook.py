@@ -65,5 +65,7 @@ def test_study_notebook_executes(tmp_path, monkeypatch):
     text = _text(outputs)
     assert "study and every member verify: True" in text
     assert "one-standard-error rule" in text and "same optimum" in text
+    assert "regression score: rmse" in text and "one-class score: nu_gap" in text
+    assert "both studies verify: True" in text
     shown = [o for o in outputs if "image/svg+xml" in o.get("data", {})]
     assert shown, "the maps were not displayed"
