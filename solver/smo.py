@@ -954,6 +954,12 @@ def solve_smo(
     if working_set not in WORKING_SETS:
         raise InvalidInputError(
             f"option working_set must be one of {', '.join(WORKING_SETS)}, got {working_set!r}")
+    if (working_set == "block" and kernel_code(problem.kernel)[0] == _k.KERNEL_EXTERNAL
+            and not isinstance(problem.kernel, PrecomputedKernel)):
+        raise InvalidInputError(
+            f"working_set 'block' needs a kernel the compiled code evaluates (linear, poly, "
+            f"rbf, sigmoid or precomputed), got {problem.kernel.name!r}; use working_set "
+            f"'pair'")
     if stall_window is None:
         stall_window = max(1_000_000, 10 * n)
     alpha = problem.feasible_start() if alpha0 is None else _check_start(problem, alpha0)

@@ -193,3 +193,24 @@ def test_compiled_matches_pure_python():
     r = solve_smo(_problem(n=40, d=3), kkt_tol=1e-8, working_set="block")
     assert py["i"] == r.trace.columns["i"].tolist()
     assert py["alpha"] == r.alpha.tolist() and py["obj"] == r.trace.columns["objective"].tolist()
+
+
+def test_precomputed_kernel_and_a_callable_one():
+    from solver.errors import InvalidInputError
+    from solver.kernels import CallableKernel, PrecomputedKernel
+    from solver.problem import index_features
+
+    rng = np.random.default_rng(8)
+    X = rng.normal(size=(80, 3))
+    lab = np.where(X[:, 0] - X[:, 2] > 0.1, 1, -1)
+    G = np.exp(-0.5 * ((X[:, None, :] - X[None, :, :]) ** 2).sum(-1))
+    prob = binary_classification(index_features(80), lab, kernel=PrecomputedKernel(gram_matrix=G),
+                                 C=3.0)
+    blk = solve_smo(prob, kkt_tol=1e-7, working_set="block")
+    pair = solve_smo(prob, kkt_tol=1e-7, working_set="pair")
+    assert blk.success
+    assert abs(_dual(prob, blk.alpha) - _dual(prob, pair.alpha)) <= 1e-9 * abs(
+        _dual(prob, pair.alpha))
+    lap = CallableKernel(func=lambda A, B: np.exp(-np.abs(A[:, None] - B[None]).sum(-1)))
+    with pytest.raises(InvalidInputError, match="working_set 'block' needs a kernel"):
+        solve_smo(binary_classification(X, lab, kernel=lap, C=1.0), working_set="block")
