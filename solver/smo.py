@@ -865,7 +865,8 @@ def solve_smo(
         two-variable steps on the kernel block, then updates the gradient once
         (Joachims 1999; :mod:`solver._block_kernels`); ``"pair"``: two variables per
         iteration, the gradient updated after each.  Both stop on the same test and
-        record every two-variable step; the block form runs on one thread.
+        record every two-variable step; the block form runs on one thread and needs a
+        kernel the compiled code evaluates (linear, poly, rbf, sigmoid, precomputed).
 
     Returns
     -------
