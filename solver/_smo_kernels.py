@@ -22,7 +22,11 @@ from __future__ import annotations
 import platform
 
 import numpy as np
-from numba import config, njit
+
+from ._numba_start import prepare_numba
+
+prepare_numba()  # a kktrace command skips numba's BLAS probe (see solver._numba_start)
+from numba import config, njit  # noqa: E402
 
 # ---------------------------------------------------------------- constants ----------
 

@@ -80,3 +80,21 @@ def test_runs_probe_sees_the_run(store_with_a_run):
                           capture_output=True, text=True, env=env, timeout=120)
     assert proc.returncode == 0, proc.stderr
     assert len(json.loads(proc.stdout)) >= 1
+
+
+def test_train_skips_numbas_blas_probe(store_with_a_run):
+    """``kktrace train`` loads numba but not ``scipy.linalg`` (numba's BLAS probe, 0.4 s;
+    see solver._numba_start), while a library process keeps numba's BLAS."""
+    folder = store_with_a_run
+    probe = PROBE.replace("{heavy!r}", "('numba', 'scipy.linalg')")
+    env = {k: v for k, v in os.environ.items() if k != "KKTRACE_STORE"}
+    env["PYTHONPATH"] = os.pathsep.join([str(ROOT), env.get("PYTHONPATH", "")])
+    proc = subprocess.run([sys.executable, "-c", probe, "train", str(folder / "small.csv"),
+                           "--label", "label", "--store", str(folder / "store"), "--quiet"],
+                          capture_output=True, text=True, cwd=folder, env=env, timeout=300)
+    line = [x for x in proc.stderr.splitlines() if x.startswith("LOADED ")]
+    assert line and json.loads(line[-1][len("LOADED "):]) == ["numba"], proc.stderr[-800:]
+    lib = subprocess.run([sys.executable, "-c", "import solver.smo, numba.np.arraymath as a; "
+                          "print(a._HAVE_BLAS)"], capture_output=True, text=True, env=env,
+                         timeout=300)
+    assert lib.stdout.strip() == "True", lib.stderr[-800:]

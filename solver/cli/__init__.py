@@ -76,6 +76,9 @@ def _warning_printer() -> Callable[..., None]:
 
 def main(argv: Sequence[str] | None = None) -> int:
     """Entry point of the ``kktrace`` command; returns the exit status."""
+    from solver import _numba_start
+
+    _numba_start.SKIP_BLAS_PROBE = True  # this process runs only kktrace's compiled code
     parser = build_parser()
     args = parser.parse_args(argv)
     from solver import KktraceError

@@ -7,7 +7,11 @@ Flat, module-level, typed by its arrays, ``cache=True``; runs unchanged (slowly)
 from __future__ import annotations
 
 import numpy as np
-from numba import njit
+
+from .._numba_start import prepare_numba
+
+prepare_numba()  # a kktrace command skips numba's BLAS probe (see solver._numba_start)
+from numba import njit  # noqa: E402
 
 #: status codes of :func:`path_run`
 PATH_COMPLETE = 0
