@@ -3,7 +3,7 @@
 numba's first compiled call imports ``scipy.linalg`` to look for a BLAS for numba's own
 ``np.dot`` and linear algebra in compiled code (``numba.np.arraymath._check_blas``); that
 import took 0.38–0.45 s of every ``kktrace train`` here, and kktrace's compiled code calls
-no BLAS.  A kktrace command sets :data:`SKIP_BLAS_PROBE` (``solver.cli.main``) so that the
+no BLAS.  The kktrace command sets :data:`SKIP_BLAS_PROBE` (in its entry point) so that the
 probe fails at once; a library user's process is left alone, since their own compiled code
 may need numba's BLAS.
 """
