@@ -24,8 +24,6 @@ import numpy as np
 
 from ._smo_kernels import (
     BLK,
-    EV_CURVATURE,
-    FS_BEST_OBJ,
     FS_GAMMA,
     FS_M_LOW,
     FS_M_UP,
@@ -35,13 +33,10 @@ from ._smo_kernels import (
     FS_TOL,
     FS_VIOL,
     IS_ACTIVE,
-    IS_CURV_FIXES,
     IS_DEGREE,
     IS_EVENTS,
-    IS_FORCE_ROW,
     IS_ITER,
     IS_KERNEL,
-    IS_LAST_IMPROVE,
     IS_LEVEL,
     IS_MISSES,
     IS_MODE,
@@ -49,7 +44,6 @@ from ._smo_kernels import (
     IS_REMISSES,
     IS_ROW_EVALS,
     IS_ROWS,
-    IS_SAMPLE,
     IS_SHRINK_AT,
     IS_SLOTS,
     IS_STALL_WINDOW,
@@ -59,10 +53,8 @@ from ._smo_kernels import (
     IS_VERSION,
     LOW,
     RUN_CONVERGED,
-    RUN_NUMERICAL,
     RUN_PAUSE,
     RUN_SHRINK,
-    RUN_STALLED,
     RUN_TRACE_FULL,
     UP,
     _fetch,
@@ -72,8 +64,11 @@ from ._smo_kernels import (
     _lru_take,
     _row_of,
     _transform,
+    pair_step,
     pass_low,
     pass_up,
+    progress_code,
+    record_step,
 )
 
 # slots of bstate (int64)
@@ -433,7 +428,6 @@ def block_run(F, beta, lo, hi, diag, ysign, status, perm,
     stop_at = istate[IS_STOP_AT]
     shrink_at = istate[IS_SHRINK_AT]
     level = istate[IS_LEVEL]
-    sample = istate[IS_SAMPLE]
     stall_window = istate[IS_STALL_WINDOW]
     kkt_tol = fstate[FS_TOL]
     tau = fstate[FS_TAU]
@@ -564,75 +558,21 @@ def block_run(F, beta, lo, hi, diag, ysign, status, perm,
             i = pi
             j = members[jj]
             kij = Kbb[ii * q + jj]
-            b = mi - Fb[jj]
-            aij = (diag[i] + diag[j]) - 2.0 * kij
-            event = False
-            if aij <= 0.0:
-                ev = istate[IS_EVENTS]
-                ev_it[ev] = it + 1
-                ev_kind[ev] = EV_CURVATURE
-                ev_val[ev] = aij
-                istate[IS_EVENTS] = ev + 1
-                istate[IS_CURV_FIXES] += 1
-                event = True
-                s = b / tau
-            else:
-                s = b / aij
-            bi_old = beta[i]
-            bj_old = beta[j]
-            cap_i = hi[i] - bi_old
-            cap_j = bj_old - lo[j]
-            if s >= cap_i or s >= cap_j:
-                if cap_i <= cap_j:
-                    s = cap_i
-                    bi_new = hi[i]
-                    bj_new = lo[j] if cap_i == cap_j else bj_old - s
-                else:
-                    s = cap_j
-                    bj_new = lo[j]
-                    bi_new = bi_old + s
-            else:
-                bi_new = bi_old + s
-                bj_new = bj_old - s
-            di = bi_new - bi_old
-            dj = bj_new - bj_old
-            beta[i] = bi_new
-            beta[j] = bj_new
-            status[i] = (UP if bi_new < hi[i] else 0) | (LOW if bi_new > lo[i] else 0)
-            status[j] = (UP if bj_new < hi[j] else 0) | (LOW if bj_new > lo[j] else 0)
-            dual_value += -(Fb[ii] * di + Fb[jj] * dj) + 0.5 * (diag[i] * di * di
-                                                                + diag[j] * dj * dj
-                                                                + 2.0 * kij * di * dj)
+            di, dj, bi_new, bj_new, change, event = pair_step(
+                i, j, mi - Fb[jj], kij, Fb[ii], Fb[jj], beta, lo, hi, diag, status, tau, it,
+                istate, ev_it, ev_kind, ev_val)
+            dual_value += change
             ri = ii * q
             rj = jj * q
             for c in range(nb):
                 Fb[c] = Fb[c] - (Kbb[ri + c] * di + Kbb[rj + c] * dj)
             bstate[BS_INNER] += 1
             it += 1
-            if level != 2:
-                if level == 0 or it % sample == 0 or event or istate[IS_FORCE_ROW] == 1:
-                    r = istate[IS_ROWS]
-                    tr_it[r] = it
-                    tr_i[r] = perm[i]
-                    tr_j[r] = perm[j]
-                    tr_ai[r] = ysign[i] * bi_new
-                    tr_aj[r] = ysign[j] * bj_new
-                    tr_step[r] = ysign[i] * di
-                    tr_obj[r] = dual_value
-                    tr_viol[r] = viol
-                    tr_act[r] = a
-                    tr_outer[r] = outer
-                    istate[IS_ROWS] = r + 1
-                    istate[IS_FORCE_ROW] = 0
-            if not (abs(dual_value) < np.inf):
-                ret = RUN_NUMERICAL
-                done = True
-                break
-            elif dual_value < fstate[FS_BEST_OBJ] - 1e-15 * max(1.0, abs(fstate[FS_BEST_OBJ])):
-                fstate[FS_BEST_OBJ] = dual_value
-                istate[IS_LAST_IMPROVE] = it
-            elif it - istate[IS_LAST_IMPROVE] >= stall_window:
-                ret = RUN_STALLED
+            record_step(it, i, j, bi_new, bj_new, di, dual_value, viol, a, outer, event, perm,
+                        ysign, istate, tr_it, tr_i, tr_j, tr_ai, tr_aj, tr_step, tr_obj,
+                        tr_viol, tr_act, tr_outer)
+            ret = progress_code(dual_value, it, stall_window, istate, fstate)
+            if ret >= 0:
                 done = True
                 break
         if done:

@@ -962,6 +962,98 @@ def helper_stop(hctl):
         hctl[H_ON] = 0
 
 
+# ---------------------------------------------------------------- one step ----------
+
+
+@_jit
+def pair_step(i, j, b, kij, gi, gj, beta, lo, hi, diag, status, tau, it, istate, ev_it,
+              ev_kind, ev_val):
+    """The two-variable step along βᵢ += s, βⱼ −= s (Platt 1998; Fan, Chen & Lin 2005,
+    eq. 15): unconstrained minimiser s = b/aᵢⱼ with b = Fᵢ − Fⱼ > 0 and aᵢⱼ = Kᵢᵢ + Kⱼⱼ −
+    2Kᵢⱼ (τ when aᵢⱼ ≤ 0, recorded as a curvature event at iteration it + 1), clipped to
+    the box; β and status updated in place.  gi, gj: the gradient values Fᵢ, Fⱼ used.
+    Returns (Δβᵢ, Δβⱼ, new βᵢ, new βⱼ, exact change of ½βᵀKβ + qᵀβ, event)."""
+    aij = (diag[i] + diag[j]) - 2.0 * kij
+    event = False
+    if aij <= 0.0:
+        ev = istate[IS_EVENTS]
+        ev_it[ev] = it + 1
+        ev_kind[ev] = EV_CURVATURE
+        ev_val[ev] = aij
+        istate[IS_EVENTS] = ev + 1
+        istate[IS_CURV_FIXES] += 1
+        event = True
+        s = b / tau
+    else:
+        s = b / aij
+    bi_old = beta[i]
+    bj_old = beta[j]
+    cap_i = hi[i] - bi_old
+    cap_j = bj_old - lo[j]
+    if s >= cap_i or s >= cap_j:
+        if cap_i <= cap_j:
+            s = cap_i
+            bi_new = hi[i]
+            bj_new = lo[j] if cap_i == cap_j else bj_old - s
+        else:
+            s = cap_j
+            bj_new = lo[j]
+            bi_new = bi_old + s
+    else:
+        bi_new = bi_old + s
+        bj_new = bj_old - s
+    di = bi_new - bi_old
+    dj = bj_new - bj_old
+    beta[i] = bi_new
+    beta[j] = bj_new
+    status[i] = (UP if bi_new < hi[i] else 0) | (LOW if bi_new > lo[i] else 0)
+    status[j] = (UP if bj_new < hi[j] else 0) | (LOW if bj_new > lo[j] else 0)
+    # exact change of ½βᵀKβ + qᵀβ for the two-variable step: gᵀd + ½dᵀKd, g = −F
+    change = -(gi * di + gj * dj) + 0.5 * (diag[i] * di * di + diag[j] * dj * dj
+                                           + 2.0 * kij * di * dj)
+    return di, dj, bi_new, bj_new, change, event
+
+
+@_jit
+def record_step(it, i, j, bi_new, bj_new, di, dual_value, viol, a, outer, event, perm, ysign,
+                istate, tr_it, tr_i, tr_j, tr_ai, tr_aj, tr_step, tr_obj, tr_viol, tr_act,
+                tr_outer):
+    """Write iteration ``it`` to the trace when the level and sampling ask for it (level 0
+    full, 1 every IS_SAMPLE-th and every event or forced row, 2 off)."""
+    level = istate[IS_LEVEL]
+    if level == 2:
+        return
+    if level == 0 or it % istate[IS_SAMPLE] == 0 or event or istate[IS_FORCE_ROW] == 1:
+        r = istate[IS_ROWS]
+        tr_it[r] = it
+        tr_i[r] = perm[i]
+        tr_j[r] = perm[j]
+        tr_ai[r] = ysign[i] * bi_new
+        tr_aj[r] = ysign[j] * bj_new
+        tr_step[r] = ysign[i] * di
+        tr_obj[r] = dual_value
+        tr_viol[r] = viol
+        tr_act[r] = a
+        tr_outer[r] = outer
+        istate[IS_ROWS] = r + 1
+        istate[IS_FORCE_ROW] = 0
+
+
+@_jit
+def progress_code(dual_value, it, stall_window, istate, fstate):
+    """RUN_NUMERICAL for a non-finite objective, RUN_STALLED after ``stall_window``
+    iterations without a decrease (the best objective and its iteration kept in
+    fstate / istate), else −1."""
+    if not (abs(dual_value) < np.inf):
+        return RUN_NUMERICAL
+    if dual_value < fstate[FS_BEST_OBJ] - 1e-15 * max(1.0, abs(fstate[FS_BEST_OBJ])):
+        fstate[FS_BEST_OBJ] = dual_value
+        istate[IS_LAST_IMPROVE] = it
+    elif it - istate[IS_LAST_IMPROVE] >= stall_window:
+        return RUN_STALLED
+    return -1
+
+
 # ---------------------------------------------------------------- the loop -----------
 
 
@@ -969,7 +1061,7 @@ def helper_stop(hctl):
 def smo_run(F, beta, lo, hi, diag, ysign, status, perm,
             gram, rowslot, cache, slot_of, slot_owner, lru_prev, lru_next, slot_stamp, slot_ver,
             vmaps, ext_row, XK, sq, acc, ibuf, bm, istate, fstate,
-            tr_it, tr_i, tr_j, tr_ai, tr_aj, tr_step, tr_obj, tr_viol, tr_act,
+            tr_it, tr_i, tr_j, tr_ai, tr_aj, tr_step, tr_obj, tr_viol, tr_act, tr_outer,
             ev_it, ev_kind, ev_val, hctl, hval):
     """Run SMO iterations on the active positions until a stop or pause condition.
 
@@ -983,7 +1075,8 @@ def smo_run(F, beta, lo, hi, diag, ysign, status, perm,
     older layouts (see :func:`_fetch`); ext_row: a row supplied by the driver for an
     external kernel.  XK (d, n),
     sq (n,): data for kernel rows.  acc, ibuf, bm: work buffers.  istate / fstate: counters
-    and scalars (IS_* / FS_* slots).  tr_*: trace columns, ev_*: event columns.
+    and scalars (IS_* / FS_* slots).  tr_*: trace columns (tr_outer: each iteration is its
+    own outer iteration), ev_*: event columns.
     Returns a RUN_* code; on every return F is up to date with beta.
     """
     a = istate[IS_ACTIVE]
@@ -991,7 +1084,6 @@ def smo_run(F, beta, lo, hi, diag, ysign, status, perm,
     stop_at = istate[IS_STOP_AT]
     shrink_at = istate[IS_SHRINK_AT]
     level = istate[IS_LEVEL]
-    sample = istate[IS_SAMPLE]
     second = istate[IS_SECOND_ORDER] == 1
     unit_diag = istate[IS_UNIT_DIAG] == 1
     stall_window = istate[IS_STALL_WINDOW]
@@ -1061,72 +1153,16 @@ def smo_run(F, beta, lo, hi, diag, ysign, status, perm,
             ok, Ki, ref_i = _fetch(i, a, perm, gram, rowslot, cache, slot_of, slot_owner,
                                    lru_prev, lru_next, slot_stamp, slot_ver, vmaps, ext_row, XK,
                                    sq, acc, ibuf, istate, fstate, it, hctl)
-        # two-variable subproblem along βᵢ += s, βⱼ −= s (Platt 1998; Fan, Chen & Lin
-        # 2005, eq. 15): unconstrained minimiser s = bᵢⱼ/aᵢⱼ, clipped to the box
-        kij = Ki[j]
-        b = m - F[j]
-        aij = (diag[i] + diag[j]) - 2.0 * kij
-        event = False
-        if aij <= 0.0:
-            ev = istate[IS_EVENTS]
-            ev_it[ev] = it + 1
-            ev_kind[ev] = EV_CURVATURE
-            ev_val[ev] = aij
-            istate[IS_EVENTS] = ev + 1
-            istate[IS_CURV_FIXES] += 1
-            event = True
-            s = b / tau
-        else:
-            s = b / aij
-        bi_old = beta[i]
-        bj_old = beta[j]
-        cap_i = hi[i] - bi_old
-        cap_j = bj_old - lo[j]
-        if s >= cap_i or s >= cap_j:
-            if cap_i <= cap_j:
-                s = cap_i
-                bi_new = hi[i]
-                bj_new = lo[j] if cap_i == cap_j else bj_old - s
-            else:
-                s = cap_j
-                bj_new = lo[j]
-                bi_new = bi_old + s
-        else:
-            bi_new = bi_old + s
-            bj_new = bj_old - s
-        di = bi_new - bi_old
-        dj = bj_new - bj_old
-        beta[i] = bi_new
-        beta[j] = bj_new
-        status[i] = (UP if bi_new < hi[i] else 0) | (LOW if bi_new > lo[i] else 0)
-        status[j] = (UP if bj_new < hi[j] else 0) | (LOW if bj_new > lo[j] else 0)
-        # exact change of ½βᵀKβ + qᵀβ for the two-variable step: gᵀd + ½dᵀKd, g = −F
-        dual_value += -(F[i] * di + F[j] * dj) + 0.5 * (diag[i] * di * di
-                                                        + diag[j] * dj * dj
-                                                        + 2.0 * kij * di * dj)
+        di, dj, bi_new, bj_new, change, event = pair_step(
+            i, j, m - F[j], Ki[j], F[i], F[j], beta, lo, hi, diag, status, tau, it, istate,
+            ev_it, ev_kind, ev_val)
+        dual_value += change
         pending = True
         it += 1
-        if level != 2:
-            if level == 0 or it % sample == 0 or event or istate[IS_FORCE_ROW] == 1:
-                r = istate[IS_ROWS]
-                tr_it[r] = it
-                tr_i[r] = perm[i]
-                tr_j[r] = perm[j]
-                tr_ai[r] = ysign[i] * bi_new
-                tr_aj[r] = ysign[j] * bj_new
-                tr_step[r] = ysign[i] * di
-                tr_obj[r] = dual_value
-                tr_viol[r] = viol
-                tr_act[r] = a
-                istate[IS_ROWS] = r + 1
-                istate[IS_FORCE_ROW] = 0
-        if not (abs(dual_value) < np.inf):
-            ret = RUN_NUMERICAL
-        elif dual_value < fstate[FS_BEST_OBJ] - 1e-15 * max(1.0, abs(fstate[FS_BEST_OBJ])):
-            fstate[FS_BEST_OBJ] = dual_value
-            istate[IS_LAST_IMPROVE] = it
-        elif it - istate[IS_LAST_IMPROVE] >= stall_window:
-            ret = RUN_STALLED
+        record_step(it, i, j, bi_new, bj_new, di, dual_value, viol, a, it, event, perm, ysign,
+                    istate, tr_it, tr_i, tr_j, tr_ai, tr_aj, tr_step, tr_obj, tr_viol, tr_act,
+                    tr_outer)
+        ret = progress_code(dual_value, it, stall_window, istate, fstate)
         phase = 0
     # on every exit F matches beta (a pending update was applied by pass_up)
     helper_stop(hctl)

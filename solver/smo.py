@@ -755,7 +755,7 @@ class _Engine:
             self.ext_row, self.XK, self.sq,
             self.acc, self.ibuf, self.bm, self.istate, self.fstate,
             tr["iteration"], tr["i"], tr["j"], tr["alpha_i"], tr["alpha_j"], tr["step"],
-            tr["objective"], tr["violation"], tr["active"],
+            tr["objective"], tr["violation"], tr["active"], tr["outer"],
             ev["iteration"], ev["kind"], ev["value"], self.hctl, self.hval))
 
 
@@ -1171,8 +1171,6 @@ def _run_phase(problem: DualProblem, alpha: np.ndarray, dtype: np.dtype, cfg: di
     rows, evs = int(ist[_k.IS_ROWS]), int(ist[_k.IS_EVENTS])
     columns = {name: eng.tr[name][:rows].copy() for name, _ in _TRACE_COLUMNS}
     events = {name: eng.ev[name][:evs].copy() for name in ("iteration", "kind", "value")}
-    if not eng.block:  # a pair step is an outer iteration of its own
-        columns["outer"] = columns["iteration"].copy()
     columns["iteration"] += first_iteration
     events["iteration"] += first_iteration
     extra = {
