@@ -153,8 +153,20 @@ def numeric_column(values: Any, column: str, where: Where, prefix: str) -> np.nd
     return numeric_block(arr.reshape(-1, 1), [column], where, prefix)[:, 0]
 
 
+#: a column of plain numerals (spaces or tabs around them), one per line
+_NUMERAL_LINES = re.compile(r"(?:[ \t]*" + NUMERAL.pattern + r"[ \t]*\n)*[ \t]*"
+                            + NUMERAL.pattern + r"[ \t]*")
+
+
 def column_reads_fast(cells: Sequence[str]) -> bool:
-    """True when every text cell is a plain ASCII numeral (no diagnosis needed)."""
+    """True when every text cell is a plain ASCII numeral (no diagnosis needed).
+
+    One match over the column's cells joined by newlines first (cells that hold a newline
+    themselves fail its count); when that fails, each cell stripped of any whitespace."""
+    if cells:
+        joined = "\n".join(cells)
+        if joined.count("\n") == len(cells) - 1 and _NUMERAL_LINES.fullmatch(joined):
+            return True
     match = NUMERAL.fullmatch
     return all(match(c.strip()) for c in cells)
 

@@ -19,7 +19,8 @@ import numpy as np
 if TYPE_CHECKING:  # pragma: no cover
     from .problem import DualProblem
 
-__all__ = ["kernel_code", "compiled_q_times", "COMPILED_MIN_ENTRIES"]
+__all__ = ["kernel_code", "compiled_q_times", "compiled_values", "use_compiled",
+           "COMPILED_MIN_ENTRIES"]
 
 #: n · |S| from which :meth:`DualProblem.q_times` uses the compiled product (below it the
 #: numpy blocks cost less than loading the compiled code).
@@ -65,8 +66,33 @@ def compiled_q_times(problem: DualProblem, v: np.ndarray) -> np.ndarray | None:
     return problem.y * (-F)  # F = −Kβ here (q = 0)
 
 
+def compiled_values(kernel: Any, Z: np.ndarray, points: np.ndarray,
+                    coef: np.ndarray) -> np.ndarray | None:
+    """Σ_s coef[s] K(z_i, points[s]) (m,) for rows z_i of ``Z`` (m, d) by the compiled
+    kernel, or None when the kernel is not a built-in one."""
+    from . import _smo_kernels as _k
+
+    code, gamma, offset, degree = kernel_code(kernel)
+    if code == _k.KERNEL_EXTERNAL:
+        return None
+    m = Z.shape[0]
+    XK = np.array(np.asarray(Z, dtype=np.float64).T, order="C")
+    XV = np.array(np.asarray(points, dtype=np.float64).T, order="C")
+    sq, sqv = np.zeros(m), np.zeros(XV.shape[1])
+    _k.self_dots(XK, sq)
+    _k.self_dots(XV, sqv)
+    F = np.zeros(m)
+    pos = np.arange(m, dtype=np.int64)
+    _k.reconstruct(XK, sq, pos, pos, XV, sqv, np.ascontiguousarray(coef, dtype=np.float64),
+                   np.zeros(m), F, code, gamma, offset, degree, np.zeros((4, _k.CHUNK)),
+                   np.zeros(_k.CHUNK, dtype=np.int64))
+    return -F  # F = −q − Σ coef K with q = 0
+
+
 def use_compiled(n: int, support: int) -> bool:
-    """True when a product of n rows over ``support`` columns should be compiled."""
+    """True when a product of n rows over ``support`` columns should be compiled.  By size
+    only, so that every process computes the same product the same way (the two ways
+    differ in the last bits)."""
     import os
 
     if os.environ.get("NUMBA_DISABLE_JIT", "0") not in ("", "0"):

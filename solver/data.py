@@ -209,8 +209,15 @@ def fingerprint(dataset: Dataset) -> str:
         part((np.ascontiguousarray(labels, dtype="<f8") + 0.0).tobytes())
     else:
         h.update(len(labels).to_bytes(8, "little"))
+        framed: dict[Any, bytes] = {}  # each distinct label's length prefix and UTF-8 once
+        chunks = []
         for v in labels.tolist():
-            part(str(v).encode("utf-8"))
+            b = framed.get(v)
+            if b is None:
+                e = str(v).encode("utf-8")
+                b = framed[v] = len(e).to_bytes(8, "little") + e
+            chunks.append(b)
+        h.update(b"".join(chunks))  # the same bytes as one part per label
     return h.hexdigest()
 
 
@@ -539,7 +546,7 @@ def _read_csv(
     for j, c in enumerate(chosen):
         raw = [r[col[c]] for r in rows]
         if column_reads_fast(raw):
-            X[:, j] = np.array(raw, dtype=str).astype(np.float64)
+            X[:, j] = np.fromiter(map(float, raw), dtype=np.float64, count=len(raw))
             if np.all(np.isfinite(X[:, j])):
                 continue  # else a numeral beyond the float64 range: diagnosed below
         slow.append(j)

@@ -93,7 +93,13 @@ class Model:
         self, X: np.ndarray, *, standardised: bool = False, block_rows: int = 4096
     ) -> np.ndarray:
         """Decision values f(x) for rows of ``X`` (m, d) in raw units (unless ``standardised``)."""
+        from ._products import compiled_values, use_compiled
+
         Z = np.asarray(X, dtype=np.float64) if standardised else self.standardiser.transform(X)
+        if use_compiled(Z.shape[0], self.support_points.shape[0]):
+            fast = compiled_values(self.kernel, Z, self.support_points, self.coefficients)
+            if fast is not None:
+                return fast + self.bias
         out = np.empty(Z.shape[0])
         for s in range(0, Z.shape[0], block_rows):
             e = min(Z.shape[0], s + block_rows)

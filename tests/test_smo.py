@@ -231,7 +231,7 @@ def test_numerical_error_status(rng):
 
 
 def test_kernel_modes_give_identical_runs(problem):
-    full = solve_smo(problem, kkt_tol=1e-5)
+    full = solve_smo(problem, kkt_tol=1e-5, kernel_memory_mb=1e4)
     cached = solve_smo(problem, kkt_tol=1e-5, kernel_memory_mb=0.01, row_cache_mb=0.02)
     assert full.extra["kernel_mode"] == "full_gram"
     assert cached.extra["kernel_mode"] == "column_cache"

@@ -95,7 +95,7 @@ def test_iterates_feasible_objective_monotone_certificate(prob, kkt_tol, selecti
 @SETTINGS
 @given(prob=duals())
 def test_deterministic_and_mode_independent(prob):
-    a = solve_smo(prob, kkt_tol=1e-6, iteration_limit=20000)
+    a = solve_smo(prob, kkt_tol=1e-6, iteration_limit=20000, kernel_memory_mb=1e4)
     b = solve_smo(prob, kkt_tol=1e-6, iteration_limit=20000, kernel_memory_mb=1e-6,
                   row_cache_mb=1e-6)
     assert a.extra["kernel_mode"] == "full_gram" and b.extra["kernel_mode"] == "column_cache"

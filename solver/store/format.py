@@ -15,6 +15,7 @@ import math
 import re
 import secrets
 import zipfile
+import zlib
 from collections.abc import Mapping
 from datetime import datetime, timezone
 from typing import TYPE_CHECKING, Any
@@ -60,6 +61,8 @@ ZSTD_LEVEL = 3
 
 _NPZ_DATE = (1980, 1, 1, 0, 0, 0)  # fixed zip member timestamp: same arrays → same bytes
 _ALLOWED_KINDS = "biuf"  # bool, signed, unsigned, float: nothing that needs pickle
+_NPZ_SAMPLE = 8192  # bytes of a float member deflated to decide whether to deflate it
+_NPZ_STORE_RATIO = 0.9  # ... stored as is when the sample deflates to more than this share
 
 
 def new_run_id(now: datetime | None = None) -> str:
@@ -189,17 +192,30 @@ def parse_json(data: bytes, fname: str) -> Any:
 # ----------------------------------------------------------------------------- npz
 
 def write_npz(arrays: Mapping[str, np.ndarray]) -> bytes:
-    """``.npz`` bytes (zip, deflated) holding ``arrays``; deterministic for equal arrays."""
+    """``.npz`` bytes (zip) holding ``arrays``; deterministic for equal arrays.
+
+    A member is deflated (level 1) unless it is a float array of more than
+    :data:`_NPZ_SAMPLE` bytes whose first :data:`_NPZ_SAMPLE` bytes deflate to more than
+    :data:`_NPZ_STORE_RATIO` of their size: such members (data rows, multipliers of many
+    support vectors) are stored as they are, because deflating them saves a few per cent at
+    ~25 MB/s on the machines measured.  Both are plain zip members that any zip reader opens.
+    """
     buf = io.BytesIO()
-    with zipfile.ZipFile(buf, "w", compression=zipfile.ZIP_DEFLATED, compresslevel=1) as zf:
+    with zipfile.ZipFile(buf, "w") as zf:
         for name, arr in arrays.items():
             arr = np.asarray(arr)
             if arr.dtype.kind not in _ALLOWED_KINDS:
                 raise InvalidInputError(f"array {name!r} has dtype {arr.dtype}; numbers only")
+            member = io.BytesIO()
+            np.lib.format.write_array(member, np.ascontiguousarray(arr), allow_pickle=False)
+            data = member.getvalue()
             info = zipfile.ZipInfo(name + ".npy", date_time=_NPZ_DATE)
-            info.compress_type = zipfile.ZIP_DEFLATED
-            with zf.open(info, "w", force_zip64=True) as fh:
-                np.lib.format.write_array(fh, np.ascontiguousarray(arr), allow_pickle=False)
+            stored = (arr.dtype.kind == "f" and len(data) > _NPZ_SAMPLE
+                      and len(zlib.compress(data[:_NPZ_SAMPLE], 1))
+                      > _NPZ_STORE_RATIO * _NPZ_SAMPLE)
+            zf.writestr(info, data,
+                        compress_type=zipfile.ZIP_STORED if stored else zipfile.ZIP_DEFLATED,
+                        compresslevel=None if stored else 1)
     return buf.getvalue()
 
 

@@ -57,7 +57,7 @@ columns: svc s / smo s = wall seconds end to end; cpu = CPU seconds (user + syst
   time with full trace vs trace off, minus 1 (best of two each, in one warmed process);
   peak MB = peak resident memory of the kktrace process (Python, numpy, scikit-learn and
   data included); limit = 1.25*8n^2 bytes + 400 MB; mode = kernel access chosen by default
-  (full_gram up to solver.smo.DEFAULT_GRAM_MB, else column_cache)."""
+  (column_cache unless solver.smo.DEFAULT_GRAM_MB allows the full Gram)."""
 
 
 def _data(n: int) -> tuple[np.ndarray, np.ndarray]:

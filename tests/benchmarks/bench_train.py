@@ -5,7 +5,8 @@ Not a unit test: it prints figures (issue 15).  Problem: scikit-learn's
 random_state=0)``, standardised, written to CSV; RBF kernel, gamma 0.05, tolerance 1e-3;
 n ∈ {2000, 5000, 10000, 20000, 50000} × C ∈ {1, 100}, plus n = 100 000 at C = 1.
 
-Each measured command runs in a fresh process, one at a time, alternating kktrace and the
+kktrace's sources are byte-compiled first (as an install does).  Each measured command runs
+in a fresh process, one at a time, alternating kktrace and the
 reference, best of ``--repeat`` (3 by default; one fit each above n = 20000).  The
 reference process reads the same CSV with numpy and fits scikit-learn's SVC with the same
 settings and the library's default cache, as a user would.  kktrace runs with its default
@@ -84,7 +85,7 @@ def _kktrace(path: str, C: float, store: str, env: dict[str, str]) -> dict[str, 
     summary = json.loads(str(got.pop("stdout")))
     got["status"] = summary.get("status")
     got["iterations"] = summary.get("iterations")
-    for key in ("solve_seconds", "compile_seconds", "setup_seconds"):
+    for key in ("solve_seconds", "compile_seconds", "setup_seconds", "phase_seconds"):
         got[key] = summary.get(key)
     return got
 
@@ -112,6 +113,10 @@ def main() -> None:
     print("columns: wall / cpu s = whole process (fresh, best of the repeats); peak MB = peak "
           "resident memory; ratio = reference / kktrace (> 1: kktrace faster); solve / "
           "compile / setup = kktrace's own figures from train --json")
+    # kktrace's bytecode, as an install writes it (pip compiles on install; this checkout
+    # may run with PYTHONDONTWRITEBYTECODE, and the reference's libraries are installed)
+    subprocess.run([sys.executable, "-m", "compileall", "-q", env["PYTHONPATH"].split(
+        os.pathsep)[0] + os.sep + "solver"], check=True, env=env)
     with tempfile.TemporaryDirectory() as tmp:
         warm = _problem(2000, tmp)
         _kktrace(warm, 1.0, os.path.join(tmp, "warm"), env)  # compiled code onto disk
@@ -133,6 +138,10 @@ def main() -> None:
                 line += (f"  reference wall {t['wall']:7.2f} cpu {t['cpu']:7.2f} peak "
                          f"{t['peak_mb']:6.0f} MB  ratio wall {t['wall'] / k['wall']:.2f} "
                          f"cpu {t['cpu'] / k['cpu']:.2f}")
+            phases = k.get("phase_seconds") or {}
+            if phases:
+                line += "\n        phases (s): " + ", ".join(
+                    f"{name} {sec:.2f}" for name, sec in phases.items())
             print(line, flush=True)
 
 

@@ -1,0 +1,165 @@
+"""The cheaper paths of the pipeline give the same values as the plain ones.
+
+Each change that made a study's fit or ``kktrace train`` cheaper (issues 15 and 20) is
+checked here against the straightforward computation it replaced: npz members stored
+without deflating, the fingerprint of text labels framed once per distinct label, the
+column-at-once numeral check and parse of CSV cells, decision values by the compiled
+kernel, and the row-cache mapping a process keeps between solves.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import io
+import json
+import zipfile
+
+import numpy as np
+import pytest
+from sklearn.datasets import load_breast_cancer
+from sklearn.metrics.pairwise import polynomial_kernel, rbf_kernel
+
+import solver
+import solver.smo as smo
+from solver._intake import NUMERAL, column_reads_fast
+from solver._products import COMPILED_MIN_ENTRIES, compiled_values
+from solver.data import FINGERPRINT_VERSION, fingerprint, load_table
+from solver.kernels import LinearKernel, PolynomialKernel, RBFKernel, SigmoidKernel
+from solver.model import Standardiser, model_from_solution
+from solver.problem import binary_classification
+from solver.store.format import read_npz, write_npz
+
+
+def test_npz_stores_noise_plainly_and_deflates_repeats():
+    rng = np.random.default_rng(0)
+    arrays = {"noise": rng.normal(size=5000), "zeros": np.zeros(5000),
+              "flags": rng.random(5000) > 0.5, "small": rng.normal(size=10)}
+    data = write_npz(arrays)
+    kinds = {i.filename: i.compress_type for i in zipfile.ZipFile(io.BytesIO(data)).infolist()}
+    assert kinds == {"noise.npy": zipfile.ZIP_STORED, "zeros.npy": zipfile.ZIP_DEFLATED,
+                     "flags.npy": zipfile.ZIP_DEFLATED, "small.npy": zipfile.ZIP_DEFLATED}
+    back = read_npz(data, "x.npz")
+    assert all(np.array_equal(back[k], v) and back[k].dtype == v.dtype
+               for k, v in arrays.items())
+    assert write_npz(arrays) == data  # deterministic
+    with np.load(io.BytesIO(data), allow_pickle=False) as z:  # numpy's own reader agrees
+        assert np.array_equal(z["noise"], arrays["noise"])
+    # the deflated members are small: zeros shrink by far more than 10x
+    sizes = {i.filename: i.compress_size for i in zipfile.ZipFile(io.BytesIO(data)).infolist()}
+    assert sizes["zeros.npy"] * 10 < 5000 * 8
+
+
+def _fingerprint_by_definition(ds) -> str:
+    """The encoding written out in solver.data.fingerprint's docstring, one part per label."""
+    h = hashlib.sha256()
+
+    def part(b: bytes) -> None:
+        h.update(len(b).to_bytes(8, "little"))
+        h.update(b)
+
+    header = {"version": FINGERPRINT_VERSION, "n_rows": ds.n_rows,
+              "n_features": ds.n_features, "feature_names": list(ds.feature_names),
+              "label_name": ds.label_name, "x_dtype": "float64", "label_kind": "str"}
+    part(json.dumps(header, sort_keys=True, ensure_ascii=False, separators=(",", ":")).encode())
+    part((np.ascontiguousarray(ds.X, dtype="<f8") + 0.0).tobytes())
+    h.update(len(ds.labels).to_bytes(8, "little"))
+    for v in ds.labels.tolist():
+        part(str(v).encode("utf-8"))
+    return h.hexdigest()
+
+
+def test_fingerprint_of_text_labels_follows_its_definition():
+    rng = np.random.default_rng(3)
+    labels = rng.choice(["pass", "fail", "rework", "Prüfung"], size=400)
+    ds = solver.from_arrays(rng.normal(size=(400, 3)), labels, label_name="qc")
+    assert ds.labels.dtype.kind not in "iuf"  # text labels
+    assert fingerprint(ds) == _fingerprint_by_definition(ds)
+
+
+@pytest.mark.parametrize("cells, fast", [
+    (["1", "-2.5", " 3e4\t", "+.5", "7."], True),
+    (["1", "x"], False),
+    (["1\n2", "3"], False),            # a cell holding a newline is not two numerals
+    (["\u00a01", "2"], True),          # other whitespace: the per-cell check decides
+    (["1,5", "2"], False),
+    (["nan", "1"], False),
+    ([], True),
+])
+def test_column_check_agrees_with_the_per_cell_rule(cells, fast):
+    assert column_reads_fast(cells) is fast
+    assert fast == all(NUMERAL.fullmatch(c.strip()) for c in cells)
+
+
+def test_csv_numbers_parse_to_the_same_bits_as_numpy(tmp_path):
+    rng = np.random.default_rng(5)
+    X = rng.normal(size=(300, 3)) * 10.0 ** rng.integers(-30, 30, size=(300, 3))
+    lines = ["a,b,c,label"] + [f"{float(x[0])!r}, {x[1]:.17e},{x[2]:.6g},{'ab'[i % 2]}"
+                               for i, x in enumerate(X)]
+    path = tmp_path / "t.csv"
+    path.write_text("\n".join(lines) + "\n")
+    ds = load_table(path, label="label")
+    want = np.array([[float(c) for c in ln.split(",")[:3]] for ln in lines[1:]])
+    assert np.array_equal(ds.X, want)
+    assert np.array_equal(ds.X, np.array([[c.strip() for c in ln.split(",")[:3]]
+                                          for ln in lines[1:]]).astype(np.float64))
+
+
+@pytest.mark.parametrize("kernel, reference", [
+    (RBFKernel(gamma=0.03), lambda A, B: rbf_kernel(A, B, gamma=0.03)),
+    (PolynomialKernel(gamma=0.05, degree=3, offset=1.0),
+     lambda A, B: polynomial_kernel(A, B, degree=3, gamma=0.05, coef0=1.0)),
+    (LinearKernel(), lambda A, B: A @ B.T),
+    (SigmoidKernel(gamma=0.01, offset=0.2), lambda A, B: np.tanh(0.01 * A @ B.T + 0.2)),
+])
+def test_compiled_decision_values_match_scikit_learn_kernels(kernel, reference):
+    # outside reference: scikit-learn's pairwise kernels on its bundled breast-cancer data
+    X = load_breast_cancer().data
+    Z = (X - X.mean(axis=0)) / X.std(axis=0)
+    rng = np.random.default_rng(1)
+    coef = rng.normal(size=200)
+    got = compiled_values(kernel, Z[200:], Z[:200], coef)
+    want = reference(Z[200:], Z[:200]) @ coef
+    assert np.max(np.abs(got - want)) <= 1e-12 * max(1.0, np.max(np.abs(want)))
+
+
+def test_model_values_take_the_compiled_path_and_agree_with_the_blocks():
+    X = load_breast_cancer().data
+    y = load_breast_cancer().target
+    std = Standardiser.fit(X)
+    prob = binary_classification(std.transform(X), np.where(y > 0, "benign", "malignant"),
+                                 kernel=RBFKernel(gamma=0.02), C=3.0)
+    res = smo.solve_smo(prob, kkt_tol=1e-4)
+    model = model_from_solution(prob, res, std)
+    Xbig = np.tile(X, (-(-COMPILED_MIN_ENTRIES // (X.shape[0] * model.support_points.shape[0])), 1))
+    assert model.support_points.shape[0] * Xbig.shape[0] >= COMPILED_MIN_ENTRIES
+    fast = model.values(Xbig)[: X.shape[0]]
+    blocks = np.concatenate([model.kernel.block(std.transform(X[s:s + 100]),
+                                                model.support_points) @ model.coefficients
+                             for s in range(0, X.shape[0], 100)]) + model.bias
+    assert np.max(np.abs(fast - blocks)) <= 1e-12 * np.max(np.abs(blocks))
+
+
+def _blobs(n: int, seed: int):
+    rng = np.random.default_rng(seed)
+    X = rng.normal(size=(n, 4))
+    lab = np.where(X[:, 0] + 0.3 * X[:, 1] ** 2 + rng.normal(scale=0.5, size=n) > 0, "a", "b")
+    return X, lab
+
+
+def test_a_reused_row_cache_mapping_gives_the_bits_of_a_fresh_one():
+    # rows above 4 MB go on their own mapping; after a solve it is kept for the next one
+    X, lab = _blobs(1500, 0)
+    prob = binary_classification(X, lab, kernel=RBFKernel(gamma=0.2), C=5.0)
+    smo._SPARE.clear()
+    first = smo.solve_smo(prob, kkt_tol=1e-4, threads=1)
+    assert len(smo._SPARE) == 1
+    # dirty the kept mapping: a solve that read a row slot before writing it would differ
+    spare = np.frombuffer(smo._SPARE[0], dtype=np.float64)
+    spare[: 8 << 20 >> 3] = np.nan
+    del spare
+    other = binary_classification(*_blobs(900, 1), kernel=RBFKernel(gamma=1.0), C=1.0)
+    smo.solve_smo(other, kkt_tol=1e-4, threads=1)  # uses and returns the same mapping
+    again = smo.solve_smo(prob, kkt_tol=1e-4, threads=1)
+    assert np.array_equal(first.alpha, again.alpha) and first.bias == again.bias
+    assert np.array_equal(first.trace.columns["i"], again.trace.columns["i"])
+    assert first.iterations == again.iterations
