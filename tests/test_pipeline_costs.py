@@ -163,3 +163,19 @@ def test_a_reused_row_cache_mapping_gives_the_bits_of_a_fresh_one():
     assert np.array_equal(first.alpha, again.alpha) and first.bias == again.bias
     assert np.array_equal(first.trace.columns["i"], again.trace.columns["i"])
     assert first.iterations == again.iterations
+
+
+def test_products_split_over_two_threads_give_the_bits_of_one(monkeypatch):
+    import solver._products as products
+
+    if min(smo.available_cores(), smo._threads_from_environment()) < 2:
+        pytest.skip("one core or KKTRACE_THREADS=1: the product is not split")
+    X, lab = _blobs(3001, 4)
+    prob = binary_classification(X, lab, kernel=RBFKernel(gamma=0.3), C=2.0)
+    v = np.where(np.arange(3001) % 3 == 0, np.linspace(0.0, 2.0, 3001), 0.0)
+    monkeypatch.setattr(products, "SPLIT_MIN_ENTRIES", 1 << 40)
+    one = products.compiled_q_times(prob, v)
+    ones = compiled_values(prob.kernel, X[:1001], X[1001:], v[1001:])
+    monkeypatch.setattr(products, "SPLIT_MIN_ENTRIES", 1)
+    assert np.array_equal(products.compiled_q_times(prob, v), one)
+    assert np.array_equal(compiled_values(prob.kernel, X[:1001], X[1001:], v[1001:]), ones)

@@ -460,3 +460,44 @@ def test_a_multiclass_study_stores_one_vs_one_fits_and_verifies(tmp_path):
     again = study(ds, C=[1.0, 10.0], gamma=[0.05], folds=3, seed=0, scheduler="sequential",
                   store=tmp_path)
     assert again.reused == 6 and again.fitted == 0
+
+
+# ----------------------------------------------------------------------------- closing
+
+
+class _Slow:
+    """A client or cluster stand-in whose close takes a while (or fails)."""
+
+    def __init__(self, log: list, name: str, fail: bool = False) -> None:
+        self.log, self.name, self.fail = log, name, fail
+
+    def close(self) -> None:
+        time.sleep(0.3)
+        self.log.append(self.name)
+        if self.fail:
+            raise OSError("cluster would not stop")
+
+
+def test_a_session_closed_later_stops_while_the_caller_works_and_close_waits():
+    from solver.studies.execute import StudySession
+
+    log: list = []
+    with StudySession(None, where="local",
+                      connected=(_Slow(log, "client"), _Slow(log, "cluster"), None)) as s:
+        s.close_later()
+    assert log == []  # leaving the block did not wait for the close
+    s.close()
+    assert log == ["client", "cluster"]
+    s.close()  # idempotent
+    assert log == ["client", "cluster"]
+
+
+def test_a_failed_background_close_is_raised_by_close():
+    from solver.studies.execute import StudySession
+
+    log: list = []
+    s = StudySession(None, where="local",
+                     connected=(_Slow(log, "client"), _Slow(log, "cluster", fail=True), None))
+    s.close_later()
+    with pytest.raises(OSError, match="would not stop"):
+        s.close()

@@ -76,6 +76,8 @@ class StudySession:
         self.shared: Any = None
         self.scatters = 0
         self.execution: Execution | None = None
+        self._closing: Any = None
+        self._close_error: BaseException | None = None
         if where == "sequential":
             self.execution = Execution("sequential", 1, "asked for: in this process, one "
                                        "job after the other")
@@ -84,10 +86,36 @@ class StudySession:
         return self
 
     def __exit__(self, *exc: Any) -> None:
-        self.close()
+        if self._closing is None or exc[0] is not None:
+            self.close()
+
+    def close_later(self) -> None:
+        """Start closing the client and the cluster in a thread, so that the caller can
+        write its results meanwhile (a cluster takes ~0.6 s to stop); :meth:`close` waits
+        for it.  Leaving the ``with`` block without an error does not wait."""
+        import threading
+
+        def run() -> None:
+            try:
+                self._close_now()
+            except BaseException as exc:  # noqa: BLE001 - raised again by close()
+                self._close_error = exc
+
+        if self.connected is not None and self._closing is None:
+            self._closing = threading.Thread(target=run, name="kktrace-close")
+            self._closing.start()
 
     def close(self) -> None:
-        """Close the client and the cluster this session started (idempotent)."""
+        """Close the client and the cluster this session started (idempotent); waits for a
+        close begun by :meth:`close_later`."""
+        if self._closing is not None:
+            self._closing.join()
+            if self._close_error is not None:
+                err, self._close_error = self._close_error, None
+                raise err
+        self._close_now()
+
+    def _close_now(self) -> None:
         if self.connected is not None:
             client, cluster, _ = self.connected
             self.connected = None

@@ -471,6 +471,7 @@ def study(
                                      "data_scattered": session.scatters}
             if not stab["permutations_same_optimum"]:
                 notes.append(stab["permutation_verdict"])
+        session.close_later()  # the cluster stops while the study record is written
     if session.execution is not None and isinstance(execution, dict) and todo:
         execution["data_scattered"] = session.scatters
     for r in rows:
@@ -482,6 +483,7 @@ def study(
     sid = run_store.save_parent(parent)
     if out_table is not None:
         write_parquet(rows, cells, out_table)
+    session.close()
     return StudyOutcome(study_id=sid, grid=grid, rows=tuple(rows), cells=tuple(cells),
                         choice=choice, reused=reused, fitted=state["fitted"],
                         execution=execution, store=Path(run_store.root),
