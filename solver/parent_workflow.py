@@ -197,11 +197,12 @@ class ParentPointTable:
 
     def write_parquet(self, path: Any) -> Any:
         """Write the table as Parquet; returns the path."""
-        import pyarrow as pa
         import pyarrow.parquet as pq
 
+        from .store.format import arrow_table
+
         cols = {c: (v.tolist() if v.dtype == object else v) for c, v in self.columns.items()}
-        pq.write_table(pa.table(cols), str(path))
+        pq.write_table(arrow_table(cols), str(path))
         return path
 
 

@@ -179,3 +179,25 @@ def test_products_split_over_two_threads_give_the_bits_of_one(monkeypatch):
     monkeypatch.setattr(products, "SPLIT_MIN_ENTRIES", 1)
     assert np.array_equal(products.compiled_q_times(prob, v), one)
     assert np.array_equal(compiled_values(prob.kernel, X[:1001], X[1001:], v[1001:]), ones)
+
+
+def test_arrow_tables_are_those_pyarrow_infers_and_need_no_pandas():
+    import subprocess
+    import sys
+
+    import pyarrow as pa
+
+    from solver.store.format import arrow_table
+
+    cols = {"i": [1, 2, None], "f": [1.0, None, 2], "b": [True, None, False],
+            "s": ["a", None, "Prüfung"], "none": [None, None, None],
+            "npf": np.array([1.5, 2.5, 3.5]), "npi": np.array([1, 2, 3]),
+            "npu": np.array(["x", "yy", "z"]), "npb": np.array([True, False, True])}
+    got, want = arrow_table(cols), pa.table(cols)  # outside reference: pyarrow's inference
+    assert got.schema == want.schema and got.equals(want)
+    code = ("import sys; from solver.store.format import arrow_table; "
+            "arrow_table({'a': [1, None], 'b': ['x', 'y'], 'c': [0.5, 1.5]}); "
+            "print('pandas' in sys.modules)")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         check=True)
+    assert out.stdout.strip() == "False"

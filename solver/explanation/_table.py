@@ -162,17 +162,16 @@ class PointTable:
 
     def write_parquet(self, path: str | os.PathLike[str]) -> Path:
         """Write a Parquet file (one column per table column, metadata key ``kktrace``); atomic."""
-        import pyarrow as pa
         import pyarrow.parquet as pq
 
+        from ..store.format import arrow_table
+
         cols = self.to_columns()
-        arrays = {}
-        for c in COLUMNS:
-            v = cols[c]
-            arrays[c] = pa.array(v.tolist() if v.dtype.kind in "OU" else v)
+        arrays = {c: cols[c].tolist() if cols[c].dtype.kind in "OU" else cols[c]
+                  for c in COLUMNS}
         meta = {"bias": self.bias, "kkt_tol": self.kkt_tol, "status": self.status,
                 "trace_level": self.trace_level, "categories": CATEGORIES}
-        table = pa.table(arrays).replace_schema_metadata(
+        table = arrow_table(arrays).replace_schema_metadata(
             {"kktrace": json.dumps(meta, ensure_ascii=False)}
         )
         target = Path(path)

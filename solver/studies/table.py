@@ -152,8 +152,9 @@ def write_parquet(rows: Sequence[Mapping[str, Any]], cells: Sequence[Mapping[str
                   path: Any) -> None:
     """Write the table to ``path`` (Parquet): the per-fit rows with ``level = "fit"``, then
     one row per cell with ``level = "cell"`` (fold = −1, aggregate columns filled)."""
-    import pyarrow as pa
     import pyarrow.parquet as pq
+
+    from ..store.format import arrow_table
 
     keys: list[str] = ["level"]
     for r in [*rows, *cells]:
@@ -163,4 +164,4 @@ def write_parquet(rows: Sequence[Mapping[str, Any]], cells: Sequence[Mapping[str
     data = [{"level": "fit", **r} for r in rows] + [{"level": "cell", "fold": -1, **c}
                                                     for c in cells]
     cols = {k: [d.get(k) for d in data] for k in keys}
-    pq.write_table(pa.table(cols), str(path) if isinstance(path, (str, Path)) else path)
+    pq.write_table(arrow_table(cols), str(path) if isinstance(path, (str, Path)) else path)
