@@ -330,7 +330,8 @@ def arrow_column(values: Any) -> pa.Array:
 
     if isinstance(values, np.ndarray) and values.dtype.kind in "biuf" and values.ndim == 1:
         return _to_arrow(values)
-    items = values.tolist() if isinstance(values, np.ndarray) else list(values)
+    items = values.tolist() if isinstance(values, np.ndarray) else [
+        v.item() if isinstance(v, np.generic) else v for v in values]
     n = len(items)
     valid = np.array([v is not None for v in items], dtype=bool)
     present = [v for v in items if v is not None]
@@ -347,16 +348,16 @@ def arrow_column(values: Any) -> pa.Array:
                                      null_count=nulls)
 
     kinds = {type(v) for v in present}
-    if kinds <= {bool, np.bool_}:
+    if kinds <= {bool}:
         bits = np.packbits(np.array([bool(v) if v is not None else False for v in items]),
                            bitorder="little")
         return pa.Array.from_buffers(pa.bool_(), n, [mask, pa.py_buffer(bits.tobytes())],
                                      null_count=nulls)
-    if kinds <= {int, np.int64, np.int32} and not kinds & {bool, np.bool_}:
+    if kinds <= {int}:
         return numbers(np.int64, pa.int64())
-    if kinds <= {int, float, np.float64, np.int64, np.int32, np.float32}:
+    if kinds <= {int, float}:
         return numbers(np.float64, pa.float64())
-    if kinds <= {str, np.str_}:
+    if kinds <= {str}:
         parts = [v.encode("utf-8") if v is not None else b"" for v in items]
         offsets = np.zeros(n + 1, dtype=np.int32)
         np.cumsum([len(b) for b in parts], out=offsets[1:])
