@@ -87,6 +87,11 @@ def _kktrace(path: str, C: float, store: str, env: dict[str, str]) -> dict[str, 
     got["iterations"] = summary.get("iterations")
     for key in ("solve_seconds", "compile_seconds", "setup_seconds", "phase_seconds"):
         got[key] = summary.get(key)
+    table = os.path.join(str(summary.get("run_dir")), "explanation.parquet")
+    if os.path.exists(table):
+        import pyarrow.parquet as pq
+
+        got["explanation_rows"] = pq.ParquetFile(table).metadata.num_rows
     return got
 
 
@@ -132,7 +137,8 @@ def main() -> None:
             line = (f"n={n:6d} C={C:<5g} kktrace wall {k['wall']:7.2f} cpu {k['cpu']:7.2f} "
                     f"peak {k['peak_mb']:7.0f} MB  [{k['status']}, {k['iterations']} it; "
                     f"solve {k['solve_seconds']:.2f} compile {k['compile_seconds']:.2f} "
-                    f"setup {k['setup_seconds']:.2f}]")
+                    f"setup {k['setup_seconds']:.2f}; explanation table "
+                    f"{k.get('explanation_rows', 'no')} rows]")
             if theirs:
                 t = min(theirs, key=lambda d: d["wall"])
                 line += (f"  reference wall {t['wall']:7.2f} cpu {t['cpu']:7.2f} peak "
