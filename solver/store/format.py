@@ -493,9 +493,16 @@ def write_csv(columns: Mapping[str, np.ndarray]) -> bytes:
     w = csv.writer(buf, lineterminator="\n")
     names = list(columns)
     w.writerow(names)
-    cols = [np.asarray(columns[c]).tolist() for c in names]
-    for row in zip(*cols, strict=True):
-        w.writerow([repr(v) if isinstance(v, float) else v for v in row])
+    cols = []
+    for c in names:
+        arr = np.asarray(columns[c])
+        vals = arr.tolist()
+        if arr.dtype.kind == "f":
+            vals = list(map(repr, vals))
+        elif arr.dtype.kind == "O":
+            vals = [repr(v) if isinstance(v, float) else v for v in vals]
+        cols.append(vals)
+    w.writerows(zip(*cols, strict=True))
     return buf.getvalue().encode()
 
 
