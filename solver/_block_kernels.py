@@ -69,6 +69,7 @@ from ._smo_kernels import (
     pass_up,
     progress_code,
     record_step,
+    tile_dots,
 )
 
 # slots of bstate (int64)
@@ -102,41 +103,13 @@ def block_rows(XK, sq, srcs, refs, nsrc, count, gram, cache, code, gamma, offset
     :func:`solver._smo_kernels.kernel_row_part`, so the rows are bitwise equal to rows
     computed one at a time.
     """
-    d = XK.shape[0]
     step = acc4.shape[1]
     for s in range(0, count, step):
         e = min(count, s + step)
         L = e - s
         for r0 in range(0, nsrc, 4):
             rb = min(4, nsrc - r0)
-            for u in range(rb):
-                au = acc4[u, :L]
-                for t in range(L):
-                    au[t] = 0.0
-            k = 0
-            while k + 4 <= d:
-                v0 = XK[k, s:e]
-                v1 = XK[k + 1, s:e]
-                v2 = XK[k + 2, s:e]
-                v3 = XK[k + 3, s:e]
-                for u in range(rb):
-                    c = srcs[r0 + u]
-                    x0 = XK[k, c]
-                    x1 = XK[k + 1, c]
-                    x2 = XK[k + 2, c]
-                    x3 = XK[k + 3, c]
-                    au = acc4[u, :L]
-                    for t in range(L):
-                        au[t] += (x0 * v0[t] + x1 * v1[t]) + (x2 * v2[t] + x3 * v3[t])
-                k += 4
-            while k < d:
-                vk = XK[k, s:e]
-                for u in range(rb):
-                    xk = XK[k, srcs[r0 + u]]
-                    au = acc4[u, :L]
-                    for t in range(L):
-                        au[t] += xk * vk[t]
-                k += 1
+            tile_dots(XK, srcs, r0, rb, XK, s, e, acc4)
             for u in range(rb):
                 au = acc4[u, :L]
                 _transform(au, sq[srcs[r0 + u]], sq[s:e], code, gamma, offset, degree, ibuf)

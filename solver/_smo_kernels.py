@@ -446,6 +446,43 @@ def fill_rows(XK, sq, rows, gram, rowslot, istate, code, gamma, offset, degree, 
 
 
 @_jit
+def tile_dots(XS, cols, r0, rb, XT, s, e, acc4):
+    """acc4[u, t] = Σ_k XS[k, cols[r0 + u]] · XT[k, s + t] for u < rb, t < e − s: the dot
+    products of up to four source columns of XS with the columns s..e−1 of XT, four
+    features per pass (the order of every sum is fixed, so callers get the same bits)."""
+    d = XS.shape[0]
+    L = e - s
+    for u in range(rb):
+        au = acc4[u, :L]
+        for t in range(L):
+            au[t] = 0.0
+    k = 0
+    while k + 4 <= d:
+        v0 = XT[k, s:e]
+        v1 = XT[k + 1, s:e]
+        v2 = XT[k + 2, s:e]
+        v3 = XT[k + 3, s:e]
+        for u in range(rb):
+            c = cols[r0 + u]
+            x0 = XS[k, c]
+            x1 = XS[k + 1, c]
+            x2 = XS[k + 2, c]
+            x3 = XS[k + 3, c]
+            au = acc4[u, :L]
+            for t in range(L):
+                au[t] += (x0 * v0[t] + x1 * v1[t]) + (x2 * v2[t] + x3 * v3[t])
+        k += 4
+    while k < d:
+        vk = XT[k, s:e]
+        for u in range(rb):
+            xk = XS[k, cols[r0 + u]]
+            au = acc4[u, :L]
+            for t in range(L):
+                au[t] += xk * vk[t]
+        k += 1
+
+
+@_jit
 def reconstruct(XK, sq, targets, out_pos, XV, sqv, coef, q, F, code, gamma, offset, degree,
                 acc4, ibuf):
     """F[p] = −q[p] − Σ_s coef[s] K(x_t, v_s) for the columns t = targets[r] of XK and
@@ -453,7 +490,6 @@ def reconstruct(XK, sq, targets, out_pos, XV, sqv, coef, q, F, code, gamma, offs
     acc4 (4, CHUNK) work buffer.  Rebuilds the gradient from the data (kernel values by
     the arithmetic of :func:`kernel_row`, so every kernel mode gets the same bits); four
     targets share each pass over XV."""
-    d = XK.shape[0]
     m = XV.shape[1]
     nt = targets.shape[0]
     sums = np.zeros(4)
@@ -464,34 +500,7 @@ def reconstruct(XK, sq, targets, out_pos, XV, sqv, coef, q, F, code, gamma, offs
         for s in range(0, m, CHUNK):
             e = min(m, s + CHUNK)
             L = e - s
-            for u in range(rb):
-                au = acc4[u, :L]
-                for t in range(L):
-                    au[t] = 0.0
-            k = 0
-            while k + 4 <= d:
-                r0_ = XV[k, s:e]
-                r1_ = XV[k + 1, s:e]
-                r2_ = XV[k + 2, s:e]
-                r3_ = XV[k + 3, s:e]
-                for u in range(rb):
-                    c = targets[r0 + u]
-                    x0 = XK[k, c]
-                    x1 = XK[k + 1, c]
-                    x2 = XK[k + 2, c]
-                    x3 = XK[k + 3, c]
-                    au = acc4[u, :L]
-                    for t in range(L):
-                        au[t] += (x0 * r0_[t] + x1 * r1_[t]) + (x2 * r2_[t] + x3 * r3_[t])
-                k += 4
-            while k < d:
-                rk = XV[k, s:e]
-                for u in range(rb):
-                    xk = XK[k, targets[r0 + u]]
-                    au = acc4[u, :L]
-                    for t in range(L):
-                        au[t] += xk * rk[t]
-                k += 1
+            tile_dots(XK, targets, r0, rb, XV, s, e, acc4)
             cs = coef[s:e]
             for u in range(rb):
                 au = acc4[u, :L]
