@@ -43,7 +43,11 @@ def _execute(name: str, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> list
     monkeypatch.setenv("JUPYTER_PATH", str(tmp_path / "jupyter"))
     monkeypatch.setenv("MPLBACKEND", "Agg")
     nb = nbformat.read(NOTEBOOKS / name, as_version=4)
+    # iopub_timeout: on a loaded machine a cell's printed output can reach the client after
+    # its execute reply; nbclient then waits this long for it (default 4 s, after which
+    # the output is dropped without an error)
     client = nbclient.NotebookClient(nb, kernel_name="kktrace-test", timeout=600,
+                                     iopub_timeout=60,
                                      resources={"metadata": {"path": str(tmp_path)}})
     client.execute()
     return [o for c in nb.cells if c.cell_type == "code" for o in c.outputs]

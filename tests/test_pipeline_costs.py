@@ -9,6 +9,7 @@ kernel, and the row-cache mapping a process keeps between solves.
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import io
 import json
@@ -201,3 +202,43 @@ def test_arrow_tables_are_those_pyarrow_infers_and_need_no_pandas():
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
                          check=True)
     assert out.stdout.strip() == "False"
+
+
+@pytest.mark.filterwarnings("ignore:feature scales differ")
+def test_a_fold_prepared_once_gives_the_fits_a_fresh_preparation_gives():
+    """A study's worker keeps the per-fold preparation (training subset, standardised rows,
+    fingerprints) for the next cells of the fold; the fits are those of a fresh one."""
+    from solver.studies import fits as F
+    from solver.studies.grid import make_grid
+    from solver.studies.runner import study_folds
+
+    X, y = load_breast_cancer(return_X_y=True)
+    ds = solver.from_arrays(X[:240], np.where(y[:240] == 1, "benign", "malignant"),
+                            label_name="diagnosis")
+    data = F.StudyData(ds, study_folds(ds.labels, 3, 0))
+    opts = {"kernel": "rbf", "offset": 0.0, "kkt_tol": 1e-3, "iteration_limit": None,
+            "trace": "sampled", "standardise": True}
+    cells = make_grid("rbf", [0.5, 2.0], [0.02], None).cells()
+    job = lambda c, k: F.FitJob(task="binary", fold=k, cells=(c,), keys=("key",),  # noqa: E731
+                                warm=False, options=opts)
+
+    def facts(out):  # everything but the seconds the solve took
+        o = out[0]
+        runs = tuple(dataclasses.replace(r, seconds=0.0) for r in o.view.runs)
+        return runs, o.view.attachments["holdout"], json.loads(o.encoded[0].manifest)["data"]
+
+    F._prep.clear()
+    kept = [facts(F.fit_chain(data, job(c, 1))) for c in cells]  # the second reuses fold 1
+    assert len(F._prep) == 1
+    fresh = []
+    for c in cells:
+        F._prep.clear()
+        fresh.append(facts(F.fit_chain(data, job(c, 1))))
+    assert kept == fresh
+    for k in (0, 2, 1):
+        F.fit_chain(data, job(cells[0], k))
+    assert len(F._prep) == F._PREP_KEEP  # bounded
+    other = F.StudyData(solver.from_arrays(X[:240] * 2.0, ds.labels, label_name="diagnosis"),
+                        data.folds)
+    got = facts(F.fit_chain(other, job(cells[0], 1)))  # other data: not the kept fold
+    assert got[2]["fingerprint"] != kept[0][2]["fingerprint"]

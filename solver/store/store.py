@@ -15,13 +15,14 @@ catalog has not seen and forgets rows whose folder is gone.
 
 from __future__ import annotations
 
+import contextlib
 import os
 import shutil
 import sqlite3
 import stat
 import time
 import warnings
-from collections.abc import Mapping
+from collections.abc import Iterator, Mapping
 from dataclasses import dataclass, field
 from datetime import datetime, timezone
 from pathlib import Path
@@ -55,12 +56,15 @@ from .integrity import (
 from .parents import is_parent_manifest
 from .semantic import manifest_field_problems, semantic_problems
 
-__all__ = ["RunStore", "Listing", "ENV_VAR", "DEFAULT_DIR", "TEMP_PREFIX"]
+__all__ = ["RunStore", "Listing", "ENV_VAR", "DEFAULT_DIR", "TEMP_PREFIX", "EncodedRun",
+           "encode_run", "finish_manifest"]
 
 ENV_VAR = "KKTRACE_STORE"
 DEFAULT_DIR = "traces"
 TEMP_PREFIX = ".tmp-"
 _MAX_CHAIN = 10_000
+#: names a run's own files may not take (written by the store itself)
+_RESERVED = frozenset({MANIFEST, MANIFEST_DIGEST, SIGNATURE})
 
 
 def _write_durable(path: Path, data: bytes) -> None:
@@ -81,6 +85,36 @@ def _fsync_dir(path: Path) -> None:
         os.fsync(fd)
     finally:
         os.close(fd)
+
+
+def finish_manifest(manifest: dict[str, Any], files: Mapping[str, bytes]) -> bytes:
+    """Add the files table (name → SHA-256 and size) to ``manifest``; its JSON bytes."""
+    manifest["files"] = {name: {"sha256": sha256_hex(b), "bytes": len(b)}
+                         for name, b in files.items()}
+    return dump_json(manifest)
+
+
+@dataclass(frozen=True, eq=False)
+class EncodedRun:
+    """A run serialised where it was computed (:func:`encode_run`), for a
+    :class:`RunStore` elsewhere to write (:meth:`RunStore.save_encoded`): the run id, the
+    files by name and the bytes of ``manifest.json`` (its files table included)."""
+
+    run_id: str
+    files: Mapping[str, bytes]
+    manifest: bytes
+
+
+def encode_run(record: RunRecord) -> EncodedRun:
+    """Serialise ``record`` (a run without a parent) exactly as :meth:`RunStore.save`
+    would, without touching any store: a fresh run id and creation time from this
+    process's clock.  Pure apart from the clock and the id's random bits."""
+    if record.parent_id is not None:
+        raise InvalidInputError("encode_run() takes runs without a parent; use RunStore.save")
+    now = datetime.now(timezone.utc)
+    run_id = new_run_id(now)
+    files, manifest = encode_record(record, run_id=run_id, created=utc_stamp(now), parent=None)
+    return EncodedRun(run_id=run_id, files=files, manifest=finish_manifest(manifest, files))
 
 
 def _missing_challengers(rows: list[dict[str, Any]]) -> list[dict[str, Any]]:
@@ -142,6 +176,8 @@ class RunStore:
             root = os.environ.get(ENV_VAR) or DEFAULT_DIR
         self.root = Path(root).expanduser().absolute()
         self._catalog = Catalog(self.root)
+        #: catalog rows waiting for the end of a :meth:`deferred_index` block, or None
+        self._pending: list[dict[str, Any]] | None = None
         from .signing import SIGNING_KEY_ENV, load_private_key
 
         if signing_key is None:
@@ -172,14 +208,12 @@ class RunStore:
 
     # ------------------------------------------------------------------ save
 
-    def _write_folder(self, run_id: str, files: Mapping[str, bytes],
-                      manifest: dict[str, Any], parent_id: str | None) -> tuple[bytes, str, Any]:
-        """Write a run (or parent) folder atomically: files, manifest, digest, signature,
-        the audit entry, then one rename.  Returns (manifest bytes, manifest digest, the
+    def _write_folder(self, run_id: str, files: Mapping[str, bytes], mbytes: bytes,
+                      parent_id: str | None) -> tuple[str, Any]:
+        """Write a run (or parent) folder atomically: files, manifest (``mbytes``, its
+        files table already in it: :func:`finish_manifest`), digest, signature, the audit
+        entry, then one rename, then a sync of the root.  Returns (manifest digest, the
         audit log's note or None)."""
-        manifest["files"] = {name: {"sha256": sha256_hex(b), "bytes": len(b)}
-                             for name, b in files.items()}
-        mbytes = dump_json(manifest)
         mdigest = sha256_hex(mbytes)
         self.root.mkdir(parents=True, exist_ok=True)
         tmp = self.root / f"{TEMP_PREFIX}{run_id}-{os.getpid()}"
@@ -204,7 +238,74 @@ class RunStore:
         except BaseException:
             shutil.rmtree(tmp, ignore_errors=True)
             raise
-        return mbytes, mdigest, note
+        try:  # make the rename itself durable; the run is complete and visible either way
+            _fsync_dir(self.root)
+        except OSError as exc:
+            warnings.warn(f"run {run_id} saved, but syncing the store folder failed ({exc}); "
+                          "the run may be lost if the machine crashes now", StoreWarning,
+                          stacklevel=3)
+        if note:
+            warnings.warn(f"run {run_id} saved; {note}", StoreWarning, stacklevel=3)
+        return mdigest, note
+
+    def _index(self, manifest: Mapping[str, Any], mdigest: str, files: Mapping[str, bytes],
+               mbytes: bytes) -> None:
+        """The catalog row of a folder just written (now, or at the end of
+        :meth:`deferred_index`), then the writer-side reconcile."""
+        total = len(mbytes) + 65 + len(MANIFEST) + 1 + sum(len(b) for b in files.values())
+        row = row_from_manifest(dict(manifest), mdigest, total)
+        if self._pending is not None:
+            self._pending.append(row)
+            return
+        self._upsert([row])
+
+    def _upsert(self, rows: list[dict[str, Any]]) -> None:
+        try:
+            self._catalog.upsert(rows)
+            self._index_missing()
+        except sqlite3.Error as exc:  # the runs are stored; the next save indexes them
+            warnings.warn(f"{len(rows)} run(s) saved, but the catalog was not updated within "
+                          f"{BUSY_TIMEOUT_S:g} s ({exc}): the catalog is stale until a later save "
+                          "indexes the folders; listings read the folders meanwhile",
+                          StoreWarning, stacklevel=3)
+
+    @contextlib.contextmanager
+    def deferred_index(self) -> Iterator[RunStore]:
+        """Within the ``with`` block, saves write their folders as usual but their catalog
+        rows are written together when the block ends (one transaction instead of one
+        per save: a study of hundreds of fits).  The folders are the truth either way: a
+        process killed inside the block leaves folders the catalog lacks, which listings
+        read from their manifests and the next save indexes."""
+        if self._pending is not None:  # nested: the outer block writes the rows
+            yield self
+            return
+        self._pending = []
+        try:
+            yield self
+        finally:
+            rows, self._pending = self._pending, None
+            if rows:
+                self._upsert(rows)
+
+    def save_encoded(self, run: EncodedRun) -> str:
+        """Store a run serialised elsewhere by :func:`encode_run` (a study's worker) and
+        return its run id.  The bytes are checked against themselves first: the manifest
+        names this run id, no parent, and exactly these files with their SHA-256 and
+        sizes; anything else is an :class:`IntegrityError` and nothing is written."""
+        if not isinstance(run, EncodedRun) or not is_run_id(run.run_id):
+            raise IntegrityError("save_encoded() needs an EncodedRun with a well-formed run id")
+        manifest = parse_json(run.manifest, MANIFEST)
+        listed = manifest.get("files") if isinstance(manifest, dict) else None
+        actual = {name: {"sha256": sha256_hex(b), "bytes": len(b)}
+                  for name, b in run.files.items()}
+        if (not isinstance(manifest, dict) or manifest.get("run_id") != run.run_id
+                or manifest.get("parent") is not None or listed != actual
+                or any(not is_plain_name(n) or n in _RESERVED for n in run.files)):
+            raise IntegrityError(f"encoded run {run.run_id}: its manifest does not describe "
+                                 "its files (run id, parent or files table differ); not saved")
+        mdigest, _ = self._write_folder(run.run_id, run.files, run.manifest, None)
+        self._index(manifest, mdigest, run.files, run.manifest)
+        return run.run_id
 
     def save(self, record: RunRecord, *, parent: str | None = None) -> str:
         """Store ``record`` as a new run and return its run id (always a new run, even for a
@@ -236,23 +337,9 @@ class RunStore:
         run_id = new_run_id(now)
         files, manifest = encode_record(record, run_id=run_id, created=utc_stamp(now),
                                         parent=parent_m)
-        mbytes, mdigest, note = self._write_folder(run_id, files, manifest, parent_id)
-        try:  # make the rename itself durable; the run is complete and visible either way
-            _fsync_dir(self.root)
-        except OSError as exc:
-            warnings.warn(f"run {run_id} saved, but syncing the store folder failed ({exc}); "
-                          "the run may be lost if the machine crashes now", stacklevel=2)
-        total = len(mbytes) + 65 + len(MANIFEST) + 1 + sum(len(b) for b in files.values())
-        if note:
-            warnings.warn(f"run {run_id} saved; {note}", StoreWarning, stacklevel=2)
-        try:
-            self._catalog.upsert([row_from_manifest(manifest, mdigest, total)])
-            self._index_missing()
-        except sqlite3.Error as exc:  # the run is stored; the next save indexes it
-            warnings.warn(f"run {run_id} saved, but the catalog was not updated within "
-                          f"{BUSY_TIMEOUT_S:g} s ({exc}): the catalog is stale until a later save "
-                          "indexes the folder; listings read the folders meanwhile",
-                          StoreWarning, stacklevel=2)
+        mbytes = finish_manifest(manifest, files)
+        mdigest, _ = self._write_folder(run_id, files, mbytes, parent_id)
+        self._index(manifest, mdigest, files, mbytes)
         return run_id
 
     def _index_missing(self) -> None:
@@ -737,20 +824,9 @@ class RunStore:
         run_id = new_run_id(now)
         files, manifest = encode_parent(record, run_id=run_id, created=utc_stamp(now),
                                         digests=digests)
-        mbytes, mdigest, note = self._write_folder(run_id, files, manifest, None)
-        try:
-            _fsync_dir(self.root)
-        except OSError as exc:
-            warnings.warn(f"parent {run_id} saved, but syncing the store folder failed ({exc})",
-                          StoreWarning, stacklevel=2)
-        if note:
-            warnings.warn(f"parent {run_id} saved; {note}", StoreWarning, stacklevel=2)
-        total = len(mbytes) + 65 + len(MANIFEST) + 1 + sum(len(b) for b in files.values())
-        try:
-            self._catalog.upsert([row_from_manifest(manifest, mdigest, total)])
-        except sqlite3.Error as exc:
-            warnings.warn(f"parent {run_id} saved but the catalog was not updated ({exc})",
-                          StoreWarning, stacklevel=2)
+        mbytes = finish_manifest(manifest, files)
+        mdigest, _ = self._write_folder(run_id, files, mbytes, None)
+        self._index(manifest, mdigest, files, mbytes)
         return run_id
 
     def load_parent(self, run_id: str, *, verify: bool = True) -> ParentRecord:

@@ -10,8 +10,10 @@ data) on its first batch; every later job refers to the same scattered data.
 
 Retries: a job whose worker process dies is rescheduled by the Dask scheduler on another
 worker up to ``distributed.scheduler.allowed-failures`` times (Dask's default 3); a job
-that raises is resubmitted :data:`RETRIES` more times.  Results are sent back to the
-client, which writes the store: the workers need no shared disk.
+that raises is resubmitted :data:`RETRIES` more times.  Each fit comes back as the files
+of its run folder, encoded on the worker; the client checks them against their manifest
+and writes the store, so the workers need no shared disk and a retried fit is written
+once (only the result that arrives is stored).
 """
 
 from __future__ import annotations

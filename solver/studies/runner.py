@@ -416,7 +416,7 @@ def study(
             if o.key in stored:
                 continue  # a warm chain refits earlier cells to reach the missing ones
             rid = _save_fit(run_store, o, fit_task.name, job_opts=opts)
-            stored[o.key] = (rid, FitView.of_output(o))
+            stored[o.key] = (rid, o.view)
             state["done"] += 1
             state["fitted"] += 1
         if progress is not None:
@@ -426,61 +426,63 @@ def study(
             rate = ((now - state["first"]) / (state["fitted"] - 1)
                     if state["fitted"] > 1 else None)
             left = None if rate is None else rate * (total - state["done"])
-            fails = sum(not all(r.success for _, r in v.runs) for _, v in stored.values())
+            fails = sum(not all(r.converged for r in v.runs) for _, v in stored.values())
             progress(state["done"], total, fails, el, left)
 
     connected = None
     if (todo or stability) and where != "sequential":
         connected = connect(where, workers, connect_timeout)  # before anything is written
-    with StudySession(StudyData(ds, fold_of), where=where, workers=workers,
-                      timeout=connect_timeout, warm_up=_warm_up,
-                      connected=connected) as session:
-        if todo:
-            ex = session.run(fit_chain, todo, on_done)
-            execution = {**ex.to_dict(), "retries_on_error": RETRIES,
-                         "retries_on_worker_death": "Dask scheduler allowed-failures "
-                         "(default 3)"}
-        else:
-            execution = {"mode": "none", "workers": 0, "reason": "every fit was already "
-                         "stored and verified", "address": None}
-        pairs = []
-        for j in jobs:
-            for cell, key in zip(j.cells, j.keys, strict=True):
-                rid, rec = stored[key]
-                pairs.append((fit_row(rec, rid, score_name, fit_task.study_measures),
-                              Member(run_id=rid, role="fit",
-                                     key=(cell.label, f"fold={j.fold}"))))
-        z = lambda v: 0.0 if v is None else v  # noqa: E731
-        pairs.sort(key=lambda p: (z(p[0]["gamma"]), z(p[0]["degree"]), z(p[0]["epsilon"]),
-                                  z(p[0]["C"]), z(p[0]["nu"]), p[0]["fold"]))
-        rows = [p[0] for p in pairs]
-        members = [p[1] for p in pairs]
-        cells = aggregate(rows)
-        choice = choose(cells, score_name, higher)
-        warm_check = None
-        if checks:
-            warm_check, check_members = _warm_check(checks, jobs, stored, opts)
-            members += check_members
-        stab = None
-        if stability:
-            stab, stab_members = _stability(session, choice, cells, fit_task.name, opts,
-                                            seed, command, run_store)
-            members += stab_members
-            if session.execution is not None:
-                stab["execution"] = {**session.execution.to_dict(),
-                                     "data_scattered": session.scatters}
-            if not stab["permutations_same_optimum"]:
-                notes.append(stab["permutation_verdict"])
-        session.close_later()  # the cluster stops while the study record is written
-    if session.execution is not None and isinstance(execution, dict) and todo:
-        execution["data_scattered"] = session.scatters
-    for r in rows:
-        if not r["converged"]:
-            notes.append(f"fit {r['cell']} fold {r['fold']} (run {r['run_id']}) did not "
-                         f"converge: {r['status']}")
-    parent = _parent(fit_task, grid, ds, fold_of, folds, seed, opts, warm_start, execution,
-                     rows, cells, choice, members, command, warm_check, stab)
-    sid = run_store.save_parent(parent)
+    # one catalog transaction for the whole study (the folders are written as fits arrive)
+    with run_store.deferred_index():
+        with StudySession(StudyData(ds, fold_of), where=where, workers=workers,
+                          timeout=connect_timeout, warm_up=_warm_up,
+                          connected=connected) as session:
+            if todo:
+                ex = session.run(fit_chain, todo, on_done)
+                execution = {**ex.to_dict(), "retries_on_error": RETRIES,
+                             "retries_on_worker_death": "Dask scheduler allowed-failures "
+                             "(default 3)"}
+            else:
+                execution = {"mode": "none", "workers": 0, "reason": "every fit was already "
+                             "stored and verified", "address": None}
+            pairs = []
+            for j in jobs:
+                for cell, key in zip(j.cells, j.keys, strict=True):
+                    rid, rec = stored[key]
+                    pairs.append((fit_row(rec, rid, score_name, fit_task.study_measures),
+                                  Member(run_id=rid, role="fit",
+                                         key=(cell.label, f"fold={j.fold}"))))
+            z = lambda v: 0.0 if v is None else v  # noqa: E731
+            pairs.sort(key=lambda p: (z(p[0]["gamma"]), z(p[0]["degree"]), z(p[0]["epsilon"]),
+                                      z(p[0]["C"]), z(p[0]["nu"]), p[0]["fold"]))
+            rows = [p[0] for p in pairs]
+            members = [p[1] for p in pairs]
+            cells = aggregate(rows)
+            choice = choose(cells, score_name, higher)
+            warm_check = None
+            if checks:
+                warm_check, check_members = _warm_check(checks, jobs, stored, opts)
+                members += check_members
+            stab = None
+            if stability:
+                stab, stab_members = _stability(session, choice, cells, fit_task.name, opts,
+                                                seed, command, run_store)
+                members += stab_members
+                if session.execution is not None:
+                    stab["execution"] = {**session.execution.to_dict(),
+                                         "data_scattered": session.scatters}
+                if not stab["permutations_same_optimum"]:
+                    notes.append(stab["permutation_verdict"])
+            session.close_later()  # the cluster stops while the study record is written
+        if session.execution is not None and isinstance(execution, dict) and todo:
+            execution["data_scattered"] = session.scatters
+        for r in rows:
+            if not r["converged"]:
+                notes.append(f"fit {r['cell']} fold {r['fold']} (run {r['run_id']}) did not "
+                             f"converge: {r['status']}")
+        parent = _parent(fit_task, grid, ds, fold_of, folds, seed, opts, warm_start, execution,
+                         rows, cells, choice, members, command, warm_check, stab)
+        sid = run_store.save_parent(parent)
     if out_table is not None:
         write_parquet(rows, cells, out_table)
     session.close()
@@ -520,52 +522,58 @@ def _load_fit(store: Any, run_id: str) -> FitView:
     if store.is_parent(run_id):
         parent = store.load_parent(run_id)  # verifies the parent and every member
         recs = [store.load(m.run_id, verify=False) for m in parent.members]
-        return FitView(parent.attachments, tuple((r.problem, r.result) for r in recs))
+        return FitView.of_records(parent.attachments, recs)
     rec = store.load(run_id, verify=True)
-    return FitView(rec.attachments, ((rec.problem, rec.result),))
+    return FitView.of_records(rec.attachments, [rec])
 
 
 def _save_variant(store: Any, f: Any) -> str:
     """Store a stability refit: its run, or its pair runs and a parent over them."""
     if f.info is None:
         return store.save(f.record)
-    o = FitOutput(key="", cell=f.job.cell, fold=0, record=None, warm_start=False,
-                  members=f.members, info=f.info,
-                  attachments={"command": f.job.command,
-                               "stability_fit": f.record.attachments["stability_fit"]},
-                  data=f.data)
-    return _save_fit(store, o, f.job.task, job_opts=f.job.options)
+    refs = [Member(run_id=store.save(rec), role=role, key=key) for role, key, rec in f.members]
+    att = {"command": f.job.command,
+           "stability_fit": f.record.attachments["stability_fit"]}
+    return _save_parent_fit(store, refs, FitView.of_records(att, [r for *_, r in f.members]),
+                            f.job.cell, f.info, f.data, f.job.task, f.job.options)
 
 
 def _save_fit(store: Any, o: FitOutput, task: str, *, job_opts: Mapping[str, Any]) -> str:
-    """Store a fresh fit: its run, or its pair runs then a parent record over them."""
+    """Store a fresh fit from its encoded runs: its run, or its pair runs then a parent
+    record over them."""
+    if not o.roles:
+        return store.save_encoded(o.encoded[0])
+    refs = [Member(run_id=store.save_encoded(e), role=role, key=key)
+            for e, (role, key) in zip(o.encoded, o.roles, strict=True)]
+    return _save_parent_fit(store, refs, o.view, o.cell, o.info, o.data, task, job_opts)
+
+
+def _save_parent_fit(store: Any, refs: Sequence[Member], view: FitView, cell: Any,
+                     info: Mapping[str, Any] | None, data: Mapping[str, Any], task: str,
+                     job_opts: Mapping[str, Any]) -> str:
+    """The parent record of a one-vs-one fit over its stored pair runs ``refs``."""
     from ..training import _STATUS_ORDER, worst
 
-    if o.record is not None:
-        return store.save(o.record)
-    refs = []
-    for role, key, rec in o.members:
-        refs.append(Member(run_id=store.save(rec), role=role, key=key))
-    rs = [r for _, _, rec in o.members for r in (rec.result,)]
-    status = worst([r.status.label for r in rs], _STATUS_ORDER) or "converged"
-    p0 = o.members[0][2].problem
+    rs = view.runs
+    status = worst([r.status for r in rs], _STATUS_ORDER) or "converged"
     summary = {
         "task": task, "members": len(refs), "pairs": len(refs), "status": status,
-        "converged": all(r.success for r in rs),
+        "converged": all(r.converged for r in rs),
         "solver": {"name": "smo", "status": status,
                    "iterations": int(sum(r.iterations for r in rs)),
                    "seconds": float(sum(r.seconds for r in rs))},
-        "problem": {"kind": "multiclass_one_vs_one", "n": int(o.data["n_rows"]),
-                    "n_features": int(p0.X.shape[1]), "kernel": p0.kernel.describe(),
-                    "info": {"C": None if o.cell.C is None else float(o.cell.C)}},
+        "problem": {"kind": "multiclass_one_vs_one", "n": int(data["n_rows"]),
+                    "n_features": rs[0].n_features, "kernel": dict(rs[0].kernel),
+                    "info": {"C": None if cell.C is None else float(cell.C)}},
         "certificate": {"kkt_tol": float(job_opts["kkt_tol"]),
-                        "max_violation": float(max(r.certificate.max_violation for r in rs)),
-                        "duality_gap": float(max(r.certificate.duality_gap for r in rs))},
+                        "max_violation": max(r.max_violation for r in rs),
+                        "duality_gap": max(r.duality_gap for r in rs)},
     }
-    info = {**dict(o.info or {}), "options": dict(job_opts), "execution": None}
     return store.save_parent(ParentRecord(
-        task=task, members=tuple(refs), info=info, data=dict(o.data), summary=summary,
-        attachments=dict(o.attachments), command=o.attachments.get("command")))
+        task=task, members=tuple(refs), info={**dict(info or {}), "options": dict(job_opts),
+                                              "execution": None},
+        data=dict(data), summary=summary, attachments=dict(view.attachments),
+        command=view.attachments.get("command")))
 
 
 #: warm and cold fits of a cell agree when both meet the certificate and their dual
@@ -589,18 +597,17 @@ def _warm_check(checks: Sequence[FitJob], jobs: Sequence[FitJob],
         wrid, warm = warm_of[(j.fold, c)]
         members.append(Member(run_id=crid, role="cold_check", key=(c.label, f"fold={j.fold}")))
         # every member (one run, or every pair of a one-vs-one fit) compared with its twin
-        rels = [abs(float(w.certificate.dual_objective) - float(cr.certificate.dual_objective))
-                / max(1.0, abs(float(cr.certificate.dual_objective)))
-                for (_, w), (_, cr) in zip(warm.runs, cold.runs, strict=True)]
-        conv = all(r.success for _, r in (*warm.runs, *cold.runs))
+        rels = [abs(w.dual_objective - cr.dual_objective) / max(1.0, abs(cr.dual_objective))
+                for w, cr in zip(warm.runs, cold.runs, strict=True)]
+        conv = all(r.converged for r in (*warm.runs, *cold.runs))
         rel = max(rels)
         hw, hc = warm.attachments["holdout"], cold.attachments["holdout"]
         score = next((m for m in ("accuracy", "rmse", "nu_gap") if m in hw), None)
         cells.append({
             "cell": c.label, "fold": j.fold, "warm_run_id": wrid, "cold_run_id": crid,
             "members": len(rels),
-            "warm_iterations": int(sum(r.iterations for _, r in warm.runs)),
-            "cold_iterations": int(sum(r.iterations for _, r in cold.runs)),
+            "warm_iterations": int(sum(r.iterations for r in warm.runs)),
+            "cold_iterations": int(sum(r.iterations for r in cold.runs)),
             "both_converged": bool(conv),
             "dual_objective_relative_difference": rel,
             "score": score,
@@ -612,7 +619,7 @@ def _warm_check(checks: Sequence[FitJob], jobs: Sequence[FitJob],
     cd = sum(x["cold_iterations"] for x in cells)
     # the first C of every sampled chain starts cold either way: counted in both path totals
     first = sum(int(r.iterations) for j in jobs if j.fold == 0 and j.warm
-                for _, r in stored[j.keys[0]][1].runs)
+                for r in stored[j.keys[0]][1].runs)
     return {"sample": "every cell but the first C of each gamma/degree chain, fold 0",
             "cells": cells, "warm_iterations": w, "cold_iterations": cd,
             "ratio_cold_to_warm": cd / w if w else None,

@@ -40,7 +40,7 @@ ROW_COLUMNS = ("cell", "C", "gamma", "degree", "epsilon", "nu", "fold", "run_id"
 def fit_row(fit: Any, run_id: str, score_name: str,
             measures: Sequence[str] = ("accuracy", "balanced_accuracy")) -> dict[str, Any]:
     """One row of the table from a fit's :class:`~.fits.FitView` (its attachments and its
-    runs: one, or every pair of a one-vs-one fit — iterations, seconds and events summed,
+    runs' facts: one, or every pair of a one-vs-one fit — iterations, seconds and events summed,
     the worst status, the largest violation and gap, shares over all pair variables);
     one column per held-out measure in ``measures`` (None where the fit has none)."""
     from ..training import _STATUS_ORDER, worst
@@ -49,8 +49,8 @@ def fit_row(fit: Any, run_id: str, score_name: str,
     sf = fit.attachments["study_fit"]
     h = fit.attachments["holdout"]
     cell = sf["cell"]
-    rs = [r for _, r in fit.runs]
-    n = max(1, sum(int(p.n) for p, _ in fit.runs))
+    rs = list(fit.runs)
+    n = max(1, sum(r.n for r in rs))
     row: dict[str, Any] = {
         "cell": Cell.of(cell).label,
         "C": None if cell["C"] is None else float(cell["C"]), "gamma": cell["gamma"],
@@ -67,14 +67,14 @@ def fit_row(fit: Any, run_id: str, score_name: str,
         "n_small_values": int(h.get("n_small_values", 0)),
         "iterations": int(sum(r.iterations for r in rs)),
         "seconds": float(sum(r.seconds for r in rs)),
-        "status": worst([r.status.label for r in rs], _STATUS_ORDER) or "converged",
-        "converged": all(r.success for r in rs),
-        "max_violation": float(max(r.certificate.max_violation for r in rs)),
-        "duality_gap": float(max(r.certificate.duality_gap for r in rs)),
-        "support_share": sum(int(r.certificate.n_support) for r in rs) / n,
-        "bounded_share": sum(int(r.certificate.n_bounded) for r in rs) / n,
-        "curvature_fixes": int(sum(int(r.extra.get("curvature_fixes", 0) or 0) for r in rs)),
-        "shrink_events": int(sum(int(r.extra.get("shrinks", 0) or 0) for r in rs)),
+        "status": worst([r.status for r in rs], _STATUS_ORDER) or "converged",
+        "converged": all(r.converged for r in rs),
+        "max_violation": max(r.max_violation for r in rs),
+        "duality_gap": max(r.duality_gap for r in rs),
+        "support_share": sum(r.n_support for r in rs) / n,
+        "bounded_share": sum(r.n_bounded for r in rs) / n,
+        "curvature_fixes": int(sum(r.curvature_fixes for r in rs)),
+        "shrink_events": int(sum(r.shrinks for r in rs)),
     }
 
 
