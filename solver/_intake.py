@@ -220,6 +220,9 @@ def canonical_labels(values: Any, where: Where, prefix: str, label_name: str) ->
     if arr.dtype.kind in "iu":
         return arr.astype(np.int64)
     items = arr.tolist()
+    by_value = _canonical_by_value(items, prefix, label_name)
+    if by_value is not None:
+        return by_value
     missing = [i for i, v in enumerate(items) if is_missing(v)]
     if missing:
         i = missing[0]
@@ -268,6 +271,32 @@ def canonical_labels(values: Any, where: Where, prefix: str, label_name: str) ->
             v = v.decode("utf-8", "replace")
         text.append(str(bool(v)) if isinstance(v, (bool, np.bool_)) else str(v).strip())
     return np.array(text, dtype=str)
+
+
+#: text label columns at least this long are canonicalised once per distinct value
+BY_VALUE_MIN_ROWS = 1024
+
+
+def _canonical_by_value(items: list[Any], prefix: str, label_name: str) -> np.ndarray | None:
+    """:func:`canonical_labels` of a long column of text labels with few distinct values
+    (at most a quarter of the rows), computed once per distinct value and spread back;
+    None when that does not apply or the distinct values raise a problem (the row by row
+    path then names the first row that has it).  The rules act on each value alone and
+    decide the array's type from the set of values, so the result is the same."""
+    n = len(items)
+    if n < BY_VALUE_MIN_ROWS or not all(type(v) is str for v in items):
+        return None
+    codes: dict[str, int] = {}
+    index = np.fromiter((codes.setdefault(v, len(codes)) for v in items), dtype=np.int64,
+                        count=n)
+    if 4 * len(codes) > n:
+        return None
+    try:
+        canon = canonical_labels(np.array(list(codes), dtype=object), where_index, prefix,
+                                 label_name)
+    except InvalidInputError:
+        return None
+    return canon[index]
 
 
 # ---------------------------------------------------------------------------- checks

@@ -491,6 +491,10 @@ def _read_csv(
 ) -> Dataset:
     try:
         delim = delimiter if delimiter is not None else _sniff_delimiter(p)
+        fast = _read_plain(p, prefix, label, feature_columns, min_classes, ignore_columns,
+                           delim)
+        if fast is not None:
+            return fast
         with open(p, encoding="utf-8-sig", newline="") as fh:
             reader = csv.reader(fh, delimiter=delim, strict=True)
             header: list[str] | None = None
@@ -557,6 +561,34 @@ def _read_csv(
     labels = None if label is None else np.array([r[col[label]] for r in rows], dtype=object)
     return _build(X, labels, chosen, label, str(p), where, prefix, min_classes, stacklevel=4,
                   notes=notes)
+
+
+def _read_plain(
+    p: Path, prefix: str, label: str | None, feature_columns: Sequence[str] | None,
+    min_classes: int, ignore_columns: Sequence[str] | None, delim: str,
+) -> Dataset | None:
+    """The dataset of a plain CSV file of at least :data:`~solver._csv_fast.FAST_MIN_BYTES`
+    read by pyarrow (:mod:`solver._csv_fast`), or None: the csv-module path then reads it
+    (and reports any problem)."""
+    from ._csv_fast import FAST_MIN_BYTES, read_plain_csv
+
+    if p.stat().st_size < FAST_MIN_BYTES:
+        return None
+
+    def choose(header: list[str]) -> Sequence[str]:
+        check_names(header, prefix)
+        return select_columns(header, label, feature_columns, prefix, ignore_columns)
+
+    got = read_plain_csv(p, delim, choose, label)
+    if got is None:
+        return None
+    chosen, X, labels, header_line = got
+
+    def where(i: int) -> str:
+        return f"row {i + 1} (line {header_line + 1 + i})"
+
+    return _build(X, labels, list(chosen), label, str(p), where, prefix, min_classes,
+                  stacklevel=5)
 
 
 #: A compressed file (``.npz`` archive, Parquet file) may inflate to at most this many

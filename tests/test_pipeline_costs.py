@@ -17,6 +17,8 @@ import zipfile
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 from sklearn.datasets import load_breast_cancer
 from sklearn.metrics.pairwise import polynomial_kernel, rbf_kernel
 
@@ -242,3 +244,107 @@ def test_a_fold_prepared_once_gives_the_fits_a_fresh_preparation_gives():
                         data.folds)
     got = facts(F.fit_chain(other, job(cells[0], 1)))  # other data: not the kept fold
     assert got[2]["fingerprint"] != kept[0][2]["fingerprint"]
+
+
+# --- CSV files read by pyarrow (solver._csv_fast) against the csv-module path -------------
+
+_TRICKY = ["1.5", " 1.5", "1.5 ", "\t2", "+1.5", "-.5", ".5", "5.", "1e5", "1E+05", "007",
+           "1e-400", "1e400", "-0", "0.1", "nan", "NaN", "inf", "-Infinity", "", " ", "1_0",
+           "0x10", "1d5", "+-1", "1e", ".", "abc", "N/A", "1,5", "\u00a01.5", "١٢", "1.5\u2003",
+           "9007199254740993", "2.2250738585072011e-308", "4.9e-324", "1.7976931348623157e308"]
+
+
+def _outcome(path, fast: bool, **kw):
+    """(dataset facts or None, error text or None, warnings) of load_table on one path."""
+    import warnings
+
+    import solver._csv_fast as cf
+    import solver.data as D
+
+    with pytest.MonkeyPatch.context() as mp:
+        mp.setattr(cf, "FAST_MIN_BYTES", 0)
+        if not fast:
+            mp.setattr(D, "_read_plain", lambda *a, **k: None)
+        try:
+            with warnings.catch_warnings(record=True) as caught:
+                warnings.simplefilter("always")
+                ds = load_table(path, **kw)
+        except solver.InvalidInputError as exc:
+            return None, str(exc), ()
+    labels = None if ds.labels is None else [str(v) for v in ds.labels.tolist()]
+    return ((ds.X.view(np.int64).tolist(), labels, ds.feature_names, ds.warnings), None,
+            tuple(str(w.message) for w in caught))
+
+
+@settings(derandomize=True, max_examples=80, deadline=None)
+@given(cells=st.lists(st.lists(st.sampled_from(_TRICKY), min_size=2, max_size=2),
+                      min_size=1, max_size=6),
+       labels=st.lists(st.sampled_from(["pass", "fail", " pass", ""]), min_size=6, max_size=6),
+       ending=st.sampled_from(["\n", "\r\n"]), bom=st.booleans(), tail=st.booleans())
+def test_a_plain_csv_reads_the_same_on_both_paths(tmp_path_factory, cells, labels, ending,
+                                                   bom, tail):
+    path = tmp_path_factory.mktemp("csv") / "t.csv"
+    rows = ["a,b,label", *(f"{x},{y},{labels[i]}" for i, (x, y) in enumerate(cells))]
+    text = ending.join(rows) + (ending if tail else "")
+    path.write_bytes((b"\xef\xbb\xbf" if bom else b"") + text.encode("utf-8"))
+    for kw in ({"label": "label"}, {"label": "label", "min_classes": 1},
+               {"label": None, "ignore_columns": ["label"]}):
+        assert _outcome(path, True, **kw) == _outcome(path, False, **kw)
+
+
+def test_the_plain_csv_path_is_taken_and_gives_float_bits(tmp_path, monkeypatch):
+    """Random numerals of 17 significant digits over the whole exponent range: pyarrow's
+    values are Python's float of each cell, bit for bit; the fast path was taken."""
+    import solver._csv_fast as cf
+    import solver.data as D
+
+    rng = np.random.default_rng(5)
+    mant = rng.integers(10**16, 10**17, size=(4000, 3))
+    expo = rng.integers(-340, 130, size=(4000, 3))  # squares stay finite
+    cells = [[f"{'-' if (m + e) % 3 == 0 else ''}{m}e{e}" for m, e in zip(mr, er, strict=True)]
+             for mr, er in zip(mant.tolist(), expo.tolist(), strict=True)]
+    lab = np.where(rng.random(4000) < 0.5, "pass", "fail")
+    path = tmp_path / "n.csv"
+    path.write_text("x,y,z,label\n" + "".join(f"{a},{b},{c},{q}\n" for (a, b, c), q
+                                              in zip(cells, lab, strict=True)))
+    assert path.stat().st_size >= cf.FAST_MIN_BYTES
+    taken = []
+    real = cf.read_plain_csv
+    monkeypatch.setattr(cf, "read_plain_csv", lambda *a: taken.append(1) or real(*a))
+    ds = load_table(path, label="label")
+    assert taken and isinstance(D._read_plain(path, "", "label", None, 2, None, ","), D.Dataset)
+    want = np.array([[float(c) for c in r] for r in cells])
+    assert np.array_equal(ds.X.view(np.int64), want.view(np.int64))
+    assert ds.labels.tolist() == lab.tolist()
+
+
+_LABELS = ["pass", " pass", "fail", "1", "2", " 3 ", "1.0", "2.5", "-0", "1e2", "nan", "",
+           " ", "inf", "N/A", "10000000000000000000001", "0x1", "yes"]
+
+
+@settings(derandomize=True, max_examples=60, deadline=None)
+@given(pool=st.lists(st.sampled_from(_LABELS), min_size=1, max_size=4, unique=True),
+       seed=st.integers(0, 2**16))
+def test_text_labels_canonicalised_per_value_equal_row_by_row(pool, seed):
+    """Long text label columns are canonicalised once per distinct value
+    (solver._intake._canonical_by_value); the array, its type or the error are those of
+    the row-by-row rule."""
+    import solver._intake as intake
+
+    rng = np.random.default_rng(seed)
+    items = [pool[k] for k in rng.integers(0, len(pool), size=intake.BY_VALUE_MIN_ROWS + 7)]
+
+    def run(by_value: bool):
+        with pytest.MonkeyPatch.context() as mp:
+            if not by_value:
+                mp.setattr(intake, "_canonical_by_value", lambda *a: None)
+            try:
+                out = intake.canonical_labels(np.array(items, dtype=object),
+                                              intake.where_index, "f: ", "grade")
+            except solver.InvalidInputError as exc:
+                return str(exc)
+            return out.dtype.str, out.tolist()
+
+    assert run(True) == run(False)
+    if intake._canonical_by_value(items, "f: ", "grade") is not None:
+        assert not isinstance(run(True), str)

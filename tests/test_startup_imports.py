@@ -83,10 +83,13 @@ def test_runs_probe_sees_the_run(store_with_a_run):
 
 
 def test_train_skips_numbas_blas_probe(store_with_a_run):
-    """``kktrace train`` loads numba but not ``scipy.linalg`` (numba's BLAS probe, 0.4 s;
-    see solver._numba_start), while a library process keeps numba's BLAS."""
+    """``kktrace train`` loads numba but not ``scipy.linalg`` (numba's BLAS probe, 0.4 s)
+    nor pycparser (numba's cffi typing, 0.07 s; see solver._numba_start), while a library
+    process keeps numba's BLAS and its cffi typing."""
+    import importlib.util
+
     folder = store_with_a_run
-    probe = PROBE.replace("{heavy!r}", "('numba', 'scipy.linalg')")
+    probe = PROBE.replace("{heavy!r}", "('numba', 'scipy.linalg', 'pycparser')")
     env = {k: v for k, v in os.environ.items() if k != "KKTRACE_STORE"}
     env["PYTHONPATH"] = os.pathsep.join([str(ROOT), env.get("PYTHONPATH", "")])
     proc = subprocess.run([sys.executable, "-c", probe, "train", str(folder / "small.csv"),
@@ -95,6 +98,8 @@ def test_train_skips_numbas_blas_probe(store_with_a_run):
     line = [x for x in proc.stderr.splitlines() if x.startswith("LOADED ")]
     assert line and json.loads(line[-1][len("LOADED "):]) == ["numba"], proc.stderr[-800:]
     lib = subprocess.run([sys.executable, "-c", "import solver.smo, numba.np.arraymath as a; "
-                          "print(a._HAVE_BLAS)"], capture_output=True, text=True, env=env,
-                         timeout=300)
-    assert lib.stdout.strip() == "True", lib.stderr[-800:]
+                          "import numba.core.typing.cffi_utils as c; "
+                          "print(a._HAVE_BLAS, c.SUPPORTED)"], capture_output=True, text=True,
+                         env=env, timeout=300)
+    has_cffi = importlib.util.find_spec("cffi") is not None
+    assert lib.stdout.split() == ["True", str(has_cffi)], lib.stderr[-800:]
