@@ -348,3 +348,63 @@ def test_text_labels_canonicalised_per_value_equal_row_by_row(pool, seed):
     assert run(True) == run(False)
     if intake._canonical_by_value(items, "f: ", "grade") is not None:
         assert not isinstance(run(True), str)
+
+
+def _csv_writer_bytes(columns) -> bytes:
+    """The reference: the standard library's csv.writer with its defaults."""
+    import csv
+
+    buf = io.StringIO()
+    w = csv.writer(buf, lineterminator="\n")
+    w.writerow(list(columns))
+    cols = []
+    for c in columns:
+        arr = np.asarray(columns[c])
+        vals = arr.tolist()
+        if arr.dtype.kind == "f":
+            vals = list(map(repr, vals))
+        elif arr.dtype.kind == "O":
+            vals = [repr(v) if isinstance(v, float) else v for v in vals]
+        cols.append(vals)
+    w.writerows(zip(*cols, strict=True))
+    return buf.getvalue().encode()
+
+
+_TEXT = st.one_of(st.none(), st.booleans(), st.integers(-5, 5),
+                  st.floats(allow_nan=True, allow_infinity=True),
+                  st.text(alphabet=st.sampled_from('ab ,"\r\n\t;é'), max_size=6))
+
+
+@settings(derandomize=True, max_examples=120, deadline=None)
+@given(n=st.integers(0, 6), width=st.integers(1, 4), data=st.data())
+def test_write_csv_gives_the_bytes_of_the_csv_module(n, width, data):
+    """solver.store.format.write_csv builds the file a column at a time; its bytes are
+    those of csv.writer (the standard library) for float, int, bool and text columns,
+    text with commas, quotes and line breaks, None, and a single column."""
+    from solver.store.format import write_csv
+
+    columns = {}
+    for k in range(width):
+        name = data.draw(st.text(alphabet=st.sampled_from('xy ,"\n'), min_size=1, max_size=4))
+        kind = data.draw(st.sampled_from(["f", "i", "b", "O"]))
+        if kind == "f":
+            col = np.array(data.draw(st.lists(st.floats(), min_size=n, max_size=n)), float)
+        elif kind == "i":
+            col = np.array(data.draw(st.lists(st.integers(-10**12, 10**12), min_size=n,
+                                              max_size=n)), dtype=np.int64)
+        elif kind == "b":
+            col = np.array(data.draw(st.lists(st.booleans(), min_size=n, max_size=n)), bool)
+        else:
+            col = np.empty(n, dtype=object)
+            col[:] = data.draw(st.lists(_TEXT, min_size=n, max_size=n))
+        columns[f"{name}{k}"] = col
+    assert write_csv(columns) == _csv_writer_bytes(columns)
+
+
+def test_write_csv_quotes_as_the_csv_module_does_on_hand_picked_cells():
+    from solver.store.format import write_csv
+
+    text = np.empty(8, dtype=object)
+    text[:] = ["a\rb", "", None, 'x"y', "p,q", "l\nm", 1.5, True]
+    for columns in ({"t": text, "v": np.arange(8.0)}, {"t": text}, {'na,"me': text}):
+        assert write_csv(columns) == _csv_writer_bytes(columns)
