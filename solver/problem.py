@@ -163,9 +163,10 @@ class DualProblem:
 
         (Q v)_i = y_i Σ_{j ∈ S} K(x_i, x_j) y_j v_j with S = {j : v_j ≠ 0}: for a dual
         solution v = α this is K[:, S]·(αy)_S, the support vectors only, so the cost is
-        O(n·|S|·d) rather than O(n²·d).  Chosen over the solver's final gradient because it
-        is exact for any v and independent of the solver's own bookkeeping (a stale or
-        shrunk gradient cannot leak into the evidence).  Memory O(block_rows · |S|).
+        O(n·|S|·d) rather than O(n²·d); exact for any v and independent of a solver's
+        own bookkeeping.  (The explanation of a fresh run reads Qα off the solver's kept
+        gradient instead, after checking it against this product on a sample of rows:
+        :mod:`solver.explanation._values`.)  Memory O(block_rows · |S|).
         Large products of the built-in kernels go to the compiled kernel of
         :mod:`solver._products` (same values within ~1e-13 relative, 2.7× faster).
         """

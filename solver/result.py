@@ -11,9 +11,30 @@ import numpy as np
 from .certificate import Certificate
 from .status import Status
 
-__all__ = ["Trace", "SolveResult", "TRACE_LEVELS"]
+__all__ = ["Trace", "SolveResult", "KeptGradient", "TRACE_LEVELS"]
 
 TRACE_LEVELS = ("full", "sampled", "off")
+
+
+@dataclass(frozen=True, eq=False)
+class KeptGradient:
+    """The gradient G = Qα + p (n,) a solver ended with, and the α (n,) it belongs to.
+
+    Kept in memory with a fresh :class:`SolveResult` so that decision values on the
+    training rows can be read off it instead of a kernel product
+    (:func:`solver.explanation.decision_on_training` checks it against an exact product on
+    a sample of rows first); never stored, so a loaded run has none."""
+
+    alpha: np.ndarray
+    values: np.ndarray
+
+    def for_alpha(self, alpha: np.ndarray) -> np.ndarray | None:
+        """``values`` when ``alpha`` is the α they belong to (same object or same values),
+        else None (e.g. a result rebuilt with another α)."""
+        a = np.asarray(alpha)
+        if a is self.alpha or (a.shape == self.alpha.shape and np.array_equal(a, self.alpha)):
+            return self.values
+        return None
 
 
 @dataclass(frozen=True, eq=False)
@@ -78,6 +99,7 @@ class SolveResult:
     options: Mapping[str, Any]
     trace: Trace | None = None
     extra: Mapping[str, Any] = field(default_factory=dict)
+    kept_gradient: KeptGradient | None = field(default=None, repr=False)
 
     @property
     def timing(self) -> dict[str, float | None]:

@@ -56,7 +56,7 @@ from .kernels import (
     RBFKernel,
 )
 from .problem import DualProblem, serial_dot
-from .result import TRACE_LEVELS, SolveResult, Trace
+from .result import TRACE_LEVELS, KeptGradient, SolveResult, Trace
 from .status import Status, settle
 
 __all__ = ["solve_smo", "EVENT_KINDS", "SELECTIONS", "replay_alpha", "repair_start"]
@@ -1055,6 +1055,7 @@ def solve_smo(
         solver="smo", status=status, message=message, alpha=alpha, bias=cert.bias,
         iterations=it, certificate=cert, seconds=time.perf_counter() - t_start,
         options=options, trace=tr, extra=extra,
+        kept_gradient=KeptGradient(alpha=alpha, values=np.asarray(ph["G"], dtype=np.float64)),
     )
 
 

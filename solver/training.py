@@ -270,10 +270,13 @@ def _audit(problem: DualProblem, feature_names: Sequence[str]) -> dict[str, Any]
                                   feature_names=feature_names).to_dict())
 
 
-def _explanation(problem: DualProblem, result: SolveResult) -> dict[str, np.ndarray]:
+def _explanation(problem: DualProblem, result: SolveResult
+                 ) -> tuple[dict[str, np.ndarray], dict[str, Any]]:
+    """(the explanation table's columns, how its decision values were obtained)."""
     from .explanation import point_table
 
-    return dict(point_table(problem, result).to_columns())
+    table = point_table(problem, result)
+    return dict(table.to_columns()), dict(table.values_note)
 
 
 def _holdout_facts(
@@ -610,7 +613,8 @@ def _fit_member(job: _MemberJob, progress: ProgressFn | None = None) -> _MemberF
         attachments: dict[str, Any] = {"audit": audit, "command": job.command}
         if job.explain:
             with own.phase("explanation"):
-                attachments["explanation"] = _explanation(problem, result)
+                attachments["explanation"], attachments["explanation_values"] = \
+                    _explanation(problem, result)
         model = model_from_solution(problem, result, std)
         if job.hold is not None and job.hold.X.shape[0] > 0:
             with own.phase("holdout"):

@@ -40,6 +40,7 @@ from ..problem import ONE_CLASS_KIND, REGRESSION_KIND, DualProblem
 from ..result import SolveResult
 from ..status import Status
 from ..vocabulary import figure_text
+from ._values import q_alpha
 
 __all__ = ["REGRESSION_CATEGORIES", "ONE_CLASS_CATEGORIES", "KindTable", "kind_point_table",
            "KindLeaveOneOut", "kind_leave_one_out", "training_values"]
@@ -94,7 +95,12 @@ class KindTable:
 
 def training_values(problem: DualProblem, alpha: np.ndarray, bias: float) -> np.ndarray:
     """f at every data row (m,), from Qα: variable i gives yᵢ(Qα)ᵢ + b = f(x_rows[i])."""
-    per_var = problem.y * problem.q_times(alpha) + bias
+    return _values_at_rows(problem, problem.q_times(alpha), bias)
+
+
+def _values_at_rows(problem: DualProblem, qa: np.ndarray, bias: float) -> np.ndarray:
+    """f at every data row (m,) from Qα (n,) (see :func:`training_values`)."""
+    per_var = problem.y * qa + bias
     out = np.empty(problem.X.shape[0])
     out[problem.data_rows] = per_var  # variables of the same row carry the same value
     return out
@@ -123,7 +129,7 @@ def kind_point_table(problem: DualProblem, result: SolveResult,
     alpha = np.asarray(result.alpha, dtype=np.float64)
     c = result.certificate
     tol = float(c.kkt_tol)
-    f = training_values(problem, alpha, float(result.bias))
+    f = _values_at_rows(problem, q_alpha(problem, result)[0], float(result.bias))
     m = problem.X.shape[0]
     lower = np.asarray(c.at_lower, bool)
     upper = np.asarray(c.at_upper, bool)

@@ -17,7 +17,7 @@ import csv
 import json
 import os
 from collections.abc import Mapping
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
@@ -27,6 +27,7 @@ from ..errors import InvalidInputError
 from ..problem import DualProblem
 from ..result import SolveResult
 from ..vocabulary import figure_text
+from ._values import q_alpha
 
 __all__ = ["CATEGORIES", "COLUMNS", "PointTable", "point_table"]
 
@@ -72,7 +73,8 @@ class PointTable:
 
     Attributes besides ``columns``: ``bias`` b, ``kkt_tol`` the certificate tolerance,
     ``status`` the solver status label, ``trace_level`` ``"full"`` or None, ``solver``
-    the solver's registry name.
+    the solver's registry name, ``values_note`` how the decision values were obtained
+    (:func:`solver.explanation._values.q_alpha`; empty for a table rebuilt from columns).
     """
 
     columns: Mapping[str, np.ndarray]
@@ -81,6 +83,7 @@ class PointTable:
     status: str = ""
     trace_level: str | None = None
     solver: str = ""
+    values_note: Mapping[str, Any] = field(default_factory=dict)
 
     def __post_init__(self) -> None:
         missing = [c for c in COLUMNS if c not in self.columns]
@@ -236,7 +239,8 @@ def point_table(problem: DualProblem, result: SolveResult) -> PointTable:
     alpha = np.asarray(result.alpha, dtype=np.float64)
     cert = result.certificate
     y, up = problem.y, problem.upper
-    f = decision_on_training(problem, alpha, float(result.bias))
+    qa, values_note = q_alpha(problem, result)
+    f = y * qa + float(result.bias)
     margin = y * f
     slack = np.maximum(0.0, 1.0 - margin)
     ratio = np.divide(alpha, up, out=np.zeros_like(alpha), where=up > 0)
@@ -274,7 +278,7 @@ def point_table(problem: DualProblem, result: SolveResult) -> PointTable:
     }
     return PointTable(columns=cols, bias=float(result.bias), kkt_tol=float(cert.kkt_tol),
                       status=result.status.label, trace_level=level,
-                      solver=str(result.solver))
+                      solver=str(result.solver), values_note=values_note)
 
 
 def _reason(category: str, a: float, u: float, m: float, resid: float, kkt_tol: float) -> str:
