@@ -761,6 +761,9 @@ def _train(
             trace=trace, explain=explain, command=command, extra_data=extra,
             probabilities=bool(probabilities), calibration_folds=int(calibration_folds),
             calibration_seed=int(calibration_seed), phases=loading.to_dict()))
+    from .store.format import preload_parquet
+
+    preload_parquet()  # loaded while the solve runs; the save writes Parquet
     if len(jobs) == 1:
         fits, execution = [_fit_member(jobs[0], progress)], None
     else:

@@ -103,3 +103,24 @@ def test_train_skips_numbas_blas_probe(store_with_a_run):
                          env=env, timeout=300)
     has_cffi = importlib.util.find_spec("cffi") is not None
     assert lib.stdout.split() == ["True", str(has_cffi)], lib.stderr[-800:]
+
+
+def test_parquet_preloaded_in_a_thread_is_ready_for_the_writer():
+    """``kktrace train`` starts importing pyarrow.parquet while the solve runs
+    (solver.store.format.preload_parquet); the writer waits for that thread, and the table
+    it writes reads back."""
+    code = ("import sys, numpy as np\n"
+            "import solver.store.format as f\n"
+            "assert 'pyarrow.parquet' not in sys.modules\n"
+            "f.preload_parquet(); f.preload_parquet()\n"
+            "t = f._preload\n"
+            "data = f.write_table({'a': np.arange(5.0)})\n"
+            "assert not t.is_alive() and 'pyarrow.parquet' in sys.modules\n"
+            "back = f.read_table(data, 'test.parquet', {'a': 'float64'})\n"
+            "print(back['a'].tolist())\n")
+    env = {k: v for k, v in os.environ.items() if k != "KKTRACE_STORE"}
+    env["PYTHONPATH"] = os.pathsep.join([str(ROOT), env.get("PYTHONPATH", "")])
+    proc = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                          env=env, timeout=300)
+    assert proc.returncode == 0, proc.stderr[-800:]
+    assert proc.stdout.strip() == "[0.0, 1.0, 2.0, 3.0, 4.0]"

@@ -374,6 +374,41 @@ def arrow_table(columns: Mapping[str, Any]) -> pa.Table:
                                 names=list(columns))
 
 
+_preload: Any = None
+
+
+def preload_parquet() -> None:
+    """Start importing ``pyarrow.parquet`` in a thread of its own (~0.1 s here: it loads
+    pyarrow's file systems and ``ssl``), for a caller about to spend longer than that in
+    compiled code that releases the GIL (a solve), so that the save finds it loaded.
+    Does nothing when it is loaded or being loaded; a failed import is left for the
+    writer to meet and report (:func:`write_table` waits for the thread first)."""
+    global _preload
+    import sys
+    import threading
+
+    if _preload is not None or "pyarrow.parquet" in sys.modules:
+        return
+
+    def run() -> None:
+        try:
+            import pyarrow.parquet  # noqa: F401
+        except Exception:  # noqa: BLE001, S110 - imported again, in the open, by the writer
+            pass
+
+    _preload = threading.Thread(target=run, name="kktrace-preload-parquet", daemon=True)
+    _preload.start()
+
+
+def _parquet() -> Any:
+    """``pyarrow.parquet``, after a :func:`preload_parquet` thread has finished."""
+    if _preload is not None:
+        _preload.join()
+    import pyarrow.parquet as pq
+
+    return pq
+
+
 def write_table(
     columns: Mapping[str, np.ndarray],
     *,
@@ -386,8 +421,8 @@ def write_table(
     ``descriptions`` become per-field metadata ``description`` for readers.
     """
     import pyarrow as pa
-    import pyarrow.parquet as pq
 
+    pq = _parquet()
     fields, arrays, enc, dict_cols = [], [], {}, []
     for name, arr in columns.items():
         arr = np.asarray(arr)
@@ -448,7 +483,8 @@ def read_table(
     Malformed bytes → :class:`IntegrityError`.
     """
     import pyarrow as pa
-    import pyarrow.parquet as pq
+
+    pq = _parquet()
 
     try:
         # ParquetFile, not pq.read_table: the latter imports pandas (a second of start-up)
