@@ -475,3 +475,21 @@ def test_unusual_problems_render(rng: np.random.Generator) -> None:
         html = render_html(content)
         assert expected in html
         assert jsonschema.Draft202012Validator(load_schema()).is_valid(summary_dict(content))
+
+
+def test_the_point_tables_decision_values_say_where_they_come_from(work: dict,
+                                                                   written: dict) -> None:
+    """The SMO run's explanation read its decision values off the solver's gradient after
+    the spot check; the report's termination facts (HTML, PDF and JSON alike) say so."""
+    smo_run, qp_run = (r for r in written["content"].runs)
+    assert "solver's final gradient, checked against the exact product on" in \
+        smo_run.termination["decision_values_from"]
+    note = work["pair"][0].attachments["explanation_values"]
+    assert note["source"] == "solver_gradient" and note["largest_relative_difference"] <= 1e-9
+    qp_note = work["pair"][1].attachments["explanation_values"]
+    assert qp_run.termination["decision_values_from"] == qp_note["reason"]
+    assert qp_note["source"] == "kernel_product"  # the QP challenger keeps no gradient
+    html = written["paths"]["html"].read_text(encoding="utf-8")
+    assert "decision values of the point table" in html
+    summary = json.loads(written["paths"]["json"].read_text(encoding="utf-8"))
+    assert any(r["termination"].get("decision_values_from") for r in summary["runs"])

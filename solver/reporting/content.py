@@ -122,6 +122,9 @@ def _run_content(rec: RunRecord, label: str, holdout: Mapping | None,
     att = rec.attachments or {}
     term["phase_seconds"] = {str(k): float(v) for k, v in
                              (_as_mapping(att.get("phases")) or {}).items()}
+    values = _as_mapping(att.get("explanation_values"))
+    term["decision_values_from"] = (str(values["reason"]) if values and "reason" in values
+                                    else None)
     audit = _as_mapping(att.get("audit"))
     sel = None
     tr = res.trace

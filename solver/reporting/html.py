@@ -200,6 +200,7 @@ def _termination_rows(t: Mapping[str, Any]) -> list[tuple[str, Any]]:
         ("compile time (s)", t.get("compile_seconds")), ("set-up time (s)", t.get("setup_seconds")),
         ("whole solver call (s)", t.get("seconds")),
         ("phases of the fit (s)", _phase_text(t.get("phase_seconds"))),
+        ("decision values of the point table", t.get("decision_values_from")),
         ("tolerance (kkt_tol)", t.get("kkt_tol")), ("final maximal violation",
                                                     t.get("max_violation")),
         ("violation within kkt_tol", meets),

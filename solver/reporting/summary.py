@@ -25,7 +25,8 @@ _TERMINATION_KEYS = (
     "compile_seconds", "setup_seconds", "total_seconds", "phase_seconds", "kkt_tol",
     "max_violation",
     "meets_tol", "m_up", "M_low", "dual_objective", "primal_objective", "duality_gap",
-    "relative_gap", "bias", "bias_from", "bound_violation", "equality_residual",
+    "relative_gap", "bias", "bias_from", "decision_values_from", "bound_violation",
+    "equality_residual",
     "max_kkt_residual",
 )
 
