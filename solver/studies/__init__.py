@@ -3,6 +3,7 @@ Dask, every fit a stored run and the study a parent record (``task = "study"``).
 
 Public entry point :func:`study` (re-exported by :mod:`solver`); see
 :mod:`solver.studies.runner` for the flow, :mod:`.execute` for where fits run,
+:mod:`.fits` for the fits themselves, :mod:`.records` for what is stored, and
 :mod:`.table` for the results table and the one-standard-error rule.
 """
 
