@@ -72,10 +72,9 @@ def read_plain_csv(
     if found is None:
         return None
     raw, header_line, start = found
-    body = data[start:]
-    if not body.strip() or body.startswith((b"\n", b"\r\n")) or b"\n\n" in body \
-            or b"\n\r\n" in body:
-        return None
+    if (not data[start:start + 1] or data.startswith((b"\n", b"\r\n"), start)
+            or data.find(b"\n\n", start) >= 0 or data.find(b"\n\r\n", start) >= 0):
+        return None  # no data line, or a blank line among them
     names = [c.strip() for c in raw.decode("utf-8").split(delimiter)]
     if len(names) < 2 or not names[-1]:
         return None  # one column (a hint may be due) or a trailing delimiter
@@ -92,7 +91,7 @@ def read_plain_csv(
         types[label] = pa.string()
     try:
         table = pc.read_csv(
-            pa.BufferReader(body),
+            pa.BufferReader(pa.py_buffer(data).slice(start)),  # no copy of the file's bytes
             read_options=pc.ReadOptions(column_names=names, use_threads=False),
             parse_options=pc.ParseOptions(delimiter=delimiter, quote_char=False,
                                           double_quote=False, escape_char=False,
