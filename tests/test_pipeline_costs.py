@@ -244,6 +244,11 @@ def test_a_fold_prepared_once_gives_the_fits_a_fresh_preparation_gives():
                         data.folds)
     got = facts(F.fit_chain(other, job(cells[0], 1)))  # other data: not the kept fold
     assert got[2]["fingerprint"] != kept[0][2]["fingerprint"]
+    del data, other
+    import gc
+
+    gc.collect()
+    assert not F._prep  # the entries went with their data objects
 
 
 # --- CSV files read by pyarrow (solver._csv_fast) against the csv-module path -------------

@@ -224,7 +224,8 @@ def _fold_prep(data: StudyData, job: FitJob, task: Any) -> tuple[Any, ...]:
     per member its spec, standardiser, standardised rows and data facts, the parent's
     info, the fit's data facts, the class order).  The last :data:`_PREP_KEEP` are kept
     in this process (a worker fits many cells of a fold one after the other), keyed by
-    the data object itself (held weakly), the fold, the task and the options used."""
+    the data object itself (held weakly: its entries go with it), the fold, the task and
+    the options used."""
     import weakref
 
     from ..tasks._labels import class_order
@@ -257,7 +258,8 @@ def _fold_prep(data: StudyData, job: FitJob, task: Any) -> tuple[Any, ...]:
     prep = (_subset(ds, val_rows), val_rows, tuple(parts), info, fit_data, classes)
     while len(_prep) >= _PREP_KEEP:
         _prep.pop(next(iter(_prep)))
-    _prep[key] = (weakref.ref(data), prep)
+    # dropped with the data object, so a finished study leaves nothing behind
+    _prep[key] = (weakref.ref(data, lambda _: _prep.pop(key, None)), prep)
     return prep
 
 
