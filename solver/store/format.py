@@ -527,8 +527,8 @@ def write_csv(columns: Mapping[str, np.ndarray]) -> bytes:
 
     The bytes of :class:`csv.writer` with its defaults (minimal quoting, ``\n`` line ends),
     built a column at a time: each column's cells are formatted and, where one holds a
-    comma, a quote or a newline, quoted; then every line is joined at once (4× faster
-    at 10 000 rows; a test compares the bytes with ``csv.writer``'s)."""
+    comma, a quote or a newline, quoted; then every line is joined at once (the explanation
+    table of 10 000 rows: 56 → 35 ms; a test compares the bytes with ``csv.writer``'s)."""
     names = list(columns)
     cells: list[list[str]] = [[_csv_cell(c) for c in names]]
     for c in names:
@@ -540,8 +540,7 @@ def write_csv(columns: Mapping[str, np.ndarray]) -> bytes:
             cells.append(list(map(str, vals)))
         elif all(type(v) is str for v in vals):
             special = _CSV_SPECIAL.search
-            cells.append(['"' + v.replace('"', '""') + '"' if special(v) else v
-                          for v in vals])
+            cells.append([_quoted(v) if special(v) else v for v in vals])
         else:
             cells.append([_csv_cell(v) for v in vals])
     if len(names) == 1:  # a lone empty field is written as "" (csv.writer's rule)
@@ -561,9 +560,12 @@ def _csv_cell(v: Any) -> str:
     if v is None:
         return ""
     s = repr(v) if isinstance(v, float) else v if isinstance(v, str) else str(v)
-    if _CSV_SPECIAL.search(s):
-        return '"' + s.replace('"', '""') + '"'
-    return s
+    return _quoted(s) if _CSV_SPECIAL.search(s) else s
+
+
+def _quoted(s: str) -> str:
+    """``s`` in quotes, its quotes doubled (RFC 4180)."""
+    return '"' + s.replace('"', '""') + '"'
 
 
 # ----------------------------------------------------------------------------- field checks

@@ -87,10 +87,14 @@ def _fsync_dir(path: Path) -> None:
         os.close(fd)
 
 
+def _files_table(files: Mapping[str, bytes]) -> dict[str, dict[str, Any]]:
+    """A manifest's ``files``: name → SHA-256 and size."""
+    return {name: {"sha256": sha256_hex(b), "bytes": len(b)} for name, b in files.items()}
+
+
 def finish_manifest(manifest: dict[str, Any], files: Mapping[str, bytes]) -> bytes:
-    """Add the files table (name → SHA-256 and size) to ``manifest``; its JSON bytes."""
-    manifest["files"] = {name: {"sha256": sha256_hex(b), "bytes": len(b)}
-                         for name, b in files.items()}
+    """Add the files table (:func:`_files_table`) to ``manifest``; its JSON bytes."""
+    manifest["files"] = _files_table(files)
     return dump_json(manifest)
 
 
@@ -296,10 +300,8 @@ class RunStore:
             raise IntegrityError("save_encoded() needs an EncodedRun with a well-formed run id")
         manifest = parse_json(run.manifest, MANIFEST)
         listed = manifest.get("files") if isinstance(manifest, dict) else None
-        actual = {name: {"sha256": sha256_hex(b), "bytes": len(b)}
-                  for name, b in run.files.items()}
         if (not isinstance(manifest, dict) or manifest.get("run_id") != run.run_id
-                or manifest.get("parent") is not None or listed != actual
+                or manifest.get("parent") is not None or listed != _files_table(run.files)
                 or any(not is_plain_name(n) or n in _RESERVED for n in run.files)):
             raise IntegrityError(f"encoded run {run.run_id}: its manifest does not describe "
                                  "its files (run id, parent or files table differ); not saved")

@@ -128,8 +128,6 @@ class FitOutput:
 
     key: str
     cell: Cell
-    fold: int
-    warm_start: bool
     view: FitView
     encoded: tuple[Any, ...]
     roles: tuple[tuple[str, Any], ...] = ()
@@ -199,14 +197,14 @@ def fit_chain(data: StudyData, job: FitJob) -> list[FitOutput]:
             rec = RunRecord(problem=problem, result=result,
                             data={**facts, "study_fit_key": key}, standardiser=std,
                             attachments=att)
-            out.append(FitOutput(key=key, cell=cell, fold=int(job.fold), warm_start=warm,
+            out.append(FitOutput(key=key, cell=cell,
                                  view=FitView.of_records(att, [rec]),
                                  encoded=(encode_run(rec),)))
             continue
         recs = [RunRecord(problem=problem, result=result, data=dict(facts), standardiser=std,
                           attachments={"command": job.command})
                 for m, problem, result, std, facts in runs]
-        out.append(FitOutput(key=key, cell=cell, fold=int(job.fold), warm_start=warm,
+        out.append(FitOutput(key=key, cell=cell,
                              view=FitView.of_records(att, recs),
                              encoded=tuple(encode_run(r) for r in recs),
                              roles=tuple((m.role, m.key) for m, *_ in runs), info=info,
